@@ -1,0 +1,99 @@
+"""THE manifest schema: column names, types, units; plus the streaming writer and reader.
+
+A dataset folder holds `manifest/split=<name>/part-*.parquet` (one row per image) and
+`distractors/split=<name>/part-*.parquet` (one row per extra object). Every file carries the
+canonical spec, its hash and package versions in its Parquet key-value metadata, so any tool
+(pandas, pyarrow.dataset, duckdb) reads the dataset without augsplit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import pyarrow as pa
+
+
+@dataclass(frozen=True)
+class Column:
+    name: str
+    type: pa.DataType
+    unit: str
+    doc: str
+
+
+def _c(name, type_, unit, doc):
+    return Column(name, type_, unit, doc)
+
+
+# Axis values as sampled, in the spec's own unit for that axis (see the spec's `axes:`).
+# Axes a spec does not vary hold their fixed default (scale 1, angle 0, hue 0, ...).
+AXIS_COLUMNS = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness", "mirror")
+
+IMAGE_COLUMNS: tuple[Column, ...] = (
+    _c("image_id", pa.string(), "", "unique id '<split>-<index:07d>'; predictions join on it"),
+    _c("split", pa.string(), "", "split name (also the partition folder)"),
+    _c("split_index", pa.int32(), "", "position of the split in the spec (part of the seed key)"),
+    _c("index", pa.int64(), "", "image number within the split (part of the seed key)"),
+    _c("seed", pa.int64(), "", "the spec seed; the image's stream is SeedSequence(seed, spawn_key=(split_index, index, purpose))"),
+    _c("class_name", pa.string(), "", "object class"),
+    _c("class_index", pa.int32(), "", "class number in the object source's order"),
+    _c("instance", pa.int32(), "", "object instance within the class"),
+    _c("instance_seen", pa.bool_(), "", "whether the instance is one of the class's seen instances"),
+    _c("cell", pa.int32(), "", "which disjoint box (region cell) of the split's region the parameters came from"),
+    _c("x", pa.float64(), "spec", "object centre, horizontal, spec unit (NaN for polar specs: see cx_px)"),
+    _c("y", pa.float64(), "spec", "object centre, vertical (down), spec unit"),
+    _c("eccentricity", pa.float64(), "spec", "distance of centre from canvas centre, spec unit (NaN for x/y specs)"),
+    _c("polar_angle", pa.float64(), "deg", "direction of centre from canvas centre, counter-clockwise from right"),
+    _c("scale", pa.float64(), "x", "multiplier of native size"),
+    _c("angle", pa.float64(), "deg", "in-plane rotation, counter-clockwise"),
+    _c("hue", pa.float64(), "deg", "hue rotation"),
+    _c("saturation", pa.float64(), "x", "saturation multiplier"),
+    _c("brightness", pa.float64(), "x", "brightness (value) multiplier"),
+    _c("mirror", pa.int8(), "", "1 when mirrored left-right before rotation"),
+    _c("cx_px", pa.float64(), "px", "object centre as rendered, column coordinate (pixel centres at .5)"),
+    _c("cy_px", pa.float64(), "px", "object centre as rendered, row coordinate"),
+    _c("x_deg", pa.float64(), "deg", "horizontal visual angle of the centre from the canvas centre (NaN without viewing)"),
+    _c("y_deg", pa.float64(), "deg", "vertical visual angle of the centre from the canvas centre, down positive"),
+    _c("eccentricity_deg", pa.float64(), "deg", "visual angle of the centre from the canvas centre"),
+    _c("size_px", pa.float64(), "px", "object extent as rendered: scale x native diameter about the anchor"),
+    _c("size_deg", pa.float64(), "deg", "size_px as a visual angle, exact 2*atan(s/2d)"),
+    _c("bbox_x0", pa.int32(), "px", "bounding box of the visible footprint, first column"),
+    _c("bbox_y0", pa.int32(), "px", "first row"),
+    _c("bbox_x1", pa.int32(), "px", "one past the last column"),
+    _c("bbox_y1", pa.int32(), "px", "one past the last row"),
+    _c("footprint_px", pa.int32(), "px", "pixels of the object on the canvas (alpha above threshold)"),
+    _c("visible_fraction", pa.float32(), "", "footprint on the canvas / footprint were the canvas unbounded"),
+    _c("n_distractors", pa.int16(), "", "extra objects in the scene (rows in the distractors table)"),
+    _c("width", pa.int32(), "px", "canvas width"),
+    _c("height", pa.int32(), "px", "canvas height"),
+    _c("file", pa.string(), "", "image path relative to the dataset folder ('' when not stored as a file)"),
+    _c("image_bytes", pa.binary(), "", "encoded image when stored in Parquet (null otherwise)"),
+    _c("sha256", pa.string(), "", "SHA-256 of the raw pixel array (H x W x C uint8, C-order)"),
+)
+
+DISTRACTOR_COLUMNS: tuple[Column, ...] = (
+    _c("image_id", pa.string(), "", "the scene's image id"),
+    _c("split", pa.string(), "", "split name"),
+    _c("k", pa.int16(), "", "distractor number within the scene"),
+    _c("class_name", pa.string(), "", "object class"),
+    _c("class_index", pa.int32(), "", "class number"),
+    _c("instance", pa.int32(), "", "instance within the class"),
+    _c("cx_px", pa.float64(), "px", "centre column"),
+    _c("cy_px", pa.float64(), "px", "centre row"),
+    _c("scale", pa.float64(), "x", "multiplier of native size"),
+    _c("angle", pa.float64(), "deg", "rotation"),
+    _c("hue", pa.float64(), "deg", "hue rotation"),
+    _c("saturation", pa.float64(), "x", "saturation multiplier"),
+    _c("brightness", pa.float64(), "x", "brightness multiplier"),
+    _c("mirror", pa.int8(), "", "mirrored"),
+    _c("bbox_x0", pa.int32(), "px", "visible bounding box"),
+    _c("bbox_y0", pa.int32(), "px", ""),
+    _c("bbox_x1", pa.int32(), "px", ""),
+    _c("bbox_y1", pa.int32(), "px", ""),
+    _c("footprint_px", pa.int32(), "px", "pixels on the canvas"),
+    _c("visible_fraction", pa.float32(), "", "visible share"),
+)
+
+IMAGE_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in IMAGE_COLUMNS])
+DISTRACTOR_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in DISTRACTOR_COLUMNS])
+UNITS = {c.name: c.unit for c in IMAGE_COLUMNS}

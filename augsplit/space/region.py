@@ -1,0 +1,204 @@
+"""Regions of transform space: finite unions of disjoint axis-aligned boxes in t-space.
+
+A region behaves like a set (`|`, `&`, `-`, `contains`, `mass`). Its boxes are always
+pairwise disjoint (up to shared faces, which have zero mass), so mass is a plain sum and
+exact sampling picks a box by mass. Circular intervals that wrap are stored as two boxes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .axes import Space
+
+_EPS = 1e-12
+
+
+@dataclass(frozen=True, eq=False)
+class Region:
+    """Disjoint boxes `lo[k] <= t <= hi[k]` (per axis, in measure coordinates) of `space`."""
+
+    space: Space
+    lo: np.ndarray  # (nbox, ndim)
+    hi: np.ndarray  # (nbox, ndim)
+
+    def __post_init__(self):
+        lo = np.asarray(self.lo, dtype=float).reshape(-1, self.space.ndim)
+        hi = np.asarray(self.hi, dtype=float).reshape(-1, self.space.ndim)
+        keep = np.all(hi - lo > _EPS, axis=1)
+        lo, hi = lo[keep], hi[keep]
+        lo.setflags(write=False); hi.setflags(write=False)
+        object.__setattr__(self, "lo", lo)
+        object.__setattr__(self, "hi", hi)
+
+    # ---- construction -------------------------------------------------------------
+    @classmethod
+    def full(cls, space: Space) -> "Region":
+        return cls(space, space.t_lo[None, :], space.t_hi[None, :])
+
+    @classmethod
+    def empty(cls, space: Space) -> "Region":
+        return cls(space, np.zeros((0, space.ndim)), np.zeros((0, space.ndim)))
+
+    @classmethod
+    def box(cls, space: Space, intervals: dict[str, list[tuple[float, float]]]) -> "Region":
+        """A box from t-intervals per axis (a list per axis = a union); missing axes span all.
+
+        Intervals of one axis are merged first, so the product of the lists is disjoint.
+        """
+        per_axis = []
+        for i, name in enumerate(space.names):
+            ivs = intervals.get(name)
+            per_axis.append(_merge(ivs) if ivs is not None else [(space.t_lo[i], space.t_hi[i])])
+        grids = np.meshgrid(*[np.arange(len(p)) for p in per_axis], indexing="ij")
+        combos = np.stack([g.ravel() for g in grids], axis=-1) if per_axis else np.zeros((1, 0), int)
+        lo = np.array([[per_axis[a][c][0] for a, c in enumerate(row)] for row in combos], dtype=float)
+        hi = np.array([[per_axis[a][c][1] for a, c in enumerate(row)] for row in combos], dtype=float)
+        return cls(space, lo, hi)
+
+    # ---- set algebra ----------------------------------------------------------------
+    def _check(self, other: "Region") -> None:
+        if not isinstance(other, Region):
+            raise TypeError(f"cannot combine a Region with {type(other).__name__}")
+        if other.space != self.space:
+            raise ValueError("regions of different spaces cannot be combined")
+
+    def __and__(self, other: "Region") -> "Region":
+        self._check(other)
+        lo = np.maximum(self.lo[:, None, :], other.lo[None, :, :]).reshape(-1, self.space.ndim)
+        hi = np.minimum(self.hi[:, None, :], other.hi[None, :, :]).reshape(-1, self.space.ndim)
+        return Region(self.space, lo, hi)
+
+    def __sub__(self, other: "Region") -> "Region":
+        self._check(other)
+        lo, hi = self.lo, self.hi
+        for b_lo, b_hi in zip(other.lo, other.hi):
+            lo, hi = _box_difference(lo, hi, b_lo, b_hi)
+            if len(lo) == 0:
+                break
+        return Region(self.space, lo, hi)
+
+    def __or__(self, other: "Region") -> "Region":
+        self._check(other)
+        rest = other - self
+        return Region(self.space, np.vstack([self.lo, rest.lo]), np.vstack([self.hi, rest.hi]))
+
+    def complement(self) -> "Region":
+        return Region.full(self.space) - self
+
+    # ---- measures and queries ------------------------------------------------------------
+    @property
+    def nbox(self) -> int:
+        return len(self.lo)
+
+    def box_masses(self) -> np.ndarray:
+        """Mass of each box as a fraction of the whole space (product of the axes' measures)."""
+        return np.prod((self.hi - self.lo) / self.space.t_span, axis=1)
+
+    def mass(self) -> float:
+        return float(self.box_masses().sum())
+
+    def is_empty(self) -> bool:
+        return self.nbox == 0
+
+    def contains_t(self, t: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
+        """Membership of N points given in t (closed boxes); NaN coordinates are outside."""
+        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
+        out = np.zeros(len(t), dtype=bool)
+        if self.nbox == 0:
+            return out
+        step = max(1, chunk // max(1, self.nbox))
+        tol = 1e-9 * np.maximum(1.0, np.abs(self.space.t_span))
+        for s in range(0, len(t), step):
+            p = t[s : s + step, None, :]
+            inside = (p >= self.lo[None] - tol) & (p <= self.hi[None] + tol)
+            out[s : s + step] = inside.all(axis=2).any(axis=1)
+        return out
+
+    def contains(self, points) -> np.ndarray:
+        """Membership of points given in axis units: {axis: array} or an (N, ndim) array."""
+        return self.contains_t(self.space.to_t(points))
+
+    def box_of_t(self, t: np.ndarray) -> np.ndarray:
+        """Index of the first box holding each point, -1 where none does."""
+        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
+        out = np.full(len(t), -1, dtype=np.int64)
+        for k in range(self.nbox - 1, -1, -1):
+            inside = np.all((t >= self.lo[k] - 1e-9) & (t <= self.hi[k] + 1e-9), axis=1)
+            out[inside] = k
+        return out
+
+    def restrict(self, name: str, lo_t: float, hi_t: float) -> "Region":
+        """The part of the region whose axis `name` lies in [lo_t, hi_t]."""
+        i = self.space.index[name]
+        lo = self.space.t_lo.copy(); hi = self.space.t_hi.copy()
+        lo[i], hi[i] = lo_t, hi_t
+        return self & Region(self.space, lo[None], hi[None])
+
+    def axis_extent(self, name: str) -> tuple[float, float] | None:
+        """Smallest and largest t the region reaches on one axis, None when empty."""
+        if self.nbox == 0:
+            return None
+        i = self.space.index[name]
+        return float(self.lo[:, i].min()), float(self.hi[:, i].max())
+
+    def simplify(self) -> "Region":
+        """Merge boxes that differ on one axis only and touch there (repeat to a fixed point)."""
+        lo, hi = [list(r) for r in self.lo], [list(r) for r in self.hi]
+        changed = True
+        while changed:
+            changed = False
+            n = len(lo)
+            for a in range(n):
+                for b in range(a + 1, n):
+                    diff = [i for i in range(self.space.ndim) if lo[a][i] != lo[b][i] or hi[a][i] != hi[b][i]]
+                    if len(diff) == 1:
+                        i = diff[0]
+                        if abs(hi[a][i] - lo[b][i]) < 1e-12 or abs(hi[b][i] - lo[a][i]) < 1e-12:
+                            lo[a][i], hi[a][i] = min(lo[a][i], lo[b][i]), max(hi[a][i], hi[b][i])
+                            del lo[b], hi[b]
+                            changed = True
+                            break
+                if changed:
+                    break
+        return Region(self.space, np.array(lo).reshape(-1, self.space.ndim), np.array(hi).reshape(-1, self.space.ndim))
+
+    def __repr__(self) -> str:
+        return f"Region({self.nbox} boxes over {', '.join(self.space.names)}, mass={self.mass():.4g})"
+
+
+def _merge(ivs) -> list[tuple[float, float]]:
+    ivs = sorted((float(a), float(b)) for a, b in ivs)
+    out: list[list[float]] = []
+    for a, b in ivs:
+        if out and a <= out[-1][1] + _EPS:
+            out[-1][1] = max(out[-1][1], b)
+        else:
+            out.append([a, b])
+    return [(a, b) for a, b in out]
+
+
+def _box_difference(lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray, b_hi: np.ndarray):
+    """Boxes (lo, hi) minus one box, as disjoint boxes. Vectorised over the first argument.
+
+    Classic slab decomposition: along axis k keep the parts of A below and above B,
+    with axes < k already clipped to B; what is left after all axes lies inside B.
+    """
+    d = lo.shape[1]
+    touches = np.all((lo < b_hi - _EPS) & (hi > b_lo + _EPS), axis=1)
+    out_lo, out_hi = [lo[~touches]], [hi[~touches]]
+    cur_lo, cur_hi = lo[touches].copy(), hi[touches].copy()
+    for k in range(d):
+        below_lo, below_hi = cur_lo.copy(), cur_hi.copy()
+        below_hi[:, k] = np.minimum(cur_hi[:, k], b_lo[k])
+        above_lo, above_hi = cur_lo.copy(), cur_hi.copy()
+        above_lo[:, k] = np.maximum(cur_lo[:, k], b_hi[k])
+        out_lo += [below_lo, above_lo]
+        out_hi += [below_hi, above_hi]
+        cur_lo[:, k] = np.maximum(cur_lo[:, k], b_lo[k])
+        cur_hi[:, k] = np.minimum(cur_hi[:, k], b_hi[k])
+    lo2, hi2 = np.vstack(out_lo), np.vstack(out_hi)
+    keep = np.all(hi2 - lo2 > _EPS, axis=1)
+    return lo2[keep], hi2[keep]
