@@ -1,0 +1,152 @@
+"""Label the rows of an existing table with the split whose region holds them.
+
+The table (CSV or Parquet) gives parameters by axis name, or bounding boxes
+(`bbox_x0, bbox_y0, bbox_x1, bbox_y1` in px, or `bbox_x, bbox_y, bbox_w, bbox_h`) from which
+the centre (and, with a reference size, the scale) is derived. Each row gets the name of
+the first split whose region holds it, `guard` if it lies in a band auto_guard removed, or
+`none`; `ambiguous` counts rows two splits both claim.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import DatasetError
+from .plan import Plan
+from .plan.regions import CLASS
+
+SPLIT_COLUMN = "split"
+
+
+def read_table(path: str | Path) -> pd.DataFrame:
+    p = Path(path)
+    if not p.exists():
+        raise DatasetError("no such file or folder", where=str(p))
+    try:
+        if p.is_dir() or p.suffix.lower() in (".parquet", ".pq"):
+            return pd.read_parquet(p)
+        if p.suffix.lower() in (".csv", ".tsv", ".txt"):
+            return pd.read_csv(p, sep="\t" if p.suffix.lower() == ".tsv" else ",")
+    except Exception as exc:  # noqa: BLE001 - any parser failure is the file's fault
+        raise DatasetError(f"cannot read table: {str(exc).splitlines()[0]}", where=str(p)) from None
+    raise DatasetError("unknown table format (use .csv, .tsv or .parquet)", where=str(p))
+
+
+@dataclass(frozen=True)
+class Assignment:
+    table: pd.DataFrame
+    counts: dict
+    ambiguous: int
+
+
+def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, where: str) -> pd.DataFrame:
+    """Columns of axis values in spec units, derived from bboxes where the axis column is absent."""
+    out = pd.DataFrame(index=df.index)
+    canvas = plan.canvas
+    bbox = _bbox(df)
+    for ax in plan.space.axes:
+        n = ax.name
+        if n == CLASS:
+            continue
+        if n in df.columns:
+            out[n] = pd.to_numeric(df[n], errors="coerce")
+            continue
+        if bbox is not None and n in ("x", "y"):
+            x0, y0, x1, y1 = bbox
+            px = (x0 + x1) / 2.0 if n == "x" else (y0 + y1) / 2.0
+            out[n] = canvas.from_px(n, ax.unit, px)
+            continue
+        if bbox is not None and n in ("eccentricity", "polar_angle"):
+            x0, y0, x1, y1 = bbox
+            dx, dy = (x0 + x1) / 2.0 - canvas.centre[0], (y0 + y1) / 2.0 - canvas.centre[1]
+            if n == "eccentricity":
+                out[n] = canvas.radius_from_px(ax.unit, np.hypot(dx, dy))
+            else:
+                out[n] = np.mod(np.degrees(np.arctan2(-dy, dx)), 360.0)
+            continue
+        if bbox is not None and n == "scale":
+            if ref_size is None:
+                raise DatasetError("the table has no 'scale' column; give a reference size to derive it from the bboxes",
+                                   where=where)
+            x0, y0, x1, y1 = bbox
+            out[n] = np.sqrt(np.maximum(x1 - x0, 0) * np.maximum(y1 - y0, 0)) / ref_size
+            continue
+        need = f"'{n}'" + (" (or bbox columns)" if n in ("x", "y", "eccentricity", "polar_angle", "scale") else "")
+        raise DatasetError(f"the table has no column {need}; its columns are {', '.join(map(str, df.columns))}", where=where)
+    return out
+
+
+def _bbox(df: pd.DataFrame):
+    if {"bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"} <= set(df.columns):
+        return tuple(pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"))
+    if {"bbox_x", "bbox_y", "bbox_w", "bbox_h"} <= set(df.columns):
+        x, y, w, h = (pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in ("bbox_x", "bbox_y", "bbox_w", "bbox_h"))
+        return x, y, x + w, y + h
+    return None
+
+
+def class_column(df: pd.DataFrame, plan: Plan, where: str) -> np.ndarray:
+    """Class index per row (needed only when some region depends on the class)."""
+    for col in ("class_name", "class", "label"):
+        if col in df.columns:
+            names = df[col].astype(str)
+            known = {n: i for i, n in enumerate(plan.classes)}
+            idx = names.map(known)
+            if idx.isna().any():
+                bad = names[idx.isna()].unique()[:3]
+                raise DatasetError(f"column '{col}' holds classes the spec does not have: {', '.join(bad)}", where=where)
+            return idx.to_numpy(float)
+    return None
+
+
+def depends_on_class(region) -> bool:
+    """Whether membership in `region` changes with the class (e.g. a by_class region)."""
+    space = region.space
+    c = space.index[CLASS]
+    n = len(space[CLASS].levels)
+    parts = []
+    for k in range(n):
+        part = region.restrict(CLASS, k - 0.5, k + 0.5)
+        lo, hi = part.lo.copy(), part.hi.copy()
+        lo[:, c], hi[:, c] = space.t_lo[c], space.t_hi[c]
+        parts.append(type(region)(space, lo, hi))
+    return any(((p - parts[0]) | (parts[0] - p)).mass() > 1e-12 for p in parts[1:])
+
+
+def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: str = "table") -> Assignment:
+    params = derive_parameters(df, plan, ref_size, where)
+    space = plan.space
+    cls = class_column(df, plan, where)
+    class_matters = any(depends_on_class(sp.region) for sp in plan.splits)
+    if cls is None and class_matters:
+        raise DatasetError("the spec's regions depend on the class, but the table has no 'class_name' column", where=where)
+    if cls is None:
+        cls = np.zeros(len(df))
+    t = np.column_stack([space[n].to_t(params[n].to_numpy(float)) for n in space.names if n != CLASS] + [cls])
+    labels = np.full(len(df), "none", dtype=object)
+    claimed = np.zeros(len(df), dtype=int)
+    for s in plan.splits:
+        inside = s.region.contains_t(t)
+        claimed += inside
+        labels[(labels == "none") & inside] = s.name
+    if plan.guard is not None:
+        labels[(labels == "none") & plan.guard.contains_t(t)] = "guard"
+    out = df.copy()
+    out[SPLIT_COLUMN] = labels
+    counts = pd.Series(labels).value_counts().to_dict()
+    return Assignment(out, {k: int(v) for k, v in counts.items()}, int((claimed > 1).sum()))
+
+
+def write_table(df: pd.DataFrame, path: str | Path) -> None:
+    from .io import atomic_path
+
+    p = Path(path)
+    with atomic_path(p) as tmp:
+        if p.suffix.lower() in (".parquet", ".pq"):
+            df.to_parquet(tmp, index=False)
+        else:
+            df.to_csv(tmp, index=False)

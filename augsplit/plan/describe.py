@@ -1,0 +1,96 @@
+"""A plan as plain data (for --json) and as text (for the terminal), in the spec's units."""
+
+from __future__ import annotations
+
+import math
+
+from ..space.axes import LEVELS
+from .kinds import projection
+from .planner import Plan, SplitPlan
+from .regions import CLASS
+
+
+def _interval(ax, lo_t, hi_t):
+    if ax.measure == LEVELS:
+        return {"levels": [v for i, v in enumerate(ax.levels) if lo_t - 1e-9 <= i <= hi_t + 1e-9]}
+    a, b = ax.t_to_interval(lo_t, hi_t)
+    return [round(a, 6), round(b, 6)]
+
+
+def split_data(plan: Plan, s: SplitPlan) -> dict:
+    space = plan.space
+    axes = {}
+    for i, ax in enumerate(space.axes):
+        if ax.name == CLASS:
+            continue
+        axes[ax.name] = {"unit": ax.unit, "intervals": [_interval(ax, a, b) for a, b in projection(s.region, i)]}
+    classes = {plan.classes[c]: n for c, n in enumerate(s.counts) if n}
+    boxes = []
+    for k in range(s.region.nbox):
+        box = {}
+        for i, ax in enumerate(space.axes):
+            if ax.name == CLASS:
+                box["classes"] = [plan.classes[c] for c in range(len(plan.classes)) if s.region.lo[k, i] - 1e-9 <= c <= s.region.hi[k, i] + 1e-9]
+            else:
+                box[ax.name] = _interval(ax, s.region.lo[k, i], s.region.hi[k, i])
+        boxes.append(box)
+    out = {"name": s.name, "index": s.index, "role": s.role, "kind": s.kind, "mass": s.region.mass(),
+           "images": s.total, "per_class": classes, "instances": s.instances, "axes": axes, "boxes": boxes}
+    if s.evidence:
+        out["evidence"] = {"shared_mass_fraction": s.evidence.get("shared_mass_fraction"),
+                           "unseen": {n: [_interval(space[n], a, b) for a, b in ivs] for n, ivs in s.evidence.get("unseen", {}).items()}}
+    return out
+
+
+def plan_data(plan: Plan) -> dict:
+    def clean(v):
+        if isinstance(v, float) and not math.isfinite(v):
+            return None
+        if isinstance(v, dict):
+            return {k: clean(x) for k, x in v.items()}
+        return v
+
+    return {
+        "spec_hash": plan.hash,
+        "seed": plan.spec.seed,
+        "canvas": {"width": plan.canvas.width, "height": plan.canvas.height},
+        "classes": list(plan.classes),
+        "axes": {ax.name: {"range": [ax.lo, ax.hi], "unit": ax.unit, "measure": ax.measure}
+                 for ax in plan.space.axes if ax.name != CLASS},
+        "splits": [split_data(plan, s) for s in plan.splits],
+        "guarantees": [{"disjoint": v.kind, "between": list(v.between), "per_class": v.per_class,
+                        "verdict": v.status, "numbers": clean(v.numbers), "message": v.message} for v in plan.verdicts],
+    }
+
+
+def plan_text(plan: Plan) -> str:
+    d = plan_data(plan)
+    lines = [f"spec {d['spec_hash']}  seed {d['seed']}  canvas {d['canvas']['width']}x{d['canvas']['height']}  "
+             f"{len(d['classes'])} classes"]
+    lines.append("axes: " + ", ".join(f"{n} [{a['range'][0]:g}, {a['range'][1]:g}] {a['unit']} ({a['measure']})".replace("  ", " ")
+                                      for n, a in d["axes"].items()))
+    for s in d["splits"]:
+        counts = sorted(set(s["per_class"].values()))
+        per = (f"{counts[0]} per class x {len(s['per_class'])} classes" if len(counts) == 1
+               else f"{len(s['per_class'])} classes, {min(counts)}-{max(counts)} each")
+        lines.append(f"\nsplit {s['name']}  [{s['role']}, {s['kind']}]  mass {s['mass']:.4f} of the space  "
+                     f"{s['images']} images ({per})  instances: {s['instances']}")
+        for n, a in s["axes"].items():
+            ivs = "  ".join(_fmt(iv) for iv in a["intervals"])
+            lines.append(f"  {n:<13} {ivs} {a['unit']}".rstrip())
+        if s["kind"] not in ("train", "random") and s.get("evidence", {}).get("unseen"):
+            unseen = "; ".join(f"{n} {' '.join(_fmt(iv) for iv in ivs)}" for n, ivs in s["evidence"]["unseen"].items())
+            lines.append(f"  never seen in training: {unseen}")
+        if len(s["per_class"]) < len(d["classes"]) or len(set(map(tuple, (b.get('classes', []) for b in s['boxes'])))) > 1:
+            lines.append(f"  classes: {', '.join(s['per_class'])}")
+    for g in d["guarantees"]:
+        pc = " per class" if g["per_class"] else ""
+        lines.append(f"\nguarantee disjoint {g['disjoint']}{pc} {g['between'][0]} ~ {g['between'][1]}: "
+                     f"{g['verdict'].upper()}  {g['message']}")
+    return "\n".join(lines)
+
+
+def _fmt(iv) -> str:
+    if isinstance(iv, dict):
+        return "{" + ", ".join(f"{v:g}" for v in iv["levels"]) + "}"
+    return f"[{iv[0]:g}, {iv[1]:g}]"

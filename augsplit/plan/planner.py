@@ -1,0 +1,337 @@
+"""The planner: a validated spec + an object source -> concrete splits and proven guarantees.
+
+`make_plan` evaluates every split's region, restricts it to the split's classes, fixes the
+per-class counts and instances, labels each test split's holdout kind, and proves each
+guarantee (or refuses the spec with the numbers, or — with auto_guard — shrinks the second
+split's region until the proof goes through). Nothing here renders or reads files: the
+object source and the footprint renderer are passed in.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import GuaranteeError, SpecError
+from ..space.axes import Space
+from ..space.region import Region
+from ..spec import Spec, spec_hash
+from ..units import Canvas, Viewing
+from .geometry import support_radius
+from .guarantees import (Verdict, check_parameters, dilate_parameters, dilate_positions, footprint_gaps,
+                         tightest)
+from .kinds import holdout_kind
+from .regions import CLASS, build_region, build_space, t_interval_text
+
+
+@dataclass(frozen=True)
+class SplitPlan:
+    """One split, fully decided: its region, role, holdout kind, counts and instances."""
+
+    name: str
+    index: int
+    role: str  # "train" | "test"
+    kind: str  # "train" | "random" | "interpolation" | "extrapolation" | "composition"
+    region: Region
+    counts: tuple[int, ...]  # images per class index (0 where the class is not in the split)
+    instances: str  # "seen" | "unseen" | "all"
+    evidence: dict = field(default_factory=dict, compare=False)
+
+    @property
+    def total(self) -> int:
+        return int(sum(self.counts))
+
+    def class_region(self, c: int) -> Region:
+        return self.region.restrict(CLASS, c - 0.5, c + 0.5)
+
+    def __repr__(self) -> str:
+        return (f"SplitPlan({self.name!r}, role={self.role}, kind={self.kind}, images={self.total}, "
+                f"mass={self.region.mass():.4g}, boxes={self.region.nbox})")
+
+
+@dataclass(frozen=True)
+class Plan:
+    spec: Spec
+    hash: str
+    canvas: Canvas
+    space: Space
+    classes: tuple[str, ...]
+    instances: tuple[tuple[int, ...], ...]  # per class: the seen instance ids
+    unseen: tuple[tuple[int, ...], ...]  # per class: the unseen instance ids
+    splits: tuple[SplitPlan, ...]
+    verdicts: tuple[Verdict, ...]
+    radii: np.ndarray = field(compare=False)  # native support radius (px) per class, over all instances
+    guard: Region | None = field(default=None, compare=False)  # what auto_guard removed
+
+    def split(self, name: str) -> SplitPlan:
+        for s in self.splits:
+            if s.name == name:
+                return s
+        raise SpecError(f"unknown split '{name}'; the spec has {', '.join(s.name for s in self.splits)}")
+
+    def instance_ids(self, split: SplitPlan, c: int) -> tuple[int, ...]:
+        if split.instances == "seen":
+            return self.instances[c]
+        if split.instances == "unseen":
+            return self.unseen[c]
+        return tuple(sorted(self.instances[c] + self.unseen[c]))
+
+    def __repr__(self) -> str:
+        return f"Plan(hash={self.hash}, splits={[s.name for s in self.splits]}, classes={len(self.classes)})"
+
+
+def canvas_of(spec: Spec) -> Canvas:
+    v = Viewing(spec.viewing.distance_cm, spec.viewing.px_per_cm) if spec.viewing else None
+    return Canvas(spec.canvas.width, spec.canvas.height, v)
+
+
+def make_plan(spec: Spec, source, footprint_at=None) -> Plan:
+    """Plan every split and prove every guarantee. `source` is an ObjectSource; `footprint_at`
+    (the renderer's footprint function) is used only to find witnesses for refusals."""
+    canvas = canvas_of(spec)
+    classes = tuple(source.classes)
+    if not classes:
+        raise SpecError("the object source has no classes", where="objects")
+    space = build_space(spec, canvas, classes)
+    seen, unseen = _instances(spec, source, classes)
+    radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor)
+                              for i in seen[c] + unseen[c]) for c in range(len(classes))])
+
+    regions: dict[str, Region] = {}
+    visiting: list[str] = []
+
+    def split_region(name: str, where: str) -> Region:
+        if name not in spec.splits:
+            raise SpecError(f"unknown split '{name}'", where=where)
+        if name in visiting:
+            raise SpecError(f"splits refer to each other in a cycle: {' -> '.join(visiting + [name])}", where=where)
+        if name not in regions:
+            visiting.append(name)
+            regions[name] = _split_region(spec, name, space, classes, split_region)
+            visiting.pop()
+        return regions[name]
+
+    for name in spec.splits:
+        split_region(name, f"splits.{name}")
+
+    if spec.render.keep_inside:
+        for name in spec.splits:
+            regions[name] = _keep_inside(space, canvas, regions[name], radii_all, classes, name)
+
+    # guarantees (auto_guard may shrink the second split's region)
+    verdicts = []
+    guard_total = Region.empty(space)
+    for gi, g in enumerate(spec.guarantees):
+        a, b = g.between
+        where = f"guarantees.{gi}"
+        ra = _radii(source, seen, unseen, spec.splits[a].instances, spec, classes)
+        rb = _radii(source, seen, unseen, spec.splits[b].instances, spec, classes)
+        v = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes)
+        if not v.ok and g.auto_guard:
+            guard = _guard_region(g, space, canvas, regions[a], regions[b], ra, rb)
+            before = regions[b].mass()
+            regions[b] = regions[b] - guard
+            guard_total = guard_total | guard
+            v2 = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes)
+            if not v2.ok:
+                raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
+            removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
+            nums = dict(v2.numbers, removed_fraction=removed, guard_px=v.numbers.get("need_px"))
+            v = Verdict(g.disjoint, g.between, "guarded", g.per_class, nums,
+                        f"auto_guard removed {removed:.1%} of {b}'s region; then {v2.message}")
+            if regions[b].is_empty():
+                raise GuaranteeError(f"auto_guard removed all of {b}'s region", where=where)
+        if not v.ok:
+            raise GuaranteeError(v.message, where=where,
+                                 hint="move the regions apart, lower the largest scale, or set auto_guard: true")
+        verdicts.append(v)
+
+    train_names = [n for n in spec.splits if _role(n, spec.splits[n]) == "train"]
+    train_union = Region.empty(space)
+    for n in train_names:
+        train_union = train_union | regions[n]
+
+    splits = []
+    for index, (name, s) in enumerate(spec.splits.items()):
+        role = _role(name, s)
+        region = regions[name]
+        if region.is_empty():
+            raise SpecError("the region is empty", where=f"splits.{name}.region")
+        counts = _counts(s, region, space, classes, name)
+        if role == "train":
+            kind, evidence = "train", {}
+        else:
+            kind, evidence = holdout_kind(space, region, train_union)
+            _check_declared_kind(s.kind, kind, evidence, space, name)
+        instances = s.instances or ("seen" if any(unseen) else "all")
+        if instances == "unseen" and not any(unseen):
+            raise SpecError("no instances are held out (set objects.unseen_instances)", where=f"splits.{name}.instances")
+        splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence))
+
+    return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
+                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
+
+
+# ---- pieces ----------------------------------------------------------------------------
+
+
+def _role(name: str, s) -> str:
+    return s.role or ("train" if name.startswith("train") else "test")
+
+
+def _split_region(spec: Spec, name: str, space: Space, classes, split_region) -> Region:
+    s = spec.splits[name]
+    where = f"splits.{name}.region"
+    region = build_region(s.region, space, classes, where, split_region)
+    if s.classes is not None:
+        region = region & build_region({"class": s.classes}, space, classes, f"splits.{name}.classes")
+    return region
+
+
+def _instances(spec: Spec, source, classes):
+    k = spec.objects.unseen_instances
+    seen, unseen = [], []
+    for c, name in enumerate(classes):
+        n = source.n_instances(c)
+        if k and n <= k:
+            raise SpecError(f"class '{name}' has {n} instance(s); holding out {k} leaves none to train on",
+                            where="objects.unseen_instances")
+        seen.append(list(range(n - k)))
+        unseen.append(list(range(n - k, n)))
+    return seen, unseen
+
+
+def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
+    mode = instances or ("seen" if spec.objects.unseen_instances else "all")
+    out = []
+    for c in range(len(classes)):
+        ids = seen[c] if mode == "seen" else unseen[c] if mode == "unseen" else seen[c] + unseen[c]
+        out.append(max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor) for i in ids))
+    return np.array(out)
+
+
+def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, classes) -> Verdict:
+    if g.disjoint == "parameters":
+        return check_parameters(space, A, B, g.margin, g.per_class, g.between)
+    gaps = footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)
+    t = tightest(gaps)
+    if t is None:
+        return Verdict("footprint", g.between, "proved", g.per_class, {"gap_px": math.inf}, "no class appears in both splits")
+    nums = {"gap_px": t.gap_px, "need_px": t.need_px, "slack_px": t.slack_px,
+            "class_a": classes[t.class_a], "class_b": classes[t.class_b]}
+    if canvas.viewing is not None:
+        nums["gap_deg"] = float(canvas.viewing.offset_to_deg(t.gap_px))
+        nums["need_deg"] = float(canvas.viewing.offset_to_deg(t.need_px))
+    a, b = g.between
+    deg = (f" ({nums['gap_deg']:.3g} deg)" if "gap_deg" in nums else "")
+    if t.slack_px > 0:
+        return Verdict("footprint", g.between, "proved", g.per_class, nums,
+                       f"position gap {t.gap_px:.2f} px{deg} > {t.need_px:.2f} px needed "
+                       f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales)")
+    witness = None
+    if footprint_at is not None:
+        from .witness import find_witness
+
+        sa = [source.sprite(t.class_a, i) for i in seen[t.class_a] + unseen[t.class_a]]
+        sb = [source.sprite(t.class_b, i) for i in seen[t.class_b] + unseen[t.class_b]]
+        witness = find_witness(space, canvas, A, B, t, sa, sb, footprint_at)
+    nums["witness"] = witness
+    status = "overlap" if witness else "unproven"
+    nums["status"] = status
+    what = (f"e.g. {witness['a']['class']} in {a} at ({witness['a']['cx_px']:.1f}, {witness['a']['cy_px']:.1f}) px and "
+            f"{witness['b']['class']} in {b} at ({witness['b']['cx_px']:.1f}, {witness['b']['cy_px']:.1f}) px share "
+            f"{witness['shared_px']} pixel(s)") if witness else "no shared pixel was found, but disjointness cannot be proved"
+    return Verdict("footprint", g.between, "refused", g.per_class, nums,
+                   f"footprints of {a} and {b} can meet: position gap {t.gap_px:.2f} px{deg} < {t.need_px:.2f} px needed "
+                   f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales); {what}")
+
+
+def _guard_region(g, space, canvas, A, B, ra, rb) -> Region:
+    if g.disjoint == "parameters":
+        return dilate_parameters(space, A, max(g.margin, 1e-9), g.per_class)
+    gaps = footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)
+    grow = np.zeros(A.nbox)
+    for gp in gaps:
+        grow[gp.box_a] = max(grow[gp.box_a], gp.need_px + 1e-6)
+    return dilate_positions(space, canvas, A, grow, g.per_class)
+
+
+def _keep_inside(space, canvas, region, radii, classes, name) -> Region:
+    """Shrink each class's positions so its whole support stays on the canvas at every scale."""
+    out = Region.empty(space)
+    for c in range(len(classes)):
+        part = region.restrict(CLASS, c - 0.5, c + 0.5)
+        if part.is_empty():
+            continue
+        kept = Region.empty(space)
+        for k in range(part.nbox):
+            box = Region(space, part.lo[k:k + 1], part.hi[k:k + 1])
+            from .geometry import box_max_scale
+
+            r = radii[c] * box_max_scale(space, part.hi[k])
+            inner = _inner_positions(space, canvas, r)
+            kept = kept | (box & inner)
+        if kept.is_empty():
+            raise SpecError(f"keep_inside leaves no legal position for class '{classes[c]}' "
+                            f"(radius {radii[c]:.1f} px at native size)", where=f"splits.{name}.region")
+        out = out | kept
+    return out
+
+
+def _inner_positions(space, canvas, r: float) -> Region:
+    """Anchor positions at least r px from every canvas edge (inscribed disc for polar axes)."""
+    ivs = {}
+    if "eccentricity" in space:
+        ax = space["eccentricity"]
+        rmax = min(canvas.width, canvas.height) / 2.0 - r
+        if rmax < 0:
+            return Region.empty(space)
+        v = min(float(canvas.radius_from_px(ax.unit, rmax)), ax.hi)
+        if v <= ax.lo:
+            return Region.empty(space)
+        ivs["eccentricity"] = [(float(ax.to_t(ax.lo)), float(ax.to_t(v)))]
+    else:
+        for name, ext in (("x", canvas.width), ("y", canvas.height)):
+            if name not in space:
+                if ext / 2.0 < r:
+                    return Region.empty(space)
+                continue
+            ax = space[name]
+            a = max(float(canvas.from_px(name, ax.unit, r)), ax.lo)
+            b = min(float(canvas.from_px(name, ax.unit, ext - r)), ax.hi)
+            if b <= a:
+                return Region.empty(space)
+            try:
+                ivs[name] = ax.interval_to_t(a, b)
+            except ValueError:
+                return Region.empty(space)
+    return Region.box(space, ivs)
+
+
+def _counts(s, region: Region, space: Space, classes, name: str) -> tuple[int, ...]:
+    present = [c for c in range(len(classes)) if not region.restrict(CLASS, c - 0.5, c + 0.5).is_empty()]
+    if not present:
+        raise SpecError("no class has any room in this region", where=f"splits.{name}.region")
+    counts = [0] * len(classes)
+    if s.per_class is not None:
+        for c in present:
+            counts[c] = s.per_class
+    else:
+        q, r = divmod(s.count, len(present))
+        for k, c in enumerate(present):
+            counts[c] = q + (1 if k < r else 0)
+    return tuple(counts)
+
+
+def _check_declared_kind(declared, kind, evidence, space, name) -> None:
+    if declared is None or declared == kind:
+        return
+    where = f"splits.{name}.kind"
+    if declared == "composition":
+        axis, ivs = next(iter(evidence["unseen"].items()))
+        ax = space[axis]
+        raise SpecError(f"composition claims every marginal value is seen in training, but {axis} "
+                        f"{t_interval_text(ax, *ivs[0])} never is", where=where)
+    raise SpecError(f"declared {declared}, but the regions make it {kind}", where=where)
