@@ -1,0 +1,188 @@
+"""Backgrounds: solid, uniform and Gaussian noise, 1/f ("pink") noise and random crops from a
+folder of images. Each draws a uint8 (H, W, C) canvas from the generator it is given.
+
+Intensities are fractions of full scale in [0, 1]; noise is luminance noise (the same on every
+channel) unless `per_channel=True`. Grey canvases from colour inputs use BT.601 luma.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from ..errors import SourceError, SpecError
+from .base import LUMA_BT601
+from .folder import IMAGE_SUFFIXES, is_hidden, read_image, to_rgb
+
+
+def _unit(value, where: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) \
+            or not 0.0 <= float(value) <= 1.0:
+        raise SpecError(f"must be a number in [0, 1] (fraction of full scale), got {value!r}", where=where)
+    return float(value)
+
+
+def _quantise(v: np.ndarray) -> np.ndarray:
+    """[0, 1] floats to uint8, rounding half up, clipping whatever falls outside."""
+    return np.clip(v * 255.0 + 0.5, 0, 255).astype(np.uint8)
+
+
+def _shape_channels(field: np.ndarray, channels: int, per_channel: bool) -> np.ndarray:
+    """(C, H, W) or (1, H, W) floats to (H, W, channels)."""
+    if channels not in (1, 3):
+        raise ValueError(f"channels must be 1 or 3, got {channels}")
+    out = np.moveaxis(field, 0, -1)
+    if out.shape[2] != channels:
+        out = np.repeat(out[..., :1], channels, axis=2)
+    return out
+
+
+class Solid:
+    """A constant canvas: a grey level in [0, 1] or an RGB triple of them."""
+
+    def __init__(self, value=0.5):
+        if np.isscalar(value):
+            rgb = (_unit(value, "background.value"),) * 3
+        else:
+            vals = tuple(value)
+            if len(vals) != 3:
+                raise SpecError(f"must be a grey level or an RGB triple, got {value!r}", where="background.value")
+            rgb = tuple(_unit(v, f"background.value[{i}]") for i, v in enumerate(vals))
+        self.value = rgb
+        self._rgb = _quantise(np.asarray(rgb))
+        self._grey = _quantise(np.asarray([np.dot(rgb, LUMA_BT601)]))
+
+    def draw(self, rng: np.random.Generator, height: int, width: int, channels: int) -> np.ndarray:
+        level = self._grey if channels == 1 else self._rgb
+        if channels not in (1, 3):
+            raise ValueError(f"channels must be 1 or 3, got {channels}")
+        return np.broadcast_to(level, (height, width, channels)).copy()
+
+    def __repr__(self) -> str:
+        return f"Solid({self.value})"
+
+
+class UniformNoise:
+    """Independent uniform intensities in [lo, hi] per pixel."""
+
+    def __init__(self, lo: float = 0.0, hi: float = 1.0, per_channel: bool = False):
+        self.lo, self.hi = _unit(lo, "background.lo"), _unit(hi, "background.hi")
+        if self.lo > self.hi:
+            raise SpecError(f"lo {lo} is above hi {hi}", where="background.lo")
+        self.per_channel = bool(per_channel)
+
+    def draw(self, rng, height, width, channels):
+        field = rng.uniform(self.lo, self.hi, size=(channels if self.per_channel else 1, height, width))
+        return _quantise(_shape_channels(field, channels, self.per_channel))
+
+    def __repr__(self) -> str:
+        return f"UniformNoise(lo={self.lo}, hi={self.hi}, per_channel={self.per_channel})"
+
+
+class GaussianNoise:
+    """Independent normal intensities (mean, sd), clipped to [0, 1]."""
+
+    def __init__(self, mean: float = 0.5, sd: float = 0.1, per_channel: bool = False):
+        self.mean = _unit(mean, "background.mean")
+        if isinstance(sd, bool) or not isinstance(sd, (int, float, np.integer, np.floating)) or sd < 0:
+            raise SpecError(f"sd must be a non-negative number, got {sd!r}", where="background.sd")
+        self.sd, self.per_channel = float(sd), bool(per_channel)
+
+    def draw(self, rng, height, width, channels):
+        field = rng.normal(self.mean, self.sd, size=(channels if self.per_channel else 1, height, width))
+        return _quantise(_shape_channels(field, channels, self.per_channel))
+
+    def __repr__(self) -> str:
+        return f"GaussianNoise(mean={self.mean}, sd={self.sd}, per_channel={self.per_channel})"
+
+
+def spectral_filter(height: int, width: int, exponent: float) -> np.ndarray:
+    """Amplitude gain 1/f^exponent on the rfft2 grid (f in cycles per pixel); zero at DC."""
+    fy = np.fft.fftfreq(height)[:, None]
+    fx = np.fft.rfftfreq(width)[None, :]
+    f = np.hypot(fx, fy)
+    f[0, 0] = 1.0
+    gain = f ** -exponent
+    gain[0, 0] = 0.0
+    return gain
+
+
+class PinkNoise:
+    """Gaussian noise shaped to an amplitude spectrum 1/f^exponent (exponent 1: "pink", the
+    average spectrum of natural images, Field 1987), scaled to the given mean and RMS contrast
+    (standard deviation / mean of intensity), then clipped to [0, 1]."""
+
+    def __init__(self, mean: float = 0.5, contrast: float = 0.2, exponent: float = 1.0, per_channel: bool = False):
+        self.mean = _unit(mean, "background.mean")
+        if isinstance(contrast, bool) or not isinstance(contrast, (int, float)) or contrast < 0:
+            raise SpecError(f"contrast must be a non-negative number, got {contrast!r}", where="background.contrast")
+        if isinstance(exponent, bool) or not isinstance(exponent, (int, float)) or not 0 <= exponent <= 4:
+            raise SpecError(f"exponent must be a number in [0, 4], got {exponent!r}", where="background.exponent")
+        self.contrast, self.exponent = float(contrast), float(exponent)
+        self.per_channel = bool(per_channel)
+        self._filters: dict[tuple[int, int], np.ndarray] = {}  # per canvas size; pure function of it
+
+    def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:
+        """(k, H, W) float fields with exactly the requested mean and RMS contrast (before clipping)."""
+        gain = self._filters.get((height, width))
+        if gain is None:
+            gain = self._filters[(height, width)] = spectral_filter(height, width, self.exponent)
+        white = rng.standard_normal((k, height, width))
+        shaped = np.fft.irfft2(np.fft.rfft2(white) * gain, s=(height, width))
+        shaped -= shaped.mean(axis=(1, 2), keepdims=True)
+        sd = shaped.std(axis=(1, 2), keepdims=True)
+        shaped /= np.where(sd > 0, sd, 1.0)
+        return self.mean * (1.0 + self.contrast * shaped)
+
+    def draw(self, rng, height, width, channels):
+        field = self.field(rng, height, width, channels if self.per_channel else 1)
+        return _quantise(_shape_channels(field, channels, self.per_channel))
+
+    def __repr__(self) -> str:
+        return (f"PinkNoise(mean={self.mean}, contrast={self.contrast}, exponent={self.exponent}, "
+                f"per_channel={self.per_channel})")
+
+
+class ImageFolder:
+    """Random crops from the images in a folder (sorted by name; subfolders and dotfiles are
+    ignored). An image smaller than the canvas is first enlarged (bilinear, keeping its aspect
+    ratio) just enough to cover it. Every file is decoded when built and kept in memory."""
+
+    def __init__(self, path):
+        root = Path(path)
+        if not root.is_dir():
+            raise SourceError("background folder does not exist or is not a folder", where=str(root))
+        files = sorted(p for p in root.iterdir() if p.is_file() and not is_hidden(p))
+        if not files:
+            raise SourceError("background folder has no images", where=str(root))
+        self.path, self.files = root, tuple(files)
+        self._images = tuple(to_rgb(read_image(p)) for p in files)  # read_image names any bad file
+        self._grey: dict[int, np.ndarray] = {}
+
+    def _image(self, i: int, channels: int) -> np.ndarray:
+        if channels == 3:
+            return self._images[i]
+        if channels != 1:
+            raise ValueError(f"channels must be 1 or 3, got {channels}")
+        if i not in self._grey:
+            self._grey[i] = cv2.cvtColor(self._images[i], cv2.COLOR_RGB2GRAY)[..., None]
+        return self._grey[i]
+
+    def draw(self, rng, height, width, channels):
+        i = int(rng.integers(len(self._images)))
+        img = self._image(i, channels)
+        h, w = img.shape[:2]
+        if h < height or w < width:
+            f = max(height / h, width / w)
+            size = (max(width, math.ceil(w * f)), max(height, math.ceil(h * f)))
+            img = cv2.resize(img, size, interpolation=cv2.INTER_LINEAR).reshape(size[1], size[0], channels)
+            h, w = img.shape[:2]
+        y0 = int(rng.integers(h - height + 1))
+        x0 = int(rng.integers(w - width + 1))
+        return img[y0:y0 + height, x0:x0 + width].copy()
+
+    def __repr__(self) -> str:
+        return f"ImageFolder({str(self.path)!r})  # {len(self.files)} images"

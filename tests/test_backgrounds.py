@@ -1,0 +1,137 @@
+"""Backgrounds: levels, noise statistics, the 1/f spectrum, image-folder crops and errors."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+
+from augsplit.errors import SourceError, SpecError
+from augsplit.sources import Background, GaussianNoise, ImageFolder, PinkNoise, Solid, UniformNoise
+
+
+def rng(seed=0):
+    return np.random.default_rng(seed)
+
+
+def spectral_slope(images: np.ndarray, f_lo: float = 1 / 64, f_hi: float = 1 / 4) -> float:
+    """Least-squares slope of log mean amplitude vs log radial frequency (cycles/px), over
+    integer-radius rings of the 2-D FFT between f_lo and f_hi, averaged over images."""
+    n = images.shape[-1]
+    amp = np.zeros((n, n))
+    for img in images:
+        amp += np.abs(np.fft.fft2(img - img.mean()))
+    f = np.hypot(*np.meshgrid(np.fft.fftfreq(n), np.fft.fftfreq(n)))
+    ring = np.rint(f * n).astype(int)
+    radii = np.arange(int(f_lo * n), int(f_hi * n) + 1)
+    mean_amp = np.array([amp[ring == r].mean() for r in radii])
+    return float(np.polyfit(np.log(radii / n), np.log(mean_amp), 1)[0])
+
+
+def test_pink_noise_spectrum_falls_as_one_over_f():
+    # Field (1987): natural images have amplitude spectra falling as 1/f (slope -1 in
+    # log-log); our pink noise is built to match. White noise (exponent 0) is flat.
+    imgs = np.stack([PinkNoise(0.5, 0.2).draw(rng(i), 128, 128, 1)[..., 0].astype(float) for i in range(8)])
+    assert spectral_slope(imgs) == pytest.approx(-1.0, abs=0.1)  # Field (1987)
+    flat = np.stack([PinkNoise(0.5, 0.2, exponent=0.0).draw(rng(i), 128, 128, 1)[..., 0].astype(float) for i in range(8)])
+    assert spectral_slope(flat) == pytest.approx(0.0, abs=0.1)  # white noise: flat spectrum (from memory)
+    steep = np.stack([PinkNoise(0.5, 0.2, exponent=2.0).field(rng(i), 128, 128)[0] for i in range(8)])
+    assert spectral_slope(steep) == pytest.approx(-2.0, abs=0.1)
+    gauss = np.stack([GaussianNoise(0.5, 0.1).draw(rng(i), 128, 128, 1)[..., 0].astype(float) for i in range(8)])
+    assert spectral_slope(gauss) == pytest.approx(0.0, abs=0.1)  # independent pixels are white (from memory)
+
+
+def test_pink_noise_mean_and_rms_contrast():
+    # RMS contrast as standard deviation over mean intensity (Peli 1990).
+    img = PinkNoise(0.4, 0.25).draw(rng(1), 96, 96, 1).astype(float) / 255
+    assert img.mean() == pytest.approx(0.4, abs=0.005)
+    assert img.std() / img.mean() == pytest.approx(0.25, rel=0.03)
+    field = PinkNoise(0.4, 0.25).field(rng(1), 96, 96)
+    assert field.mean() == pytest.approx(0.4, abs=1e-12) and field.std() / field.mean() == pytest.approx(0.25)
+
+
+def test_noise_levels_and_ranges():
+    u = UniformNoise(0.2, 0.6).draw(rng(), 200, 200, 3)
+    assert u.min() >= round(0.2 * 255) and u.max() <= round(0.6 * 255)
+    assert u.astype(float).mean() / 255 == pytest.approx(0.4, abs=0.005)
+    # a uniform on [a, b] has sd (b - a) / sqrt(12) (from memory)
+    assert u.astype(float).std() / 255 == pytest.approx(0.4 / np.sqrt(12), rel=0.03)
+    assert (u[..., 0] == u[..., 2]).all()  # luminance noise: the same on every channel
+    uc = UniformNoise(0.2, 0.6, per_channel=True).draw(rng(), 50, 50, 3)
+    assert (uc[..., 0] != uc[..., 2]).mean() > 0.9
+    g = GaussianNoise(0.5, 0.1).draw(rng(), 200, 200, 1).astype(float) / 255
+    assert g.mean() == pytest.approx(0.5, abs=0.003) and g.std() == pytest.approx(0.1, rel=0.03)
+    assert GaussianNoise(0.9, 0.5).draw(rng(), 30, 30, 1).max() == 255  # clipped, not wrapped
+
+
+def test_solid_levels_and_bt601_grey():
+    s = Solid((1.0, 0.5, 0.0))
+    img = s.draw(rng(), 4, 5, 3)
+    assert img.shape == (4, 5, 3) and img.dtype == np.uint8
+    assert (img == [255, 128, 0]).all()
+    grey = s.draw(rng(), 4, 5, 1)
+    # OpenCV's RGB2GRAY uses the ITU-R BT.601 luma weights (OpenCV docs, cvtColor)
+    ref = cv2.cvtColor(img, cv2.COLOR_RGB2GRAY)
+    assert abs(int(grey[0, 0, 0]) - int(ref[0, 0])) <= 1
+    assert (Solid(0.25).draw(rng(), 2, 2, 3) == 64).all()
+    with pytest.raises(SpecError) as e:
+        Solid(1.5)
+    assert e.value.where == "background.value"
+
+
+@pytest.mark.parametrize("bg", [Solid(0.3), UniformNoise(), GaussianNoise(), PinkNoise()], ids=repr)
+def test_backgrounds_are_deterministic_per_stream(bg):
+    assert isinstance(bg, Background)
+    for channels in (1, 3):
+        a = bg.draw(rng(7), 33, 47, channels)
+        assert a.shape == (33, 47, channels) and a.dtype == np.uint8
+        np.testing.assert_array_equal(a, bg.draw(rng(7), 33, 47, channels))
+    if not isinstance(bg, Solid):
+        assert not np.array_equal(bg.draw(rng(7), 33, 47, 3), bg.draw(rng(8), 33, 47, 3))
+
+
+def _write(path: Path, img: np.ndarray) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    assert cv2.imwrite(str(path), img)
+    return path
+
+
+def test_image_folder_crops_and_enlarges(tmp_path):
+    big = np.arange(120 * 150 * 3, dtype=np.uint32).reshape(120, 150, 3).astype(np.uint8)
+    _write(tmp_path / "a_big.png", big[..., ::-1])  # written as BGR, read back as RGB
+    _write(tmp_path / "b_small.png", np.full((10, 20, 3), 77, np.uint8))
+    src = ImageFolder(tmp_path)
+    seen_big = seen_small = False
+    for seed in range(20):
+        out = src.draw(rng(seed), 64, 48, 3)
+        assert out.shape == (64, 48, 3)
+        if (out == 77).all():
+            seen_small = True
+        else:
+            # a crop is a window of the original, pixel for pixel
+            matches = [(yy, xx) for yy in range(120 - 63) for xx in range(150 - 47)
+                       if np.array_equal(big[yy:yy + 64, xx:xx + 48], out)]
+            assert matches, f"crop {seed} is not a window of the source image"
+            seen_big = True
+    assert seen_big and seen_small
+    grey = src.draw(rng(0), 64, 48, 1)
+    assert grey.shape == (64, 48, 1)
+    np.testing.assert_array_equal(src.draw(rng(5), 64, 48, 3), src.draw(rng(5), 64, 48, 3))
+
+
+def test_image_folder_errors_name_the_file(tmp_path):
+    with pytest.raises(SourceError, match="no images") as e:
+        ImageFolder(tmp_path)
+    assert e.value.where == str(tmp_path)
+    _write(tmp_path / "ok.png", np.zeros((8, 8, 3), np.uint8))
+    bad = tmp_path / "photo.jpg"
+    bad.write_bytes(b"\xff\xd8 not really a jpeg")
+    with pytest.raises(SourceError, match="not a readable image") as e:
+        ImageFolder(tmp_path)
+    assert e.value.where == str(bad) and "photo.jpg" in str(e.value)
+    bad.write_bytes(b"")
+    with pytest.raises(SourceError, match="0 bytes") as e:
+        ImageFolder(tmp_path)
+    assert e.value.where == str(bad)
