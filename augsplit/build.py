@@ -37,7 +37,8 @@ def object_source(spec: Spec, base_dir: Path):
     if o.kind == "polyomino":
         return Polyominoes(cells=o.cells, cell_px=o.cell_px, one_sided=o.one_sided, colour=_colour(o.colour), gap_px=o.gap_px)
     if o.kind == "glyphs":
-        return Glyphs(texts=o.texts, fonts=o.fonts, height_px=o.height_px, thickness=o.thickness, colour=_colour(o.colour))
+        fonts = {"fonts": o.fonts} if o.fonts is not None else {}
+        return Glyphs(texts=o.texts, height_px=o.height_px, thickness=o.thickness, colour=_colour(o.colour), **fonts)
     return SpriteFolder(_resolve(o.path, base_dir), key_colour=o.key_colour, mask_suffix=o.mask_suffix)
 
 

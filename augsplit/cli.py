@@ -36,6 +36,49 @@ def _cmd_assign(a) -> int:
     return 0
 
 
+def _shard(text: str):
+    try:
+        k, n = (int(v) for v in text.split("/"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"'{text}' is not K/N (e.g. 3/8)") from None
+    if n < 1 or not 0 <= k < n:
+        raise argparse.ArgumentTypeError(f"shard {k}/{n}: K must lie in 0..{n - 1}")
+    return (k, n)
+
+
+def _cmd_generate(a) -> int:
+    from .generate import Options, finalize, generate
+
+    if a.finalize:
+        summary = finalize(a.out)
+    else:
+        if a.spec is None:
+            raise AugsplitError("give a spec (or --finalize an existing folder)")
+        opts = Options(store=a.store, format=a.format, quality=a.quality, shard_size=a.shard_size, workers=a.workers,
+                       resume=a.resume, overwrite=a.overwrite, progress=not a.quiet, array_shard=a.shard)
+        summary = generate(a.spec, a.out, opts)
+    if "array_shard" in summary:
+        k, n = summary["array_shard"]
+        print(f"shard {k}/{n} of {a.out}: {summary['images']} images ({summary['made']} made now); "
+              f"run 'augsplit generate --finalize --out {a.out}' once every shard is done")
+    else:
+        per = ", ".join(f"{k} {v['images']}" for k, v in summary["splits"].items())
+        print(f"{a.out}: {summary['images']} images ({per}); spec {summary['spec_hash']}")
+    return 0
+
+
+def _cmd_verify(a) -> int:
+    from .verify import verify
+
+    rep = verify(a.dataset, sample=a.sample)
+    if rep.ok:
+        print(f"{a.dataset}: OK ({rep.checked} rows checked, {rep.rerendered} re-rendered identically)")
+        return 0
+    for p in rep.problems:
+        print(f"{a.dataset}: {p}")
+    return 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
@@ -52,6 +95,27 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--out", help="where to write the labelled table (default: <table>.assigned.<ext>)")
     q.add_argument("--ref-size", type=float, default=None, help="native object size in px, to derive scale from bboxes")
     q.set_defaults(run=_cmd_assign)
+
+    q = sub.add_parser("generate", help="render the dataset a spec describes, with its Parquet manifest")
+    q.add_argument("spec", nargs="?", help="YAML spec, or 'demo'")
+    q.add_argument("--out", required=True, help="output folder")
+    q.add_argument("--store", choices=["files", "parquet", "none"], default="files",
+                   help="image files, encoded images inside the Parquet rows, or none (the manifest re-makes them)")
+    q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
+    q.add_argument("--quality", type=int, default=95, help="JPEG/WebP quality")
+    q.add_argument("--workers", type=int, default=1, help="local worker processes")
+    q.add_argument("--shard-size", type=int, default=500, help="images per shard (one manifest part each)")
+    q.add_argument("--resume", action="store_true", help="continue an interrupted run")
+    q.add_argument("--overwrite", action="store_true", help="replace an existing dataset folder")
+    q.add_argument("--shard", type=_shard, default=None, metavar="K/N", help="make only job-array shard K of N")
+    q.add_argument("--finalize", action="store_true", help="check all shards are present and write the summary")
+    q.add_argument("--quiet", action="store_true", help="no progress bar")
+    q.set_defaults(run=_cmd_generate)
+
+    q = sub.add_parser("verify", help="check a dataset folder against its spec; exit 1 on any difference")
+    q.add_argument("dataset")
+    q.add_argument("--sample", type=int, default=None, help="re-render only this many random rows")
+    q.set_defaults(run=_cmd_verify)
     return p
 
 

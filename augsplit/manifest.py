@@ -8,9 +8,13 @@ canonical spec, its hash and package versions in its Parquet key-value metadata,
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass
+from pathlib import Path
 
+import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 
 @dataclass(frozen=True)
@@ -31,7 +35,7 @@ AXIS_COLUMNS = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "hue"
 
 IMAGE_COLUMNS: tuple[Column, ...] = (
     _c("image_id", pa.string(), "", "unique id '<split>-<index:07d>'; predictions join on it"),
-    _c("split", pa.string(), "", "split name (also the partition folder)"),
+    _c("split", pa.string(), "", "split name: the partition folder split=<name>, not stored inside the files"),
     _c("split_index", pa.int32(), "", "position of the split in the spec (part of the seed key)"),
     _c("index", pa.int64(), "", "image number within the split (part of the seed key)"),
     _c("seed", pa.int64(), "", "the spec seed; the image's stream is SeedSequence(seed, spawn_key=(split_index, index, purpose))"),
@@ -73,7 +77,7 @@ IMAGE_COLUMNS: tuple[Column, ...] = (
 
 DISTRACTOR_COLUMNS: tuple[Column, ...] = (
     _c("image_id", pa.string(), "", "the scene's image id"),
-    _c("split", pa.string(), "", "split name"),
+    _c("split", pa.string(), "", "split name (partition folder)"),
     _c("k", pa.int16(), "", "distractor number within the scene"),
     _c("class_name", pa.string(), "", "object class"),
     _c("class_index", pa.int32(), "", "class number"),
@@ -94,6 +98,93 @@ DISTRACTOR_COLUMNS: tuple[Column, ...] = (
     _c("visible_fraction", pa.float32(), "", "visible share"),
 )
 
-IMAGE_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in IMAGE_COLUMNS])
-DISTRACTOR_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in DISTRACTOR_COLUMNS])
+PARTITION = "split"  # the partition key lives in folder names, so it is not a file column
+IMAGE_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in IMAGE_COLUMNS if c.name != PARTITION])
+DISTRACTOR_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in DISTRACTOR_COLUMNS if c.name != PARTITION])
 UNITS = {c.name: c.unit for c in IMAGE_COLUMNS}
+
+# ---- dataset layout ---------------------------------------------------------------------------
+
+MANIFEST_DIR, DISTRACTOR_DIR, IMAGES_DIR = "manifest", "distractors", "images"
+SUMMARY_FILE, SPEC_FILE = "dataset.json", "spec.json"
+META_SPEC, META_HASH, META_VERSIONS = b"augsplit.spec", b"augsplit.spec_hash", b"augsplit.versions"
+
+
+def part_path(root: Path, table: str, split: str, shard: int) -> Path:
+    """Where one shard's rows of one table go: <root>/<table>/split=<name>/part-<shard>.parquet."""
+    return Path(root) / table / f"{PARTITION}={split}" / f"part-{shard:06d}.parquet"
+
+
+def versions() -> dict:
+    import sys
+
+    import cv2
+    import numpy
+
+    from . import __version__
+
+    return {"augsplit": __version__, "numpy": numpy.__version__, "opencv": cv2.__version__,
+            "pyarrow": pa.__version__, "python": sys.version.split()[0]}
+
+
+def file_metadata(canonical_spec: str, spec_hash: str) -> dict[bytes, bytes]:
+    return {META_SPEC: canonical_spec.encode(), META_HASH: spec_hash.encode(),
+            META_VERSIONS: json.dumps(versions(), sort_keys=True).encode()}
+
+
+def to_table(columns: dict, schema: pa.Schema, metadata: dict[bytes, bytes]) -> pa.Table:
+    """Columns (name -> array/list) conformed to the schema; absent columns become nulls."""
+    n = len(next(iter(columns.values()))) if columns else 0
+    arrays = []
+    for f in schema:
+        if f.name in columns:
+            arrays.append(pa.array(columns[f.name], type=f.type, from_pandas=True))
+        else:
+            arrays.append(pa.nulls(n, type=f.type))
+    return pa.Table.from_arrays(arrays, schema=schema.with_metadata(metadata))
+
+
+def write_part(path: Path, table: pa.Table) -> None:
+    """One shard's rows as one Parquet file, written under a temporary name and renamed."""
+    from .io import atomic_path
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with atomic_path(path) as tmp:
+        pq.write_table(table, tmp, compression="zstd", row_group_size=max(1, table.num_rows))
+
+
+def part_files(root: Path, table: str = MANIFEST_DIR) -> list[Path]:
+    return sorted((Path(root) / table).glob(f"{PARTITION}=*/part-*.parquet"))
+
+
+def read_manifest(root: str | Path, table: str = MANIFEST_DIR, splits=None, columns=None) -> pd.DataFrame:
+    """All rows of a dataset's table as a DataFrame, with `split` as a plain string column,
+    ordered by split (spec order) and image index."""
+    root = Path(root)
+    files = part_files(root, table)
+    if splits is not None:
+        files = [f for f in files if f.parent.name.split("=", 1)[1] in set(splits)]
+    schema = IMAGE_SCHEMA if table == MANIFEST_DIR else DISTRACTOR_SCHEMA
+    frames = []
+    for f in files:
+        t = pq.read_table(f, columns=[c for c in columns if c != PARTITION] if columns else None)
+        df = t.to_pandas()
+        df.insert(0, PARTITION, f.parent.name.split("=", 1)[1])
+        frames.append(df)
+    if not frames:
+        names = [PARTITION] + [f.name for f in schema]
+        return pd.DataFrame({n: pd.Series(dtype=object) for n in (columns or names)})
+    df = pd.concat(frames, ignore_index=True)
+    sort = [c for c in ("split_index", "index", "k") if c in df.columns]
+    return df.sort_values(sort, kind="stable").reset_index(drop=True) if sort else df
+
+
+def read_metadata(root: str | Path) -> dict:
+    """The spec (as a dict), its hash and the package versions from the first part file."""
+    files = part_files(root)
+    if not files:
+        return {}
+    md = pq.read_schema(files[0]).metadata or {}
+    return {"spec": json.loads(md[META_SPEC]) if META_SPEC in md else None,
+            "spec_hash": md.get(META_HASH, b"").decode(),
+            "versions": json.loads(md[META_VERSIONS]) if META_VERSIONS in md else {}}

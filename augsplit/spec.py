@@ -73,7 +73,7 @@ class PolyominoSpec(Model):
 class GlyphSpec(Model):
     kind: Literal["glyphs"]
     texts: list[str] = Field(min_length=1)
-    fonts: list[Literal["simplex", "plain", "duplex", "complex", "triplex", "complex_small", "script_simplex", "script_complex"]] = ["simplex", "duplex", "complex", "triplex"]
+    fonts: list[Literal["simplex", "plain", "duplex", "complex", "triplex", "complex_small", "script_simplex", "script_complex"]] | None = None
     height_px: PosInt = 20
     thickness: PosInt = 2
     colour: Colour = (255, 255, 255)
@@ -133,7 +133,6 @@ class AxisSpec(Model):
 class DistractorSpec(Model):
     count: tuple[NonNegInt, NonNegInt] = (0, 0)
     no_overlap: bool = True
-    scale: tuple[PosFloat, PosFloat] = (1.0, 1.0)
     attempts: PosInt = 50
 
 

@@ -34,7 +34,11 @@ def split_data(plan: Plan, s: SplitPlan) -> dict:
             else:
                 box[ax.name] = _interval(ax, s.region.lo[k, i], s.region.hi[k, i])
         boxes.append(box)
+    product = 1.0
+    for i, ax in enumerate(space.axes):
+        product *= sum(b - a for a, b in projection(s.region, i)) / space.t_span[i]
     out = {"name": s.name, "index": s.index, "role": s.role, "kind": s.kind, "mass": s.region.mass(),
+           "is_product": abs(product - s.region.mass()) < 1e-9,
            "images": s.total, "per_class": classes, "instances": s.instances, "axes": axes, "boxes": boxes}
     if s.evidence:
         out["evidence"] = {"shared_mass_fraction": s.evidence.get("shared_mass_fraction"),
@@ -63,6 +67,9 @@ def plan_data(plan: Plan) -> dict:
     }
 
 
+MAX_BOXES = 8
+
+
 def plan_text(plan: Plan) -> str:
     d = plan_data(plan)
     lines = [f"spec {d['spec_hash']}  seed {d['seed']}  canvas {d['canvas']['width']}x{d['canvas']['height']}  "
@@ -78,10 +85,20 @@ def plan_text(plan: Plan) -> str:
         for n, a in s["axes"].items():
             ivs = "  ".join(_fmt(iv) for iv in a["intervals"])
             lines.append(f"  {n:<13} {ivs} {a['unit']}".rstrip())
+        if not s["is_product"]:
+            lines.append(f"  not a product of the above: {len(s['boxes'])} boxes, e.g.")
+            for b in s["boxes"][:MAX_BOXES]:
+                parts = [f"{n} {_fmt(iv)}" for n, iv in b.items() if n != "classes" and iv != d["axes"][n]["range"]
+                         and not (isinstance(iv, dict) and len(iv["levels"]) == len(d["axes"][n].get("levels", iv["levels"])))]
+                cl = b["classes"]
+                who = f"  [{', '.join(cl)}]" if len(cl) < len(d["classes"]) else ""
+                lines.append(f"    {', '.join(parts) or 'everything'}{who}")
+            if len(s["boxes"]) > MAX_BOXES:
+                lines.append(f"    ... {len(s['boxes']) - MAX_BOXES} more (see --json)")
         if s["kind"] not in ("train", "random") and s.get("evidence", {}).get("unseen"):
             unseen = "; ".join(f"{n} {' '.join(_fmt(iv) for iv in ivs)}" for n, ivs in s["evidence"]["unseen"].items())
             lines.append(f"  never seen in training: {unseen}")
-        if len(s["per_class"]) < len(d["classes"]) or len(set(map(tuple, (b.get('classes', []) for b in s['boxes'])))) > 1:
+        if len(s["per_class"]) < len(d["classes"]):
             lines.append(f"  classes: {', '.join(s['per_class'])}")
     for g in d["guarantees"]:
         pc = " per class" if g["per_class"] else ""

@@ -39,12 +39,17 @@ class SplitPlan:
     instances: str  # "seen" | "unseen" | "all"
     evidence: dict = field(default_factory=dict, compare=False)
 
+    def __post_init__(self):
+        parts = tuple(self.region.restrict(CLASS, c - 0.5, c + 0.5) for c in range(len(self.counts)))
+        object.__setattr__(self, "_class_regions", parts)
+
     @property
     def total(self) -> int:
         return int(sum(self.counts))
 
     def class_region(self, c: int) -> Region:
-        return self.region.restrict(CLASS, c - 0.5, c + 0.5)
+        """The split's region for one class (what images of that class are drawn from)."""
+        return self._class_regions[c]
 
     def __repr__(self) -> str:
         return (f"SplitPlan({self.name!r}, role={self.role}, kind={self.kind}, images={self.total}, "

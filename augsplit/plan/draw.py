@@ -1,0 +1,101 @@
+"""Per-image parameters: (plan, split, image index) -> class, instance and every axis value.
+
+Image i of a split takes its class from the split's per-class blocks (classes in order,
+counts from the plan), its instance round-robin over the class's allowed instances, and its
+transform from the first draws of its own stream (see space/sample.py), through exact
+sampling of the split's region for that class. Nothing depends on which other images are
+drawn, so any subset, in any order, on any worker, gives the same values.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..space.sample import image_uniforms, sample_t
+from .planner import Plan, SplitPlan
+from .regions import CLASS
+
+DEFAULTS = {"scale": 1.0, "angle": 0.0, "hue": 0.0, "saturation": 1.0, "brightness": 1.0, "mirror": 0.0}
+POSITION = ("x", "y", "eccentricity", "polar_angle")
+
+
+def class_of(split: SplitPlan, indices: np.ndarray) -> np.ndarray:
+    """Class index of each image index (per-class blocks in class order)."""
+    ends = np.cumsum(split.counts)
+    idx = np.asarray(indices, dtype=np.int64)
+    if idx.size and (idx.min() < 0 or idx.max() >= ends[-1]):
+        raise IndexError(f"image index out of range for split '{split.name}' (0..{int(ends[-1]) - 1})")
+    return np.searchsorted(ends, idx, side="right")
+
+
+def params_from_t(plan: Plan, t: np.ndarray) -> dict[str, np.ndarray]:
+    """Points in t (N, ndim) -> value columns for every built-in axis, plus positions in px/deg."""
+    space, canvas = plan.space, plan.canvas
+    n = len(t)
+    vals = {name: space[name].from_t(t[:, i]) for i, name in enumerate(space.names) if name != CLASS}
+    out: dict[str, np.ndarray] = {}
+    for name in POSITION:
+        out[name] = vals.get(name, np.full(n, np.nan))
+    for name, d in DEFAULTS.items():
+        out[name] = vals.get(name, np.full(n, d))
+    cx, cy = canvas.centre
+    if "eccentricity" in space:
+        r = canvas.radius_to_px(space["eccentricity"].unit, out["eccentricity"])
+        px, py = canvas.polar_to_px(r, out["polar_angle"])
+    else:
+        px = canvas.to_px("x", space["x"].unit, out["x"]) if "x" in space else np.full(n, cx)
+        py = canvas.to_px("y", space["y"].unit, out["y"]) if "y" in space else np.full(n, cy)
+    out["cx_px"], out["cy_px"] = np.asarray(px, float), np.asarray(py, float)
+    if canvas.viewing is not None:
+        v = canvas.viewing
+        out["x_deg"] = v.offset_to_deg(out["cx_px"] - cx)
+        out["y_deg"] = v.offset_to_deg(out["cy_px"] - cy)
+        out["eccentricity_deg"] = v.offset_to_deg(np.hypot(out["cx_px"] - cx, out["cy_px"] - cy))
+    else:
+        out["x_deg"] = out["y_deg"] = out["eccentricity_deg"] = np.full(n, np.nan)
+    out["mirror"] = np.rint(out["mirror"]).astype(np.int8)
+    return out
+
+
+def draw(plan: Plan, split: SplitPlan | str, indices) -> dict[str, np.ndarray]:
+    """Columns for the given image indices of a split (see the module docstring)."""
+    split = plan.split(split) if isinstance(split, str) else split
+    idx = np.asarray(indices, dtype=np.int64).ravel()
+    cls = class_of(split, idx)
+    starts = np.concatenate([[0], np.cumsum(split.counts)[:-1]])
+    inst = np.empty(len(idx), dtype=np.int32)
+    for c in np.unique(cls):
+        rows = np.flatnonzero(cls == c)
+        ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
+        inst[rows] = ids[(idx[rows] - starts[c]) % len(ids)]
+    u = image_uniforms(plan.spec.seed, split.index, idx, plan.space.ndim + 1)
+    return _columns(plan, split, idx, cls, inst, u)
+
+
+def draw_online(plan: Plan, split: SplitPlan | str, u: np.ndarray, indices=None) -> dict[str, np.ndarray]:
+    """Columns for fresh draws (online augmentation): uniforms u (N, ndim + 3) pick the class
+    (in proportion to the split's per-class counts), the instance, then the transform."""
+    split = plan.split(split) if isinstance(split, str) else split
+    u = np.asarray(u, dtype=float).reshape(-1, plan.space.ndim + 3)
+    w = np.cumsum(np.asarray(split.counts, dtype=float))
+    cls = np.minimum(np.searchsorted(w / w[-1], u[:, 0], side="right"), len(w) - 1)
+    inst = np.empty(len(u), dtype=np.int32)
+    for c in np.unique(cls):
+        rows = np.flatnonzero(cls == c)
+        ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
+        inst[rows] = ids[np.minimum((u[rows, 1] * len(ids)).astype(np.int64), len(ids) - 1)]
+    idx = np.arange(len(u), dtype=np.int64) if indices is None else np.asarray(indices, dtype=np.int64)
+    return _columns(plan, split, idx, cls, inst, u[:, 2:])
+
+
+def _columns(plan, split, idx, cls, inst, u) -> dict[str, np.ndarray]:
+    t = np.empty((len(idx), plan.space.ndim))
+    for c in np.unique(cls):
+        rows = np.flatnonzero(cls == c)
+        t[rows], _ = sample_t(split.class_region(int(c)), u[rows])
+    out = params_from_t(plan, t)
+    seen = np.array([i in plan.instances[c] for c, i in zip(cls.tolist(), inst.tolist())], dtype=bool)
+    out.update(index=idx, class_index=cls.astype(np.int32), instance=inst, instance_seen=seen,
+               cell=split.region.box_of_t(t).astype(np.int32))
+    out["class_name"] = np.array([plan.classes[c] for c in cls], dtype=object)
+    return out

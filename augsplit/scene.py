@@ -1,0 +1,93 @@
+"""One image from one manifest row: background, target object, distractors.
+
+Everything random about an image beyond its transform (background noise, distractors)
+comes from the image's render stream, `image_rng(seed, split_index, index, RENDER)`, so the
+image can be re-made from its manifest row alone, on any machine, in any order.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+
+from .plan import Plan, SplitPlan
+from .plan.draw import draw_online
+from .render import Placed, RenderParams, footprint, masks_overlap, render
+from .space.sample import RENDER, image_rng
+
+PARAM_KEYS = ("cx_px", "cy_px", "scale", "angle", "mirror", "hue", "saturation", "brightness")
+
+
+@dataclass(frozen=True, eq=False)
+class Scene:
+    image: np.ndarray  # (H, W, C) uint8, RGB or grey
+    target: Placed
+    distractors: list  # dicts of distractor columns (see manifest.DISTRACTOR_COLUMNS)
+    distractor_placed: list
+
+
+def render_params(row) -> RenderParams:
+    return RenderParams(float(row["cx_px"]), float(row["cy_px"]), float(row["scale"]), float(row["angle"]),
+                        bool(row["mirror"]), float(row["hue"]), float(row["saturation"]), float(row["brightness"]))
+
+
+def make_scene(plan: Plan, source, background, split: SplitPlan, row) -> Scene:
+    """Render the image of one row (a mapping with class_index, instance, index and PARAM_KEYS)."""
+    spec = plan.spec
+    h, w = spec.canvas.height, spec.canvas.width
+    channels = 1 if spec.canvas.mode == "gray" else 3
+    thr = spec.render.alpha_threshold
+    rng = image_rng(spec.seed, split.index, int(row["index"]), RENDER)
+    bg = background.draw(rng, h, w, channels)
+    target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
+    placements = [target]
+    extra: list[dict] = []
+    d = spec.render.distractors
+    if d.count[1] > 0:
+        want = int(rng.integers(d.count[0], d.count[1] + 1))
+        taken = [footprint(target[0], target[1], (h, w), thr)]
+        for _ in range(want):
+            for _attempt in range(d.attempts):
+                u = rng.random((1, plan.space.ndim + 3))
+                cols = draw_online(plan, split, u)
+                r = {k: v[0] for k, v in cols.items()}
+                sp, rp = source.sprite(int(r["class_index"]), int(r["instance"])), render_params(r)
+                fp = footprint(sp, rp, (h, w), thr)
+                if d.no_overlap and any(masks_overlap(fp, t) for t in taken):
+                    continue
+                taken.append(fp)
+                placements.append((sp, rp))
+                extra.append(r)
+                break
+    image, placed = render(bg, placements, thr)
+    rows = []
+    for k, (r, p) in enumerate(zip(extra, placed[1:])):
+        rows.append({"k": k, "class_name": r["class_name"], "class_index": int(r["class_index"]),
+                     "instance": int(r["instance"]), **{key: r[key] for key in PARAM_KEYS},
+                     **placed_columns(p)})
+    return Scene(image, placed[0], rows, placed[1:])
+
+
+def placed_columns(p: Placed) -> dict:
+    x0, y0, x1, y1 = p.bbox
+    return {"bbox_x0": x0, "bbox_y0": y0, "bbox_x1": x1, "bbox_y1": y1,
+            "footprint_px": p.footprint_px, "visible_fraction": p.visible_fraction}
+
+
+def pixel_sha256(image: np.ndarray) -> str:
+    return hashlib.sha256(np.ascontiguousarray(image).tobytes()).hexdigest()
+
+
+@lru_cache(maxsize=4096)
+def native_diameter(sprite, alpha_threshold: float) -> float:
+    """Twice the largest distance from the anchor to a corner of a pixel above the threshold."""
+    rows, cols = np.nonzero(sprite.rgba[..., 3] > alpha_threshold * 255)
+    if rows.size == 0:
+        return 0.0
+    ax, ay = sprite.anchor
+    dx = np.maximum(np.abs(cols - ax), np.abs(cols + 1 - ax))
+    dy = np.maximum(np.abs(rows - ay), np.abs(rows + 1 - ay))
+    return float(2.0 * np.sqrt(dx * dx + dy * dy).max())
