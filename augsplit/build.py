@@ -64,10 +64,10 @@ def footprint_at(sprite, cx, cy, scale, angle, mirror, hw, alpha_threshold: floa
     return footprint(sprite, RenderParams(float(cx), float(cy), float(scale), float(angle), bool(mirror)), hw, alpha_threshold)
 
 
-def build(spec: Spec, base_dir: Path) -> Built:
+def build(spec: Spec, base_dir: Path, strict: bool = True) -> Built:
     source = object_source(spec, base_dir)
     thr = spec.render.alpha_threshold
-    plan = make_plan(spec, source, lambda s, cx, cy, sc, a, m, hw: footprint_at(s, cx, cy, sc, a, m, hw, thr))
+    plan = make_plan(spec, source, lambda s, cx, cy, sc, a, m, hw: footprint_at(s, cx, cy, sc, a, m, hw, thr), strict)
     return Built(spec, base_dir, source, background(spec, base_dir), plan)
 
 
@@ -76,6 +76,6 @@ def open_spec(path: str | Path) -> Built:
     return build(spec, base_dir)
 
 
-def open_mapping(data: dict, base_dir: str | Path = ".") -> Built:
+def open_mapping(data: dict, base_dir: str | Path = ".", strict: bool = True) -> Built:
     """As open_spec, for a spec already in memory (tests, notebooks)."""
-    return build(parse_spec(data), Path(base_dir))
+    return build(parse_spec(data), Path(base_dir), strict)

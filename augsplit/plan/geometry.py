@@ -1,9 +1,10 @@
 """Footprint geometry: object extents, position sets in pixels, and distances between them.
 
-Conservative by construction, so a "disjoint" verdict is a proof: the object's support is
-bounded by a disc about its anchor (bilinear sampling reaches one source pixel past any
-pixel with alpha > 0), and position sets are polygons that contain the true sets (a polar
-sector's outer arc is circumscribed, its inner arc replaced by chords).
+Conservative by construction, so a "disjoint" verdict is a proof: the object's footprint is
+bounded by a disc about its anchor (see `bilinear_reach` for how far past a pixel with
+alpha > 0 bilinear sampling can still exceed the threshold), and position sets are polygons
+that contain the true sets (a polar sector's outer arc is circumscribed, its inner arc
+replaced by chords).
 """
 
 from __future__ import annotations
@@ -23,19 +24,28 @@ ARC_SEGMENTS_PER_TURN = 256
 WARP_SLACK_PX = 0.25
 
 
-def support_radius(rgba: np.ndarray, anchor: tuple[float, float]) -> float:
-    """Largest distance from the anchor to the bilinear support of the pixels with alpha > 0.
+def bilinear_reach(alpha_threshold: float) -> float:
+    """How far from the nearest pixel centre with alpha > 0 a point can lie and still get an
+    interpolated alpha above the threshold.
 
-    A destination pixel gets alpha > 0 only if its preimage lies within L-inf distance 1 of
-    a source pixel centre with alpha > 0; the farthest such point is a corner of that 2x2 square.
+    Bilinear weights of a point's four neighbour centres sum to 1, so if the point's alpha
+    exceeds t, some neighbour with alpha > 0 carries weight >= t/4, i.e. (1-|dx|)(1-|dy|) >= t/4.
+    The largest sqrt(dx^2 + dy^2) on that set is at dx = dy = 1 - sqrt(t/4) or on an axis at
+    1 - t/4; we take the larger. (t = 0 gives the whole 2 x 2 square: sqrt 2.)
     """
+    w = max(alpha_threshold, 0.0) / 4.0
+    return max(math.sqrt(2.0) * (1.0 - math.sqrt(w)), 1.0 - w)
+
+
+def support_radius(rgba: np.ndarray, anchor: tuple[float, float], alpha_threshold: float = 0.0) -> float:
+    """Largest distance from the anchor at which the warped sprite can have alpha above the
+    threshold, in source pixels (multiply by the scale for canvas pixels)."""
     rows, cols = np.nonzero(rgba[..., 3] > 0)
     if rows.size == 0:
         return 0.0
     ax, ay = anchor
-    dx = np.abs(cols + 0.5 - ax) + 1.0
-    dy = np.abs(rows + 0.5 - ay) + 1.0
-    return float(np.sqrt(dx * dx + dy * dy).max())
+    d = np.hypot(cols + 0.5 - ax, rows + 0.5 - ay)
+    return float(d.max() + bilinear_reach(alpha_threshold))
 
 
 @dataclass(frozen=True)

@@ -92,16 +92,18 @@ def canvas_of(spec: Spec) -> Canvas:
     return Canvas(spec.canvas.width, spec.canvas.height, v)
 
 
-def make_plan(spec: Spec, source, footprint_at=None) -> Plan:
+def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Plan:
     """Plan every split and prove every guarantee. `source` is an ObjectSource; `footprint_at`
-    (the renderer's footprint function) is used only to find witnesses for refusals."""
+    (the renderer's footprint function) is used only to find witnesses for refusals. With
+    strict=False a refused guarantee is kept in `plan.verdicts` instead of raising."""
     canvas = canvas_of(spec)
     classes = tuple(source.classes)
     if not classes:
         raise SpecError("the object source has no classes", where="objects")
     space = build_space(spec, canvas, classes)
     seen, unseen = _instances(spec, source, classes)
-    radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor)
+    thr = spec.render.alpha_threshold
+    radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
                               for i in seen[c] + unseen[c]) for c in range(len(classes))])
 
     regions: dict[str, Region] = {}
@@ -148,7 +150,7 @@ def make_plan(spec: Spec, source, footprint_at=None) -> Plan:
                         f"auto_guard removed {removed:.1%} of {b}'s region; then {v2.message}")
             if regions[b].is_empty():
                 raise GuaranteeError(f"auto_guard removed all of {b}'s region", where=where)
-        if not v.ok:
+        if not v.ok and strict:
             raise GuaranteeError(v.message, where=where,
                                  hint="move the regions apart, lower the largest scale, or set auto_guard: true")
         verdicts.append(v)
@@ -213,7 +215,8 @@ def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
     out = []
     for c in range(len(classes)):
         ids = seen[c] if mode == "seen" else unseen[c] if mode == "unseen" else seen[c] + unseen[c]
-        out.append(max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor) for i in ids))
+        thr = spec.render.alpha_threshold
+        out.append(max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr) for i in ids))
     return np.array(out)
 
 
