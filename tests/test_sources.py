@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import pickle
 from pathlib import Path
 
 import cv2
@@ -132,6 +133,13 @@ def test_sprite_is_read_only_and_rejects_transparent_patches():
     assert sp.radius == pytest.approx(np.hypot(1.5, 1.0))
     with pytest.raises(SourceError, match="fully transparent"):
         Sprite.from_rgba(np.full((3, 3, 4), [9, 9, 9, 127], np.uint8), "a", 0, 0, where="x.png")
+    # sprites travel to worker processes by pickle: same values, still read-only, no float caches
+    sp.premultiplied
+    back = pickle.loads(pickle.dumps(sp))
+    np.testing.assert_array_equal(back.rgba, sp.rgba)
+    assert back.anchor == sp.anchor and (back.class_name, back.class_index, back.instance) == ("a", 0, 0)
+    assert not back.rgba.flags.writeable and "premultiplied" not in back.__dict__
+    np.testing.assert_array_equal(back.premultiplied, sp.premultiplied)
 
 
 # --- glyphs ---------------------------------------------------------------------------------

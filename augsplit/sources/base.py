@@ -41,6 +41,14 @@ class Sprite:
         object.__setattr__(self, "rgba", rgba)
         object.__setattr__(self, "anchor", (float(self.anchor[0]), float(self.anchor[1])))
 
+    def __getstate__(self):
+        # Only the fields travel (to worker processes); the float caches are rebuilt on demand.
+        return {k: self.__dict__[k] for k in ("rgba", "anchor", "class_name", "class_index", "instance")}
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self.rgba.flags.writeable = False
+
     @classmethod
     def from_rgba(cls, rgba: np.ndarray, class_name: str, class_index: int, instance: int,
                   where: str | None = None) -> "Sprite":
