@@ -75,6 +75,11 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
             x0, y0, x1, y1 = bbox
             out[n] = np.sqrt(np.maximum(x1 - x0, 0) * np.maximum(y1 - y0, 0)) / ref_size
             continue
+        i = plan.space.index[n]
+        if all(np.all(sp.region.lo[:, i] <= plan.space.t_lo[i] + 1e-12) and np.all(sp.region.hi[:, i] >= plan.space.t_hi[i] - 1e-12)
+               for sp in plan.splits):
+            out[n] = ax.from_t(np.full(len(df), (plan.space.t_lo[i] + plan.space.t_hi[i]) / 2.0))  # no split depends on it
+            continue
         need = f"'{n}'" + (" (or bbox columns)" if n in ("x", "y", "eccentricity", "polar_angle", "scale") else "")
         raise DatasetError(f"the table has no column {need}; its columns are {', '.join(map(str, df.columns))}", where=where)
     return out

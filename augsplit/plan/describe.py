@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from ..space.axes import LEVELS
 from .kinds import projection
 from .planner import Plan, SplitPlan
@@ -46,15 +48,21 @@ def split_data(plan: Plan, s: SplitPlan) -> dict:
     return out
 
 
-def plan_data(plan: Plan) -> dict:
-    def clean(v):
-        if isinstance(v, float) and not math.isfinite(v):
-            return None
-        if isinstance(v, dict):
-            return {k: clean(x) for k, x in v.items()}
-        return v
+def plain(v):
+    """Numpy scalars -> Python, non-finite floats -> None, recursively (JSON-safe)."""
+    if isinstance(v, dict):
+        return {str(k): plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [plain(x) for x in v]
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    return v
 
-    return {
+
+def plan_data(plan: Plan) -> dict:
+    return plain({
         "spec_hash": plan.hash,
         "seed": plan.spec.seed,
         "canvas": {"width": plan.canvas.width, "height": plan.canvas.height},
@@ -63,8 +71,8 @@ def plan_data(plan: Plan) -> dict:
                  for ax in plan.space.axes if ax.name != CLASS},
         "splits": [split_data(plan, s) for s in plan.splits],
         "guarantees": [{"disjoint": v.kind, "between": list(v.between), "per_class": v.per_class,
-                        "verdict": v.status, "numbers": clean(v.numbers), "message": v.message} for v in plan.verdicts],
-    }
+                        "verdict": v.status, "numbers": v.numbers, "message": v.message} for v in plan.verdicts],
+    })
 
 
 MAX_BOXES = 8

@@ -258,7 +258,7 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
 
 def _guard_region(g, space, canvas, A, B, ra, rb) -> Region:
     if g.disjoint == "parameters":
-        return dilate_parameters(space, A, max(g.margin, 1e-9), g.per_class)
+        return dilate_parameters(space, A, max(g.margin, 1e-9) * (1 + 1e-9), g.per_class)
     gaps = footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)
     grow = np.zeros(A.nbox)
     for gp in gaps:
