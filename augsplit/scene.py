@@ -34,13 +34,17 @@ def render_params(row) -> RenderParams:
                         bool(row["mirror"]), float(row["hue"]), float(row["saturation"]), float(row["brightness"]))
 
 
-def make_scene(plan: Plan, source, background, split: SplitPlan, row) -> Scene:
-    """Render the image of one row (a mapping with class_index, instance, index and PARAM_KEYS)."""
+def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.random.Generator | None = None) -> Scene:
+    """Render the image of one row (a mapping with class_index, instance, index and PARAM_KEYS).
+
+    `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
+    fresh draw never reuses the background of the generated image with the same index)."""
     spec = plan.spec
     h, w = spec.canvas.height, spec.canvas.width
     channels = 1 if spec.canvas.mode == "gray" else 3
     thr = spec.render.alpha_threshold
-    rng = image_rng(spec.seed, split.index, int(row["index"]), RENDER)
+    if rng is None:
+        rng = image_rng(spec.seed, split.index, int(row["index"]), RENDER)
     bg = background.draw(rng, h, w, channels)
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]
