@@ -63,7 +63,7 @@ class Glyphs(SpriteTable):
 
     def __init__(self, texts: Sequence[str], fonts: Sequence[str] = DEFAULT_FONTS,
                  height_px: int = 20, thickness: int = 2, colour=(255, 255, 255)):
-        texts = tuple(texts) if not isinstance(texts, str) else tuple(texts)  # "ABC" means A, B, C
+        texts = tuple(texts)  # a plain string "ABC" means the classes "A", "B", "C"
         fonts = (fonts,) if isinstance(fonts, str) else tuple(fonts)
         if not texts:
             raise SpecError("needs at least one text", where="objects.texts")
