@@ -1,0 +1,242 @@
+"""Pixel footprint overlap: which test objects cover a pixel some train object of their class covers.
+
+Train footprints of each class are summed into a small coverage map (H x W). A summed-area
+table of it answers "does this test bbox touch covered pixels?" in O(1) per row; only rows
+that do and that have a mask are checked pixel by pixel. Rows without a mask are their bbox.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DatasetError
+from .result import FAIL, PASS, WARN, CheckResult, ids_at, top_rows
+
+MaskLoader = Callable[[int], "np.ndarray | None"]
+
+
+def clip_boxes(bbox: np.ndarray, hw: tuple[int, int]) -> np.ndarray:
+    """(N, 4) boxes x0, y0, x1, y1 (x1, y1 one past the end) clipped to an H x W canvas."""
+    h, w = hw
+    b = np.asarray(bbox, dtype=np.int64).reshape(-1, 4).copy()
+    b[:, [0, 2]] = np.clip(b[:, [0, 2]], 0, w)
+    b[:, [1, 3]] = np.clip(b[:, [1, 3]], 0, h)
+    b[:, 2] = np.maximum(b[:, 2], b[:, 0]); b[:, 3] = np.maximum(b[:, 3], b[:, 1])
+    return b
+
+
+def box_counts(bbox: np.ndarray, hw: tuple[int, int], groups: np.ndarray | None = None,
+               n_groups: int = 1) -> np.ndarray:
+    """How many boxes cover each pixel, per group: (n_groups, H, W) int64.
+
+    2-D difference array (+1 at two corners, -1 at the other two) and two cumulative sums,
+    so the cost is O(N + groups x H x W) whatever the box sizes.
+    """
+    h, w = hw
+    b = clip_boxes(bbox, hw)
+    g = np.zeros(len(b), np.int64) if groups is None else np.asarray(groups, np.int64)
+    size = n_groups * (h + 1) * (w + 1)
+
+    def at(y, x):
+        return np.bincount(g * (h + 1) * (w + 1) + y * (w + 1) + x, minlength=size)
+
+    diff = at(b[:, 1], b[:, 0]) + at(b[:, 3], b[:, 2]) - at(b[:, 1], b[:, 2]) - at(b[:, 3], b[:, 0])
+    diff = diff.reshape(n_groups, h + 1, w + 1)
+    return np.cumsum(np.cumsum(diff, axis=1), axis=2)[:, :h, :w]
+
+
+def summed_area(binary: np.ndarray) -> np.ndarray:
+    """(H, W) -> (H+1, W+1) table S with S[y, x] = sum of binary[:y, :x]."""
+    s = np.zeros((binary.shape[0] + 1, binary.shape[1] + 1), dtype=np.int64)
+    np.cumsum(np.cumsum(binary, axis=0, dtype=np.int64), axis=1, out=s[1:, 1:])
+    return s
+
+
+def box_sums(sat: np.ndarray, bbox: np.ndarray) -> np.ndarray:
+    """Sum of the underlying map inside each (clipped) box, from its summed-area table."""
+    b = np.asarray(bbox, dtype=np.int64)
+    return sat[b[:, 3], b[:, 2]] - sat[b[:, 1], b[:, 2]] - sat[b[:, 3], b[:, 0]] + sat[b[:, 1], b[:, 0]]
+
+
+def _mask_crop(mask_loader: MaskLoader, row: int, raw_box: np.ndarray, hw) -> np.ndarray | None:
+    """The row's mask cut to the canvas, as bool; None when the loader has no mask for it."""
+    m = mask_loader(int(row))
+    if m is None:
+        return None
+    m = np.asarray(m).astype(bool, copy=False)
+    x0, y0, x1, y1 = (int(v) for v in raw_box)
+    if m.shape != (y1 - y0, x1 - x0):
+        raise DatasetError(f"mask shape {m.shape} does not match its bbox {(y1 - y0, x1 - x0)}",
+                           where=f"row {row}")
+    h, w = hw
+    return m[max(0, -y0): m.shape[0] - max(0, y1 - h), max(0, -x0): m.shape[1] - max(0, x1 - w)]
+
+
+def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None, rows=None,
+                   chunk: int = 1 << 18) -> tuple[np.ndarray, np.ndarray]:
+    """Per-group binary coverage (n_groups, H, W) uint8 and the all-group count map (H, W).
+
+    Rows listed in `mask_rows` (positions into `bbox`) use their mask instead of their bbox;
+    `rows` maps positions to the ids the loader expects (default: the positions).
+    """
+    bbox = np.asarray(bbox, np.int64).reshape(-1, 4)
+    groups = np.asarray(groups, np.int64)
+    h, w = hw
+    use_mask = np.zeros(len(bbox), bool)
+    if mask_loader is not None:
+        if mask_rows is None:
+            use_mask[:] = True
+        else:
+            use_mask[np.asarray(mask_rows, np.int64)] = True
+    rows = np.arange(len(bbox)) if rows is None else np.asarray(rows)
+    cov = np.zeros((n_groups, h, w), dtype=np.int64)
+    plain = np.flatnonzero(~use_mask)
+    for s in range(0, len(plain), chunk):  # bounded temporaries; the maps are the state
+        part = plain[s : s + chunk]
+        cov += box_counts(bbox[part], hw, groups[part], n_groups)
+    counts = cov.sum(axis=0)
+    binary = (cov > 0).astype(np.uint8)
+    del cov
+    for i in np.flatnonzero(use_mask):
+        raw = bbox[i]
+        m = _mask_crop(mask_loader, rows[i], raw, hw)
+        x0, y0, x1, y1 = clip_boxes(raw, hw)[0]
+        if m is None:
+            m = np.ones((y1 - y0, x1 - x0), bool)
+        binary[groups[i], y0:y1, x0:x1] |= m
+        counts[y0:y1, x0:x1] += m
+    return binary, counts
+
+
+def shared_pixels(binary, bbox, groups, hw, mask_loader=None, mask_rows=None, rows=None,
+                  chunk: int = 1 << 18) -> np.ndarray:
+    """For each row: pixels of its footprint that its group's coverage map holds (exact)."""
+    bbox = np.asarray(bbox, np.int64).reshape(-1, 4)
+    groups = np.asarray(groups, np.int64)
+    clipped = clip_boxes(bbox, hw)
+    out = np.zeros(len(bbox), dtype=np.int64)
+    has_mask = np.zeros(len(bbox), bool)
+    if mask_loader is not None:
+        if mask_rows is None:
+            has_mask[:] = True
+        else:
+            has_mask[np.asarray(mask_rows, np.int64)] = True
+    rows = np.arange(len(bbox)) if rows is None else np.asarray(rows)
+    order = np.argsort(groups, kind="stable")
+    bounds = np.searchsorted(groups[order], np.arange(binary.shape[0] + 1))
+    for g in range(binary.shape[0]):
+        members = order[bounds[g] : bounds[g + 1]]
+        if len(members) == 0:
+            continue
+        sat = summed_area(binary[g])
+        for s in range(0, len(members), chunk):
+            part = members[s : s + chunk]
+            out[part] = box_sums(sat, clipped[part])  # exact for bbox footprints
+        # the prefilter: a zero box sum proves no shared pixel, so masks load only here
+        for i in members[(out[members] > 0) & has_mask[members]]:
+            m = _mask_crop(mask_loader, rows[i], bbox[i], hw)
+            if m is None:
+                continue
+            x0, y0, x1, y1 = clipped[i]
+            out[i] = int(np.count_nonzero(m & (binary[g, y0:y1, x0:x1] > 0)))
+    return out
+
+
+def _nearest_overlapping(train_bbox, train_groups, box, group) -> tuple[int, int]:
+    """Train row of the same group whose bbox has the highest IoU with `box`, and the
+    intersection area (-1, 0 if none overlaps)."""
+    idx = np.flatnonzero(train_groups == group)
+    if len(idx) == 0:
+        return -1, 0
+    b = train_bbox[idx]
+    iw = np.minimum(b[:, 2], box[2]) - np.maximum(b[:, 0], box[0])
+    ih = np.minimum(b[:, 3], box[3]) - np.maximum(b[:, 1], box[1])
+    area = np.clip(iw, 0, None) * np.clip(ih, 0, None)
+    union = (b[:, 2] - b[:, 0]) * (b[:, 3] - b[:, 1]) + (box[2] - box[0]) * (box[3] - box[1]) - area
+    k = int(np.argmax(area / np.maximum(union, 1)))
+    return (int(idx[k]), int(area[k])) if area[k] > 0 else (-1, 0)
+
+
+def check_footprint(
+    train_bbox: np.ndarray,
+    test_bbox: np.ndarray,
+    hw: tuple[int, int],
+    train_class=None,
+    test_class=None,
+    mask_loader: MaskLoader | None = None,
+    train_rows=None,
+    test_rows=None,
+    train_mask_rows=None,
+    test_mask_rows=None,
+    claim: bool | None = None,
+    max_fraction: float = 0.0,
+    train_ids=None,
+    test_ids=None,
+    pair: tuple[str, str] | None = None,
+    worst_k: int = 20,
+) -> CheckResult:
+    """Fraction of test objects sharing at least one pixel with a same-class train footprint.
+
+    `claim=True` (a declared footprint guarantee) fails above `max_fraction`; without a
+    claim any overlap is a warning. `train_rows`/`test_rows` are the ids `mask_loader` takes.
+    """
+    h, w = int(hw[0]), int(hw[1])
+    train_bbox = np.asarray(train_bbox, np.int64).reshape(-1, 4)
+    test_bbox = np.asarray(test_bbox, np.int64).reshape(-1, 4)
+    n_tr, n_te = len(train_bbox), len(test_bbox)
+    if train_class is None or test_class is None:
+        codes = np.zeros(n_tr + n_te, np.int64); names = np.array(["(all)"], dtype=object)
+    else:
+        codes, names = pd.factorize(np.concatenate([np.asarray(train_class, object), np.asarray(test_class, object)]))
+        codes = codes.astype(np.int64)
+    tr_g, te_g = codes[:n_tr], codes[n_tr:]
+    n_groups = max(len(names), 1)
+    binary, train_counts = build_coverage(train_bbox, tr_g, n_groups, (h, w), mask_loader, train_mask_rows, train_rows)
+    shared = shared_pixels(binary, test_bbox, te_g, (h, w), mask_loader, test_mask_rows, test_rows)
+    test_binary, test_counts = build_coverage(test_bbox, te_g, n_groups, (h, w), mask_loader,
+                                              test_mask_rows, test_rows) if n_te else (binary * 0, np.zeros((h, w), np.int64))
+    shared_map = (binary & test_binary).any(axis=0)
+    hit = shared > 0
+    n_hit = int(hit.sum())
+    frac = n_hit / n_te if n_te else 0.0
+    per_class = {}
+    for g, name in enumerate(names):
+        sel = te_g == g
+        n = int(sel.sum())
+        if n == 0:
+            continue
+        per_class[str(name)] = {"n_test": n, "n_overlapping": int(hit[sel].sum()),
+                                "fraction_overlapping": float(hit[sel].mean()),
+                                "shared_px_max": int(shared[sel].max()),
+                                "train_covered_px": int(binary[g].sum())}
+    numbers = {
+        "canvas": [h, w], "n_train": n_tr, "n_test": n_te,
+        "n_overlapping": n_hit, "fraction_overlapping": frac,
+        "shared_px_total": int(shared.sum()), "shared_px_max": int(shared.max()) if n_te else 0,
+        "shared_canvas_px": int(shared_map.sum()),
+        "claim": claim, "max_fraction": max_fraction,
+        "n_masks": int((n_tr if train_mask_rows is None else len(train_mask_rows)) + (n_te if test_mask_rows is None else len(test_mask_rows))) if mask_loader else 0,
+        "per_class": per_class,
+    }
+    train_ids = np.arange(n_tr) if train_ids is None else np.asarray(train_ids)
+    test_ids = np.arange(n_te) if test_ids is None else np.asarray(test_ids)
+    worst = top_rows(pd.DataFrame({"test_row": np.flatnonzero(hit), "test_id": test_ids[hit],
+                                   "class": np.asarray(names, object)[te_g[hit]], "shared_px": shared[hit]}),
+                     "shared_px", worst_k, ascending=False)
+    if len(worst):
+        near = [_nearest_overlapping(clip_boxes(train_bbox, (h, w)), tr_g, clip_boxes(test_bbox[r], (h, w))[0], te_g[r])
+                for r in worst["test_row"]]
+        worst["train_row"] = [a for a, _ in near]
+        worst["train_id"] = ids_at(train_ids, np.array([a for a, _ in near], np.int64))
+        worst["bbox_overlap_px"] = [b for _, b in near]
+    if claim:
+        verdict = FAIL if frac > max_fraction else PASS
+    else:
+        verdict = WARN if n_hit else PASS
+    detail = (f"{n_hit} of {n_te} test objects ({frac:.2%}) share pixels with a train footprint of their class"
+              if n_hit else f"no test object shares a pixel with any train footprint of its class ({n_te} checked)")
+    return CheckResult("footprint_overlap", verdict, numbers, worst, detail, pair,
+                       arrays={"train_coverage": train_counts, "test_coverage": test_counts, "shared_map": shared_map})

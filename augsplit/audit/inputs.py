@@ -1,0 +1,271 @@
+"""Audit inputs: column maps, axis declarations, table sources (DataFrame, CSV, Parquet file or
+dataset folder, streamed by row group) and image loaders. Every problem is a one-line
+DatasetError naming the column, axis, split, file or rows."""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterator
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DatasetError
+from ..space.axes import LOG, Axis
+from .proximity import AxisScale
+
+BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
+ImageLoader = Callable[[int], "np.ndarray | None"]
+
+
+def apply_column_map(df: pd.DataFrame, mapping: dict[str, str] | None) -> pd.DataFrame:
+    """Rename the table's columns to augsplit's names. `mapping` is {augsplit name: table column}.
+
+    Raises DatasetError naming the first mapped column the table lacks.
+    """
+    if not mapping:
+        return df
+    _check_mapped(mapping, df.columns)
+    return df.rename(columns={src: dst for dst, src in mapping.items() if src != dst})
+
+
+def _check_mapped(mapping: dict[str, str], columns) -> None:
+    have = list(columns)
+    for dst, src in mapping.items():
+        if src not in have:
+            raise DatasetError(f"column {src!r} is not in the table (columns: {_short(have)})",
+                               where=f"column_map.{dst}")
+
+
+def _short(names, k: int = 12) -> str:
+    names = [str(n) for n in names]
+    return ", ".join(names[:k]) + (f", ... ({len(names)} in all)" if len(names) > k else "")
+
+
+# ---- axes ---------------------------------------------------------------------------------
+
+def axis_scales(axes: dict, data: pd.DataFrame | None = None) -> tuple[list[AxisScale], list[str]]:
+    """Axis declarations -> AxisScale list (and notes on ranges taken from the data).
+
+    Each value is (lo, hi, periodic), optionally with a 4th item "log"; or an augsplit
+    `Axis`; or an `AxisScale`. A non-periodic axis with lo/hi None takes the data's range; a
+    periodic one must give its period.
+    """
+    scales, notes = [], []
+    for name, spec in axes.items():
+        where = f"axes.{name}"
+        if isinstance(spec, AxisScale):
+            scales.append(spec); continue
+        if isinstance(spec, Axis):
+            lo_t, hi_t = spec.t_range
+            if spec.measure == LOG:
+                scales.append(AxisScale(name, spec.lo, spec.hi, False, True))
+            else:
+                scales.append(AxisScale(name, float(spec.lo if spec.measure != "levels" else lo_t),
+                                        float(spec.hi if spec.measure != "levels" else hi_t), spec.circular))
+            continue
+        try:
+            items = tuple(spec)
+        except TypeError:
+            raise DatasetError(f"expected (lo, hi, periodic), got {spec!r}", where=where) from None
+        if len(items) not in (3, 4):
+            raise DatasetError(f"expected (lo, hi, periodic[, 'log']), got {spec!r}", where=where)
+        lo, hi, periodic = items[:3]
+        log = len(items) == 4 and items[3] == "log"
+        if len(items) == 4 and items[3] not in ("log", "linear", None):
+            raise DatasetError(f"4th item must be 'log' or 'linear', got {items[3]!r}", where=where)
+        periodic = bool(periodic)
+        if lo is None or hi is None:
+            if periodic:
+                raise DatasetError("circular axis has no period: give its range (lo, hi), e.g. (0, 360)", where=where)
+            if data is None or name not in data:
+                raise DatasetError("no range given and no data to take it from", where=where)
+            v = pd.to_numeric(data[name], errors="coerce").to_numpy(float)
+            v = v[np.isfinite(v)]
+            if len(v) == 0:
+                raise DatasetError("no range given and no finite values to take it from", where=where)
+            lo = float(v.min()) if lo is None else lo
+            hi = float(v.max()) if hi is None else hi
+            if hi <= lo:
+                hi = lo + 1.0  # a constant column: any positive span gives distance 0 on it
+            notes.append(f"{name}: range [{lo:g}, {hi:g}] taken from the data")
+        try:
+            lo, hi = float(lo), float(hi)
+        except (TypeError, ValueError):
+            raise DatasetError(f"range bounds must be numbers, got ({lo!r}, {hi!r})", where=where) from None
+        if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
+            raise DatasetError(f"range [{lo:g}, {hi:g}] is empty or not finite", where=where)
+        if log and lo <= 0:
+            raise DatasetError(f"log axis needs a positive range, got [{lo:g}, {hi:g}]", where=where)
+        scales.append(AxisScale(name, lo, hi, periodic, log))
+    return scales, notes
+
+
+# ---- table sources -----------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class TableSource:
+    """Where the table comes from: a DataFrame in memory, or files read column by column.
+
+    `files` are Parquet files in a fixed order (row order = concatenation), or one CSV.
+    `mapping` renames source columns to augsplit names. `root` resolves image paths.
+    """
+
+    frame: pd.DataFrame | None
+    files: tuple[Path, ...]
+    kind: str  # "frame", "parquet", "csv"
+    columns: tuple[str, ...]  # augsplit names available
+    mapping: dict
+    root: Path | None
+    partition_split: tuple[str | None, ...] = ()  # split value from a split=<name> folder per file
+
+    def read(self, columns: list[str], batch_rows: int = 1 << 17, progress: bool = False) -> pd.DataFrame:
+        """The named columns (those present) of every row, read by row group for Parquet."""
+        cols = [c for c in columns if c in self.columns]
+        if self.kind == "frame":
+            return self.frame[cols].reset_index(drop=True)
+        parts = list(self.iter_batches(cols, batch_rows, progress))
+        if not parts:
+            return pd.DataFrame({c: [] for c in cols})
+        return pd.concat(parts, ignore_index=True)
+
+    def iter_batches(self, columns: list[str], batch_rows: int = 1 << 14,
+                     progress: bool = False) -> Iterator[pd.DataFrame]:
+        """The named columns in row order, a bounded batch at a time (flat memory)."""
+        cols = [c for c in columns if c in self.columns]
+        if self.kind == "frame":
+            for s in range(0, len(self.frame), batch_rows):
+                yield self.frame[cols].iloc[s : s + batch_rows].reset_index(drop=True)
+            return
+        inverse = {dst: src for dst, src in self.mapping.items()}
+        src_cols = [inverse.get(c, c) for c in cols]
+        if self.kind == "csv":
+            for chunk in pd.read_csv(self.files[0], usecols=lambda c: c in src_cols, chunksize=batch_rows):
+                yield chunk.rename(columns={inverse.get(c, c): c for c in cols})[cols]
+            return
+        import pyarrow.parquet as pq
+        from tqdm import tqdm
+
+        bar = tqdm(total=None, unit="rows", disable=not progress, desc="reading")
+        for path, split in zip(self.files, self.partition_split):
+            pf = pq.ParquetFile(path)
+            present = set(pf.schema_arrow.names)
+            want = [s for s in src_cols if s in present]
+            for rb in pf.iter_batches(batch_size=batch_rows, columns=want):
+                df = rb.to_pandas()
+                df = df.rename(columns={inverse.get(c, c): c for c in cols})
+                if "split" in cols and "split" not in df.columns:
+                    df["split"] = split
+                bar.update(len(df))
+                yield df[[c for c in cols if c in df.columns]]
+        bar.close()
+
+    def n_rows(self) -> int:
+        if self.kind == "frame":
+            return len(self.frame)
+        if self.kind == "csv":
+            return sum(len(c) for c in self.iter_batches([self.columns[0]]))
+        import pyarrow.parquet as pq
+        return sum(pq.ParquetFile(f).metadata.num_rows for f in self.files)
+
+
+def open_table(table, column_map: dict | None = None, root=None) -> TableSource:
+    """A DataFrame, a CSV file, a Parquet file, or a folder of Parquet files (an augsplit dataset
+    folder, whose rows are under manifest/) -> TableSource. Column map applied (checked)."""
+    mapping = dict(column_map or {})
+    if isinstance(table, pd.DataFrame):
+        df = apply_column_map(table, mapping)
+        return TableSource(df.reset_index(drop=True), (), "frame", tuple(map(str, df.columns)), {},
+                           Path(root) if root else None)
+    path = Path(table)
+    if not path.exists():
+        raise DatasetError("no such file or folder", where=str(path))
+    if path.is_file() and path.suffix.lower() in (".csv", ".tsv", ".txt"):
+        try:
+            head = pd.read_csv(path, nrows=0)
+        except Exception as exc:  # pandas raises several kinds for malformed text
+            raise DatasetError(f"cannot read as CSV: {exc}", where=str(path)) from None
+        _check_mapped(mapping, head.columns)
+        cols = _mapped_names(list(head.columns), mapping)
+        return TableSource(None, (path,), "csv", tuple(cols), mapping, Path(root) if root else path.parent)
+    files: list[Path]
+    base = path
+    if path.is_dir():
+        scan = path / "manifest" if (path / "manifest").is_dir() else path
+        files = sorted(p for p in scan.rglob("*.parquet") if p.is_file())
+        if not files:
+            raise DatasetError("no Parquet files found", where=str(scan))
+    else:
+        files, base = [path], path.parent
+    import pyarrow.parquet as pq
+
+    names: list[str] = []
+    splits: list[str | None] = []
+    for f in files:
+        try:
+            schema = pq.ParquetFile(f).schema_arrow
+        except Exception as exc:
+            raise DatasetError(f"not a readable Parquet file: {exc}", where=str(f)) from None
+        for n in schema.names:
+            if n not in names:
+                names.append(n)
+        splits.append(next((part.split("=", 1)[1] for part in f.parts if part.startswith("split=")), None))
+    if "split" not in names and all(s is not None for s in splits):
+        names.append("split")  # hive-style partition folders carry the split
+    _check_mapped(mapping, names)
+    cols = _mapped_names(names, mapping)
+    return TableSource(None, tuple(files), "parquet", tuple(cols), mapping,
+                       Path(root) if root else base, tuple(splits))
+
+
+def _mapped_names(names: list[str], mapping: dict) -> list[str]:
+    rename = {src: dst for dst, src in mapping.items()}
+    return [rename.get(n, n) for n in names]
+
+
+# ---- images ------------------------------------------------------------------------------
+
+def decode_image(data: bytes, where: str) -> np.ndarray:
+    """Encoded bytes (PNG, JPEG, WebP ...) -> RGB(A) or grey uint8 array."""
+    import cv2
+
+    img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
+    if img is None:
+        raise DatasetError("cannot decode the image", where=where)
+    return _to_rgb(img)
+
+
+def read_image(path: Path) -> np.ndarray:
+    import cv2
+
+    img = cv2.imread(str(path), cv2.IMREAD_UNCHANGED)
+    if img is None:
+        raise DatasetError("missing or unreadable image file", where=str(path))
+    return _to_rgb(img)
+
+
+def _to_rgb(img: np.ndarray) -> np.ndarray:
+    import cv2
+
+    if img.dtype != np.uint8:
+        img = (img / 257).astype(np.uint8) if img.dtype == np.uint16 else img.astype(np.uint8)
+    if img.ndim == 3 and img.shape[2] == 3:
+        return cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+    if img.ndim == 3 and img.shape[2] == 4:
+        return cv2.cvtColor(img, cv2.COLOR_BGRA2RGBA)
+    return img
+
+
+def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> None:
+    """Raise one DatasetError naming the first listed image missing on disk, and the count."""
+    names = files.astype(str).to_numpy()
+    listed = np.flatnonzero((names != "") & (names != "None") & (names != "nan"))
+    base = root or Path(".")
+    missing = [i for i in listed if not os.path.exists(base / names[i])]
+    if missing:
+        first = missing[0]
+        raise DatasetError(f"{len(missing)} listed image(s) missing on disk (first at row {int(rows[first])})",
+                           where=str(base / names[first]))
