@@ -12,6 +12,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from augsplit.plan.geometry import WARP_SLACK_PX, support_radius
+
 from augsplit.render import (Placed, RenderParams, add_footprint, footprint, masks_overlap, place, render,
                              similarity_matrix)
 from augsplit.sources import Polyominoes, Sprite
@@ -145,7 +147,12 @@ def test_every_touched_pixel_lies_within_the_support_radius(cx, cy, scale, angle
     place(canvas, sp, RenderParams(cx, cy, scale, angle, mirror))
     rows, cols = np.nonzero(canvas[..., 0])
     d = np.hypot(cols + 0.5 - cx, rows + 0.5 - cy)
-    assert (d <= scale * sp.support_radius).all()
+    assert (d <= scale * support_radius(sp.rgba, sp.anchor) + WARP_SLACK_PX).all()
+    # and the footprint (alpha above one half) lies within the tighter, threshold-aware bound
+    fp = footprint(sp, RenderParams(cx, cy, scale, angle, mirror), (64, 64))
+    rows, cols = np.nonzero(fp.mask)
+    d = np.hypot(cols + fp.bbox[0] + 0.5 - cx, rows + fp.bbox[1] + 0.5 - cy)
+    assert (d <= scale * support_radius(sp.rgba, sp.anchor, 0.5) + WARP_SLACK_PX).all()
 
 
 # --- footprints and visibility --------------------------------------------------------------
@@ -290,7 +297,7 @@ def test_colour_axes_leave_the_background_alone():
     changed = (img != bg).any(axis=2)
     rows, cols = np.nonzero(changed)
     assert changed.any()
-    assert (np.hypot(cols + 0.5 - 24, rows + 0.5 - 24) <= sp.support_radius).all()
+    assert (np.hypot(cols + 0.5 - 24, rows + 0.5 - 24) <= support_radius(sp.rgba, sp.anchor) + WARP_SLACK_PX).all()
 
 
 # --- output format --------------------------------------------------------------------------

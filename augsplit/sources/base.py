@@ -106,14 +106,6 @@ class Sprite:
         """Native extent: farthest corner of any pixel with alpha > ALPHA_THRESHOLD from the anchor."""
         return _corner_radius(self.rgba[..., 3] > ALPHA_THRESHOLD * 255, self.anchor, 0.0)
 
-    @cached_property
-    def support_radius(self) -> float:
-        """A bound on where any alpha can land: after a similarity warp of scale s, every canvas
-        pixel whose warped alpha is non-zero has its centre within s * support_radius of the
-        object's position. Bilinear sampling reaches half a pixel beyond each non-zero pixel;
-        0.05 px more covers OpenCV builds that snap sample positions to 1/32 px."""
-        return _corner_radius(self.rgba[..., 3] > 0, self.anchor, 0.5) + 0.05
-
     def __repr__(self) -> str:
         return (f"Sprite({self.class_name!r}, class_index={self.class_index}, instance={self.instance}, "
                 f"size={self.width}x{self.height}, anchor=({self.anchor[0]:.2f}, {self.anchor[1]:.2f}))")
