@@ -165,3 +165,19 @@ def test_composition_claim_checked():
 def test_unseen_instances_need_instances():
     d = spec_dict(objects={"kind": "polyomino", "cells": 3, "cell_px": 4, "unseen_instances": 1})
     assert "leaves none to train on" in err(d)
+
+
+def test_sprite_larger_than_canvas_names_the_file(tmp_path):
+    import cv2
+    import numpy as np
+
+    d = tmp_path / "sprites" / "crate"
+    d.mkdir(parents=True)
+    big = np.full((80, 90, 4), 255, np.uint8)
+    cv2.imwrite(str(d / "a.png"), big)
+    spec = spec_dict(objects={"kind": "folder", "path": str(tmp_path / "sprites")})
+    from augsplit.errors import SourceError
+
+    with pytest.raises(SourceError) as e:
+        open_mapping(spec)
+    assert str(d / "a.png") in str(e.value) and "larger than the 64x64 canvas" in str(e.value)

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..errors import GuaranteeError, SpecError
+from ..errors import GuaranteeError, SourceError, SpecError
 from ..space.axes import Space
 from ..space.region import Region
 from ..spec import Spec, spec_hash
@@ -102,6 +102,7 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
         raise SpecError("the object source has no classes", where="objects")
     space = build_space(spec, canvas, classes)
     seen, unseen = _instances(spec, source, classes)
+    _check_fits(source, seen, unseen, space, canvas)
     thr = spec.render.alpha_threshold
     radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
                               for i in seen[c] + unseen[c]) for c in range(len(classes))])
@@ -208,6 +209,21 @@ def _instances(spec: Spec, source, classes):
         seen.append(list(range(n - k)))
         unseen.append(list(range(n - k, n)))
     return seen, unseen
+
+
+def _check_fits(source, seen, unseen, space, canvas) -> None:
+    """Refuse a sprite whose opaque part is larger than the canvas even at the smallest scale."""
+    smin = float(space["scale"].from_t(space.t_lo[space.index["scale"]])) if "scale" in space else 1.0
+    for c in range(len(seen)):
+        for i in seen[c] + unseen[c]:
+            sp = source.sprite(c, i)
+            rows, cols = np.nonzero(sp.rgba[..., 3] > 0)
+            h, w = (rows.max() - rows.min() + 1) * smin, (cols.max() - cols.min() + 1) * smin
+            if h > canvas.height or w > canvas.width:
+                files = getattr(source, "files", None)
+                where = str(files[c][i]) if files else f"objects (class {source.classes[c]}, instance {i})"
+                raise SourceError(f"the sprite is {w:.0f}x{h:.0f} px at the smallest scale {smin:g}, larger than the "
+                                  f"{canvas.width}x{canvas.height} canvas", where=where)
 
 
 def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
