@@ -47,11 +47,11 @@ def background(spec: Spec, base_dir: Path):
     if b.kind == "solid":
         return bg.Solid(b.value)
     if b.kind == "uniform_noise":
-        return bg.UniformNoise(b.lo, b.hi)
+        return bg.UniformNoise(b.lo, b.hi, b.per_channel)
     if b.kind == "gaussian_noise":
-        return bg.GaussianNoise(b.mean, b.sd)
+        return bg.GaussianNoise(b.mean, b.sd, b.per_channel)
     if b.kind == "pink_noise":
-        return bg.PinkNoise(b.mean, b.contrast, b.exponent)
+        return bg.PinkNoise(b.mean, b.contrast, b.exponent, b.per_channel)
     return bg.ImageFolder(_resolve(b.path, base_dir))
 
 

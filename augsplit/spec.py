@@ -100,12 +100,14 @@ class UniformNoiseBg(Model):
     kind: Literal["uniform_noise"]
     lo: Annotated[float, Field(ge=0, le=1)] = 0.0
     hi: Annotated[float, Field(ge=0, le=1)] = 1.0
+    per_channel: bool = False
 
 
 class GaussianNoiseBg(Model):
     kind: Literal["gaussian_noise"]
     mean: Annotated[float, Field(ge=0, le=1)] = 0.5
     sd: Annotated[float, Field(ge=0)] = 0.1
+    per_channel: bool = False
 
 
 class PinkNoiseBg(Model):
@@ -113,6 +115,7 @@ class PinkNoiseBg(Model):
     mean: Annotated[float, Field(ge=0, le=1)] = 0.5
     contrast: Annotated[float, Field(ge=0)] = 0.15
     exponent: float = 1.0
+    per_channel: bool = False
 
 
 class FolderBg(Model):
