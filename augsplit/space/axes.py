@@ -90,11 +90,21 @@ class Axis:
         if self.measure == CIRCULAR:
             return self.lo + np.mod(v - self.lo, self.period)
         if self.measure == LEVELS:
-            lv = np.asarray(self.levels, dtype=float)
-            idx = np.abs(v[..., None] - lv).argmin(axis=-1) if lv.size else np.zeros_like(v)
-            ok = np.isclose(lv[idx], v, rtol=1e-9, atol=1e-9) if lv.size else np.zeros(v.shape, bool)
-            return np.where(ok, idx.astype(float), np.nan)
+            return self._level_index(v)
         return v
+
+    def _level_index(self, v: np.ndarray) -> np.ndarray:
+        # nearest level by binary search: O(N log L) time and O(N) memory, even for many classes
+        lv = np.asarray(self.levels, dtype=float)
+        order = np.argsort(lv)
+        srt = lv[order]
+        pos = np.searchsorted(srt, v)
+        left = np.clip(pos - 1, 0, srt.size - 1)
+        right = np.clip(pos, 0, srt.size - 1)
+        with np.errstate(invalid="ignore"):
+            near = np.where(np.abs(v - srt[left]) <= np.abs(v - srt[right]), left, right)
+            ok = np.abs(v - srt[near]) <= 1e-9 * np.maximum(1.0, np.abs(srt[near]))
+        return np.where(ok, order[near].astype(float), np.nan)
 
     def from_t(self, t) -> np.ndarray:
         """Measure coordinate -> value in the axis unit (levels: nearest level)."""

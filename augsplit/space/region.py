@@ -103,32 +103,44 @@ class Region:
     def is_empty(self) -> bool:
         return self.nbox == 0
 
-    def contains_t(self, t: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
-        """Membership of N points given in t (closed boxes); NaN coordinates are outside."""
+    def contains_t(self, t: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
+        """Membership of N points given in t (closed boxes); NaN coordinates are outside.
+
+        Work is cut into chunks of about `chunk` point-box pairs, so memory stays bounded.
+        """
         t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
         out = np.zeros(len(t), dtype=bool)
-        if self.nbox == 0:
-            return out
-        step = max(1, chunk // max(1, self.nbox))
-        tol = 1e-9 * np.maximum(1.0, np.abs(self.space.t_span))
-        for s in range(0, len(t), step):
-            p = t[s : s + step, None, :]
-            inside = (p >= self.lo[None] - tol) & (p <= self.hi[None] + tol)
-            out[s : s + step] = inside.all(axis=2).any(axis=1)
+        for rows, inside in self._inside_chunks(t, chunk):
+            out[rows] = inside.any(axis=1)
         return out
+
+    def box_of_t(self, t: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
+        """Index of the first box holding each point (as `contains_t` decides), -1 where none."""
+        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
+        out = np.full(len(t), -1, dtype=np.int64)
+        for rows, inside in self._inside_chunks(t, chunk):
+            k = inside.argmax(axis=1)
+            out[rows] = np.where(inside[np.arange(len(k)), k], k, -1)
+        return out
+
+    def _inside_chunks(self, t: np.ndarray, chunk: int):
+        """Yield (slice of points, bool (n, nbox) membership) chunk by chunk."""
+        if self.nbox == 0 or len(t) == 0:
+            return
+        tol = 1e-9 * np.maximum(1.0, np.abs(self.space.t_span))
+        lo, hi = self.lo - tol, self.hi + tol
+        step = max(1, chunk // self.nbox)
+        for s in range(0, len(t), step):
+            p = t[s : s + step]
+            # one (n, nbox) mask per axis: no (n, nbox, ndim) temporary
+            inside = np.ones((len(p), self.nbox), dtype=bool)
+            for i in range(self.space.ndim):
+                inside &= (p[:, i, None] >= lo[:, i]) & (p[:, i, None] <= hi[:, i])
+            yield slice(s, s + len(p)), inside
 
     def contains(self, points) -> np.ndarray:
         """Membership of points given in axis units: {axis: array} or an (N, ndim) array."""
         return self.contains_t(self.space.to_t(points))
-
-    def box_of_t(self, t: np.ndarray) -> np.ndarray:
-        """Index of the first box holding each point, -1 where none does."""
-        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
-        out = np.full(len(t), -1, dtype=np.int64)
-        for k in range(self.nbox - 1, -1, -1):
-            inside = np.all((t >= self.lo[k] - 1e-9) & (t <= self.hi[k] + 1e-9), axis=1)
-            out[inside] = k
-        return out
 
     def restrict(self, name: str, lo_t: float, hi_t: float) -> "Region":
         """The part of the region whose axis `name` lies in [lo_t, hi_t]."""
@@ -145,25 +157,16 @@ class Region:
         return float(self.lo[:, i].min()), float(self.hi[:, i].max())
 
     def simplify(self) -> "Region":
-        """Merge boxes that differ on one axis only and touch there (repeat to a fixed point)."""
-        lo, hi = [list(r) for r in self.lo], [list(r) for r in self.hi]
+        """The same set in fewer boxes: merge boxes that are equal on all axes but one and
+        touch along it, axis after axis, until nothing changes."""
+        lo, hi = self.lo, self.hi
         changed = True
         while changed:
             changed = False
-            n = len(lo)
-            for a in range(n):
-                for b in range(a + 1, n):
-                    diff = [i for i in range(self.space.ndim) if lo[a][i] != lo[b][i] or hi[a][i] != hi[b][i]]
-                    if len(diff) == 1:
-                        i = diff[0]
-                        if abs(hi[a][i] - lo[b][i]) < 1e-12 or abs(hi[b][i] - lo[a][i]) < 1e-12:
-                            lo[a][i], hi[a][i] = min(lo[a][i], lo[b][i]), max(hi[a][i], hi[b][i])
-                            del lo[b], hi[b]
-                            changed = True
-                            break
-                if changed:
-                    break
-        return Region(self.space, np.array(lo).reshape(-1, self.space.ndim), np.array(hi).reshape(-1, self.space.ndim))
+            for i in range(self.space.ndim):
+                lo, hi, merged = _merge_along(lo, hi, i)
+                changed |= merged
+        return Region(self.space, lo, hi)
 
     def __repr__(self) -> str:
         return f"Region({self.nbox} boxes over {', '.join(self.space.names)}, mass={self.mass():.4g})"
@@ -178,6 +181,24 @@ def _merge(ivs) -> list[tuple[float, float]]:
         else:
             out.append([a, b])
     return [(a, b) for a, b in out]
+
+
+def _merge_along(lo: np.ndarray, hi: np.ndarray, i: int):
+    """Join boxes that are equal on every axis but `i` and touch along `i`."""
+    if len(lo) < 2:
+        return lo, hi, False
+    rest = np.delete(np.hstack([lo, hi]), [i, lo.shape[1] + i], axis=1)
+    order = np.lexsort((lo[:, i],) + tuple(rest.T[::-1]))  # group by the other axes, then by lo_i
+    lo, hi, rest = lo[order], hi[order], rest[order]
+    # disjoint boxes of one group cannot overlap along i, so touching ones chain in order
+    joins = np.all(rest[1:] == rest[:-1], axis=1) & (np.abs(lo[1:, i] - hi[:-1, i]) <= _EPS)
+    if not joins.any():
+        return lo, hi, False
+    first = np.flatnonzero(np.r_[True, ~joins])
+    last = np.r_[first[1:] - 1, len(lo) - 1]
+    new_lo, new_hi = lo[first].copy(), hi[first].copy()
+    new_hi[:, i] = hi[last, i]
+    return new_lo, new_hi, True
 
 
 def _box_difference(lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray, b_hi: np.ndarray):
