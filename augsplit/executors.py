@@ -1,15 +1,29 @@
-"""Executors: run independent shard tasks serially or on local processes.
+"""Executors: run independent shard tasks serially, on local processes, or on dask.distributed.
 
-A task is a picklable callable applied to one job; it returns a small result. Workers build
-their own state once (the initializer), so nothing that holds a file handle or a random
-stream is shared across a fork. Results come back as they finish; the caller commits them.
+A task is a picklable module-level callable applied to one job; it returns a small result.
+Workers build their own state (the initializer, or a cache inside the task), so nothing that
+holds a file handle or a random stream is shared across processes. Results come back as they
+finish; the caller decides what counts as committed. A worker that dies loses only the job it
+was running, which is run again (dask does this itself; the process pool is restarted).
 """
 
 from __future__ import annotations
 
+import logging
 import multiprocessing as mp
+import os
+import signal
+import threading
+import uuid
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
 from typing import Callable, Iterable, Iterator
+
+from .errors import DatasetError
+
+EXECUTORS = ("auto", "serial", "processes", "dask")
+MAX_POOL_RESTARTS = 3  # a job that kills its worker this often is a bug, not bad luck
+CONNECT_TIMEOUT_S = 5.0  # an unreachable scheduler is reported in seconds, not a hang
 
 
 def run_serial(task: Callable, jobs: Iterable, init: Callable | None = None, initargs: tuple = ()) -> Iterator:
@@ -19,34 +33,177 @@ def run_serial(task: Callable, jobs: Iterable, init: Callable | None = None, ini
         yield job, task(job)
 
 
+# ---- local processes --------------------------------------------------------------------------
+
+
+def _pool_init(init: Callable | None, initargs: tuple) -> None:
+    # Ctrl-C reaches the whole process group: only the parent handles it (and stops the
+    # workers), so a worker never dies half-way through writing with a traceback of its own.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _die_with_parent()
+    if init is not None:
+        init(*initargs)
+
+
+def _die_with_parent() -> None:
+    """Linux: have the kernel end this worker when its parent dies (e.g. on SIGKILL), so no
+    orphan keeps writing into a folder that a resumed run is already working on."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        PR_SET_PDEATHSIG = 1
+        libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL)
+        if os.getppid() == 1:  # the parent already died before prctl took effect
+            os._exit(1)
+    except (OSError, AttributeError):
+        pass
+
+
+def _stop_pool(pool: ProcessPoolExecutor) -> None:
+    """Cancel queued jobs and end running ones now: their shards are not committed and are
+    redone on resume, so there is nothing to wait for."""
+    procs = list(getattr(pool, "_processes", {}).values())  # no public handle on the workers
+    pool.shutdown(wait=False, cancel_futures=True)
+    for p in procs:
+        if p.is_alive():
+            p.terminate()
+    for p in procs:
+        p.join(timeout=5)
+
+
 def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable | None = None,
-                  initargs: tuple = ()) -> Iterator:
-    """Yield (job, result) as workers finish; at most 2 x workers jobs are in flight."""
-    jobs = iter(jobs)
+                  initargs: tuple = (), max_restarts: int = MAX_POOL_RESTARTS) -> Iterator:
+    """Yield (job, result) as workers finish; at most 2 x workers jobs are in flight.
+
+    If a worker process dies (killed, out of memory), the jobs in flight are put back and a
+    new pool takes over; after `max_restarts` deaths the run stops with a DatasetError."""
+    queue = list(jobs)[::-1]  # pop() from the end keeps the given order
     ctx = mp.get_context("spawn" if mp.get_start_method(allow_none=True) == "spawn" else "fork")
-    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=init, initargs=initargs) as pool:
-        pending = {}
+    deaths = 0
+    while queue:
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_pool_init,
+                                   initargs=(init, initargs))
+        pending: dict = {}
         try:
-            for job in jobs:
-                pending[pool.submit(task, job)] = job
-                if len(pending) >= 2 * workers:
-                    break
-            while pending:
+            while queue or pending:
+                while queue and len(pending) < 2 * workers:
+                    job = queue.pop()
+                    pending[pool.submit(task, job)] = job
                 done, _ = wait(pending, return_when=FIRST_COMPLETED)
                 for fut in done:
                     job = pending.pop(fut)
                     yield job, fut.result()
-                    nxt = next(jobs, None)
-                    if nxt is not None:
-                        pending[pool.submit(task, nxt)] = nxt
+        except BrokenProcessPool:
+            deaths += 1
+            lost = list(pending.values())
+            _stop_pool(pool)
+            if deaths > max_restarts:
+                raise DatasetError(f"worker processes died {deaths} times; the last time while making "
+                                   f"{', '.join(map(str, lost[:3]))}") from None
+            # every job in flight may have been the one running in the dead worker: redo them all
+            queue.extend(reversed(lost))
+            continue
         except BaseException:
-            for fut in pending:
-                fut.cancel()
-            pool.shutdown(wait=False, cancel_futures=True)
+            _stop_pool(pool)
             raise
+        pool.shutdown(wait=True)
 
 
-def run(task: Callable, jobs: list, workers: int = 1, init: Callable | None = None, initargs: tuple = ()) -> Iterator:
-    if workers <= 1 or len(jobs) <= 1:
+# ---- dask.distributed -------------------------------------------------------------------------
+
+_DASK_STATE: dict = {}
+_DASK_LOCK = threading.Lock()
+
+
+def _dask_call(job, task: Callable, init: Callable | None, initargs: tuple, token: str):
+    """Runs on a dask worker: the initializer once per worker process and run, then the task."""
+    if init is not None:
+        with _DASK_LOCK:
+            if _DASK_STATE.get("token") != token:
+                init(*initargs)
+                _DASK_STATE["token"] = token
+    return task(job)
+
+
+def dask_client(scheduler: str | None, workers: int, timeout: float = CONNECT_TIMEOUT_S):
+    """A distributed.Client on `scheduler`, or on a new LocalCluster of `workers` processes.
+    Returns (client, cluster or None). Import errors and unreachable schedulers become one line."""
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise DatasetError("the dask executor needs dask.distributed: pip install 'augsplit[dask]'") from None
+    if scheduler:
+        # built in two steps so a failed client can be closed at once; left to its finaliser it
+        # would stall the exit for another ten seconds trying to say goodbye to nobody
+        client = Client.__new__(Client)
+        try:
+            client.__init__(scheduler, timeout=timeout, set_as_default=False)
+            return client, None
+        except Exception as exc:  # noqa: BLE001 - OSError, TimeoutError, ValueError for a bad address ...
+            try:
+                client.close(timeout=1)
+            except Exception:  # noqa: BLE001 - nothing to close is fine
+                pass
+            if isinstance(exc, (OSError, TimeoutError, ValueError)):
+                detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            else:  # e.g. a MemoryError decoding the reply of something that is not a scheduler
+                detail = f"the peer does not answer as a dask scheduler: {type(exc).__name__}"
+            raise DatasetError(f"cannot connect to a dask scheduler within {timeout:g} s ({detail})",
+                               where=scheduler) from None
+    # one thread per worker: the work is CPU-bound Python + OpenCV, so processes give the parallelism
+    cluster = LocalCluster(n_workers=max(1, workers), threads_per_worker=1, processes=True,
+                           dashboard_address=None, silence_logs=logging.CRITICAL)
+    return Client(cluster, set_as_default=False), cluster
+
+
+def close_dask(client, cluster) -> None:
+    client.close()
+    if cluster is not None:
+        cluster.close()
+
+
+def run_dask(task: Callable, jobs: Iterable, workers: int = 2, scheduler: str | None = None,
+             init: Callable | None = None, initargs: tuple = (), timeout: float = CONNECT_TIMEOUT_S,
+             client=None) -> Iterator:
+    """Yield (job, result) as dask tasks finish. One task per job; dask reruns the task of a
+    worker that is lost. The workers must see the same file system paths as this process.
+    With `client` given, it is used and left open; otherwise one is made (see dask_client)."""
+    jobs = list(jobs)
+    own = client is None
+    cluster = None
+    if own:
+        client, cluster = dask_client(scheduler, workers, timeout)
+    try:
+        from distributed import as_completed
+        from distributed.scheduler import KilledWorker
+
+        token = uuid.uuid4().hex[:12]  # unique task keys: two runs on one scheduler never share results
+        futures = {client.submit(_dask_call, job, task=task, init=init, initargs=initargs, token=token,
+                                 key=f"augsplit-{token}-{i}", pure=False): job for i, job in enumerate(jobs)}
+        try:
+            for fut in as_completed(list(futures), loop=client.loop):
+                job = futures[fut]
+                try:
+                    result = fut.result()
+                except KilledWorker:
+                    raise DatasetError(f"dask workers kept dying while running {job}") from None
+                yield job, result
+        except BaseException:
+            client.cancel(list(futures))
+            raise
+    finally:
+        if own:
+            close_dask(client, cluster)
+
+
+def run(task: Callable, jobs: list, workers: int = 1, init: Callable | None = None, initargs: tuple = (),
+        executor: str = "auto", scheduler: str | None = None, client=None) -> Iterator:
+    """Dispatch: 'auto' is serial for one worker (or one job) and local processes otherwise."""
+    if executor not in EXECUTORS:
+        raise DatasetError(f"unknown executor '{executor}'; use one of {', '.join(EXECUTORS)}")
+    if executor == "dask" or scheduler or client is not None:
+        return run_dask(task, jobs, workers, scheduler, init, initargs, client=client)
+    if executor == "serial" or (executor == "auto" and (workers <= 1 or len(jobs) <= 1)):
         return run_serial(task, jobs, init, initargs)
-    return run_processes(task, jobs, workers, init, initargs)
+    return run_processes(task, jobs, max(1, workers), init, initargs)
