@@ -156,30 +156,45 @@ def chance_bounds(n: int, p: float, confidence: float = CONFIDENCE) -> tuple[flo
 
 def read_manifest(dataset_dir) -> pd.DataFrame:
     """The image table of a dataset folder (`<dir>/manifest/split=<name>/*.parquet`)."""
-    import pyarrow.dataset as pads
+    from augsplit import manifest as mf
 
-    root = Path(dataset_dir) / "manifest"
-    where = str(root)
-    if not root.is_dir():
+    root = Path(dataset_dir)
+    where = str(root / mf.MANIFEST_DIR)
+    if not (root / mf.MANIFEST_DIR).is_dir():
         raise DatasetError("no manifest folder (is this an augsplit dataset folder?)", where=where)
+    wanted = [c for c in MANIFEST_COLUMNS if c in mf.IMAGE_SCHEMA.names or c == mf.PARTITION]
     try:
-        # the writer stores `split` in every file too; fall back to the folder names only when not
-        dset = pads.dataset(str(root), format="parquet")
-        if "split" not in dset.schema.names:
-            dset = pads.dataset(str(root), format="parquet", partitioning="hive")
-        cols = [c for c in MANIFEST_COLUMNS if c in dset.schema.names]
-        table = dset.to_table(columns=cols)
+        df = mf.read_manifest(root, columns=wanted)
     except Exception as exc:  # pyarrow raises many kinds; the user needs one line
         raise DatasetError(f"cannot read the manifest: {_first_line(exc)}", where=where) from None
-    df = table.to_pandas()
     missing = [c for c in ("image_id", "split", "class_name", "class_index") if c not in df.columns]
     if missing:
         raise DatasetError(f"manifest lacks column(s) {', '.join(missing)}", where=where)
     if df.empty:
         raise DatasetError("manifest has no rows", where=where)
     df["split"] = df["split"].astype(str)
+    df["image_id"] = df["image_id"].astype(str)
     df.attrs["where"] = where
     return df
+
+
+def dataset_roles(dataset_dir) -> tuple[str | None, str | None]:
+    """(training split, reference split) from the dataset's summary, when it names them.
+
+    The reference is a test split drawn at random from the training region (kind "random"):
+    its accuracy is the in-region accuracy a held-out split should be compared with, free of
+    the optimism of scoring the very images the model was fitted to.
+    """
+    from augsplit import manifest as mf
+
+    path = Path(dataset_dir) / mf.SUMMARY_FILE
+    try:
+        splits = json.loads(path.read_text())["splits"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None, None
+    train = [n for n, s in splits.items() if isinstance(s, dict) and s.get("role") == "train"]
+    iid = [n for n, s in splits.items() if isinstance(s, dict) and s.get("kind") == "random" and s.get("role") != "train"]
+    return (train[0] if len(train) == 1 else None), (iid[0] if len(iid) == 1 else None)
 
 
 def load_predictions(path, *, probabilities: bool | None = None) -> pd.DataFrame:
@@ -811,14 +826,19 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     return written
 
 
-def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_split: str = "train",
+def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_split: str | None = None,
               reference_split: str | None = None, allow_partial: bool = False, probabilities: bool | None = None,
               labels: tuple[str, str] | None = None, echo: bool = True) -> ScoreResult:
     """Score one predictions file (and optionally a second, side by side); write every report.
 
-    Returns the first file's result. This is what `augsplit score` calls.
+    The training split defaults to the one the dataset's summary names (else "train"); the
+    reference split to its i.i.d. test split from the training region, if it has exactly one
+    (else the training split). Returns the first file's result. `augsplit score` calls this.
     """
     manifest = read_manifest(dataset_dir)
+    role_train, role_ref = dataset_roles(dataset_dir)
+    train_split = train_split or role_train or "train"
+    reference_split = reference_split or role_ref
     paths = [Path(predictions_path)] + ([Path(compare)] if compare else [])
     if labels is None:
         labels = tuple(_label(p, i) for i, p in enumerate(paths))

@@ -37,11 +37,15 @@ def predictions_with(manifest, correct: np.ndarray) -> pd.DataFrame:
 
 
 def write_manifest(tmp_path, manifest):
+    """Lay the table out as the generator does: one part file per split, the project's schema."""
+    from augsplit import manifest as mf
+
+    root = tmp_path / "ds"
     for split, g in manifest.groupby("split"):
-        d = tmp_path / "ds" / "manifest" / f"split={split}"
-        d.mkdir(parents=True)
-        g.to_parquet(d / "part-00000.parquet", index=False)
-    return tmp_path / "ds"
+        cols = {c: g[c].to_numpy() for c in g.columns if c != "split"}
+        table = mf.to_table(cols, mf.IMAGE_SCHEMA, mf.file_metadata("{}", "test"))
+        mf.write_part(mf.part_path(root, mf.MANIFEST_DIR, split, 0), table)
+    return root
 
 
 # ---------------------------------------------------------------- statistics
