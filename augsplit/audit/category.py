@@ -89,16 +89,19 @@ def check_category_overlap(a_bbox, a_class, b_bbox, b_class, rng: np.random.Gene
         return CheckResult("category_overlap", PASS, {"n_same_pairs": int(len(same)), "n_diff_pairs": int(len(diff)),
                            "ratio": None}, None, f"not measurable: {reason}", pair)
     m_same, m_diff = float(same.mean()), float(diff.mean())
-    ratio = m_same / m_diff if m_diff > 0 else (0.0 if m_same == 0 else float("inf"))
+    ratio = m_same / m_diff if m_diff > 0 else (None if m_same == 0 else float("inf"))
     numbers = {"footprint": "mask" if mask_loader is not None else "bbox",
                "n_same_pairs": int(len(same)), "n_diff_pairs": int(len(diff)),
                "mean_iou_same_class_across": m_same, "mean_iou_diff_class_within": m_diff,
-               "ratio": ratio if np.isfinite(ratio) else None, "max_ratio": max_ratio}
-    hard = m_same < m_diff
-    detail = (f"same-class pairs across the splits overlap {'less' if hard else 'at least as much'} than "
-              f"different-class pairs within a split (mean IoU {m_same:.3g} vs {m_diff:.3g}, ratio {ratio:.3g}): "
-              + ("raw pixels point away from the labels, a hard held-out split" if hard
-                 else "pixel overlap alone can carry the label, an easy held-out split"))
-    verdict = FAIL if (max_ratio is not None and not ratio <= max_ratio) else PASS
+               "ratio": ratio if ratio is not None and np.isfinite(ratio) else None, "max_ratio": max_ratio}
+    if ratio is None:
+        detail = "no sampled pair of either kind shares a pixel: the ratio is undefined"
+    else:
+        hard = m_same < m_diff
+        detail = (f"same-class pairs across the splits overlap {'less than' if hard else 'at least as much as'} "
+                  f"different-class pairs within a split (mean IoU {m_same:.3g} vs {m_diff:.3g}, ratio {ratio:.3g}): "
+                  + ("raw pixels point away from the labels, a hard held-out split" if hard
+                     else "pixel overlap alone can carry the label, an easy held-out split"))
+    verdict = FAIL if (max_ratio is not None and ratio is not None and ratio > max_ratio) else PASS
     return CheckResult("category_overlap", verdict, numbers, None, detail, pair,
                        arrays={"iou_same": same, "iou_diff": diff})

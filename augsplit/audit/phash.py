@@ -5,8 +5,9 @@ luma formula, a 32x32 Lanczos resize with Pillow's fixed-point two-pass arithmet
 matrices, so a batch of equal-sized images is two matrix products), then the same
 scipy DCT-II, the 8x8 low-frequency block and its median. Bit 63 is the block's (0, 0).
 Pass order follows Pillow 13 (Resample.c); Pillow releases that always ran the horizontal
-pass first make imagehash differ by a few bits
-on images more than about twice as tall as wide (the passes' uint8 rounding differs).
+pass first make imagehash differ by a few bits on images more than about twice as tall as wide (the passes' uint8 rounding differs).
+On a flat background with a small object most low-frequency coefficients are near zero and
+their median comparison is unstable: such images can hash close though they differ.
 """
 
 from __future__ import annotations

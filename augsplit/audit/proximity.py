@@ -38,7 +38,8 @@ class AxisScale:
             lo, hi = np.log(lo), np.log(hi)
         u = (v - lo) / (hi - lo)
         if self.periodic:
-            u = np.mod(u, 1.0)
+            with np.errstate(invalid="ignore"):  # inf stays non-finite (NaN): reported, not wrapped
+                u = np.mod(u, 1.0)
             u[u >= 1.0] = 0.0  # mod of a tiny negative number rounds up to exactly 1
         return u
 
