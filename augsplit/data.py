@@ -1,0 +1,536 @@
+"""Loaders: a map-style dataset over a generated dataset folder, and the on-the-fly sampler.
+
+`Dataset(root, split)` gives item i of a split — image, the chosen target and the manifest row
+— from image files, Parquet bytes or by re-rendering the row (`store none`); `OnlineSampler`
+draws fresh parameters from a split's region for every item, deterministic given (seed, epoch,
+index). Both are plain Python objects (len, [], iter) that torch's DataLoader or any other
+loader accepts; each process opens files and builds caches for itself.
+"""
+
+from __future__ import annotations
+
+import difflib
+import functools
+import os
+from collections import OrderedDict
+from pathlib import Path
+from typing import Callable, Iterator, Sequence
+
+import cv2
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import manifest as mf
+from .build import Built, open_spec
+from .errors import AugsplitError, DatasetError
+from .generate import decode, open_dataset_spec
+from .plan.draw import draw_online
+from .render import Placed, footprint
+from .scene import make_scene, pixel_sha256, render_params
+from .space.sample import PARAMS, RENDER, image_rng
+
+TARGETS = ("class", "params", "bbox", "mask")
+BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
+# Columns an item's `row` carries: every manifest column but the encoded image itself.
+ROW_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if c.name != "image_bytes")
+# Domain tag of the online sampler's streams: its spawn keys (ONLINE, split, epoch, index,
+# purpose) have a length no generated image's key (split, index, purpose) has.
+ONLINE = 0x6F6E6C6E
+
+
+class DatasetIndexError(DatasetError, IndexError):
+    """An item index out of range: a DatasetError, and an IndexError for Python's protocols."""
+
+
+# ---- shared helpers -------------------------------------------------------------------------
+
+
+def _check_target(target, columns: Sequence[str], where: str):
+    names = target if isinstance(target, tuple) else (target,)
+    if not names:
+        raise DatasetError("target is an empty tuple; name at least one of " + ", ".join(TARGETS), where=where)
+    for t in names:
+        if not isinstance(t, str) or (t not in TARGETS and t not in columns):
+            close = difflib.get_close_matches(str(t), list(TARGETS) + list(columns), n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise DatasetError(f"unknown target {t!r}{hint}; use {', '.join(TARGETS)}, a manifest column, "
+                               "or a tuple of these", where=where)
+    return names
+
+
+def param_names(built: Built) -> tuple[str, ...]:
+    """The axes a spec varies, in the manifest's column order (not the spec's key order,
+    which a spec re-read from a dataset's spec.json does not keep): the 'params' target."""
+    space = built.plan.space
+    return tuple(n for n in mf.AXIS_COLUMNS if n in space)
+
+
+def _target_mask(placed: Placed, hw: tuple[int, int]) -> np.ndarray:
+    out = np.zeros(hw, dtype=np.uint8)
+    x0, y0, x1, y1 = placed.bbox
+    if placed.footprint_px:
+        out[y0:y1, x0:x1] = placed.mask
+    return out
+
+
+def _to_chw_float(image: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(image.transpose(2, 0, 1), dtype=np.float32) * np.float32(1 / 255)
+
+
+def _targets(names, row: dict, params: tuple[str, ...], mask_fn):
+    out = []
+    for t in names:
+        if t == "class":
+            out.append(int(row["class_index"]))
+        elif t == "params":
+            out.append(np.array([row[n] for n in params], dtype=np.float32))
+        elif t == "bbox":
+            out.append(np.array([row[k] for k in BBOX_COLUMNS], dtype=np.float32))
+        elif t == "mask":
+            out.append(mask_fn())
+        else:
+            out.append(row[t])
+    return out[0] if len(out) == 1 else tuple(out)
+
+
+# ---- map-style dataset over a generated folder -----------------------------------------------
+
+
+class Dataset:
+    """Items of one split of a generated dataset folder.
+
+    Item i is a dict: ``image`` (H, W, C) uint8 RGB or grey (C = 1) — or (C, H, W) float32 in
+    [0, 1] with ``chw_float=True`` —, ``target`` (see below) and ``row`` (the manifest row as a
+    dict of plain values, without the encoded image). Targets: ``'class'`` (class index, int),
+    ``'params'`` (float32 vector of the spec's axes in manifest column order: ``self.param_names``,
+    spec units), ``'bbox'`` (float32 [x0, y0, x1, y1], px, of the visible footprint, end exclusive),
+    ``'mask'`` ((H, W) uint8, 1 on the target object's footprint — alpha above the spec's
+    threshold, not reduced where a distractor covers it), any manifest column name, or a
+    tuple of these (the target is then a tuple).
+
+    Rows can be filtered by ``classes`` (names or indices), ``cells`` (the region cell each
+    image was drawn from, manifest column ``cell``) and ``query`` (a pandas query over the
+    manifest columns, e.g. ``"scale > 1.2 and angle < 90"``); the filters intersect.
+    ``transform`` is called with the item dict (image still HWC uint8) and returns it.
+    ``check_pixels`` compares each image's SHA-256 with its manifest row (lossless stores).
+    """
+
+    def __init__(self, root: str | Path, split: str, target="class", chw_float: bool = False,
+                 classes: Sequence | None = None, cells: Sequence[int] | None = None, query: str | None = None,
+                 transform: Callable[[dict], dict] | None = None, check_pixels: bool = False,
+                 parquet_cache: int = 4):
+        self.root = Path(root)
+        where = str(self.root)
+        if not self.root.is_dir():
+            raise DatasetError("no such dataset folder", where=where)
+        if not (self.root / mf.SPEC_FILE).exists() or not (self.root / mf.MANIFEST_DIR).is_dir():
+            raise DatasetError("not an augsplit dataset (it needs spec.json and manifest/)", where=where)
+        built = open_dataset_spec(self.root)
+        if not (self.root / mf.SUMMARY_FILE).exists():
+            raise DatasetError("the dataset is incomplete (no dataset.json): finish it with "
+                               "`augsplit generate --resume` before loading it", where=where)
+        have = _splits_on_disk(self.root)
+        if split not in have:
+            close = difflib.get_close_matches(str(split), have, n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise DatasetError(f"no split {split!r}{hint}; the dataset has {', '.join(have) or 'none'}", where=where)
+        self.split = split
+        self.spec_hash = built.plan.hash
+        self.names = _check_target(target, ROW_COLUMNS, "target")
+        self.target = target
+        self.chw_float = bool(chw_float)
+        self.transform = transform
+        self.check_pixels = bool(check_pixels)
+        self.parquet_cache = max(1, int(parquet_cache))
+        self.classes = tuple(built.plan.classes)
+        self.param_names = param_names(built)
+        self.channels = 1 if built.spec.canvas.mode == "gray" else 3
+        self.hw = (built.spec.canvas.height, built.spec.canvas.width)
+        self.threshold = built.spec.render.alpha_threshold
+        self._built = built
+        self._split_plan = built.plan.split(split)
+
+        self.parts, frame = _read_split(self.root, split, self.spec_hash)
+        frame = _filter(frame, self.classes, classes, cells, query)
+        self.manifest: pd.DataFrame = frame.drop(columns=["_part", "_offset"]).reset_index(drop=True)
+        self._part = frame["_part"].to_numpy()
+        self._offset = frame["_offset"].to_numpy()
+        self._has_bytes = frame["_has_bytes"].to_numpy(dtype=bool)
+        self.manifest = self.manifest.drop(columns=["_has_bytes"])
+        # plain Python lists: an item's row dict is then a few list lookups, and its values
+        # are ones any collate function accepts (str, int, float, bool)
+        self._cols = {c: self.manifest[c].tolist() for c in ROW_COLUMNS if c in self.manifest}
+        self._pid = None
+        self._cache: OrderedDict = OrderedDict()
+
+    # ---- per-process state ----------------------------------------------------------------
+    def __getstate__(self):
+        # sent to a spawned worker: no caches, no built objects; each process makes its own
+        state = dict(self.__dict__)
+        state["_built"] = None
+        state["_split_plan"] = None
+        state["_cache"] = OrderedDict()
+        state["_pid"] = None
+        return state
+
+    def _local(self) -> None:
+        if self._pid != os.getpid():
+            self._cache = OrderedDict()
+            self._pid = os.getpid()
+
+    @property
+    def built(self) -> Built:
+        if self._built is None:
+            self._built = open_dataset_spec(self.root)
+            if self._built.plan.hash != self.spec_hash:
+                raise DatasetError(f"spec.json changed since the dataset was opened (hash {self._built.plan.hash}, "
+                                   f"was {self.spec_hash})", where=str(self.root / mf.SPEC_FILE))
+            self._split_plan = self._built.plan.split(self.split)
+        return self._built
+
+    # ---- the sequence protocol ------------------------------------------------------------
+    def __len__(self) -> int:
+        return len(self._part)
+
+    def __iter__(self) -> Iterator[dict]:
+        for i in range(len(self)):
+            yield self[i]
+
+    def _position(self, index) -> int:
+        if isinstance(index, (bool, np.bool_)) or not isinstance(index, (int, np.integer)):
+            raise TypeError(f"dataset indices are integers, not {type(index).__name__}")
+        n = len(self)
+        i = int(index)
+        if i < -n or i >= n:
+            raise DatasetIndexError(f"index {i} is out of range for {n} item(s) (valid: {-n}..{n - 1})",
+                                    where=f"{self.root}:{self.split}")
+        return i + n if i < 0 else i
+
+    def row(self, index: int) -> dict:
+        """The manifest row of item `index` as a dict of plain values."""
+        i = self._position(index)
+        return {c: col[i] for c, col in self._cols.items()}
+
+    def __getitem__(self, index) -> dict:
+        i = self._position(index)
+        row = {c: col[i] for c, col in self._cols.items()}
+        image, placed = self._image(i, row)
+        if self.check_pixels and pixel_sha256(image) != row["sha256"]:
+            raise DatasetError("the image does not match its manifest checksum (sha256)",
+                               where=f"{self.root}:{row['image_id']}")
+        mask_fn = (lambda: _target_mask(placed, self.hw)) if placed is not None else (lambda: self._mask(row))
+        item = {"image": image, "target": _targets(self.names, row, self.param_names, mask_fn), "row": row}
+        if self.transform is not None:
+            item = self.transform(item)
+        if self.chw_float:
+            item["image"] = _to_chw_float(item["image"])
+        return item
+
+    # ---- pixels ---------------------------------------------------------------------------
+    def _image(self, i: int, row: dict):
+        """(image, Placed of the target when re-rendered else None)."""
+        if row["file"]:
+            path = self.root / row["file"]
+            img = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE if self.channels == 1 else cv2.IMREAD_COLOR)
+            if img is None:
+                raise DatasetError("image file is missing or unreadable" if path.exists() else "image file is missing",
+                                   where=str(path))
+            return (img[..., None] if self.channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)), None
+        if self._has_bytes[i]:
+            data = self._bytes(int(self._part[i]), int(self._offset[i]))
+            try:
+                return decode(data, self.channels), None
+            except AugsplitError:
+                raise DatasetError("stored image bytes cannot be decoded", where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
+        built = self.built
+        # the row's own seed key, not the re-opened plan's split order: the row alone decides
+        rng = image_rng(row["seed"], row["split_index"], row["index"], RENDER)
+        scene = make_scene(built.plan, built.source, built.background, self._split_plan, row, rng=rng)
+        return scene.image, scene.target
+
+    def _bytes(self, part: int, offset: int) -> bytes:
+        self._local()
+        col = self._cache.get(part)
+        if col is None:
+            path = self.parts[part]
+            try:
+                col = pq.read_table(path, columns=["image_bytes"]).column("image_bytes").combine_chunks()
+            except (OSError, pa.ArrowInvalid) as exc:
+                raise DatasetError(f"cannot read stored images: {exc}", where=str(path)) from None
+            self._cache[part] = col
+            while len(self._cache) > self.parquet_cache:
+                self._cache.popitem(last=False)
+        else:
+            self._cache.move_to_end(part)
+        return col[offset].as_py()
+
+    def _mask(self, row: dict) -> np.ndarray:
+        built = self.built
+        sprite = built.source.sprite(int(row["class_index"]), int(row["instance"]))
+        return _target_mask(footprint(sprite, render_params(row), self.hw, self.threshold), self.hw)
+
+    def __repr__(self) -> str:
+        return (f"Dataset({str(self.root)!r}, split={self.split!r}, items={len(self)}, target={self.target!r}, "
+                f"chw_float={self.chw_float})")
+
+
+def _splits_on_disk(root: Path) -> list[str]:
+    """The dataset's split names in spec order (by the split_index their rows carry)."""
+    first: dict[str, tuple] = {}
+    for p in mf.part_files(root):
+        name = p.parent.name.split("=", 1)[1]
+        if name in first:
+            continue
+        try:
+            stats = pq.ParquetFile(p).metadata.row_group(0).column(
+                mf.IMAGE_SCHEMA.names.index("split_index")).statistics
+            first[name] = (0, int(stats.min)) if stats is not None and stats.has_min_max else (1, name)
+        except Exception:  # noqa: BLE001 - order only; an unreadable part is reported when read
+            first[name] = (1, name)
+    return sorted(first, key=lambda n: first[n])
+
+
+def _read_split(root: Path, split: str, spec_hash: str):
+    """Part files of one split and their rows (without image bytes), with part and offset."""
+    parts = [p for p in mf.part_files(root) if p.parent.name == f"{mf.PARTITION}={split}"]
+    wanted = [n for n in mf.IMAGE_SCHEMA.names if n != "image_bytes"]
+    frames = []
+    for k, p in enumerate(parts):
+        try:
+            pf = pq.ParquetFile(p)
+        except (OSError, pa.ArrowInvalid) as exc:
+            raise DatasetError(f"unreadable manifest part: {exc}", where=str(p)) from None
+        md = pf.schema_arrow.metadata or {}
+        got = md.get(mf.META_HASH, b"").decode() or "none"
+        if got != spec_hash:
+            raise DatasetError(f"this manifest part was made by spec {got}, but the dataset's spec.json is spec "
+                               f"{spec_hash}; refusing to mix them (regenerate the dataset)", where=str(p))
+        cols = [c for c in wanted if c in pf.schema_arrow.names]
+        t = pf.read(columns=cols)
+        df = t.to_pandas()
+        df["_has_bytes"] = _has_bytes(pf)
+        df["_part"] = k
+        df["_offset"] = np.arange(len(df))
+        frames.append(df)
+    df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=wanted + ["_part", "_offset", "_has_bytes"])
+    df.insert(0, mf.PARTITION, split)
+    if "file" in df:
+        df["file"] = df["file"].fillna("")
+    return parts, df.sort_values("index", kind="stable").reset_index(drop=True)
+
+
+def _has_bytes(pf: pq.ParquetFile) -> np.ndarray:
+    """Which rows of a part hold image bytes, from the row groups' null counts where they
+    settle it (a dataset has one store mode), so the bytes themselves are not read."""
+    names = pf.schema_arrow.names
+    if "image_bytes" not in names:
+        return np.zeros(pf.metadata.num_rows, dtype=bool)
+    col = names.index("image_bytes")
+    out = []
+    for g in range(pf.metadata.num_row_groups):
+        rg = pf.metadata.row_group(g)
+        stats = rg.column(col).statistics
+        nulls = stats.null_count if stats is not None and stats.has_null_count else None
+        if nulls in (0, rg.num_rows):
+            out.append(np.full(rg.num_rows, nulls == 0))
+        else:
+            out.append(pf.read_row_group(g, columns=["image_bytes"]).column(0).is_valid().to_numpy(zero_copy_only=False))
+    return np.concatenate(out) if out else np.zeros(0, dtype=bool)
+
+
+def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFrame:
+    keep = np.ones(len(df), dtype=bool)
+    if classes is not None:
+        if isinstance(classes, (str, int, np.integer)):
+            classes = [classes]
+        idx = []
+        for c in classes:
+            if isinstance(c, (int, np.integer)) and not isinstance(c, bool):
+                if not 0 <= int(c) < len(class_names):
+                    raise DatasetError(f"class index {c} is out of range (0..{len(class_names) - 1})", where="classes")
+                idx.append(int(c))
+            elif c in class_names:
+                idx.append(class_names.index(c))
+            else:
+                close = difflib.get_close_matches(str(c), class_names, n=1)
+                hint = f" (did you mean '{close[0]}'?)" if close else ""
+                raise DatasetError(f"unknown class {c!r}{hint}; the dataset has {', '.join(class_names)}", where="classes")
+        keep &= df["class_index"].isin(idx).to_numpy()
+    if cells is not None:
+        cells = [cells] if isinstance(cells, (int, np.integer)) else list(cells)
+        keep &= df["cell"].isin([int(c) for c in cells]).to_numpy()
+    if query is not None:
+        try:
+            picked = df.query(query)
+        except Exception as exc:  # noqa: BLE001 - pandas raises many kinds for a bad expression
+            msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            raise DatasetError(f"the query cannot be evaluated on the manifest: {msg}", where=f"query {query!r}") from None
+        keep &= df.index.isin(picked.index)
+    return df[keep].reset_index(drop=True)
+
+
+# ---- on-the-fly sampling --------------------------------------------------------------------
+
+
+def _open_built(spec) -> Built:
+    if isinstance(spec, Built):
+        return spec
+    p = Path(spec)
+    if p.is_dir():
+        return open_dataset_spec(p)
+    return open_spec(p)
+
+
+def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
+    """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
+    ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
+    return np.random.Generator(np.random.PCG64(ss))
+
+
+class OnlineSampler:
+    """Unlimited fresh images of one split: item `index` of epoch `epoch` draws its class,
+    instance and transform from the split's region with the stream
+    ``SeedSequence(seed, spawn_key=(ONLINE, split_index, epoch, index, PARAMS))`` and renders
+    with the one for RENDER, so it is the same on any worker, in any order.
+
+    Use it as an iterable (``iter()`` yields items ``start, start + 1, ...`` forever, or up to
+    ``length``; inside torch DataLoader workers each takes its share in blocks of ``block``
+    items — pass ``block=batch_size`` and worker batches equal the single-process ones), or,
+    with ``length``, as a map-style dataset (``len``, ``[i]``) that DataLoader shuffles,
+    batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws.
+
+    Items have the shape of ``Dataset`` items; ``row`` holds the drawn columns (manifest names)
+    plus ``epoch``, ``item`` and ``image_id`` ``'<split>-e<epoch>-<index:07d>'``. With ``log`` (a ParamLog) every drawn item is recorded.
+    ``spec`` is a spec file, a dataset folder or a Built; ``seed`` defaults to the spec's.
+    """
+
+    def __init__(self, spec, split: str, *, length: int | None = None, epoch: int = 0, seed: int | None = None,
+                 target="class", chw_float: bool = False, log=None, block: int = 1, start: int = 0,
+                 transform: Callable[[dict], dict] | None = None):
+        built = _open_built(spec)
+        self._built = built
+        self._split = built.plan.split(split)  # SpecError listing the splits when unknown
+        self.split = split
+        self.seed = built.spec.seed if seed is None else int(seed)
+        if self.seed < 0:
+            raise DatasetError(f"seed must be a non-negative integer, got {seed}", where="OnlineSampler")
+        if length is not None and int(length) < 0:
+            raise DatasetError(f"length must be >= 0, got {length}", where="OnlineSampler")
+        if int(block) < 1 or int(start) < 0:
+            raise DatasetError(f"block must be >= 1 and start >= 0, got block={block}, start={start}",
+                               where="OnlineSampler")
+        self.length = None if length is None else int(length)
+        self.epoch = int(epoch)
+        self.block = int(block)
+        self.start = int(start)
+        self.names = _check_target(target, ROW_COLUMNS, "target")
+        self.target = target
+        self.chw_float = bool(chw_float)
+        self.transform = transform
+        self.log = log
+        self.param_names = param_names(built)
+        self.hw = (built.spec.canvas.height, built.spec.canvas.width)
+        self._k = built.plan.space.ndim + 3
+
+    def set_epoch(self, epoch: int) -> None:
+        self.epoch = int(epoch)
+
+    def __len__(self) -> int:
+        if self.length is None:
+            raise TypeError("an unlimited OnlineSampler has no length; pass length=N to use it map-style")
+        return self.length
+
+    def __getitem__(self, index) -> dict:
+        if self.length is None:
+            raise TypeError("an unlimited OnlineSampler is iterated, not indexed; pass length=N to index it")
+        if isinstance(index, (bool, np.bool_)) or not isinstance(index, (int, np.integer)):
+            raise TypeError(f"sampler indices are integers, not {type(index).__name__}")
+        i, n = int(index), self.length
+        if i < -n or i >= n:
+            raise DatasetIndexError(f"index {i} is out of range for {n} item(s) per epoch (valid: {-n}..{n - 1})",
+                                    where=f"OnlineSampler:{self.split}")
+        return self.item(i + n if i < 0 else i)
+
+    def __iter__(self) -> Iterator[dict]:
+        wid, nw = 0, 1
+        torch = __import__("sys").modules.get("torch")
+        if torch is not None:
+            info = torch.utils.data.get_worker_info()
+            if info is not None:
+                wid, nw = int(info.id), int(info.num_workers)
+        b = self.block
+        k = self.start + wid * b  # this worker's blocks: wid, wid + nw, wid + 2 nw, ...
+        while True:
+            for index in range(k, k + b):
+                if self.length is not None and index >= self.start + self.length:
+                    return
+                yield self.item(index)
+            k += nw * b
+
+    def draw(self, index: int, epoch: int | None = None) -> dict:
+        """The drawn columns of item `index` (class, instance, every axis, cx_px, cy_px, cell)."""
+        epoch = self.epoch if epoch is None else int(epoch)
+        u = online_rng(self.seed, self._split.index, epoch, index, PARAMS).random((1, self._k))
+        cols = draw_online(self._built.plan, self._split, u, indices=[index])
+        return {k: (v[0].item() if isinstance(v[0], np.generic) else v[0]) for k, v in cols.items()}
+
+    def item(self, index: int, epoch: int | None = None) -> dict:
+        """Item `index` of `epoch` (default: the current epoch)."""
+        epoch = self.epoch if epoch is None else int(epoch)
+        index = int(index)
+        row = self.draw(index, epoch)
+        built = self._built
+        rng = online_rng(self.seed, self._split.index, epoch, index, RENDER)
+        scene = make_scene(built.plan, built.source, built.background, self._split, row, rng=rng)
+        t = scene.target
+        row.update(image_id=f"{self.split}-e{epoch}-{index:07d}", split=self.split, epoch=epoch, item=index,
+                   seed=self.seed, split_index=self._split.index,
+                   bbox_x0=t.bbox[0], bbox_y0=t.bbox[1], bbox_x1=t.bbox[2], bbox_y1=t.bbox[3],
+                   footprint_px=t.footprint_px, visible_fraction=t.visible_fraction,
+                   n_distractors=len(scene.distractors), width=self.hw[1], height=self.hw[0])
+        if self.log is not None:
+            self.log.record(built.plan, self.split, row, epoch=epoch, item=index, source="OnlineSampler")
+        item = {"image": scene.image,
+                "target": _targets(self.names, row, self.param_names, lambda: _target_mask(t, self.hw)),
+                "row": row}
+        if self.transform is not None:
+            item = self.transform(item)
+        if self.chw_float:
+            item["image"] = _to_chw_float(item["image"])
+        return item
+
+    def torch_iterable(self):
+        """This sampler as a torch IterableDataset (imports torch), for DataLoader's iterable
+        mode; plain iteration and map-style use need no torch at all."""
+        return _torch_iterable_class()(self)
+
+    def __repr__(self) -> str:
+        n = "unlimited" if self.length is None else self.length
+        return f"OnlineSampler(split={self.split!r}, items={n}, epoch={self.epoch}, seed={self.seed}, block={self.block})"
+
+
+@functools.lru_cache(maxsize=None)
+def _torch_iterable_class():
+    import torch.utils.data as tud
+
+    class TorchOnlineIterable(tud.IterableDataset):
+        """An OnlineSampler seen by torch as an IterableDataset (workers shard it themselves)."""
+
+        def __init__(self, sampler: OnlineSampler):
+            self.sampler = sampler
+
+        def __iter__(self):
+            return iter(self.sampler)
+
+    TorchOnlineIterable.__module__ = __name__
+    TorchOnlineIterable.__qualname__ = "TorchOnlineIterable"
+    return TorchOnlineIterable
+
+
+def __getattr__(name: str):
+    # made on first use, so importing this module never imports torch; pickle finds it here
+    if name == "TorchOnlineIterable":
+        return _torch_iterable_class()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
