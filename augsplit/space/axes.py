@@ -59,6 +59,21 @@ class Axis:
     unit: str = ""
     levels: tuple[float, ...] = field(default=())
 
+    def __post_init__(self):
+        # a bad axis would otherwise surface later as NaN masses or a math domain error
+        if self.measure not in MEASURES:
+            raise ValueError(f"axis {self.name}: unknown measure {self.measure!r}, expected one of {MEASURES}")
+        object.__setattr__(self, "levels", tuple(self.levels))  # a list would make the axis unhashable
+        if self.measure == LEVELS:
+            lv = np.asarray(self.levels, dtype=float)
+            if lv.size == 0 or not np.all(np.isfinite(lv)) or np.unique(lv).size != lv.size:
+                raise ValueError(f"axis {self.name}: levels must be distinct finite numbers, got {list(self.levels)}")
+            return
+        if not (math.isfinite(self.lo) and math.isfinite(self.hi) and self.lo < self.hi):
+            raise ValueError(f"axis {self.name}: range [{self.lo:g}, {self.hi:g}] is not a finite interval with lo < hi")
+        if self.measure == LOG and self.lo <= 0:
+            raise ValueError(f"axis {self.name}: a log axis needs a range above zero, got [{self.lo:g}, {self.hi:g}]")
+
     @property
     def circular(self) -> bool:
         return self.measure == CIRCULAR
@@ -81,17 +96,23 @@ class Axis:
         lo, hi = self.t_range
         return hi - lo
 
+    def wrap(self, values) -> np.ndarray:
+        """Circular values -> [lo, hi); other axes unchanged."""
+        v = np.asarray(values, dtype=float)
+        if not self.circular:
+            return v
+        w = self.lo + np.mod(v - self.lo, self.period)
+        return np.where(w >= self.hi, self.lo, w)  # fmod rounding can land exactly on hi
+
     def to_t(self, values) -> np.ndarray:
         """Values in the axis unit -> measure coordinate. Values off a levels axis give NaN."""
         v = np.asarray(values, dtype=float)
         if self.measure == LOG:
             with np.errstate(divide="ignore", invalid="ignore"):
                 return np.where(v > 0, np.log(np.where(v > 0, v, 1.0)), np.nan)
-        if self.measure == CIRCULAR:
-            return self.lo + np.mod(v - self.lo, self.period)
         if self.measure == LEVELS:
             return self._level_index(v)
-        return v
+        return self.wrap(v)
 
     def _level_index(self, v: np.ndarray) -> np.ndarray:
         # nearest level by binary search: O(N log L) time and O(N) memory, even for many classes
@@ -107,56 +128,68 @@ class Axis:
         return np.where(ok, order[near].astype(float), np.nan)
 
     def from_t(self, t) -> np.ndarray:
-        """Measure coordinate -> value in the axis unit (levels: nearest level)."""
+        """Measure coordinate -> value in the axis unit (levels: nearest level; NaN stays NaN)."""
         t = np.asarray(t, dtype=float)
         if self.measure == LOG:
             return np.exp(t)
         if self.measure == LEVELS:
-            idx = np.clip(np.rint(t), 0, len(self.levels) - 1).astype(int)
-            return np.asarray(self.levels, dtype=float)[idx]
+            finite = np.isfinite(t)
+            idx = np.clip(np.rint(np.where(finite, t, 0.0)), 0, len(self.levels) - 1).astype(int)
+            return np.where(finite, np.asarray(self.levels, dtype=float)[idx], np.nan)
         return t
 
     def interval_to_t(self, a: float, b: float) -> list[tuple[float, float]]:
         """A closed interval [a, b] in axis units -> disjoint t-intervals (wrap splits in two).
 
+        On a circular axis [a, b] runs counter-clockwise from a to b, so [330, 30] and
+        [-30, 30] are the same 60-degree interval and b - a >= period is the whole circle.
         Raises ValueError with a user-readable reason; the spec layer adds the key path.
         """
+        a, b = float(a), float(b)
         if not (math.isfinite(a) and math.isfinite(b)):
             raise ValueError(f"interval [{a:g}, {b:g}] is not finite")
         if self.measure == CIRCULAR:
-            if b - a >= self.period - 1e-12:
-                return [self.t_range]
-            a0 = self.lo + (a - self.lo) % self.period
-            b0 = self.lo + (b - self.lo) % self.period
-            if a0 == b0 and a != b:
-                return [self.t_range]
-            if a0 < b0 or (a0 == b0):
-                if b0 - a0 <= 0:
-                    raise ValueError(f"interval [{a:g}, {b:g}] is empty")
-                return [(a0, b0)]
-            return [(a0, self.hi), (self.lo, b0)]  # wraps round, e.g. [330, 30]
+            return self._circular_to_t(a, b)
         if b < a:
-            raise ValueError(f"interval [{a:g}, {b:g}] is empty")
-        if a < self.lo - 1e-9 * max(1.0, abs(self.lo)) or b > self.hi + 1e-9 * max(1.0, abs(self.hi)):
+            raise ValueError(f"interval [{a:g}, {b:g}] is empty (the end is below the start)")
+        tol = 1e-9 * max(1.0, abs(self.lo), abs(self.hi))
+        if a < self.lo - tol or b > self.hi + tol:
             raise ValueError(f"interval [{a:g}, {b:g}] lies outside the axis range [{self.lo:g}, {self.hi:g}]")
         if self.measure == LEVELS:
-            lv = np.asarray(self.levels, dtype=float)
-            inside = np.flatnonzero((lv >= a - 1e-9) & (lv <= b + 1e-9))
-            if inside.size == 0:
-                raise ValueError(f"interval [{a:g}, {b:g}] holds none of the levels {list(self.levels)}")
-            # consecutive runs of level indices become unit cells [i-0.5, j+0.5]
-            runs, start = [], inside[0]
-            for prev, cur in zip(inside[:-1], inside[1:]):
-                if cur != prev + 1:
-                    runs.append((start - 0.5, prev + 0.5))
-                    start = cur
-            runs.append((start - 0.5, inside[-1] + 0.5))
-            return [(float(x), float(y)) for x, y in runs]
+            return self._level_runs(a, b)
         if b == a:
             raise ValueError(f"interval [{a:g}, {b:g}] has zero width")
         if self.measure == LOG:
-            return [(math.log(a), math.log(b))]
-        return [(float(a), float(b))]
+            return [(math.log(max(a, self.lo)), math.log(min(b, self.hi)))]
+        return [(max(a, self.lo), min(b, self.hi))]
+
+    def _circular_to_t(self, a: float, b: float) -> list[tuple[float, float]]:
+        lo, hi = float(self.lo), float(self.hi)
+        period = hi - lo
+        tol = 1e-9 * period  # written bounds like [0.3, 360.3] differ from a turn by rounding only
+        if b - a >= period - tol:
+            return [(lo, hi)]
+        arc = (b - a) % period
+        if arc <= tol or arc >= period - tol:  # b - a is 0 or a negative multiple of the period
+            raise ValueError(f"interval [{a:g}, {b:g}] has zero width (write [{lo:g}, {hi:g}] for the whole circle)")
+        a0, b0 = float(self.wrap(a)), float(self.wrap(b))
+        if a0 < b0:
+            return [(a0, b0)]
+        if b0 <= lo + tol:  # ends on the seam: one piece, not a zero-width second one
+            return [(a0, hi)]
+        return [(a0, hi), (lo, b0)]  # wraps round, e.g. [330, 30]
+
+    def _level_runs(self, a: float, b: float) -> list[tuple[float, float]]:
+        lv = np.asarray(self.levels, dtype=float)
+        tol = 1e-9 * max(1.0, abs(a), abs(b))
+        inside = np.flatnonzero((lv >= a - tol) & (lv <= b + tol))
+        if inside.size == 0:
+            raise ValueError(f"interval [{a:g}, {b:g}] holds none of the levels {list(self.levels)}")
+        # runs of consecutive level indices become unions of unit cells [i - 0.5, j + 0.5]
+        breaks = np.flatnonzero(np.diff(inside) != 1)
+        starts = inside[np.r_[0, breaks + 1]]
+        ends = inside[np.r_[breaks, inside.size - 1]]
+        return [(float(i) - 0.5, float(j) + 0.5) for i, j in zip(starts, ends)]
 
     def t_to_interval(self, lo_t: float, hi_t: float) -> tuple[float, float]:
         """A t-interval back in axis units, for display."""
@@ -183,6 +216,7 @@ class Space:
         self.t_lo = np.array([a.t_range[0] for a in self.axes], dtype=float)
         self.t_hi = np.array([a.t_range[1] for a in self.axes], dtype=float)
         self.periodic = np.array([a.circular for a in self.axes], dtype=bool)
+        self.discrete = np.array([a.measure == LEVELS for a in self.axes], dtype=bool)
 
     @property
     def ndim(self) -> int:
@@ -207,16 +241,31 @@ class Space:
     def __repr__(self) -> str:
         return "Space(" + ", ".join(self.names) + ")"
 
+    def as_points(self, values) -> np.ndarray:
+        """An (N, ndim) float array of points; one point may be given as shape (ndim,).
+
+        Refuses other shapes rather than reshaping them, which would silently mix coordinates.
+        """
+        v = np.asarray(values, dtype=float)
+        if v.ndim == 1 and (v.size == self.ndim or self.ndim == 1):
+            return v.reshape(-1, self.ndim)
+        if v.ndim != 2 or v.shape[1] != self.ndim:
+            raise ValueError(f"expected points of shape (N, {self.ndim}) for axes {self.names}, got shape {v.shape}")
+        return v
+
     def to_t(self, values: dict | np.ndarray) -> np.ndarray:
         """Points as {axis: values} or an (N, ndim) array in axis units -> (N, ndim) in t."""
         if isinstance(values, dict):
-            cols = [self.axes[i].to_t(values[n]) for i, n in enumerate(self.names)]
+            missing = [n for n in self.names if n not in values]
+            if missing:
+                raise ValueError(f"points lack values for axes {missing}")
+            cols = [a.to_t(values[a.name]) for a in self.axes]
             return np.stack(np.broadcast_arrays(*cols), axis=-1).reshape(-1, self.ndim)
-        v = np.asarray(values, dtype=float).reshape(-1, self.ndim)
+        v = self.as_points(values)
         return np.stack([a.to_t(v[:, i]) for i, a in enumerate(self.axes)], axis=-1)
 
     def from_t(self, t: np.ndarray) -> np.ndarray:
-        t = np.asarray(t, dtype=float).reshape(-1, self.ndim)
+        t = self.as_points(t)
         return np.stack([a.from_t(t[:, i]) for i, a in enumerate(self.axes)], axis=-1)
 
     def normalise_t(self, t: np.ndarray) -> np.ndarray:

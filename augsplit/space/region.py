@@ -18,7 +18,11 @@ _EPS = 1e-12
 
 @dataclass(frozen=True, eq=False)
 class Region:
-    """Disjoint boxes `lo[k] <= t <= hi[k]` (per axis, in measure coordinates) of `space`."""
+    """Disjoint boxes `lo[k] <= t <= hi[k]` (per axis, in measure coordinates) of `space`.
+
+    The constructor trusts that the boxes are disjoint (`box` and the set operations keep
+    them so); it clips them to the space and drops boxes of zero width.
+    """
 
     space: Space
     lo: np.ndarray  # (nbox, ndim)
@@ -27,6 +31,10 @@ class Region:
     def __post_init__(self):
         lo = np.asarray(self.lo, dtype=float).reshape(-1, self.space.ndim)
         hi = np.asarray(self.hi, dtype=float).reshape(-1, self.space.ndim)
+        if lo.shape != hi.shape:
+            raise ValueError(f"box corners disagree: lo has shape {lo.shape}, hi has shape {hi.shape}")
+        lo = np.maximum(lo, self.space.t_lo)
+        hi = np.minimum(hi, self.space.t_hi)
         keep = np.all(hi - lo > _EPS, axis=1)
         lo, hi = lo[keep], hi[keep]
         lo.setflags(write=False); hi.setflags(write=False)
@@ -48,14 +56,17 @@ class Region:
 
         Intervals of one axis are merged first, so the product of the lists is disjoint.
         """
-        per_axis = []
-        for i, name in enumerate(space.names):
-            ivs = intervals.get(name)
-            per_axis.append(_merge(ivs) if ivs is not None else [(space.t_lo[i], space.t_hi[i])])
+        unknown = sorted(set(intervals) - set(space.names))
+        if unknown:
+            raise ValueError(f"unknown axes {unknown}; the space has {list(space.names)}")
+        per_axis = [
+            np.array(_merge(intervals[n]) if n in intervals else [(space.t_lo[i], space.t_hi[i])], dtype=float).reshape(-1, 2)
+            for i, n in enumerate(space.names)
+        ]
+        # every combination of one interval per axis is one box
         grids = np.meshgrid(*[np.arange(len(p)) for p in per_axis], indexing="ij")
-        combos = np.stack([g.ravel() for g in grids], axis=-1) if per_axis else np.zeros((1, 0), int)
-        lo = np.array([[per_axis[a][c][0] for a, c in enumerate(row)] for row in combos], dtype=float)
-        hi = np.array([[per_axis[a][c][1] for a, c in enumerate(row)] for row in combos], dtype=float)
+        lo = np.stack([p[g.ravel(), 0] for p, g in zip(per_axis, grids)], axis=-1)
+        hi = np.stack([p[g.ravel(), 1] for p, g in zip(per_axis, grids)], axis=-1)
         return cls(space, lo, hi)
 
     # ---- set algebra ----------------------------------------------------------------
@@ -66,6 +77,7 @@ class Region:
             raise ValueError("regions of different spaces cannot be combined")
 
     def __and__(self, other: "Region") -> "Region":
+        # boxes of each side are disjoint, so their pairwise intersections are too
         self._check(other)
         lo = np.maximum(self.lo[:, None, :], other.lo[None, :, :]).reshape(-1, self.space.ndim)
         hi = np.minimum(self.hi[:, None, :], other.hi[None, :, :]).reshape(-1, self.space.ndim)
@@ -75,9 +87,9 @@ class Region:
         self._check(other)
         lo, hi = self.lo, self.hi
         for b_lo, b_hi in zip(other.lo, other.hi):
-            lo, hi = _box_difference(lo, hi, b_lo, b_hi)
             if len(lo) == 0:
                 break
+            lo, hi = _box_difference(lo, hi, b_lo, b_hi)
         return Region(self.space, lo, hi)
 
     def __or__(self, other: "Region") -> "Region":
@@ -106,36 +118,46 @@ class Region:
     def contains_t(self, t: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
         """Membership of N points given in t (closed boxes); NaN coordinates are outside.
 
-        Work is cut into chunks of about `chunk` point-box pairs, so memory stays bounded.
+        On a circular axis the two ends of the range are one point, so a point on the seam
+        belongs to boxes touching it from either side. Work is cut into chunks of about
+        `chunk` point-box pairs, so memory stays bounded for any N.
         """
-        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
-        out = np.zeros(len(t), dtype=bool)
+        out = np.zeros(len(self.space.as_points(t)), dtype=bool)
         for rows, inside in self._inside_chunks(t, chunk):
             out[rows] = inside.any(axis=1)
         return out
 
     def box_of_t(self, t: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
         """Index of the first box holding each point (as `contains_t` decides), -1 where none."""
-        t = np.asarray(t, dtype=float).reshape(-1, self.space.ndim)
-        out = np.full(len(t), -1, dtype=np.int64)
+        out = np.full(len(self.space.as_points(t)), -1, dtype=np.int64)
         for rows, inside in self._inside_chunks(t, chunk):
             k = inside.argmax(axis=1)
             out[rows] = np.where(inside[np.arange(len(k)), k], k, -1)
         return out
 
-    def _inside_chunks(self, t: np.ndarray, chunk: int):
+    def _inside_chunks(self, t, chunk: int):
         """Yield (slice of points, bool (n, nbox) membership) chunk by chunk."""
+        sp = self.space
+        t = sp.as_points(t)
         if self.nbox == 0 or len(t) == 0:
             return
-        tol = 1e-9 * np.maximum(1.0, np.abs(self.space.t_span))
+        tol = 1e-9 * np.maximum(1.0, np.abs(sp.t_span))
         lo, hi = self.lo - tol, self.hi + tol
+        # boxes that touch a circular axis's seam (at its low or high end)
+        at_lo = sp.periodic & (self.lo <= sp.t_lo + tol)
+        at_hi = sp.periodic & (self.hi >= sp.t_hi - tol)
+        seam = [i for i in range(sp.ndim) if at_lo[:, i].any() or at_hi[:, i].any()]
         step = max(1, chunk // self.nbox)
         for s in range(0, len(t), step):
             p = t[s : s + step]
-            # one (n, nbox) mask per axis: no (n, nbox, ndim) temporary
+            p = np.where(sp.periodic, sp.t_lo + np.mod(p - sp.t_lo, sp.t_span), p)
             inside = np.ones((len(p), self.nbox), dtype=bool)
-            for i in range(self.space.ndim):
-                inside &= (p[:, i, None] >= lo[:, i]) & (p[:, i, None] <= hi[:, i])
+            for i in range(sp.ndim):
+                c = p[:, i, None]
+                ok = (c >= lo[:, i]) & (c <= hi[:, i])
+                if i in seam:
+                    ok |= ((c <= sp.t_lo[i] + tol[i]) & at_hi[:, i]) | ((c >= sp.t_hi[i] - tol[i]) & at_lo[:, i])
+                inside &= ok
             yield slice(s, s + len(p)), inside
 
     def contains(self, points) -> np.ndarray:
@@ -143,7 +165,7 @@ class Region:
         return self.contains_t(self.space.to_t(points))
 
     def restrict(self, name: str, lo_t: float, hi_t: float) -> "Region":
-        """The part of the region whose axis `name` lies in [lo_t, hi_t]."""
+        """The part of the region whose axis `name` lies in the t-interval [lo_t, hi_t]."""
         i = self.space.index[name]
         lo = self.space.t_lo.copy(); hi = self.space.t_hi.copy()
         lo[i], hi[i] = lo_t, hi_t
@@ -173,9 +195,11 @@ class Region:
 
 
 def _merge(ivs) -> list[tuple[float, float]]:
-    ivs = sorted((float(a), float(b)) for a, b in ivs)
+    """Sorted union of 1-D intervals (touching ones joined; empty or reversed ones dropped)."""
     out: list[list[float]] = []
-    for a, b in ivs:
+    for a, b in sorted((float(a), float(b)) for a, b in ivs):
+        if b - a <= _EPS:
+            continue
         if out and a <= out[-1][1] + _EPS:
             out[-1][1] = max(out[-1][1], b)
         else:
@@ -204,14 +228,13 @@ def _merge_along(lo: np.ndarray, hi: np.ndarray, i: int):
 def _box_difference(lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray, b_hi: np.ndarray):
     """Boxes (lo, hi) minus one box, as disjoint boxes. Vectorised over the first argument.
 
-    Classic slab decomposition: along axis k keep the parts of A below and above B,
-    with axes < k already clipped to B; what is left after all axes lies inside B.
+    Slab decomposition: along axis k keep the parts of A below and above B, with axes < k
+    already clipped to B; what is left after all axes lies inside B and is dropped.
     """
-    d = lo.shape[1]
     touches = np.all((lo < b_hi - _EPS) & (hi > b_lo + _EPS), axis=1)
     out_lo, out_hi = [lo[~touches]], [hi[~touches]]
     cur_lo, cur_hi = lo[touches].copy(), hi[touches].copy()
-    for k in range(d):
+    for k in range(lo.shape[1]):
         below_lo, below_hi = cur_lo.copy(), cur_hi.copy()
         below_hi[:, k] = np.minimum(cur_hi[:, k], b_lo[k])
         above_lo, above_hi = cur_lo.copy(), cur_hi.copy()

@@ -17,6 +17,7 @@ PARAMS, RENDER = 0, 1  # stream purposes: transform parameters; everything the r
 
 
 def image_rng(seed: int, split_index: int, image_index: int, purpose: int = PARAMS) -> np.random.Generator:
+    """The stream of one image for one purpose, spawned (never offset) from the spec seed."""
     ss = np.random.SeedSequence(int(seed), spawn_key=(int(split_index), int(image_index), int(purpose)))
     return np.random.Generator(np.random.PCG64(ss))
 
@@ -33,16 +34,32 @@ def image_uniforms(seed: int, split_index: int, indices, k: int) -> np.ndarray:
 def sample_t(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Map uniforms (N, ndim + 1) to points of `region` in t, and the box each came from.
 
-    Column 0 picks the box by mass; columns 1.. place the point inside it.
+    Column 0 picks the box by mass; columns 1.. place the point inside it. Uniform in t is
+    uniform, log-uniform or uniform-on-the-circle in axis units, and on a levels axis every
+    level of a box is equally likely (each owns a unit cell of t).
     """
     if region.is_empty():
         raise ValueError("cannot sample from an empty region")
-    u = np.asarray(u, dtype=float).reshape(-1, region.space.ndim + 1)
+    u = np.asarray(u, dtype=float)
+    n_col = region.space.ndim + 1
+    if u.ndim == 1 and u.size == n_col:
+        u = u[None, :]
+    if u.ndim != 2 or u.shape[1] != n_col:
+        raise ValueError(f"expected uniforms of shape (N, {n_col}) (one for the box, one per axis), got shape {u.shape}")
+    if not np.all((u >= 0) & (u <= 1)):
+        raise ValueError("uniforms must lie in [0, 1]")
     cum = np.cumsum(region.box_masses())
-    box = np.searchsorted(cum / cum[-1], u[:, 0], side="right")
-    box = np.minimum(box, region.nbox - 1)
+    # u0 in [0, 1) falls in box k with probability mass_k / total; u0 = 1 goes to the last box
+    box = np.minimum(np.searchsorted(cum / cum[-1], u[:, 0], side="right"), region.nbox - 1)
     lo, hi = region.lo[box], region.hi[box]
-    return lo + u[:, 1:] * (hi - lo), box
+    t = lo + u[:, 1:] * (hi - lo)
+    levels = region.space.discrete
+    if levels.any():
+        # a levels box spans whole unit cells: pick one cell evenly and return its exact
+        # index, so no draw can land on a cell face and round to a level outside the box
+        n = np.maximum(np.rint(hi - lo), 1.0)
+        t = np.where(levels, np.rint(lo + 0.5) + np.minimum(np.floor(u[:, 1:] * n), n - 1), t)
+    return t, box
 
 
 def sample(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
