@@ -92,8 +92,10 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
                     pending[pool.submit(task, job)] = job
                 done, _ = wait(pending, return_when=FIRST_COMPLETED)
                 for fut in done:
-                    job = pending.pop(fut)
-                    yield job, fut.result()
+                    job = pending[fut]
+                    result = fut.result()  # BrokenProcessPool leaves the job in `pending`, to be redone
+                    del pending[fut]
+                    yield job, result
         except BrokenProcessPool:
             deaths += 1
             lost = list(pending.values())
@@ -153,7 +155,7 @@ def dask_client(scheduler: str | None, workers: int, timeout: float = CONNECT_TI
                                where=scheduler) from None
     # one thread per worker: the work is CPU-bound Python + OpenCV, so processes give the parallelism
     cluster = LocalCluster(n_workers=max(1, workers), threads_per_worker=1, processes=True,
-                           dashboard_address=None, silence_logs=logging.CRITICAL)
+                           dashboard_address=":0", silence_logs=logging.CRITICAL)
     return Client(cluster, set_as_default=False), cluster
 
 

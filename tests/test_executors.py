@@ -1,0 +1,89 @@
+"""Executors: every job's result comes back exactly once, whatever dies on the way; a dask
+scheduler that is not there is reported in one line, quickly, before anything is written."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from augsplit import executors
+from augsplit.errors import DatasetError
+
+
+def square(job):
+    return job * job
+
+
+def die_once(job, marker_dir: str = ""):
+    """Kills its own worker process the first time it sees job 3 (as the OOM killer would)."""
+    marker = Path(marker_dir) / f"died-{job}"
+    if job == 3 and not marker.exists():
+        marker.touch()
+        os.kill(os.getpid(), signal.SIGKILL)
+    return job * job
+
+
+def always_die(job):
+    os.kill(os.getpid(), signal.SIGKILL)
+
+
+def pid_and_sigint(job):
+    return os.getpid(), signal.getsignal(signal.SIGINT) is signal.SIG_IGN
+
+
+def test_serial_and_processes_return_every_result_once():
+    jobs = list(range(20))
+    got_serial = dict(executors.run_serial(square, jobs))
+    got_pool = dict(executors.run_processes(square, jobs, workers=2))
+    assert got_serial == got_pool == {j: j * j for j in jobs}
+
+
+def test_a_dead_worker_loses_and_duplicates_nothing(tmp_path):
+    import functools
+
+    task = functools.partial(die_once, marker_dir=str(tmp_path))
+    results = list(executors.run_processes(task, list(range(10)), workers=2))
+    assert (tmp_path / "died-3").exists()  # the worker really died
+    jobs = [j for j, _ in results]
+    assert sorted(jobs) == list(range(10))  # each job reported exactly once
+    assert dict(results) == {j: j * j for j in range(10)}
+
+
+def test_a_job_that_always_kills_its_worker_stops_the_run():
+    with pytest.raises(DatasetError, match="died"):
+        list(executors.run_processes(always_die, [1, 2], workers=2, max_restarts=1))
+
+
+def test_pool_workers_leave_ctrl_c_to_the_parent():
+    out = dict(executors.run_processes(pid_and_sigint, list(range(4)), workers=2))
+    assert all(ignored for _pid, ignored in out.values())
+    assert all(pid != os.getpid() for pid, _ in out.values())
+
+
+def test_dispatch():
+    assert list(executors.run(square, [2], workers=4)) == [(2, 4)]  # one job: no pool needed
+    with pytest.raises(DatasetError, match="unknown executor"):
+        executors.run(square, [1], executor="mpi")
+
+
+def test_unreachable_scheduler_is_one_line_exit_2_and_touches_nothing(tmp_path):
+    """Nothing listens on port 1 of the loopback; the CLI must give up on its own, in one line.
+    The subprocess timeout only guards against a hang (the error's own limit is 5 s)."""
+    out = tmp_path / "never"
+    proc = subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", "demo", "--out", str(out),
+                           "--scheduler", "tcp://127.0.0.1:1", "--quiet"],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "tcp://127.0.0.1:1" in lines[0] and "dask scheduler" in lines[0], proc.stderr
+    assert not out.exists()
+
+
+def test_malformed_scheduler_address_is_a_dataset_error():
+    with pytest.raises(DatasetError, match="no-port-here"):
+        executors.dask_client("no-port-here", 1, timeout=1)
