@@ -70,7 +70,10 @@ def _axis(name: str, a, spec: Spec, canvas: Canvas) -> Axis:
         raise SpecError("visual angles must lie within (-90, 90) degrees", where=f"{where}.range")
     dist = a.dist if a is not None else "uniform"
     if name == "mirror":
-        return Axis(name, 0.0, 1.0, LEVELS, unit, tuple(v for v in (0.0, 1.0) if lo <= v <= hi))
+        levels = tuple(v for v in (0.0, 1.0) if lo <= v <= hi)
+        if not levels:
+            raise SpecError(f"mirror range [{lo:g}, {hi:g}] holds neither 0 nor 1", where=f"{where}.range")
+        return Axis(name, levels[0], levels[-1], LEVELS, unit, levels)
     if dist == "log":
         if lo <= 0:
             raise SpecError("dist: log needs a positive range", where=f"{where}.range")
