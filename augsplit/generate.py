@@ -321,9 +321,11 @@ def prepare_out(out: Path, built: Built, opts: Options) -> None:
         out.mkdir(parents=True, exist_ok=True)
         spec_file = out / mf.SPEC_FILE
         if not spec_file.exists():
+            # the spec in its own key order: the order of splits and axes is part of every
+            # image's seed key and of its draws, so a sorted copy would re-make other images
             doc = {"spec_hash": built.plan.hash, "base_dir": str(built.base_dir.resolve()),
-                   "spec": json.loads(canonical(built.spec)), "layout": _layout(opts)}
-            write_text_atomic(spec_file, json.dumps(doc, indent=2, sort_keys=True))
+                   "layout": _layout(opts), "spec": built.spec.model_dump(mode="json")}
+            write_text_atomic(spec_file, json.dumps(doc, indent=2))
     except PermissionError as exc:
         raise DatasetError("permission denied", where=str(exc.filename or out)) from None
     except OSError as exc:

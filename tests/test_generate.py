@@ -48,7 +48,7 @@ def assert_same_tree(a: Path, b: Path) -> None:
 @pytest.fixture(scope="module")
 def spec_file(tmp_path_factory) -> Path:
     p = tmp_path_factory.mktemp("spec") / "spec.yaml"
-    p.write_text(yaml.safe_dump(SPEC))
+    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
     return p
 
 
@@ -118,6 +118,15 @@ def test_row_groups_of_large_canvases_are_bounded_by_bytes():
     rows = gen.rows_per_group(built, Options(store="parquet"))
     assert 1 <= rows and rows * 1024 * 1024 * 3 <= gen.ROW_GROUP_BYTES < (rows + 1) * 1024 * 1024 * 3
     assert gen.rows_per_group(built, Options(store="files")) == gen.ROW_GROUP_ROWS
+
+
+def test_reopened_dataset_keeps_the_order_of_splits_and_axes(spec_file, serial):
+    """Split order is part of every image's seed key and axis order of its draws: the spec a
+    dataset folder re-opens must be the one it was made from, not a key-sorted copy."""
+    made, reopened = open_spec(spec_file).plan, gen.open_dataset_spec(serial).plan
+    assert [s.name for s in reopened.splits] == [s.name for s in made.splits] == ["train", "test"]
+    assert reopened.space.names == made.space.names
+    assert reopened.hash == made.hash
 
 
 def test_spec_json_records_the_storage_layout(serial):

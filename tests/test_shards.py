@@ -1,0 +1,170 @@
+"""Job-array shards: N uncoordinated jobs (started at once, as a cluster job array does) plus
+--finalize equal one serial run byte for byte; bad shard numbers, missing shards and shards of
+another spec are refused in one line with exit 2."""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from augsplit import manifest as mf
+from augsplit.cli import main
+from augsplit.errors import DatasetError
+from augsplit.generate import Options, finalize, generate
+
+SPEC = {
+    "seed": 3,
+    "canvas": {"width": 32, "height": 32, "mode": "gray"},
+    "objects": {"kind": "polyomino", "cells": 3, "cell_px": 3},
+    "background": {"kind": "pink_noise", "mean": 0.5, "contrast": 0.1},
+    "axes": {"x": {"range": [6, 26]}, "y": {"range": [6, 26]}, "scale": {"range": [0.8, 1.2]},
+             "angle": {"range": [-30, 30]}},
+    "splits": {"train": {"region": {"x": [6, 14]}, "count": 26}, "test": {"region": {"x": [18, 26]}, "count": 11}},
+}
+SIZE = 4  # 7 + 3 = 10 shards, so 4 jobs get 3, 3, 2 and 2 of them
+CLI = [sys.executable, "-m", "augsplit.cli"]
+
+
+def tree(root: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def spec_file(tmp_path_factory) -> Path:
+    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
+    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
+    return p
+
+
+@pytest.fixture(scope="module")
+def serial(spec_file, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("serial") / "ds"
+    generate(spec_file, out, Options(shard_size=SIZE, progress=False))
+    return out
+
+
+def cli(capsys, *args) -> tuple[int, str, str]:
+    code = main([str(a) for a in args])
+    cap = capsys.readouterr()
+    return code, cap.out, cap.err
+
+
+def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file, serial, tmp_path):
+    out = tmp_path / "array"
+    procs = [subprocess.Popen(CLI + ["generate", str(spec_file), "--out", str(out), "--shard", f"{k}/4",
+                                     "--shard-size", str(SIZE), "--quiet"], stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True) for k in range(4)]
+    for p in procs:
+        stdout, stderr = p.communicate(timeout=120)
+        assert p.returncode == 0, stderr
+        assert "--finalize" in stdout  # each job says what to do once all are done
+    assert not (out / mf.SUMMARY_FILE).exists()  # no job declares the dataset complete
+    fin = subprocess.run(CLI + ["generate", "--finalize", "--out", str(out)], capture_output=True, text=True, timeout=120)
+    assert fin.returncode == 0, fin.stderr
+    a, b = tree(serial), tree(out)
+    assert sorted(a) == sorted(b)  # every manifest part, distractor part, image file, spec and summary
+    assert [k for k in a if a[k] != b[k]] == []
+    ver = subprocess.run(CLI + ["verify", str(out)], capture_output=True, text=True, timeout=120)
+    assert ver.returncode == 0 and "OK" in ver.stdout, ver.stdout + ver.stderr
+
+
+@pytest.mark.parametrize("shard", ["4/4", "-1/4", "0/0", "7/3"])
+def test_shard_index_outside_range_is_exit_2_in_one_line(spec_file, tmp_path, capsys, shard):
+    code, _out, err = cli(capsys, "generate", spec_file, "--out", tmp_path / "d", f"--shard={shard}")
+    assert code == 2
+    assert err.count("\n") == 1 and "--shard" in err and "K must lie in" in err
+    assert not (tmp_path / "d").exists()
+
+
+def test_shard_that_is_not_k_over_n_is_exit_2(spec_file, tmp_path):
+    proc = subprocess.run(CLI + ["generate", str(spec_file), "--out", str(tmp_path / "d"), "--shard", "two"],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 2 and "'two' is not K/N" in proc.stderr
+
+
+def test_finalize_names_the_missing_shards(spec_file, tmp_path, capsys):
+    out = tmp_path / "d"
+    for k in (0, 2, 3):  # job 1 of 4 never ran: it makes global shards 1, 5 and 9
+        generate(spec_file, out, Options(shard_size=SIZE, progress=False, array_shard=(k, 4)))
+    code, _o, err = cli(capsys, "generate", "--finalize", "--out", out)
+    assert code == 2 and err.count("\n") == 1
+    assert "3 shard(s) missing" in err
+    # global shards 1, 5 are train parts 1 and 5; global shard 9 is test part 2
+    for name in ("train/part-000001 (shard #1 of 10)", "train/part-000005 (shard #5 of 10)",
+                 "test/part-000002 (shard #9 of 10)"):
+        assert name in err
+    assert not (out / mf.SUMMARY_FILE).exists()
+
+
+def test_a_job_of_another_spec_is_refused(spec_file, tmp_path, capsys):
+    out = tmp_path / "d"
+    generate(spec_file, out, Options(shard_size=SIZE, progress=False, array_shard=(0, 2)))
+    other = tmp_path / "other.yaml"
+    other.write_text(yaml.safe_dump(dict(SPEC, seed=4), sort_keys=False))
+    code, _o, err = cli(capsys, "generate", other, "--out", out, "--shard", "1/2", "--shard-size", SIZE)
+    assert code == 2 and "another spec" in err and err.count("\n") == 1
+
+
+def test_finalize_refuses_a_part_copied_from_another_specs_dataset(spec_file, serial, tmp_path, capsys):
+    other_spec = tmp_path / "other.yaml"
+    other_spec.write_text(yaml.safe_dump(dict(SPEC, seed=4), sort_keys=False))
+    other = tmp_path / "other"
+    generate(other_spec, other, Options(shard_size=SIZE, progress=False))
+    mixed = tmp_path / "mixed"
+    shutil.copytree(serial, mixed)
+    (mixed / mf.SUMMARY_FILE).unlink()
+    stray = mf.part_path(mixed, mf.MANIFEST_DIR, "test", 1)
+    shutil.copyfile(mf.part_path(other, mf.MANIFEST_DIR, "test", 1), stray)
+    code, _o, err = cli(capsys, "generate", "--finalize", "--out", mixed)
+    assert code == 2 and "another spec" in err and str(stray) in err
+    assert not (mixed / mf.SUMMARY_FILE).exists()
+
+
+def test_finalize_refuses_parts_no_shard_makes(spec_file, serial, tmp_path):
+    mixed = tmp_path / "mixed"
+    shutil.copytree(serial, mixed)
+    shutil.copyfile(mf.part_path(mixed, mf.MANIFEST_DIR, "test", 0), mf.part_path(mixed, mf.MANIFEST_DIR, "test", 7))
+    with pytest.raises(DatasetError, match="no shard of this spec makes"):
+        finalize(mixed)
+
+
+def test_overwrite_with_shard_is_refused(spec_file, serial, tmp_path):
+    copy = tmp_path / "copy"
+    shutil.copytree(serial, copy)
+    with pytest.raises(DatasetError, match="--overwrite cannot be combined with --shard"):
+        generate(spec_file, copy, Options(shard_size=SIZE, progress=False, array_shard=(0, 2), overwrite=True))
+    assert tree(copy) == tree(serial)  # nothing deleted
+
+
+def test_finalize_sweeps_temporaries_left_by_killed_jobs(spec_file, serial, tmp_path):
+    copy = tmp_path / "copy"
+    shutil.copytree(serial, copy)
+    (copy / mf.SUMMARY_FILE).unlink()
+    stray = copy / mf.IMAGES_DIR / "train" / ".train-0000003.png.tmp-999"
+    stray.write_bytes(b"half an image")
+    finalize(copy)
+    assert not stray.exists() and tree(copy) == tree(serial)
+
+
+def test_more_jobs_than_shards_is_harmless(spec_file, tmp_path):
+    summary = generate(spec_file, tmp_path / "d", Options(shard_size=SIZE, progress=False, array_shard=(11, 12)))
+    assert summary["images"] == 0 and summary["shards"] == 0
+
+
+def test_a_job_array_peer_mid_start_is_not_mistaken_for_a_stranger(spec_file, tmp_path):
+    """A peer has created the folder and its manifest/ but not yet renamed spec.json in."""
+    out = tmp_path / "d"
+    (out / mf.MANIFEST_DIR).mkdir(parents=True)
+    (out / ".spec.json.tmp-123").write_text("{")
+    generate(spec_file, out, Options(shard_size=SIZE, progress=False, array_shard=(0, 4)))
+    assert (out / mf.SPEC_FILE).exists()
+    stranger = tmp_path / "s"
+    stranger.mkdir()
+    (stranger / "notes.txt").write_text("mine")
+    with pytest.raises(DatasetError, match="holds no augsplit dataset"):
+        generate(spec_file, stranger, Options(shard_size=SIZE, progress=False, array_shard=(0, 4)))
