@@ -266,25 +266,29 @@ class PooledModel:
     readout: Softmax
 
     def features(self, images: np.ndarray) -> np.ndarray:
-        return pooled_features(images, self.bank, self.sizes) / self.scale
+        return pooled_features(images, self.bank, self.sizes)
 
-    def predict_proba(self, images: np.ndarray) -> np.ndarray:
-        return self.readout.predict_proba(self.features(images))
+    def predict_proba(self, images: np.ndarray | None = None, *, features: np.ndarray | None = None) -> np.ndarray:
+        """Class probabilities from images, or from their `features()` computed once before."""
+        F = self.features(images) if features is None else features
+        return self.readout.predict_proba(F / self.scale)
 
-    def predict(self, images: np.ndarray) -> np.ndarray:
-        return self.readout.predict(self.features(images))
+    def predict(self, images: np.ndarray | None = None, *, features: np.ndarray | None = None) -> np.ndarray:
+        F = self.features(images) if features is None else features
+        return self.readout.predict(F / self.scale)
 
 
-def fit_pooled(images: np.ndarray, y: np.ndarray, *, classes=None, bank: FilterBank | None = None,
-               sizes=(4, 8, 16), l2: float = 1e-3, n_iter: int = 300) -> PooledModel:
+def fit_pooled(images: np.ndarray | None, y: np.ndarray, *, classes=None, bank: FilterBank | None = None,
+               sizes=(4, 8, 16), l2: float = 1e-3, n_iter: int = 300, features: np.ndarray | None = None) -> PooledModel:
     """Fixed filters -> rectify -> max over growing neighbourhoods -> linear softmax read-out.
 
     No pooled feature carries the position of what it pooled, so the read-out cannot tie a
     class to where training showed it. (A read-out of the local pooling cells themselves
     would: cells that training never reached get exactly zero weight, as raw pixels do.)
+    `features` may hold `pooled_features(images, bank, sizes)` already computed.
     """
     bank = bank or gabor_bank()
-    F = pooled_features(images, bank, sizes)
+    F = pooled_features(images, bank, sizes) if features is None else np.asarray(features, dtype=np.float32)
     # Scale without centring, as raw pixels are: a feature that is zero on every training
     # image keeps the value 0 there, so the read-out sees the same kind of input as on pixels.
     rms = np.sqrt((F.astype(np.float64) ** 2).mean(axis=0))

@@ -35,7 +35,7 @@ CONFIDENCE = 0.95
 N_BOOT = 2000
 SEED = 20240601
 MANIFEST_COLUMNS = (
-    "image_id", "split", "class_name", "class_index", "cell", "cx_px", "cy_px", "x_deg", "y_deg",
+    "image_id", "split", "split_index", "index", "class_name", "class_index", "cell", "cx_px", "cy_px", "x_deg", "y_deg",
     "eccentricity_deg", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness",
 )
 
@@ -363,7 +363,8 @@ def score(manifest: pd.DataFrame, predictions: pd.DataFrame, train_split: str = 
     where = predictions.attrs.get("where", "predictions")
     mwhere = manifest.attrs.get("where", "manifest")
     reference_split = reference_split or train_split
-    splits = sorted(manifest["split"].astype(str).unique(), key=lambda s: (s != train_split, s))
+    present = list(pd.unique(manifest["split"].astype(str)))  # the manifest's (spec) order
+    splits = sorted(present, key=lambda s: (s != train_split, present.index(s)))
     for name, what in ((train_split, "training"), (reference_split, "reference")):
         if name not in splits:
             raise DatasetError(f"{what} split {name!r} is not in the dataset (splits: {', '.join(splits)})",
@@ -636,7 +637,10 @@ def train_spacing(train: np.ndarray, kind: str) -> float:
 
 
 def _value_table(manifest, rows, train_split, n_bins, confidence):
-    """Accuracy against each varied axis value, per split, and the training rows' occupied ranges."""
+    """Accuracy against each varied axis value, per split, and the training rows' occupied ranges.
+
+    Circular axes are binned along the shortest arc that holds every value, and reported in
+    signed degrees when that arc crosses 0 (so [350, 10] reads as [-10, 10])."""
     out, ranges = [], {}
     train = manifest[manifest["split"] == train_split]
     for ax in VALUE_AXES:
@@ -648,8 +652,10 @@ def _value_table(manifest, rows, train_split, n_bins, confidence):
         unit = UNITS.get(ax.column, "")
         tv = train[ax.column].to_numpy(dtype=float)
         if ax.kind == "circular":
+            # the shortest arc holding every value, in signed degrees when it crosses 0
             start = _arc_start(allv)
-            to_u = lambda v, s=start: s + np.mod(np.asarray(v, float) - s, PERIOD)  # noqa: E731
+            shown = start - PERIOD if start >= PERIOD / 2 else start
+            to_u = lambda v, s=start, o=shown: o + np.mod(np.asarray(v, float) - s, PERIOD)  # noqa: E731
         elif ax.kind == "log":
             to_u = np.log2
         else:
@@ -659,8 +665,6 @@ def _value_table(manifest, rows, train_split, n_bins, confidence):
         lo, hi = float(ua.min()), float(ua.max())
         edges = np.linspace(lo, hi, n_bins + 1)
         ivals = [[float(from_u(a)), float(from_u(b))] for a, b in _occupied(to_u(tv), hi - lo)]
-        if ax.kind == "circular":
-            ivals = [[float(_wrap(a)), float(_wrap(b))] for a, b in ivals]
         ranges[ax.column] = {"unit": unit, "kind": ax.kind, "intervals": ivals}
         ur = to_u(rows[ax.column].to_numpy(dtype=float))
         b = np.clip(np.searchsorted(edges, ur, side="right") - 1, 0, n_bins - 1)
@@ -669,8 +673,6 @@ def _value_table(manifest, rows, train_split, n_bins, confidence):
         agg = frame.groupby(["split", "bin"]).agg(n=("correct", "size"), k=("correct", "sum")).reset_index()
         for r in agg.itertuples(index=False):
             a, z = from_u(edges[r.bin]), from_u(edges[r.bin + 1])
-            if ax.kind == "circular":
-                a, z = float(np.mod(a, PERIOD)), float(np.mod(z, PERIOD)) or PERIOD
             out.append({"axis": ax.column, "unit": unit, "split": r.split, "bin": int(r.bin),
                         "lo": float(a), "hi": float(z), "centre": float(from_u((edges[r.bin] + edges[r.bin + 1]) / 2)),
                         "n": int(r.n), "k": int(r.k), "n_train_in_bin": int(tb[r.bin])})
@@ -874,46 +876,60 @@ def _label(p: Path, i: int) -> str:
 # ---------------------------------------------------------------- HTML and plots
 
 
+PAGE_STYLE = ("body{font-family:sans-serif;max-width:1100px;margin:auto;padding:1em}"
+              "table{border-collapse:collapse;font-size:13px}td,th{border:1px solid #ccc;padding:2px 6px}"
+              "img{max-width:100%}.verdict{font-family:monospace}")
+
+
+def html_page(title: str, body: list[str]) -> str:
+    """A self-contained HTML page (plots are embedded PNGs) around the given body parts."""
+    esc = html.escape
+    return "\n".join([f"<!doctype html><html><head><meta charset='utf-8'><title>{esc(title)}</title>",
+                      f"<style>{PAGE_STYLE}</style></head><body>", f"<h1>{esc(title)}</h1>", *body,
+                      "</body></html>"])
+
+
 def render_html(results: list[tuple[str, ScoreResult]], *, title: str = "augsplit score", intro_html: str = "") -> str:
     """One self-contained page: verdicts, split accuracies, curves against distance and value."""
+    return html_page(title, [intro_html, *render_sections(results)])
+
+
+def render_sections(results: list[tuple[str, ScoreResult]], level: int = 2) -> list[str]:
+    """The body of a score report for one or two prediction files, as HTML fragments."""
     esc = html.escape
-    parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>{esc(title)}</title>",
-             "<style>body{font-family:sans-serif;max-width:1100px;margin:auto;padding:1em}"
-             "table{border-collapse:collapse;font-size:13px}td,th{border:1px solid #ccc;padding:2px 6px}"
-             "img{max-width:100%}.verdict{font-family:monospace}</style></head><body>",
-             f"<h1>{esc(title)}</h1>", intro_html]
+    h = f"h{level}"
     first = results[0][1]
-    parts.append(f"<p>Dataset: <code>{esc(first.dataset)}</code>; training split <b>{esc(first.train_split)}</b>, "
-                 f"reference <b>{esc(first.reference_split)}</b>; {first.confidence:.0%} Wilson score intervals; "
-                 f"gap intervals from {first.n_boot} bootstrap resamples (seed {first.seed}).</p>")
+    parts = [f"<p>Dataset: <code>{esc(first.dataset)}</code>; training split <b>{esc(first.train_split)}</b>, "
+             f"reference <b>{esc(first.reference_split)}</b>; {first.confidence:.0%} Wilson score intervals; "
+             f"gap intervals from {first.n_boot} bootstrap resamples (seed {first.seed}).</p>"]
     for label, r in results:
-        parts.append(f"<h2>Verdict: {esc(label)}</h2><p>predictions <code>{esc(r.predictions)}</code>, "
+        parts.append(f"<{h}>Verdict: {esc(label)}</{h}><p>predictions <code>{esc(r.predictions)}</code>, "
                      f"{r.n_scored}/{r.n_images} images scored</p><ul>")
         parts += [f"<li class='verdict'>{esc(v)}</li>" for v in r.verdicts]
         parts += [f"<li><i>note: {esc(n)}</i></li>" for n in r.notes]
         parts.append("</ul>")
     if len(results) > 1:
-        parts.append("<h2>Side by side</h2>")
+        parts.append(f"<{h}>Side by side</{h}>")
         parts.append(compare(results[0][1], results[1][1], (results[0][0], results[1][0])).to_html(
             index=False, float_format=lambda v: f"{v:.3f}"))
-    parts.append("<h2>Accuracy per split</h2>" + _img(_plot_splits(results)))
+    parts.append(f"<{h}>Accuracy per split</{h}>" + _img(_plot_splits(results)))
     if any(len(r.distance) for _, r in results):
-        parts.append("<h2>Accuracy against distance from the training region</h2>"
+        parts.append(f"<{h}>Accuracy against distance from the training region</{h}>"
                      "<p>Each held-out image's distance to the nearest training image on that axis "
                      "(position: centre to centre; scale: octaves; angle and hue: degrees the short way round), "
-                     "in equal-count bins; the marker at 0 is the reference split; dashed: chance.</p>"
+                     "in equal-count bins; the marker at 0 is the reference split; dashed: chance. Axes along "
+                     "which no split lies beyond the training images are in the distance table only.</p>"
                      + _img(_plot_distance(results)))
     if any(len(r.by_value) for _, r in results):
-        parts.append("<h2>Accuracy against each axis value</h2><p>Shaded: where the training images lie.</p>"
+        parts.append(f"<{h}>Accuracy against each axis value</{h}><p>Shaded: where the training images lie.</p>"
                      + _img(_plot_values(results)))
     for label, r in results:
-        parts.append(f"<h2>Tables: {esc(label)}</h2>")
+        parts.append(f"<{h}>Tables: {esc(label)}</{h}>")
         for name in ("by_split", "gaps", "by_class", "by_cell", "distance"):
             t = r.tables()[name]
             parts.append(f"<details{' open' if name in ('by_split', 'gaps') else ''}><summary>{name}</summary>"
                          + t.to_html(index=False, float_format=lambda v: f"{v:.4g}") + "</details>")
-    parts.append("</body></html>")
-    return "\n".join(parts)
+    return parts
 
 
 def _img(fig) -> str:
@@ -958,26 +974,27 @@ def _plot_splits(results):
 
 def _plot_distance(results):
     plt = _plt()
-    axes_names = list(dict.fromkeys(a for _, r in results for a in r.distance["axis"]))
+    axes_names = list(dict.fromkeys(a for _, r in results for a in r.distance.loc[r.distance["held_out_along"], "axis"]))
+    axes_names = axes_names or list(dict.fromkeys(a for _, r in results for a in r.distance["axis"]))
     fig, axs = plt.subplots(1, len(axes_names), figsize=(4 * len(axes_names), 3.2), squeeze=False)
     for ax, name in zip(axs[0], axes_names):
         for j, (label, r) in enumerate(results):
-            ref = r.by_split.set_index("split").loc[r.reference_split]
             col = COLOURS[j % len(COLOURS)]
-            ax.errorbar([0], [ref["accuracy"]], yerr=[[ref["accuracy"] - ref["ci_lo"]], [ref["ci_hi"] - ref["accuracy"]]],
-                        fmt="o", color=col, capsize=3)
+            splits = r.by_split.set_index("split")
+            if r.reference_split in splits.index:
+                ref = splits.loc[r.reference_split]
+                ax.errorbar([0], [ref["accuracy"]], yerr=[[ref["accuracy"] - ref["ci_lo"]], [ref["ci_hi"] - ref["accuracy"]]],
+                            fmt="o", color=col, capsize=3)
             t = r.distance[r.distance["axis"] == name]
             for i, (split, g) in enumerate(t.groupby("split", sort=True)):
                 ax.errorbar(g["mean_distance"], g["accuracy"], yerr=[g["accuracy"] - g["ci_lo"], g["ci_hi"] - g["accuracy"]],
                             color=col, ls=STYLES[i % len(STYLES)], marker=".", capsize=2, label=f"{label}: {split}")
-                chance = r.by_split.set_index("split").loc[split, "chance"]
-                ax.axhline(chance, color="grey", ls="--", lw=0.8)
+                ax.axhline(splits.loc[split, "chance"], color="grey", ls="--", lw=0.8)
         unit = results[0][1].distance.loc[results[0][1].distance["axis"] == name, "unit"]
         ax.set_xlabel(f"{name} ({unit.iloc[0] if len(unit) else ''})")
         ax.set_ylim(0, 1.05)
         ax.set_ylabel("accuracy")
-        ax.legend(fontsize=7)
-    fig.tight_layout()
+    _fig_legend(fig, axs.ravel())
     return fig
 
 
@@ -990,15 +1007,11 @@ def _plot_values(results):
     for ax, name in zip(axs.ravel(), axes_names):
         rng_info = results[0][1].train_ranges.get(name, {})
         for a, b in rng_info.get("intervals", []):
-            if rng_info.get("kind") == "circular" and b < a:
-                ax.axvspan(a, PERIOD, color="0.85")
-                ax.axvspan(0, b, color="0.85")
-            else:
-                ax.axvspan(a, b, color="0.85")
+            ax.axvspan(a, b, color="0.85")
         for j, (label, r) in enumerate(results):
             t = r.by_value[r.by_value["axis"] == name]
             for i, (split, g) in enumerate(t.groupby("split", sort=True)):
-                x = np.mod(g["centre"], PERIOD) if rng_info.get("kind") == "circular" else g["centre"]
+                x = g["centre"]
                 o = np.argsort(x.to_numpy())
                 ax.errorbar(x.to_numpy()[o], g["accuracy"].to_numpy()[o],
                             yerr=[(g["accuracy"] - g["ci_lo"]).to_numpy()[o], (g["ci_hi"] - g["accuracy"]).to_numpy()[o]],
@@ -1008,11 +1021,22 @@ def _plot_values(results):
             ax.set_xscale("log", base=2)
         ax.set_xlabel(f"{name} ({rng_info.get('unit', '')})")
         ax.set_ylim(0, 1.05)
-        ax.legend(fontsize=6)
     for ax in axs.ravel()[len(axes_names):]:
         ax.axis("off")
-    fig.tight_layout()
+    _fig_legend(fig, axs.ravel())
     return fig
+
+
+def _fig_legend(fig, axes) -> None:
+    """One legend under all panels, so no curve is hidden behind it."""
+    seen = {}
+    for ax in axes:
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            seen.setdefault(lab, h)
+    fig.tight_layout(rect=(0, 0.1 if seen else 0, 1, 1))
+    if seen:
+        fig.legend(list(seen.values()), list(seen), loc="lower center", ncol=min(4, len(seen)), fontsize=8,
+                   frameon=False)
 
 
 # ---------------------------------------------------------------- small helpers

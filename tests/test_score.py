@@ -372,7 +372,7 @@ def test_ambiguous_digit_class_names_are_refused(tmp_path):
 
 def test_unknown_training_split_and_missing_manifest(tmp_path, manifest):
     p = predictions_with(manifest, np.ones(len(manifest), bool))
-    with pytest.raises(S.DatasetError, match=r"training split 'lane_a' is not in the dataset \(splits: test_far, train\)"):
+    with pytest.raises(S.DatasetError, match=r"training split 'lane_a' is not in the dataset \(splits: train, test_far\)"):
         S.score(manifest, p, train_split="lane_a")
     with pytest.raises(S.DatasetError, match="no manifest folder"):
         S.read_manifest(tmp_path)
