@@ -43,6 +43,7 @@ LOG_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in LOG_ONLY[:2]]
                        + [pa.field(n, _MANIFEST_TYPES[n]) for n in SHARED_COLUMNS]
                        + [pa.field(c.name, c.type) for c in LOG_ONLY[2:]])
 COLUMNS = tuple(LOG_SCHEMA.names)
+_COLUMN_SET = frozenset(COLUMNS)
 PART_GLOB = "part-*.parquet"
 
 
@@ -106,8 +107,8 @@ class ParamLog:
 
         Keys not in the log schema are ignored; schema columns not given are left null
         (a transform that does not apply an axis leaves its column empty)."""
-        cols = {k: np.atleast_1d(np.asarray(v)) for k, v in values.items() if k in COLUMNS}
-        n = max((len(v) for v in cols.values()), default=1)
+        given = {k: v for k, v in values.items() if k in _COLUMN_SET}
+        scalar = all(np.ndim(v) == 0 for v in given.values()) and np.ndim(item) == 0 and np.ndim(epoch) == 0
         with self._lock:
             self._own()
             if self._hash is None:
@@ -118,15 +119,23 @@ class ParamLog:
                                    "need a log folder of their own", where=str(self.log_dir))
             fixed = {"split": split, "epoch": epoch, "item": item, "worker": current_worker(), "pid": self._pid,
                      "source": source, "spec_hash": self._hash}
-            for name in COLUMNS:
-                if name in cols:
-                    v = cols[name]
-                    self._buffer[name].extend(np.broadcast_to(v, (n,)).tolist())
-                elif name in fixed:
-                    v = np.atleast_1d(np.asarray(fixed[name]))
-                    self._buffer[name].extend(np.broadcast_to(v, (n,)).tolist())
-                else:
-                    self._buffer[name].extend([None] * n)
+            if scalar:  # one draw: the common case, kept free of array work
+                n = 1
+                for name in COLUMNS:
+                    v = given[name] if name in given else fixed.get(name)
+                    self._buffer[name].append(v.item() if isinstance(v, np.generic) else v)
+            else:
+                cols = {k: np.atleast_1d(np.asarray(v)) for k, v in given.items()}
+                n = max((len(v) for v in cols.values()), default=1)
+                n = max(n, np.size(item), np.size(epoch))
+                for name in COLUMNS:
+                    v = cols.get(name)
+                    if v is None and name in fixed:
+                        v = np.atleast_1d(np.asarray(fixed[name]))
+                    if v is None:
+                        self._buffer[name].extend([None] * n)
+                    else:
+                        self._buffer[name].extend(np.broadcast_to(v, (n,)).tolist())
             self._rows += n
             if self._rows >= self.flush_every:
                 self._write()

@@ -1,0 +1,544 @@
+"""albumentations transforms that keep an online augmentation pipeline inside a split's region.
+
+`RegionPlacement` puts an image's content (a photograph with its masks, boxes and keypoints)
+on the spec's canvas at a position, scale, angle and mirror — and, by default, a colour —
+drawn jointly from one split's region; `HeldOutPlacement` is its test-time form, drawing from
+a held-out split; `RegionColour` applies the colour axes only. Draws can go to a ParamLog.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import albumentations as A
+import cv2
+import numpy as np
+
+from .build import Built, open_spec
+from .errors import DatasetError, SpecError
+from .plan.draw import params_from_t
+from .plan.regions import CLASS
+from .render import RenderParams, similarity_matrix
+from .space.region import Region
+from .space.sample import sample_t
+
+GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
+COLOUR_AXES = ("hue", "saturation", "brightness")
+ANCHORS = ("centre", "mask", "bbox")
+# Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
+PLUGIN = 0x616C6275
+_MASS_TOL = 1e-12
+
+
+# ---- drawing from a split's region ---------------------------------------------------------
+
+
+def _open(spec) -> Built:
+    if isinstance(spec, Built):
+        return spec
+    if not isinstance(spec, (str, Path)):
+        raise SpecError(f"spec must be a spec file path or a Built, not {type(spec).__name__}", where="spec")
+    return open_spec(spec)
+
+
+def _cylinder(region: Region, keep: set[str]) -> Region:
+    """The region's projection onto the axes in `keep`, extended over every other axis."""
+    sp = region.space
+    free = np.array([n not in keep for n in sp.names])
+    lo, hi = region.lo.copy(), region.hi.copy()
+    lo[:, free], hi[:, free] = sp.t_lo[free], sp.t_hi[free]
+    out = Region.empty(sp)
+    for k in range(len(lo)):  # projected boxes may overlap: union them one by one
+        out = out | Region(sp, lo[k:k + 1], hi[k:k + 1])
+    return out
+
+
+def _same(a: Region, b: Region) -> bool:
+    return (a - b).mass() <= _MASS_TOL and (b - a).mass() <= _MASS_TOL
+
+
+class RegionDraws:
+    """Draws of one split's region for a transform: class, axes, canvas position and cell.
+
+    `draw(u, c)` maps uniforms u (ndim + 2: one for the class, one for the box, one per axis)
+    through exact region sampling (space.sample) — every draw lies in the region.
+    """
+
+    def __init__(self, built: Built, split: str):
+        plan = built.plan
+        self.plan = plan
+        self.split = plan.split(split)  # SpecError listing the splits when unknown
+        self.space = plan.space
+        self.k = plan.space.ndim + 2
+        counts = np.asarray(self.split.counts, dtype=float)
+        self.present = tuple(int(c) for c in np.flatnonzero(counts > 0))
+        self.cum = np.cumsum(counts) / counts.sum()
+        self.class_regions = {c: self.split.class_region(c) for c in self.present}
+        self.cells = {c: self._cell_map(c) for c in self.present}
+
+    def _cell_map(self, c: int) -> np.ndarray | None:
+        """Index in the split's region of each box of class c's region (its boxes are the
+        split's boxes cut to the class, in order); None if that correspondence does not hold."""
+        reg, part = self.split.region, self.class_regions[c]
+        ci = self.space.index[CLASS]
+        lo = np.maximum(reg.lo[:, ci], c - 0.5)
+        hi = np.minimum(reg.hi[:, ci], c + 0.5)
+        idx = np.flatnonzero(hi - lo > 1e-12)
+        if len(idx) != part.nbox or not np.allclose(reg.lo[idx][:, np.arange(self.space.ndim) != ci],
+                                                    part.lo[:, np.arange(self.space.ndim) != ci]):
+            return None
+        return idx
+
+    def class_dependent(self) -> tuple[str, str] | None:
+        """Two classes whose regions differ (beyond the class axis), or None."""
+        if len(self.present) < 2:
+            return None
+        keep = set(self.space.names) - {CLASS}
+        first = _cylinder(self.class_regions[self.present[0]], keep)
+        for c in self.present[1:]:
+            if not _same(first, _cylinder(self.class_regions[c], keep)):
+                return self.plan.classes[self.present[0]], self.plan.classes[c]
+        return None
+
+    def separable(self, axes_a, axes_b) -> bool:
+        """Whether the region is (projection on axes_a) x (projection on axes_b), class by class."""
+        for c in self.present:
+            part = self.class_regions[c]
+            a = _cylinder(part, set(axes_a) | {CLASS})
+            b = _cylinder(part, set(axes_b) | {CLASS})
+            if ((a & b) - part).mass() > _MASS_TOL:
+                return False
+        return True
+
+    def smallest_scale(self) -> float:
+        if "scale" not in self.space:
+            return 1.0
+        ax = self.space["scale"]
+        lo_t, _ = self.split.region.axis_extent("scale")
+        return float(ax.from_t(lo_t + 0.5 if ax.measure == "levels" else lo_t))
+
+    def class_of(self, value) -> int:
+        classes = self.plan.classes
+        if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
+            c = int(value)
+        elif isinstance(value, str) and value in classes:
+            c = classes.index(value)
+        else:
+            raise DatasetError(f"unknown class {value!r}; the spec's classes are {', '.join(classes)}",
+                               where="class_key")
+        if c not in self.present:
+            names = ", ".join(classes[i] for i in self.present)
+            raise DatasetError(f"class {classes[c] if 0 <= c < len(classes) else c!r} has no room in split "
+                               f"'{self.split.name}' (its classes: {names})", where="class_key")
+        return c
+
+    def draw(self, u: np.ndarray, c: int | None = None) -> dict:
+        if c is None:  # in proportion to the split's per-class counts, as plan.draw.draw_online
+            c = int(np.searchsorted(self.cum, u[0], side="right"))
+            if c not in self.cells:
+                c = self.present[-1]
+        t, box = sample_t(self.class_regions[c], u[None, 1:])
+        cols = params_from_t(self.plan, t)
+        out = {k: float(v[0]) for k, v in cols.items()}
+        out["mirror"] = int(cols["mirror"][0])
+        cells = self.cells[c]
+        out["cell"] = int(cells[box[0]]) if cells is not None else int(self.split.region.box_of_t(t)[0])
+        out["class_index"] = int(c)
+        out["class_name"] = self.plan.classes[c]
+        return out
+
+
+# ---- pixel helpers -------------------------------------------------------------------------
+
+
+def index_matrix(m: np.ndarray) -> np.ndarray:
+    """A 2x3 affine between continuous coordinates (pixel centres at .5, as bboxes use) as the
+    same map between pixel-index coordinates (centres at integers, as cv2.warpAffine and
+    albumentations keypoints use): x_i' = A (x_i + 0.5) + t - 0.5."""
+    out = np.array(m, dtype=np.float64, copy=True)
+    out[:, 2] += 0.5 * (m[:, 0] + m[:, 1]) - 0.5
+    return out
+
+
+def warp(array: np.ndarray, matrix: np.ndarray, hw: tuple[int, int], interpolation: int, fill) -> np.ndarray:
+    """cv2.warpAffine onto an (h, w) canvas, constant border `fill`; any channel count, bool ok."""
+    h, w = hw
+    if array.dtype == bool:
+        return warp(array.view(np.uint8), matrix, hw, interpolation, fill).astype(bool)
+    if array.ndim == 3 and array.shape[2] > 4:
+        parts = [warp(array[..., i:i + 4], matrix, hw, interpolation, fill) for i in range(0, array.shape[2], 4)]
+        return np.concatenate(parts, axis=2)
+    border = tuple(fill) if isinstance(fill, (tuple, list)) else fill
+    out = cv2.warpAffine(array, matrix, (w, h), flags=interpolation, borderMode=cv2.BORDER_CONSTANT,
+                         borderValue=border)
+    if array.ndim == 3 and out.ndim == 2:
+        out = out[..., None]
+    return out
+
+
+def recolour(image: np.ndarray, hue: float, saturation: float, brightness: float) -> np.ndarray:
+    """Hue rotated (degrees), saturation and value multiplied (clipped to 1) in OpenCV float
+    HSV — the renderer's colour axes (render.recoloured) — for uint8 or float [0, 1] images.
+    Grey images take the brightness only; channels past the third are left as they are."""
+    if (hue % 360.0 == 0.0) and saturation == 1.0 and brightness == 1.0:
+        return image
+    is_u8 = image.dtype == np.uint8
+    f = image.astype(np.float32) * np.float32(1 / 255) if is_u8 else image.astype(np.float32)
+    grey = f.ndim == 2 or f.shape[2] == 1
+    if grey:
+        out = np.minimum(f * np.float32(brightness), np.float32(1.0))
+    else:
+        h, s, v = cv2.split(cv2.cvtColor(np.ascontiguousarray(f[..., :3]), cv2.COLOR_RGB2HSV))
+        h = h + np.float32(hue % 360.0)  # cv2's float HSV2RGB wraps H in [360, 720) itself
+        s = np.minimum(s * np.float32(saturation), np.float32(1.0))
+        v = np.minimum(v * np.float32(brightness), np.float32(1.0))
+        rgb = cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB)
+        out = np.concatenate([rgb, f[..., 3:]], axis=2) if f.shape[2] > 3 else rgb
+    if is_u8:
+        return (out * np.float32(255) + np.float32(0.5)).astype(np.uint8)
+    return out.astype(image.dtype, copy=False)
+
+
+def move_points(points: np.ndarray, matrix: np.ndarray) -> np.ndarray:
+    """(N, 2) points through a 2x3 affine."""
+    return points @ matrix[:, :2].T + matrix[:, 2]
+
+
+def move_bboxes(boxes: np.ndarray, matrix: np.ndarray) -> np.ndarray:
+    """Pixel boxes (N, 4+) [x0, y0, x1, y1, ...] -> the axis-aligned boxes around their moved
+    corners (extra columns kept)."""
+    x0, y0, x1, y1 = boxes[:, 0], boxes[:, 1], boxes[:, 2], boxes[:, 3]
+    corners = np.stack([np.stack([x0, y0], 1), np.stack([x1, y0], 1), np.stack([x1, y1], 1),
+                        np.stack([x0, y1], 1)], axis=1)  # (N, 4, 2)
+    moved = corners @ matrix[:, :2].T + matrix[:, 2]
+    out = np.array(boxes, dtype=np.float64, copy=True)
+    out[:, 0:2] = moved.min(axis=1)
+    out[:, 2:4] = moved.max(axis=1)
+    return out
+
+
+# ---- the transforms ------------------------------------------------------------------------
+
+
+def _probability(p, name: str) -> float:
+    if isinstance(p, bool) or not isinstance(p, (int, float)) or not 0.0 <= float(p) <= 1.0:
+        raise SpecError(f"p is a probability in [0, 1], got {p!r}", where=f"{name}.p")
+    return float(p)
+
+
+class _RegionTransform:
+    """What the plugin transforms share: spec, split, draws, per-item streams, the log."""
+
+    source_name = "RegionTransform"
+
+    def _setup(self, spec, split, held_out: bool, class_key, item_key, log, epoch) -> None:
+        self.spec = spec
+        self.split = split
+        self.held_out = bool(held_out)
+        self.class_key = class_key
+        self.item_key = item_key
+        self.log = log
+        self.epoch = int(epoch)
+        self._built = _open(spec)
+        self._draws = RegionDraws(self._built, split)
+        sp = self._draws.split
+        where = f"splits.{sp.name}"
+        if self.held_out and sp.role != "test":
+            raise SpecError(f"split '{sp.name}' is a training split; a test-time transform draws from a held-out "
+                            "split", where=where, hint=f"held-out splits: {self._names('test')}")
+        if not self.held_out and sp.role != "train":
+            raise SpecError(f"split '{sp.name}' is held out ({sp.kind}); drawing training augmentations from it "
+                            "leaks it into training", where=where,
+                            hint=f"use HeldOutPlacement / held_out=True at test time; training splits: {self._names('train')}")
+        if class_key is None:
+            pair = self._draws.class_dependent()
+            if pair is not None:
+                raise SpecError(f"the region differs by class (e.g. '{pair[0]}' and '{pair[1]}'), so each item's "
+                                "class must be known", where=f"{where}.region",
+                                hint="pass class_key='<data key holding the class name or index>'")
+        self._calls = 0
+
+    def _names(self, role: str) -> str:
+        return ", ".join(s.name for s in self._built.plan.splits if s.role == role) or "none"
+
+    def _require_separable(self, what: str) -> None:
+        space = self._draws.space
+        colour = [a for a in COLOUR_AXES if a in space]
+        geometry = [a for a in GEOMETRY_AXES if a in space]
+        if colour and geometry and not self._draws.separable(geometry, colour):
+            raise SpecError(f"the region ties colour to position/size/angle, so {what} drawn on its own could "
+                            "land outside it", where=f"splits.{self._draws.split.name}.region",
+                            hint="use RegionPlacement with colour=True, which draws both together")
+
+    def set_epoch(self, epoch: int) -> None:
+        """The epoch per-item streams and log rows belong to."""
+        self.epoch = int(epoch)
+
+    def _uniforms(self, data: dict) -> tuple[np.ndarray, int | None]:
+        item = None
+        if self.item_key is not None and self.item_key in data:
+            item = int(data[self.item_key])
+            seed = self._built.spec.seed if self.seed is None else int(self.seed)
+            ss = np.random.SeedSequence(seed, spawn_key=(PLUGIN, self._draws.split.index, self.epoch, item))
+            return np.random.Generator(np.random.PCG64(ss)).random(self._draws.k), item
+        return self.random_generator.random(self._draws.k), item
+
+    def _draw(self, data: dict) -> dict:
+        u, item = self._uniforms(data)
+        c = None
+        if self.class_key is not None:
+            if self.class_key not in data:
+                raise DatasetError(f"the data has no '{self.class_key}' (the class_key this transform was built "
+                                   "with)", where=type(self).__name__)
+            c = self._draws.class_of(data[self.class_key])
+        values = self._draws.draw(u, c)
+        if item is None:
+            item = self._calls
+        self._calls += 1
+        values["_item"] = item
+        return values
+
+    def _record(self, values: dict, applied: tuple[str, ...]) -> None:
+        if self.log is None:
+            return
+        row = {k: v for k, v in values.items() if k in applied or k in ("class_name", "class_index", "cell")}
+        self.log.record(self._built.plan, self._draws.split.name, row, epoch=self.epoch, item=values["_item"],
+                        source=self.source_name)
+
+    def _check_declared(self, data: dict) -> None:
+        for key, what, param in (("bboxes", "bboxes", "bbox_params=A.BboxParams(format=...)"),
+                                 ("keypoints", "keypoints", "keypoint_params=A.KeypointParams(format=...)")):
+            if data.get(key) is not None and len(data[key]) and self.get_processor(key) is None:
+                raise DatasetError(f"{what} given without a declared format; run the transform inside "
+                                   f"A.Compose([...], {param})", where=type(self).__name__)
+
+
+class RegionPlacement(_RegionTransform, A.DualTransform):
+    """Place the image's content on the spec's canvas at parameters drawn from a split's region.
+
+    The content (the whole input image, with its masks, bboxes and keypoints) is mirrored
+    left-right about its anchor, rotated counter-clockwise by `angle` and scaled by `scale`
+    about it, and its anchor moved to the drawn position (cx_px, cy_px) of a canvas of the
+    spec's width x height; pixels it does not cover get `fill` (`fill_mask` in masks). The
+    anchor is the image centre (``anchor='centre'``), the centroid of the mask's non-zero
+    pixels (``'mask'``) or the centre of the first bbox (``'bbox'``). With ``colour`` (default:
+    whenever the spec varies hue, saturation or brightness) the colour axes are applied to the
+    content too, drawn jointly with the geometry.
+
+    Draws come from the transform's random generator (so ``A.Compose(seed=...)`` makes them
+    reproducible), or — with ``item_key`` naming a data key that holds an item number —
+    from that item's own stream ``SeedSequence(seed, spawn_key=(PLUGIN, split, epoch, item))``,
+    the same in any worker and order. What was applied is in ``get_applied_params()`` (and
+    so in Compose's ``applied_transforms`` with ``save_applied_params=True``) under
+    ``'placement'``, in the result under ``params_key`` when given, and in ``log``.
+
+    Refused at construction (SpecError): an unknown split; a held-out split (use
+    HeldOutPlacement); content of ``content_size`` (width, height) larger than the canvas at
+    the region's smallest scale; a region that differs by class without ``class_key``; and,
+    with ``colour=False``, a region that ties colour to geometry.
+    """
+
+    source_name = "RegionPlacement"
+
+    def __init__(self, spec, split: str, content_size: tuple[int, int], anchor: str = "centre",
+                 colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
+                 interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
+                 fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None,
+                 held_out: bool = False, p: float = 1.0):
+        A.DualTransform.__init__(self, p=_probability(p, type(self).__name__))
+        self._setup(spec, split, held_out, class_key, item_key, log, epoch)
+        if anchor not in ANCHORS:
+            raise SpecError(f"anchor must be one of {', '.join(ANCHORS)}, got {anchor!r}", where=f"{type(self).__name__}.anchor")
+        try:
+            cw, ch = (int(v) for v in content_size)
+        except (TypeError, ValueError):
+            raise SpecError(f"content_size is (width, height) in px, got {content_size!r}",
+                            where=f"{type(self).__name__}.content_size") from None
+        if cw <= 0 or ch <= 0:
+            raise SpecError(f"content_size must be positive, got {content_size!r}", where=f"{type(self).__name__}.content_size")
+        self.content_size = (cw, ch)
+        self.anchor = anchor
+        space = self._draws.space
+        self.colour = any(a in space for a in COLOUR_AXES) if colour is None else bool(colour)
+        if not self.colour:
+            self._require_separable("the placement")
+        self.interpolation = interpolation
+        self.mask_interpolation = mask_interpolation
+        self.fill = fill
+        self.fill_mask = fill_mask
+        self.params_key = params_key
+        canvas = self._built.spec.canvas
+        self.canvas_hw = (canvas.height, canvas.width)
+        s = self._draws.smallest_scale()
+        if cw * s > canvas.width or ch * s > canvas.height:
+            raise SpecError(f"content of {cw}x{ch} px is {cw * s:.1f}x{ch * s:.1f} px at the region's smallest "
+                            f"scale {s:g}, larger than the {canvas.width}x{canvas.height} canvas: it cannot be "
+                            "placed whole anywhere in this region", where=f"splits.{self._draws.split.name}.region",
+                            hint=f"shrink the content first (e.g. A.LongestMaxSize({int(min(canvas.width, canvas.height) / s)})) "
+                                 "or raise the canvas / lower the scale range")
+        self._applied_axes = GEOMETRY_AXES + ("cx_px", "cy_px") + (COLOUR_AXES if self.colour else ())
+
+    @property
+    def targets_as_params(self) -> list[str]:
+        return {"mask": ["mask"], "bbox": ["bboxes"]}.get(self.anchor, [])
+
+    def _anchor(self, data: dict, hw: tuple[int, int]) -> tuple[float, float]:
+        h, w = hw
+        if self.anchor == "centre":
+            return w / 2.0, h / 2.0
+        if self.anchor == "mask":
+            mask = data.get("mask")
+            if mask is None:
+                raise DatasetError("anchor='mask' needs a mask with the image", where=type(self).__name__)
+            m = np.asarray(mask)
+            m = (m.any(axis=2) if m.ndim == 3 else m != 0).astype(np.uint8)
+            mo = cv2.moments(m, binaryImage=True)
+            if mo["m00"] == 0:
+                raise DatasetError("anchor='mask' needs a mask with at least one non-zero pixel",
+                                   where=type(self).__name__)
+            # pixel (r, c) covers [c, c+1) x [r, r+1): its centre is at c + 0.5
+            return mo["m10"] / mo["m00"] + 0.5, mo["m01"] / mo["m00"] + 0.5
+        boxes = data.get("bboxes")
+        if boxes is None or len(boxes) == 0:
+            raise DatasetError("anchor='bbox' needs at least one bbox with the image", where=type(self).__name__)
+        b = np.asarray(boxes, dtype=np.float64)[0]
+        if self.get_processor("bboxes") is not None:  # inside Compose boxes arrive normalised
+            b = b[:4] * np.array([w, h, w, h])
+        return (b[0] + b[2]) / 2.0, (b[1] + b[3]) / 2.0
+
+    def get_params_dependent_on_data(self, params: dict[str, Any], data: dict[str, Any]) -> dict[str, Any]:
+        self._check_declared(data)
+        hw = tuple(int(v) for v in params["shape"][:2])
+        cw, ch = self.content_size
+        if hw[1] > cw or hw[0] > ch:
+            raise DatasetError(f"the image is {hw[1]}x{hw[0]} px, larger than the content_size {cw}x{ch} the "
+                               "transform was checked for", where=type(self).__name__)
+        values = self._draw(data)
+        anchor = self._anchor(data, hw)
+        rp = RenderParams(values["cx_px"], values["cy_px"], values["scale"], values["angle"], bool(values["mirror"]))
+        m = similarity_matrix(anchor, rp)
+        self._record(values, self._applied_axes)
+        placement = {k: v for k, v in values.items() if not k.startswith("_")}
+        if not self.colour:
+            for k in COLOUR_AXES:
+                placement.pop(k, None)
+        placement.update(split=self._draws.split.name, anchor_x=anchor[0], anchor_y=anchor[1])
+        colour = (values["hue"], values["saturation"], values["brightness"]) if self.colour else None
+        return {"placement": placement, "matrix": index_matrix(m), "bbox_matrix": m,
+                "output_shape": self.canvas_hw, "recolour": colour}
+
+    def apply(self, img: np.ndarray, matrix: np.ndarray, output_shape, recolour=None, **params) -> np.ndarray:
+        if recolour is not None:
+            img = recolour_image(img, recolour)
+        return warp(img, matrix, output_shape, self.interpolation, self.fill)
+
+    def apply_to_mask(self, mask: np.ndarray, matrix: np.ndarray, output_shape, **params) -> np.ndarray:
+        return warp(mask, matrix, output_shape, self.mask_interpolation, self.fill_mask)
+
+    def apply_to_bboxes(self, bboxes: np.ndarray, bbox_matrix: np.ndarray, output_shape, shape, **params) -> np.ndarray:
+        if len(bboxes) == 0:
+            return bboxes
+        h, w = shape[:2]
+        oh, ow = output_shape
+        px = np.array(bboxes, dtype=np.float64, copy=True)
+        px[:, [0, 2]] *= w
+        px[:, [1, 3]] *= h
+        moved = move_bboxes(px, bbox_matrix)
+        # boxes wholly off the canvas are dropped, as albumentations' own geometric transforms do
+        keep = (moved[:, 2] > 0) & (moved[:, 3] > 0) & (moved[:, 0] < ow) & (moved[:, 1] < oh)
+        moved = moved[keep]
+        moved[:, [0, 2]] /= ow
+        moved[:, [1, 3]] /= oh
+        return moved.astype(bboxes.dtype, copy=False)
+
+    def apply_to_keypoints(self, keypoints: np.ndarray, matrix: np.ndarray, placement: dict, **params) -> np.ndarray:
+        if len(keypoints) == 0:
+            return keypoints
+        out = np.array(keypoints, dtype=np.float64, copy=True)
+        out[:, :2] = move_points(out[:, :2], matrix)
+        if out.shape[1] > 3:  # albumentations keypoints: x, y, z, angle (rad), scale
+            lin = matrix[:, :2]
+            d = np.stack([np.cos(out[:, 3]), np.sin(out[:, 3])], axis=1) @ lin.T
+            out[:, 3] = np.mod(np.arctan2(d[:, 1], d[:, 0]), 2 * math.pi)
+        if out.shape[1] > 4:
+            out[:, 4] *= placement["scale"]
+        return out.astype(keypoints.dtype, copy=False)
+
+    def apply_with_params(self, params: dict[str, Any], *args: Any, **kwargs: Any) -> dict[str, Any]:
+        res = super().apply_with_params(params, *args, **kwargs)
+        if self.params_key is not None:
+            res[self.params_key] = dict(params["placement"])
+        return res
+
+    def get_transform_init_args_names(self) -> tuple[str, ...]:
+        return ("spec", "split", "content_size", "anchor", "colour", "class_key", "item_key", "interpolation",
+                "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "held_out")
+
+    def __repr__(self) -> str:
+        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
+        return (f"{type(self).__name__}(spec={str(spec)!r}, split={self.split!r}, content_size={self.content_size}, "
+                f"anchor={self.anchor!r}, colour={self.colour}, p={self.p})")
+
+
+class HeldOutPlacement(RegionPlacement):
+    """RegionPlacement at test time: draws from a held-out split (refuses a training split)
+    and applies to every item (p = 1). Pass ``item_key`` so each test item gets the same
+    placement in every evaluation run, whatever the worker or order."""
+
+    source_name = "HeldOutPlacement"
+
+    def __init__(self, spec, split: str, content_size: tuple[int, int], anchor: str = "centre",
+                 colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
+                 interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
+                 fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None):
+        super().__init__(spec, split, content_size, anchor, colour, class_key, item_key, interpolation,
+                         mask_interpolation, fill, fill_mask, log, epoch, params_key, held_out=True, p=1.0)
+
+    def get_transform_init_args_names(self) -> tuple[str, ...]:
+        return tuple(n for n in super().get_transform_init_args_names() if n != "held_out")
+
+
+def recolour_image(img: np.ndarray, colour: tuple[float, float, float]) -> np.ndarray:
+    return recolour(img, *colour)
+
+
+class RegionColour(_RegionTransform, A.ImageOnlyTransform):
+    """Apply the colour axes (hue, saturation, brightness) drawn from a split's region to the
+    image, as the renderer recolours objects (OpenCV float HSV). Refuses (SpecError) a region
+    that ties colour to geometry — use RegionPlacement, which draws both together. Options
+    as RegionPlacement; the applied values are under ``'colour'`` in the applied params."""
+
+    source_name = "RegionColour"
+
+    def __init__(self, spec, split: str, class_key: str | None = None, item_key: str | None = None,
+                 log=None, epoch: int = 0, params_key: str | None = None, held_out: bool = False, p: float = 1.0):
+        A.ImageOnlyTransform.__init__(self, p=_probability(p, type(self).__name__))
+        self._setup(spec, split, held_out, class_key, item_key, log, epoch)
+        self._require_separable("the colour")
+        self.params_key = params_key
+
+    def get_params_dependent_on_data(self, params: dict[str, Any], data: dict[str, Any]) -> dict[str, Any]:
+        values = self._draw(data)
+        self._record(values, COLOUR_AXES)
+        colour = {k: values[k] for k in COLOUR_AXES}
+        colour.update(split=self._draws.split.name, class_index=values["class_index"],
+                      class_name=values["class_name"], cell=values["cell"])
+        return {"colour": colour}
+
+    def apply(self, img: np.ndarray, colour: dict, **params) -> np.ndarray:
+        return recolour(img, colour["hue"], colour["saturation"], colour["brightness"])
+
+    def apply_with_params(self, params: dict[str, Any], *args: Any, **kwargs: Any) -> dict[str, Any]:
+        res = super().apply_with_params(params, *args, **kwargs)
+        if self.params_key is not None:
+            res[self.params_key] = dict(params["colour"])
+        return res
+
+    def get_transform_init_args_names(self) -> tuple[str, ...]:
+        return ("spec", "split", "class_key", "item_key", "epoch", "params_key", "held_out")
+
+    def __repr__(self) -> str:
+        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
+        return f"RegionColour(spec={str(spec)!r}, split={self.split!r}, p={self.p})"
