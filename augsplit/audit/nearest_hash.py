@@ -97,8 +97,9 @@ class HashIndex:
                 keys = (uniq >> np.uint64(shift)) & np.uint64((1 << length) - 1)
                 order = np.argsort(keys, kind="stable")
                 if length <= _DIRECT_BITS:
-                    counts = np.bincount(keys.astype(np.int64), minlength=1 << length)
-                    lookup = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
+                    counts = np.bincount(keys.astype(np.int64), minlength=1 << length).astype(np.int32)
+                    starts = (np.cumsum(counts) - counts).astype(np.int64)
+                    lookup = (starts, counts)
                 else:
                     lookup = keys[order]
                 tables.append((shift, length, order, lookup, _flip_masks(length, r_sub)))
@@ -113,18 +114,23 @@ class HashIndex:
                 yield qi, np.tile(np.arange(len(self.hashes)), min(step, len(q) - s))
             return
         for shift, length, order, lookup, masks in self.tables:
-            step = max(1, _CHUNK // (4 * len(masks)))
+            n_masks = len(masks)
+            step = max(1, _CHUNK // (2 * n_masks))
             for s in range(0, len(q), step):
                 qk = (q[s : s + step] >> np.uint64(shift)) & np.uint64((1 << length) - 1)
                 probes = (qk[:, None] ^ masks[None, :]).ravel()
                 if length <= _DIRECT_BITS:
-                    p = probes.astype(np.int64)
-                    starts, ends = lookup[p], lookup[p + 1]
+                    # one gather of bucket sizes over all probes; starts only where non-empty
+                    p = probes.astype(np.intp)
+                    cnt = lookup[1][p]
+                    nz = np.flatnonzero(cnt)
+                    starts, counts = lookup[0][p[nz]], cnt[nz].astype(np.int64)
                 else:
-                    starts = np.searchsorted(lookup, probes, side="left")
-                    ends = np.searchsorted(lookup, probes, side="right")
-                counts = ends - starts
-                owner = np.repeat(np.arange(s, s + len(qk)), len(masks))
+                    lo_ = np.searchsorted(lookup, probes, side="left")
+                    hi_ = np.searchsorted(lookup, probes, side="right")
+                    nz = np.flatnonzero(hi_ > lo_)
+                    starts, counts = lo_[nz], (hi_ - lo_)[nz]
+                owner = s + nz // n_masks
                 yield from _expand(owner, starts, counts, order)
 
     def pairs_within(self, queries) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -180,9 +186,7 @@ class HashIndex:
 
 
 def _expand(owner, starts, counts, order):
-    """Turn probe ranges [start, start+count) into (owner, stored index) pairs, batched."""
-    nz = counts > 0
-    owner, starts, counts = owner[nz], starts[nz], counts[nz]
+    """Turn non-empty probe ranges [start, start+count) into (owner, stored index) pairs, batched."""
     if len(counts) == 0:
         return
     cum = np.cumsum(counts)

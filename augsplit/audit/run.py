@@ -310,11 +310,11 @@ class _Fingerprints:
             self.kind = "loader"
         elif "image_bytes" in src.columns:
             self.kind = "bytes"
-        elif n_file:
+        elif n_file and th.hash_column not in df:
             self.kind = "file"
             check_files_exist(df["file"], src.root, np.arange(len(df)))  # bad input: fail early
-        if th.hash_column in df:
-            self.kind = self.kind if self.kind != "none" else "hash_column"
+        elif th.hash_column in df:
+            self.kind = "hash_column"  # hashes given: image files are not needed
 
     def get(self):
         if not self._done:
