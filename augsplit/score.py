@@ -50,15 +50,15 @@ class DistanceAxis:
     name: str
     unit: str
     columns: tuple[str, ...]
-    kind: str  # "euclidean" (px or deg), "octaves" (log2 ratio), "circular" (degrees)
+    kind: str  # "euclidean" (px), "visual_angle" (deg), "octaves" (log2 ratio), "circular" (deg)
     doc: str
 
 
 DISTANCE_AXES: tuple[DistanceAxis, ...] = (
     DistanceAxis("position_px", "px", ("cx_px", "cy_px"), "euclidean",
                  "distance of the object centre to the nearest training centre"),
-    DistanceAxis("position_deg", "deg", ("x_deg", "y_deg"), "euclidean",
-                 "the same in degrees of visual angle (needs viewing geometry)"),
+    DistanceAxis("position_deg", "deg", ("x_deg", "y_deg"), "visual_angle",
+                 "the angle at the eye between the two centres' lines of sight (needs viewing geometry)"),
     DistanceAxis("scale_octaves", "oct", ("scale",), "octaves",
                  "|log2(scale / nearest training scale)|"),
     DistanceAxis("angle_deg", "deg", ("angle",), "circular",
@@ -569,7 +569,9 @@ def nearest_distance(train: np.ndarray, query: np.ndarray, kind: str) -> np.ndar
     """Distance from each query row to the nearest training row on one axis kind.
 
     euclidean: plain distance over the columns; octaves: |log2 ratio|; circular: degrees the
-    short way round (a KD-tree on the circle via periodic boxes).
+    short way round (a KD-tree on the circle via periodic boxes); visual_angle: columns are the
+    horizontal and vertical visual angles atan(offset / D) of points on a flat screen, and the
+    distance is the exact angle at the eye between two of them (see `_sight_lines`).
     """
     train = np.asarray(train, dtype=float).reshape(len(train), -1)
     query = np.asarray(query, dtype=float).reshape(len(query), -1)
@@ -581,10 +583,29 @@ def nearest_distance(train: np.ndarray, query: np.ndarray, kind: str) -> np.ndar
     elif kind == "circular":
         tree = cKDTree(_wrap(train), boxsize=PERIOD)
         d, _ = tree.query(_wrap(query), k=1)
+    elif kind == "visual_angle":
+        tree = cKDTree(_sight_lines(train))
+        chord, _ = tree.query(_sight_lines(query), k=1)
+        d = _chord_to_deg(chord)
     else:
         tree = cKDTree(train)
         d, _ = tree.query(query, k=1)
     return np.asarray(d, dtype=float)
+
+
+def _sight_lines(xy_deg: np.ndarray) -> np.ndarray:
+    """Unit vectors from the eye to screen points given as (atan(dx / D), atan(dy / D)) in deg.
+
+    The point sits at (tan x, tan y, 1) * D; the chord between two unit vectors grows with
+    the angle between them (chord = 2 sin(angle / 2)), so the nearest chord is the nearest angle.
+    """
+    t = np.tan(np.radians(xy_deg))
+    v = np.column_stack([t[:, 0], t[:, 1], np.ones(len(t))])
+    return v / np.linalg.norm(v, axis=1, keepdims=True)
+
+
+def _chord_to_deg(chord) -> np.ndarray:
+    return np.degrees(2.0 * np.arcsin(np.clip(np.asarray(chord, dtype=float) / 2.0, 0.0, 1.0)))
 
 
 def _wrap(v: np.ndarray) -> np.ndarray:
@@ -630,10 +651,13 @@ def train_spacing(train: np.ndarray, kind: str) -> float:
         pts, box = np.log2(train), None
     elif kind == "circular":
         pts, box = _wrap(train), PERIOD
+    elif kind == "visual_angle":
+        pts, box = _sight_lines(train), None
     else:
         pts, box = train, None
     d, _ = cKDTree(pts, boxsize=box).query(pts, k=2)
-    return float(np.quantile(d[:, 1], 0.95))
+    gap = d[:, 1] if kind != "visual_angle" else _chord_to_deg(d[:, 1])
+    return float(np.quantile(gap, 0.95))
 
 
 def _value_table(manifest, rows, train_split, n_bins, confidence):

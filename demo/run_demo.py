@@ -226,6 +226,20 @@ def page(runs: list[Run], seconds: float) -> str:
     return S.html_page("Tiles on a conveyor: does shape recognition leave the training lane?", body)
 
 
+def run_demo(spec_path: Path = SPEC, out: Path = ROOT / "demo" / "out", *, noise: bool = True,
+             scale_counts: float = 1.0, say=print) -> list[Run]:
+    """Everything the demo does; writes out/report.html and each run's score reports."""
+    t0 = time.perf_counter()
+    spec_path = Path(spec_path)
+    runs = [run_one("main", load_spec(spec_path, scale_counts=scale_counts), out, spec_path.parent, say)]
+    if noise:
+        runs.append(run_one("noise", load_spec(spec_path, NOISE_BELT, scale_counts), out, spec_path.parent, say))
+    for run in runs:  # the same reports `augsplit score` writes, for checking one against the other
+        S.write_outputs(run.results, out / ("score" if run.name == "main" else f"score_{run.name}"))
+    S._atomic_write(out / "report.html", page(runs, time.perf_counter() - t0))
+    return runs
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--spec", type=Path, default=SPEC)
@@ -235,17 +249,12 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     t0 = time.perf_counter()
     try:
-        spec = load_spec(args.spec, scale_counts=args.scale_counts)
-        runs = [run_one("main", spec, args.out, args.spec.parent)]
-        if not args.no_noise:
-            noisy = load_spec(args.spec, NOISE_BELT, args.scale_counts)
-            runs.append(run_one("noise", noisy, args.out, args.spec.parent))
+        runs = run_demo(args.spec, args.out, noise=not args.no_noise, scale_counts=args.scale_counts)
     except AugsplitError as err:
         print(f"error: {err}", file=sys.stderr)
         return err.exit_code
     seconds = time.perf_counter() - t0
     report = args.out / "report.html"
-    S._atomic_write(report, page(runs, seconds))
     for run in runs:
         for line in headline(run):
             print(f"[{run.name}] {line}")

@@ -137,6 +137,36 @@ def test_scale_distance_is_octaves_to_the_nearest_training_scale(train, query):
     assert S.nearest_distance(np.array([1.0]), np.array([4.0, 0.5]), "octaves") == pytest.approx([2.0, 1.0])
 
 
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.tuples(st.floats(-40, 40), st.floats(-40, 40)), min_size=1, max_size=30),
+       st.lists(st.tuples(st.floats(-40, 40), st.floats(-40, 40)), min_size=1, max_size=30))
+def test_visual_angle_distance_is_the_angle_between_lines_of_sight(train, query):
+    # Reference (from memory): a screen point at visual angles (x, y) = (atan(dx/D), atan(dy/D))
+    # lies along (tan x, tan y, 1); the angle between two lines of sight is acos(u.v / |u||v|),
+    # computed here with the standard library's math module, pair by pair.
+    import math
+
+    def sight(p):
+        return (math.tan(math.radians(p[0])), math.tan(math.radians(p[1])), 1.0)
+
+    def angle(a, b):
+        u, v = sight(a), sight(b)
+        dot = sum(i * j for i, j in zip(u, v))
+        cos = dot / (math.sqrt(sum(i * i for i in u)) * math.sqrt(sum(j * j for j in v)))
+        return math.degrees(math.acos(max(-1.0, min(1.0, cos))))
+
+    ref = [min(angle(q, t) for t in train) for q in query]
+    got = S.nearest_distance(np.array(train), np.array(query), "visual_angle")
+    assert got == pytest.approx(ref, abs=1e-5)
+
+
+def test_visual_angle_along_the_horizontal_meridian_is_the_difference_of_angles():
+    # Two points on the horizontal meridian and the eye lie in one plane, so the angle between
+    # them is exactly the difference of their horizontal visual angles (from the definition).
+    got = S.nearest_distance(np.array([[-12.0, 0.0]]), np.array([[3.0, 0.0], [30.0, 0.0]]), "visual_angle")
+    assert got == pytest.approx([15.0, 42.0], abs=1e-9)
+
+
 def test_position_distance_equals_brute_force():
     # reference: scipy.spatial.distance.cdist, minimised over training centres
     rng = np.random.default_rng(5)
