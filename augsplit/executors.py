@@ -88,8 +88,8 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
         try:
             while queue or pending:
                 while queue and len(pending) < 2 * workers:
-                    job = queue.pop()
-                    pending[pool.submit(task, job)] = job
+                    fut = pool.submit(task, queue[-1])  # raises at once if the pool broke: keep the job
+                    pending[fut] = queue.pop()
                 done, _ = wait(pending, return_when=FIRST_COMPLETED)
                 for fut in done:
                     job = pending[fut]
@@ -106,7 +106,12 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
             # every job in flight may have been the one running in the dead worker: redo them all
             queue.extend(reversed(lost))
             continue
-        except BaseException:
+        except Exception:
+            # a job failed (e.g. disk full): let the running ones finish or fail cleanly, so
+            # no half-made shard is left behind, but start nothing new
+            pool.shutdown(wait=True, cancel_futures=True)
+            raise
+        except BaseException:  # Ctrl-C, or the caller stopped listening: stop now
             _stop_pool(pool)
             raise
         pool.shutdown(wait=True)
@@ -128,9 +133,10 @@ def _dask_call(job, task: Callable, init: Callable | None, initargs: tuple, toke
     return task(job)
 
 
-def dask_client(scheduler: str | None, workers: int, timeout: float = CONNECT_TIMEOUT_S):
+def dask_client(scheduler: str | None, workers: int, timeout: float | None = None):
     """A distributed.Client on `scheduler`, or on a new LocalCluster of `workers` processes.
     Returns (client, cluster or None). Import errors and unreachable schedulers become one line."""
+    timeout = CONNECT_TIMEOUT_S if timeout is None else timeout
     try:
         from distributed import Client, LocalCluster
     except ImportError:
@@ -166,7 +172,7 @@ def close_dask(client, cluster) -> None:
 
 
 def run_dask(task: Callable, jobs: Iterable, workers: int = 2, scheduler: str | None = None,
-             init: Callable | None = None, initargs: tuple = (), timeout: float = CONNECT_TIMEOUT_S,
+             init: Callable | None = None, initargs: tuple = (), timeout: float | None = None,
              client=None) -> Iterator:
     """Yield (job, result) as dask tasks finish. One task per job; dask reruns the task of a
     worker that is lost. The workers must see the same file system paths as this process.

@@ -71,17 +71,25 @@ def test_dispatch():
         executors.run(square, [1], executor="mpi")
 
 
-def test_unreachable_scheduler_is_one_line_exit_2_and_touches_nothing(tmp_path):
-    """Nothing listens on port 1 of the loopback; the CLI must give up on its own, in one line.
-    The subprocess timeout only guards against a hang (the error's own limit is 5 s)."""
+def test_unreachable_scheduler_is_one_line_exit_2_and_touches_nothing(tmp_path, capsys, monkeypatch):
+    """Nothing listens on port 1 of the loopback: the CLI must give up on its own (after the
+    connect timeout, shortened here), in one line, before creating the output folder."""
+    from augsplit.cli import main
+
+    monkeypatch.setattr(executors, "CONNECT_TIMEOUT_S", 1.0)
     out = tmp_path / "never"
-    proc = subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", "demo", "--out", str(out),
-                           "--scheduler", "tcp://127.0.0.1:1", "--quiet"],
-                          capture_output=True, text=True, timeout=60)
-    assert proc.returncode == 2
-    lines = proc.stderr.strip().splitlines()
-    assert len(lines) == 1 and "tcp://127.0.0.1:1" in lines[0] and "dask scheduler" in lines[0], proc.stderr
+    code = main(["generate", "demo", "--out", str(out), "--scheduler", "tcp://127.0.0.1:1", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and "tcp://127.0.0.1:1" in err and "dask scheduler within 1 s" in err, err
     assert not out.exists()
+
+
+def test_the_cli_gives_up_on_a_silent_scheduler_by_itself(tmp_path):
+    """The real timeout, end to end; the subprocess limit only guards against a hang."""
+    proc = subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", "demo", "--out", str(tmp_path / "n"),
+                           "--scheduler", "tcp://127.0.0.1:1", "--quiet"], capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 2 and len(proc.stderr.strip().splitlines()) == 1, proc.stderr
 
 
 def test_malformed_scheduler_address_is_a_dataset_error():

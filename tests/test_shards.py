@@ -54,7 +54,7 @@ def cli(capsys, *args) -> tuple[int, str, str]:
     return code, cap.out, cap.err
 
 
-def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file, serial, tmp_path):
+def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file, serial, tmp_path, capsys):
     out = tmp_path / "array"
     procs = [subprocess.Popen(CLI + ["generate", str(spec_file), "--out", str(out), "--shard", f"{k}/4",
                                      "--shard-size", str(SIZE), "--quiet"], stdout=subprocess.PIPE,
@@ -64,13 +64,13 @@ def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file,
         assert p.returncode == 0, stderr
         assert "--finalize" in stdout  # each job says what to do once all are done
     assert not (out / mf.SUMMARY_FILE).exists()  # no job declares the dataset complete
-    fin = subprocess.run(CLI + ["generate", "--finalize", "--out", str(out)], capture_output=True, text=True, timeout=120)
-    assert fin.returncode == 0, fin.stderr
+    code, _o, err = cli(capsys, "generate", "--finalize", "--out", out)
+    assert code == 0, err
     a, b = tree(serial), tree(out)
     assert sorted(a) == sorted(b)  # every manifest part, distractor part, image file, spec and summary
     assert [k for k in a if a[k] != b[k]] == []
-    ver = subprocess.run(CLI + ["verify", str(out)], capture_output=True, text=True, timeout=120)
-    assert ver.returncode == 0 and "OK" in ver.stdout, ver.stdout + ver.stderr
+    code, stdout, err = cli(capsys, "verify", out)
+    assert code == 0 and "OK" in stdout, stdout + err
 
 
 @pytest.mark.parametrize("shard", ["4/4", "-1/4", "0/0", "7/3"])

@@ -1,0 +1,252 @@
+"""Interruption and hostile storage: Ctrl-C and SIGKILL of a real `augsplit generate --workers 2`
+after some shards are committed, then --resume, give the bytes of an uninterrupted run; an
+output path that is a file, no permission, a read-only file system and a full disk are one
+line and exit 2, with every completed shard kept whole."""
+
+from __future__ import annotations
+
+import errno
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+import yaml
+
+from augsplit import manifest as mf
+from augsplit.cli import main
+from augsplit.generate import Options, generate
+
+SPEC = {
+    "seed": 17,
+    "canvas": {"width": 24, "height": 24, "mode": "rgb"},
+    "objects": {"kind": "polyomino", "cells": 2, "cell_px": 3, "colour": [230, 200, 30]},
+    "background": {"kind": "uniform_noise", "lo": 0.0, "hi": 0.3},
+    "axes": {"x": {"range": [5, 19]}, "y": {"range": [5, 19]}, "angle": {"range": [0, 360]},
+             "hue": {"range": [0, 360]}},
+    "splits": {"train": {"region": {"x": [5, 10]}, "count": 400}, "test": {"region": {"x": [14, 19]}, "count": 100}},
+}
+SIZE = 5  # 100 shards: a run lasts long enough to be cut after its first commits
+CLI = [sys.executable, "-m", "augsplit.cli"]
+
+
+def tree(root: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def spec_file(tmp_path_factory) -> Path:
+    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
+    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
+    return p
+
+
+@pytest.fixture(scope="module")
+def reference(spec_file, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("ref") / "ds"
+    generate(spec_file, out, Options(shard_size=SIZE, progress=False))
+    return out
+
+
+def committed(out: Path) -> list[Path]:
+    return mf.part_files(out) if out.exists() else []
+
+
+def assert_commits_are_whole(out: Path) -> None:
+    """Every committed part has all its rows, and every row's image is there in full."""
+    for part in committed(out):
+        t = pq.read_table(part, columns=["index", "file"])
+        assert t.num_rows == SIZE or part.name != "part-000000.parquet"
+        for rel in t.column("file").to_pylist():
+            assert (out / rel).stat().st_size > 0, rel
+
+
+def start(spec_file: Path, out: Path, *extra: str) -> subprocess.Popen:
+    # a session of its own, so the test can send Ctrl-C to the whole group as a terminal does
+    return subprocess.Popen(CLI + ["generate", str(spec_file), "--out", str(out), "--workers", "2",
+                                   "--shard-size", str(SIZE), "--quiet", *extra],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+
+
+def wait_for_commits(proc: subprocess.Popen, out: Path, n: int = 2, limit_s: float = 60.0) -> None:
+    t0 = time.monotonic()
+    while len(committed(out)) < n:
+        assert proc.poll() is None, f"the run ended before it could be interrupted: {proc.communicate()}"
+        assert time.monotonic() - t0 < limit_s, "no shard was committed in time"
+        time.sleep(0.01)
+
+
+def group_gone(pgid: int, limit_s: float = 10.0) -> bool:
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < limit_s:
+        try:
+            os.killpg(pgid, 0)
+        except ProcessLookupError:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def resume_and_compare(spec_file: Path, out: Path, reference: Path, cli: bool = False) -> None:
+    """--resume (through the CLI, or the same call in-process, which is quicker) must give the
+    reference bytes: nothing lost, nothing extra, no temporaries."""
+    if cli:
+        proc = subprocess.run(CLI + ["generate", str(spec_file), "--out", str(out), "--workers", "2", "--shard-size",
+                                     str(SIZE), "--resume", "--quiet"], capture_output=True, text=True, timeout=300)
+        assert proc.returncode == 0, proc.stderr
+    else:
+        generate(spec_file, out, Options(shard_size=SIZE, workers=2, resume=True, progress=False))
+    a, b = tree(reference), tree(out)
+    assert sorted(a) == sorted(b), (set(a) ^ set(b))
+    assert [k for k in a if a[k] != b[k]] == []
+    df = mf.read_manifest(out)
+    assert len(df) == 500 and not df["image_id"].duplicated().any()
+
+
+def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, reference, tmp_path):
+    out = tmp_path / "ds"
+    proc = start(spec_file, out)
+    wait_for_commits(proc, out)
+    os.killpg(proc.pid, signal.SIGINT)  # what Ctrl-C in a terminal does: the whole group
+    _stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 130
+    assert stderr.strip().splitlines() == ["augsplit generate: interrupted; rerun with --resume to continue"]
+    assert group_gone(proc.pid)  # no worker outlives the run
+    assert not (out / mf.SUMMARY_FILE).exists() and len(committed(out)) < 100
+    assert_commits_are_whole(out)
+    resume_and_compare(spec_file, out, reference, cli=True)
+
+
+def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_file, reference, tmp_path):
+    out = tmp_path / "ds"
+    proc = start(spec_file, out)
+    wait_for_commits(proc, out)
+    os.kill(proc.pid, signal.SIGKILL)  # only the driver: its workers must not live on as orphans
+    proc.communicate(timeout=60)
+    assert proc.returncode == -signal.SIGKILL
+    alive = not group_gone(proc.pid)
+    if alive:
+        os.killpg(proc.pid, signal.SIGKILL)
+    assert not alive, "worker processes outlived their killed driver"
+    assert not (out / mf.SUMMARY_FILE).exists()
+    assert_commits_are_whole(out)
+    resume_and_compare(spec_file, out, reference)
+
+
+def test_a_killed_pool_worker_is_replaced_and_its_shard_redone(spec_file, reference, tmp_path):
+    out = tmp_path / "ds"
+    proc = start(spec_file, out)
+    wait_for_commits(proc, out)
+    children = Path(f"/proc/{proc.pid}/task/{proc.pid}/children")
+    if not children.exists():
+        proc.kill()
+        pytest.skip("needs Linux /proc to find the worker processes")
+    kids = [int(p) for p in children.read_text().split()]
+    assert kids, "the driver has no worker processes"
+    os.kill(kids[0], signal.SIGKILL)
+    _stdout, stderr = proc.communicate(timeout=300)
+    assert proc.returncode == 0, stderr
+    a, b = tree(reference), tree(out)
+    assert sorted(a) == sorted(b) and [k for k in a if a[k] != b[k]] == []
+
+
+# ---- storage that refuses -----------------------------------------------------------------------
+
+
+def run_cli(capsys, *args) -> tuple[int, str]:
+    code = main([str(a) for a in args])
+    return code, capsys.readouterr().err
+
+
+def failing_replace(out: Path, exc: OSError, after: int):
+    """os.replace that fails with `exc` once `after` renames into `out` have succeeded."""
+    real = os.replace
+    count = {"n": 0}
+
+    def replace(src, dst, *args, **kwargs):
+        if str(dst).startswith(str(out)) and not str(dst).endswith(mf.SPEC_FILE):
+            if count["n"] >= after:
+                raise type(exc)(exc.errno, exc.strerror, str(dst))
+            count["n"] += 1
+        return real(src, dst, *args, **kwargs)
+
+    return replace
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_disk_full_is_one_line_exit_2_and_keeps_completed_shards(spec_file, reference, tmp_path, capsys,
+                                                                 monkeypatch, workers):
+    out = tmp_path / "ds"
+    # (forked pool workers inherit the patch; each fails after its own 40 renames)
+    monkeypatch.setattr(os, "replace", failing_replace(out, OSError(errno.ENOSPC, "No space left on device"), 40))
+    code, err = run_cli(capsys, "generate", spec_file, "--out", out, "--shard-size", SIZE, "--workers", workers,
+                        "--quiet")
+    assert code == 2 and err.count("\n") == 1
+    assert "disk full; completed shards are kept; free space and rerun with --resume" in err
+    assert len(committed(out)) >= 1
+    assert_commits_are_whole(out)
+    assert not [p for p in out.rglob(".*.tmp-*")]  # nothing half-written left behind
+    monkeypatch.undo()
+    resume_and_compare(spec_file, out, reference)
+
+
+def test_no_write_permission_is_one_line_exit_2(spec_file, reference, tmp_path, capsys, monkeypatch):
+    """CI runs as root, which ignores file modes, so the refusal is simulated where it would
+    surface: the rename that puts a written file in place."""
+    out = tmp_path / "ds"
+    monkeypatch.setattr(os, "replace", failing_replace(out, PermissionError(errno.EACCES, "Permission denied"), 12))
+    code, err = run_cli(capsys, "generate", spec_file, "--out", out, "--shard-size", SIZE, "--quiet")
+    assert code == 2 and err.count("\n") == 1 and "permission denied" in err and str(out) in err
+    assert_commits_are_whole(out)
+    monkeypatch.undo()
+    resume_and_compare(spec_file, out, reference)
+
+
+def test_read_only_file_system_is_one_line_exit_2(spec_file, tmp_path, capsys, monkeypatch):
+    out = tmp_path / "ro" / "ds"
+    real_mkdir = Path.mkdir
+
+    def mkdir(self, *args, **kwargs):
+        if str(self).startswith(str(tmp_path / "ro")):
+            raise OSError(errno.EROFS, "Read-only file system", str(self))
+        return real_mkdir(self, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "mkdir", mkdir)
+    code, err = run_cli(capsys, "generate", spec_file, "--out", out, "--quiet")
+    assert code == 2 and err.count("\n") == 1 and "Read-only file system" in err
+
+
+def test_read_only_file_system_mid_run_is_one_line_exit_2(spec_file, tmp_path, capsys, monkeypatch):
+    out = tmp_path / "ds"
+    monkeypatch.setattr(os, "replace", failing_replace(out, OSError(errno.EROFS, "Read-only file system"), 7))
+    code, err = run_cli(capsys, "generate", spec_file, "--out", out, "--shard-size", SIZE, "--quiet")
+    assert code == 2 and err.count("\n") == 1 and "read-only file system" in err
+
+
+def test_output_path_that_is_a_file_is_one_line_exit_2(spec_file, tmp_path, capsys):
+    target = tmp_path / "taken"
+    target.write_text("not a folder")
+    code, err = run_cli(capsys, "generate", spec_file, "--out", target, "--quiet")
+    assert code == 2 and err.count("\n") == 1 and "the output path is a file" in err and str(target) in err
+    assert target.read_text() == "not a folder"
+
+
+def test_output_inside_a_file_is_one_line_exit_2(spec_file, tmp_path, capsys):
+    target = tmp_path / "taken"
+    target.write_text("not a folder")
+    code, err = run_cli(capsys, "generate", spec_file, "--out", target / "ds", "--quiet")
+    assert code == 2 and err.count("\n") == 1 and "cannot create the output folder" in err
+
+
+def test_existing_dataset_is_not_overwritten_without_overwrite(spec_file, reference, tmp_path, capsys):
+    import shutil
+
+    copy = tmp_path / "copy"
+    shutil.copytree(reference, copy)
+    code, err = run_cli(capsys, "generate", spec_file, "--out", copy, "--shard-size", SIZE, "--quiet")
+    assert code == 2 and "--resume" in err and "--overwrite" in err
+    assert tree(copy) == tree(reference)
