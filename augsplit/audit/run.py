@@ -189,7 +189,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
 
     checks = _attach_thumbnails(checks, fp, th)
     inputs = {
-        "source": src.kind if src.kind == "frame" else str(src.files[0] if len(src.files) == 1 else src.files[0].parent),
+        "source": "DataFrame" if src.kind == "frame" else str(table),
         "n_rows": int(len(df)),
         "rows_per_split": {str(k): int(v) for k, v in pd.Series(split).value_counts(sort=False).items()},
         "axes": {s.name: {"lo": s.lo, "hi": s.hi, "periodic": s.periodic, "log": s.log} for s in scales},
@@ -302,19 +302,23 @@ class _Fingerprints:
         self.hashes = self.sha = None
         self.reason = ""
         self.kind = "none"
-        n_file = 0
+        has_file = np.zeros(len(df), bool)
         if "file" in df:
             f = df["file"].astype(str)
-            n_file = int(((f != "") & (f != "None") & (f != "nan")).sum())
+            has_file = ((f != "") & (f != "None") & (f != "nan") & (f != "<NA>")).to_numpy()
+        self.has_file = has_file
         if image_loader is not None:
             self.kind = "loader"
-        elif "image_bytes" in src.columns:
-            self.kind = "bytes"
-        elif n_file and th.hash_column not in df:
-            self.kind = "file"
-            check_files_exist(df["file"], src.root, np.arange(len(df)))  # bad input: fail early
         elif th.hash_column in df:
-            self.kind = "hash_column"  # hashes given: image files are not needed
+            self.kind = "hash_column"  # hashes given: images are not needed
+        elif has_file[rows].all() and rows.any():
+            self.kind = "file"
+        elif "image_bytes" in src.columns:
+            self.kind = "bytes"  # embedded images; rows that list a file are read from it
+        elif has_file.any():
+            self.kind = "file"
+        if self.kind in ("file", "bytes") and has_file.any():
+            check_files_exist(df["file"].where(has_file, ""), src.root, np.arange(len(df)))  # fail early
 
     def get(self):
         if not self._done:
@@ -347,7 +351,9 @@ class _Fingerprints:
         hashes[rows] = h
         computed_sha[rows] = s
         self.hashes = hashes
-        self.sha = sha if sha is not None else computed_sha
+        # pixels read are the evidence: a file copied over another after generation keeps its
+        # old manifest sha256, so the column is used only when no image is read
+        self.sha = computed_sha
 
     def _images(self, rows):
         """Images of the given rows, in order (streamed from Parquet when embedded)."""
@@ -361,16 +367,25 @@ class _Fingerprints:
             root = self.src.root or Path(".")
             names = self.df["file"].astype(str).to_numpy()
             for r in rows:
+                if not self.has_file[r]:
+                    raise DatasetError("row lists no image file", where=f"row {int(r)}")
                 yield read_image(root / names[r])
         elif self.kind == "bytes":
+            root = self.src.root or Path(".")
+            names = self.df["file"].astype(str).to_numpy() if "file" in self.df else None
             wanted = np.zeros(len(self.df), bool); wanted[rows] = True
             pos = 0
             for batch in self.src.iter_batches(["image_bytes"], batch_rows=1024):
                 for k, data in enumerate(batch["image_bytes"].tolist()):
-                    if wanted[pos + k]:
-                        if data is None:
-                            raise DatasetError("row has no image bytes", where=f"row {pos + k}")
-                        yield decode_image(data, f"row {pos + k}")
+                    r = pos + k
+                    if not wanted[r]:
+                        continue
+                    if data is not None:
+                        yield decode_image(data, f"row {r}")
+                    elif self.has_file[r]:
+                        yield read_image(root / names[r])
+                    else:
+                        raise DatasetError("row has neither image bytes nor an image file", where=f"row {r}")
                 pos += len(batch)
 
     def fetch(self, rows: list[int]) -> dict[int, np.ndarray]:

@@ -1,0 +1,57 @@
+"""The audit on a dataset made by `augsplit generate` with a footprint guarantee: the clean
+dataset passes every check; a test image overwritten by a train image is caught."""
+
+import shutil
+
+import pytest
+
+from augsplit.audit import run_audit
+from augsplit.manifest import read_manifest
+
+SPEC = """
+seed: 7
+canvas: {width: 128, height: 64, mode: gray}
+viewing: {distance_cm: 57, px_per_cm: 10}
+objects: {kind: glyphs, texts: [A, E, F, H], height_px: 14, thickness: 2}
+background: {kind: pink_noise, mean: 0.5, contrast: 0.15}
+axes:
+  x:     {range: [-5.5, 5.5], unit: deg}
+  y:     {range: [-2, 2], unit: deg}
+  scale: {range: [0.8, 1.25], dist: log}
+  angle: {range: [-20, 20]}
+splits:
+  train:   {region: {x: [-5.5, -2]}, per_class: 12}
+  test:    {region: {x: [2, 5.5]}, per_class: 6}
+guarantees:
+  - {disjoint: footprint, between: [train, test]}
+"""
+AXES = {"x": (-5.5, 5.5, False), "y": (-2, 2, False), "scale": (0.8, 1.25, False, "log"), "angle": (-20, 20, False)}
+CLAIMS = {"footprint_disjoint": True, "margin": 0.05}
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    generate = pytest.importorskip("augsplit.generate")
+    root = tmp_path_factory.mktemp("gen")
+    (root / "spec.yaml").write_text(SPEC)
+    generate.generate(root / "spec.yaml", root / "out", generate.Options(progress=False))
+    return root / "out"
+
+
+def test_clean_generated_dataset_passes_every_check(dataset):
+    res = run_audit(dataset, AXES, thresholds=CLAIMS)
+    assert res.verdict == "pass", [(c.name, c.detail) for c in res.checks if c.verdict != "pass"]
+    assert {c.name for c in res.checks} >= {"parameter_proximity", "footprint_overlap", "near_duplicates",
+                                            "instance_leakage", "category_overlap", "declared_regions"}
+    assert res.inputs["images"] == "file" and res.get("near_duplicates").numbers["n_test"] == 24
+
+
+def test_train_image_copied_over_a_test_image_is_caught(dataset, tmp_path):
+    copy = tmp_path / "copy"
+    shutil.copytree(dataset, copy)
+    m = read_manifest(copy)
+    src = m[m.split == "train"].iloc[3]; dst = m[m.split == "test"].iloc[2]
+    shutil.copyfile(copy / src["file"], copy / dst["file"])
+    nd = run_audit(copy, AXES, thresholds=CLAIMS).get("near_duplicates")
+    assert nd.verdict == "fail" and nd.numbers["n_exact_duplicates"] == 1
+    assert nd.worst.iloc[0]["test_id"] == dst["image_id"] and nd.worst.iloc[0]["train_id"] == src["image_id"]
