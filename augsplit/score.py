@@ -145,6 +145,21 @@ def bootstrap_gap(correct_ref, correct_held, *, n_boot: int = N_BOOT, confidence
     return float(gap), float(lo), float(hi)
 
 
+def expected_calibration_error(confidence, correct, n_bins: int = 10) -> float:
+    """Expected calibration error: sum over equal-width confidence bins of (n_b / n) times
+    |accuracy_b - mean confidence_b| (Naeini et al., 2015; Guo et al., 2017). Confidence is
+    the probability the model gave its predicted class."""
+    conf = np.asarray(confidence, dtype=float)
+    ok = np.asarray(correct, dtype=float)
+    if conf.size == 0:
+        return math.nan
+    b = np.clip((conf * n_bins).astype(int), 0, n_bins - 1)  # bins (i/n, (i+1)/n], 1.0 in the last
+    b = np.where((conf * n_bins == b) & (b > 0), b - 1, b)
+    n = np.bincount(b, minlength=n_bins)
+    gap = np.abs(np.bincount(b, ok, n_bins) - np.bincount(b, conf, n_bins))
+    return float(gap.sum() / conf.size) if n.sum() else math.nan
+
+
 def chance_bounds(n: int, p: float, confidence: float = CONFIDENCE) -> tuple[float, float]:
     """Accuracy range a guesser with hit rate p reaches on n images (central binomial interval)."""
     lo, hi = stats.binom.interval(confidence, n, p)
@@ -426,17 +441,26 @@ def score(manifest: pd.DataFrame, predictions: pd.DataFrame, train_split: str = 
             notes.append(f"{disagree} row(s) predict a class other than their highest score; "
                          "accuracy uses the predicted column, top-k the scores")
 
+    probs = score_mat is not None and bool(predictions.attrs.get("probabilities"))
+    if probs:
+        rows["confidence"] = sm[np.arange(len(rows)), np.searchsorted(indices, rows["predicted_index"].to_numpy())]
     dist_axes = _distance_columns(manifest, rows, train_split)
     rows["split"] = pd.Categorical(rows["split"].astype(str), categories=splits, ordered=True)
     by_split = _accuracy_table(rows, ["split"], ks, confidence)
     by_split = _add_coverage(by_split, manifest, rows)
     by_split = _add_chance(by_split, rows)
+    if probs:
+        cal = {s: expected_calibration_error(g["confidence"].to_numpy(), g["correct"].to_numpy())
+               for s, g in rows.groupby("split", observed=True)}
+        by_split["mean_confidence"] = by_split["split"].map(
+            rows.groupby("split", observed=True)["confidence"].mean()).astype(float)
+        by_split["ece"] = by_split["split"].map(cal).astype(float)
     by_class = _accuracy_table(rows, ["split", "class_name"], ks, confidence)
     by_cell = _accuracy_table(rows if "cell" in rows.columns else rows.assign(cell=-1), ["split", "cell"], ks, confidence)
     distance = _distance_table(rows, manifest, dist_axes, train_split, n_bins, confidence)
     by_value, train_ranges = _value_table(manifest, rows, train_split, n_value_bins, confidence)
     gaps = _gap_table(rows, splits, train_split, reference_split, n_boot, seed, confidence)
-    verdicts = tuple(_verdict(r, by_split, len(classes)) for _, r in gaps.iterrows())
+    verdicts = tuple(_verdict(r, by_split) for _, r in gaps.iterrows())
     for t in (by_split, by_class, by_cell, distance, by_value):
         t["split"] = t["split"].astype(str)
     rows["split"] = rows["split"].astype(str)
@@ -456,6 +480,8 @@ def _resolve_classes(pred: pd.DataFrame, classes, index_of_name, indices, where)
     score_mat = None
     if cols:
         prefix = PROB_PREFIX if cols[0].startswith(PROB_PREFIX) else SCORE_PREFIX
+        if not all(c.startswith(prefix) for c in cols):
+            raise DatasetError("has both score_<class> and prob_<class> columns; keep one kind", where=where)
         labels = [c[len(prefix):] for c in cols]
         col_idx = _labels_to_indices(labels, names, index_set, index_of_name, where,
                                      what=f"{prefix}<class> column(s)")
@@ -746,7 +772,7 @@ def _gap_table(rows, splits, train_split, reference_split, n_boot, seed, confide
                                       "gap_hi", "n_reference", "n"])
 
 
-def _verdict(gap_row, by_split: pd.DataFrame, n_classes: int) -> str:
+def _verdict(gap_row, by_split: pd.DataFrame) -> str:
     s = gap_row["split"]
     if not np.isfinite(gap_row["gap"]):
         return f"{s}: no predictions for this split or its reference"
@@ -755,7 +781,7 @@ def _verdict(gap_row, by_split: pd.DataFrame, n_classes: int) -> str:
             f"{gap_row['reference']} {gap_row['reference_accuracy']:.3f}; gap {gap_row['gap']:+.3f} "
             f"[{gap_row['gap_lo']:+.3f}, {gap_row['gap_hi']:+.3f}]")
     if r["ci_lo"] <= r["chance"]:
-        what = f"no better than chance ({r['chance']:.3f})"
+        what = f"not distinguishable from chance ({r['chance']:.3f})"
     elif gap_row["gap_lo"] > 0:
         what = "above chance but below the training region: partial transfer"
     else:
@@ -799,11 +825,13 @@ def format_table(result: ScoreResult, label: str | None = None) -> str:
     head = f"{label}: " if label else ""
     lines = [f"{head}{result.predictions}  ({result.n_scored}/{result.n_images} images, "
              f"{len(result.classes)} classes, {result.confidence:.0%} Wilson intervals)"]
-    cols = ["split", "n", "accuracy", "interval", "chance"] + [f"top{k}" for k in result.topk]
+    cal = "ece" in result.by_split.columns
+    cols = ["split", "n", "accuracy", "interval", "chance"] + [f"top{k}" for k in result.topk] + (["ECE"] if cal else [])
     body = []
     for _, r in result.by_split.iterrows():
         body.append([r["split"], str(r["n"]), f"{r['accuracy']:.3f}", f"[{r['ci_lo']:.3f}, {r['ci_hi']:.3f}]",
-                     f"{r['chance']:.3f}"] + [f"{r[f'top{k}']:.3f}" for k in result.topk])
+                     f"{r['chance']:.3f}"] + [f"{r[f'top{k}']:.3f}" for k in result.topk]
+                    + ([f"{r['ece']:.3f}"] if cal else []))
     lines += _fixed_width(cols, body)
     if len(result.distance):
         lines.append("accuracy against distance from the training region (axes a split lies beyond):")

@@ -112,6 +112,32 @@ def test_chance_bounds_hold_a_guessers_accuracy():
     assert (lo, hi) == pytest.approx(tuple(np.array(stats.binom.interval(0.95, 400, 0.25)) / 400))
 
 
+def test_expected_calibration_error_by_hand_and_on_calibrated_draws():
+    # Definition (Naeini et al., 2015; Guo et al., 2017): sum over bins ((m-1)/M, m/M] of
+    # (n_b / n) |acc_b - conf_b|. Worked by hand: bin (0.9, 1]: acc 0.5, conf 0.95 -> 0.45 * 2/4;
+    # bin (0.5, 0.6]: acc 1, conf 0.55 -> 0.45 * 2/4; total 0.45.
+    assert S.expected_calibration_error([0.95, 0.95, 0.55, 0.55], [1, 0, 1, 1]) == pytest.approx(0.45)
+    # a forecaster whose hit rate equals its confidence is calibrated: ECE near 0
+    rng = np.random.default_rng(8)
+    conf = rng.uniform(0.2, 1.0, 40_000)
+    assert S.expected_calibration_error(conf, rng.random(conf.size) < conf) < 0.015
+    # and one that is 20 points overconfident everywhere has ECE near 0.2
+    assert S.expected_calibration_error(conf, rng.random(conf.size) < conf - 0.2) == pytest.approx(0.2, abs=0.02)
+
+
+def test_calibration_is_reported_when_probabilities_are_given(tmp_path):
+    m = make_manifest(np.random.default_rng(6), 40, 40)
+    truth = m["class_index"].to_numpy()
+    p = np.full((len(m), 4), 0.1)
+    p[np.arange(len(m)), truth] = 0.7
+    path = tmp_path / "p.csv"
+    pd.DataFrame({"image_id": m["image_id"], **{f"prob_{c}": p[:, i] for i, c in enumerate(CLASSES)}}).to_csv(path, index=False)
+    r = S.score(m, S.load_predictions(path))
+    # every prediction right at confidence 0.7: ECE = |1 - 0.7| (Guo et al., 2017)
+    assert r.by_split["ece"].to_numpy() == pytest.approx(0.3)
+    assert r.by_split["mean_confidence"].to_numpy() == pytest.approx(0.7)
+
+
 # ---------------------------------------------------------------- distances
 
 
@@ -205,6 +231,21 @@ def test_score_counts_and_intervals_match_a_hand_count():
     # the training range on the position axis is the lane the training images used
     (lo, hi), = r.train_ranges["cx_px"]["intervals"]
     assert 4 <= lo < 6 and 26 < hi <= 28
+
+
+def test_visual_angle_curve_appears_with_viewing_geometry():
+    rng = np.random.default_rng(7)
+    m = make_manifest(rng)
+    D = 600.0  # px from the eye to the screen
+    m["x_deg"] = np.degrees(np.arctan((m["cx_px"] - 32) / D))
+    m["y_deg"] = np.degrees(np.arctan((m["cy_px"] - 32) / D))
+    r = S.score(m, predictions_with(m, np.ones(len(m), bool)))
+    deg = r.distance[r.distance["axis"] == "position_deg"]
+    px = r.distance[r.distance["axis"] == "position_px"]
+    assert deg["held_out_along"].all() and len(deg) == len(px)
+    # near the line of sight 1 px subtends about atan(1 / D) degrees (small-angle, from memory)
+    ratio = deg["mean_distance"].to_numpy() / px["mean_distance"].to_numpy()
+    assert ratio == pytest.approx(np.degrees(np.arctan(1 / D)), rel=0.02)
 
 
 def test_topk_uses_scores_and_counts_ties_against_the_truth():
