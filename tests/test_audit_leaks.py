@@ -204,3 +204,21 @@ def test_nan_and_inf_parameters_are_reported_not_dropped(clean):
 def test_missing_axis_range_comes_from_data(clean):
     res = run_audit(clean.table, {**AXES, "y": (None, None, False)})
     assert any(n.startswith("y: range") for n in res.inputs["notes"])
+
+
+def test_axes_from_augsplit_axis_objects_match_tuples(clean):
+    from augsplit.space.axes import CIRCULAR, LEVELS, LOG
+    t = clean.table.copy()
+    t["mirror"] = np.arange(len(t)) % 2
+    axes = {"x": Axis("x", 0.0, 64.0), "scale": Axis("scale", 0.8, 1.2, LOG), "angle": Axis("angle", 0.0, 360.0, CIRCULAR),
+            "mirror": Axis("mirror", 0.0, 1.0, LEVELS, levels=(0.0, 1.0))}
+    tuples = {"x": (0, 64, False), "scale": (0.8, 1.2, False, "log"), "angle": (0, 360, True), "mirror": (0, 1, False)}
+    a = run_audit(t, axes, thresholds=TH).get("parameter_proximity").numbers
+    b = run_audit(t, tuples, thresholds=TH).get("parameter_proximity").numbers
+    assert a == b
+
+
+def test_column_map_replaces_a_same_named_column():
+    df = pd.DataFrame({"split": ["a"], "x": [1.0], "pos_x": [2.0]})
+    out = apply_column_map(df, {"x": "pos_x"})
+    assert list(out.columns) == ["split", "x"] and out["x"].iloc[0] == 2.0

@@ -92,14 +92,22 @@ def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None,
         else:
             use_mask[np.asarray(mask_rows, np.int64)] = True
     rows = np.arange(len(bbox)) if rows is None else np.asarray(rows)
-    cov = np.zeros((n_groups, h, w), dtype=np.int64)
+    # State is one byte per pixel per class plus one count map: a group at a time, so no
+    # (classes x H x W) integer array is ever held.
+    binary = np.zeros((n_groups, h, w), dtype=np.uint8)
+    counts = np.zeros((h, w), dtype=np.int64)
     plain = np.flatnonzero(~use_mask)
-    for s in range(0, len(plain), chunk):  # bounded temporaries; the maps are the state
-        part = plain[s : s + chunk]
-        cov += box_counts(bbox[part], hw, groups[part], n_groups)
-    counts = cov.sum(axis=0)
-    binary = (cov > 0).astype(np.uint8)
-    del cov
+    order = plain[np.argsort(groups[plain], kind="stable")]
+    bounds = np.searchsorted(groups[order], np.arange(n_groups + 1))
+    for g in range(n_groups):
+        members = order[bounds[g] : bounds[g + 1]]
+        if len(members) == 0:
+            continue
+        cov = np.zeros((h, w), dtype=np.int64)
+        for s in range(0, len(members), chunk):  # bounded temporaries
+            cov += box_counts(bbox[members[s : s + chunk]], hw)[0]
+        binary[g] = cov > 0
+        counts += cov
     for i in np.flatnonzero(use_mask):
         raw = bbox[i]
         m = _mask_crop(mask_loader, rows[i], raw, hw)
@@ -160,6 +168,11 @@ def _nearest_overlapping(train_bbox, train_groups, box, group) -> tuple[int, int
     return (int(idx[k]), int(area[k])) if area[k] > 0 else (-1, 0)
 
 
+def _n_masks(loader, n: int, rows) -> int:
+    """Rows whose footprint may come from a mask (the loader may still answer None)."""
+    return 0 if loader is None else (n if rows is None else len(rows))
+
+
 def check_footprint(
     train_bbox: np.ndarray,
     test_bbox: np.ndarray,
@@ -218,7 +231,7 @@ def check_footprint(
         "shared_px_total": int(shared.sum()), "shared_px_max": int(shared.max()) if n_te else 0,
         "shared_canvas_px": int(shared_map.sum()),
         "claim": claim, "max_fraction": max_fraction,
-        "n_masks": int((n_tr if train_mask_rows is None else len(train_mask_rows)) + (n_te if test_mask_rows is None else len(test_mask_rows))) if mask_loader else 0,
+        "n_masks": _n_masks(mask_loader, n_tr, train_mask_rows) + _n_masks(mask_loader, n_te, test_mask_rows),
         "per_class": per_class,
     }
     train_ids = np.arange(n_tr) if train_ids is None else np.asarray(train_ids)

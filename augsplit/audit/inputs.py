@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DatasetError
-from ..space.axes import LOG, Axis
+from ..space.axes import LEVELS, LOG, Axis
 from .proximity import AxisScale
 
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
@@ -29,7 +29,9 @@ def apply_column_map(df: pd.DataFrame, mapping: dict[str, str] | None) -> pd.Dat
     if not mapping:
         return df
     _check_mapped(mapping, df.columns)
-    return df.rename(columns={src: dst for dst, src in mapping.items() if src != dst})
+    # a mapped column replaces a same-named one the table already has
+    shadowed = [dst for dst, src in mapping.items() if dst != src and dst in df.columns and dst not in mapping.values()]
+    return df.drop(columns=shadowed).rename(columns={src: dst for dst, src in mapping.items() if src != dst})
 
 
 def _check_mapped(mapping: dict[str, str], columns) -> None:
@@ -60,12 +62,15 @@ def axis_scales(axes: dict, data: pd.DataFrame | None = None) -> tuple[list[Axis
         if isinstance(spec, AxisScale):
             scales.append(spec); continue
         if isinstance(spec, Axis):
-            lo_t, hi_t = spec.t_range
             if spec.measure == LOG:
                 scales.append(AxisScale(name, spec.lo, spec.hi, False, True))
+            elif spec.measure == LEVELS:
+                # the table holds level values, so the range is that of the values
+                lv = [float(v) for v in spec.levels] or [0.0]
+                lo_v, hi_v = min(lv), max(lv)
+                scales.append(AxisScale(name, lo_v, hi_v if hi_v > lo_v else lo_v + 1.0, False))
             else:
-                scales.append(AxisScale(name, float(spec.lo if spec.measure != "levels" else lo_t),
-                                        float(spec.hi if spec.measure != "levels" else hi_t), spec.circular))
+                scales.append(AxisScale(name, float(spec.lo), float(spec.hi), spec.circular))
             continue
         try:
             items = tuple(spec)
@@ -228,7 +233,7 @@ def open_table(table, column_map: dict | None = None, root=None) -> TableSource:
 
 def _mapped_names(names: list[str], mapping: dict) -> list[str]:
     rename = {src: dst for dst, src in mapping.items()}
-    return [rename.get(n, n) for n in names]
+    return list(dict.fromkeys(rename.get(n, n) for n in names))
 
 
 # ---- images ------------------------------------------------------------------------------
