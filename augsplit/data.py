@@ -44,6 +44,23 @@ class DatasetIndexError(DatasetError, IndexError):
     """An item index out of range: a DatasetError, and an IndexError for Python's protocols."""
 
 
+class LazyStream:
+    """A numpy Generator made on first use, standing in for one: the draws are those of the
+    generator itself, but a render that draws nothing (a solid background, no distractors)
+    never pays for seeding it."""
+
+    __slots__ = ("_make", "_gen")
+
+    def __init__(self, make: Callable[[], np.random.Generator]):
+        self._make = make
+        self._gen = None
+
+    def __getattr__(self, name: str):
+        if self._gen is None:
+            self._gen = self._make()
+        return getattr(self._gen, name)
+
+
 # ---- shared helpers -------------------------------------------------------------------------
 
 
@@ -246,7 +263,7 @@ class Dataset:
                 raise DatasetError("stored image bytes cannot be decoded", where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
         built = self.built
         # the row's own seed key, not the re-opened plan's split order: the row alone decides
-        rng = image_rng(row["seed"], row["split_index"], row["index"], RENDER)
+        rng = LazyStream(functools.partial(image_rng, row["seed"], row["split_index"], row["index"], RENDER))
         scene = make_scene(built.plan, built.source, built.background, self._split_plan, row, rng=rng)
         return scene.image, scene.target
 
@@ -482,7 +499,7 @@ class OnlineSampler:
         index = int(index)
         row = self.draw(index, epoch)
         built = self._built
-        rng = online_rng(self.seed, self._split.index, epoch, index, RENDER)
+        rng = LazyStream(functools.partial(online_rng, self.seed, self._split.index, epoch, index, RENDER))
         scene = make_scene(built.plan, built.source, built.background, self._split, row, rng=rng)
         t = scene.target
         row.update(image_id=f"{self.split}-e{epoch}-{index:07d}", split=self.split, epoch=epoch, item=index,

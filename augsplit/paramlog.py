@@ -92,7 +92,7 @@ class ParamLog:
             # (DataLoader workers), where plain atexit handlers do not run
             from multiprocessing import util
 
-            util.Finalize(self, ParamLog.flush, args=(self,), exitpriority=10)
+            util.Finalize(self, ParamLog._flush_at_exit, args=(self,), exitpriority=10)
             self._exit_hook = True
 
     def __getstate__(self):
@@ -148,6 +148,12 @@ class ParamLog:
 
     close = flush
 
+    def _flush_at_exit(self) -> None:
+        try:
+            self.flush()
+        except DatasetError as exc:  # nobody is left to catch it: say so in one line
+            print(f"augsplit: parameter log rows of process {os.getpid()} were not written: {exc}", file=sys.stderr)
+
     def __enter__(self) -> "ParamLog":
         return self
 
@@ -157,6 +163,8 @@ class ParamLog:
     def _write(self) -> None:
         table = mf.to_table(self._buffer, LOG_SCHEMA, self._meta or {})
         path = self.log_dir / f"part-{self._pid}-{self._token}-{self._n:06d}.parquet"
+        if self.log_dir.exists() and not self.log_dir.is_dir():
+            raise DatasetError("the parameter log folder is a file", where=str(self.log_dir))
         try:
             self.log_dir.mkdir(parents=True, exist_ok=True)
             with atomic_path(path) as tmp:

@@ -1,0 +1,138 @@
+"""Benchmark: loaders and the albumentations plugin against their baselines, side by side.
+
+1. Items/s of a lazily rendered dataset (store none: every item re-rendered from its manifest
+   row) against the same images read from PNG files — by our Dataset (store files) and by a
+   bare cv2.imread loop. Aim: lazy at least as fast as PNG decode (ratio >= 1).
+2. Items/s of RegionPlacement against albumentations' own A.Affine on the same images (and with
+   mask, bboxes and keypoints), both inside A.Compose. Aim: the plugin within 1.2x (ratio of
+   times <= 1.2).
+
+Run: python tests/bench/bench_data.py [--quick]. Best of several repeats (shared machines).
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+from pathlib import Path
+
+import albumentations as A
+import cv2
+import numpy as np
+
+from augsplit.albu import RegionPlacement
+from augsplit.build import open_mapping, open_spec
+from augsplit.data import Dataset
+from augsplit.generate import Options, generate
+from augsplit.spec import builtin_spec_path
+
+NOISE96 = {
+    "seed": 7,
+    "canvas": {"width": 96, "height": 96, "mode": "rgb"},
+    "objects": {"kind": "polyomino", "cells": 5, "cell_px": 5, "colour": [240, 200, 40]},
+    "background": {"kind": "pink_noise", "mean": 0.5, "contrast": 0.15},
+    "axes": {"x": {"range": [10, 86]}, "y": {"range": [10, 86]}, "scale": {"range": [0.75, 1.5], "dist": "log"},
+             "angle": {"range": [0, 360]}, "hue": {"range": [0, 360]}},
+    "splits": {"train": {"region": {"x": [10, 40]}, "per_class": 40}, "test": {"region": {"x": [56, 86]}, "per_class": 10}},
+}
+
+
+def best_rate(fn, n: int, repeats: int) -> float:
+    """Items per second of the fastest of `repeats` runs of fn() (which handles n items)."""
+    best = float("inf")
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return n / best
+
+
+def bench_loaders(name: str, built, tmp: Path, repeats: int) -> None:
+    roots = {}
+    for store in ("files", "none"):
+        roots[store] = tmp / f"{name}-{store}"
+        generate(None, roots[store], Options(store=store, progress=False), built=built)
+    lazy, png = Dataset(roots["none"], "train"), Dataset(roots["files"], "train")
+    n = len(lazy)
+    files = [str(roots["files"] / f) for f in png.manifest["file"]]
+    flag = cv2.IMREAD_GRAYSCALE if png.channels == 1 else cv2.IMREAD_COLOR
+
+    def read_png():
+        for f in files:
+            img = cv2.imread(f, flag)
+            if png.channels == 3:
+                cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+
+    def run(ds):
+        for i in range(n):
+            ds[i]
+
+    r_lazy = best_rate(lambda: run(lazy), n, repeats)
+    r_png = best_rate(lambda: run(png), n, repeats)
+    r_raw = best_rate(read_png, n, repeats)
+    h, w = lazy.hw
+    print(f"{name} ({w}x{h}, {n} items)")
+    print(f"  lazy re-render (Dataset, store none) {r_lazy:9.0f} items/s")
+    print(f"  PNG files      (Dataset, store files){r_png:9.0f} items/s   lazy / png     = {r_lazy / r_png:5.2f}x")
+    print(f"  PNG decode     (bare cv2.imread)     {r_raw:9.0f} items/s   lazy / imread  = {r_lazy / r_raw:5.2f}x")
+
+
+def photos(n: int, size: int, seed: int = 0) -> list[np.ndarray]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):  # smooth random images, like photographs rather than white noise
+        small = rng.integers(0, 256, (size // 8, size // 8, 3), dtype=np.uint8)
+        out.append(cv2.resize(small, (size, size), interpolation=cv2.INTER_CUBIC))
+    return out
+
+
+def bench_plugin(size: int, repeats: int, n: int) -> None:
+    spec = {"seed": 3, "canvas": {"width": size, "height": size},
+            "objects": {"kind": "polyomino", "cells": 2, "cell_px": 2},
+            "axes": {"x": {"range": [0, size]}, "y": {"range": [0, size]}, "scale": {"range": [0.5, 1.0]},
+                     "angle": {"range": [0, 360]}},
+            "splits": {"train": {"region": {"x": [0, size / 2]}, "count": 10},
+                       "test": {"region": {"x": [size / 2, size]}, "count": 10}}}
+    built = open_mapping(spec)
+    imgs = photos(n, size)
+    mask = np.zeros((size, size), np.uint8)
+    mask[size // 4: size // 2, size // 4: size // 2] = 1
+    boxes = [[size * 0.1, size * 0.2, size * 0.5, size * 0.6], [size * 0.4, size * 0.4, size * 0.9, size * 0.8]]
+    kps = [[size * 0.3, size * 0.3], [size * 0.7, size * 0.2], [size * 0.5, size * 0.9]]
+    bp = A.BboxParams(format="pascal_voc", label_fields=["labels"])
+    kp = A.KeypointParams(format="xy", remove_invisible=False)
+    ours = RegionPlacement(built, "train", content_size=(size, size))
+    theirs = A.Affine(scale=(0.5, 1.0), rotate=(0, 360), translate_px=(-size // 4, size // 4), p=1.0)
+    print(f"plugin vs A.Affine ({size}x{size} images, {n} calls, inside A.Compose)")
+    for label, full in (("image only", False), ("image+mask+bboxes+keypoints", True)):
+        rates = []
+        for t in (ours, theirs):
+            c = A.Compose([t], seed=1, bbox_params=bp, keypoint_params=kp) if full else A.Compose([t], seed=1)
+
+            def run(c=c):
+                for img in imgs:
+                    if full:
+                        c(image=img, mask=mask, bboxes=boxes, labels=[0, 1], keypoints=kps)
+                    else:
+                        c(image=img)
+
+            rates.append(best_rate(run, n, repeats))
+        print(f"  {label:28s} ours {rates[0]:8.0f}/s   A.Affine {rates[1]:8.0f}/s   "
+              f"time ours / A.Affine = {rates[1] / rates[0]:4.2f}x")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="fewer repeats (a smoke run)")
+    args = ap.parse_args()
+    repeats = 2 if args.quick else 5
+    with tempfile.TemporaryDirectory() as tmp:
+        bench_loaders("demo spec (grey, solid background)", open_spec(builtin_spec_path()), Path(tmp), repeats)
+        bench_loaders("rgb spec (pink-noise background)", open_mapping(NOISE96), Path(tmp), repeats)
+    for size in (64, 256):
+        bench_plugin(size, repeats, 300 if args.quick else 1000)
+
+
+if __name__ == "__main__":
+    main()

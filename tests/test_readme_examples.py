@@ -1,0 +1,68 @@
+"""The "Use in training" examples run as written: docs/use_in_training.md and, once pasted,
+the README's section of the same name (all python blocks of a section share one namespace,
+as a reader running them in order would)."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+SECTION = "## Use in training"
+FENCE = re.compile(r"```python\n(.*?)```", re.S)
+
+
+def section(text: str) -> str:
+    """The text from the section heading to the next heading of the same level."""
+    start = text.find(SECTION)
+    if start < 0:
+        return ""
+    rest = text[start + len(SECTION):]
+    end = re.search(r"^## ", rest, re.M)
+    return rest[: end.start()] if end else rest
+
+
+def blocks(path: Path) -> list[str]:
+    return FENCE.findall(section(path.read_text(encoding="utf-8")))
+
+
+def run(code_blocks: list[str], where: Path, capsys) -> str:
+    ns: dict = {"__name__": "__readme__"}
+    for k, code in enumerate(code_blocks):
+        exec(compile(code, f"<{where.name} block {k + 1}>", "exec"), ns)  # noqa: S102 - our own docs
+    return capsys.readouterr().out
+
+
+def check(out: str) -> None:
+    # what the examples claim, checked on what they printed
+    assert "300 far-lane predictions" in out
+    assert "(64, 64, 3)" in out
+    assert re.search(r"200 draws, 0 in the held-out region|201 draws, 0 in the held-out region", out)
+
+
+def test_docs_examples_run(tmp_path, monkeypatch, capsys):
+    pytest.importorskip("torch")
+    doc = ROOT / "docs" / "use_in_training.md"
+    code = blocks(doc)
+    assert len(code) == 3
+    monkeypatch.chdir(tmp_path)
+    out = run(code, doc, capsys)
+    check(out)
+    # the sampler's log holds every item of both epochs, each once, from the worker processes
+    from augsplit.paramlog import read_log
+
+    draws = read_log(tmp_path / "draws")
+    assert len(draws) == 1024 and set(draws["worker"]) == {0, 1}
+    assert sorted(zip(draws["epoch"], draws["item"])) == [(e, i) for e in (0, 1) for i in range(512)]
+
+
+def test_readme_examples_run(tmp_path, monkeypatch, capsys):
+    pytest.importorskip("torch")
+    readme = ROOT / "README.md"
+    code = blocks(readme) if readme.exists() else []
+    if not code:
+        pytest.skip("README.md has no 'Use in training' section yet (docs/use_in_training.md holds it)")
+    monkeypatch.chdir(tmp_path)
+    check(run(code, readme, capsys))
