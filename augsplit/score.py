@@ -1071,6 +1071,10 @@ def _plot_values(results):
                             label=f"{label}: {split}")
         if rng_info.get("kind") == "log":
             ax.set_xscale("log", base=2)
+            lo, hi = ax.get_xlim()
+            ticks = np.exp2(np.linspace(np.log2(lo), np.log2(hi), 5)[1:-1])
+            ax.set_xticks(ticks, [f"{t:.3g}" for t in ticks])
+            ax.xaxis.set_minor_locator(_plt().NullLocator())
         ax.set_xlabel(f"{name} ({rng_info.get('unit', '')})")
         ax.set_ylim(0, 1.05)
     for ax in axs.ravel()[len(axes_names):]:
