@@ -356,37 +356,36 @@ class _Fingerprints:
         self.sha = computed_sha
 
     def _images(self, rows):
-        """Images of the given rows, in order (streamed from Parquet when embedded)."""
+        """Images of the given rows, in order (streamed from Parquet when embedded). Files and
+        bytes are decoded on a few threads: OpenCV releases the GIL while decoding."""
         if self.kind == "loader":
             for r in rows:
                 img = self.loader(int(r))
                 if img is None:
                     raise DatasetError("image loader returned no image", where=f"row {int(r)}")
                 yield np.asarray(img)
-        elif self.kind == "file":
-            root = self.src.root or Path(".")
-            names = self.df["file"].astype(str).to_numpy()
-            for r in rows:
-                if not self.has_file[r]:
-                    raise DatasetError("row lists no image file", where=f"row {int(r)}")
-                yield read_image(root / names[r])
+            return
+        root = self.src.root or Path(".")
+        names = self.df["file"].astype(str).to_numpy() if "file" in self.df else None
+
+        def from_file(r):
+            if not self.has_file[r]:
+                raise DatasetError("row has neither image bytes nor an image file", where=f"row {int(r)}")
+            return read_image(root / names[r])
+
+        if self.kind == "file":
+            yield from _ordered_map(from_file, rows)
         elif self.kind == "bytes":
-            root = self.src.root or Path(".")
-            names = self.df["file"].astype(str).to_numpy() if "file" in self.df else None
-            wanted = np.zeros(len(self.df), bool); wanted[rows] = True
-            pos = 0
-            for batch in self.src.iter_batches(["image_bytes"], batch_rows=1024):
-                for k, data in enumerate(batch["image_bytes"].tolist()):
-                    r = pos + k
-                    if not wanted[r]:
-                        continue
-                    if data is not None:
-                        yield decode_image(data, f"row {r}")
-                    elif self.has_file[r]:
-                        yield read_image(root / names[r])
-                    else:
-                        raise DatasetError("row has neither image bytes nor an image file", where=f"row {r}")
-                pos += len(batch)
+            def jobs():
+                wanted = np.zeros(len(self.df), bool); wanted[rows] = True
+                pos = 0
+                for batch in self.src.iter_batches(["image_bytes"], batch_rows=1024):
+                    for k, data in enumerate(batch["image_bytes"].tolist()):
+                        if wanted[pos + k]:
+                            yield pos + k, data
+                    pos += len(batch)
+            yield from _ordered_map(lambda job: decode_image(job[1], f"row {job[0]}") if job[1] is not None
+                                    else from_file(job[0]), jobs())
 
     def fetch(self, rows: list[int]) -> dict[int, np.ndarray]:
         """A few rows' images (for thumbnails); empty when images are not available."""
@@ -394,6 +393,21 @@ class _Fingerprints:
         if not rows or self.kind in ("none", "hash_column"):
             return {}
         return dict(zip(rows, self._images(np.array(rows, np.int64))))
+
+
+def _ordered_map(fn, items, workers: int = 2, window: int = 64):
+    """fn over items on a few threads, results in input order, at most `window` in flight."""
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        pending: deque = deque()
+        for item in items:
+            pending.append(pool.submit(fn, item))
+            if len(pending) >= window:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
 
 
 def _parse_hashes(col: pd.Series, where: str) -> np.ndarray:
