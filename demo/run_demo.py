@@ -103,8 +103,7 @@ def audit(root: Path, m: pd.DataFrame, spec: dict) -> tuple[str, tuple[str, ...]
         if ax:
             lo, hi = ax["range"]
             axes[col] = (float(lo), float(hi), False) + (("log",) if ax.get("dist") == "log" else ())
-    table = m.drop(columns=[c for c in ("image_bytes",) if c in m.columns])
-    res = run_audit(table, axes=axes, pairs=pairs, thresholds={"footprint_disjoint": True}, root=root)
+    res = run_audit(root, axes=axes, pairs=pairs, thresholds={"footprint_disjoint": True})
     return res.verdict, tuple(summary_table(res).splitlines())
 
 
