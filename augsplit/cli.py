@@ -78,6 +78,14 @@ def _cmd_verify(a) -> int:
     return 1
 
 
+def _cmd_preview(a) -> int:
+    from .preview import preview
+
+    for path in preview(a.dataset, out=a.out, per_split=a.per_split, columns=a.columns):
+        print(path)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
@@ -119,6 +127,13 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("dataset")
     q.add_argument("--sample", type=int, default=None, help="re-render only this many random rows")
     q.set_defaults(run=_cmd_verify)
+
+    q = sub.add_parser("preview", help="contact sheets per split and a map of where each split's objects landed (PNG)")
+    q.add_argument("dataset")
+    q.add_argument("--out", default=None, help="folder for the PNG files (default: DATASET/preview)")
+    q.add_argument("--per-split", type=int, default=24, help="images on each contact sheet")
+    q.add_argument("--columns", type=int, default=6, help="images per row of a contact sheet")
+    q.set_defaults(run=_cmd_preview)
     return p
 
 

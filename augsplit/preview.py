@@ -1,0 +1,270 @@
+"""`augsplit preview DIR`: pictures a person opens to see what a dataset holds.
+
+A contact sheet per split (a grid of its images, each captioned with its class and the values of
+the axes the spec varies) and a coverage map: how often each canvas pixel is covered by an
+object of each split, train and test in different colours, with the pixels both touch counted.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import manifest as mf
+from .build import Built
+from .errors import DatasetError
+from .generate import decode, open_dataset_spec
+from .render import add_footprint, footprint
+from .scene import make_scene, render_params
+
+PREVIEW_DIR = "preview"
+COVERAGE_FILE = "coverage.png"
+MAX_COVERAGE_ROWS = 20000  # per split; more rows are sampled evenly (the title says so)
+
+# per-role colour families: train blue; test splits warm, one hue each (matplotlib colormaps)
+TRAIN_CMAPS = ("Blues", "Greens", "Purples", "Greys")
+TEST_CMAPS = ("Oranges", "Reds", "YlOrBr", "RdPu")
+TRAIN_RGB = np.array([0.12, 0.40, 0.85])
+TEST_RGB = np.array([0.95, 0.45, 0.05])
+
+_DEG_AXES = {"angle", "hue", "polar_angle"}
+
+
+@dataclass(frozen=True)
+class Coverage:
+    """Per split: how many of its (sampled) images cover each canvas pixel."""
+
+    counts: dict  # split name -> (H, W) int array
+    sampled: dict  # split name -> (rows used, rows in the split)
+    roles: dict  # split name -> "train" | "test"
+
+    def union(self, role: str) -> np.ndarray:
+        maps = [c for name, c in self.counts.items() if self.roles[name] == role]
+        return np.sum(maps, axis=0) if maps else None
+
+    def shared_pixels(self) -> int:
+        """Canvas pixels covered by some train image and by some test image."""
+        tr, te = self.union("train"), self.union("test")
+        if tr is None or te is None:
+            return 0
+        return int(np.count_nonzero((tr > 0) & (te > 0)))
+
+
+def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24, columns: int = 6) -> list[Path]:
+    """Write one contact sheet per split and the coverage map; return their paths."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    root = Path(root)
+    built = open_dataset_spec(root)
+    df = mf.read_manifest(root)
+    if df.empty:
+        raise DatasetError("the dataset has no manifest rows to preview", where=str(root / mf.MANIFEST_DIR))
+    if per_split < 1 or columns < 1:
+        raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
+    out = Path(out) if out is not None else root / PREVIEW_DIR
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise DatasetError(f"cannot create the preview folder: {exc.strerror}", where=str(out)) from None
+    paths = []
+    for s in built.plan.splits:
+        rows = df[df["split"] == s.name]
+        if len(rows):
+            paths.append(contact_sheet(built, root, rows, out / f"contact_{s.name}.png", per_split, columns))
+    cov = coverage(built, df)
+    paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
+    return paths
+
+
+# ---- contact sheets ------------------------------------------------------------------------------
+
+
+def pick_rows(n_rows: int, k: int) -> np.ndarray:
+    """k row positions spread evenly over 0..n_rows-1 (classes come in blocks, so every class
+    shows up when k is at least the number of classes)."""
+    if n_rows <= k:
+        return np.arange(n_rows)
+    return np.unique(np.floor((np.arange(k) + 0.5) * n_rows / k).astype(int))
+
+
+def varied_axes(built: Built) -> list[str]:
+    return [n for n in built.plan.space.names if n != "class"]
+
+
+def caption(built: Built, row) -> str:
+    """Class, then each varied axis in the spec's own unit, two to a line."""
+    parts = []
+    for name in varied_axes(built):
+        v = float(row[name])
+        unit = built.plan.space[name].unit
+        if name == "mirror":
+            parts.append("mirrored" if v >= 0.5 else "not mirrored")
+        elif name in _DEG_AXES or unit == "deg":
+            parts.append(f"{name} {v:.1f}°")
+        elif unit in ("", "x"):
+            parts.append(f"{name} {v:.2f}")
+        else:
+            parts.append(f"{name} {v:.1f} {unit}")
+    lines = [f"{row['class_name']}  #{int(row['index'])}"]
+    lines += ["  ".join(parts[i:i + 2]) for i in range(0, len(parts), 2)]
+    return "\n".join(lines)
+
+
+def image_of(built: Built, root: Path, row) -> np.ndarray:
+    """The stored image of a row (file or Parquet bytes), or the image re-made from the row."""
+    channels = 1 if built.spec.canvas.mode == "gray" else 3
+    rel = row.get("file") or ""
+    if rel:
+        p = root / rel
+        if not p.exists():
+            raise DatasetError("the row's image file is missing", where=str(p))
+        return decode(p.read_bytes(), channels)
+    data = row.get("image_bytes")
+    if isinstance(data, (bytes, bytearray)):
+        return decode(bytes(data), channels)
+    split = built.plan.split(row["split"])
+    return make_scene(built.plan, built.source, built.background, split, row).image
+
+
+def contact_sheet(built: Built, root: Path, rows, path: Path, per_split: int = 24, columns: int = 6) -> Path:
+    import matplotlib.pyplot as plt
+
+    pick = rows.iloc[pick_rows(len(rows), per_split)]
+    n = len(pick)
+    cols = min(columns, n)
+    nrows = math.ceil(n / cols)
+    lines = 1 + math.ceil(len(varied_axes(built)) / 2)
+    # laid out in inches, so captions never run into the image above however many lines they take
+    img, gap, cap, top, margin = 1.8, 0.18, 0.03 + 0.115 * lines, 0.45, 0.15
+    cell_h = cap + img + gap
+    width, height = 2 * margin + cols * img + (cols - 1) * gap, top + nrows * cell_h + margin - gap
+    fig = plt.figure(figsize=(width, height))
+    split = built.plan.split(pick["split"].iloc[0])
+    for i, (_, row) in enumerate(pick.iterrows()):
+        r, c = divmod(i, cols)
+        x0 = margin + c * (img + gap)
+        y0 = height - top - r * cell_h - cap - img
+        ax = fig.add_axes((x0 / width, y0 / height, img / width, img / height))
+        im = image_of(built, root, row)
+        if im.shape[2] == 1:
+            ax.imshow(im[..., 0], cmap="gray", vmin=0, vmax=255, interpolation="nearest")
+        else:
+            ax.imshow(im, interpolation="nearest")
+        ax.set_xticks([])
+        ax.set_yticks([])
+        for spine in ax.spines.values():
+            spine.set_color("0.6")
+        fig.text(x0 / width, (y0 + img + 0.03) / height, caption(built, row), fontsize=6.5, family="monospace",
+                 ha="left", va="bottom", linespacing=1.15)
+    kind = f"{split.role}, {split.kind}" if split.kind != split.role else split.role
+    fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {len(rows)} images, "
+             "evenly spaced by index", fontsize=10, ha="left", va="top")
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+# ---- coverage ------------------------------------------------------------------------------------
+
+
+def coverage(built: Built, df, max_rows: int = MAX_COVERAGE_ROWS) -> Coverage:
+    """Footprint counts per split, from the renderer's own footprints at each row's parameters."""
+    h, w = built.spec.canvas.height, built.spec.canvas.width
+    thr = built.spec.render.alpha_threshold
+    counts, sampled, roles = {}, {}, {}
+    for s in built.plan.splits:
+        rows = df[df["split"] == s.name]
+        if not len(rows):
+            continue
+        pick = rows.iloc[pick_rows(len(rows), max_rows)]
+        acc = np.zeros((h, w), dtype=np.int64)
+        cls, inst = pick["class_index"].to_numpy(), pick["instance"].to_numpy()
+        for i, (_, row) in enumerate(pick.iterrows()):
+            sprite = built.source.sprite(int(cls[i]), int(inst[i]))
+            add_footprint(acc, footprint(sprite, render_params(row), (h, w), thr))
+        counts[s.name], sampled[s.name], roles[s.name] = acc, (len(pick), len(rows)), s.role
+    return Coverage(counts, sampled, roles)
+
+
+def overlay(train: np.ndarray | None, test: np.ndarray | None) -> np.ndarray:
+    """An RGB picture: train coverage in blue, test in orange, on white; a pixel both touch
+    is drawn black so a leak cannot hide in a blend of colours."""
+    shape = (train if train is not None else test).shape
+    rgb = np.ones(shape + (3,))
+    for m, colour in ((train, TRAIN_RGB), (test, TEST_RGB)):
+        if m is None:
+            continue
+        # log scale: a pixel touched once must stay visible next to one touched thousands of times
+        a = np.log1p(m) / max(np.log1p(m.max()), 1e-9)
+        a = np.where(m > 0, 0.25 + 0.75 * a, 0.0)[..., None]
+        rgb = rgb * (1 - a) + colour * a
+    if train is not None and test is not None:
+        rgb[(train > 0) & (test > 0)] = 0.0
+    return rgb
+
+
+def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
+    """Top row: one heat map per split. Bottom row: each test split over all train splits."""
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Patch
+
+    names = list(cov.counts)
+    tests = [n for n in names if cov.roles[n] == "test"]
+    train = cov.union("train")
+    ncols = max(len(names), len(tests), 1)
+    nrows = 2 if tests and train is not None else 1
+    fig, axes = plt.subplots(nrows, ncols, figsize=(3.5 * ncols, 3.6 * nrows + 0.5), squeeze=False)
+    for ax in axes.ravel():
+        ax.set_axis_off()
+    cmaps = {"train": iter(TRAIN_CMAPS * 4), "test": iter(TEST_CMAPS * 4)}
+    for ax, name in zip(axes[0], names):
+        m = cov.counts[name]
+        split = built.plan.split(name)
+        im = ax.imshow(np.ma.masked_equal(m, 0), cmap=next(cmaps[cov.roles[name]]), interpolation="nearest")
+        used, total = cov.sampled[name]
+        of = f"{used} images" if used == total else f"{used} of {total} images"
+        kind = split.role if split.kind == split.role else f"{split.role}, {split.kind}"
+        ax.set_title(f"{name} ({kind})\n{of}; {np.count_nonzero(m)} px covered", fontsize=9)
+        fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).set_label("images covering the pixel", fontsize=7)
+        _frame(ax, m.shape)
+    if nrows == 2:
+        for ax, name in zip(axes[1], tests):
+            m = cov.counts[name]
+            shared = int(np.count_nonzero((train > 0) & (m > 0)))
+            ax.imshow(overlay(train, m), interpolation="nearest")
+            promised = footprint_guaranteed(built, name)
+            note = " (the spec guarantees 0)" if promised else ""
+            ax.set_title(f"train (blue) vs {name} (orange)\npixels touched by both: {shared}{note}", fontsize=9,
+                         color="firebrick" if promised and shared else "black")
+            _frame(ax, m.shape)
+        axes[1][0].legend(handles=[Patch(color=TRAIN_RGB, label="train"), Patch(color=TEST_RGB, label="test"),
+                                   Patch(color="black", label="both")], loc="upper left",
+                          bbox_to_anchor=(0.0, -0.02), ncol=3, fontsize=7, frameon=False)
+    c = built.spec.canvas
+    fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
+                 "re-made from the manifest rows", fontsize=10)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+def footprint_guaranteed(built: Built, test_split: str) -> bool:
+    """Whether the spec states `disjoint: footprint` between this split and a train split."""
+    trains = {s.name for s in built.plan.splits if s.role == "train"}
+    return any(g.disjoint == "footprint" and test_split in g.between and trains & set(g.between)
+               for g in built.spec.guarantees)
+
+
+def _frame(ax, shape) -> None:
+    """Show the canvas border (white pixels would otherwise merge with the page)."""
+    from matplotlib.patches import Rectangle
+
+    h, w = shape
+    ax.add_patch(Rectangle((-0.5, -0.5), w, h, fill=False, lw=0.8, ec="0.5", clip_on=False))
+    ax.set_xticks([])
+    ax.set_yticks([])

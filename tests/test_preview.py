@@ -1,0 +1,131 @@
+"""`augsplit preview`: contact sheets and the coverage map. The coverage counts are checked
+against the manifest's own footprint sizes and bounding boxes; the overlay marks every pixel
+both roles touch; pictures are readable PNGs; every store mode previews the same pixels."""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pytest
+import yaml
+
+from augsplit import manifest as mf
+from augsplit import preview as pv
+from augsplit.cli import main
+from augsplit.errors import DatasetError
+from augsplit.generate import Options, generate, open_dataset_spec
+
+SPEC = {
+    "seed": 23,
+    "canvas": {"width": 40, "height": 40, "mode": "rgb"},
+    "objects": {"kind": "polyomino", "cells": 3, "cell_px": 3, "colour": [220, 40, 40]},
+    "background": {"kind": "solid", "value": 0.9},
+    "axes": {"x": {"range": [4, 36]}, "y": {"range": [4, 36]}, "angle": {"range": [0, 360]},
+             "hue": {"range": [0, 360]}},
+    "splits": {"train": {"region": {"x": [4, 12]}, "count": 30}, "test": {"region": {"x": [28, 36]}, "count": 12},
+               "iid": {"region": {"split": "train"}, "count": 8}},
+    "guarantees": [{"disjoint": "footprint", "between": ["train", "test"]}],
+}
+
+
+@pytest.fixture(scope="module")
+def datasets(tmp_path_factory):
+    root = tmp_path_factory.mktemp("prev")
+    spec = root / "spec.yaml"
+    spec.write_text(yaml.safe_dump(SPEC, sort_keys=False))
+    out = {}
+    for store in ("files", "parquet", "none"):
+        out[store] = root / store
+        generate(spec, out[store], Options(store=store, progress=False))
+    return out
+
+
+def test_preview_writes_a_sheet_per_split_and_the_coverage_map(datasets):
+    paths = pv.preview(datasets["files"], per_split=6, columns=3)
+    names = [p.name for p in paths]
+    assert names == ["contact_train.png", "contact_test.png", "contact_iid.png", "coverage.png"]
+    for p in paths:
+        assert p.parent == datasets["files"] / pv.PREVIEW_DIR
+        img = cv2.imread(str(p))
+        assert img is not None and img.shape[0] > 150 and img.shape[1] > 150
+        assert img.std() > 5  # not a blank page
+
+
+def test_coverage_counts_match_the_manifest_footprints(datasets):
+    """Each split's map sums to the sum of its rows' footprint_px, and lies inside the union of
+    their bounding boxes: the map is the renderer's footprints, not an approximation."""
+    built = open_dataset_spec(datasets["files"])
+    df = mf.read_manifest(datasets["files"])
+    cov = pv.coverage(built, df)
+    for name, counts in cov.counts.items():
+        rows = df[df["split"] == name]
+        assert counts.sum() == rows["footprint_px"].sum()
+        inside = np.zeros_like(counts, dtype=bool)
+        for r in rows.itertuples():
+            inside[r.bbox_y0:r.bbox_y1, r.bbox_x0:r.bbox_x1] = True
+        assert not (counts[~inside] > 0).any()
+        assert cov.sampled[name] == (len(rows), len(rows))
+    # the spec guarantees disjoint footprints between train and test; the iid split shares train's region
+    assert not ((cov.counts["train"] > 0) & (cov.counts["test"] > 0)).any()
+    assert ((cov.counts["train"] > 0) & (cov.counts["iid"] > 0)).any()
+    assert pv.footprint_guaranteed(built, "test") and not pv.footprint_guaranteed(built, "iid")
+
+
+def test_coverage_samples_large_splits_evenly(datasets):
+    built = open_dataset_spec(datasets["files"])
+    cov = pv.coverage(built, mf.read_manifest(datasets["files"]), max_rows=5)
+    assert cov.sampled["train"] == (5, 30)
+
+
+def test_overlay_colours_each_role_and_blacks_out_shared_pixels():
+    train = np.array([[0, 3, 1], [0, 0, 0]])
+    test = np.array([[0, 0, 2], [5, 0, 0]])
+    rgb = pv.overlay(train, test)
+    assert np.allclose(rgb[0, 0], 1.0) and np.allclose(rgb[1, 1], 1.0)  # untouched: white
+    assert np.allclose(rgb[0, 2], 0.0)  # touched by both: black
+    assert rgb[0, 1, 2] > rgb[0, 1, 0]  # train only: blue dominates
+    assert rgb[1, 0, 0] > rgb[1, 0, 2]  # test only: red/orange dominates
+    # a pixel touched once stays visible beside one touched many times (log scale, floor 0.25)
+    few = pv.overlay(np.array([[1, 1000]]), None)
+    assert (few[0, 0] < 0.9).any()
+
+
+def test_every_store_previews_the_same_pixels(datasets):
+    """Files decode, Parquet bytes decode, and --store none re-renders: the same image."""
+    dfs = {k: mf.read_manifest(v) for k, v in datasets.items()}
+    built = open_dataset_spec(datasets["files"])
+    for i in (0, 17, 45):
+        imgs = [pv.image_of(built, datasets[k], dfs[k].iloc[i]) for k in ("files", "parquet", "none")]
+        assert np.array_equal(imgs[0], imgs[1]) and np.array_equal(imgs[0], imgs[2])
+
+
+def test_pick_rows_spreads_over_the_split():
+    assert list(pv.pick_rows(5, 10)) == [0, 1, 2, 3, 4]
+    p = pv.pick_rows(1000, 8)
+    assert len(p) == 8 and p.min() < 125 and p.max() >= 875 and np.all(np.diff(p) > 0)
+
+
+def test_caption_names_the_class_and_every_varied_axis(datasets):
+    built = open_dataset_spec(datasets["files"])
+    row = mf.read_manifest(datasets["files"]).iloc[3]
+    text = pv.caption(built, row)
+    assert text.splitlines()[0].startswith(row["class_name"])
+    assert f"x {row['x']:.1f} px" in text and f"angle {row['angle']:.1f}°" in text and f"hue {row['hue']:.1f}°" in text
+
+
+def test_cli_preview_with_out_folder(datasets, tmp_path, capsys):
+    code = main(["preview", str(datasets["none"]), "--out", str(tmp_path / "pics"), "--per-split", "4"])
+    printed = capsys.readouterr().out.split()
+    assert code == 0 and len(printed) == 4
+    assert all((tmp_path / "pics" / p.split("/")[-1]).exists() for p in printed)
+
+
+def test_cli_preview_of_a_folder_that_is_no_dataset_is_exit_2(tmp_path, capsys):
+    code = main(["preview", str(tmp_path)])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "spec.json" in err
+
+
+def test_preview_needs_at_least_one_image(datasets):
+    with pytest.raises(DatasetError, match="at least one image"):
+        pv.preview(datasets["files"], per_split=0)
