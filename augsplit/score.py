@@ -278,9 +278,9 @@ def load_predictions(path, *, probabilities: bool | None = None) -> pd.DataFrame
                                where=where)
         if col == PREDICTED_INDEX:
             idx = pd.to_numeric(df[col], errors="coerce")
-            if idx.isna().any() or (idx != np.round(idx)).any():
-                raise DatasetError(f"{col} must hold whole numbers (first bad at row {_row(idx.isna() | (idx != np.round(idx)))})",
-                                   where=where)
+            bad = idx.isna() | (idx != np.round(idx))
+            if bad.any():
+                raise DatasetError(f"{col} must hold whole numbers (first bad at row {_row(bad)})", where=where)
             df[col] = idx.astype(np.int64)
         else:
             df[col] = df[col].astype(str).str.strip()
@@ -416,7 +416,8 @@ def score(manifest: pd.DataFrame, predictions: pd.DataFrame, train_split: str = 
         msg = (f"predictions cover {n_scored} of {n_images} images ({coverage:.1%}); "
                f"{len(missing)} missing (e.g. {_few(list(missing))})")
         if not allow_partial:
-            raise DatasetError(msg, where=where, hint="pass allow_partial=True / --allow-partial to score the covered images only")
+            raise DatasetError(msg, where=where,
+                               hint="pass allow_partial=True / --allow-partial to score the covered images only")
         notes.append(msg)
 
     # one row per scored image, in manifest order

@@ -173,12 +173,13 @@ def pixel_facts(model: M.PixelModel, images: np.ndarray, m: pd.DataFrame, spec: 
         lit = lit.any(axis=-1) if lit.ndim == 3 else lit
         only = lit & ~seen
         logits = model.readout.logits(M.raw_pixels(images[sel]))
+        bias_only = np.array_equal(logits, np.broadcast_to(model.readout.b, logits.shape))
         facts[test] = {
             "pixels_lit_by_test_only": int(only.sum()),
             "pixels_lit_by_both": int((lit & seen).sum()),
             "max_abs_weight_on_test_only_pixels": float(np.abs(W[only]).max()) if only.any() else 0.0,
             "max_abs_weight_anywhere": float(np.abs(W).max()),
-            "logits_equal_bias_for_every_test_image": bool(np.array_equal(logits, np.broadcast_to(model.readout.b, logits.shape))),
+            "logits_equal_bias_for_every_test_image": bool(bias_only),
             "distinct_predictions": int(len(np.unique(logits.argmax(1)))),
         }
     return facts

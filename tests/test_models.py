@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy import optimize, stats
+from scipy import optimize
 
 from augsplit import models as M
 from augsplit import score as S

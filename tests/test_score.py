@@ -447,3 +447,8 @@ def test_unknown_training_split_and_missing_manifest(tmp_path, manifest):
         S.score(manifest, p, train_split="lane_a")
     with pytest.raises(S.DatasetError, match="no manifest folder"):
         S.read_manifest(tmp_path)
+
+
+def test_predicted_index_must_be_whole_numbers(tmp_path):
+    with pytest.raises(S.DatasetError, match=r"predicted_index must hold whole numbers \(first bad at row 2\)"):
+        S.load_predictions(_bad(tmp_path, "image_id,predicted_index\na,1\nb,1.5\n"))
