@@ -4,7 +4,6 @@ import base64
 import json
 import re
 
-import numpy as np
 import pytest
 
 from augsplit.audit import Thresholds, run_audit, summary_table, write_reports
