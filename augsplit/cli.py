@@ -86,6 +86,17 @@ def _cmd_preview(a) -> int:
     return 0
 
 
+def _cmd_score(a) -> int:
+    from .score import run_score
+
+    out = Path(a.out) if a.out else Path(a.dataset) / "score"
+    run_score(a.dataset, a.predictions, out, compare=a.compare, train_split=a.train_split,
+              reference_split=a.reference_split, allow_partial=a.allow_partial,
+              probabilities=True if a.probabilities else None)
+    print(f"wrote {out}/score.json, the curves as CSV and {out}/report.html")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
@@ -134,6 +145,17 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--per-split", type=int, default=24, help="images on each contact sheet")
     q.add_argument("--columns", type=int, default=6, help="images per row of a contact sheet")
     q.set_defaults(run=_cmd_preview)
+
+    q = sub.add_parser("score", help="accuracy per split, class and cell, and against distance from the training region")
+    q.add_argument("dataset", help="an augsplit dataset folder")
+    q.add_argument("predictions", help="CSV/Parquet: image_id and a predicted class (optional score_<class> columns)")
+    q.add_argument("--compare", help="a second predictions file to lay side by side")
+    q.add_argument("--out", help="report folder (default: DATASET/score)")
+    q.add_argument("--train-split", help="the training split (default: from the dataset)")
+    q.add_argument("--reference-split", help="the i.i.d. split the gaps are measured from")
+    q.add_argument("--allow-partial", action="store_true", help="score even when some images have no prediction")
+    q.add_argument("--probabilities", action="store_true", help="score columns are probabilities (rows sum to one)")
+    q.set_defaults(run=_cmd_score)
     return p
 
 
