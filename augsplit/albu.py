@@ -30,6 +30,7 @@ ANCHORS = ("centre", "mask", "bbox")
 # Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
 PLUGIN = 0x616C6275
 _MASS_TOL = 1e-12
+BATCH = 64  # draws taken at once from a transform's generator
 
 
 # ---- drawing from a split's region ---------------------------------------------------------
@@ -135,18 +136,35 @@ class RegionDraws:
         return c
 
     def draw(self, u: np.ndarray, c: int | None = None) -> dict:
-        if c is None:  # in proportion to the split's per-class counts, as plan.draw.draw_online
-            c = int(np.searchsorted(self.cum, u[0], side="right"))
-            if c not in self.cells:
-                c = self.present[-1]
-        t, box = sample_t(self.class_regions[c], u[None, 1:])
+        """One draw from uniforms u (k,); class c, or chosen by u[0] when None."""
+        return self.draw_many(np.asarray(u, dtype=float)[None, :], c)[0]
+
+    def draw_many(self, u: np.ndarray, c: int | None = None) -> list[dict]:
+        """Draws from uniforms u (n, k), vectorised: the class in proportion to the split's
+        per-class counts (as plan.draw.draw_online) unless c is given, then the point."""
+        n = len(u)
+        if c is None:
+            cls = np.searchsorted(self.cum, u[:, 0], side="right")
+            cls = np.where(np.isin(cls, self.present), cls, self.present[-1])
+        else:
+            cls = np.full(n, int(c))
+        t = np.empty((n, self.space.ndim))
+        cell = np.empty(n, dtype=np.int64)
+        for k in np.unique(cls):
+            rows = np.flatnonzero(cls == k)
+            t[rows], box = sample_t(self.class_regions[int(k)], u[rows, 1:])
+            cells = self.cells[int(k)]
+            cell[rows] = cells[box] if cells is not None else self.split.region.box_of_t(t[rows])
         cols = params_from_t(self.plan, t)
-        out = {k: float(v[0]) for k, v in cols.items()}
-        out["mirror"] = int(cols["mirror"][0])
-        cells = self.cells[c]
-        out["cell"] = int(cells[box[0]]) if cells is not None else int(self.split.region.box_of_t(t)[0])
-        out["class_index"] = int(c)
-        out["class_name"] = self.plan.classes[c]
+        names = [k for k in cols if k != "mirror"]
+        table = [cols[k].tolist() for k in names]
+        mirror = cols["mirror"].tolist()
+        classes = self.plan.classes
+        out = []
+        for i, ci in enumerate(cls.tolist()):
+            d = {k: col[i] for k, col in zip(names, table)}
+            d.update(mirror=int(mirror[i]), cell=int(cell[i]), class_index=int(ci), class_name=classes[ci])
+            out.append(d)
         return out
 
 
@@ -259,6 +277,7 @@ class _RegionTransform:
                                 "class must be known", where=f"{where}.region",
                                 hint="pass class_key='<data key holding the class name or index>'")
         self._calls = 0
+        self._pending: list[dict] = []
 
     def _names(self, role: str) -> str:
         return ", ".join(s.name for s in self._built.plan.splits if s.role == role) or "none"
@@ -283,7 +302,15 @@ class _RegionTransform:
             seed = self._built.spec.seed if self.seed is None else int(self.seed)
             ss = np.random.SeedSequence(seed, spawn_key=(PLUGIN, self._draws.split.index, self.epoch, item))
             return np.random.Generator(np.random.PCG64(ss)).random(self._draws.k), item
-        return self.random_generator.random(self._draws.k), item
+        return None, item
+
+    def set_random_seed(self, seed: int | None) -> None:
+        super().set_random_seed(seed)
+        self._pending = []
+
+    def set_random_state(self, random_generator, py_random) -> None:
+        super().set_random_state(random_generator, py_random)
+        self._pending = []
 
     def _draw(self, data: dict) -> dict:
         u, item = self._uniforms(data)
@@ -293,7 +320,16 @@ class _RegionTransform:
                 raise DatasetError(f"the data has no '{self.class_key}' (the class_key this transform was built "
                                    "with)", where=type(self).__name__)
             c = self._draws.class_of(data[self.class_key])
-        values = self._draws.draw(u, c)
+        if u is not None:
+            values = self._draws.draw(u, c)
+        elif c is not None:
+            values = self._draws.draw(self.random_generator.random(self._draws.k), c)
+        else:
+            # from the transform's generator, BATCH draws at a time (vectorised sampling); the
+            # sequence is fixed by the seed like any albumentations draw, and reseeding drops it
+            if not self._pending:
+                self._pending = self._draws.draw_many(self.random_generator.random((BATCH, self._draws.k)))[::-1]
+            values = dict(self._pending.pop())
         if item is None:
             item = self._calls
         self._calls += 1

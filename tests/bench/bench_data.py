@@ -7,7 +7,9 @@
    mask, bboxes and keypoints), both inside A.Compose. Aim: the plugin within 1.2x (ratio of
    times <= 1.2).
 
-Run: python tests/bench/bench_data.py [--quick]. Best of several repeats (shared machines).
+Run: python tests/bench/bench_data.py [--quick]. Times are CPU time of this process
+(time.process_time: what other jobs on a shared machine do is not counted), contenders are
+run in turn within each repeat, and each gets the best of its repeats.
 """
 
 from __future__ import annotations
@@ -38,14 +40,15 @@ NOISE96 = {
 }
 
 
-def best_rate(fn, n: int, repeats: int) -> float:
-    """Items per second of the fastest of `repeats` runs of fn() (which handles n items)."""
-    best = float("inf")
+def best_rates(fns: list, n: int, repeats: int) -> list[float]:
+    """Items per second of each fn (each handles n items): best of `repeats`, run in turn."""
+    best = [float("inf")] * len(fns)
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return n / best
+        for k, fn in enumerate(fns):
+            t0 = time.process_time()
+            fn()
+            best[k] = min(best[k], time.process_time() - t0)
+    return [n / b for b in best]
 
 
 def bench_loaders(name: str, built, tmp: Path, repeats: int) -> None:
@@ -68,9 +71,7 @@ def bench_loaders(name: str, built, tmp: Path, repeats: int) -> None:
         for i in range(n):
             ds[i]
 
-    r_lazy = best_rate(lambda: run(lazy), n, repeats)
-    r_png = best_rate(lambda: run(png), n, repeats)
-    r_raw = best_rate(read_png, n, repeats)
+    r_lazy, r_png, r_raw = best_rates([lambda: run(lazy), lambda: run(png), read_png], n, repeats)
     h, w = lazy.hw
     print(f"{name} ({w}x{h}, {n} items)")
     print(f"  lazy re-render (Dataset, store none) {r_lazy:9.0f} items/s")
@@ -106,7 +107,7 @@ def bench_plugin(size: int, repeats: int, n: int) -> None:
     theirs = A.Affine(scale=(0.5, 1.0), rotate=(0, 360), translate_px=(-size // 4, size // 4), p=1.0)
     print(f"plugin vs A.Affine ({size}x{size} images, {n} calls, inside A.Compose)")
     for label, full in (("image only", False), ("image+mask+bboxes+keypoints", True)):
-        rates = []
+        runs = []
         for t in (ours, theirs):
             c = A.Compose([t], seed=1, bbox_params=bp, keypoint_params=kp) if full else A.Compose([t], seed=1)
 
@@ -117,7 +118,8 @@ def bench_plugin(size: int, repeats: int, n: int) -> None:
                     else:
                         c(image=img)
 
-            rates.append(best_rate(run, n, repeats))
+            runs.append(run)
+        rates = best_rates(runs, n, repeats)
         print(f"  {label:28s} ours {rates[0]:8.0f}/s   A.Affine {rates[1]:8.0f}/s   "
               f"time ours / A.Affine = {rates[1] / rates[0]:4.2f}x")
 
