@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import difflib
 import functools
+import json
 import os
 from collections import OrderedDict
 from pathlib import Path
@@ -29,6 +30,7 @@ from .generate import decode, open_dataset_spec
 from .plan.draw import draw_online
 from .render import Placed, footprint
 from .scene import make_scene, pixel_sha256, render_params
+from .spec import parse_spec, spec_hash
 from .space.sample import PARAMS, RENDER, image_rng
 
 TARGETS = ("class", "params", "bbox", "mask")
@@ -144,30 +146,29 @@ class Dataset:
             raise DatasetError("no such dataset folder", where=where)
         if not (self.root / mf.SPEC_FILE).exists() or not (self.root / mf.MANIFEST_DIR).is_dir():
             raise DatasetError("not an augsplit dataset (it needs spec.json and manifest/)", where=where)
-        built = open_dataset_spec(self.root)
-        if not (self.root / mf.SUMMARY_FILE).exists():
-            raise DatasetError("the dataset is incomplete (no dataset.json): finish it with "
-                               "`augsplit generate --resume` before loading it", where=where)
+        # Only the spec's text is needed to open the dataset; its object source (which may
+        # live in a folder the dataset has since moved away from) is built when an item needs it.
+        spec, self.spec_hash, summary = _read_dataset_json(self.root)
         have = _splits_on_disk(self.root)
         if split not in have:
             close = difflib.get_close_matches(str(split), have, n=1)
             hint = f" (did you mean '{close[0]}'?)" if close else ""
             raise DatasetError(f"no split {split!r}{hint}; the dataset has {', '.join(have) or 'none'}", where=where)
         self.split = split
-        self.spec_hash = built.plan.hash
         self.names = _check_target(target, ROW_COLUMNS, "target")
         self.target = target
         self.chw_float = bool(chw_float)
         self.transform = transform
         self.check_pixels = bool(check_pixels)
         self.parquet_cache = max(1, int(parquet_cache))
-        self.classes = tuple(built.plan.classes)
-        self.param_names = param_names(built)
-        self.channels = 1 if built.spec.canvas.mode == "gray" else 3
-        self.hw = (built.spec.canvas.height, built.spec.canvas.width)
-        self.threshold = built.spec.render.alpha_threshold
-        self._built = built
-        self._split_plan = built.plan.split(split)
+        self.classes = tuple(summary.get("classes") or ())
+        names = set(spec.axes) | ({"polar_angle"} if "eccentricity" in spec.axes else set())
+        self.param_names = tuple(n for n in mf.AXIS_COLUMNS if n in names)
+        self.channels = 1 if spec.canvas.mode == "gray" else 3
+        self.hw = (spec.canvas.height, spec.canvas.width)
+        self.threshold = spec.render.alpha_threshold
+        self._built = None
+        self._split_plan = None
 
         self.parts, frame = _read_split(self.root, split, self.spec_hash)
         frame = _filter(frame, self.classes, classes, cells, query)
@@ -293,6 +294,30 @@ class Dataset:
                 f"chw_float={self.chw_float})")
 
 
+def _read_dataset_json(root: Path):
+    """(spec, spec hash, summary) of a dataset folder, checked: the spec must hash to the hash
+    spec.json records, and dataset.json (written last) must exist."""
+    spec_file = root / mf.SPEC_FILE
+    try:
+        doc = json.loads(spec_file.read_text())
+        spec = parse_spec(doc["spec"], source=str(spec_file))
+        recorded = doc["spec_hash"]
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise DatasetError(f"unreadable spec.json: {exc}", where=str(spec_file)) from None
+    if spec_hash(spec) != recorded:
+        raise DatasetError(f"spec.json says hash {recorded} but its spec hashes to {spec_hash(spec)}",
+                           where=str(spec_file))
+    summary_file = root / mf.SUMMARY_FILE
+    if not summary_file.exists():
+        raise DatasetError("the dataset is incomplete (no dataset.json): finish it with "
+                           "`augsplit generate --resume` before loading it", where=str(root))
+    try:
+        summary = json.loads(summary_file.read_text())
+    except (OSError, ValueError) as exc:
+        raise DatasetError(f"unreadable dataset.json: {exc}", where=str(summary_file)) from None
+    return spec, recorded, summary
+
+
 def _splits_on_disk(root: Path) -> list[str]:
     """The dataset's split names in spec order (by the split_index their rows carry)."""
     first: dict[str, tuple] = {}
@@ -400,6 +425,10 @@ def _open_built(spec) -> Built:
     return open_spec(p)
 
 
+_SAMPLER_EXTRA = ("image_id", "split", "epoch", "item", "seed", "split_index", *BBOX_COLUMNS, "footprint_px",
+                  "visible_fraction", "n_distractors", "width", "height")
+
+
 def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
     """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
     ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
@@ -442,14 +471,14 @@ class OnlineSampler:
         self.epoch = int(epoch)
         self.block = int(block)
         self.start = int(start)
-        self.names = _check_target(target, ROW_COLUMNS, "target")
-        self.target = target
         self.chw_float = bool(chw_float)
         self.transform = transform
         self.log = log
         self.param_names = param_names(built)
         self.hw = (built.spec.canvas.height, built.spec.canvas.width)
         self._k = built.plan.space.ndim + 3
+        self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
+        self.target = target
 
     def set_epoch(self, epoch: int) -> None:
         self.epoch = int(epoch)

@@ -227,6 +227,26 @@ def test_transform_hook(files_ds):
     np.testing.assert_allclose(ds[2]["image"], plain[2]["image"][:, ::-1].transpose(2, 0, 1) / 255.0, atol=1e-7)
 
 
+def test_a_moved_dataset_opens_without_its_sprite_folder(tmp_path):
+    # images on disk need no object source: only re-rendering or a mask target does
+    import cv2
+
+    sprites = tmp_path / "sprites"
+    for name, colour in (("bolt", (255, 0, 0)), ("nut", (0, 255, 0))):
+        (sprites / name).mkdir(parents=True)
+        rgba = np.zeros((7, 7, 4), np.uint8)
+        rgba[1:6, 2:5] = (*colour, 255)
+        cv2.imwrite(str(sprites / name / "a.png"), cv2.cvtColor(rgba, cv2.COLOR_RGBA2BGRA))
+    spec = {**SPEC, "objects": {"kind": "folder", "path": str(sprites)}}
+    out = tmp_path / "ds"
+    generate(None, out, Options(progress=False), built=open_mapping(spec, base_dir=tmp_path))
+    shutil.rmtree(sprites)
+    ds = Dataset(out, "train", target="bbox")
+    assert ds.classes == ("bolt", "nut") and ds[0]["image"].shape == (32, 32, 3)
+    with pytest.raises(AugsplitError, match="sprites"):
+        Dataset(out, "train", target="mask")[0]
+
+
 def test_pickles_without_built_objects(none_ds):
     ds = Dataset(none_ds, "train", target="mask")
     first = ds[5]
@@ -357,6 +377,9 @@ def test_sampler_iteration_and_length(built):
         s[6]
     with pytest.raises(SpecError, match="unknown split 'nope'"):
         OnlineSampler(built, "nope")
+    with pytest.raises(DatasetError, match="unknown target 'sha256'"):  # a column only stored images have
+        OnlineSampler(built, "train", target="sha256")
+    assert OnlineSampler(built, "train", target="footprint_px", length=1)[0]["target"] > 0
 
 
 def test_sampler_in_dataloader_map_style_and_iterable(built):
