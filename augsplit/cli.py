@@ -97,6 +97,62 @@ def _cmd_score(a) -> int:
     return 0
 
 
+def _pair(text: str):
+    a, sep, b = text.partition(":")
+    if not sep or not a or not b:
+        raise argparse.ArgumentTypeError(f"'{text}' is not A:B (two split names)")
+    return (a, b)
+
+
+def _axis(text: str):
+    name, sep, rest = text.partition("=")
+    parts = rest.split(":")
+    try:
+        lo, hi = float(parts[0]), float(parts[1])
+    except (ValueError, IndexError):
+        raise argparse.ArgumentTypeError(f"'{text}' is not NAME=LO:HI[:circular|:log]") from None
+    kind = parts[2] if len(parts) > 2 else "linear"
+    if not sep or kind not in ("linear", "circular", "log"):
+        raise argparse.ArgumentTypeError(f"'{text}' is not NAME=LO:HI[:circular|:log]")
+    return name, ((lo, hi, True) if kind == "circular" else (lo, hi, False, kind))
+
+
+def _keyval(text: str):
+    k, sep, v = text.partition("=")
+    if not sep:
+        raise argparse.ArgumentTypeError(f"'{text}' is not KEY=VALUE")
+    import yaml
+
+    return k, yaml.safe_load(v)
+
+
+def _cmd_audit(a) -> int:
+    from .audit.entry import audit_dataset, audit_table, is_dataset
+    from .audit.report import summary_table, write_reports
+
+    thresholds = dict(a.threshold or [])
+    column_map = dict(a.map or [])
+    if a.column_map:
+        from .spec import read_yaml
+
+        loaded = read_yaml(a.column_map)
+        if not isinstance(loaded, dict):
+            raise AugsplitError("a column map is a mapping of augsplit names to table columns", where=a.column_map)
+        column_map.update({str(k): str(v) for k, v in loaded.items()})
+    if is_dataset(a.input) and a.spec is None and not column_map:
+        result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
+                               progress=not a.quiet)
+        out = Path(a.out) if a.out else Path(a.input) / "audit"
+    else:
+        result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
+                             column_map=column_map or None, thresholds=thresholds, progress=not a.quiet)
+        out = Path(a.out) if a.out else Path("audit")
+    paths = write_reports(result, out)
+    print(summary_table(result))
+    print(f"wrote {paths['json']} and {paths['html']}")
+    return result.exit_code
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
@@ -156,6 +212,21 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--allow-partial", action="store_true", help="score even when some images have no prediction")
     q.add_argument("--probabilities", action="store_true", help="score columns are probabilities (rows sum to one)")
     q.set_defaults(run=_cmd_score)
+
+    q = sub.add_parser("audit", help="check a dataset, parameter log or table for train/test leakage; exit 1 on a failure")
+    q.add_argument("input", help="an augsplit dataset folder, a parameter log folder, or a CSV/Parquet table")
+    q.add_argument("--spec", help="the spec whose axes, regions and guarantees the input is checked against")
+    q.add_argument("--pair", type=_pair, action="append", metavar="A:B", help="splits to compare (repeatable; default: train against each other split)")
+    q.add_argument("--axis", type=_axis, action="append", metavar="NAME=LO:HI[:circular|:log]", help="an axis to audit when there is no spec")
+    q.add_argument("--map", type=lambda t: tuple(t.split("=", 1)) if "=" in t else _keyval(t), action="append",
+                   metavar="NAME=COLUMN", help="take augsplit's NAME from the table's COLUMN (repeatable)")
+    q.add_argument("--column-map", help="a YAML file mapping augsplit names to table columns")
+    q.add_argument("--threshold", type=_keyval, action="append", metavar="KEY=VALUE",
+                   help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01 (also settable in the spec's audit:)")
+    q.add_argument("--out", help="where audit.json and audit.html go (default: DATASET/audit or ./audit)")
+    q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")
+    q.add_argument("--quiet", action="store_true", help="no progress bars")
+    q.set_defaults(run=_cmd_audit)
     return p
 
 

@@ -179,6 +179,7 @@ class Spec(Model):
     render: RenderSpec = RenderSpec()
     splits: dict[str, SplitSpec] = Field(min_length=1)
     guarantees: list[GuaranteeSpec] = []
+    audit: dict[str, Union[bool, int, float, str]] = {}  # thresholds for `augsplit audit` (see audit/run.py)
 
     @field_validator("axes", mode="before")
     @classmethod

@@ -249,7 +249,8 @@ def check_footprint(
         verdict = FAIL if frac > max_fraction else PASS
     else:
         verdict = WARN if n_hit else PASS
-    detail = (f"{n_hit} of {n_te} test objects ({frac:.2%}) share pixels with a train footprint of their class"
-              if n_hit else f"no test object shares a pixel with any train footprint of its class ({n_te} checked)")
+    whose = " of their class" if test_class is not None else ""
+    detail = (f"{n_hit} of {n_te} test objects ({frac:.2%}) share pixels with a train footprint{whose}"
+              if n_hit else f"no test object shares a pixel with any train footprint{whose} ({n_te} checked)")
     return CheckResult("footprint_overlap", verdict, numbers, worst, detail, pair,
                        arrays={"train_coverage": train_counts, "test_coverage": test_counts, "shared_map": shared_map})

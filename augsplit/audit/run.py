@@ -32,10 +32,12 @@ class Thresholds:
     margin: float | None = None  # declared parameter margin, normalised units
     footprint_disjoint: bool | None = None  # declared: no shared pixel between the splits
     footprint_max_fraction: float = 0.0  # allowed fraction of overlapping test objects
+    footprint_per_class: bool = True  # compare footprints within a class only (False: across classes too)
     # Hamming bits at or under which two images count as near-duplicates. Measured on our
     # synthetic 96 px tiles on noise: a 1 px shift moves the hash by <= 8 bits, distinct images
     # stay >= 16 apart. Flat backgrounds make the hash unstable (see audit/phash.py).
     hash_radius: int = 8
+    near_duplicates_fail: bool = True  # False: near-duplicates warn (exact copies still fail)
     category_max_ratio: float | None = None  # fail when same/different-class IoU ratio exceeds it
     category_pairs: int = 2000
     seed: int = 0  # the category check's pair sampling
@@ -148,7 +150,8 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
             mr_a = mr_b = None
             if mask_loader is not None and mask_set is not None:
                 mr_a = np.flatnonzero([r in mask_set for r in fa]); mr_b = np.flatnonzero([r in mask_set for r in fb])
-            res = check_footprint(bi_a, bi_b, hw, cls[fa] if cls is not None else None, cls[fb] if cls is not None else None,
+            fcls = cls if th.footprint_per_class else None
+            res = check_footprint(bi_a, bi_b, hw, fcls[fa] if fcls is not None else None, fcls[fb] if fcls is not None else None,
                                   mask_loader, fa, fb, mr_a, mr_b, th.footprint_disjoint, th.footprint_max_fraction,
                                   ids[fa], ids[fb], pair, th.worst_k)
             checks.append(_globalise(dataclasses.replace(res, detail=res.detail + note), fa, fb))
@@ -169,7 +172,8 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
         else:
             res = check_near_duplicates(hashes[ra], hashes[rb], th.hash_radius,
                                         sha[ra] if sha is not None else None, sha[rb] if sha is not None else None,
-                                        ids[ra], ids[rb], cls[rb] if cls is not None else None, pair, th.worst_k)
+                                        ids[ra], ids[rb], cls[rb] if cls is not None else None, pair, th.worst_k,
+                                        th.near_duplicates_fail)
             if sha is None:
                 res = dataclasses.replace(res, detail=res.detail + " (no content hashes: exact copies not checked)")
             checks.append(_globalise(res, ra, rb))

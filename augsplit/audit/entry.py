@@ -1,0 +1,205 @@
+"""What `augsplit audit` audits: an augsplit dataset folder, a parameter log, or any table.
+
+A dataset folder brings its own spec: the axes, the declared regions and the claims (each
+guarantee is audited on its own pair, with its own margin or footprint claim; pairs without a
+claim are audited for leaks that need no claim, like copied images). Footprints are exact:
+re-rendered from each row. A parameter log (or a table) is audited against a spec when one
+is given, else against ranges taken from flags or from the data.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import manifest as mf
+from ..errors import DatasetError
+from .result import FAIL, PASS, AuditResult, CheckResult
+from .run import Thresholds, run_audit
+
+CLASS = "class"
+
+
+def _merge(results: list[AuditResult]) -> AuditResult:
+    first = results[0]
+    seen_global = set()
+    checks = []
+    for r in results:
+        for c in r.checks:
+            key = (c.name, c.pair)
+            if c.pair is None:  # table-wide checks (e.g. finite values) once
+                if c.name in seen_global:
+                    continue
+                seen_global.add(c.name)
+            checks.append(c)
+            del key
+    return AuditResult(tuple(checks), tuple(p for r in results for p in r.pairs),
+                       tuple(s for r in results for s in r.skipped), first.inputs, first.arrays)
+
+
+def _claims(spec, a: str, b: str) -> dict:
+    """Threshold fields declared by the spec's guarantees between splits a and b."""
+    out: dict = {}
+    for g in spec.guarantees:
+        if set(g.between) != {a, b}:
+            continue
+        if g.disjoint == "parameters":
+            out["margin"] = max(out.get("margin", 0.0), g.margin) if g.margin > 0 else out.get("margin", 1e-12)
+        else:
+            out["footprint_disjoint"] = True
+            out["footprint_per_class"] = g.per_class
+    return out
+
+
+def _thresholds(spec, extra: dict | None) -> dict:
+    d = dict(spec.audit) if spec is not None else {}
+    d.update(extra or {})
+    try:
+        Thresholds.from_dict(d)
+    except DatasetError as exc:
+        raise DatasetError(exc.message, where=(exc.where or "").replace("thresholds.", "audit.")) from None
+    return d
+
+
+def _pairs(plan, pairs) -> list[tuple[str, str]]:
+    if pairs:
+        return [tuple(p) for p in pairs]
+    train = [s.name for s in plan.splits if s.role == "train"] or [plan.splits[0].name]
+    return [(train[0], s.name) for s in plan.splits if s.name != train[0]]
+
+
+def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks: bool = True,
+                  progress: bool = False) -> AuditResult:
+    """Audit a dataset folder against its own spec (see the module docstring)."""
+    from ..generate import decode, open_dataset_spec
+    from ..render import footprint
+    from ..scene import make_scene, render_params
+
+    root = Path(root)
+    built = open_dataset_spec(root)
+    plan = built.plan
+    df = mf.read_manifest(root)
+    if df.empty:
+        raise DatasetError("the dataset has no manifest rows", where=str(root / mf.MANIFEST_DIR))
+    axes = {n: plan.space[n] for n in plan.space.names if n != CLASS}
+    regions = {s.name: s.region for s in plan.splits}
+    hw = (built.spec.canvas.height, built.spec.canvas.width)
+    thr = built.spec.render.alpha_threshold
+    channels = 1 if built.spec.canvas.mode == "gray" else 3
+
+    def mask_loader(i: int):
+        row = df.iloc[int(i)]
+        return footprint(built.source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row), hw, thr).mask
+
+    def image_loader(i: int):
+        row = df.iloc[int(i)]
+        if row["file"]:
+            return decode((root / row["file"]).read_bytes(), channels)
+        if row["image_bytes"] is not None:
+            return decode(bytes(row["image_bytes"]), channels)
+        return make_scene(plan, built.source, built.background, plan.split(row["split"]), row).image
+
+    base = _thresholds(built.spec, thresholds)
+    results = []
+    for a, b in _pairs(plan, pairs):
+        for name in (a, b):
+            if name not in regions:
+                raise DatasetError(f"the dataset has no split '{name}' (it has {', '.join(regions)})", where=f"pair {a}:{b}")
+        claims = _claims(built.spec, a, b)
+        th = dict(base, **claims)
+        if plan.split(b).kind == "random" or plan.split(a).kind == "random":
+            th.setdefault("near_duplicates_fail", False)  # look-alikes are expected within one region
+        declared = {a: regions[a], b: regions[b]} if claims else None
+        results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=image_loader,
+                                 mask_loader=mask_loader if exact_masks else None, canvas_hw=hw,
+                                 regions=declared, root=root, progress=progress))
+    return _merge(results)
+
+
+def check_log_regions(log: pd.DataFrame, plan, ids=None, worst_k: int = 20) -> CheckResult:
+    """Every logged draw lies in the region of the split it says it came from, and no draw of a
+    training split lies in a held-out (test) region."""
+    space = plan.space
+    names = [n for n in space.names if n != CLASS]
+    missing = [n for n in names if n not in log.columns]
+    if missing:
+        raise DatasetError(f"the log has no column {missing[0]!r} (an axis of the spec)", where=f"axes.{missing[0]}")
+    cls = log["class_index"].to_numpy(float) if "class_index" in log else np.zeros(len(log))
+    pts = {n: pd.to_numeric(log[n], errors="coerce").to_numpy(float) for n in names}
+    pts[CLASS] = cls
+    split = log["split"].astype(str).to_numpy()
+    ids = np.arange(len(log)) if ids is None else np.asarray(ids)
+    outside = np.zeros(len(log), bool)
+    intrude = np.zeros(len(log), bool)
+    where_to = np.full(len(log), "", dtype=object)
+    tests = [s for s in plan.splits if s.role == "test"]
+    for s in plan.splits:
+        rows = split == s.name
+        if not rows.any():
+            continue
+        sub = {k: v[rows] for k, v in pts.items()}
+        outside[rows] = ~s.region.contains(sub)
+        if s.role == "train":
+            for t in tests:
+                if (t.region & s.region).mass() > 0:
+                    continue  # an i.i.d. split shares the training region by design
+                hit = t.region.contains(sub) & ~s.region.contains(sub)
+                idx = np.flatnonzero(rows)[hit]
+                intrude[idx] = True
+                where_to[idx] = t.name
+    unknown = sorted(set(split) - {s.name for s in plan.splits})
+    n_bad = int(outside.sum() + intrude.sum())
+    worst = pd.DataFrame({"row": ids[outside | intrude], "split": split[outside | intrude],
+                          "inside_held_out": where_to[outside | intrude]}).head(worst_k)
+    nums = {"rows": int(len(log)), "rows_outside_own_region": int(outside.sum()),
+            "train_rows_inside_held_out_regions": int(intrude.sum()), "unknown_splits": unknown}
+    detail = ("every draw lies in its own split's region and none in a held-out region" if n_bad == 0 and not unknown
+              else f"{int(intrude.sum())} training draws inside held-out regions, {int(outside.sum())} draws outside "
+                   f"their split's region" + (f", unknown splits {unknown}" if unknown else ""))
+    return CheckResult("log_regions", PASS if n_bad == 0 and not unknown else FAIL, nums, worst, detail)
+
+
+def audit_table(table, spec_path=None, pairs=None, axes: dict | None = None, column_map: dict | None = None,
+                thresholds: dict | None = None, progress: bool = False) -> AuditResult:
+    """Audit a parameter log or any CSV/Parquet table (see the module docstring)."""
+    if spec_path is None:
+        if not axes:
+            raise DatasetError("give a spec (--spec) or the axes to audit (--axis name=lo:hi[:circular|:log])",
+                               where=str(table))
+        return run_audit(table, axes, pairs=pairs, thresholds=_thresholds(None, thresholds),
+                         column_map=column_map, progress=progress)
+    from ..build import open_spec
+    from .inputs import open_table
+
+    built = open_spec(spec_path)
+    plan = built.plan
+    src = open_table(table, column_map)
+    if "split" not in src.columns:
+        raise DatasetError("the table has no split column", where="column 'split'")
+    names = [n for n in plan.space.names if n != CLASS]
+    log = src.read(["split", "class_index", "class_name", "image_id", *names], progress=progress)
+    if "class_index" not in log and "class_name" in log:
+        log["class_index"] = log["class_name"].map({c: i for i, c in enumerate(plan.classes)})
+    region_check = check_log_regions(log, plan)
+    present = set(log["split"].astype(str))
+    wanted = _pairs(plan, pairs)
+    runnable = [p for p in wanted if p[0] in present and p[1] in present]
+    results = []
+    base = _thresholds(built.spec, thresholds)
+    for a, b in runnable:
+        th = dict(base, **_claims(built.spec, a, b))
+        results.append(run_audit(table, {n: plan.space[n] for n in names}, pairs=[(a, b)], thresholds=th,
+                                 regions={a: plan.split(a).region, b: plan.split(b).region} if _claims(built.spec, a, b) else None,
+                                 column_map=column_map, progress=progress))
+    if not results:
+        return AuditResult((region_check,), (), (), {"table": str(table), "spec": str(spec_path)}, {})
+    merged = _merge(results)
+    return dataclasses.replace(merged, checks=(region_check,) + merged.checks)
+
+
+def is_dataset(path) -> bool:
+    p = Path(path)
+    return p.is_dir() and (p / mf.SPEC_FILE).exists()
