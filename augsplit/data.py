@@ -40,6 +40,7 @@ ROW_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if c.name != "image_bytes")
 # Domain tag of the online sampler's streams: its spawn keys (ONLINE, split, epoch, index,
 # purpose) have a length no generated image's key (split, index, purpose) has.
 ONLINE = 0x6F6E6C6E
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the first 8 bytes of every PNG file (PNG spec, section 5.2)
 
 
 class DatasetIndexError(DatasetError, IndexError):
@@ -124,7 +125,8 @@ class Dataset:
     [0, 1] with ``chw_float=True`` —, ``target`` (see below) and ``row`` (the manifest row as a
     dict of plain values, without the encoded image). Targets: ``'class'`` (class index, int),
     ``'params'`` (float32 vector of the spec's axes in manifest column order: ``self.param_names``,
-    spec units), ``'bbox'`` (float32 [x0, y0, x1, y1], px, of the visible footprint, end exclusive),
+    spec units; angle and hue in raw degrees, so regress their sine and cosine if the range is
+    a full circle), ``'bbox'`` (float32 [x0, y0, x1, y1], px, of the visible footprint, end exclusive),
     ``'mask'`` ((H, W) uint8, 1 on the target object's footprint — alpha above the spec's
     threshold, not reduced where a distractor covers it), any manifest column name, or a
     tuple of these (the target is then a tuple).
@@ -134,6 +136,8 @@ class Dataset:
     manifest columns, e.g. ``"scale > 1.2 and angle < 90"``); the filters intersect.
     ``transform`` is called with the item dict (image still HWC uint8) and returns it.
     ``check_pixels`` compares each image's SHA-256 with its manifest row (lossless stores).
+    Items follow the split's image index, after filtering; the filtered manifest is
+    ``self.manifest`` (a DataFrame, row i = item i).
     """
 
     def __init__(self, root: str | Path, split: str, target="class", chw_float: bool = False,
@@ -234,10 +238,14 @@ class Dataset:
     def __getitem__(self, index) -> dict:
         i = self._position(index)
         row = {c: col[i] for c, col in self._cols.items()}
-        image, placed = self._image(i, row)
-        if self.check_pixels and pixel_sha256(image) != row["sha256"]:
-            raise DatasetError("the image does not match its manifest checksum (sha256)",
-                               where=f"{self.root}:{row['image_id']}")
+        image, placed, lossless = self._image(i, row)
+        if self.check_pixels:
+            if not lossless:
+                raise DatasetError("check_pixels needs losslessly stored images (PNG, or store none); these are "
+                                   "lossy, so their pixels never match the checksum", where=f"{self.root}:{row['image_id']}")
+            if pixel_sha256(image) != row["sha256"]:
+                raise DatasetError("the image does not match its manifest checksum (sha256)",
+                                   where=f"{self.root}:{row['image_id']}")
         mask_fn = (lambda: _target_mask(placed, self.hw)) if placed is not None else (lambda: self._mask(row))
         item = {"image": image, "target": _targets(self.names, row, self.param_names, mask_fn), "row": row}
         if self.transform is not None:
@@ -248,25 +256,27 @@ class Dataset:
 
     # ---- pixels ---------------------------------------------------------------------------
     def _image(self, i: int, row: dict):
-        """(image, Placed of the target when re-rendered else None)."""
+        """(image, Placed of the target when re-rendered else None, whether stored losslessly)."""
         if row["file"]:
             path = self.root / row["file"]
             img = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE if self.channels == 1 else cv2.IMREAD_COLOR)
             if img is None:
                 raise DatasetError("image file is missing or unreadable" if path.exists() else "image file is missing",
                                    where=str(path))
-            return (img[..., None] if self.channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)), None
+            img = img[..., None] if self.channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+            return img, None, path.suffix.lower() == ".png"
         if self._has_bytes[i]:
             data = self._bytes(int(self._part[i]), int(self._offset[i]))
             try:
-                return decode(data, self.channels), None
+                return decode(data, self.channels), None, data[:8] == PNG_SIGNATURE
             except AugsplitError:
-                raise DatasetError("stored image bytes cannot be decoded", where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
+                raise DatasetError("stored image bytes cannot be decoded",
+                                   where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
         built = self.built
         # the row's own seed key, not the re-opened plan's split order: the row alone decides
         rng = LazyStream(functools.partial(image_rng, row["seed"], row["split_index"], row["index"], RENDER))
         scene = make_scene(built.plan, built.source, built.background, self._split_plan, row, rng=rng)
-        return scene.image, scene.target
+        return scene.image, scene.target, True
 
     def _bytes(self, part: int, offset: int) -> bytes:
         self._local()

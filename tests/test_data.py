@@ -218,6 +218,14 @@ def test_check_pixels_catches_a_swapped_file(files_ds, tmp_path):
     assert Dataset(root, "train")[0]["image"].shape == (32, 32, 3)  # off by default
 
 
+def test_check_pixels_refuses_lossy_stores(tmp_path):
+    out = tmp_path / "jpeg"
+    generate(None, out, Options(store="parquet", format="jpeg", progress=False), built=open_mapping(SPEC))
+    assert Dataset(out, "test_right")[0]["image"].shape == (32, 32, 3)
+    with pytest.raises(DatasetError, match="lossless"):
+        Dataset(out, "test_right", check_pixels=True)[0]
+
+
 def test_transform_hook(files_ds):
     def flip(item):
         item["image"] = item["image"][:, ::-1].copy()
