@@ -366,7 +366,9 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
     Draws come from the transform's random generator (so ``A.Compose(seed=...)`` makes them
     reproducible), or — with ``item_key`` naming a data key that holds an item number —
     from that item's own stream ``SeedSequence(seed, spawn_key=(PLUGIN, split, epoch, item))``,
-    the same in any worker and order. What was applied is in ``get_applied_params()`` (and
+    the same in any worker and order. (Forked DataLoader workers inherit one generator state,
+    as with every albumentations transform: without item_key, reseed each worker in a
+    worker_init_fn or the workers repeat each other's draws.) What was applied is in ``get_applied_params()`` (and
     so in Compose's ``applied_transforms`` with ``save_applied_params=True``) under
     ``'placement'``, in the result under ``params_key`` when given, and in ``log``.
 
