@@ -27,6 +27,7 @@ from .space.sample import sample_t
 GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
 COLOUR_AXES = ("hue", "saturation", "brightness")
 ANCHORS = ("centre", "mask", "bbox")
+BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 # Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
 PLUGIN = 0x616C6275
 _MASS_TOL = 1e-12
@@ -237,6 +238,16 @@ def move_bboxes(boxes: np.ndarray, matrix: np.ndarray) -> np.ndarray:
     return out
 
 
+def content_box(matrix: np.ndarray, hw: tuple[int, int], canvas_hw: tuple[int, int]) -> tuple[int, int, int, int]:
+    """The canvas pixels (x0, y0, x1, y1, end exclusive; zeros if none) the placed content of
+    size hw can touch: the box around its moved corners, out to whole pixels, clipped."""
+    h, w = hw
+    box = move_bboxes(np.array([[0.0, 0.0, w, h]]), matrix)[0]
+    x0, y0 = max(math.floor(box[0]), 0), max(math.floor(box[1]), 0)
+    x1, y1 = min(math.ceil(box[2]), canvas_hw[1]), min(math.ceil(box[3]), canvas_hw[0])
+    return (x0, y0, x1, y1) if x1 > x0 and y1 > y0 else (0, 0, 0, 0)
+
+
 # ---- the transforms ------------------------------------------------------------------------
 
 
@@ -416,7 +427,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
                             "placed whole anywhere in this region", where=f"splits.{self._draws.split.name}.region",
                             hint=f"shrink the content first (e.g. A.LongestMaxSize({int(min(canvas.width, canvas.height) / s)})) "
                                  "or raise the canvas / lower the scale range")
-        self._applied_axes = GEOMETRY_AXES + ("cx_px", "cy_px") + (COLOUR_AXES if self.colour else ())
+        self._applied_axes = GEOMETRY_AXES + ("cx_px", "cy_px") + BBOX_KEYS + (COLOUR_AXES if self.colour else ())
 
     @property
     def targets_as_params(self) -> list[str]:
@@ -457,6 +468,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         anchor = self._anchor(data, hw)
         rp = RenderParams(values["cx_px"], values["cy_px"], values["scale"], values["angle"], bool(values["mirror"]))
         m = similarity_matrix(anchor, rp)
+        values.update(zip(BBOX_KEYS, content_box(m, hw, self.canvas_hw)))
         self._record(values, self._applied_axes)
         placement = {k: v for k, v in values.items() if not k.startswith("_")}
         if not self.colour:

@@ -5,6 +5,8 @@
 one series per process, so DataLoader workers never share a file. `read_log(log_dir)` (or
 plain `pandas.read_parquet(log_dir)`) gives one table with the manifest's axis columns plus
 `split`, `epoch`, `item`, `worker`, `pid`, `source` and `spec_hash`; the audit reads it.
+The bbox columns hold what the draw covered on the canvas: the rendered object's footprint
+box (sampler) or the box around the placed content (plugin), end exclusive, zeros if none.
 """
 
 from __future__ import annotations
@@ -28,7 +30,8 @@ from .io import atomic_path
 from .spec import canonical
 
 # Columns taken from the manifest schema (same names, types and units), then the log's own.
-SHARED_COLUMNS = ("class_name", "class_index", "cell", *mf.AXIS_COLUMNS, "cx_px", "cy_px")
+SHARED_COLUMNS = ("class_name", "class_index", "cell", *mf.AXIS_COLUMNS, "cx_px", "cy_px",
+                  "bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 _MANIFEST_TYPES = {c.name: c.type for c in mf.IMAGE_COLUMNS}
 LOG_ONLY: tuple[mf.Column, ...] = (
     mf.Column("split", pa.string(), "", "the split whose region the draw came from"),

@@ -234,6 +234,15 @@ def test_points_and_box_corners_follow_cv2_transform(seed, geom):
     if len(r["bboxes"]):  # the box's canvas is 64 px; the content may be placed partly off it
         np.testing.assert_allclose(r["bboxes"][0], np.r_[np.clip(moved.min(0), 0, W), np.clip(moved.max(0), 0, W)],
                                    atol=1e-3)
+    # the canvas box the content can touch (logged for the audit): its corners moved, out to
+    # whole pixels, clipped to the canvas
+    cc = cv2.transform(np.array([[[0.0, 0.0]], [[32.0, 0.0]], [[32.0, 24.0]], [[0.0, 24.0]]]),
+                       params["bbox_matrix"]).reshape(-1, 2)
+    x0, y0 = max(math.floor(cc[:, 0].min()), 0), max(math.floor(cc[:, 1].min()), 0)
+    x1, y1 = min(math.ceil(cc[:, 0].max()), W), min(math.ceil(cc[:, 1].max()), H)
+    want_box = (x0, y0, x1, y1) if x1 > x0 and y1 > y0 else (0, 0, 0, 0)
+    pl = params["placement"]
+    assert (pl["bbox_x0"], pl["bbox_y0"], pl["bbox_x1"], pl["bbox_y1"]) == want_box
     # the anchor (image centre, continuous coordinates) lands on the drawn position
     p = params["placement"]
     centre = cv2.transform(np.array([[[16.0, 12.0]]]), params["bbox_matrix"])[0, 0]

@@ -59,7 +59,8 @@ def test_rows_buffer_flush_and_read_back(plan, tmp_path):
 def test_columns_share_the_manifest_schema():
     types = {c.name: c.type for c in mf.IMAGE_COLUMNS}
     for name in ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness",
-                 "mirror", "cx_px", "cy_px", "class_name", "class_index", "cell"):
+                 "mirror", "cx_px", "cy_px", "class_name", "class_index", "cell", "bbox_x0", "bbox_y0", "bbox_x1",
+                 "bbox_y1"):
         assert LOG_SCHEMA.field(name).type == types[name]
     for name in ("split", "epoch", "item", "worker"):
         assert name in LOG_SCHEMA.names
