@@ -19,6 +19,8 @@ import numpy as np
 from .build import Built, open_spec
 from .errors import DatasetError, SpecError
 from .plan.draw import params_from_t
+from .plan.geometry import WARP_SLACK_PX
+from .plan.guarantees import footprint_gaps
 from .plan.regions import CLASS
 from .render import RenderParams, similarity_matrix
 from .space.region import Region
@@ -238,6 +240,16 @@ def move_bboxes(boxes: np.ndarray, matrix: np.ndarray) -> np.ndarray:
     return out
 
 
+def corner_radius(anchor: tuple[float, float], hw: tuple[int, int]) -> float:
+    """Farthest distance from `anchor` to a corner of the content grown by half a pixel (the
+    reach of bilinear sampling, as Sprite.support_radius), continuous coordinates."""
+    h, w = hw
+    ax, ay = anchor
+    dx = max(abs(-0.5 - ax), abs(w + 0.5 - ax))
+    dy = max(abs(-0.5 - ay), abs(h + 0.5 - ay))
+    return math.hypot(dx, dy)
+
+
 def content_box(matrix: np.ndarray, hw: tuple[int, int], canvas_hw: tuple[int, int]) -> tuple[int, int, int, int]:
     """The canvas pixels (x0, y0, x1, y1, end exclusive; zeros if none) the placed content of
     size hw can touch: the box around its moved corners, out to whole pixels, clipped."""
@@ -385,8 +397,12 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
 
     Refused at construction (SpecError): an unknown split; a held-out split (use
     HeldOutPlacement); content of ``content_size`` (width, height) larger than the canvas at
-    the region's smallest scale; a region that differs by class without ``class_key``; and,
-    with ``colour=False``, a region that ties colour to geometry.
+    the region's smallest scale; a region that differs by class without ``class_key``; with
+    ``colour=False``, a region that ties colour to geometry; and (``check_footprint``) content
+    too large to keep a footprint guarantee of the spec that names this split — the planner's
+    proof redone with the content's radius in place of the objects'. With a mask or bbox
+    anchor the radius is only known per item: an item that would break the guarantee raises
+    DatasetError (the bound is ``self.max_radius`` px from the anchor).
     """
 
     source_name = "RegionPlacement"
@@ -395,7 +411,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
                  colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
                  interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
                  fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None,
-                 held_out: bool = False, p: float = 1.0):
+                 check_footprint: bool = True, held_out: bool = False, p: float = 1.0):
         A.DualTransform.__init__(self, p=_probability(p, type(self).__name__))
         self._setup(spec, split, held_out, class_key, item_key, log, epoch)
         if anchor not in ANCHORS:
@@ -427,7 +443,49 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
                             "placed whole anywhere in this region", where=f"splits.{self._draws.split.name}.region",
                             hint=f"shrink the content first (e.g. A.LongestMaxSize({int(min(canvas.width, canvas.height) / s)})) "
                                  "or raise the canvas / lower the scale range")
+        self.check_footprint = bool(check_footprint)
+        self.max_radius, self._limit = math.inf, None
+        if self.check_footprint:
+            self._footprint_limit(cw, ch)
         self._applied_axes = GEOMETRY_AXES + ("cx_px", "cy_px") + BBOX_KEYS + (COLOUR_AXES if self.colour else ())
+
+    def _footprint_limit(self, cw: int, ch: int) -> None:
+        """Carry the spec's footprint guarantees over to this content: the largest distance from
+        the anchor the (bilinear) content may reach so every guarantee naming this split still
+        holds when the content, not the spec's objects, is placed on both sides (the planner's
+        own bound: position gap > scale_a * r + scale_b * r + warp slack). Refuses content whose
+        centred radius already breaks it."""
+        plan, spec = self._built.plan, self._built.spec
+        r0 = corner_radius((cw / 2.0, ch / 2.0), (ch, cw))
+        n = len(plan.classes)
+        for gi, g in enumerate(spec.guarantees):
+            if g.disjoint != "footprint" or self.split not in g.between:
+                continue
+            a, b = (plan.split(name).region for name in g.between)
+            for gap in footprint_gaps(plan.space, plan.canvas, a, b, np.full(n, r0), np.full(n, r0), g.per_class):
+                scales = (gap.need_px - WARP_SLACK_PX) / r0
+                r_ok = (gap.gap_px - WARP_SLACK_PX) / scales if scales > 0 else math.inf
+                if r_ok < self.max_radius:
+                    self.max_radius, self._limit = r_ok, (gi, g.between, gap.gap_px, scales)
+        if r0 >= self.max_radius:
+            gi, (sa, sb), gap, scales = self._limit
+            raise SpecError(f"the spec proves {sa} and {sb} footprint-disjoint for its own objects, but content of "
+                            f"{cw}x{ch} px reaches {r0:.1f} px from its centre; at the largest scales it needs a "
+                            f"position gap of {scales * r0 + WARP_SLACK_PX:.1f} px and the regions are {gap:.1f} px apart",
+                            where=f"guarantees.{gi}",
+                            hint=f"shrink the content below {2 * self.max_radius / math.sqrt(2) - 1:.0f} px square, or "
+                                 "pass check_footprint=False (the audit will then show the overlap)")
+
+    def _check_radius(self, anchor, hw) -> None:
+        if self.max_radius == math.inf:
+            return
+        r = corner_radius(anchor, hw)
+        if r >= self.max_radius:
+            gi, (sa, sb), _, _ = self._limit
+            raise DatasetError(f"placed about this anchor the content reaches {r:.1f} px from it, beyond the "
+                               f"{self.max_radius:.1f} px that keeps {sa} and {sb} footprint-disjoint "
+                               f"(guarantees.{gi})", where=type(self).__name__,
+                               hint="use a smaller or better centred content, or check_footprint=False")
 
     @property
     def targets_as_params(self) -> list[str]:
@@ -464,8 +522,9 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         if hw[1] > cw or hw[0] > ch:
             raise DatasetError(f"the image is {hw[1]}x{hw[0]} px, larger than the content_size {cw}x{ch} the "
                                "transform was checked for", where=type(self).__name__)
-        values = self._draw(data)
         anchor = self._anchor(data, hw)
+        self._check_radius(anchor, hw)
+        values = self._draw(data)
         rp = RenderParams(values["cx_px"], values["cy_px"], values["scale"], values["angle"], bool(values["mirror"]))
         m = similarity_matrix(anchor, rp)
         values.update(zip(BBOX_KEYS, content_box(m, hw, self.canvas_hw)))
@@ -524,7 +583,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
 
     def get_transform_init_args_names(self) -> tuple[str, ...]:
         return ("spec", "split", "content_size", "anchor", "colour", "class_key", "item_key", "interpolation",
-                "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "held_out")
+                "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "check_footprint", "held_out")
 
     def __repr__(self) -> str:
         spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
@@ -542,9 +601,11 @@ class HeldOutPlacement(RegionPlacement):
     def __init__(self, spec, split: str, content_size: tuple[int, int], anchor: str = "centre",
                  colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
                  interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
-                 fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None):
+                 fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None,
+                 check_footprint: bool = True):
         super().__init__(spec, split, content_size, anchor, colour, class_key, item_key, interpolation,
-                         mask_interpolation, fill, fill_mask, log, epoch, params_key, held_out=True, p=1.0)
+                         mask_interpolation, fill, fill_mask, log, epoch, params_key, check_footprint,
+                         held_out=True, p=1.0)
 
     def get_transform_init_args_names(self) -> tuple[str, ...]:
         return tuple(n for n in super().get_transform_init_args_names() if n != "held_out")

@@ -155,6 +155,48 @@ def test_bboxes_need_a_declared_format(geom):
         c(image=photo(), bboxes=[[10, 10, 30, 30]])
 
 
+LANES = spec({"x": {"range": [8, 56]}, "y": {"range": [6, 58]}, "scale": {"range": [0.8, 1.0]},
+               "angle": {"range": [0, 360]}},
+              {"y": [6, 20]}, {"y": [44, 58]},
+              guarantees=[{"disjoint": "footprint", "between": ["train", "test"]}])
+
+
+def test_footprint_guarantee_is_kept_for_the_content():
+    b = open_mapping(LANES)
+    # lanes 24 px apart; content of 20 px reaches 14.8 px from its centre: 2 x 14.8 + 0.25 > 24
+    with pytest.raises(SpecError) as e:
+        RegionPlacement(b, "train", content_size=(20, 20))
+    msg = str(e.value)
+    assert msg.startswith("guarantees.0:") and "20x20 px reaches 14.8 px" in msg and "24.0 px apart" in msg
+    with pytest.raises(SpecError, match="footprint-disjoint"):
+        HeldOutPlacement(b, "test", content_size=(20, 20))
+    RegionPlacement(b, "train", content_size=(20, 20), check_footprint=False)  # on request
+    # content of 12 px fits: placed train and held-out content never share a canvas pixel
+    # (the footprint guarantee itself, checked on the warped pixels)
+    tr = A.Compose([RegionPlacement(b, "train", content_size=(12, 12))], seed=1)
+    te = A.Compose([HeldOutPlacement(b, "test", content_size=(12, 12))], seed=2)
+    ones = np.full((12, 12), 255, np.uint8)
+    cover = {"train": np.zeros((H, W), bool), "test": np.zeros((H, W), bool)}
+    for _ in range(300):
+        cover["train"] |= tr(image=ones)["image"] > 0
+        cover["test"] |= te(image=ones)["image"] > 0
+    assert cover["train"].any() and cover["test"].any()
+    assert not (cover["train"] & cover["test"]).any()
+
+
+def test_footprint_guarantee_with_a_mask_anchor_is_checked_per_item():
+    b = open_mapping(LANES)
+    t = RegionPlacement(b, "train", content_size=(12, 12), anchor="mask")
+    assert 10 < t.max_radius < 12
+    centred = np.zeros((12, 12), np.uint8)
+    centred[4:8, 4:8] = 1
+    t(image=photo(12, 12), mask=centred)
+    corner = np.zeros((12, 12), np.uint8)
+    corner[0:2, 0:2] = 1  # anchor near a corner: the far corner is 16 px away
+    with pytest.raises(DatasetError, match="footprint-disjoint"):
+        t(image=photo(12, 12), mask=corner)
+
+
 # ---- draws inside the region ----------------------------------------------------------------
 
 

@@ -12,6 +12,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 SECTION = "## Use in training"
 FENCE = re.compile(r"```python\n(.*?)```", re.S)
+SHELL = re.compile(r"```bash\n(.*?)```", re.S)
 
 
 def section(text: str) -> str:
@@ -28,6 +29,24 @@ def blocks(path: Path) -> list[str]:
     return FENCE.findall(section(path.read_text(encoding="utf-8")))
 
 
+def commands(path: Path) -> list[str]:
+    """The shell lines of the section's bash blocks."""
+    return [ln for b in SHELL.findall(section(path.read_text(encoding="utf-8"))) for ln in b.splitlines()
+            if ln.strip() and not ln.lstrip().startswith("#")]
+
+
+def run_commands(lines: list[str]) -> None:
+    import shlex
+    import subprocess
+    import sys
+
+    for line in lines:
+        argv = shlex.split(line)
+        assert argv[0] == "augsplit", f"unexpected command in the docs: {line}"
+        out = subprocess.run([sys.executable, "-m", "augsplit.cli", *argv[1:]], capture_output=True, text=True)
+        assert out.returncode == 0, f"{line}: exit {out.returncode}: {out.stderr or out.stdout}"
+
+
 def run(code_blocks: list[str], where: Path, capsys) -> str:
     ns: dict = {"__name__": "__readme__"}
     for k, code in enumerate(code_blocks):
@@ -38,8 +57,8 @@ def run(code_blocks: list[str], where: Path, capsys) -> str:
 def check(out: str) -> None:
     # what the examples claim, checked on what they printed
     assert "300 far-lane predictions" in out
-    assert "(64, 64, 3)" in out
-    assert re.search(r"200 draws, 0 in the held-out region|201 draws, 0 in the held-out region", out)
+    assert "(128, 128, 3)" in out
+    assert "201 training draws, 0 in the held-out region" in out
 
 
 def test_docs_examples_run(tmp_path, monkeypatch, capsys):
@@ -50,6 +69,12 @@ def test_docs_examples_run(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     out = run(code, doc, capsys)
     check(out)
+    assert commands(doc) == ["augsplit audit photo-draws --spec belt.yaml --out photo-audit"]
+    run_commands(commands(doc))  # the audit of the example's log passes (exit 0), footprints included
+    import json
+
+    report = json.loads((tmp_path / "photo-audit" / "audit.json").read_text())
+    assert "footprint_overlap" in json.dumps(report)
     # the sampler's log holds every item of both epochs, each once, from the worker processes
     from augsplit.paramlog import read_log
 
@@ -66,3 +91,4 @@ def test_readme_examples_run(tmp_path, monkeypatch, capsys):
         pytest.skip("README.md has no 'Use in training' section yet (docs/use_in_training.md holds it)")
     monkeypatch.chdir(tmp_path)
     check(run(code, readme, capsys))
+    run_commands(commands(readme))
