@@ -1,0 +1,828 @@
+"""Rasterised footprint envelopes: the second and third stage of the footprint proof.
+
+Owns (2) a conservative mask of every canvas pixel the objects of a region can cover, built
+on a super-sampled grid from a log-polar table of each sprite, and (3) a branch-and-bound
+test of one pixel that either finds a placement covering it or proves none exists.
+
+Why this is a proof (a pixel left out of a mask is covered by no allowed placement):
+
+* A placement (anchor at c, angle th, scale s, mirror m) puts canvas pixel centre p in the
+  footprint iff a(u) > t, where u = anchor + (1/s) M R(-th) (p - c) and a is the bilinear
+  interpolation of the sprite's alpha (zero outside). We evaluate a exactly in float64;
+  the renderer's float32 warp differs by less than ALPHA_SLACK (OpenCV 5's four-channel
+  float warp does not quantise coordinates; test_envelope measures it), so every test
+  below uses the threshold t - ALPHA_SLACK.
+* a is piecewise bilinear with values in [0, 1], so on each source cell |da/dx| and |da/dy|
+  are convex combinations of differences of values in [0, 1]: |a(u) - a(v)| <= |dx| + |dy|
+  <= sqrt(2) |u - v| (the constant sqrt 2 is attained at a 0/1/1 corner).
+* In polar coordinates about the anchor (log radius l, screen angle phi), a rotation by th
+  is the shift phi + th, a scale s is the shift l + ln s and the mirror is phi -> pi - phi.
+  So the union over a whole angle interval and scale interval is an exact box sweep in
+  (l, phi): no angle or scale is sampled. The table marks every (l, phi) bin whose annular
+  sector may meet {a > t'}: a(centre) + sqrt(2) * (bin radius) > t' (Lipschitz above),
+  and a core disc rho < rho_min is marked when a(anchor) + sqrt(2) rho_min > t'.
+* Offsets z = p - c are rasterised as cells of side h = 1/f (f odd) centred on the lattice
+  n*h; a cell is kept when the (l, phi) box that contains it, swept by the box's scales
+  and angles, holds a marked bin (summed-area table). Positions are rasterised as the
+  cells [a h, (a+1) h] that touch the position set. Pixel centres sit at cell centres
+  (f odd), so p - (position cell) is exactly an offset cell: p is in the envelope only
+  if some position cell a and the offset cell m_p - a are both kept, which is a binary
+  dilation (FFT convolution). Every step keeps a superset; the only looseness is one cell
+  (h px) plus the bins' Lipschitz margin.
+* Stage 3 works on boxes of placements (anchor c, angle th, scale s) for one pixel p:
+  over a box, u stays within D = |c - c0|/s_lo + |z0| ((1/s_lo - 1/s0) + dth/s0) of its
+  value u0 at the box centre (z0 = p - c0; |R(a) - R(b)| <= |a - b|, and 1/s - 1/s0 is
+  largest at s_lo), so a(u) <= min(a(u0) + sqrt(2) D, max of a on the square u0 +- D)
+  (the latter exact: bilinear is linear along each axis inside a source cell, so its
+  maximum sits where the square's edges and the grid lines cross), and a = 0 once
+  |u0 - anchor| - D exceeds the alpha radius. Boxes whose bound stays <= t' are dropped
+  (best first, largest bound first); a box centre with a(u0) > t + WITNESS_MARGIN is a real
+  placement covering p. It settles a pixel unless the best alpha there is within a hair
+  of t (or the budget runs out: "undecided").
+* A run of pixels p0 + k d (k < n) folds into one problem: p0 + k d with anchor c is p0
+  with anchor c - k d, so its positions are the set grown by the run. For a rectangle at
+  least one pixel long along d this is exact both ways (an anchor of the grown set maps
+  back to a pixel of the run and an anchor of the true set), so one search excludes a
+  whole run along a straight boundary.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+
+import cv2
+import numpy as np
+from scipy.signal import fftconvolve
+
+from ..space.axes import LEVELS, Space
+from ..space.region import Region
+from ..units import Canvas
+from .geometry import PositionSet, box_classes, position_sets
+
+CLASS = "class"
+TWO_PI = 2.0 * math.pi
+SQRT2 = math.sqrt(2.0)
+# Largest difference between the renderer's warped alpha and exact float64 bilinear
+# interpolation. OpenCV 5 warps four-channel float images without snapping coordinates
+# (measured below 2e-6; test_envelope re-measures it); older builds snap sample positions to
+# 1/32 px (INTER_BITS = 5, from memory), which moves alpha by at most 2/32 (|dx| + |dy| bound).
+ALPHA_SLACK = 1e-3 if int(cv2.__version__.split(".")[0]) >= 5 else 1.0 / 16.0 + 1e-3
+# A stage-3 witness must beat the threshold by this much, so the renderer agrees with it.
+WITNESS_MARGIN = 1e-3
+SUPER = 5  # cells per pixel side on the super-sampled grid (odd: pixel centres are cell centres)
+BIN_TOL_PX = 0.15  # log-polar bin size at the object's rim, in canvas px at the largest scale
+MAX_BINS = 3_000_000
+
+
+# ---- what a box allows besides its position ----------------------------------------------
+
+
+@dataclass(frozen=True)
+class Pose:
+    """Scales and angles (closed intervals; a level is a zero-width interval, angles in
+    degrees counter-clockwise, a full turn is (0, 360)) and mirror levels of one box."""
+
+    scales: tuple[tuple[float, float], ...]
+    angles: tuple[tuple[float, float], ...]
+    mirrors: tuple[bool, ...]
+
+    @property
+    def max_scale(self) -> float:
+        return max(b for _, b in self.scales)
+
+
+def _box_levels(space: Space, name: str, lo: np.ndarray, hi: np.ndarray) -> list[float]:
+    ax, i = space[name], space.index[name]
+    return [v for k, v in enumerate(ax.levels) if lo[i] - 1e-9 <= k <= hi[i] + 1e-9]
+
+
+def box_pose(space: Space, lo: np.ndarray, hi: np.ndarray) -> Pose:
+    if "scale" not in space:
+        scales = ((1.0, 1.0),)
+    elif space["scale"].measure == LEVELS:
+        scales = tuple((v, v) for v in _box_levels(space, "scale", lo, hi))
+    else:
+        ax, i = space["scale"], space.index["scale"]
+        scales = ((float(ax.from_t(lo[i])), float(ax.from_t(hi[i]))),)
+    if "angle" not in space:
+        angles = ((0.0, 0.0),)
+    elif space["angle"].measure == LEVELS:
+        angles = tuple((v, v) for v in _box_levels(space, "angle", lo, hi))
+    else:
+        ax, i = space["angle"], space.index["angle"]
+        a, b = float(ax.from_t(lo[i])), float(ax.from_t(hi[i]))
+        angles = ((0.0, 360.0),) if b - a >= 360.0 - 1e-9 else ((a, b),)
+    if "mirror" not in space:
+        mirrors = (False,)
+    else:
+        mirrors = tuple(sorted({bool(v) for v in _box_levels(space, "mirror", lo, hi)}))
+    return Pose(scales, angles, mirrors)
+
+
+@dataclass(frozen=True, eq=False)
+class Item:
+    """One box of a region and one class in it: where the anchor may go, how the object may
+    be posed, and the sprites (allowed instances) it may be."""
+
+    box: int
+    cls: int
+    position: PositionSet
+    pose: Pose
+    sprites: tuple
+
+
+def region_items(space: Space, canvas: Canvas, region: Region, sprites: dict[int, list]) -> list[Item]:
+    """Items of every box of `region` for the classes in `sprites` (class -> allowed sprites)."""
+    sets = position_sets(region, canvas)
+    out = []
+    for k in range(region.nbox):
+        pose = box_pose(space, region.lo[k], region.hi[k])
+        for c in box_classes(space, region.lo[k], region.hi[k]).tolist():
+            if c in sprites and sprites[c]:
+                out.append(Item(k, c, sets[k], pose, tuple(sprites[c])))
+    return out
+
+
+# ---- exact bilinear alpha ------------------------------------------------------------------
+
+
+def padded_alpha(sprite) -> np.ndarray:
+    """The alpha the renderer warps (float32 a/255 in the premultiplied patch), as float64,
+    with a ring of zeros: bilinear interpolation on it is exact everywhere."""
+    return np.pad(sprite.premultiplied[..., 3].astype(np.float64), 1)
+
+
+def bilinear(apad: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Alpha at continuous patch coordinates (x, y) (pixel centres at .5; zero outside)."""
+    h, w = apad.shape
+    ix = np.asarray(x, dtype=np.float64) + 0.5  # padded index: continuous - 0.5 + 1
+    iy = np.asarray(y, dtype=np.float64) + 0.5
+    x0 = np.clip(np.floor(ix), 0, w - 2).astype(np.intp)
+    y0 = np.clip(np.floor(iy), 0, h - 2).astype(np.intp)
+    fx = np.clip(ix - x0, 0.0, 1.0)
+    fy = np.clip(iy - y0, 0.0, 1.0)
+    top = apad[y0, x0] * (1 - fx) + apad[y0, x0 + 1] * fx
+    bot = apad[y0 + 1, x0] * (1 - fx) + apad[y0 + 1, x0 + 1] * fx
+    return top * (1 - fy) + bot * fy
+
+
+def square_max(apad: np.ndarray, x: np.ndarray, y: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Exact largest alpha on the squares [x - d, x + d] x [y - d, y + d] with d < 1/2 (larger
+    squares get +inf): bilinear interpolation is linear along each axis inside a source cell,
+    so its maximum over a rectangle lies on a corner of the rectangle cut by the grid lines,
+    and a square narrower than a cell meets at most one grid line per axis."""
+    x, y, d = np.broadcast_arrays(np.asarray(x, float), np.asarray(y, float), np.asarray(d, float))
+    # grid lines (source pixel centres) sit at continuous coordinates k + 1/2
+    xs = [x - d, x + d, np.floor(x + d - 0.5) + 0.5]
+    ys = [y - d, y + d, np.floor(y + d - 0.5) + 0.5]
+    xs[2] = np.where(xs[2] > xs[0], xs[2], xs[0])
+    ys[2] = np.where(ys[2] > ys[0], ys[2], ys[0])
+    best = np.full(x.shape, -np.inf)
+    for xv in xs:
+        for yv in ys:
+            best = np.maximum(best, bilinear(apad, xv, yv))
+    return np.where(d < 0.5, best, np.inf)
+
+
+def alpha_radius(sprite) -> float:
+    """Beyond this distance from the anchor (source px) the bilinear alpha is exactly zero:
+    the farthest corner of the open squares (i - 1, i + 1) around pixels with alpha > 0."""
+    rows, cols = np.nonzero(sprite.rgba[..., 3] > 0)
+    if rows.size == 0:
+        return 0.0
+    ax, ay = sprite.anchor
+    dx = np.maximum(np.abs(cols - 0.5 - ax), np.abs(cols + 1.5 - ax))
+    dy = np.maximum(np.abs(rows - 0.5 - ay), np.abs(rows + 1.5 - ay))
+    return float(np.sqrt(dx * dx + dy * dy).max())
+
+
+# ---- the log-polar table of one sprite -------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class PolarTable:
+    """Which (log radius, angle) bins about the anchor may hold alpha above the threshold."""
+
+    l0: float  # ln rho_min
+    dl: float
+    nphi: int  # even, so the mirror maps bins onto bins
+    rho_max: float
+    core: bool  # the disc rho < rho_min may hold alpha above the threshold
+    sat: dict = field(repr=False)  # mirror -> summed-area table (nl + 1, 2 nphi + 1), phi tiled twice
+
+    @property
+    def rho_min(self) -> float:
+        return math.exp(self.l0)
+
+    @property
+    def dphi(self) -> float:
+        return TWO_PI / self.nphi
+
+    @property
+    def nl(self) -> int:
+        return self.sat[False].shape[0] - 1
+
+    def may_meet(self, mirror: bool, r_lo: np.ndarray, r_hi: np.ndarray, phi_lo: np.ndarray,
+                 width: np.ndarray) -> np.ndarray:
+        """Whether {alpha > t'} (mirrored) may meet each annular sector r in [r_lo, r_hi],
+        phi in [phi_lo, phi_lo + width] (source px, radians; width >= 2 pi is all round)."""
+        r_lo = np.maximum(r_lo, 0.0)
+        out = np.zeros(r_lo.shape, dtype=bool)
+        if self.core:
+            out |= r_lo <= self.rho_min
+        ok = (r_lo <= self.rho_max) & (r_hi >= self.rho_min) & (r_hi >= r_lo)
+        if not ok.any():
+            return out
+        rl, rh, pl, wd = r_lo[ok], r_hi[ok], phi_lo[ok], width[ok]
+        i0 = np.floor((np.log(np.maximum(rl, self.rho_min)) - self.l0) / self.dl - 1e-9).astype(np.int64)
+        i1 = np.floor((np.log(np.minimum(rh, self.rho_max)) - self.l0) / self.dl + 1e-9).astype(np.int64)
+        i0 = np.clip(i0, 0, self.nl - 1)
+        i1 = np.clip(i1, 0, self.nl - 1)
+        d = self.dphi
+        p0 = np.mod(pl, TWO_PI)
+        jj0 = np.floor(p0 / d - 1e-9).astype(np.int64)
+        jj1 = np.floor((p0 + wd) / d + 1e-9).astype(np.int64)
+        full = (jj1 - jj0 + 1 >= self.nphi) | (wd >= TWO_PI)
+        j0 = np.where(full, 0, np.mod(jj0, self.nphi))
+        j1 = np.where(full, self.nphi - 1, j0 + (jj1 - jj0))
+        s = self.sat[bool(mirror)]
+        n = s[i1 + 1, j1 + 1] - s[i0, j1 + 1] - s[i1 + 1, j0] + s[i0, j0]
+        out[ok] |= n > 0
+        return out
+
+
+def polar_table(sprite, threshold: float, max_scale: float, tol_px: float = BIN_TOL_PX,
+                max_bins: int = MAX_BINS) -> PolarTable:
+    """The sprite's table: bins of about tol_px / max_scale source px at its rim."""
+    apad = padded_alpha(sprite)
+    ax, ay = sprite.anchor
+    t_eff = threshold - ALPHA_SLACK
+    rho_max = alpha_radius(sprite)
+    rho_min = min(0.1, 0.25 * rho_max) if rho_max > 0 else 0.1
+    step = tol_px / (max(max_scale, 1e-9) * max(rho_max, 1.0))
+    while True:
+        nphi = 2 * int(math.ceil(math.pi / step))
+        nl = max(1, int(math.ceil(math.log(max(rho_max, rho_min * 1.0001) / rho_min) / step)))
+        if nphi * nl <= max_bins:
+            break
+        step *= 1.25
+    dphi = TWO_PI / nphi
+    l0 = math.log(rho_min)
+    dl = step
+    la = l0 + dl * np.arange(nl)
+    rho_c = np.exp(la + dl / 2)
+    rho_b = np.exp(la + dl)
+    # distance from the bin's centre point to any point of its annular sector
+    reach = (rho_b - rho_c) + rho_b * dphi / 2
+    phi_c = dphi * (np.arange(nphi) + 0.5)
+    marks = np.empty((nl, nphi), dtype=bool)
+    cos, sin = np.cos(phi_c), np.sin(phi_c)
+    for r0 in range(0, nl, 256):  # row blocks keep the temporaries small
+        rc = rho_c[r0:r0 + 256, None]
+        a = bilinear(apad, ax + rc * cos, ay - rc * sin)
+        marks[r0:r0 + 256] = a + SQRT2 * reach[r0:r0 + 256, None] > t_eff
+    core = bool(bilinear(apad, np.array([ax]), np.array([ay]))[0] + SQRT2 * rho_min > t_eff)
+    # mirror: phi -> pi - phi maps bin j onto bin nphi/2 - 1 - j (mod nphi)
+    mirrored = marks[:, np.mod(nphi // 2 - 1 - np.arange(nphi), nphi)]
+    sat = {False: _sat(marks), True: _sat(mirrored)}
+    return PolarTable(l0, dl, nphi, rho_max, core, sat)
+
+
+def _sat(marks: np.ndarray) -> np.ndarray:
+    tiled = np.concatenate([marks, marks], axis=1).astype(np.int32)
+    s = np.zeros((tiled.shape[0] + 1, tiled.shape[1] + 1), dtype=np.int32)
+    np.cumsum(np.cumsum(tiled, axis=0), axis=1, out=s[1:, 1:])
+    return s
+
+
+# ---- squares seen from a point ------------------------------------------------------------------
+
+
+def square_polar(x0, y0, x1, y1):
+    """For squares [x0, x1] x [y0, y1] (relative to the origin, y down): nearest and farthest
+    distance, the smallest screen angle (counter-clockwise) and the angular width of the
+    square as seen from the origin (2 pi when it holds or touches the origin)."""
+    dmin = np.hypot(np.maximum(0.0, np.maximum(x0, -x1)), np.maximum(0.0, np.maximum(y0, -y1)))
+    dmax = np.hypot(np.maximum(np.abs(x0), np.abs(x1)), np.maximum(np.abs(y0), np.abs(y1)))
+    ref = np.arctan2(-(y0 + y1) / 2, (x0 + x1) / 2)
+    lo = np.zeros_like(ref)
+    hi = np.zeros_like(ref)
+    for cx, cy in ((x0, y0), (x1, y0), (x0, y1), (x1, y1)):
+        d = np.mod(np.arctan2(-cy, cx) - ref + math.pi, TWO_PI) - math.pi
+        lo = np.minimum(lo, d)
+        hi = np.maximum(hi, d)
+    width = np.where(dmin <= 1e-12, 2 * TWO_PI, hi - lo)
+    return dmin, dmax, ref + lo, width
+
+
+# ---- stage 2: masks ---------------------------------------------------------------------------
+
+
+def offset_cells(tables: list[PolarTable], pose: Pose, h: float) -> tuple[int, np.ndarray]:
+    """Offset cells (side h, centred on n*h, n in [-N, N]^2, rows = y) that may meet the
+    object at some pose the box allows, for any of the sprites. Returns (N, mask)."""
+    smax = pose.max_scale
+    reach = max(t.rho_max for t in tables) * smax
+    n = int(math.ceil(reach / h)) + 1
+    k = np.arange(-n, n + 1) * h
+    cx, cy = np.meshgrid(k, k)  # cy varies along rows
+    half = h / 2
+    dmin, dmax, plo, width = square_polar(cx - half, cy - half, cx + half, cy + half)
+    mask = np.zeros(cx.shape, dtype=bool)
+    for tab in tables:
+        for m in pose.mirrors:
+            for sa, sb in pose.scales:
+                for a0, a1 in pose.angles:
+                    th0, th1 = math.radians(a0), math.radians(a1)
+                    todo = ~mask
+                    mask[todo] |= tab.may_meet(m, dmin[todo] / sb, dmax[todo] / sa, plo[todo] - th1,
+                                               width[todo] + (th1 - th0))
+    return n, mask
+
+
+def position_cells(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
+    """Cells [a h, (a+1) h]^2 touching the position set, limited to the index ranges given.
+    Returns (ax0, ay0, mask) with mask rows = y; None if no cell is left."""
+    if ps.kind == "rect":
+        x0, x1, y0, y1 = ps.bounds
+        a0 = max(int(math.ceil(x0 / h - 1 - 1e-9)), ax_range[0])
+        a1 = min(int(math.floor(x1 / h + 1e-9)), ax_range[1])
+        b0 = max(int(math.ceil(y0 / h - 1 - 1e-9)), ay_range[0])
+        b1 = min(int(math.floor(y1 / h + 1e-9)), ay_range[1])
+        if a1 < a0 or b1 < b0:
+            return None
+        return a0, b0, np.ones((b1 - b0 + 1, a1 - a0 + 1), dtype=bool)
+    r0, r1, p0, p1 = ps.bounds
+    ccx, ccy = ps.centre
+    a0 = max(int(math.floor((ccx - r1) / h)) - 1, ax_range[0])
+    a1 = min(int(math.ceil((ccx + r1) / h)) + 1, ax_range[1])
+    b0 = max(int(math.floor((ccy - r1) / h)) - 1, ay_range[0])
+    b1 = min(int(math.ceil((ccy + r1) / h)) + 1, ay_range[1])
+    if a1 < a0 or b1 < b0:
+        return None
+    gx, gy = np.meshgrid(np.arange(a0, a1 + 1) * h - ccx, np.arange(b0, b1 + 1) * h - ccy)
+    dmin, dmax, plo, width = square_polar(gx, gy, gx + h, gy + h)
+    radial = (dmax >= r0 - 1e-9) & (dmin <= r1 + 1e-9)
+    s0, span = math.radians(p0), math.radians(p1 - p0)
+    angular = ((width >= TWO_PI) | (span >= TWO_PI - 1e-12)
+               | (np.mod(plo - s0, TWO_PI) <= span + 1e-9) | (np.mod(s0 - plo, TWO_PI) <= width + 1e-9))
+    mask = radial & angular
+    if not mask.any():
+        return None
+    return a0, b0, mask
+
+
+def item_reach(item: Item, tables: dict) -> float:
+    """How far (canvas px) from its anchor any object of the item can put alpha > 0."""
+    return item.pose.max_scale * max(tables[id(s)].rho_max for s in item.sprites)
+
+
+def item_bbox(item: Item, tables: dict) -> tuple[float, float, float, float]:
+    """(x0, y0, x1, y1) canvas px holding every pixel centre the item can cover."""
+    r = item_reach(item, tables) + 1.0
+    if item.position.kind == "rect":
+        x0, x1, y0, y1 = item.position.bounds
+    else:
+        ccx, ccy = item.position.centre
+        r1 = item.position.bounds[1]
+        x0, x1, y0, y1 = ccx - r1, ccx + r1, ccy - r1, ccy + r1
+    return x0 - r, y0 - r, x1 + r, y1 + r
+
+
+def item_mask(item: Item, tables: dict, window: tuple[int, int, int, int], f: int = SUPER) -> np.ndarray:
+    """Conservative footprint envelope of one item on the pixel window (c0, r0, c1, r1),
+    as bool (r1 - r0, c1 - c0): False means no allowed placement covers that pixel.
+    `tables` comes from `make_tables` (it also caches offset masks)."""
+    c0, r0, c1, r1 = window
+    out = np.zeros((max(r1 - r0, 0), max(c1 - c0, 0)), dtype=bool)
+    if out.size == 0:
+        return out
+    h = 1.0 / f
+    key = ("offsets", item.pose, tuple(id(s) for s in item.sprites), f)
+    if key not in tables:  # boxes of one region often share a pose
+        tables[key] = offset_cells([tables[id(s)] for s in item.sprites], item.pose, h)
+    n, k = tables[key]
+    mx = f * np.arange(c0, c1) + (f - 1) // 2  # cell index of each pixel centre
+    my = f * np.arange(r0, r1) + (f - 1) // 2
+    pc = position_cells(item.position, h, (int(mx[0]) - n, int(mx[-1]) + n), (int(my[0]) - n, int(my[-1]) + n))
+    if pc is None:
+        return out
+    a0, b0, pm = pc
+    conv = fftconvolve(pm.astype(np.float64), k.astype(np.float64), mode="full")
+    # conv[j] pairs position cell a0 + i with offset cell k - n where i + k = j: pixel cell m = a0 - n + j
+    jx = mx - a0 + n
+    jy = my - b0 + n
+    okx = (jx >= 0) & (jx < conv.shape[1])
+    oky = (jy >= 0) & (jy < conv.shape[0])
+    sub = conv[np.ix_(jy[oky], jx[okx])] > 0.5
+    out[np.ix_(np.flatnonzero(oky), np.flatnonzero(okx))] = sub
+    return out
+
+
+# ---- stage 3: pixels, by branch and bound --------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Placement:
+    """A concrete placement (renderer parameters) and the sprite it places."""
+
+    sprite: object
+    cx: float
+    cy: float
+    scale: float
+    angle: float  # degrees
+    mirror: bool
+    item: int  # index into the item list it came from
+    alpha: float  # exact bilinear alpha it puts on the pixel
+
+
+@dataclass(frozen=True)
+class Run:
+    """n pixels in a line: (col, row) + k * (dx, dy) for k = 0 .. n - 1."""
+
+    col: int
+    row: int
+    dx: int
+    dy: int
+    n: int
+
+    def pixel(self, k: int) -> tuple[int, int]:
+        return self.col + k * self.dx, self.row + k * self.dy
+
+    def halves(self) -> tuple["Run", "Run"]:
+        m = self.n // 2
+        c, r = self.pixel(m)
+        return Run(self.col, self.row, self.dx, self.dy, m), Run(c, r, self.dx, self.dy, self.n - m)
+
+
+@dataclass(frozen=True)
+class Reach:
+    status: str  # "covered" | "excluded" | "undecided"
+    placement: Placement | None = None
+    pixel: tuple[int, int] | None = None  # the pixel the placement covers
+    boxes: int = 0  # placement boxes evaluated
+
+
+def _initial_boxes(items: list[Item], run: Run, tables: dict):
+    """One box per item, sprite, mirror, scale interval and angle interval: position (rect
+    x0, x1, y0, y1 or sector r0, r1, psi0, psi1 in radians), angle, scale.
+
+    A run is folded into the position: pixel p0 + k d with anchor c covers exactly what
+    pixel p0 with anchor c - k d covers, so the run's positions are the rectangle grown
+    by the run backwards (rectangles only; see `_foldable`)."""
+    px, py = run.col + 0.5, run.row + 0.5
+    span = run.n - 1
+    rows = []
+    for ii, it in enumerate(items):
+        for si, s in enumerate(it.sprites):
+            # only anchors within this distance of the pixel can cover it
+            r = it.pose.max_scale * tables[id(s)].rho_max + 1e-6
+            ps = it.position
+            if ps.kind == "rect":
+                x0, x1, y0, y1 = ps.bounds
+                x0, y0 = x0 - span * run.dx, y0 - span * run.dy
+                x0, x1 = max(x0, px - r), min(x1, px + r)
+                y0, y1 = max(y0, py - r), min(y1, py + r)
+                if x1 < x0 or y1 < y0:
+                    continue
+                pos = (x0, x1, y0, y1)
+            else:
+                if span:
+                    raise ValueError("runs of pixels fold into rectangular position sets only")
+                r0, r1, p0, p1 = ps.bounds
+                d = math.hypot(px - ps.centre[0], py - ps.centre[1])
+                r0, r1 = max(r0, d - r), min(r1, d + r)
+                if r1 < r0:
+                    continue
+                pos = (r0, r1, math.radians(p0), math.radians(p1))
+            for m in it.pose.mirrors:
+                for sa, sb in it.pose.scales:
+                    for a0, a1 in it.pose.angles:
+                        rows.append(((ii, si, ps.kind == "sector", m),
+                                     (pos[0], pos[2], math.radians(a0), sa),
+                                     (pos[1], pos[3], math.radians(a1), sb)))
+    return rows
+
+
+def _foldable(items: list[Item], dx: int, dy: int) -> bool:
+    """Runs along (dx, dy) fold exactly when every position set is a rectangle at least one
+    pixel long that way (then the grown rectangles are unions of the pixels' own sets)."""
+    for it in items:
+        if it.position.kind != "rect":
+            return False
+        x0, x1, y0, y1 = it.position.bounds
+        if (dx and x1 - x0 < 1.0) or (dy and y1 - y0 < 1.0):
+            return False
+    return True
+
+
+def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, tables: dict,
+          max_boxes: int = 400_000, batch: int = 1024) -> Reach:
+    """Does some allowed placement of `items` cover a pixel of `run` (or one pixel (col, row))?
+
+    "covered" comes with a placement and the pixel whose exact alpha exceeds the threshold
+    by WITNESS_MARGIN; "excluded" is a proof that no placement covers any pixel of the run
+    (see the module docstring); "undecided" when the budget runs out first."""
+    if not isinstance(run, Run):
+        run = Run(int(run[0]), int(run[1]), 0, 0, 1)
+    rows = _initial_boxes(items, run, tables)
+    if not rows:
+        return Reach("excluded")
+    t_eff = threshold - ALPHA_SLACK
+    px, py = run.col + 0.5, run.row + 0.5
+    meta = np.array([r[0] for r in rows], dtype=np.int64)  # item, sprite, is_sector, mirror
+    lo = np.array([r[1] for r in rows], dtype=np.float64)  # pos a, pos b, angle, scale
+    hi = np.array([r[2] for r in rows], dtype=np.float64)
+    ccx_all = np.array([it.position.centre[0] for it in items])
+    ccy_all = np.array([it.position.centre[1] for it in items])
+
+    def evaluate(lo, hi, meta):
+        """Centre placement, its alpha, an upper bound of alpha on the box, split terms."""
+        mid, half = (lo + hi) / 2, (hi - lo) / 2
+        sector = meta[:, 2] == 1
+        ccx, ccy = ccx_all[meta[:, 0]], ccy_all[meta[:, 0]]
+        cx = np.where(sector, ccx + mid[:, 0] * np.cos(mid[:, 1]), mid[:, 0])
+        cy = np.where(sector, ccy - mid[:, 0] * np.sin(mid[:, 1]), mid[:, 1])
+        # how far the anchor can be from the box's centre point
+        pos_a = half[:, 0]
+        pos_b = np.where(sector, (mid[:, 0] + half[:, 0]) * half[:, 1], half[:, 1])
+        e_c = np.where(sector, pos_a + pos_b, np.hypot(pos_a, pos_b))
+        zx, zy = px - cx, py - cy
+        th, s = mid[:, 2], mid[:, 3]
+        c, sn = np.cos(th), np.sin(th)
+        wx = (c * zx - sn * zy) / s
+        wy = (sn * zx + c * zy) / s
+        wx = np.where(meta[:, 3] == 1, -wx, wx)
+        zn = np.hypot(zx, zy)
+        s_lo = lo[:, 3]
+        terms = np.stack([pos_a / s_lo, pos_b / s_lo, zn * half[:, 2] / s, zn * (1.0 / s_lo - 1.0 / s)], axis=1)
+        dev = e_c / s_lo + terms[:, 2] + terms[:, 3]
+        alpha = np.zeros(len(lo))
+        upper = alpha + SQRT2 * dev  # the Lipschitz bound
+        rho_out = np.zeros(len(lo))
+        small = dev < 0.5
+        for key in np.unique(meta[:, :2], axis=0):
+            sel = (meta[:, 0] == key[0]) & (meta[:, 1] == key[1])
+            spr = items[key[0]].sprites[key[1]]
+            ax, ay = spr.anchor
+            apad = _apad(spr, tables)
+            alpha[sel] = bilinear(apad, ax + wx[sel], ay + wy[sel])
+            upper[sel] += alpha[sel]
+            rho_out[sel] = tables[id(spr)].rho_max
+            # small boxes: the exact maximum over the square holding the disc of radius dev
+            sq = sel & small
+            if sq.any():
+                upper[sq] = np.minimum(upper[sq], square_max(apad, ax + wx[sq], ay + wy[sq], dev[sq]))
+        # beyond rho_max from the anchor the alpha is exactly zero
+        upper = np.where(np.hypot(wx, wy) - dev > rho_out, 0.0, upper)
+        return cx, cy, th, s, alpha, upper, terms
+
+    def hit(k, cx, cy, th, s, alpha, meta):
+        ii, si = int(meta[k, 0]), int(meta[k, 1])
+        step = 0
+        if run.n > 1:  # unfold: the first pixel of the run whose anchor lands in the true set
+            x0, x1, y0, y1 = items[ii].position.bounds
+            lo_d, c_d = (x0, cx[k]) if run.dx else (y0, cy[k])
+            step = min(max(int(math.ceil(lo_d - c_d - 1e-9)), 0), run.n - 1)
+        pl = Placement(items[ii].sprites[si], float(cx[k]) + step * run.dx, float(cy[k]) + step * run.dy,
+                       float(s[k]), math.degrees(float(th[k])), bool(meta[k, 3]), ii, float(alpha[k]))
+        return Reach("covered", pl, run.pixel(step), total)
+
+    # best first: split the boxes with the largest upper bounds, a batch at a time, so a
+    # covering placement turns up early; excluding needs every box settled either way
+    total = len(lo)
+    cx, cy, th, s, alpha, upper, terms = evaluate(lo, hi, meta)
+    good = alpha > threshold + WITNESS_MARGIN
+    if good.any():
+        return hit(int(np.argmax(np.where(good, alpha, -1.0))), cx, cy, th, s, alpha, meta)
+    keep = upper > t_eff
+    lo, hi, meta, upper, terms = lo[keep], hi[keep], meta[keep], upper[keep], terms[keep]
+    while len(lo):
+        if total >= max_boxes:
+            return Reach("undecided", boxes=total)
+        if len(lo) > batch:
+            take = np.argpartition(-upper, batch)[:batch]
+            rest = np.ones(len(lo), dtype=bool)
+            rest[take] = False
+        else:
+            take, rest = np.arange(len(lo)), np.zeros(len(lo), dtype=bool)
+        blo, bhi, bmeta = lo[take], hi[take], meta[take]
+        # split each box across the dimension that moves u the most
+        dim = np.argmax(terms[take], axis=1)
+        r_ = np.arange(len(blo))
+        m = (blo[r_, dim] + bhi[r_, dim]) / 2
+        lo2, hi2 = blo.copy(), bhi.copy()
+        bhi = bhi.copy()
+        bhi[r_, dim] = m
+        lo2[r_, dim] = m
+        clo, chi, cmeta = np.concatenate([blo, lo2]), np.concatenate([bhi, hi2]), np.concatenate([bmeta, bmeta])
+        total += len(clo)
+        cx, cy, th, s, alpha, cup, cterms = evaluate(clo, chi, cmeta)
+        good = alpha > threshold + WITNESS_MARGIN
+        if good.any():
+            return hit(int(np.argmax(np.where(good, alpha, -1.0))), cx, cy, th, s, alpha, cmeta)
+        keep = cup > t_eff
+        lo = np.concatenate([lo[rest], clo[keep]])
+        hi = np.concatenate([hi[rest], chi[keep]])
+        meta = np.concatenate([meta[rest], cmeta[keep]])
+        upper = np.concatenate([upper[rest], cup[keep]])
+        terms = np.concatenate([terms[rest], cterms[keep]])
+    return Reach("excluded", boxes=total)
+
+
+def _apad(sprite, tables: dict) -> np.ndarray:
+    key = ("apad", id(sprite))
+    if key not in tables:
+        tables[key] = padded_alpha(sprite)
+    return tables[key]
+
+
+# ---- stages 2 and 3 together ----------------------------------------------------------------------
+
+
+@dataclass
+class EnvelopeCheck:
+    """Outcome of comparing two regions' envelopes (placements index the item lists given)."""
+
+    disjoint: bool  # a proof: no pixel is coverable by both
+    candidates: int = 0  # pixels the rasterised envelopes share
+    excluded: int = 0  # of those, pixels one side provably cannot cover
+    undecided: int = 0
+    boxes: int = 0  # placement boxes the branch and bound evaluated
+    pairs: list = field(default_factory=list)  # (pixel, Placement a, Placement b) both covering it
+    accepted: object = None  # what on_pair accepted (a verified witness), if any
+
+
+def make_tables(items_a: list[Item], items_b: list[Item], threshold: float, tol_px: float = BIN_TOL_PX) -> dict:
+    smax = max([it.pose.max_scale for it in items_a + items_b] or [1.0])
+    tables: dict = {}
+    for it in items_a + items_b:
+        for s in it.sprites:
+            if id(s) not in tables:
+                tables[id(s)] = polar_table(s, threshold, smax, tol_px)
+    return tables
+
+
+def _window(items_a, items_b, tables, canvas: Canvas):
+    def bbox(items):
+        b = np.array([item_bbox(it, tables) for it in items])
+        return b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max()
+
+    ax0, ay0, ax1, ay1 = bbox(items_a)
+    bx0, by0, bx1, by1 = bbox(items_b)
+    c0 = max(0, int(math.floor(max(ax0, bx0))))
+    r0 = max(0, int(math.floor(max(ay0, by0))))
+    c1 = min(canvas.width, int(math.ceil(min(ax1, bx1))) + 1)
+    r1 = min(canvas.height, int(math.ceil(min(ay1, by1))) + 1)
+    return c0, r0, max(c1, c0), max(r1, r0)
+
+
+def _runs(mask: np.ndarray, down_ok: bool, across_ok: bool) -> list[tuple[int, int, int, int, int]]:
+    """Maximal straight runs of True pixels, (col, row, dx, dy, n): along columns or along
+    rows (where allowed), whichever gives fewer runs; single pixels when neither is."""
+    def along(m):
+        out = []
+        for j in range(m.shape[1]):
+            col = np.concatenate([[False], m[:, j], [False]]).astype(np.int8)
+            d = np.diff(col)
+            for a, b in zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)):
+                out.append((j, int(a), int(b - a)))
+        return out
+
+    if not (down_ok or across_ok):
+        return [(int(j), int(i), 0, 0, 1) for i, j in zip(*np.nonzero(mask))]
+    down = along(mask) if down_ok else None
+    across = along(mask.T) if across_ok else None
+    if across is None or (down is not None and len(down) <= len(across)):
+        return [(j, a, 0, 1, n) for j, a, n in down]
+    return [(a, j, 1, 0, n) for j, a, n in across]
+
+
+@dataclass
+class _Group:
+    items_a: list
+    items_b: list
+    masks_a: list
+    masks_b: list
+    window: tuple
+
+
+def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, threshold: float, per_class: bool,
+                    on_pair=None, max_boxes: int = 2_000_000, f: int = SUPER,
+                    tol_px: float = BIN_TOL_PX) -> EnvelopeCheck:
+    """Stage 2 (masks) then stage 3 for two regions' items: the shared pixels, in straight
+    runs (deepest first), are settled by branch and bound a run at a time, halving runs
+    that neither side can exclude whole.
+
+    `on_pair(pixel, placement_a, placement_b)` may verify a pair and return a witness; the
+    search stops at the first one it accepts. `max_boxes` bounds the work of stage 3."""
+    tables = make_tables(items_a, items_b, threshold, tol_px)
+    if per_class:
+        pairs = [([i for i in items_a if i.cls == c], [i for i in items_b if i.cls == c])
+                 for c in sorted({i.cls for i in items_a} & {i.cls for i in items_b})]
+    else:
+        pairs = [(items_a, items_b)] if items_a and items_b else []
+    index_a = {id(it): n for n, it in enumerate(items_a)}
+    index_b = {id(it): n for n, it in enumerate(items_b)}
+    out = EnvelopeCheck(disjoint=True)
+    work = []  # (-depth, group, Run)
+    groups = []
+    for ga, gb in pairs:
+        win = _window(ga, gb, tables, canvas)
+        c0, r0, c1, r1 = win
+        if c1 <= c0 or r1 <= r0:
+            continue
+        ma = [item_mask(it, tables, win, f) for it in ga]
+        mb = [item_mask(it, tables, win, f) for it in gb]
+        shared = np.logical_or.reduce(ma) & np.logical_or.reduce(mb)
+        if not shared.any():
+            continue
+        g = _Group(ga, gb, ma, mb, win)
+        groups.append(g)
+        out.candidates += int(shared.sum())
+        depth = cv2.distanceTransform(np.pad(shared, 1).astype(np.uint8), cv2.DIST_L2, 3)[1:-1, 1:-1]
+        runs = _runs(shared, _foldable(ga + gb, 0, 1), _foldable(ga + gb, 1, 0))
+        for col, row, dx, dy, n in runs:
+            ks = np.arange(n)
+            run = Run(col + c0, row + r0, dx, dy, n)
+            work.append((-float(depth[row + ks * dy, col + ks * dx].max()), len(groups) - 1, run))
+    if not work:
+        return out
+    work.sort(key=lambda w: (w[0], w[2].row, w[2].col))
+    budget = [max_boxes]
+
+    def items_on(g: _Group, run: Run, side: str):
+        items, masks = (g.items_a, g.masks_a) if side == "a" else (g.items_b, g.masks_b)
+        c0, r0 = g.window[:2]
+        ks = np.arange(run.n)
+        ys, xs = run.row - r0 + ks * run.dy, run.col - c0 + ks * run.dx
+        keep = [k for k, m in enumerate(masks) if m[ys, xs].any()]
+        return [items[k] for k in keep]
+
+    def run_reach(items, run):
+        if budget[0] <= 0:
+            return Reach("undecided")
+        r = reach(items, run, threshold, tables, max_boxes=min(400_000, budget[0]))
+        budget[0] -= r.boxes
+        out.boxes += r.boxes
+        return r
+
+    def pair(g, sub_a, sub_b, pixel, ra: Reach, rb: Reach):
+        pa = replace(ra.placement, item=index_a[id(sub_a[ra.placement.item])])
+        pb = replace(rb.placement, item=index_b[id(sub_b[rb.placement.item])])
+        out.pairs.append((pixel, pa, pb))
+        if on_pair is not None:
+            w = on_pair(pixel, pa, pb)
+            if w:
+                out.accepted = w
+                return True
+        return False
+
+    def settle(g: _Group, run: Run) -> bool:
+        """Settle every pixel of the run; True when a witness was accepted (stop)."""
+        sub_a, sub_b = items_on(g, run, "a"), items_on(g, run, "b")
+        ra = run_reach(sub_a, run)
+        if ra.status == "excluded":
+            out.excluded += run.n
+            return False
+        rb = run_reach(sub_b, run)
+        if rb.status == "excluded":
+            out.excluded += run.n
+            return False
+        if run.n == 1:
+            if ra.status == "covered" and rb.status == "covered":
+                if pair(g, sub_a, sub_b, run.pixel(0), ra, rb):
+                    return True
+            out.undecided += 1
+            return False
+        # the pixel one side covers is the likeliest witness: try the other side there first
+        for r, known in ((ra, "a"), (rb, "b")):
+            if r.status != "covered":
+                continue
+            one = Run(r.pixel[0], r.pixel[1], 0, 0, 1)
+            here_a, here_b = items_on(g, one, "a"), items_on(g, one, "b")
+            if known == "a":
+                pa, pb = _reindex(r, sub_a, here_a), run_reach(here_b, one)
+            else:
+                pa, pb = run_reach(here_a, one), _reindex(r, sub_b, here_b)
+            if (pa is not None and pb is not None and pa.status == pb.status == "covered"
+                    and pair(g, here_a, here_b, one.pixel(0), pa, pb)):
+                return True
+        first, second = run.halves()
+        return settle(g, first) or settle(g, second)
+
+    for _, gi, run in work:
+        if settle(groups[gi], run):
+            break
+    out.disjoint = out.accepted is None and out.excluded == out.candidates
+    return out
+
+
+def _reindex(r: Reach, old: list, new: list) -> Reach | None:
+    """The reach with its placement indexing `new` instead of `old` (None if not there)."""
+    it = old[r.placement.item]
+    for k, cand in enumerate(new):
+        if cand is it:
+            return replace(r, placement=replace(r.placement, item=k))
+    return None
