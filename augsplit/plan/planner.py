@@ -136,13 +136,15 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
         where = f"guarantees.{gi}"
         ra = _radii(source, seen, unseen, spec.splits[a].instances, spec, classes)
         rb = _radii(source, seen, unseen, spec.splits[b].instances, spec, classes)
-        v = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes)
+        ids = (_instance_ids(seen, unseen, spec.splits[a].instances, spec),
+               _instance_ids(seen, unseen, spec.splits[b].instances, spec))
+        v = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids)
         if not v.ok and g.auto_guard:
             guard = _guard_region(g, space, canvas, regions[a], regions[b], ra, rb)
             before = regions[b].mass()
             regions[b] = regions[b] - guard
             guard_total = guard_total | guard
-            v2 = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes)
+            v2 = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids)
             if not v2.ok:
                 raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
             removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
@@ -236,9 +238,19 @@ def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
     return np.array(out)
 
 
-def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, classes) -> Verdict:
+def _instance_ids(seen, unseen, instances, spec) -> list[list[int]]:
+    """Per class, the instance ids a split may draw (as `_radii` decides)."""
+    mode = instances or ("seen" if spec.objects.unseen_instances else "all")
+    return [list(s) if mode == "seen" else list(u) if mode == "unseen" else list(s) + list(u)
+            for s, u in zip(seen, unseen)]
+
+
+def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, classes,
+           alpha_threshold: float = 0.5, ids=None) -> Verdict:
     if g.disjoint == "parameters":
         return check_parameters(space, A, B, g.margin, g.per_class, g.between)
+    # footprints: (1) the disc bound; on refusal (1b) a quick witness at the closest points,
+    # then (2, 3) rasterised envelopes and an exact per-pixel search (envelope.py)
     gaps = footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)
     t = tightest(gaps)
     if t is None:
@@ -250,26 +262,46 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
         nums["need_deg"] = float(canvas.viewing.offset_to_deg(t.need_px))
     a, b = g.between
     deg = (f" ({nums['gap_deg']:.3g} deg)" if "gap_deg" in nums else "")
+    bound = (f"position gap {t.gap_px:.2f} px{deg} {'>' if t.slack_px > 0 else '<'} {t.need_px:.2f} px needed "
+             f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales)")
     if t.slack_px > 0:
-        return Verdict("footprint", g.between, "proved", g.per_class, nums,
-                       f"position gap {t.gap_px:.2f} px{deg} > {t.need_px:.2f} px needed "
-                       f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales)")
+        nums["stage"] = "disc"
+        return Verdict("footprint", g.between, "proved", g.per_class, nums, bound)
+    from .envelope import check_envelopes, region_items
+    from .witness import find_witness, pair_witness
+
+    ids_a, ids_b = ids if ids is not None else ([s + u for s, u in zip(seen, unseen)],) * 2
     witness = None
     if footprint_at is not None:
-        from .witness import find_witness
-
-        sa = [source.sprite(t.class_a, i) for i in seen[t.class_a] + unseen[t.class_a]]
-        sb = [source.sprite(t.class_b, i) for i in seen[t.class_b] + unseen[t.class_b]]
+        sa = [source.sprite(t.class_a, i) for i in ids_a[t.class_a]]
+        sb = [source.sprite(t.class_b, i) for i in ids_b[t.class_b]]
         witness = find_witness(space, canvas, A, B, t, sa, sb, footprint_at)
+    if witness is None:
+        items_a = region_items(space, canvas, A, {c: [source.sprite(c, i) for i in ids_a[c]] for c in range(len(classes))})
+        items_b = region_items(space, canvas, B, {c: [source.sprite(c, i) for i in ids_b[c]] for c in range(len(classes))})
+        check = pair_witness(space, canvas, A, B, items_a, items_b, footprint_at) if footprint_at is not None else None
+        env = check_envelopes(items_a, items_b, canvas, alpha_threshold, g.per_class, check)
+        nums["envelope"] = {"candidates": env.candidates, "excluded": env.excluded, "undecided": env.undecided,
+                            "boxes": env.boxes}
+        if env.disjoint:
+            nums["stage"] = "envelope"
+            return Verdict("footprint", g.between, "proved", g.per_class, nums,
+                           f"no pixel is coverable by both (by rasterised envelopes; {env.candidates} pixel(s) near "
+                           f"the bound each excluded exactly), although the disc bound does not suffice: {bound}")
+        witness = env.accepted
     nums["witness"] = witness
     status = "overlap" if witness else "unproven"
     nums["status"] = status
-    what = (f"e.g. {witness['a']['class']} in {a} at ({witness['a']['cx_px']:.1f}, {witness['a']['cy_px']:.1f}) px and "
-            f"{witness['b']['class']} in {b} at ({witness['b']['cx_px']:.1f}, {witness['b']['cy_px']:.1f}) px share "
-            f"{witness['shared_px']} pixel(s)") if witness else "no shared pixel was found, but disjointness cannot be proved"
+    if witness:
+        what = (f"e.g. {witness['a']['class']} in {a} at ({witness['a']['cx_px']:.1f}, {witness['a']['cy_px']:.1f}) px and "
+                f"{witness['b']['class']} in {b} at ({witness['b']['cx_px']:.1f}, {witness['b']['cy_px']:.1f}) px share "
+                f"{witness['shared_px']} pixel(s)")
+    else:
+        e = nums.get("envelope", {})
+        what = (f"no shared pixel was found, but disjointness cannot be proved ({e.get('undecided', 0)} of "
+                f"{e.get('candidates', 0)} pixel(s) the rasterised envelopes share stay undecided)")
     return Verdict("footprint", g.between, "refused", g.per_class, nums,
-                   f"footprints of {a} and {b} can meet: position gap {t.gap_px:.2f} px{deg} < {t.need_px:.2f} px needed "
-                   f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales); {what}")
+                   f"footprints of {a} and {b} can meet: {bound}; {what}")
 
 
 def _guard_region(g, space, canvas, A, B, ra, rb) -> Region:
