@@ -271,9 +271,8 @@ def _guard_disk(fn, where: Path):
 
 @functools.lru_cache(maxsize=4)
 def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tuple[Built, Path, Options]:
-    # one OpenCV thread per worker process: the workers are the parallelism, and OpenCV's own
-    # pool on images this small costs CPU that the other workers need (same pixels either way)
-    cv2.setNumThreads(1)
+    # (no cv2.setNumThreads here: in a forked worker it can wait forever on the parent's
+    # OpenCV pool threads, which a fork does not copy -- seen in the benchmark, 1 run in 3)
     opts = json.loads(opts_json)
     if opts.get("array_shard") is not None:
         opts["array_shard"] = tuple(opts["array_shard"])

@@ -188,3 +188,4 @@ def test_shard_jobs_cover_every_index_once():
         for s in built.plan.splits:
             idx = np.concatenate([np.arange(j.start, j.stop) for j in jobs if j.split == s.name])
             assert np.array_equal(idx, np.arange(s.total))
+
