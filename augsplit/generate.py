@@ -402,6 +402,8 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     # connect first: an unreachable scheduler must fail before the output folder is touched
     client, cluster = executors.dask_client(opts.scheduler, opts.workers) if dask else (None, None)
     try:
+        if opts.scheduler:
+            _check_worker_versions(client, opts.scheduler)
         prepare_out(out, built, opts)
         jobs = shard_jobs(built, opts.shard_size)
         if opts.array_shard is not None:
@@ -417,6 +419,23 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         return {"array_shard": list(opts.array_shard), "images": total, "made": total - done_before,
                 "shards": len(jobs)}
     return finalize(out, built)
+
+
+_SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow")  # the libraries that decide output bytes
+
+
+def _check_worker_versions(client, scheduler: str) -> None:
+    """Byte-identical output needs the same libraries on every dask worker as here."""
+    try:
+        theirs = client.run(mf.versions)
+    except Exception as exc:  # noqa: BLE001 - e.g. augsplit not importable on a worker
+        raise DatasetError(f"the dask workers cannot run augsplit: {type(exc).__name__}: {exc}", where=scheduler) from None
+    mine = mf.versions()
+    for worker, v in sorted(theirs.items()):
+        diff = [f"{k} {v.get(k)} (here {mine[k]})" for k in _SAME_EVERYWHERE if v.get(k) != mine[k]]
+        if diff:
+            raise DatasetError(f"worker {worker} runs {', '.join(diff)}; byte-identical output needs the same "
+                               "versions on every worker", where=scheduler)
 
 
 def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, bar) -> None:
