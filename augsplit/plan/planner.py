@@ -285,9 +285,11 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
                             "boxes": env.boxes}
         if env.disjoint:
             nums["stage"] = "envelope"
+            how = ("they share no pixel" if env.candidates == 0 else
+                   f"the {env.candidates} pixel(s) they share were each excluded by an exact search")
             return Verdict("footprint", g.between, "proved", g.per_class, nums,
-                           f"no pixel is coverable by both (by rasterised envelopes; {env.candidates} pixel(s) near "
-                           f"the bound each excluded exactly), although the disc bound does not suffice: {bound}")
+                           f"no pixel is coverable by both (by rasterised envelopes: {how}); the disc bound alone "
+                           f"does not suffice: {bound}")
         witness = env.accepted
     nums["witness"] = witness
     status = "overlap" if witness else "unproven"
