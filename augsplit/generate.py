@@ -183,9 +183,10 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
             if files is not None:
                 files.abort()
             raise
-        # Leaving the stack closes the writers and renames: the distractor part first (entered
+        # Closing the stack closes the writers and renames: the distractor part first (entered
         # later, left earlier), then the manifest part, whose presence is the shard's commit.
-        return _guard_disk(lambda: stack.close(), part) or job.stop - job.start
+        _guard_disk(stack.close, part)
+    return job.stop - job.start
 
 
 def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: Path, opts: Options, files):
