@@ -36,6 +36,8 @@ audit.json (schema "augsplit.audit/1"; keys are stable, new keys may be added):
                          n_leaked_test_rows, n_train_rows_flagged_unseen, leaked[{class, instance}]
     category_overlap     footprint ("bbox"|"mask"), n_same_pairs, n_diff_pairs,
                          mean_iou_same_class_across, mean_iou_diff_class_within, ratio, max_ratio
+    log_regions          (parameter logs against a spec) rows, rows_outside_own_region,
+                         train_rows_inside_held_out_regions, unknown_splits[]
 
 Distances are in normalised units (each axis divided by its range; circular axes the short
 way round). Non-finite numbers are written as null.
