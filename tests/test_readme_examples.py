@@ -1,6 +1,5 @@
-"""The "Use in training" examples run as written: docs/use_in_training.md and, once pasted,
-the README's section of the same name (all python blocks of a section share one namespace,
-as a reader running them in order would)."""
+"""The README's "Use in training" examples run as written (all python blocks of the section
+share one namespace, as a reader running them in order would), and do what they say."""
 
 from __future__ import annotations
 
@@ -62,9 +61,9 @@ def check(out: str) -> None:
     assert "201 training draws, 0 in the held-out region" in out
 
 
-def test_docs_examples_run(tmp_path, monkeypatch, capsys):
+def test_readme_examples_run(tmp_path, monkeypatch, capsys):
     pytest.importorskip("torch")
-    doc = ROOT / "docs" / "use_in_training.md"
+    doc = ROOT / "README.md"
     code = blocks(doc)
     assert len(code) == 3
     monkeypatch.chdir(tmp_path)
@@ -82,14 +81,3 @@ def test_docs_examples_run(tmp_path, monkeypatch, capsys):
     draws = read_log(tmp_path / "draws")
     assert len(draws) == 1024 and set(draws["worker"]) == {0, 1}
     assert sorted(zip(draws["epoch"], draws["item"])) == [(e, i) for e in (0, 1) for i in range(512)]
-
-
-def test_readme_examples_run(tmp_path, monkeypatch, capsys):
-    pytest.importorskip("torch")
-    readme = ROOT / "README.md"
-    code = blocks(readme) if readme.exists() else []
-    if not code:
-        pytest.skip("README.md has no 'Use in training' section yet (docs/use_in_training.md holds it)")
-    monkeypatch.chdir(tmp_path)
-    check(run(code, readme, capsys))
-    run_commands(commands(readme))
