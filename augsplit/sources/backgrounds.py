@@ -76,7 +76,7 @@ class UniformNoise:
 
     def draw(self, rng, height, width, channels):
         field = rng.uniform(self.lo, self.hi, size=(channels if self.per_channel else 1, height, width))
-        return _quantise(_shape_channels(field, channels, self.per_channel))
+        return _shape_channels(_quantise(field), channels, self.per_channel)
 
     def __repr__(self) -> str:
         return f"UniformNoise(lo={self.lo}, hi={self.hi}, per_channel={self.per_channel})"
@@ -93,7 +93,7 @@ class GaussianNoise:
 
     def draw(self, rng, height, width, channels):
         field = rng.normal(self.mean, self.sd, size=(channels if self.per_channel else 1, height, width))
-        return _quantise(_shape_channels(field, channels, self.per_channel))
+        return _shape_channels(_quantise(field), channels, self.per_channel)
 
     def __repr__(self) -> str:
         return f"GaussianNoise(mean={self.mean}, sd={self.sd}, per_channel={self.per_channel})"
@@ -139,7 +139,7 @@ class PinkNoise:
 
     def draw(self, rng, height, width, channels):
         field = self.field(rng, height, width, channels if self.per_channel else 1)
-        return _quantise(_shape_channels(field, channels, self.per_channel))
+        return _shape_channels(_quantise(field), channels, self.per_channel)
 
     def __repr__(self) -> str:
         return (f"PinkNoise(mean={self.mean}, contrast={self.contrast}, exponent={self.exponent}, "
