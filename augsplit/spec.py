@@ -153,6 +153,7 @@ class SplitSpec(Model):
     classes: list[str] | None = None
     role: Literal["train", "test"] | None = None
     kind: Literal["random", "interpolation", "extrapolation", "composition"] | None = None
+    stratify: bool = False  # every region cell (disjoint box) of a class gets an equal share of its images
 
     @model_validator(mode="after")
     def _one_count(self):

@@ -157,3 +157,19 @@ def test_keep_inside_with_no_room_names_the_class():
                                axes={"x": {"range": [0, 12]}},
                                splits={"train": {"per_class": 1}}))
     assert "keep_inside leaves no legal position for class 'P3-0" in str(e.value)
+
+
+def test_stratified_split_fills_every_cell_equally():
+    # unequal cells: a 1x3 grid picking cells of different widths after a minus
+    p = plan_of(splits={"train": {"region": {"x": [0, 64], "minus": {"x": [8, 40]}}, "per_class": 30, "stratify": True},
+                        "plain": {"region": {"x": [0, 64], "minus": {"x": [8, 40]}}, "per_class": 3000}})
+    tr = p.split("train")
+    cols = draw(p, tr, np.arange(tr.total))
+    counts = np.bincount(cols["cell"], minlength=tr.region.nbox)
+    assert tr.region.nbox == 2 and counts.tolist() == [30, 30]  # 15 per class per cell
+    pts = {"x": cols["x"], "y": cols["y"], "class": cols["class_index"]}
+    assert tr.region.contains(pts).all()
+    # without stratification the cells fill in proportion to their mass (8 px vs 24 px wide)
+    pl = p.split("plain")
+    share = np.bincount(draw(p, pl, np.arange(pl.total))["cell"]) / pl.total
+    assert share[0] == pytest.approx(8 / 32, abs=0.03)

@@ -69,7 +69,23 @@ def draw(plan: Plan, split: SplitPlan | str, indices) -> dict[str, np.ndarray]:
         ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
         inst[rows] = ids[(idx[rows] - starts[c]) % len(ids)]
     u = image_uniforms(plan.spec.seed, split.index, idx, plan.space.ndim + 1)
+    if split.stratify:
+        u = _stratified(split, idx, cls, starts, u)
     return _columns(plan, split, idx, cls, inst, u)
+
+
+def _stratified(split: SplitPlan, idx, cls, starts, u) -> np.ndarray:
+    """Image j of a class's block goes to cell j mod (number of cells): the box-picking uniform
+    is replaced by the middle of that cell's share of the cumulative mass."""
+    u = u.copy()
+    for c in np.unique(cls):
+        rows = np.flatnonzero(cls == c)
+        region = split.class_region(int(c))
+        cum = np.concatenate([[0.0], np.cumsum(region.box_masses())])
+        cum /= cum[-1]
+        k = (idx[rows] - starts[c]) % region.nbox
+        u[rows, 0] = (cum[k] + cum[k + 1]) / 2.0
+    return u
 
 
 def draw_online(plan: Plan, split: SplitPlan | str, u: np.ndarray, indices=None) -> dict[str, np.ndarray]:

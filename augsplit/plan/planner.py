@@ -38,6 +38,7 @@ class SplitPlan:
     counts: tuple[int, ...]  # images per class index (0 where the class is not in the split)
     instances: str  # "seen" | "unseen" | "all"
     evidence: dict = field(default_factory=dict, compare=False)
+    stratify: bool = False  # images spread evenly over the region's cells instead of by mass
 
     def __post_init__(self):
         parts = tuple(self.region.restrict(CLASS, c - 0.5, c + 0.5) for c in range(len(self.counts)))
@@ -178,7 +179,7 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
         instances = s.instances or ("seen" if any(unseen) else "all")
         if instances == "unseen" and not any(unseen):
             raise SpecError("no instances are held out (set objects.unseen_instances)", where=f"splits.{name}.instances")
-        splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence))
+        splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
     return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
                 tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
