@@ -23,6 +23,7 @@ from scipy import stats
 from scipy.spatial import cKDTree
 
 from augsplit.errors import DatasetError
+from augsplit.io import plain
 from augsplit.manifest import UNITS
 
 PREDICTED = "predicted"  # class name or index, resolved against the manifest
@@ -869,7 +870,7 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     if several:
         doc = {"models": doc, "comparison": _records(compare(results[0][1], results[1][1],
                                                               (results[0][0], results[1][0])))}
-    written["score.json"] = _atomic_write(out / "score.json", json.dumps(_jsonable(doc), indent=2, allow_nan=False))
+    written["score.json"] = _atomic_write(out / "score.json", json.dumps(plain(doc), indent=2, allow_nan=False))
     for label, r in results:
         for name, t in r.tables().items():
             stem = f"{label}_{name}" if several else name
@@ -1115,21 +1116,7 @@ def _atomic_write(path: Path, text: str) -> Path:
 
 
 def _records(t: pd.DataFrame) -> list[dict]:
-    return _jsonable(t.to_dict(orient="records"))
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.bool_, bool)):
-        return bool(obj)
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if np.isfinite(obj) else None
-    return obj
+    return plain(t.to_dict(orient="records"))
 
 
 def _few(items, n: int = 5) -> str:

@@ -56,6 +56,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ..io import plain
 from .result import AuditResult, CheckResult
 
 SCHEMA = "augsplit.audit/1"
@@ -72,32 +73,10 @@ _HEADLINE = {  # the one number the terminal table shows per check
 
 # ---- JSON ---------------------------------------------------------------------------------
 
-def _plain(v):
-    """Numbers, arrays and frames -> JSON values (NaN/inf -> None)."""
-    if isinstance(v, dict):
-        return {str(k): _plain(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_plain(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return [_plain(x) for x in v.tolist()]
-    if isinstance(v, (np.bool_, bool)):
-        return bool(v)
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        f = float(v)
-        return f if math.isfinite(f) else None
-    if v is None or isinstance(v, (int, str)):
-        return v
-    if v is pd.NA or v is pd.NaT:
-        return None
-    return str(v)
-
-
 def _check_dict(c: CheckResult) -> dict:
-    worst = [] if c.worst is None else [_plain(r) for r in c.worst.to_dict(orient="records")]
+    worst = [] if c.worst is None else [plain(r) for r in c.worst.to_dict(orient="records")]
     return {"name": c.name, "pair": list(c.pair) if c.pair else None, "key": c.key, "verdict": c.verdict,
-            "detail": c.detail, "numbers": _plain(c.numbers), "worst": worst}
+            "detail": c.detail, "numbers": plain(c.numbers), "worst": worst}
 
 
 def to_json(result: AuditResult) -> dict:
@@ -107,7 +86,7 @@ def to_json(result: AuditResult) -> dict:
         "verdict": result.verdict,
         "exit_code": result.exit_code,
         "pairs": [list(p) for p in result.pairs],
-        "inputs": _plain(result.inputs),
+        "inputs": plain(result.inputs),
         "checks": [_check_dict(c) for c in result.checks],
         "skipped": [{"name": s.name, "pair": list(s.pair) if s.pair else None, "reason": s.reason} for s in result.skipped],
     }
@@ -283,7 +262,7 @@ def write_html(result: AuditResult, path) -> Path:
         parts.append(_thumbs(c))
         parts.append(_table(c.worst))
         parts.append("<details><summary>numbers</summary><pre>"
-                     + html.escape(json.dumps(_plain(c.numbers), indent=1)) + "</pre></details>")
+                     + html.escape(json.dumps(plain(c.numbers), indent=1)) + "</pre></details>")
     style = ("body{font-family:sans-serif;margin:2em;max-width:1100px} td,th{padding:2px 8px;text-align:left}"
              " .pass{color:#227733} .warn{color:#aa7700} .fail{color:#bb2222;font-weight:bold}"
              " table.worst{font-size:12px} img{max-width:100%}")

@@ -2,11 +2,8 @@
 
 from __future__ import annotations
 
-import math
-
-import numpy as np
-
 from ..space.axes import LEVELS
+from ..io import plain
 from .kinds import projection
 from .planner import Plan, SplitPlan
 from .regions import CLASS
@@ -46,19 +43,6 @@ def split_data(plan: Plan, s: SplitPlan) -> dict:
         out["evidence"] = {"shared_mass_fraction": s.evidence.get("shared_mass_fraction"),
                            "unseen": {n: [_interval(space[n], a, b) for a, b in ivs] for n, ivs in s.evidence.get("unseen", {}).items()}}
     return out
-
-
-def plain(v):
-    """Numpy scalars -> Python, non-finite floats -> None, recursively (JSON-safe)."""
-    if isinstance(v, dict):
-        return {str(k): plain(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [plain(x) for x in v]
-    if isinstance(v, np.generic):
-        v = v.item()
-    if isinstance(v, float) and not math.isfinite(v):
-        return None
-    return v
 
 
 def plan_data(plan: Plan) -> dict:
