@@ -148,7 +148,7 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
             known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
             if key in BUILTIN:
                 raise SpecError(f"axis '{key}' is not among the spec's axes ({', '.join(n for n in space.names if n != CLASS)})", where=sub,
-                                hint=f"add it under axes: to vary it")
+                                hint="add it under axes: to vary it")
             hint = _hint(key, known)
             raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
     if "minus" in node:

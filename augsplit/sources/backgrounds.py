@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import SourceError, SpecError
 from .base import LUMA_BT601
-from .folder import IMAGE_SUFFIXES, is_hidden, read_image, to_rgb
+from .folder import is_hidden, read_image, to_rgb
 
 
 def _unit(value, where: str) -> float:
