@@ -40,6 +40,7 @@ EXECUTORS = executors.EXECUTORS
 ROW_GROUP_ROWS = 1024
 ROW_GROUP_BYTES = 32 << 20
 WRITER_THREADS = 2  # image files are written by threads while the next image renders
+WRITE_BATCH = 16  # files per thread task
 WRITES_IN_FLIGHT = 64
 
 
@@ -116,29 +117,35 @@ def rows_per_group(built: Built, opts: Options) -> int:
 
 class _FileWriter:
     """Atomic image-file writes on a few threads, so file-system latency overlaps rendering.
-    At most WRITES_IN_FLIGHT encoded images wait in memory; `close` re-raises the first error."""
+    Files go to the threads in batches (a future per file costs more than a fast write); at
+    most WRITES_IN_FLIGHT encoded images wait in memory; `close` re-raises the first error."""
 
     def __init__(self):
         self._pool = ThreadPoolExecutor(WRITER_THREADS, thread_name_prefix="augsplit-write")
-        self._slots = BoundedSemaphore(WRITES_IN_FLIGHT)
+        self._slots = BoundedSemaphore(WRITES_IN_FLIGHT // WRITE_BATCH)
         self._futures = []
+        self._batch: list[tuple[Path, bytes]] = []
 
     def write(self, path: Path, data: bytes) -> None:
-        self._slots.acquire()
-        fut = self._pool.submit(_write_file, path, data)
-        fut.add_done_callback(lambda _f: self._slots.release())
-        self._futures.append(fut)
-        if len(self._futures) >= 4 * WRITES_IN_FLIGHT:
-            self._futures = [f for f in self._futures if not f.done() or f.exception() is not None]
-            self._raise_first()
+        self._batch.append((path, data))
+        if len(self._batch) >= WRITE_BATCH:
+            self._flush()
 
-    def _raise_first(self) -> None:
+    def _flush(self) -> None:
+        if not self._batch:
+            return
+        self._slots.acquire()
+        fut = self._pool.submit(_write_files, self._batch)
+        fut.add_done_callback(lambda _f: self._slots.release())
+        self._batch = []
+        self._futures = [f for f in self._futures if not f.done() or f.exception() is not None] + [fut]
         for f in self._futures:
             if f.done() and f.exception() is not None:
                 raise f.exception()
 
     def close(self) -> None:
-        """Wait for every write; raise the first failure."""
+        """Write what is left, wait for every write; raise the first failure."""
+        self._flush()
         self._pool.shutdown(wait=True)
         for f in self._futures:
             f.result()
@@ -243,6 +250,11 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
 
 def _write_file(path: Path, data: bytes) -> None:
     _guard_disk(lambda: write_bytes_atomic(path, data), path)
+
+
+def _write_files(batch: list[tuple[Path, bytes]]) -> None:
+    for path, data in batch:
+        _write_file(path, data)
 
 
 # errno values that mean "the storage cannot take more", whatever the file
