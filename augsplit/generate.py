@@ -284,9 +284,12 @@ def _guard_disk(fn, where: Path):
 
 @functools.lru_cache(maxsize=4)
 def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tuple[Built, Path, Options]:
-    # (no cv2.setNumThreads here: in a forked worker it can wait forever on the parent's
-    # OpenCV pool threads, which a fork does not copy -- seen in the benchmark, 1 run in 3)
     opts = json.loads(opts_json)
+    # One OpenCV thread, as in the driver. A pool worker forked from the driver inherits it,
+    # and must not touch OpenCV's pool: that can wait forever on parent threads a fork does
+    # not copy (seen in the benchmark). A dask worker is a fresh process and sets it.
+    if opts.get("executor") == "dask" or opts.get("scheduler"):
+        cv2.setNumThreads(1)
     if opts.get("array_shard") is not None:
         opts["array_shard"] = tuple(opts["array_shard"])
     return build(parse_spec(json.loads(spec_json)), Path(base_dir)), Path(out), Options(**opts)
@@ -414,6 +417,11 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     dask = opts.executor == "dask" or bool(opts.scheduler)
     # connect first: an unreachable scheduler must fail before the output folder is touched
     client, cluster = executors.dask_client(opts.scheduler, opts.workers) if dask else (None, None)
+    # OpenCV's own thread pool gains nothing on per-object boxes this small but spins a second
+    # core (measured: 2x the CPU per image, same wall time); pool workers forked from here
+    # inherit the setting. Same pixels either way. Restored when the run ends.
+    cv_threads = cv2.getNumThreads()
+    cv2.setNumThreads(1)
     try:
         if opts.scheduler:
             _check_worker_versions(client, opts.scheduler)
@@ -426,6 +434,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         done_before = total - sum(j.stop - j.start for j in todo)
         _run(built, todo, out, opts, client, _progress(total, done_before, opts.progress))
     finally:
+        cv2.setNumThreads(cv_threads)
         if client is not None:
             executors.close_dask(client, cluster)
     if opts.array_shard is not None:
