@@ -32,13 +32,15 @@ Why this is a proof (a pixel left out of a mask is covered by no allowed placeme
 * Stage 3 works on boxes of placements (anchor c, angle th, scale s) for one pixel p:
   over a box, u stays within D = |c - c0|/s_lo + |z0| ((1/s_lo - 1/s0) + dth/s0) of its
   value u0 at the box centre (z0 = p - c0; |R(a) - R(b)| <= |a - b|, and 1/s - 1/s0 is
-  largest at s_lo), so a(u) <= min(a(u0) + sqrt(2) D, max of a on the square u0 +- D)
-  (the latter exact: bilinear is linear along each axis inside a source cell, so its
-  maximum sits where the square's edges and the grid lines cross), and a = 0 once
-  |u0 - anchor| - D exceeds the alpha radius. Boxes whose bound stays <= t' are dropped
-  (best first, largest bound first); a box centre with a(u0) > t + WITNESS_MARGIN is a real
-  placement covering p. It settles a pixel unless the best alpha there is within a hair
-  of t (or the budget runs out: "undecided").
+  largest at s_lo), so a(u) is at most each of: a(u0) + sqrt(2) D; the largest alpha of
+  the source cells the square u0 +- D touches (bilinear is a convex combination of a
+  cell's corners; a sparse table answers it); for D < 1/2 the exact maximum on that
+  square (bilinear is linear along each axis inside a cell, so it peaks where the square's
+  edges and the grid lines cross); and 0 once |u0 - anchor| - D exceeds the alpha radius.
+  Boxes whose bound stays <= t' are dropped (largest bound first); a box centre with
+  a(u0) > t + WITNESS_MARGIN is a real placement covering p. A pixel whose best alpha is
+  pinned within TIE_BAND of t cannot be settled by bounds (only the renderer's rounding
+  decides it): it stays "undecided", and its best placement is rendered to find out.
 * A run of pixels p0 + k d (k < n) folds into one problem: p0 + k d with anchor c is p0
   with anchor c - k d, so its positions are the set grown by the run. For a rectangle at
   least one pixel long along d this is exact both ways (an anchor of the grown set maps
@@ -64,12 +66,18 @@ CLASS = "class"
 TWO_PI = 2.0 * math.pi
 SQRT2 = math.sqrt(2.0)
 # Largest difference between the renderer's warped alpha and exact float64 bilinear
-# interpolation. OpenCV 5 warps four-channel float images without snapping coordinates
-# (measured below 2e-6; test_envelope re-measures it); older builds snap sample positions to
-# 1/32 px (INTER_BITS = 5, from memory), which moves alpha by at most 2/32 (|dx| + |dy| bound).
-ALPHA_SLACK = 1e-3 if int(cv2.__version__.split(".")[0]) >= 5 else 1.0 / 16.0 + 1e-3
+# interpolation. OpenCV 5 warps four-channel float images without snapping coordinates and
+# the renderer warps into the object's own box, so coordinates stay patch-sized (measured
+# below 2e-6; test_envelope re-measures it against this bound); older builds snap sample
+# positions to 1/32 px (INTER_BITS = 5, from memory), which moves alpha by up to 2/32.
+ALPHA_SLACK = 1e-4 if int(cv2.__version__.split(".")[0]) >= 5 else 1.0 / 16.0 + 1e-4
 # A stage-3 witness must beat the threshold by this much, so the renderer agrees with it.
-WITNESS_MARGIN = 1e-3
+WITNESS_MARGIN = 2e-4
+# Placement boxes searched for a clear witness once one within ALPHA_SLACK of the threshold
+# shows that the pixel cannot be excluded; and the band about the threshold within which a
+# pixel whose best alpha is pinned down (best found and bound both inside) stays undecided.
+TIE_BOXES = 20_000
+TIE_BAND = 5 * ALPHA_SLACK
 SUPER = 5  # cells per pixel side on the super-sampled grid (odd: pixel centres are cell centres)
 BIN_TOL_PX = 0.15  # log-polar bin size at the object's rim, in canvas px at the largest scale
 MAX_BINS = 3_000_000
@@ -183,6 +191,46 @@ def square_max(apad: np.ndarray, x: np.ndarray, y: np.ndarray, d: np.ndarray) ->
         for yv in ys:
             best = np.maximum(best, bilinear(apad, xv, yv))
     return np.where(d < 0.5, best, np.inf)
+
+
+class NodeMax:
+    """Largest alpha on any square [x - d, x + d] x [y - d, y + d], bounded from above by the
+    largest grid value of the source cells it touches (bilinear interpolation is a convex
+    combination of a cell's corner values): a 2-D sparse table answers each in O(1)."""
+
+    def __init__(self, apad: np.ndarray):
+        h, w = apad.shape
+        ky, kx = max(1, int(h).bit_length()), max(1, int(w).bit_length())
+        st = np.zeros((ky, kx, h, w))
+        st[0, 0] = apad
+        for j in range(1, kx):
+            step = 1 << (j - 1)
+            st[0, j, :, : w - step] = np.maximum(st[0, j - 1, :, : w - step], st[0, j - 1, :, step:])
+        for i in range(1, ky):
+            step = 1 << (i - 1)
+            st[i, :, : h - step] = np.maximum(st[i - 1, :, : h - step], st[i - 1, :, step:])
+        self.st, self.h, self.w = st, h, w
+
+    def __call__(self, x: np.ndarray, y: np.ndarray, d: np.ndarray) -> np.ndarray:
+        ix, iy = x + 0.5, y + 0.5  # padded index coordinates
+        # cells [i, i+1] meeting the square have corner nodes in [ceil(ix - d) - 1, floor(ix + d) + 1]
+        c0 = np.ceil(ix - d) - 1
+        c1 = np.floor(ix + d) + 1
+        r0 = np.ceil(iy - d) - 1
+        r1 = np.floor(iy + d) + 1
+        outside = (c1 < 0) | (r1 < 0) | (c0 > self.w - 1) | (r0 > self.h - 1)
+        c0 = np.clip(c0, 0, self.w - 1).astype(np.intp)
+        c1 = np.clip(c1, 0, self.w - 1).astype(np.intp)
+        r0 = np.clip(r0, 0, self.h - 1).astype(np.intp)
+        r1 = np.clip(r1, 0, self.h - 1).astype(np.intp)
+        kx = np.floor(np.log2(c1 - c0 + 1)).astype(np.intp)
+        ky = np.floor(np.log2(r1 - r0 + 1)).astype(np.intp)
+        c2 = c1 - (1 << kx) + 1
+        r2 = r1 - (1 << ky) + 1
+        st = self.st
+        m = np.maximum(np.maximum(st[ky, kx, r0, c0], st[ky, kx, r0, c2]),
+                       np.maximum(st[ky, kx, r2, c0], st[ky, kx, r2, c2]))
+        return np.where(outside, 0.0, m)
 
 
 def alpha_radius(sprite) -> float:
@@ -459,8 +507,10 @@ class Run:
 @dataclass(frozen=True)
 class Reach:
     status: str  # "covered" | "excluded" | "undecided"
+    # covered: a placement covering `pixel`; undecided: perhaps one whose alpha there is
+    # within the renderer's rounding of the threshold (only rendering can tell)
     placement: Placement | None = None
-    pixel: tuple[int, int] | None = None  # the pixel the placement covers
+    pixel: tuple[int, int] | None = None
     boxes: int = 0  # placement boxes evaluated
 
 
@@ -518,7 +568,7 @@ def _foldable(items: list[Item], dx: int, dy: int) -> bool:
 
 
 def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, tables: dict,
-          max_boxes: int = 400_000, batch: int = 1024) -> Reach:
+          max_boxes: int = 1_000_000, batch: int = 1024) -> Reach:
     """Does some allowed placement of `items` cover a pixel of `run` (or one pixel (col, row))?
 
     "covered" comes with a placement and the pixel whose exact alpha exceeds the threshold
@@ -532,6 +582,7 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
     t_eff = threshold - ALPHA_SLACK
     px, py = run.col + 0.5, run.row + 0.5
     meta = np.array([r[0] for r in rows], dtype=np.int64)  # item, sprite, is_sector, mirror
+    combos = np.unique(meta[:, :2], axis=0)  # (item, sprite) pairs, few: evaluated group by group
     lo = np.array([r[1] for r in rows], dtype=np.float64)  # pos a, pos b, angle, scale
     hi = np.array([r[2] for r in rows], dtype=np.float64)
     ccx_all = np.array([it.position.centre[0] for it in items])
@@ -562,23 +613,30 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
         upper = alpha + SQRT2 * dev  # the Lipschitz bound
         rho_out = np.zeros(len(lo))
         small = dev < 0.5
-        for key in np.unique(meta[:, :2], axis=0):
+        for key in combos:
             sel = (meta[:, 0] == key[0]) & (meta[:, 1] == key[1])
+            if not sel.any():
+                continue
             spr = items[key[0]].sprites[key[1]]
             ax, ay = spr.anchor
             apad = _apad(spr, tables)
             alpha[sel] = bilinear(apad, ax + wx[sel], ay + wy[sel])
             upper[sel] += alpha[sel]
             rho_out[sel] = tables[id(spr)].rho_max
-            # small boxes: the exact maximum over the square holding the disc of radius dev
-            sq = sel & small
+            # where the Lipschitz bound cannot drop the box: the largest alpha of the source
+            # cells the square holding the disc of radius dev touches, and for small boxes
+            # the exact maximum over that square
+            big = sel & (upper > t_eff)
+            if big.any():
+                upper[big] = np.minimum(upper[big], _nodemax(spr, tables)(ax + wx[big], ay + wy[big], dev[big]))
+            sq = sel & small & (upper > t_eff)
             if sq.any():
                 upper[sq] = np.minimum(upper[sq], square_max(apad, ax + wx[sq], ay + wy[sq], dev[sq]))
         # beyond rho_max from the anchor the alpha is exactly zero
         upper = np.where(np.hypot(wx, wy) - dev > rho_out, 0.0, upper)
         return cx, cy, th, s, alpha, upper, terms
 
-    def hit(k, cx, cy, th, s, alpha, meta):
+    def placement(k, cx, cy, th, s, alpha, meta):
         ii, si = int(meta[k, 0]), int(meta[k, 1])
         step = 0
         if run.n > 1:  # unfold: the first pixel of the run whose anchor lands in the true set
@@ -587,48 +645,69 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
             step = min(max(int(math.ceil(lo_d - c_d - 1e-9)), 0), run.n - 1)
         pl = Placement(items[ii].sprites[si], float(cx[k]) + step * run.dx, float(cy[k]) + step * run.dy,
                        float(s[k]), math.degrees(float(th[k])), bool(meta[k, 3]), ii, float(alpha[k]))
-        return Reach("covered", pl, run.pixel(step), total)
+        return pl, run.pixel(step)
 
     # best first: split the boxes with the largest upper bounds, a batch at a time, so a
     # covering placement turns up early; excluding needs every box settled either way
-    total = len(lo)
-    cx, cy, th, s, alpha, upper, terms = evaluate(lo, hi, meta)
-    good = alpha > threshold + WITNESS_MARGIN
-    if good.any():
-        return hit(int(np.argmax(np.where(good, alpha, -1.0))), cx, cy, th, s, alpha, meta)
-    keep = upper > t_eff
-    lo, hi, meta, upper, terms = lo[keep], hi[keep], meta[keep], upper[keep], terms[keep]
-    while len(lo):
-        if total >= max_boxes:
-            return Reach("undecided", boxes=total)
-        if len(lo) > batch:
-            take = np.argpartition(-upper, batch)[:batch]
-            rest = np.ones(len(lo), dtype=bool)
-            rest[take] = False
+    total = 0
+    best = None  # (alpha, placement, pixel): the best placement seen
+    pool = None
+    clo, chi, cmeta = lo, hi, meta
+    while True:
+        total += len(clo)
+        cx, cy, th, s, alpha, cup, cterms = evaluate(clo, chi, cmeta)
+        k = int(np.argmax(alpha))
+        if best is None or alpha[k] > best[0]:
+            best = (float(alpha[k]),) + placement(k, cx, cy, th, s, alpha, cmeta)
+            if best[0] > threshold + WITNESS_MARGIN:
+                return Reach("covered", best[1], best[2], total)
+            if best[0] > t_eff:
+                # a placement within the renderer's rounding of the threshold: no proof can
+                # exclude the pixel, so look a little further for a clear one, then report it
+                # (its rendering decides)
+                max_boxes = min(max_boxes, total + TIE_BOXES)
+        keep = cup > t_eff
+        if pool is None:
+            lo, hi, meta, upper, terms = clo[keep], chi[keep], cmeta[keep], cup[keep], cterms[keep]
         else:
-            take, rest = np.arange(len(lo)), np.zeros(len(lo), dtype=bool)
-        blo, bhi, bmeta = lo[take], hi[take], meta[take]
+            lo = np.concatenate([lo[pool], clo[keep]])
+            hi = np.concatenate([hi[pool], chi[keep]])
+            meta = np.concatenate([meta[pool], cmeta[keep]])
+            upper = np.concatenate([upper[pool], cup[keep]])
+            terms = np.concatenate([terms[pool], cterms[keep]])
+        if not len(lo):
+            return Reach("excluded", boxes=total)
+        near = best[0] > threshold - TIE_BAND and upper.max() < threshold + TIE_BAND
+        if total >= max_boxes or near:
+            # out of budget, or the best alpha here is pinned within TIE_BAND of the threshold
+            # (settling it would take ever smaller boxes): report the best placement if it is
+            # close enough for the renderer to decide
+            marginal = best[0] > threshold - TIE_BAND
+            return Reach("undecided", best[1] if marginal else None, best[2] if marginal else None, total)
+        # a batch that grows with the pool keeps the bookkeeping linear in the boxes evaluated
+        size = max(batch, len(lo) // 2)
+        if len(lo) > size:
+            take = np.argpartition(-upper, size)[:size]
+            pool = np.ones(len(lo), dtype=bool)
+            pool[take] = False
+        else:
+            take, pool = np.arange(len(lo)), np.zeros(len(lo), dtype=bool)
+        blo, bhi, bmeta = lo[take], hi[take].copy(), meta[take]
         # split each box across the dimension that moves u the most
         dim = np.argmax(terms[take], axis=1)
         r_ = np.arange(len(blo))
         m = (blo[r_, dim] + bhi[r_, dim]) / 2
         lo2, hi2 = blo.copy(), bhi.copy()
-        bhi = bhi.copy()
         bhi[r_, dim] = m
         lo2[r_, dim] = m
         clo, chi, cmeta = np.concatenate([blo, lo2]), np.concatenate([bhi, hi2]), np.concatenate([bmeta, bmeta])
-        total += len(clo)
-        cx, cy, th, s, alpha, cup, cterms = evaluate(clo, chi, cmeta)
-        good = alpha > threshold + WITNESS_MARGIN
-        if good.any():
-            return hit(int(np.argmax(np.where(good, alpha, -1.0))), cx, cy, th, s, alpha, cmeta)
-        keep = cup > t_eff
-        lo = np.concatenate([lo[rest], clo[keep]])
-        hi = np.concatenate([hi[rest], chi[keep]])
-        meta = np.concatenate([meta[rest], cmeta[keep]])
-        upper = np.concatenate([upper[rest], cup[keep]])
-        terms = np.concatenate([terms[rest], cterms[keep]])
-    return Reach("excluded", boxes=total)
+
+
+def _nodemax(sprite, tables: dict) -> NodeMax:
+    key = ("nodemax", id(sprite))
+    if key not in tables:
+        tables[key] = NodeMax(_apad(sprite, tables))
+    return tables[key]
 
 
 def _apad(sprite, tables: dict) -> np.ndarray:
@@ -709,7 +788,7 @@ class _Group:
 
 
 def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, threshold: float, per_class: bool,
-                    on_pair=None, max_boxes: int = 2_000_000, f: int = SUPER,
+                    on_pair=None, max_boxes: int = 4_000_000, f: int = SUPER,
                     tol_px: float = BIN_TOL_PX) -> EnvelopeCheck:
     """Stage 2 (masks) then stage 3 for two regions' items: the shared pixels, in straight
     runs (deepest first), are settled by branch and bound a run at a time, halving runs
@@ -760,12 +839,22 @@ def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, th
         keep = [k for k, m in enumerate(masks) if m[ys, xs].any()]
         return [items[k] for k in keep]
 
+    memo: dict = {}
+
     def run_reach(items, run):
+        key = (tuple(map(id, items)), run)  # halving and the witness shortcut revisit pixels
+        if key in memo:
+            return memo[key]
         if budget[0] <= 0:
             return Reach("undecided")
-        r = reach(items, run, threshold, tables, max_boxes=min(400_000, budget[0]))
+        r = reach(items, run, threshold, tables, max_boxes=min(max_boxes // 4, budget[0]))
         budget[0] -= r.boxes
         out.boxes += r.boxes
+        if r.status == "undecided" and r.placement is not None:
+            # alpha within the renderer's rounding of the threshold: no proof can follow, so
+            # keep only a little budget to look for a witness
+            budget[0] = min(budget[0], max_boxes // 8)
+        memo[key] = r
         return r
 
     def pair(g, sub_a, sub_b, pixel, ra: Reach, rb: Reach):
@@ -791,14 +880,15 @@ def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, th
             out.excluded += run.n
             return False
         if run.n == 1:
-            if ra.status == "covered" and rb.status == "covered":
+            if ra.placement is not None and rb.placement is not None:
                 if pair(g, sub_a, sub_b, run.pixel(0), ra, rb):
                     return True
             out.undecided += 1
+            budget[0] = min(budget[0], max_boxes // 8)  # no proof can follow now
             return False
         # the pixel one side covers is the likeliest witness: try the other side there first
         for r, known in ((ra, "a"), (rb, "b")):
-            if r.status != "covered":
+            if r.placement is None:
                 continue
             one = Run(r.pixel[0], r.pixel[1], 0, 0, 1)
             here_a, here_b = items_on(g, one, "a"), items_on(g, one, "b")
@@ -806,7 +896,7 @@ def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, th
                 pa, pb = _reindex(r, sub_a, here_a), run_reach(here_b, one)
             else:
                 pa, pb = run_reach(here_a, one), _reindex(r, sub_b, here_b)
-            if (pa is not None and pb is not None and pa.status == pb.status == "covered"
+            if (pa is not None and pb is not None and pa.placement is not None and pb.placement is not None
                     and pair(g, here_a, here_b, one.pixel(0), pa, pb)):
                 return True
         first, second = run.halves()
