@@ -17,7 +17,7 @@ from .errors import DatasetError
 from .generate import decode, open_dataset_spec
 from .scene import make_scene, pixel_sha256
 
-LOSSLESS = (".png",)
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # only PNG is lossless, so only PNG pixels must match the checksum
 
 
 @dataclass
@@ -80,8 +80,8 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0) -> Report
     bad_sum, bad_render = [], []
     for i in range(len(df)):
         row = df.iloc[i]
-        stored = _stored_pixels(root, row, channels)
-        if stored is not None and Path(row["file"] or ".png").suffix in LOSSLESS and pixel_sha256(stored) != row["sha256"]:
+        data = _stored_bytes(root, row)
+        if data is not None and data.startswith(PNG_MAGIC) and pixel_sha256(decode(data, channels)) != row["sha256"]:
             bad_sum.append(row["image_id"])
     for i in rows:
         row = df.iloc[int(i)]
@@ -97,13 +97,12 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0) -> Report
     return rep
 
 
-def _stored_pixels(root: Path, row, channels: int):
+def _stored_bytes(root: Path, row) -> bytes | None:
+    """The encoded image a row points at (its file, or its embedded bytes); None if absent."""
     if row.get("file"):
         p = root / row["file"]
-        if not p.exists():
-            return None
-        return decode(p.read_bytes(), channels)
+        return p.read_bytes() if p.exists() else None
     data = row.get("image_bytes")
     if data is not None and not (isinstance(data, float) and np.isnan(data)):
-        return decode(bytes(data), channels)
+        return bytes(data)
     return None

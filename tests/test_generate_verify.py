@@ -111,8 +111,6 @@ def test_a_dataset_without_its_summary_is_incomplete(copy):
     assert "dataset.json is missing" in problems(copy)
 
 
-@pytest.mark.xfail(strict=True, reason="verify.py skips the checksum of Parquet-stored images: "
-                   "Path(row['file'] or '.png').suffix is '' for a dot-name, so no stored PNG counts as lossless")
 def test_stored_parquet_images_are_checked_too(made, tmp_path):
     dst = tmp_path / "pq"
     shutil.copytree(made["parquet"], dst)
