@@ -298,7 +298,7 @@ def test_torch_dataloader_two_workers_equal_one_process(store, parquet_ds, none_
 
 def test_torch_dataloader_spawned_workers(files_ds):
     # spawn sends the dataset by pickle: it must travel without open handles and rebuild itself
-    torch = pytest.importorskip("torch")
+    pytest.importorskip("torch")
     from torch.utils.data import DataLoader
 
     ds = Dataset(files_ds, "test_right", target="params")
@@ -391,7 +391,7 @@ def test_sampler_iteration_and_length(built):
 
 
 def test_sampler_in_dataloader_map_style_and_iterable(built):
-    torch = pytest.importorskip("torch")
+    pytest.importorskip("torch")
     from torch.utils.data import DataLoader
 
     s = OnlineSampler(built, "train", length=32, chw_float=True)
@@ -409,7 +409,7 @@ def test_sampler_in_dataloader_map_style_and_iterable(built):
 
 
 def test_sampler_logs_every_item_once_across_workers(built, tmp_path):
-    torch = pytest.importorskip("torch")
+    pytest.importorskip("torch")
     from torch.utils.data import DataLoader
 
     log = ParamLog(tmp_path / "log", flush_every=5)

@@ -220,7 +220,7 @@ def test_sprite_folder_reads_alpha_masks_and_colour_keys(tmp_path):
 
 
 def _one_class(tmp_path, name: str, content: bytes | np.ndarray | None) -> Path:
-    good = _write(tmp_path / "cls" / "a_good.png", _disc())
+    _write(tmp_path / "cls" / "a_good.png", _disc())
     bad = tmp_path / "cls" / name
     if isinstance(content, np.ndarray):
         _write(bad, content)

@@ -4,7 +4,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import given
 from hypothesis import strategies as st
 
 from augsplit.space import CIRCULAR, LEVELS, LINEAR, LOG, Axis, Space
