@@ -2,8 +2,9 @@
 
 `load_spec(path)` reads YAML safely, validates every key (unknown keys are errors with a
 did-you-mean hint), fills defaults and returns a frozen `Spec`. `canonical(spec)` is the
-sorted JSON of that spec and `spec_hash(spec)` its SHA-256: two specs that mean the same
-thing hash the same. Regions stay as parsed YAML here; `plan/` turns them into sets.
+JSON of that spec with every default filled in, and `spec_hash(spec)` its SHA-256: it changes
+whenever anything that decides an image changes, the order of splits and axes included.
+Regions stay as parsed YAML here; `plan/` turns them into sets.
 """
 
 from __future__ import annotations
@@ -273,8 +274,11 @@ def load_spec(path: str | Path) -> tuple[Spec, Path]:
 
 
 def canonical(spec: Spec) -> str:
-    """Sorted, compact JSON of the spec with every default filled in."""
-    return json.dumps(spec.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+    """Compact JSON of the spec with every default filled in. Keys keep their order: fixed keys
+    in the schema's order (so reordering them in the YAML changes nothing), user-named keys
+    (splits, axes, region terms) in the spec's order, because that order fixes the split
+    indices, the axes' uniforms and the boxes' order, i.e. every image's draws."""
+    return json.dumps(spec.model_dump(mode="json"), separators=(",", ":"))
 
 
 def spec_hash(spec: Spec) -> str:

@@ -181,3 +181,14 @@ def test_sprite_larger_than_canvas_names_the_file(tmp_path):
     with pytest.raises(SourceError) as e:
         open_mapping(spec)
     assert str(d / "a.png") in str(e.value) and "larger than the 64x64 canvas" in str(e.value)
+
+
+def test_order_of_splits_and_axes_is_part_of_the_hash():
+    # the order fixes split indices and which uniform drives which axis: other order, other images
+    a = parse_spec(spec_dict())
+    d = spec_dict()
+    d["splits"] = dict(reversed(list(d["splits"].items())))
+    assert spec_hash(parse_spec(d)) != spec_hash(a)
+    d = spec_dict()
+    d["axes"] = dict(reversed(list(d["axes"].items())))
+    assert spec_hash(parse_spec(d)) != spec_hash(a)

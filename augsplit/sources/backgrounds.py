@@ -54,12 +54,17 @@ class Solid:
         self.value = rgb
         self._rgb = _quantise(np.asarray(rgb))
         self._grey = _quantise(np.asarray([np.dot(rgb, LUMA_BT601)]))
+        self._canvases: dict[tuple[int, int, int], np.ndarray] = {}  # one filled canvas per size
 
     def draw(self, rng: np.random.Generator, height: int, width: int, channels: int) -> np.ndarray:
-        level = self._grey if channels == 1 else self._rgb
         if channels not in (1, 3):
             raise ValueError(f"channels must be 1 or 3, got {channels}")
-        return np.broadcast_to(level, (height, width, channels)).copy()
+        key = (height, width, channels)
+        canvas = self._canvases.get(key)
+        if canvas is None:  # filling through broadcast_to is slow (a 3-value pattern); copying is not
+            level = self._grey if channels == 1 else self._rgb
+            canvas = self._canvases[key] = np.broadcast_to(level, key).copy()
+        return canvas.copy()
 
     def __repr__(self) -> str:
         return f"Solid({self.value})"
