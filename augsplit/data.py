@@ -31,7 +31,7 @@ from .plan.draw import draw_online
 from .render import Placed, footprint
 from .scene import make_scene, pixel_sha256, render_params
 from .spec import parse_spec, spec_hash
-from .space.sample import PARAMS, RENDER, image_rng
+from .space.sample import PARAMS, RENDER, LazyStream, lazy_image_rng
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
@@ -45,23 +45,6 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the first 8 bytes of every PNG file (PNG
 
 class DatasetIndexError(DatasetError, IndexError):
     """An item index out of range: a DatasetError, and an IndexError for Python's protocols."""
-
-
-class LazyStream:
-    """A numpy Generator made on first use, standing in for one: the draws are those of the
-    generator itself, but a render that draws nothing (a solid background, no distractors)
-    never pays for seeding it."""
-
-    __slots__ = ("_make", "_gen")
-
-    def __init__(self, make: Callable[[], np.random.Generator]):
-        self._make = make
-        self._gen = None
-
-    def __getattr__(self, name: str):
-        if self._gen is None:
-            self._gen = self._make()
-        return getattr(self._gen, name)
 
 
 # ---- shared helpers -------------------------------------------------------------------------
@@ -274,7 +257,7 @@ class Dataset:
                                    where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
         built = self.built
         # the row's own seed key, not the re-opened plan's split order: the row alone decides
-        rng = LazyStream(functools.partial(image_rng, row["seed"], row["split_index"], row["index"], RENDER))
+        rng = lazy_image_rng(row["seed"], row["split_index"], row["index"], RENDER)
         scene = make_scene(built.plan, built.source, built.background, self._split_plan, row, rng=rng)
         return scene.image, scene.target, True
 

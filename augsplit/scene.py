@@ -16,7 +16,7 @@ import numpy as np
 from .plan import Plan, SplitPlan
 from .plan.draw import draw_online
 from .render import Placed, RenderParams, footprint, masks_overlap, render
-from .space.sample import RENDER, image_rng
+from .space.sample import RENDER, lazy_image_rng
 
 PARAM_KEYS = ("cx_px", "cy_px", "scale", "angle", "mirror", "hue", "saturation", "brightness")
 
@@ -44,7 +44,7 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
     channels = 1 if spec.canvas.mode == "gray" else 3
     thr = spec.render.alpha_threshold
     if rng is None:
-        rng = image_rng(spec.seed, split.index, int(row["index"]), RENDER)
+        rng = lazy_image_rng(spec.seed, split.index, int(row["index"]), RENDER)
     bg = background.draw(rng, h, w, channels)
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]

@@ -66,3 +66,25 @@ def sample(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """As `sample_t`, with points in axis units (levels axes give exact level values)."""
     t, box = sample_t(region, u)
     return region.space.from_t(t), box
+
+
+class LazyStream:
+    """A numpy Generator made on first use, standing in for one: the draws are those of the
+    generator itself, but a render that draws nothing (a solid background, no distractors)
+    never pays for seeding it (tens of microseconds per image)."""
+
+    __slots__ = ("_make", "_gen")
+
+    def __init__(self, make):
+        self._make = make
+        self._gen = None
+
+    def __getattr__(self, name: str):
+        if self._gen is None:
+            self._gen = self._make()
+        return getattr(self._gen, name)
+
+
+def lazy_image_rng(seed: int, split_index: int, image_index: int, purpose: int = RENDER) -> LazyStream:
+    """`image_rng(...)`, seeded only when something is drawn from it."""
+    return LazyStream(lambda: image_rng(seed, split_index, image_index, purpose))
