@@ -1,8 +1,12 @@
-"""Small in-memory specs shared by tests (import as `from specs import spec_dict`)."""
+"""Helpers shared by tests (import as `from specs import ...`): small in-memory specs, spec
+files, and comparing dataset folders byte for byte."""
 
 from __future__ import annotations
 
 import copy
+from pathlib import Path
+
+import yaml
 
 BASE = {
     "seed": 1,
@@ -19,3 +23,23 @@ def spec_dict(**changes) -> dict:
     d = copy.deepcopy(BASE)
     d.update(copy.deepcopy(changes))
     return d
+
+
+def write_spec(folder: Path, spec: dict) -> Path:
+    """The spec as a YAML file in `folder`, keys in their given order (order decides draws)."""
+    p = Path(folder) / "spec.yaml"
+    p.write_text(yaml.safe_dump(spec, sort_keys=False))
+    return p
+
+
+def tree(root: Path) -> dict[str, bytes]:
+    """Every file under root (relative path -> bytes)."""
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(Path(root).rglob("*")) if p.is_file()}
+
+
+def assert_same_tree(a: Path, b: Path) -> None:
+    """Two folders hold the same files with the same bytes."""
+    ta, tb = tree(a), tree(b)
+    assert sorted(ta) == sorted(tb)
+    differ = [k for k in ta if ta[k] != tb[k]]
+    assert not differ, f"files differ: {differ[:5]}"

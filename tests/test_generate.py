@@ -11,7 +11,6 @@ from pathlib import Path
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-import yaml
 
 from augsplit import generate as gen
 from augsplit import manifest as mf
@@ -19,6 +18,7 @@ from augsplit.build import open_mapping, open_spec
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate, shard_jobs
 from augsplit.verify import verify
+from specs import assert_same_tree, tree, write_spec
 
 SPEC = {
     "seed": 11,
@@ -33,23 +33,9 @@ SPEC = {
 QUICK = Options(shard_size=8, progress=False)
 
 
-def tree(root: Path) -> dict[str, bytes]:
-    """Every file under root (relative path -> bytes)."""
-    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
-
-
-def assert_same_tree(a: Path, b: Path) -> None:
-    ta, tb = tree(a), tree(b)
-    assert sorted(ta) == sorted(tb)
-    differ = [k for k in ta if ta[k] != tb[k]]
-    assert not differ, f"files differ: {differ[:5]}"
-
-
 @pytest.fixture(scope="module")
 def spec_file(tmp_path_factory) -> Path:
-    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
-    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
-    return p
+    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
 
 
 @pytest.fixture(scope="module")

@@ -10,11 +10,11 @@ import signal
 from pathlib import Path
 
 import pytest
-import yaml
 
 from augsplit import manifest as mf
 from augsplit.generate import Options, generate
 from augsplit.verify import verify
+from specs import assert_same_tree, write_spec
 
 distributed = pytest.importorskip("distributed")
 
@@ -31,22 +31,9 @@ SPEC = {
 QUICK = Options(shard_size=4, progress=False)
 
 
-def tree(root: Path) -> dict[str, bytes]:
-    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
-
-
-def assert_same_tree(a: Path, b: Path) -> None:
-    ta, tb = tree(a), tree(b)
-    assert sorted(ta) == sorted(tb)
-    differ = [k for k in ta if ta[k] != tb[k]]
-    assert not differ, f"files differ: {differ[:5]}"
-
-
 @pytest.fixture(scope="module")
 def spec_file(tmp_path_factory) -> Path:
-    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
-    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
-    return p
+    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
 
 
 @pytest.fixture(scope="module")

@@ -15,11 +15,11 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 import pytest
-import yaml
 
 from augsplit import manifest as mf
 from augsplit.cli import main
 from augsplit.generate import Options, generate
+from specs import tree, write_spec
 
 SPEC = {
     "seed": 17,
@@ -34,15 +34,9 @@ SIZE = 5  # 100 shards: a run lasts long enough to be cut after its first commit
 CLI = [sys.executable, "-m", "augsplit.cli"]
 
 
-def tree(root: Path) -> dict[str, bytes]:
-    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
-
-
 @pytest.fixture(scope="module")
 def spec_file(tmp_path_factory) -> Path:
-    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
-    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
-    return p
+    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
 
 
 @pytest.fixture(scope="module")

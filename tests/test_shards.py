@@ -16,6 +16,7 @@ from augsplit import manifest as mf
 from augsplit.cli import main
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate
+from specs import tree, write_spec
 
 SPEC = {
     "seed": 3,
@@ -30,15 +31,9 @@ SIZE = 4  # 7 + 3 = 10 shards, so 4 jobs get 3, 3, 2 and 2 of them
 CLI = [sys.executable, "-m", "augsplit.cli"]
 
 
-def tree(root: Path) -> dict[str, bytes]:
-    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
-
-
 @pytest.fixture(scope="module")
 def spec_file(tmp_path_factory) -> Path:
-    p = tmp_path_factory.mktemp("spec") / "spec.yaml"
-    p.write_text(yaml.safe_dump(SPEC, sort_keys=False))
-    return p
+    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
 
 
 @pytest.fixture(scope="module")
