@@ -173,3 +173,23 @@ def test_stratified_split_fills_every_cell_equally():
     pl = p.split("plain")
     share = np.bincount(draw(p, pl, np.arange(pl.total))["cell"]) / pl.total
     assert share[0] == pytest.approx(8 / 32, abs=0.03)
+
+
+def test_split_defined_by_reference_follows_an_auto_guarded_split():
+    p = plan_of(axes={"x": {"range": [0, 64]}, "y": {"range": [0, 64]}, "angle": {"range": [0, 360]}},
+                objects={"kind": "polyomino", "cells": 4, "cell_px": 4},
+                splits={"train": {"region": {"y": [0, 26]}, "per_class": 2},
+                        "test": {"region": {"y": [30, 64]}, "per_class": 2},
+                        "test_copy": {"region": {"split": "test"}, "per_class": 2}},
+                guarantees=[{"disjoint": "footprint", "between": ["train", "test"], "auto_guard": True}])
+    test, copy = p.split("test").region, p.split("test_copy").region
+    assert p.verdicts[0].status == "guarded"
+    assert (test - copy).mass() == pytest.approx(0) and (copy - test).mass() == pytest.approx(0)
+
+
+def test_unseen_instances_without_a_holdout_is_a_spec_error_even_under_a_guarantee():
+    with pytest.raises(SpecError) as e:
+        plan_of(splits={"train": {"region": {"x": [0, 20]}, "per_class": 1, "instances": "unseen"},
+                        "test": {"region": {"x": [44, 64]}, "per_class": 1}},
+                guarantees=[{"disjoint": "footprint", "between": ["train", "test"]}])
+    assert str(e.value).startswith("splits.train.instances: no instances are held out")

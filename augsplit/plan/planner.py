@@ -108,44 +108,58 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
     radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
                               for i in seen[c] + unseen[c]) for c in range(len(classes))])
 
-    regions: dict[str, Region] = {}
-    visiting: list[str] = []
+    for name, sp in spec.splits.items():  # before any proof: the proofs need the split's instances
+        if sp.instances == "unseen" and not any(unseen):
+            raise SpecError("no instances are held out (set objects.unseen_instances)", where=f"splits.{name}.instances")
 
-    def split_region(name: str, where: str) -> Region:
-        if name not in spec.splits:
-            raise SpecError(f"unknown split '{name}'", where=where)
-        if name in visiting:
-            raise SpecError(f"splits refer to each other in a cycle: {' -> '.join(visiting + [name])}", where=where)
-        if name not in regions:
-            visiting.append(name)
-            regions[name] = _split_region(spec, name, space, classes, split_region)
-            visiting.pop()
-        return regions[name]
+    def resolve(fixed: dict[str, Region]) -> dict[str, Region]:
+        """Every split's region; `fixed` ones (already guarded) are taken as they are, so a
+        split defined by reference to a guarded split sees its guarded region."""
+        regions = dict(fixed)
+        visiting: list[str] = []
 
-    for name in spec.splits:
-        split_region(name, f"splits.{name}")
+        def split_region(name: str, where: str) -> Region:
+            if name not in spec.splits:
+                raise SpecError(f"unknown split '{name}'", where=where)
+            if name in visiting:
+                raise SpecError(f"splits refer to each other in a cycle: {' -> '.join(visiting + [name])}", where=where)
+            if name not in regions:
+                visiting.append(name)
+                region = _split_region(spec, name, space, classes, split_region)
+                if spec.render.keep_inside:
+                    region = _keep_inside(space, canvas, region, radii_all, classes, name)
+                regions[name] = region
+                visiting.pop()
+            return regions[name]
 
-    if spec.render.keep_inside:
         for name in spec.splits:
-            regions[name] = _keep_inside(space, canvas, regions[name], radii_all, classes, name)
+            split_region(name, f"splits.{name}")
+        return regions
 
-    # guarantees (auto_guard may shrink the second split's region)
-    verdicts = []
-    guard_total = Region.empty(space)
-    for gi, g in enumerate(spec.guarantees):
+    regions = resolve({})
+
+    def prove(g, regions):
         a, b = g.between
-        where = f"guarantees.{gi}"
         ra = _radii(source, seen, unseen, spec.splits[a].instances, spec, classes)
         rb = _radii(source, seen, unseen, spec.splits[b].instances, spec, classes)
         ids = (_instance_ids(seen, unseen, spec.splits[a].instances, spec),
                _instance_ids(seen, unseen, spec.splits[b].instances, spec))
-        v = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids)
+        return _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids), ra, rb
+
+    # guarantees (auto_guard may shrink the second split's region)
+    verdicts = []
+    guarded: dict[str, Region] = {}
+    guard_total = Region.empty(space)
+    for gi, g in enumerate(spec.guarantees):
+        a, b = g.between
+        where = f"guarantees.{gi}"
+        v, ra, rb = prove(g, regions)
         if not v.ok and g.auto_guard:
             guard = _guard_region(g, space, canvas, regions[a], regions[b], ra, rb)
             before = regions[b].mass()
-            regions[b] = regions[b] - guard
+            regions[b] = guarded[b] = regions[b] - guard
             guard_total = guard_total | guard
-            v2 = _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids)
+            v2, _, _ = prove(g, regions)
             if not v2.ok:
                 raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
             removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
@@ -158,6 +172,22 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
             raise GuaranteeError(v.message, where=where,
                                  hint="move the regions apart, lower the largest scale, or set auto_guard: true")
         verdicts.append(v)
+
+    if guarded:
+        # splits defined by reference to a guarded split follow it; every guarantee is proved
+        # again on the final regions (a reference through `minus` can grow a region)
+        final = resolve(guarded)
+        changed = {n for n in spec.splits if n not in guarded and (final[n] - regions[n]).mass() + (regions[n] - final[n]).mass() > 1e-12}
+        regions = final
+        for gi, g in enumerate(spec.guarantees):
+            if not changed & set(g.between):
+                continue
+            v, _, _ = prove(g, regions)
+            if not v.ok and strict:
+                raise GuaranteeError(f"after auto_guard, {v.message}", where=f"guarantees.{gi}",
+                                     hint="splits defined by reference to a guarded split changed with it")
+            if verdicts[gi].status != "guarded":
+                verdicts[gi] = v
 
     train_names = [n for n in spec.splits if _role(n, spec.splits[n]) == "train"]
     train_union = Region.empty(space)
@@ -177,8 +207,6 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
             kind, evidence = holdout_kind(space, region, train_union)
             _check_declared_kind(s.kind, kind, evidence, space, name)
         instances = s.instances or ("seen" if any(unseen) else "all")
-        if instances == "unseen" and not any(unseen):
-            raise SpecError("no instances are held out (set objects.unseen_instances)", where=f"splits.{name}.instances")
         splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
     return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
