@@ -47,13 +47,13 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
     """Columns of axis values in spec units, derived from bboxes where the axis column is absent."""
     out = pd.DataFrame(index=df.index)
     canvas = plan.canvas
-    bbox = _bbox(df)
+    bbox = _bbox(df, where)
     for ax in plan.space.axes:
         n = ax.name
         if n == CLASS:
             continue
         if n in df.columns:
-            out[n] = pd.to_numeric(df[n], errors="coerce")
+            out[n] = _numbers(df[n], n, where)
             continue
         if bbox is not None and n in ("x", "y"):
             x0, y0, x1, y1 = bbox
@@ -80,16 +80,28 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
                for sp in plan.splits):
             out[n] = ax.from_t(np.full(len(df), (plan.space.t_lo[i] + plan.space.t_hi[i]) / 2.0))  # no split depends on it
             continue
-        need = f"'{n}'" + (" (or bbox columns)" if n in ("x", "y", "eccentricity", "polar_angle", "scale") else "")
+        bbox_names = " (or bbox_x0, bbox_y0, bbox_x1, bbox_y1, or bbox_x, bbox_y, bbox_w, bbox_h)"
+        need = f"'{n}'" + (bbox_names if n in ("x", "y", "eccentricity", "polar_angle", "scale") else "")
         raise DatasetError(f"the table has no column {need}; its columns are {', '.join(map(str, df.columns))}", where=where)
     return out
 
 
-def _bbox(df: pd.DataFrame):
+def _numbers(col: pd.Series, name: str, where: str) -> np.ndarray:
+    """A column as floats; a value that is not a finite number is an error naming its rows."""
+    v = pd.to_numeric(col, errors="coerce").to_numpy(float)
+    bad = np.flatnonzero(~np.isfinite(v))
+    if bad.size:
+        rows = ", ".join(str(r) for r in bad[:5]) + (f" and {bad.size - 5} more" if bad.size > 5 else "")
+        raise DatasetError(f"column '{name}' holds values that are not finite numbers (rows {rows}, counting from 0)",
+                           where=where)
+    return v
+
+
+def _bbox(df: pd.DataFrame, where: str = "table"):
     if {"bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"} <= set(df.columns):
-        return tuple(pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"))
+        return tuple(_numbers(df[c], c, where) for c in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"))
     if {"bbox_x", "bbox_y", "bbox_w", "bbox_h"} <= set(df.columns):
-        x, y, w, h = (pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in ("bbox_x", "bbox_y", "bbox_w", "bbox_h"))
+        x, y, w, h = (_numbers(df[c], c, where) for c in ("bbox_x", "bbox_y", "bbox_w", "bbox_h"))
         return x, y, x + w, y + h
     return None
 

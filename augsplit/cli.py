@@ -141,11 +141,12 @@ def _cmd_audit(a) -> int:
         column_map.update({str(k): str(v) for k, v in loaded.items()})
     if is_dataset(a.input) and a.spec is None and not column_map:
         result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
-                               progress=not a.quiet)
+                               progress=not a.quiet and sys.stderr.isatty())
         out = Path(a.out) if a.out else Path(a.input) / "audit"
     else:
         result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
-                             column_map=column_map or None, thresholds=thresholds, progress=not a.quiet)
+                             column_map=column_map or None, thresholds=thresholds,
+                             progress=not a.quiet and sys.stderr.isatty())
         out = Path(a.out) if a.out else Path("audit")
     paths = write_reports(result, out)
     print(summary_table(result))

@@ -109,10 +109,19 @@ def test_assign_missing_column(tmp_path):
     pd.DataFrame({"x": [10.0], "scale": [1.0]}).to_csv(src, index=False)
     r = run("assign", "demo", src)
     assert r.returncode == 2
-    assert "has no column 'y' (or bbox columns)" in r.stderr and str(src) in r.stderr
+    assert "has no column 'y' (or bbox_x0, bbox_y0, bbox_x1, bbox_y1" in r.stderr and str(src) in r.stderr
     assert not (tmp_path / "rows.assigned.csv").exists()
 
 
 def test_assign_missing_file(tmp_path):
     r = run("assign", "demo", tmp_path / "nope.csv")
     assert r.returncode == 2 and "no such file" in r.stderr
+
+
+def test_assign_refuses_values_that_are_not_numbers(tmp_path):
+    src = tmp_path / "rows.csv"
+    pd.DataFrame({"x": [10.0, 11.0, 12.0], "y": ["abc", "10", None]}).to_csv(src, index=False)
+    r = run("assign", "demo", src)
+    assert r.returncode == 2
+    assert "column 'y' holds values that are not finite numbers (rows 0, 2" in r.stderr
+    assert not (tmp_path / "rows.assigned.csv").exists()

@@ -112,7 +112,7 @@ def check_data_ranges(a: np.ndarray, b: np.ndarray, scales: list[AxisScale],
     numbers = {"per_axis": per_axis, "bounding_boxes_intersect": bool(all_overlap), "source": "data"}
     if all_overlap:
         return CheckResult("declared_regions", WARN, numbers, None,
-                           "no regions declared; the splits' parameter ranges overlap on every axis", pair)
+                           "no disjointness claimed between these splits; their data ranges overlap on every axis", pair)
     sep = [k for k, v in per_axis.items() if not v["overlap"]]
     return CheckResult("declared_regions", PASS, numbers, None,
-                       f"no regions declared; the splits' ranges are separated on {', '.join(sep)}", pair)
+                       f"no disjointness claimed between these splits; their data ranges are separated on {', '.join(sep)}", pair)
