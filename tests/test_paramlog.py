@@ -175,4 +175,4 @@ def test_part_files_are_single_row_group_parquet(plan, tmp_path):
     files = log_files(tmp_path)
     assert [pq.ParquetFile(f).metadata.num_rows for f in files] == [50, 50, 20]
     assert all(pq.read_schema(f).equals(LOG_SCHEMA, check_metadata=False) for f in files)
-    assert isinstance(pq.read_table(files[0]).column("split").type, pa.DataType)
+    assert pq.read_table(files[0]).column("split").type == LOG_SCHEMA.field("split").type == pa.string()
