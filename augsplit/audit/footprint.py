@@ -75,6 +75,17 @@ def _mask_crop(mask_loader: MaskLoader, row: int, raw_box: np.ndarray, hw) -> np
     return m[max(0, -y0): m.shape[0] - max(0, y1 - h), max(0, -x0): m.shape[1] - max(0, x1 - w)]
 
 
+def _mask_flags(n: int, mask_loader, mask_rows) -> np.ndarray:
+    """Which of n rows take their footprint from a mask (all, when no subset is named)."""
+    flags = np.zeros(n, bool)
+    if mask_loader is not None:
+        if mask_rows is None:
+            flags[:] = True
+        else:
+            flags[np.asarray(mask_rows, np.int64)] = True
+    return flags
+
+
 def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None, rows=None,
                    chunk: int = 1 << 18) -> tuple[np.ndarray, np.ndarray]:
     """Per-group binary coverage (n_groups, H, W) uint8 and the all-group count map (H, W).
@@ -85,12 +96,7 @@ def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None,
     bbox = np.asarray(bbox, np.int64).reshape(-1, 4)
     groups = np.asarray(groups, np.int64)
     h, w = hw
-    use_mask = np.zeros(len(bbox), bool)
-    if mask_loader is not None:
-        if mask_rows is None:
-            use_mask[:] = True
-        else:
-            use_mask[np.asarray(mask_rows, np.int64)] = True
+    use_mask = _mask_flags(len(bbox), mask_loader, mask_rows)
     rows = np.arange(len(bbox)) if rows is None else np.asarray(rows)
     # State is one byte per pixel per class plus one count map: a group at a time, so no
     # (classes x H x W) integer array is ever held.
@@ -126,12 +132,7 @@ def shared_pixels(binary, bbox, groups, hw, mask_loader=None, mask_rows=None, ro
     groups = np.asarray(groups, np.int64)
     clipped = clip_boxes(bbox, hw)
     out = np.zeros(len(bbox), dtype=np.int64)
-    has_mask = np.zeros(len(bbox), bool)
-    if mask_loader is not None:
-        if mask_rows is None:
-            has_mask[:] = True
-        else:
-            has_mask[np.asarray(mask_rows, np.int64)] = True
+    has_mask = _mask_flags(len(bbox), mask_loader, mask_rows)
     rows = np.arange(len(bbox)) if rows is None else np.asarray(rows)
     order = np.argsort(groups, kind="stable")
     bounds = np.searchsorted(groups[order], np.arange(binary.shape[0] + 1))
