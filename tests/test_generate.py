@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-from pathlib import Path
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -18,7 +17,7 @@ from augsplit.build import open_mapping, open_spec
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate, shard_jobs
 from augsplit.verify import verify
-from specs import assert_same_tree, tree, write_spec
+from specs import assert_same_tree, tree
 
 SPEC = {
     "seed": 11,
@@ -30,19 +29,7 @@ SPEC = {
     "render": {"distractors": {"count": [0, 1]}},
     "splits": {"train": {"region": {"x": [6, 14]}, "count": 30}, "test": {"region": {"x": [18, 26]}, "count": 14}},
 }
-QUICK = Options(shard_size=8, progress=False)
-
-
-@pytest.fixture(scope="module")
-def spec_file(tmp_path_factory) -> Path:
-    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
-
-
-@pytest.fixture(scope="module")
-def serial(spec_file, tmp_path_factory) -> Path:
-    out = tmp_path_factory.mktemp("serial") / "ds"
-    generate(spec_file, out, QUICK)
-    return out
+SERIAL = QUICK = Options(shard_size=8, progress=False)
 
 
 def test_serial_run_is_a_verified_dataset_with_distractors(serial):

@@ -14,7 +14,7 @@ import pytest
 from augsplit import manifest as mf
 from augsplit.generate import Options, generate
 from augsplit.verify import verify
-from specs import assert_same_tree, write_spec
+from specs import assert_same_tree
 
 distributed = pytest.importorskip("distributed")
 
@@ -28,19 +28,7 @@ SPEC = {
     "render": {"distractors": {"count": [0, 1]}},
     "splits": {"train": {"region": {"y": [6, 14]}, "count": 40}, "test": {"region": {"y": [18, 26]}, "count": 16}},
 }
-QUICK = Options(shard_size=4, progress=False)
-
-
-@pytest.fixture(scope="module")
-def spec_file(tmp_path_factory) -> Path:
-    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
-
-
-@pytest.fixture(scope="module")
-def serial(spec_file, tmp_path_factory) -> Path:
-    out = tmp_path_factory.mktemp("serial") / "ds"
-    generate(spec_file, out, QUICK)
-    return out
+SERIAL = QUICK = Options(shard_size=4, progress=False)
 
 
 @pytest.fixture(scope="module")

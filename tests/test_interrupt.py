@@ -19,7 +19,7 @@ import pytest
 from augsplit import manifest as mf
 from augsplit.cli import main
 from augsplit.generate import Options, generate
-from specs import tree, write_spec
+from specs import tree
 
 SPEC = {
     "seed": 17,
@@ -31,19 +31,8 @@ SPEC = {
     "splits": {"train": {"region": {"x": [5, 10]}, "count": 400}, "test": {"region": {"x": [14, 19]}, "count": 100}},
 }
 SIZE = 5  # 100 shards: a run lasts long enough to be cut after its first commits
+SERIAL = Options(shard_size=SIZE, progress=False)  # the reference run (conftest.serial)
 CLI = [sys.executable, "-m", "augsplit.cli"]
-
-
-@pytest.fixture(scope="module")
-def spec_file(tmp_path_factory) -> Path:
-    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
-
-
-@pytest.fixture(scope="module")
-def reference(spec_file, tmp_path_factory) -> Path:
-    out = tmp_path_factory.mktemp("ref") / "ds"
-    generate(spec_file, out, Options(shard_size=SIZE, progress=False))
-    return out
 
 
 def committed(out: Path) -> list[Path]:
@@ -85,23 +74,23 @@ def group_gone(pgid: int, limit_s: float = 10.0) -> bool:
     return False
 
 
-def resume_and_compare(spec_file: Path, out: Path, reference: Path, cli: bool = False) -> None:
+def resume_and_compare(spec_file: Path, out: Path, serial: Path, cli: bool = False) -> None:
     """--resume (through the CLI, or the same call in-process, which is quicker) must give the
-    reference bytes: nothing lost, nothing extra, no temporaries."""
+    serial bytes: nothing lost, nothing extra, no temporaries."""
     if cli:
         proc = subprocess.run(CLI + ["generate", str(spec_file), "--out", str(out), "--workers", "2", "--shard-size",
                                      str(SIZE), "--resume", "--quiet"], capture_output=True, text=True, timeout=300)
         assert proc.returncode == 0, proc.stderr
     else:
         generate(spec_file, out, Options(shard_size=SIZE, workers=2, resume=True, progress=False))
-    a, b = tree(reference), tree(out)
+    a, b = tree(serial), tree(out)
     assert sorted(a) == sorted(b), (set(a) ^ set(b))
     assert [k for k in a if a[k] != b[k]] == []
     df = mf.read_manifest(out)
     assert len(df) == 500 and not df["image_id"].duplicated().any()
 
 
-def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, reference, tmp_path):
+def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, serial, tmp_path):
     out = tmp_path / "ds"
     proc = start(spec_file, out)
     wait_for_commits(proc, out)
@@ -112,10 +101,10 @@ def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, reference, 
     assert group_gone(proc.pid)  # no worker outlives the run
     assert not (out / mf.SUMMARY_FILE).exists() and len(committed(out)) < 100
     assert_commits_are_whole(out)
-    resume_and_compare(spec_file, out, reference, cli=True)
+    resume_and_compare(spec_file, out, serial, cli=True)
 
 
-def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_file, reference, tmp_path):
+def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_file, serial, tmp_path):
     out = tmp_path / "ds"
     proc = start(spec_file, out)
     wait_for_commits(proc, out)
@@ -128,10 +117,10 @@ def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_fi
     assert not alive, "worker processes outlived their killed driver"
     assert not (out / mf.SUMMARY_FILE).exists()
     assert_commits_are_whole(out)
-    resume_and_compare(spec_file, out, reference)
+    resume_and_compare(spec_file, out, serial)
 
 
-def test_a_killed_pool_worker_is_replaced_and_its_shard_redone(spec_file, reference, tmp_path):
+def test_a_killed_pool_worker_is_replaced_and_its_shard_redone(spec_file, serial, tmp_path):
     out = tmp_path / "ds"
     proc = start(spec_file, out)
     wait_for_commits(proc, out)
@@ -144,7 +133,7 @@ def test_a_killed_pool_worker_is_replaced_and_its_shard_redone(spec_file, refere
     os.kill(kids[0], signal.SIGKILL)
     _stdout, stderr = proc.communicate(timeout=300)
     assert proc.returncode == 0, stderr
-    a, b = tree(reference), tree(out)
+    a, b = tree(serial), tree(out)
     assert sorted(a) == sorted(b) and [k for k in a if a[k] != b[k]] == []
 
 
@@ -172,7 +161,7 @@ def failing_replace(out: Path, exc: OSError, after: int):
 
 
 @pytest.mark.parametrize("workers", [1, 2])
-def test_disk_full_is_one_line_exit_2_and_keeps_completed_shards(spec_file, reference, tmp_path, capsys,
+def test_disk_full_is_one_line_exit_2_and_keeps_completed_shards(spec_file, serial, tmp_path, capsys,
                                                                  monkeypatch, workers):
     out = tmp_path / "ds"
     # (forked pool workers inherit the patch; each fails after its own 40 renames)
@@ -185,10 +174,10 @@ def test_disk_full_is_one_line_exit_2_and_keeps_completed_shards(spec_file, refe
     assert_commits_are_whole(out)
     assert not [p for p in out.rglob(".*.tmp-*")]  # nothing half-written left behind
     monkeypatch.undo()
-    resume_and_compare(spec_file, out, reference)
+    resume_and_compare(spec_file, out, serial)
 
 
-def test_no_write_permission_is_one_line_exit_2(spec_file, reference, tmp_path, capsys, monkeypatch):
+def test_no_write_permission_is_one_line_exit_2(spec_file, serial, tmp_path, capsys, monkeypatch):
     """CI runs as root, which ignores file modes, so the refusal is simulated where it would
     surface: the rename that puts a written file in place."""
     out = tmp_path / "ds"
@@ -197,7 +186,7 @@ def test_no_write_permission_is_one_line_exit_2(spec_file, reference, tmp_path, 
     assert code == 2 and err.count("\n") == 1 and "permission denied" in err and str(out) in err
     assert_commits_are_whole(out)
     monkeypatch.undo()
-    resume_and_compare(spec_file, out, reference)
+    resume_and_compare(spec_file, out, serial)
 
 
 def test_read_only_file_system_is_one_line_exit_2(spec_file, tmp_path, capsys, monkeypatch):
@@ -236,11 +225,11 @@ def test_output_inside_a_file_is_one_line_exit_2(spec_file, tmp_path, capsys):
     assert code == 2 and err.count("\n") == 1 and "cannot create the output folder" in err
 
 
-def test_existing_dataset_is_not_overwritten_without_overwrite(spec_file, reference, tmp_path, capsys):
+def test_existing_dataset_is_not_overwritten_without_overwrite(spec_file, serial, tmp_path, capsys):
     import shutil
 
     copy = tmp_path / "copy"
-    shutil.copytree(reference, copy)
+    shutil.copytree(serial, copy)
     code, err = run_cli(capsys, "generate", spec_file, "--out", copy, "--shard-size", SIZE, "--quiet")
     assert code == 2 and "--resume" in err and "--overwrite" in err
-    assert tree(copy) == tree(reference)
+    assert tree(copy) == tree(serial)

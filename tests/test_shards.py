@@ -7,7 +7,6 @@ from __future__ import annotations
 import shutil
 import subprocess
 import sys
-from pathlib import Path
 
 import pytest
 import yaml
@@ -16,7 +15,7 @@ from augsplit import manifest as mf
 from augsplit.cli import main
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate
-from specs import tree, write_spec
+from specs import tree
 
 SPEC = {
     "seed": 3,
@@ -28,19 +27,8 @@ SPEC = {
     "splits": {"train": {"region": {"x": [6, 14]}, "count": 26}, "test": {"region": {"x": [18, 26]}, "count": 11}},
 }
 SIZE = 4  # 7 + 3 = 10 shards, so 4 jobs get 3, 3, 2 and 2 of them
+SERIAL = Options(shard_size=SIZE, progress=False)  # the reference run (conftest.serial)
 CLI = [sys.executable, "-m", "augsplit.cli"]
-
-
-@pytest.fixture(scope="module")
-def spec_file(tmp_path_factory) -> Path:
-    return write_spec(tmp_path_factory.mktemp("spec"), SPEC)
-
-
-@pytest.fixture(scope="module")
-def serial(spec_file, tmp_path_factory) -> Path:
-    out = tmp_path_factory.mktemp("serial") / "ds"
-    generate(spec_file, out, Options(shard_size=SIZE, progress=False))
-    return out
 
 
 def cli(capsys, *args) -> tuple[int, str, str]:
