@@ -12,12 +12,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-import yaml
 
 from augsplit import manifest as mf
 from augsplit.cli import main
 from augsplit.generate import Options, generate
 from augsplit.verify import verify
+from specs import write_spec
 
 SPEC = {
     "seed": 29,
@@ -32,8 +32,7 @@ SPEC = {
 @pytest.fixture(scope="module")
 def made(tmp_path_factory) -> dict[str, Path]:
     root = tmp_path_factory.mktemp("verify")
-    spec = root / "spec.yaml"
-    spec.write_text(yaml.safe_dump(SPEC, sort_keys=False))
+    spec = write_spec(root, SPEC)
     out = {}
     for store in ("files", "parquet", "none"):
         out[store] = root / store

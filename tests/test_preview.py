@@ -7,13 +7,13 @@ from __future__ import annotations
 import cv2
 import numpy as np
 import pytest
-import yaml
 
 from augsplit import manifest as mf
 from augsplit import preview as pv
 from augsplit.cli import main
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, generate, open_dataset_spec
+from specs import write_spec
 
 SPEC = {
     "seed": 23,
@@ -31,8 +31,7 @@ SPEC = {
 @pytest.fixture(scope="module")
 def datasets(tmp_path_factory):
     root = tmp_path_factory.mktemp("prev")
-    spec = root / "spec.yaml"
-    spec.write_text(yaml.safe_dump(SPEC, sort_keys=False))
+    spec = write_spec(root, SPEC)
     out = {}
     for store in ("files", "parquet", "none"):
         out[store] = root / store

@@ -29,13 +29,11 @@ def _merge(results: list[AuditResult]) -> AuditResult:
     checks = []
     for r in results:
         for c in r.checks:
-            key = (c.name, c.pair)
             if c.pair is None:  # table-wide checks (e.g. finite values) once
                 if c.name in seen_global:
                     continue
                 seen_global.add(c.name)
             checks.append(c)
-            del key
     return AuditResult(tuple(checks), tuple(p for r in results for p in r.pairs),
                        tuple(s for r in results for s in r.skipped), first.inputs, first.arrays)
 
@@ -47,7 +45,8 @@ def _claims(spec, a: str, b: str) -> dict:
         if set(g.between) != {a, b}:
             continue
         if g.disjoint == "parameters":
-            out["margin"] = max(out.get("margin", 0.0), g.margin) if g.margin > 0 else out.get("margin", 1e-12)
+            # margin 0 still claims disjointness: only identical parameters fall below 1e-12
+            out["margin"] = max(out.get("margin", 0.0), g.margin, 1e-12)
         else:
             out["footprint_disjoint"] = True
             out["footprint_per_class"] = g.per_class

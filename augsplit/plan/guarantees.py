@@ -88,7 +88,7 @@ def check_parameters(space: Space, A: Region, B: Region, margin: float, per_clas
                        "no class appears in both splits")
     k = int(dist.argmin())
     d = float(dist[k])
-    overlap = (A & B) if not per_class else _shared_class_overlap(A, B)
+    overlap = A & B  # the class axis is part of the space, so this is also the shared-class overlap
     ok = (d >= margin and overlap.mass() <= 1e-12) if margin > 0 else overlap.mass() <= 1e-12
     nums = {"min_distance": d, "margin": margin, "overlap_mass": overlap.mass()}
     if ok:
@@ -101,10 +101,6 @@ def check_parameters(space: Space, A: Region, B: Region, margin: float, per_clas
         msg = (f"the regions of {between[0]} and {between[1]} come {d:.4g} apart in normalised units, "
                f"closer than the margin {margin:g}: {describe_box(space, A, int(ia[k]))} vs {describe_box(space, B, int(ib[k]))}")
     return Verdict("parameters", between, "refused", per_class, nums, msg)
-
-
-def _shared_class_overlap(A: Region, B: Region) -> Region:
-    return A & B  # the class axis is part of the space: a shared-class overlap is a plain intersection
 
 
 def dilate_parameters(space: Space, A: Region, margin: float, per_class: bool) -> Region:
