@@ -21,8 +21,10 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
             array_shard=None, spec_path=None) -> None:
     """Create or reopen the output folder; refuse to clobber anything without --overwrite."""
     out = Path(out)
-    if out.is_symlink() or (out.exists() and not out.is_dir()):
-        raise DatasetError("the output path is a file or a symbolic link, not a folder", where=str(out))
+    for s in built.plan.splits:  # every split becomes folder names: refuse one that would leave `out`
+        lay.component(s.name, f"split {s.name!r}")
+    if out.exists() and not out.is_dir():
+        raise DatasetError("the output path is a file, not a folder", where=str(out))
     if array_shard is not None and overwrite_old:
         raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
                            "others' work; remove the folder once, then submit the array", where=str(out))

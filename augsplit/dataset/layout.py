@@ -34,7 +34,7 @@ def component(name: str, what: str = "name") -> str:
     """`name` as one path component: never empty, `.`, `..`, or holding a separator."""
     if (not isinstance(name, str) or name in ("", ".", "..") or "/" in name or "\\" in name or "\x00" in name
             or os.sep in name):
-        raise DatasetError(f"{what} {name!r} cannot be a file or folder name inside the dataset", where=what)
+        raise DatasetError(f"{name!r} cannot be a file or folder name inside the dataset folder", where=what)
     return name
 
 

@@ -100,8 +100,8 @@ def clear(out: str | Path, spec_path: str | Path | None = None) -> None:
     where = str(out)
     if not out.exists():
         return
-    if out.is_symlink() or not out.is_dir():
-        raise DatasetError("--overwrite needs a folder (not a file or a symbolic link)", where=where)
+    if not out.is_dir():
+        raise DatasetError("--overwrite needs a folder, not a file", where=where)
     if spec_path is not None and _inside(spec_path, out):
         raise DatasetError(f"the spec {spec_path} lies inside the output folder, which --overwrite would empty; "
                            "move the spec out or choose another --out", where=where)
