@@ -19,6 +19,7 @@ from threading import BoundedSemaphore
 
 import cv2
 import numpy as np
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import executors
@@ -183,14 +184,19 @@ def _parquet_writer(path: Path, schema):
     """A Parquet writer closed on leaving; when leaving on an error the part is discarded, and a
     second error while closing (a full disk refusing the footer) must not replace the first,
     which says what happened."""
-    writer = pq.ParquetWriter(path, schema, compression="zstd")
+    sink = pa.OSFile(str(path), "wb")  # ours to close: a writer that failed to close keeps its file open
     try:
-        yield writer
-    except BaseException:
+        writer = pq.ParquetWriter(sink, schema, compression="zstd")
+        try:
+            yield writer
+        except BaseException:
+            with suppress(Exception):
+                writer.close()
+            raise
+        writer.close()
+    finally:
         with suppress(Exception):
-            writer.close()
-        raise
-    writer.close()
+            sink.close()
 
 
 def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: Path, opts: Options, files):
