@@ -35,6 +35,7 @@ SPEC = {
 SERIAL = Options(shard_size=5, progress=False)  # the reference run (conftest.serial)
 VICTIM = "train-0000003"  # row 3 of manifest/split=train/part-000000.parquet
 NAMED = f"split train, image {VICTIM}"
+FIRST = "split train, image train-0000000"  # with the whole folder linked out, the first row is named
 CLI = [sys.executable, "-m", "augsplit.cli"]
 
 
@@ -73,6 +74,9 @@ def escape(kind: str, root: Path) -> None:
     elif kind == "symlink":
         (root / "images" / "train" / f"{VICTIM}.png").unlink()
         os.symlink(outside, root / "images" / "train" / f"{VICTIM}.png")
+    elif kind == "folder_link":
+        shutil.move(root / "images" / "train", root.parent / "train_copy")
+        os.symlink(root.parent / "train_copy", root / "images" / "train")
     elif kind == "dev_zero":
         set_column(root, "file", "/dev/zero")
     elif kind == "fifo":
@@ -93,8 +97,8 @@ def escape(kind: str, root: Path) -> None:
         (root / "images" / "train" / f"{VICTIM}.png").unlink()
 
 
-ESCAPES = ["dotdot", "dotdot_inside", "absolute", "symlink", "dev_zero", "fifo", "fifo_inside", "folder", "oversized"]
-READABLE_ESCAPES = ["dotdot", "absolute", "symlink"]  # what an unguarded reader takes silently
+ESCAPES = ["dotdot", "dotdot_inside", "absolute", "symlink", "folder_link", "dev_zero", "fifo", "fifo_inside", "folder", "oversized"]
+READABLE_ESCAPES = ["dotdot", "absolute", "symlink", "folder_link"]  # what an unguarded reader takes silently
 
 
 @pytest.mark.parametrize("kind", ESCAPES + ["corrupt", "missing"])
@@ -112,7 +116,8 @@ def test_verify_reports_the_row_and_never_reads_outside(kind, ds):
 def test_the_loader_refuses_the_row(kind, ds):
     escape(kind, ds)
     items = Dataset(ds, "train")
-    assert items[2]["image"].shape == (24, 24, 3)  # other rows are untouched
+    if kind != "folder_link":
+        assert items[2]["image"].shape == (24, 24, 3)  # other rows are untouched
     with pytest.raises(DatasetError) as e:
         items[3]
     assert VICTIM in str(e.value) and "\n" not in str(e.value)
@@ -123,7 +128,7 @@ def test_preview_is_one_line_naming_the_row(kind, ds, tmp_path, capsys):
     escape(kind, ds)
     code = main(["preview", str(ds), "--out", str(tmp_path / "pics")])
     err = capsys.readouterr().err
-    assert code == 2 and err.count("\n") == 1 and NAMED in err, err
+    assert code == 2 and err.count("\n") == 1 and (FIRST if kind == "folder_link" else NAMED) in err, err
 
 
 @pytest.mark.parametrize("kind", READABLE_ESCAPES + ["corrupt", "missing", "fifo_inside"])
@@ -134,7 +139,8 @@ def test_audit_fails_the_image_files_check_naming_the_row(kind, ds, tmp_path, ca
     assert code == 1, cap.out + cap.err
     doc = json.loads((tmp_path / "rep" / "audit.json").read_text())
     check = next(c for c in doc["checks"] if c["name"] == "image_files")
-    assert check["verdict"] == "fail" and check["worst"][0]["image_id"] == VICTIM
+    first = "train-0000000" if kind == "folder_link" else VICTIM
+    assert check["verdict"] == "fail" and check["worst"][0]["image_id"] == first
     assert check["worst"][0]["split"] == "train"
     # the other checks still ran on every other row, and no stand-in faked a duplicate
     near = next(c for c in doc["checks"] if c["name"] == "near_duplicates")

@@ -86,6 +86,15 @@ class DatasetFolder:
         return self._cache["built"]
 
     @property
+    def box(self):
+        """The folder as a closed box for the image paths its manifest names."""
+        if "box" not in self._cache:
+            from .images import Box
+
+            self._cache["box"] = Box(self.root)
+        return self._cache["box"]
+
+    @property
     def plan(self):
         return self.built.plan
 

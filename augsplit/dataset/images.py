@@ -97,45 +97,93 @@ def max_bytes(hw: tuple[int, int], channels: int) -> int:
 # ---- the closed box -----------------------------------------------------------------------
 
 
+class Box:
+    """A folder as a closed box for the relative paths a table names (see the module
+    docstring). Each folder on the way is resolved once per box; the file itself is checked
+    with lstat before it is opened (no symbolic link, FIFO or device is ever opened through
+    it) and again with fstat after."""
+
+    def __init__(self, root: str | Path):
+        self.root = str(root)
+        self.base = os.path.realpath(root)
+        self._dirs: set[str] = set()
+
+    def _lexical(self, rel, where) -> PurePosixPath:
+        if not isinstance(rel, str) or not rel:
+            raise ImageError("the row names no image file", where=where)
+        p = PurePosixPath(rel)
+        if p.is_absolute() or rel.startswith("~") or ".." in p.parts or "\\" in rel or "\x00" in rel:
+            raise ImageError(f"image path {rel!r} leaves the dataset folder; it was not read", where=where)
+        return p
+
+    def _inside(self, real: str) -> bool:
+        return real == self.base or real.startswith(self.base.rstrip(os.sep) + os.sep)
+
+    def resolve(self, rel, where: str | None = None) -> Path:
+        """The real path of the regular file `rel` names inside the box, every link resolved."""
+        self._lexical(rel, where)
+        real = os.path.realpath(os.path.join(self.base, rel))
+        if not self._inside(real):
+            raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+                             where=where)
+        self._check_mode(self._stat(os.stat, real, rel, where), rel, where)
+        return Path(real)
+
+    def _stat(self, how, path: str, rel: str, where):
+        try:
+            return how(path)
+        except FileNotFoundError:
+            raise ImageError(f"image file {os.path.join(self.root, rel)} is missing", where=where) from None
+        except OSError as exc:
+            raise ImageError(f"image file {os.path.join(self.root, rel)} cannot be read: {exc.strerror}",
+                             where=where) from None
+
+    @staticmethod
+    def _check_mode(st, rel, where, limit: int | None = None) -> None:
+        if not stat.S_ISREG(st.st_mode):
+            raise ImageError(f"image path {rel!r} is not a regular file; it was not read", where=where)
+        if limit is not None and st.st_size > limit:
+            raise ImageError(f"image file {rel} has {st.st_size} bytes, more than the {limit} any image of this "
+                             "canvas may take; it was not read", where=where)
+
+    def read(self, rel, limit: int, where: str | None = None) -> bytes:
+        """The bytes of the regular file `rel` inside the box, at most `limit` of them."""
+        p = self._lexical(rel, where)
+        folder = str(p.parent)
+        if folder not in self._dirs:
+            real = os.path.realpath(os.path.join(self.base, folder))
+            if not self._inside(real):
+                raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+                                 where=where)
+            if os.path.isdir(real):  # a folder that is not there yet is checked again next time
+                self._dirs.add(folder)
+        path = os.path.join(self.base, rel)
+        st = self._stat(os.lstat, path, rel, where)
+        if stat.S_ISLNK(st.st_mode):
+            path = str(self.resolve(rel, where))  # a link that stays inside is followed
+            st = self._stat(os.lstat, path, rel, where)
+        self._check_mode(st, rel, where, limit)
+        try:
+            # O_NONBLOCK: were the file swapped for a FIFO since the check, open must not wait
+            fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
+        except OSError as exc:
+            raise ImageError(f"image file {rel} cannot be opened: {exc.strerror}", where=where) from None
+        with os.fdopen(fd, "rb") as f:
+            self._check_mode(os.fstat(f.fileno()), rel, where, limit)
+            data = f.read(limit + 1)
+        if len(data) > limit:
+            raise ImageError(f"image file {rel} grew beyond {limit} bytes while read", where=where)
+        return data
+
+
 def resolve_inside(root: Path, rel, where: str | None = None) -> Path:
-    """The regular file `rel` names inside `root` (see the module docstring), or ImageError."""
-    if not isinstance(rel, str) or not rel:
-        raise ImageError("the row names no image file", where=where)
-    p = PurePosixPath(rel)
-    if p.is_absolute() or rel.startswith("~") or ".." in p.parts or "\\" in rel or "\x00" in rel:
-        raise ImageError(f"image path {rel!r} leaves the dataset folder; it was not read", where=where)
-    base = os.path.realpath(root)
-    real = os.path.realpath(os.path.join(base, rel))
-    if os.path.commonpath([base, real]) != base:
-        raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
-                         where=where)
-    try:
-        mode = os.stat(real).st_mode
-    except FileNotFoundError:
-        raise ImageError(f"image file {os.path.join(root, rel)} is missing", where=where) from None
-    except OSError as exc:
-        raise ImageError(f"image file {os.path.join(root, rel)} cannot be read: {exc.strerror}", where=where) from None
-    if not stat.S_ISREG(mode):
-        raise ImageError(f"image path {rel!r} is not a regular file; it was not read", where=where)
-    return Path(real)
+    """The real path of the regular file `rel` names inside `root` (see Box), or ImageError."""
+    return Box(root).resolve(rel, where)
 
 
 def read_inside(root: Path, rel, limit: int, where: str | None = None) -> bytes:
-    """The bytes of the regular file `rel` inside `root`, at most `limit` of them."""
-    path = resolve_inside(root, rel, where)
-    try:
-        # O_NONBLOCK: were the file swapped for a FIFO after the check, open must not wait
-        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK)
-    except OSError as exc:
-        raise ImageError(f"image file {rel} cannot be opened: {exc.strerror}", where=where) from None
-    with os.fdopen(fd, "rb") as f:
-        if not stat.S_ISREG(os.fstat(f.fileno()).st_mode):
-            raise ImageError(f"image path {rel!r} is not a regular file; it was not read", where=where)
-        data = f.read(limit + 1)
-    if len(data) > limit:
-        raise ImageError(f"image file {rel} is larger than {limit} bytes, more than any image of this canvas; "
-                         "it was not read", where=where)
-    return data
+    """The bytes of the regular file `rel` names inside `root`, at most `limit` (see Box)."""
+    return Box(root).read(rel, limit, where)
 
 
 # ---- the image of a row ---------------------------------------------------------------------
@@ -160,7 +208,7 @@ def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     limit = max_bytes(folder.hw, folder.channels)
     rel = row.get("file")
     if isinstance(rel, str) and rel:
-        return read_inside(folder.root, rel, limit, where)
+        return folder.box.read(rel, limit, where)
     data = data if data is not None else _embedded(row)
     if data is not None and len(data) > limit:
         raise ImageError(f"embedded image of {len(data)} bytes, more than any image of this canvas", where=where)
