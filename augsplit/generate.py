@@ -27,7 +27,7 @@ from . import manifest as mf
 from .build import Built, build, open_spec
 from .dataset import create, open_dataset
 from .dataset import layout as lay
-from .dataset.folder import LAYOUT_KEYS, check_part_names
+from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
 from .errors import DatasetError
 from .io import atomic_path, write_bytes_atomic, write_text_atomic
@@ -421,7 +421,7 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
         raise DatasetError(f"{len(missing)} shard(s) missing: {names}{more}; job-array task K of N makes every "
                            f"shard # with # mod N = K; run those tasks again, or generate --resume", where=str(out))
-    check_part_names(folder, {s.name: s.total for s in built.plan.splits})
+    check_parts(folder, {s.name: s.total for s in built.plan.splits})
     create.remove_temporaries(out)  # left by killed job-array tasks; every shard is in, so none is running
     summary = {"spec_hash": built.plan.hash, "images": sum(s.total for s in built.plan.splits),
                "splits": {s.name: {"images": s.total, "role": s.role, "kind": s.kind} for s in built.plan.splits},

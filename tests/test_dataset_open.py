@@ -60,6 +60,10 @@ def variant(kind: str, serial: Path, other: Path, dst: Path) -> tuple[Path, str]
     if kind == "mixed_shards":
         shutil.copyfile(part(dst, "test", 0), part(dst, "test", 7))
         return dst, str(part(dst, "test", 7))
+    if kind == "mixed_size":  # a part of shard size 4 among parts of shard size 5 (same spec)
+        t = pq.read_table(part(dst, "train", 0))
+        pq.write_table(t.slice(0, 4), part(dst, "train", 0))
+        return dst, str(part(dst, "train", 0))
     return dst, ""
 
 
@@ -69,6 +73,7 @@ def predictions(root: Path, path: Path) -> Path:
     return path
 
 
+KINDS = ["complete", "incomplete", "mixed_spec", "mixed_shards", "mixed_size"]
 COMMANDS = {
     "verify": lambda d, t: ["verify", d],
     "preview": lambda d, t: ["preview", d, "--out", t / "pics", "--per-split", "2"],
@@ -77,7 +82,7 @@ COMMANDS = {
 }
 
 
-@pytest.mark.parametrize("kind", ["complete", "incomplete", "mixed_spec", "mixed_shards"])
+@pytest.mark.parametrize("kind", KINDS)
 @pytest.mark.parametrize("command", sorted(COMMANDS))
 def test_every_command_on_every_kind_of_folder(command, kind, serial, other, tmp_path, capsys):
     root, named = variant(kind, serial, other, tmp_path / "ds")
@@ -94,7 +99,7 @@ def test_every_command_on_every_kind_of_folder(command, kind, serial, other, tmp
     assert snapshot(root) == before  # a refusal writes nothing
 
 
-@pytest.mark.parametrize("kind", ["complete", "incomplete", "mixed_spec", "mixed_shards"])
+@pytest.mark.parametrize("kind", KINDS)
 def test_the_loaders_follow_the_same_policy(kind, serial, other, tmp_path):
     root, named = variant(kind, serial, other, tmp_path / "ds")
     if kind == "complete":

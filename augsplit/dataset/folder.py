@@ -178,7 +178,7 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
             if not isinstance(entry, dict) or not isinstance(entry.get("images"), int):
                 raise DatasetError(f"{lay.SUMMARY_FILE} does not list split '{name}' of the spec", where=str(root))
             totals[name] = entry["images"]
-        check_part_names(folder, totals)
+        check_parts(folder, totals)
     return folder
 
 
@@ -217,15 +217,21 @@ def check_schema(schema: pa.Schema, declared: pa.Schema, where: str) -> None:
             raise DatasetError(f"column '{f.name}' is {schema.field(i).type}, declared {f.type}", where=where)
 
 
-def check_part_names(folder: DatasetFolder, totals: dict[str, int]) -> None:
-    """Refuse manifest parts that no shard of a dataset of these split sizes makes (another
-    shard size or spec): their rows would pass for other images."""
-    expected = lay.expected_parts(totals, folder.shard_size)
+def check_parts(folder: DatasetFolder, totals: dict[str, int]) -> None:
+    """Refuse parts that no shard of a dataset of these split sizes makes, and manifest parts
+    whose row count is not their shard's (another shard size or spec): their rows would pass
+    for other images."""
+    size = folder.shard_size
+    expected = lay.expected_parts(totals, size)
     for p in folder.parts:
-        if p.table == lay.MANIFEST_DIR and (p.split, p.shard) not in expected:
-            raise DatasetError(f"a manifest part that no shard of this spec makes (shard size {folder.shard_size}, "
+        if (p.split, p.shard) not in expected:
+            raise DatasetError(f"a {p.table} part that no shard of this spec makes (shard size {size}, "
                                f"{totals[p.split]} images in split {p.split}): another shard size or spec?",
                                where=str(p.path))
+        rows = min(size, totals[p.split] - p.shard * size)
+        if p.table == lay.MANIFEST_DIR and p.rows != rows:
+            raise DatasetError(f"the part holds {p.rows} rows where its shard has {rows} (shard size {size}): "
+                               "a part of another shard size?", where=str(p.path))
 
 
 def _first_line(exc: BaseException) -> str:
