@@ -195,3 +195,19 @@ def test_a_split_name_that_leaves_the_folder_writes_nothing_outside(tmp_path, ca
     assert code == 2 and err.count("\n") == 1 and "ESCAPED" in err, err
     after = snapshot(tmp_path)
     assert {k: v for k, v in after.items() if not k.startswith("a/b/out")} == before
+
+
+def test_a_resume_never_writes_through_a_link_out_of_the_folder(spec_file, tmp_path, capsys):
+    out = tmp_path / "ds"
+    assert main(["generate", str(spec_file), "--out", str(out), "--shard", "0/2", "--shard-size", "5", "--quiet"]) == 0
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "keep.txt").write_text("mine")
+    shutil.rmtree(out / "images" / "train")
+    os.symlink(elsewhere, out / "images" / "train")
+    kept = snapshot(elsewhere)
+    capsys.readouterr()
+    code = main(["generate", str(spec_file), "--out", str(out), "--resume", "--shard-size", "5", "--quiet"])
+    err = capsys.readouterr().err
+    assert_refused(code, err, "symbolic link", str(out / "images" / "train"))
+    assert snapshot(elsewhere) == kept
