@@ -69,7 +69,7 @@ def _cmd_generate(a) -> int:
 def _cmd_verify(a) -> int:
     from .verify import verify
 
-    rep = verify(a.dataset, sample=a.sample)
+    rep = verify(a.dataset, sample=a.sample, allow_incomplete=a.allow_incomplete)
     if rep.ok:
         print(f"{a.dataset}: OK ({rep.checked} rows checked, {rep.rerendered} re-rendered identically)")
         return 0
@@ -81,7 +81,8 @@ def _cmd_verify(a) -> int:
 def _cmd_preview(a) -> int:
     from .preview import preview
 
-    for path in preview(a.dataset, out=a.out, per_split=a.per_split, columns=a.columns):
+    for path in preview(a.dataset, out=a.out, per_split=a.per_split, columns=a.columns,
+                        allow_incomplete=a.allow_incomplete):
         print(path)
     return 0
 
@@ -194,6 +195,8 @@ def build_parser() -> argparse.ArgumentParser:
     q = sub.add_parser("verify", help="check a dataset folder against its spec; exit 1 on any difference")
     q.add_argument("dataset")
     q.add_argument("--sample", type=int, default=None, help="re-render only this many random rows")
+    q.add_argument("--allow-incomplete", action="store_true",
+                   help="check an unfinished folder too (what is made so far; its missing summary is reported)")
     q.set_defaults(run=_cmd_verify)
 
     q = sub.add_parser("preview", help="contact sheets per split and a map of where each split's objects landed (PNG)")
@@ -201,6 +204,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--out", default=None, help="folder for the PNG files (default: DATASET/preview)")
     q.add_argument("--per-split", type=int, default=24, help="images on each contact sheet")
     q.add_argument("--columns", type=int, default=6, help="images per row of a contact sheet")
+    q.add_argument("--allow-incomplete", action="store_true", help="preview an unfinished folder (what is made so far)")
     q.set_defaults(run=_cmd_preview)
 
     q = sub.add_parser("score", help="accuracy per split, class and cell, and against distance from the training region")

@@ -11,27 +11,22 @@ from __future__ import annotations
 
 import difflib
 import functools
-import json
 import os
 from collections import OrderedDict
 from pathlib import Path
 from typing import Callable, Iterator, Sequence
 
-import cv2
 import numpy as np
 import pandas as pd
-import pyarrow as pa
-import pyarrow.parquet as pq
 
 from . import manifest as mf
 from .build import Built, open_spec
-from .errors import AugsplitError, DatasetError
-from .generate import decode, open_dataset_spec
+from .dataset import images, open_dataset, rows
+from .errors import DatasetError
 from .plan.draw import draw_online
 from .render import Placed, footprint
 from .scene import make_scene, pixel_sha256, render_params
-from .spec import parse_spec, spec_hash
-from .space.sample import PARAMS, RENDER, LazyStream, lazy_image_rng
+from .space.sample import PARAMS, RENDER, LazyStream
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
@@ -40,7 +35,6 @@ ROW_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if c.name != "image_bytes")
 # Domain tag of the online sampler's streams: its spawn keys (ONLINE, split, epoch, index,
 # purpose) have a length no generated image's key (split, index, purpose) has.
 ONLINE = 0x6F6E6C6E
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the first 8 bytes of every PNG file (PNG spec, section 5.2)
 
 
 class DatasetIndexError(DatasetError, IndexError):
@@ -129,14 +123,11 @@ class Dataset:
                  parquet_cache: int = 4):
         self.root = Path(root)
         where = str(self.root)
-        if not self.root.is_dir():
-            raise DatasetError("no such dataset folder", where=where)
-        if not (self.root / mf.SPEC_FILE).exists() or not (self.root / mf.MANIFEST_DIR).is_dir():
-            raise DatasetError("not an augsplit dataset (it needs spec.json and manifest/)", where=where)
         # Only the spec's text is needed to open the dataset; its object source (which may
         # live in a folder the dataset has since moved away from) is built when an item needs it.
-        spec, self.spec_hash, summary = _read_dataset_json(self.root)
-        have = _splits_on_disk(self.root)
+        self.folder = open_dataset(self.root)
+        spec, self.spec_hash, summary = self.folder.spec, self.folder.spec_hash, self.folder.summary
+        have = [s for s in self.folder.splits if self.folder.parts_of(splits=[s])]
         if split not in have:
             close = difflib.get_close_matches(str(split), have, n=1)
             hint = f" (did you mean '{close[0]}'?)" if close else ""
@@ -154,16 +145,19 @@ class Dataset:
         self.channels = 1 if spec.canvas.mode == "gray" else 3
         self.hw = (spec.canvas.height, spec.canvas.width)
         self.threshold = spec.render.alpha_threshold
-        self._built = None
-        self._split_plan = None
 
-        self.parts, frame = _read_split(self.root, split, self.spec_hash)
+        self.parts = self.folder.parts_of(splits=[split])
+        frame = rows.read_rows(self.folder, splits=[split], columns=ROW_COLUMNS, positions=True)
+        frame["file"] = frame["file"].fillna("")
+        has_bytes = [rows.non_null(p, "image_bytes") for p in self.parts]
+        starts = np.cumsum([0] + [len(h) for h in has_bytes])
+        flat = np.concatenate(has_bytes) if has_bytes else np.zeros(0, dtype=bool)
+        frame["_has_bytes"] = flat[starts[frame[rows.PART_COLUMN].to_numpy()] + frame[rows.OFFSET_COLUMN].to_numpy()]
         frame = _filter(frame, self.classes, classes, cells, query)
-        self.manifest: pd.DataFrame = frame.drop(columns=["_part", "_offset"]).reset_index(drop=True)
-        self._part = frame["_part"].to_numpy()
-        self._offset = frame["_offset"].to_numpy()
+        self._part = frame[rows.PART_COLUMN].to_numpy()
+        self._offset = frame[rows.OFFSET_COLUMN].to_numpy()
         self._has_bytes = frame["_has_bytes"].to_numpy(dtype=bool)
-        self.manifest = self.manifest.drop(columns=["_has_bytes"])
+        self.manifest: pd.DataFrame = frame.drop(columns=[rows.PART_COLUMN, rows.OFFSET_COLUMN, "_has_bytes"])
         # plain Python lists: an item's row dict is then a few list lookups, and its values
         # are ones any collate function accepts (str, int, float, bool)
         self._cols = {c: self.manifest[c].tolist() for c in ROW_COLUMNS if c in self.manifest}
@@ -172,10 +166,9 @@ class Dataset:
 
     # ---- per-process state ----------------------------------------------------------------
     def __getstate__(self):
-        # sent to a spawned worker: no caches, no built objects; each process makes its own
+        # sent to a spawned worker: no caches, no built objects (the folder drops its own);
+        # each process makes its own
         state = dict(self.__dict__)
-        state["_built"] = None
-        state["_split_plan"] = None
         state["_cache"] = OrderedDict()
         state["_pid"] = None
         return state
@@ -187,13 +180,8 @@ class Dataset:
 
     @property
     def built(self) -> Built:
-        if self._built is None:
-            self._built = open_dataset_spec(self.root)
-            if self._built.plan.hash != self.spec_hash:
-                raise DatasetError(f"spec.json changed since the dataset was opened (hash {self._built.plan.hash}, "
-                                   f"was {self.spec_hash})", where=str(self.root / mf.SPEC_FILE))
-            self._split_plan = self._built.plan.split(self.split)
-        return self._built
+        """The spec's Built, from the spec read when the dataset was opened; made on first use."""
+        return self.folder.built
 
     # ---- the sequence protocol ------------------------------------------------------------
     def __len__(self) -> int:
@@ -240,36 +228,15 @@ class Dataset:
     # ---- pixels ---------------------------------------------------------------------------
     def _image(self, i: int, row: dict):
         """(image, Placed of the target when re-rendered else None, whether stored losslessly)."""
-        if row["file"]:
-            path = self.root / row["file"]
-            img = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE if self.channels == 1 else cv2.IMREAD_COLOR)
-            if img is None:
-                raise DatasetError("image file is missing or unreadable" if path.exists() else "image file is missing",
-                                   where=str(path))
-            img = img[..., None] if self.channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
-            return img, None, path.suffix.lower() == ".png"
-        if self._has_bytes[i]:
-            data = self._bytes(int(self._part[i]), int(self._offset[i]))
-            try:
-                return decode(data, self.channels), None, data[:8] == PNG_SIGNATURE
-            except AugsplitError:
-                raise DatasetError("stored image bytes cannot be decoded",
-                                   where=f"{self.parts[self._part[i]]}:{row['image_id']}") from None
-        built = self.built
-        # the row's own seed key, not the re-opened plan's split order: the row alone decides
-        rng = lazy_image_rng(row["seed"], row["split_index"], row["index"], RENDER)
-        scene = make_scene(built.plan, built.source, built.background, self._split_plan, row, rng=rng)
-        return scene.image, scene.target, True
+        data = self._bytes(int(self._part[i]), int(self._offset[i])) if self._has_bytes[i] and not row["file"] else None
+        got = images.load(self.folder, row, data=data)
+        return got.image, got.placed, got.lossless
 
     def _bytes(self, part: int, offset: int) -> bytes:
         self._local()
         col = self._cache.get(part)
         if col is None:
-            path = self.parts[part]
-            try:
-                col = pq.read_table(path, columns=["image_bytes"]).column("image_bytes").combine_chunks()
-            except (OSError, pa.ArrowInvalid) as exc:
-                raise DatasetError(f"cannot read stored images: {exc}", where=str(path)) from None
+            col = rows.read_column(self.parts[part], "image_bytes")
             self._cache[part] = col
             while len(self._cache) > self.parquet_cache:
                 self._cache.popitem(last=False)
@@ -285,94 +252,6 @@ class Dataset:
     def __repr__(self) -> str:
         return (f"Dataset({str(self.root)!r}, split={self.split!r}, items={len(self)}, target={self.target!r}, "
                 f"chw_float={self.chw_float})")
-
-
-def _read_dataset_json(root: Path):
-    """(spec, spec hash, summary) of a dataset folder, checked: the spec must hash to the hash
-    spec.json records, and dataset.json (written last) must exist."""
-    spec_file = root / mf.SPEC_FILE
-    try:
-        doc = json.loads(spec_file.read_text())
-        spec = parse_spec(doc["spec"], source=str(spec_file))
-        recorded = doc["spec_hash"]
-    except (OSError, ValueError, KeyError, TypeError) as exc:
-        raise DatasetError(f"unreadable spec.json: {exc}", where=str(spec_file)) from None
-    if spec_hash(spec) != recorded:
-        raise DatasetError(f"spec.json says hash {recorded} but its spec hashes to {spec_hash(spec)}",
-                           where=str(spec_file))
-    summary_file = root / mf.SUMMARY_FILE
-    if not summary_file.exists():
-        raise DatasetError("the dataset is incomplete (no dataset.json): finish it with "
-                           "`augsplit generate --resume` before loading it", where=str(root))
-    try:
-        summary = json.loads(summary_file.read_text())
-    except (OSError, ValueError) as exc:
-        raise DatasetError(f"unreadable dataset.json: {exc}", where=str(summary_file)) from None
-    return spec, recorded, summary
-
-
-def _splits_on_disk(root: Path) -> list[str]:
-    """The dataset's split names in spec order (by the split_index their rows carry)."""
-    first: dict[str, tuple] = {}
-    for p in mf.part_files(root):
-        name = p.parent.name.split("=", 1)[1]
-        if name in first:
-            continue
-        try:
-            stats = pq.ParquetFile(p).metadata.row_group(0).column(
-                mf.IMAGE_SCHEMA.names.index("split_index")).statistics
-            first[name] = (0, int(stats.min)) if stats is not None and stats.has_min_max else (1, name)
-        except Exception:  # noqa: BLE001 - order only; an unreadable part is reported when read
-            first[name] = (1, name)
-    return sorted(first, key=lambda n: first[n])
-
-
-def _read_split(root: Path, split: str, spec_hash: str):
-    """Part files of one split and their rows (without image bytes), with part and offset."""
-    parts = [p for p in mf.part_files(root) if p.parent.name == f"{mf.PARTITION}={split}"]
-    wanted = [n for n in mf.IMAGE_SCHEMA.names if n != "image_bytes"]
-    frames = []
-    for k, p in enumerate(parts):
-        try:
-            pf = pq.ParquetFile(p)
-        except (OSError, pa.ArrowInvalid) as exc:
-            raise DatasetError(f"unreadable manifest part: {exc}", where=str(p)) from None
-        md = pf.schema_arrow.metadata or {}
-        got = md.get(mf.META_HASH, b"").decode() or "none"
-        if got != spec_hash:
-            raise DatasetError(f"this manifest part was made by spec {got}, but the dataset's spec.json is spec "
-                               f"{spec_hash}; refusing to mix them (regenerate the dataset)", where=str(p))
-        cols = [c for c in wanted if c in pf.schema_arrow.names]
-        t = pf.read(columns=cols)
-        df = t.to_pandas()
-        df["_has_bytes"] = _has_bytes(pf)
-        df["_part"] = k
-        df["_offset"] = np.arange(len(df))
-        frames.append(df)
-    df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=wanted + ["_part", "_offset", "_has_bytes"])
-    df.insert(0, mf.PARTITION, split)
-    if "file" in df:
-        df["file"] = df["file"].fillna("")
-    return parts, df.sort_values("index", kind="stable").reset_index(drop=True)
-
-
-def _has_bytes(pf: pq.ParquetFile) -> np.ndarray:
-    """Which rows of a part hold image bytes, from the row groups' null counts where they
-    settle it (a dataset has one store mode), so the bytes themselves are not read."""
-    names = pf.schema_arrow.names
-    if "image_bytes" not in names:
-        return np.zeros(pf.metadata.num_rows, dtype=bool)
-    col = names.index("image_bytes")
-    out = []
-    for g in range(pf.metadata.num_row_groups):
-        rg = pf.metadata.row_group(g)
-        stats = rg.column(col).statistics
-        nulls = stats.null_count if stats is not None and stats.has_null_count else None
-        if nulls in (0, rg.num_rows):
-            out.append(np.full(rg.num_rows, nulls == 0))
-        else:
-            out.append(pf.read_row_group(g, columns=["image_bytes"]).column(0).is_valid().to_numpy(zero_copy_only=False))
-    return np.concatenate(out) if out else np.zeros(0, dtype=bool)
 
 
 def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFrame:
@@ -414,7 +293,7 @@ def _open_built(spec) -> Built:
         return spec
     p = Path(spec)
     if p.is_dir():
-        return open_dataset_spec(p)
+        return open_dataset(p).built
     return open_spec(p)
 
 

@@ -11,20 +11,24 @@ from __future__ import annotations
 import errno
 import functools
 import json
-import shutil
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import ExitStack, closing
+from contextlib import ExitStack, closing, contextmanager, suppress
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from threading import BoundedSemaphore
 
 import cv2
 import numpy as np
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import executors
 from . import manifest as mf
 from .build import Built, build, open_spec
+from .dataset import create, open_dataset
+from .dataset import layout as lay
+from .dataset.folder import LAYOUT_KEYS, check_parts
+from .dataset.images import FORMATS, encode
 from .errors import DatasetError
 from .io import atomic_path, write_bytes_atomic, write_text_atomic
 from .plan.draw import draw
@@ -32,7 +36,6 @@ from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import canonical, parse_spec
 
 STORES = ("files", "parquet", "none")
-FORMATS = {"png": ".png", "jpeg": ".jpg", "webp": ".webp"}
 EXECUTORS = executors.EXECUTORS
 
 # A row group holds at most this many rows, and (with --store parquet) about this many bytes
@@ -82,26 +85,6 @@ def shard_jobs(built: Built, shard_size: int) -> list[ShardJob]:
 def array_jobs(jobs: list[ShardJob], k: int, n: int) -> list[ShardJob]:
     """The shards job-array task k of n makes: every n-th shard of the whole dataset, from k."""
     return jobs[k::n]
-
-
-def encode(image: np.ndarray, fmt: str, quality: int) -> bytes:
-    img = image[..., 0] if image.shape[2] == 1 else cv2.cvtColor(image, cv2.COLOR_RGB2BGR)
-    params = {"png": [], "jpeg": [cv2.IMWRITE_JPEG_QUALITY, quality], "webp": [cv2.IMWRITE_WEBP_QUALITY, quality]}[fmt]
-    ok, buf = cv2.imencode(FORMATS[fmt], img, params)
-    if not ok:
-        raise DatasetError(f"OpenCV could not encode a {fmt} image")
-    return buf.tobytes()
-
-
-def decode(data: bytes, channels: int) -> np.ndarray:
-    img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_GRAYSCALE if channels == 1 else cv2.IMREAD_COLOR)
-    if img is None:
-        raise DatasetError("cannot decode image bytes")
-    return img[..., None] if channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
-
-
-def image_relpath(split: str, image_id: str, fmt: str) -> str:
-    return f"{mf.IMAGES_DIR}/{split}/{image_id}{FORMATS[fmt]}"
 
 
 def rows_per_group(built: Built, opts: Options) -> int:
@@ -163,15 +146,15 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
     split = plan.split(job.split)
     meta = mf.file_metadata(canonical(spec), plan.hash)
     step = rows_per_group(built, opts)
-    part = mf.part_path(out, mf.MANIFEST_DIR, job.split, job.shard)
-    dpart = mf.part_path(out, mf.DISTRACTOR_DIR, job.split, job.shard)
+    part = lay.part_path(out, lay.MANIFEST_DIR, job.split, job.shard)
+    dpart = lay.part_path(out, lay.DISTRACTOR_DIR, job.split, job.shard)
     files = _FileWriter() if opts.store == "files" else None
     if files is not None:
-        _guard_disk(lambda: (out / mf.IMAGES_DIR / job.split).mkdir(parents=True, exist_ok=True), out)
+        _guard_disk(lambda: create.writable_dir(out, lay.IMAGES_DIR, job.split), out)
     with ExitStack() as stack:
-        _guard_disk(lambda: part.parent.mkdir(parents=True, exist_ok=True), out)
+        _guard_disk(lambda: create.writable_dir(out, lay.MANIFEST_DIR, job.split), out)
         tmp = stack.enter_context(atomic_path(part))
-        writer = stack.enter_context(pq.ParquetWriter(tmp, mf.IMAGE_SCHEMA.with_metadata(meta), compression="zstd"))
+        writer = stack.enter_context(_parquet_writer(tmp, mf.IMAGE_SCHEMA.with_metadata(meta)))
         dwriter = dtmp = None
         try:
             for lo in range(job.start, job.stop, step):
@@ -179,10 +162,10 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
                 _guard_disk(lambda: writer.write_table(mf.to_table(cols, mf.IMAGE_SCHEMA, meta)), part)
                 if dcols:
                     if dwriter is None:
-                        _guard_disk(lambda: dpart.parent.mkdir(parents=True, exist_ok=True), out)
+                        _guard_disk(lambda: create.writable_dir(out, lay.DISTRACTOR_DIR, job.split), out)
                         dtmp = stack.enter_context(atomic_path(dpart))
-                        dwriter = pq.ParquetWriter(dtmp, mf.DISTRACTOR_SCHEMA.with_metadata(meta), compression="zstd")
-                        stack.callback(dwriter.close)  # runs before dtmp's rename (LIFO)
+                        # closed before dtmp's rename (LIFO)
+                        dwriter = stack.enter_context(_parquet_writer(dtmp, mf.DISTRACTOR_SCHEMA.with_metadata(meta)))
                     _guard_disk(lambda: dwriter.write_table(mf.to_table(dcols, mf.DISTRACTOR_SCHEMA, meta)), dpart)
             if files is not None:
                 files.close()
@@ -194,6 +177,26 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
         # later, left earlier), then the manifest part, whose presence is the shard's commit.
         _guard_disk(stack.close, part)
     return job.stop - job.start
+
+
+@contextmanager
+def _parquet_writer(path: Path, schema):
+    """A Parquet writer closed on leaving; when leaving on an error the part is discarded, and a
+    second error while closing (a full disk refusing the footer) must not replace the first,
+    which says what happened."""
+    sink = pa.OSFile(str(path), "wb")  # ours to close: a writer that failed to close keeps its file open
+    try:
+        writer = pq.ParquetWriter(sink, schema, compression="zstd")
+        try:
+            yield writer
+        except BaseException:
+            with suppress(Exception):
+                writer.close()
+            raise
+        writer.close()
+    finally:
+        with suppress(Exception):
+            sink.close()
 
 
 def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: Path, opts: Options, files):
@@ -226,7 +229,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
         ids.append(image_id)
         data = encode(scene.image, opts.format, opts.quality) if opts.store != "none" else None
         if files is not None:
-            rel = image_relpath(job.split, image_id, opts.format)
+            rel = lay.image_relpath(job.split, image_id, FORMATS[opts.format])
             files.write(out / rel, data)
             file_col.append(rel)
             data_col.append(None)
@@ -303,89 +306,14 @@ def _shard_task(state_key: tuple, job: ShardJob) -> int:
 
 # ---- the output folder ----------------------------------------------------------------------
 
-_LAYOUT_KEYS = ("shard_size", "store", "format", "quality")
-_DATASET_ENTRIES = {mf.SPEC_FILE, mf.SUMMARY_FILE, mf.MANIFEST_DIR, mf.DISTRACTOR_DIR, mf.IMAGES_DIR}
-
 
 def _layout(opts: Options) -> dict:
     """The options that decide the bytes on disk: a resumed run or a job-array peer must share them."""
-    return {k: getattr(opts, k) for k in _LAYOUT_KEYS}
-
-
-def prepare_out(out: Path, built: Built, opts: Options) -> None:
-    """Create or reopen the output folder; refuse to clobber anything without --overwrite."""
-    if out.exists() and not out.is_dir():
-        raise DatasetError("the output path is a file, not a folder", where=str(out))
-    if opts.array_shard is not None and opts.overwrite:
-        raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
-                           "others' work; remove the folder once, then submit the array", where=str(out))
-    if out.exists() and any(out.iterdir()):
-        if opts.overwrite:
-            if not (out / mf.SPEC_FILE).exists() and not (out / mf.MANIFEST_DIR).exists():
-                raise DatasetError("refusing to overwrite a folder that is not an augsplit dataset", where=str(out))
-            try:
-                shutil.rmtree(out)
-            except OSError as exc:
-                raise DatasetError(f"cannot remove the old dataset: {exc.strerror}", where=str(exc.filename or out)) from None
-        elif opts.resume or opts.array_shard is not None:
-            _check_same_dataset(out, built, opts)
-            if opts.array_shard is None:
-                # only a whole-run resume may sweep temporaries: job-array peers may be writing now
-                _remove_temporaries(out)
-        else:
-            raise DatasetError("the output folder exists and is not empty; use --resume to continue it "
-                               "or --overwrite to replace it", where=str(out))
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        spec_file = out / mf.SPEC_FILE
-        if not spec_file.exists():
-            # the spec in its own key order: the order of splits and axes is part of every
-            # image's seed key and of its draws, so a sorted copy would re-make other images
-            doc = {"spec_hash": built.plan.hash, "base_dir": str(built.base_dir.resolve()),
-                   "layout": _layout(opts), "spec": built.spec.model_dump(mode="json")}
-            write_text_atomic(spec_file, json.dumps(doc, indent=2))
-    except PermissionError as exc:
-        raise DatasetError("permission denied", where=str(exc.filename or out)) from None
-    except OSError as exc:
-        raise DatasetError(f"cannot create the output folder: {exc.strerror}", where=str(exc.filename or out)) from None
-
-
-def _check_same_dataset(out: Path, built: Built, opts: Options) -> None:
-    spec_file = out / mf.SPEC_FILE
-    if not spec_file.exists():
-        # a job-array peer may have made the folder a moment ago and not yet renamed spec.json in
-        strangers = [p.name for p in out.iterdir()
-                     if p.name not in _DATASET_ENTRIES and not p.name.startswith(f".{mf.SPEC_FILE}.tmp-")]
-        if opts.array_shard is None or strangers:
-            raise DatasetError("the folder is not empty and holds no augsplit dataset to resume", where=str(out))
-        return
-    try:
-        old = json.loads(spec_file.read_text())
-    except (OSError, ValueError) as exc:
-        raise DatasetError(f"unreadable spec.json: {exc}", where=str(spec_file)) from None
-    if old.get("spec_hash") != built.plan.hash:
-        raise DatasetError(f"the folder holds a dataset of another spec (hash {old.get('spec_hash')}); "
-                           f"this spec's hash is {built.plan.hash}", where=str(out))
-    layout = old.get("layout")
-    if layout and layout != _layout(opts):
-        want = " ".join(f"--{k.replace('_', '-')} {layout[k]}" for k in _LAYOUT_KEYS if layout.get(k) != getattr(opts, k))
-        raise DatasetError(f"the folder was started with other storage options; rerun with {want}", where=str(out))
-
-
-def _remove_temporaries(out: Path) -> None:
-    for tmp in out.rglob(".*.tmp-*"):
-        tmp.unlink(missing_ok=True)
+    return {k: getattr(opts, k) for k in LAYOUT_KEYS}
 
 
 def shard_done(out: Path, job: ShardJob) -> bool:
-    p = mf.part_path(out, mf.MANIFEST_DIR, job.split, job.shard)
-    if not p.exists():
-        return False
-    try:
-        return pq.ParquetFile(p).metadata.num_rows == job.stop - job.start
-    except Exception:  # noqa: BLE001 - an unreadable part is simply redone
-        p.unlink(missing_ok=True)
-        return False
+    return create.part_complete(out, job.split, job.shard, job.stop - job.start)
 
 
 # ---- the whole run -------------------------------------------------------------------------
@@ -425,7 +353,8 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     try:
         if opts.scheduler:
             _check_worker_versions(client, opts.scheduler)
-        prepare_out(out, built, opts)
+        create.prepare(out, built, _layout(opts), resume=opts.resume, overwrite_old=opts.overwrite,
+                       array_shard=opts.array_shard, spec_path=spec_path)
         jobs = shard_jobs(built, opts.shard_size)
         if opts.array_shard is not None:
             jobs = array_jobs(jobs, *opts.array_shard)
@@ -483,68 +412,22 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
 def finalize(out: str | Path, built: Built | None = None) -> dict:
     """Check every shard is present, of this spec and nothing else; write dataset.json."""
     out = Path(out)
-    built = built or open_dataset_spec(out)
-    jobs = shard_jobs(built, _shard_size_of(out, built))
+    folder = open_dataset(out, allow_incomplete=True)  # parts of this spec, in the declared schema
+    built = built or folder.built
+    jobs = shard_jobs(built, folder.shard_size)
     missing = [(g, j) for g, j in enumerate(jobs) if not shard_done(out, j)]
     if missing:
         names = ", ".join(f"{j.split}/part-{j.shard:06d} (shard #{g} of {len(jobs)})" for g, j in missing[:5])
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
         raise DatasetError(f"{len(missing)} shard(s) missing: {names}{more}; job-array task K of N makes every "
                            f"shard # with # mod N = K; run those tasks again, or generate --resume", where=str(out))
-    expected = {mf.part_path(out, mf.MANIFEST_DIR, j.split, j.shard) for j in jobs}
-    for f in mf.part_files(out) + mf.part_files(out, mf.DISTRACTOR_DIR):
-        if f.parent.parent.name == mf.MANIFEST_DIR and f not in expected:
-            raise DatasetError("a manifest part that no shard of this spec makes (another shard size or spec?)",
-                               where=str(f))
-        try:
-            got = (pq.read_schema(f).metadata or {}).get(mf.META_HASH, b"").decode()
-        except Exception as exc:  # noqa: BLE001 - any unreadable part is reported as such
-            raise DatasetError(f"unreadable Parquet part: {exc}", where=str(f)) from None
-        if got != built.plan.hash:
-            raise DatasetError(f"this part was made from another spec (hash {got or 'none'}; the folder's spec "
-                               f"is {built.plan.hash}); shards of different specs cannot be mixed", where=str(f))
-    _remove_temporaries(out)  # left by killed job-array tasks; every shard is in, so none is running
+    check_parts(folder, {s.name: s.total for s in built.plan.splits})
+    create.remove_temporaries(out)  # left by killed job-array tasks; every shard is in, so none is running
     summary = {"spec_hash": built.plan.hash, "images": sum(s.total for s in built.plan.splits),
                "splits": {s.name: {"images": s.total, "role": s.role, "kind": s.kind} for s in built.plan.splits},
                "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True}
-    _guard_disk(lambda: write_text_atomic(out / mf.SUMMARY_FILE, json.dumps(summary, indent=2, sort_keys=True)), out)
+    _guard_disk(lambda: write_text_atomic(out / lay.SUMMARY_FILE, json.dumps(summary, indent=2, sort_keys=True)), out)
     return summary
-
-
-def open_dataset_spec(out: str | Path) -> Built:
-    """The Built (spec, source, background, plan) a dataset folder was made from."""
-    out = Path(out)
-    spec_file = out / mf.SPEC_FILE
-    if not out.is_dir():
-        raise DatasetError("no such dataset folder", where=str(out))
-    if not spec_file.exists():
-        raise DatasetError("not an augsplit dataset (no spec.json)", where=str(out))
-    try:
-        doc = json.loads(spec_file.read_text())
-        spec = parse_spec(doc["spec"], source=str(spec_file))
-    except (ValueError, KeyError) as exc:
-        raise DatasetError(f"unreadable spec.json: {exc}", where=str(spec_file)) from None
-    built = build(spec, Path(doc.get("base_dir", out)))
-    if built.plan.hash != doc.get("spec_hash"):
-        raise DatasetError(f"spec.json says hash {doc.get('spec_hash')} but its spec hashes to {built.plan.hash}",
-                           where=str(spec_file))
-    return built
-
-
-def _shard_size_of(out: Path, built: Built) -> int:
-    try:
-        layout = json.loads((out / mf.SPEC_FILE).read_text()).get("layout") or {}
-    except (OSError, ValueError):
-        layout = {}
-    if layout.get("shard_size"):
-        return int(layout["shard_size"])
-    # folders from before the layout was recorded: the largest first part is a whole shard
-    files = mf.part_files(out)
-    if not files:
-        return Options().shard_size
-    first = min(files, key=lambda p: (p.parent.name, p.name))
-    sizes = [pq.ParquetFile(f).metadata.num_rows for f in files if f.name == "part-000000.parquet"]
-    return max(sizes) if sizes else pq.ParquetFile(first).metadata.num_rows
 
 
 class _NoBar:

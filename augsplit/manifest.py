@@ -1,20 +1,18 @@
-"""THE manifest schema: column names, types, units; plus the streaming writer and reader.
+"""THE manifest schema: column names, types, units, and the metadata every part file carries.
 
-A dataset folder holds `manifest/split=<name>/part-*.parquet` (one row per image) and
-`distractors/split=<name>/part-*.parquet` (one row per extra object). Every file carries the
-canonical spec, its hash and package versions in its Parquet key-value metadata, so any tool
-(pandas, pyarrow.dataset, duckdb) reads the dataset without augsplit.
+A dataset's image table (one row per image) and distractor table (one row per extra object)
+are hive-partitioned by split (the folders: augsplit.dataset.layout; reading them:
+augsplit.dataset.rows). Every file carries the canonical spec, its hash and package versions
+in its Parquet key-value metadata, so any tool (pandas, pyarrow.dataset, duckdb) reads the
+dataset without augsplit.
 """
 
 from __future__ import annotations
 
 import json
 from dataclasses import dataclass
-from pathlib import Path
 
-import pandas as pd
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 
 @dataclass(frozen=True)
@@ -103,16 +101,8 @@ IMAGE_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in IMAGE_COLUMNS if c.n
 DISTRACTOR_SCHEMA = pa.schema([pa.field(c.name, c.type) for c in DISTRACTOR_COLUMNS if c.name != PARTITION])
 UNITS = {c.name: c.unit for c in IMAGE_COLUMNS}
 
-# ---- dataset layout ---------------------------------------------------------------------------
-
-MANIFEST_DIR, DISTRACTOR_DIR, IMAGES_DIR = "manifest", "distractors", "images"
-SUMMARY_FILE, SPEC_FILE = "dataset.json", "spec.json"
+# keys of every part file's Parquet key-value metadata (where files live: augsplit.dataset.layout)
 META_SPEC, META_HASH, META_VERSIONS = b"augsplit.spec", b"augsplit.spec_hash", b"augsplit.versions"
-
-
-def part_path(root: Path, table: str, split: str, shard: int) -> Path:
-    """Where one shard's rows of one table go: <root>/<table>/split=<name>/part-<shard>.parquet."""
-    return Path(root) / table / f"{PARTITION}={split}" / f"part-{shard:06d}.parquet"
 
 
 def versions() -> dict:
@@ -142,49 +132,3 @@ def to_table(columns: dict, schema: pa.Schema, metadata: dict[bytes, bytes]) -> 
         else:
             arrays.append(pa.nulls(n, type=f.type))
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(metadata))
-
-
-def write_part(path: Path, table: pa.Table) -> None:
-    """One shard's rows as one Parquet file, written under a temporary name and renamed."""
-    from .io import atomic_path
-
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with atomic_path(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd", row_group_size=max(1, table.num_rows))
-
-
-def part_files(root: Path, table: str = MANIFEST_DIR) -> list[Path]:
-    return sorted((Path(root) / table).glob(f"{PARTITION}=*/part-*.parquet"))
-
-
-def read_manifest(root: str | Path, table: str = MANIFEST_DIR, splits=None, columns=None) -> pd.DataFrame:
-    """All rows of a dataset's table as a DataFrame, with `split` as a plain string column,
-    ordered by split (spec order) and image index."""
-    root = Path(root)
-    files = part_files(root, table)
-    if splits is not None:
-        files = [f for f in files if f.parent.name.split("=", 1)[1] in set(splits)]
-    schema = IMAGE_SCHEMA if table == MANIFEST_DIR else DISTRACTOR_SCHEMA
-    frames = []
-    for f in files:
-        t = pq.read_table(f, columns=[c for c in columns if c != PARTITION] if columns else None)
-        df = t.to_pandas()
-        df.insert(0, PARTITION, f.parent.name.split("=", 1)[1])
-        frames.append(df)
-    if not frames:
-        names = [PARTITION] + [f.name for f in schema]
-        return pd.DataFrame({n: pd.Series(dtype=object) for n in (columns or names)})
-    df = pd.concat(frames, ignore_index=True)
-    sort = [c for c in ("split_index", "index", "k") if c in df.columns]
-    return df.sort_values(sort, kind="stable").reset_index(drop=True) if sort else df
-
-
-def read_metadata(root: str | Path) -> dict:
-    """The spec (as a dict), its hash and the package versions from the first part file."""
-    files = part_files(root)
-    if not files:
-        return {}
-    md = pq.read_schema(files[0]).metadata or {}
-    return {"spec": json.loads(md[META_SPEC]) if META_SPEC in md else None,
-            "spec_hash": md.get(META_HASH, b"").decode(),
-            "versions": json.loads(md[META_VERSIONS]) if META_VERSIONS in md else {}}

@@ -13,14 +13,14 @@ from pathlib import Path
 
 import numpy as np
 
-from . import manifest as mf
 from .build import Built
+from .dataset import DatasetFolder, image_of, open_dataset, read_rows
+from .dataset import layout as lay
 from .errors import DatasetError
-from .generate import decode, open_dataset_spec
 from .render import add_footprint, footprint
-from .scene import make_scene, render_params
+from .scene import render_params
 
-PREVIEW_DIR = "preview"
+PREVIEW_DIR = lay.PREVIEW_DIR
 COVERAGE_FILE = "coverage.png"
 MAX_COVERAGE_ROWS = 20000  # per split; more rows are sampled evenly (the title says so)
 
@@ -53,18 +53,20 @@ class Coverage:
         return int(np.count_nonzero((tr > 0) & (te > 0)))
 
 
-def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24, columns: int = 6) -> list[Path]:
-    """Write one contact sheet per split and the coverage map; return their paths."""
+def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24, columns: int = 6,
+            allow_incomplete: bool = False) -> list[Path]:
+    """Write one contact sheet per split and the coverage map; return their paths. An
+    unfinished folder is refused unless `allow_incomplete` (then what is made so far shows)."""
     import matplotlib
 
     matplotlib.use("Agg")
-    root = Path(root)
-    built = open_dataset_spec(root)
-    df = mf.read_manifest(root)
-    if df.empty:
-        raise DatasetError("the dataset has no manifest rows to preview", where=str(root / mf.MANIFEST_DIR))
     if per_split < 1 or columns < 1:
         raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
+    folder = open_dataset(root, allow_incomplete=allow_incomplete)
+    root, built = folder.root, folder.built
+    df = read_rows(folder)
+    if df.empty:
+        raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
     out = Path(out) if out is not None else root / PREVIEW_DIR
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -74,7 +76,7 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
         if len(rows):
-            paths.append(contact_sheet(built, root, rows, out / f"contact_{s.name}.png", per_split, columns))
+            paths.append(contact_sheet(folder, rows, out / f"contact_{s.name}.png", per_split, columns))
     cov = coverage(built, df)
     paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
     return paths
@@ -114,24 +116,10 @@ def caption(built: Built, row) -> str:
     return "\n".join(lines)
 
 
-def image_of(built: Built, root: Path, row) -> np.ndarray:
-    """The stored image of a row (file or Parquet bytes), or the image re-made from the row."""
-    channels = 1 if built.spec.canvas.mode == "gray" else 3
-    rel = row.get("file") or ""
-    if rel:
-        p = root / rel
-        if not p.exists():
-            raise DatasetError("the row's image file is missing", where=str(p))
-        return decode(p.read_bytes(), channels)
-    data = row.get("image_bytes")
-    if isinstance(data, (bytes, bytearray)):
-        return decode(bytes(data), channels)
-    split = built.plan.split(row["split"])
-    return make_scene(built.plan, built.source, built.background, split, row).image
-
-
-def contact_sheet(built: Built, root: Path, rows, path: Path, per_split: int = 24, columns: int = 6) -> Path:
+def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, columns: int = 6) -> Path:
     import matplotlib.pyplot as plt
+
+    built = folder.built
 
     pick = rows.iloc[pick_rows(len(rows), per_split)]
     n = len(pick)
@@ -149,7 +137,7 @@ def contact_sheet(built: Built, root: Path, rows, path: Path, per_split: int = 2
         x0 = margin + c * (img + gap)
         y0 = height - top - r * cell_h - cap - img
         ax = fig.add_axes((x0 / width, y0 / height, img / width, img / height))
-        im = image_of(built, root, row)
+        im = image_of(folder, row)
         if im.shape[2] == 1:
             ax.imshow(im[..., 0], cmap="gray", vmin=0, vmax=255, interpolation="nearest")
         else:

@@ -171,43 +171,34 @@ def chance_bounds(n: int, p: float, confidence: float = CONFIDENCE) -> tuple[flo
 
 
 def read_manifest(dataset_dir) -> pd.DataFrame:
-    """The image table of a dataset folder (`<dir>/manifest/split=<name>/*.parquet`)."""
-    from augsplit import manifest as mf
+    """The image table of a dataset folder, opened and checked by augsplit.dataset (an
+    unfinished or mixed folder is refused)."""
+    from augsplit.dataset import open_dataset
 
-    root = Path(dataset_dir)
-    where = str(root / mf.MANIFEST_DIR)
-    if not (root / mf.MANIFEST_DIR).is_dir():
-        raise DatasetError("no manifest folder (is this an augsplit dataset folder?)", where=where)
-    wanted = [c for c in MANIFEST_COLUMNS if c in mf.IMAGE_SCHEMA.names or c == mf.PARTITION]
-    try:
-        df = mf.read_manifest(root, columns=wanted)
-    except Exception as exc:  # pyarrow raises many kinds; the user needs one line
-        raise DatasetError(f"cannot read the manifest: {_first_line(exc)}", where=where) from None
-    missing = [c for c in ("image_id", "split", "class_name", "class_index") if c not in df.columns]
-    if missing:
-        raise DatasetError(f"manifest lacks column(s) {', '.join(missing)}", where=where)
+    return manifest_of(open_dataset(dataset_dir))
+
+
+def manifest_of(folder) -> pd.DataFrame:
+    """The columns scoring needs, of an opened dataset folder."""
+    from augsplit.dataset import read_rows
+    from augsplit.dataset.layout import MANIFEST_DIR
+
+    where = str(folder.root / MANIFEST_DIR)
+    df = read_rows(folder, columns=MANIFEST_COLUMNS)
     if df.empty:
         raise DatasetError("manifest has no rows", where=where)
-    df["split"] = df["split"].astype(str)
-    df["image_id"] = df["image_id"].astype(str)
     df.attrs["where"] = where
     return df
 
 
-def dataset_roles(dataset_dir) -> tuple[str | None, str | None]:
-    """(training split, reference split) from the dataset's summary, when it names them.
+def dataset_roles(folder) -> tuple[str | None, str | None]:
+    """(training split, reference split) from an opened dataset's summary, when it names them.
 
     The reference is a test split drawn at random from the training region (kind "random"):
     its accuracy is the in-region accuracy a held-out split should be compared with, free of
     the optimism of scoring the very images the model was fitted to.
     """
-    from augsplit import manifest as mf
-
-    path = Path(dataset_dir) / mf.SUMMARY_FILE
-    try:
-        splits = json.loads(path.read_text())["splits"]
-    except (OSError, ValueError, KeyError, TypeError):
-        return None, None
+    splits = (folder.summary or {}).get("splits") or {}
     train = [n for n, s in splits.items() if isinstance(s, dict) and s.get("role") == "train"]
     iid = [n for n, s in splits.items() if isinstance(s, dict) and s.get("kind") == "random" and s.get("role") != "train"]
     return (train[0] if len(train) == 1 else None), (iid[0] if len(iid) == 1 else None)
@@ -891,8 +882,11 @@ def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_spl
     reference split to its i.i.d. test split from the training region, if it has exactly one
     (else the training split). Returns the first file's result. `augsplit score` calls this.
     """
-    manifest = read_manifest(dataset_dir)
-    role_train, role_ref = dataset_roles(dataset_dir)
+    from augsplit.dataset import open_dataset
+
+    folder = open_dataset(dataset_dir)
+    manifest = manifest_of(folder)
+    role_train, role_ref = dataset_roles(folder)
     train_split = train_split or role_train or "train"
     reference_split = reference_split or role_ref
     paths = [Path(predictions_path)] + ([Path(compare)] if compare else [])

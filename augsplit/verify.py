@@ -1,8 +1,10 @@
 """`augsplit verify`: a dataset folder is exactly what its spec says it is.
 
-Checks: the summary and every shard are present; each row has its image and each image
-file its row; counts per split and class match the plan; stored pixels match each row's
-checksum (lossless formats); and each image re-renders identically from its row alone.
+Checks: every shard is present; each row has its image and each image file its row; counts
+per split and class match the plan; each row's seed key is the plan's; stored images decode
+to the canvas, inside the folder (a path out of it, a FIFO, a device or an oversized file is
+a finding, never read) and, for lossless formats, match each row's checksum; and each image
+re-renders identically from its row alone.
 """
 
 from __future__ import annotations
@@ -12,12 +14,13 @@ from pathlib import Path
 
 import numpy as np
 
-from . import manifest as mf
+from .dataset import layout as lay
+from .dataset import open_dataset, read_rows
+from .dataset.images import PNG_SIGNATURE, ImageError, decode, rerender, row_where, stored_bytes
 from .errors import DatasetError
-from .generate import decode, open_dataset_spec
-from .scene import make_scene, pixel_sha256
+from .scene import pixel_sha256
 
-PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # only PNG is lossless, so only PNG pixels must match the checksum
+SHOWN = 5  # problems of one kind listed by name
 
 
 @dataclass
@@ -29,25 +32,37 @@ class Report:
     def add(self, what: str) -> None:
         self.problems.append(what)
 
+    def add_each(self, items: list[str], more: str) -> None:
+        """The first few items by name, then how many more."""
+        for item in items[:SHOWN]:
+            self.add(item)
+        if len(items) > SHOWN:
+            self.add(f"... {len(items) - SHOWN} more {more}")
+
     @property
     def ok(self) -> bool:
         return not self.problems
 
 
-def verify(root: str | Path, sample: int | None = None, seed: int = 0) -> Report:
-    """Verify a dataset; `sample` re-renders only that many rows (all when None)."""
-    root = Path(root)
-    built = open_dataset_spec(root)
-    plan = built.plan
+def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_incomplete: bool = False) -> Report:
+    """Verify a dataset; `sample` re-renders only that many rows (all when None).
+    An unfinished folder is refused unless `allow_incomplete` (then its absence of
+    dataset.json is itself a finding)."""
+    if sample is not None and (isinstance(sample, bool) or not isinstance(sample, (int, np.integer)) or sample < 0):
+        raise DatasetError(f"the sample size must be a whole number >= 0, got {sample!r}", where="--sample")
+    folder = open_dataset(root, allow_incomplete=allow_incomplete)
+    root = folder.root
+    plan = folder.plan
     rep = Report()
-    if not (root / mf.SUMMARY_FILE).exists():
+    if not folder.complete:
         rep.add("dataset.json is missing: generation did not finish (rerun generate --resume, or --finalize)")
-    df = mf.read_manifest(root)
+    df = read_rows(folder)
     if df.empty:
-        raise DatasetError("the dataset has no manifest rows", where=str(root / mf.MANIFEST_DIR))
+        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
     rep.checked = len(df)
-    if df["image_id"].duplicated().any():
-        rep.add(f"{int(df['image_id'].duplicated().sum())} duplicated image ids, e.g. {df['image_id'][df['image_id'].duplicated()].iloc[0]}")
+    dup = df["image_id"].duplicated()
+    if dup.any():
+        rep.add(f"{int(dup.sum())} duplicated image ids, e.g. {df['image_id'][dup].iloc[0]}")
     for s in plan.splits:
         got = df[df["split"] == s.name]
         if len(got) != s.total:
@@ -57,52 +72,50 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0) -> Report
             if counts.get(c, 0) != n:
                 rep.add(f"split {s.name}, class {plan.classes[c]}: {counts.get(c, 0)} rows, the plan says {n}")
                 break
-    unknown = set(df["split"]) - {s.name for s in plan.splits}
-    if unknown:
-        rep.add(f"rows of splits the spec does not have: {', '.join(sorted(unknown))}")
-    channels = 1 if built.spec.canvas.mode == "gray" else 3
-    # files <-> rows
+        keyed = (got["split_index"] != s.index) | (got["seed"] != plan.spec.seed)
+        if keyed.any():
+            rep.add(f"split {s.name}: {int(keyed.sum())} rows whose seed key (seed, split_index) is not the plan's, "
+                    f"e.g. {got['image_id'][keyed].iloc[0]}")
+    _check_files(root, df, rep)
+    _check_pixels(folder, df, rep, sample, seed)
+    return rep
+
+
+def _check_files(root: Path, df, rep: Report) -> None:
+    """Every image file under images/ belongs to a row (rows' own files are read later)."""
     files = df["file"].fillna("")
     listed = set(files[files != ""])
-    on_disk = {str(p.relative_to(root)) for p in (root / mf.IMAGES_DIR).rglob("*") if p.is_file()} if (root / mf.IMAGES_DIR).exists() else set()
-    for rel in sorted(listed - on_disk)[:5]:
-        rep.add(f"row's image is missing: {rel}")
-    if len(listed - on_disk) > 5:
-        rep.add(f"... {len(listed - on_disk) - 5} more missing images")
-    for rel in sorted(on_disk - listed)[:5]:
-        rep.add(f"image without a row: {rel}")
-    if len(on_disk - listed) > 5:
-        rep.add(f"... {len(on_disk - listed) - 5} more images without rows")
-    # stored pixels and re-rendering
-    rows = np.arange(len(df))
-    if sample is not None and sample < len(df):
-        rows = np.sort(np.random.default_rng(seed).choice(len(df), size=sample, replace=False))
-    bad_sum, bad_render = [], []
-    for i in range(len(df)):
-        row = df.iloc[i]
-        data = _stored_bytes(root, row)
-        if data is not None and data.startswith(PNG_MAGIC) and pixel_sha256(decode(data, channels)) != row["sha256"]:
-            bad_sum.append(row["image_id"])
+    images = root / lay.IMAGES_DIR
+    on_disk = ({str(p.relative_to(root)) for p in images.rglob("*") if p.is_file() or p.is_symlink()}
+               if images.is_dir() else set())
+    rep.add_each([f"image without a row: {rel}" for rel in sorted(on_disk - listed)], "images without rows")
+
+
+def _check_pixels(folder, df, rep: Report, sample, seed) -> None:
+    """Stored images: inside the box, decodable, lossless ones equal to the checksum. Then the
+    re-render of every (or a sample of) row."""
+    broken, bad_sum, bad_render = [], [], []
+    records = df.to_dict("records")
+    for row in records:
+        where = row_where(row)
+        try:
+            data = stored_bytes(folder, row)
+            if data is not None:
+                img = decode(data, folder.channels, where, folder.hw)
+                if data.startswith(PNG_SIGNATURE) and pixel_sha256(img) != row["sha256"]:
+                    bad_sum.append(row["image_id"])
+        except ImageError as exc:
+            broken.append(f"{exc.where}: {exc.message}")
+    rows = np.arange(len(records))
+    if sample is not None and sample < len(records):
+        rows = np.sort(np.random.default_rng(seed).choice(len(records), size=sample, replace=False))
     for i in rows:
-        row = df.iloc[int(i)]
-        split = plan.split(row["split"])
-        scene = make_scene(plan, built.source, built.background, split, row)
+        row = records[int(i)]
         rep.rerendered += 1
-        if pixel_sha256(scene.image) != row["sha256"]:
+        if pixel_sha256(rerender(folder, row).image) != row["sha256"]:
             bad_render.append(row["image_id"])
+    rep.add_each(broken, "rows whose image cannot be read")
     if bad_sum:
         rep.add(f"{len(bad_sum)} stored images do not match their checksum, e.g. {', '.join(bad_sum[:3])}")
     if bad_render:
         rep.add(f"{len(bad_render)} images do not re-render identically from their rows, e.g. {', '.join(bad_render[:3])}")
-    return rep
-
-
-def _stored_bytes(root: Path, row) -> bytes | None:
-    """The encoded image a row points at (its file, or its embedded bytes); None if absent."""
-    if row.get("file"):
-        p = root / row["file"]
-        return p.read_bytes() if p.exists() else None
-    data = row.get("image_bytes")
-    if data is not None and not (isinstance(data, float) and np.isnan(data)):
-        return bytes(data)
-    return None

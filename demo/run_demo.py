@@ -116,7 +116,7 @@ def write_predictions(path: Path, m: pd.DataFrame, proba: np.ndarray, classes) -
 
 
 def run_one(name: str, spec: dict, out: Path, base_dir: Path, say=print) -> Run:
-    from augsplit.manifest import read_manifest
+    from augsplit.dataset import open_dataset, read_rows
 
     t = {}
     t0 = time.perf_counter()
@@ -125,14 +125,15 @@ def run_one(name: str, spec: dict, out: Path, base_dir: Path, say=print) -> Run:
     t["generate"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    m = read_manifest(root)
+    folder = open_dataset(root)
+    m = read_rows(folder)
     verdict, lines = audit(root, m, spec)
     t["audit"] = time.perf_counter() - t0
     say(f"[{name}] generated {len(m)} images in {t['generate']:.1f} s; audit {verdict.upper()} ({t['audit']:.1f} s)")
 
     t0 = time.perf_counter()
     images = load_images(root, m)
-    train_split, _ = S.dataset_roles(root)
+    train_split, _ = S.dataset_roles(folder)
     train = (m["split"] == train_split).to_numpy()
     y = m["class_index"].to_numpy()
     class_names = (m[["class_index", "class_name"]].drop_duplicates().sort_values("class_index")["class_name"].tolist())
@@ -151,8 +152,8 @@ def run_one(name: str, spec: dict, out: Path, base_dir: Path, say=print) -> Run:
         preds[label] = p
 
     t0 = time.perf_counter()
-    manifest = S.read_manifest(root)
-    tr, ref = S.dataset_roles(root)
+    manifest = S.manifest_of(folder)
+    tr, ref = S.dataset_roles(folder)
     results = [(label, S.score(manifest, S.load_predictions(p), tr, reference_split=ref)) for label, p in preds.items()]
     t["score"] = time.perf_counter() - t0
     facts = pixel_facts(models["pixels"], images, m, spec, train)

@@ -43,3 +43,25 @@ def assert_same_tree(a: Path, b: Path) -> None:
     assert sorted(ta) == sorted(tb)
     differ = [k for k in ta if ta[k] != tb[k]]
     assert not differ, f"files differ: {differ[:5]}"
+
+
+def snapshot(root: Path) -> dict[str, str]:
+    """Everything under root, folders and symbolic links included: relative path -> 'dir',
+    'link -> target' or the SHA-256 of the file's bytes (a checksum of the whole tree)."""
+    import hashlib
+    import os
+
+    out = {}
+    for dirpath, dirnames, filenames in os.walk(root):
+        for name in dirnames + filenames:
+            p = Path(dirpath) / name
+            rel = str(p.relative_to(root))
+            if p.is_symlink():
+                out[rel] = f"link -> {os.readlink(p)}"
+            elif p.is_dir():
+                out[rel] = "dir"
+            elif p.is_file():
+                out[rel] = hashlib.sha256(p.read_bytes()).hexdigest()
+            else:
+                out[rel] = "special"
+    return out

@@ -6,7 +6,7 @@ import shutil
 import pytest
 
 from augsplit.audit import run_audit
-from augsplit.manifest import read_manifest
+from augsplit.dataset import read_manifest
 
 SPEC = """
 seed: 7

@@ -14,8 +14,8 @@ import pytest
 from specs import spec_dict
 
 from augsplit.build import open_mapping
+from augsplit.dataset import read_manifest
 from augsplit.generate import Options, generate
-from augsplit.manifest import read_manifest
 
 SPEC = spec_dict(
     canvas={"width": 64, "height": 64, "mode": "rgb"},

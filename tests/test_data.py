@@ -20,6 +20,8 @@ import pytest
 from augsplit import manifest as mf
 from augsplit.build import open_mapping
 from augsplit.data import Dataset, DatasetIndexError, OnlineSampler
+from augsplit.dataset import layout as lay
+from augsplit.dataset import read_manifest
 from augsplit.errors import AugsplitError, DatasetError, SpecError
 from augsplit.generate import Options, generate
 from augsplit.paramlog import ParamLog, read_log
@@ -67,7 +69,7 @@ def none_ds(tmp_path_factory):
 def test_items_of_every_store_are_the_generated_pixels(files_ds, parquet_ds, none_ds):
     a, b, c = (Dataset(d, "train") for d in (files_ds, parquet_ds, none_ds))
     assert len(a) == len(b) == len(c) == 60
-    rows = mf.read_manifest(files_ds, splits=["train"])
+    rows = read_manifest(files_ds, splits=["train"])
     for i in range(len(a)):
         ia, ib, ic = a[i]["image"], b[i]["image"], c[i]["image"]
         assert ia.dtype == np.uint8 and ia.shape == (32, 32, 3)
@@ -78,7 +80,7 @@ def test_items_of_every_store_are_the_generated_pixels(files_ds, parquet_ds, non
 
 def test_item_carries_the_manifest_row_and_class_target(files_ds):
     ds = Dataset(files_ds, "test_right")
-    df = mf.read_manifest(files_ds, splits=["test_right"])
+    df = read_manifest(files_ds, splits=["test_right"])
     for i in (0, 7, len(ds) - 1):
         item = ds[i]
         assert item["target"] == int(df["class_index"][i])
@@ -167,7 +169,7 @@ def test_not_a_dataset(tmp_path):
 def test_manifest_of_another_spec_is_refused(files_ds, tmp_path):
     root = tmp_path / "mixed"
     shutil.copytree(files_ds, root)
-    part = mf.part_files(root)[0]
+    part = lay.part_files(root)[0]
     t = pq.read_table(part)
     md = dict(t.schema.metadata)
     md[mf.META_HASH] = b"0123456789abcdef"
@@ -180,7 +182,7 @@ def test_manifest_of_another_spec_is_refused(files_ds, tmp_path):
 def test_incomplete_dataset_is_refused(files_ds, tmp_path):
     root = tmp_path / "partial"
     shutil.copytree(files_ds, root)
-    (root / mf.SUMMARY_FILE).unlink()
+    (root / lay.SUMMARY_FILE).unlink()
     with pytest.raises(DatasetError, match="incomplete"):
         Dataset(root, "train")
 
@@ -259,7 +261,7 @@ def test_pickles_without_built_objects(none_ds):
     ds = Dataset(none_ds, "train", target="mask")
     first = ds[5]
     clone = pickle.loads(pickle.dumps(ds))
-    assert clone._built is None
+    assert "built" not in clone.folder._cache and "built" in ds.folder._cache
     assert np.array_equal(clone[5]["image"], first["image"])
     assert np.array_equal(clone[5]["target"], first["target"])
 
@@ -438,5 +440,5 @@ def test_sampler_from_a_dataset_folder(files_ds):
 
 def test_summary_lists_splits_in_spec_order(files_ds):
     # the split list in error messages follows dataset.json
-    summary = json.loads((files_ds / mf.SUMMARY_FILE).read_text())
+    summary = json.loads((files_ds / lay.SUMMARY_FILE).read_text())
     assert set(summary["splits"]) == {"train", "test_right"}

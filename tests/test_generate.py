@@ -12,8 +12,9 @@ import pyarrow.parquet as pq
 import pytest
 
 from augsplit import generate as gen
-from augsplit import manifest as mf
 from augsplit.build import open_mapping, open_spec
+from augsplit.dataset import layout as lay
+from augsplit.dataset import open_dataset, read_manifest
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate, shard_jobs
 from augsplit.verify import verify
@@ -34,10 +35,10 @@ SERIAL = QUICK = Options(shard_size=8, progress=False)
 
 def test_serial_run_is_a_verified_dataset_with_distractors(serial):
     assert verify(serial).ok
-    df = mf.read_manifest(serial)
+    df = read_manifest(serial)
     assert len(df) == 44 and sorted(df["image_id"]) == sorted(set(df["image_id"]))
     # the spec allows distractors: the second table exists and joins on image_id
-    d = mf.read_manifest(serial, mf.DISTRACTOR_DIR)
+    d = read_manifest(serial, lay.DISTRACTOR_DIR)
     assert len(d) == int(df["n_distractors"].sum()) > 0
     assert set(d["image_id"]) <= set(df["image_id"])
 
@@ -59,7 +60,7 @@ def test_small_row_groups_stream_the_same_rows(spec_file, serial, tmp_path, monk
     monkeypatch.setattr(gen, "ROW_GROUP_ROWS", 3)
     out = tmp_path / "rg"
     generate(spec_file, out, QUICK)
-    part = mf.part_path(out, mf.MANIFEST_DIR, "train", 0)
+    part = lay.part_path(out, lay.MANIFEST_DIR, "train", 0)
     md = pq.ParquetFile(part).metadata
     assert md.num_rows == 8 and md.num_row_groups == 3  # 3 + 3 + 2
     a, b = tree(serial), tree(out)
@@ -75,10 +76,10 @@ def test_small_row_groups_stream_the_same_rows(spec_file, serial, tmp_path, monk
 def test_parquet_store_packs_images_in_row_groups(spec_file, tmp_path):
     out = tmp_path / "pq"
     generate(spec_file, out, dataclasses.replace(QUICK, store="parquet", shard_size=30))
-    assert not (out / mf.IMAGES_DIR).exists()
-    parts = mf.part_files(out)
+    assert not (out / lay.IMAGES_DIR).exists()
+    parts = lay.part_files(out)
     assert len(parts) == 2  # one file per shard: train (30) and test (14)
-    df = mf.read_manifest(out)
+    df = read_manifest(out)
     assert df["image_bytes"].notna().all() and (df["file"] == "").all()
     assert verify(out).ok  # decodes every stored image and compares its checksum
 
@@ -96,14 +97,14 @@ def test_row_groups_of_large_canvases_are_bounded_by_bytes():
 def test_reopened_dataset_keeps_the_order_of_splits_and_axes(spec_file, serial):
     """Split order is part of every image's seed key and axis order of its draws: the spec a
     dataset folder re-opens must be the one it was made from, not a key-sorted copy."""
-    made, reopened = open_spec(spec_file).plan, gen.open_dataset_spec(serial).plan
+    made, reopened = open_spec(spec_file).plan, open_dataset(serial).plan
     assert [s.name for s in reopened.splits] == [s.name for s in made.splits] == ["train", "test"]
     assert reopened.space.names == made.space.names
     assert reopened.hash == made.hash
 
 
 def test_spec_json_records_the_storage_layout(serial):
-    doc = json.loads((serial / mf.SPEC_FILE).read_text())
+    doc = json.loads((serial / lay.SPEC_FILE).read_text())
     assert doc["layout"] == {"shard_size": 8, "store": "files", "format": "png", "quality": 95}
 
 
@@ -121,7 +122,7 @@ def test_resume_with_a_changed_shard_size_cannot_duplicate_rows(spec_file, tmp_p
     the recorded layout refuses the mix instead of guessing from row counts."""
     out = tmp_path / "d"
     generate(spec_file, out, dataclasses.replace(QUICK, array_shard=(0, 1)))
-    (out / mf.SUMMARY_FILE).unlink(missing_ok=True)
+    (out / lay.SUMMARY_FILE).unlink(missing_ok=True)
     with pytest.raises(DatasetError, match="--shard-size 8"):
         generate(spec_file, out, dataclasses.replace(QUICK, shard_size=4, resume=True))
 
@@ -149,7 +150,7 @@ def test_resume_of_a_complete_dataset_makes_nothing_and_keeps_bytes(spec_file, s
 
 def test_finalize_reads_the_shard_size_from_the_folder(spec_file, serial):
     built = open_spec(spec_file)
-    assert gen._shard_size_of(serial, built) == 8
+    assert open_dataset(serial).shard_size == 8
     assert len(shard_jobs(built, 8)) == 4 + 2
     assert finalize(serial)["images"] == 44
 

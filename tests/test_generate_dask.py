@@ -11,7 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from augsplit import manifest as mf
+from augsplit.dataset import layout as lay
+from augsplit.dataset import read_manifest
 from augsplit.generate import Options, generate
 from augsplit.verify import verify
 from specs import assert_same_tree
@@ -63,7 +64,7 @@ def _install_killer(marker: str, victim: tuple) -> None:
     def make_shard(built, job, out, opts):
         if (job.split, job.shard) == victim and not os.path.exists(marker):
             open(marker, "w").close()
-            img_dir = Path(out) / mf.IMAGES_DIR / job.split
+            img_dir = Path(out) / lay.IMAGES_DIR / job.split
             img_dir.mkdir(parents=True, exist_ok=True)
             (img_dir / f".{job.split}-{job.start:07d}.png.tmp-{os.getpid()}").write_bytes(b"\x89PNG half")
             os.kill(os.getpid(), signal.SIGKILL)
@@ -83,7 +84,7 @@ def test_a_worker_killed_mid_shard_loses_and_duplicates_nothing(spec_file, seria
         pids_after = set(client.run(os.getpid).values())
     assert marker.exists() and pids_after != pids_before  # a worker really died and was replaced
     assert_same_tree(serial, out)  # its shard was redone; its temporary file swept at the end
-    df = mf.read_manifest(out)
+    df = read_manifest(out)
     assert not df["image_id"].duplicated().any() and len(df) == 56
 
 

@@ -13,8 +13,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from augsplit import manifest as mf
 from augsplit.cli import main
+from augsplit.errors import DatasetError
+from augsplit.dataset import layout as lay
 from augsplit.generate import Options, generate
 from augsplit.verify import verify
 from specs import write_spec
@@ -63,24 +64,24 @@ def test_what_generate_makes_verifies(made, store):
 def test_cli_verify_exit_codes(made, copy, capsys):
     assert main(["verify", str(made["files"])]) == 0
     assert "OK (18 rows checked, 18 re-rendered identically)" in capsys.readouterr().out
-    next((copy / mf.IMAGES_DIR / "test").glob("*.png")).unlink()
+    next((copy / lay.IMAGES_DIR / "test").glob("*.png")).unlink()
     assert main(["verify", str(copy)]) == 1
     assert "missing" in capsys.readouterr().out
 
 
 def test_a_missing_image_is_named(copy):
-    victim = copy / mf.IMAGES_DIR / "train" / "train-0000003.png"
+    victim = copy / lay.IMAGES_DIR / "train" / "train-0000003.png"
     victim.unlink()
     assert "images/train/train-0000003.png" in problems(copy)
 
 
 def test_an_image_without_a_row_is_named(copy):
-    shutil.copyfile(copy / mf.IMAGES_DIR / "train" / "train-0000003.png", copy / mf.IMAGES_DIR / "train" / "stray.png")
+    shutil.copyfile(copy / lay.IMAGES_DIR / "train" / "train-0000003.png", copy / lay.IMAGES_DIR / "train" / "stray.png")
     assert "stray.png" in problems(copy)
 
 
 def test_changed_pixels_fail_the_checksum(copy):
-    p = copy / mf.IMAGES_DIR / "test" / "test-0000002.png"
+    p = copy / lay.IMAGES_DIR / "test" / "test-0000002.png"
     img = cv2.imread(str(p))
     img[0, 0] = 255 - img[0, 0]
     cv2.imwrite(str(p), img)
@@ -88,7 +89,7 @@ def test_changed_pixels_fail_the_checksum(copy):
 
 
 def test_a_missing_shard_fails_the_counts(copy):
-    mf.part_path(copy, mf.MANIFEST_DIR, "train", 1).unlink()
+    lay.part_path(copy, lay.MANIFEST_DIR, "train", 1).unlink()
     text = problems(copy)
     assert "split train: 7 rows, the plan says 12" in text
     assert "image without a row" in text  # its five images are now orphans
@@ -96,7 +97,7 @@ def test_a_missing_shard_fails_the_counts(copy):
 
 def test_an_edited_parameter_fails_the_re_render(copy):
     """A row whose recorded transform no longer matches its image (stored checksum intact)."""
-    part = mf.part_path(copy, mf.MANIFEST_DIR, "test", 0)
+    part = lay.part_path(copy, lay.MANIFEST_DIR, "test", 0)
     t = pq.read_table(part)
     cx = t.column("cx_px").to_numpy().copy()
     cx[1] += 3.0
@@ -106,14 +107,17 @@ def test_an_edited_parameter_fails_the_re_render(copy):
 
 
 def test_a_dataset_without_its_summary_is_incomplete(copy):
-    (copy / mf.SUMMARY_FILE).unlink()
-    assert "dataset.json is missing" in problems(copy)
+    (copy / lay.SUMMARY_FILE).unlink()
+    with pytest.raises(DatasetError, match="incomplete.*--resume"):
+        verify(copy)
+    rep = verify(copy, allow_incomplete=True)  # asked for explicitly: what is there is checked
+    assert rep.problems == ["dataset.json is missing: generation did not finish (rerun generate --resume, or --finalize)"]
 
 
 def test_stored_parquet_images_are_checked_too(made, tmp_path):
     dst = tmp_path / "pq"
     shutil.copytree(made["parquet"], dst)
-    part = mf.part_path(dst, mf.MANIFEST_DIR, "train", 0)
+    part = lay.part_path(dst, lay.MANIFEST_DIR, "train", 0)
     t = pq.read_table(part)
     blobs = t.column("image_bytes").to_pylist()
     img = cv2.imdecode(np.frombuffer(blobs[0], np.uint8), cv2.IMREAD_COLOR)

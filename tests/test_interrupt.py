@@ -16,8 +16,9 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from augsplit import manifest as mf
 from augsplit.cli import main
+from augsplit.dataset import layout as lay
+from augsplit.dataset import read_manifest
 from augsplit.generate import Options, generate
 from specs import tree
 
@@ -36,7 +37,7 @@ CLI = [sys.executable, "-m", "augsplit.cli"]
 
 
 def committed(out: Path) -> list[Path]:
-    return mf.part_files(out) if out.exists() else []
+    return lay.part_files(out) if out.exists() else []
 
 
 def assert_commits_are_whole(out: Path) -> None:
@@ -86,7 +87,7 @@ def resume_and_compare(spec_file: Path, out: Path, serial: Path, cli: bool = Fal
     a, b = tree(serial), tree(out)
     assert sorted(a) == sorted(b), (set(a) ^ set(b))
     assert [k for k in a if a[k] != b[k]] == []
-    df = mf.read_manifest(out)
+    df = read_manifest(out)
     assert len(df) == 500 and not df["image_id"].duplicated().any()
 
 
@@ -99,7 +100,7 @@ def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, serial, tmp
     assert proc.returncode == 130
     assert stderr.strip().splitlines() == ["augsplit generate: interrupted; rerun with --resume to continue"]
     assert group_gone(proc.pid)  # no worker outlives the run
-    assert not (out / mf.SUMMARY_FILE).exists() and len(committed(out)) < 100
+    assert not (out / lay.SUMMARY_FILE).exists() and len(committed(out)) < 100
     assert_commits_are_whole(out)
     resume_and_compare(spec_file, out, serial, cli=True)
 
@@ -115,7 +116,7 @@ def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_fi
     if alive:
         os.killpg(proc.pid, signal.SIGKILL)
     assert not alive, "worker processes outlived their killed driver"
-    assert not (out / mf.SUMMARY_FILE).exists()
+    assert not (out / lay.SUMMARY_FILE).exists()
     assert_commits_are_whole(out)
     resume_and_compare(spec_file, out, serial)
 
@@ -151,7 +152,7 @@ def failing_replace(out: Path, exc: OSError, after: int):
     count = {"n": 0}
 
     def replace(src, dst, *args, **kwargs):
-        if str(dst).startswith(str(out)) and not str(dst).endswith(mf.SPEC_FILE):
+        if str(dst).startswith(str(out)) and not str(dst).endswith(lay.SPEC_FILE):
             if count["n"] >= after:
                 raise type(exc)(exc.errno, exc.strerror, str(dst))
             count["n"] += 1

@@ -14,6 +14,8 @@ from specs import spec_dict
 
 from augsplit import manifest as mf
 from augsplit.build import open_mapping
+from augsplit.dataset import layout as lay
+from augsplit.dataset import read_manifest
 from augsplit.generate import Options, generate
 
 
@@ -34,21 +36,21 @@ def dataset(tmp_path_factory):
 
 def test_every_file_conforms_to_the_declared_schema(dataset):
     out, built = dataset
-    for f in mf.part_files(out):
+    for f in lay.part_files(out):
         schema = pq.read_schema(f)
         assert schema.remove_metadata().equals(mf.IMAGE_SCHEMA.remove_metadata())
         md = schema.metadata
         assert md[mf.META_HASH].decode() == built.plan.hash
         assert json.loads(md[mf.META_SPEC])["seed"] == built.spec.seed
         assert "pyarrow" in json.loads(md[mf.META_VERSIONS])
-    for f in mf.part_files(out, mf.DISTRACTOR_DIR):
+    for f in lay.part_files(out, lay.DISTRACTOR_DIR):
         assert pq.read_schema(f).remove_metadata().equals(mf.DISTRACTOR_SCHEMA.remove_metadata())
 
 
 def test_pandas_pyarrow_and_duckdb_read_the_same_rows(dataset):
     # three independent Parquet readers (pandas docs, Arrow docs, DuckDB docs: hive partitioning)
     out, _ = dataset
-    ours = mf.read_manifest(out).sort_values("image_id").reset_index(drop=True)
+    ours = read_manifest(out).sort_values("image_id").reset_index(drop=True)
     cols = ["image_id", "split", "class_name", "x", "y", "scale", "hue", "cx_px", "x_deg", "sha256"]
     by_pandas = pd.read_parquet(out / "manifest")
     by_pandas["split"] = by_pandas["split"].astype(str)
@@ -68,7 +70,7 @@ def test_positions_in_every_unit_agree(dataset):
     # deg columns are the exact visual angle of the px position (atan(offset / D)); the spec's
     # x is in deg, so x == x_deg; a hand computation from the viewing geometry (from memory)
     out, _ = dataset
-    m = mf.read_manifest(out)
+    m = read_manifest(out)
     d = 57 * 10
     assert np.allclose(m["x"], m["x_deg"])
     assert np.allclose(np.degrees(np.arctan((m["cx_px"] - 32) / d)), m["x_deg"])
@@ -77,8 +79,8 @@ def test_positions_in_every_unit_agree(dataset):
 
 def test_distractor_rows_match_their_scenes(dataset):
     out, _ = dataset
-    m = mf.read_manifest(out)
-    dist = mf.read_manifest(out, mf.DISTRACTOR_DIR)
+    m = read_manifest(out)
+    dist = read_manifest(out, lay.DISTRACTOR_DIR)
     per = dist.groupby("image_id").size()
     got = m.set_index("image_id")["n_distractors"]
     assert (per.reindex(got.index, fill_value=0) == got).all()
@@ -87,6 +89,6 @@ def test_distractor_rows_match_their_scenes(dataset):
 
 def test_one_row_group_per_shard(dataset):
     out, _ = dataset
-    for f in mf.part_files(out):
+    for f in lay.part_files(out):
         meta = pq.ParquetFile(f).metadata
         assert meta.num_row_groups == 1 and meta.num_rows <= 7

@@ -159,7 +159,7 @@ LANES = textwrap.dedent("""\
 @pytest.fixture(scope="module")
 def lanes(tmp_path_factory):
     from augsplit.generate import Options, generate
-    from augsplit.manifest import read_manifest
+    from augsplit.dataset import read_manifest
 
     root = tmp_path_factory.mktemp("lanes")
     spec = root / "lanes.yaml"

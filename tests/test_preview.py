@@ -8,11 +8,11 @@ import cv2
 import numpy as np
 import pytest
 
-from augsplit import manifest as mf
 from augsplit import preview as pv
 from augsplit.cli import main
+from augsplit.dataset import image_of, open_dataset, read_manifest
 from augsplit.errors import DatasetError
-from augsplit.generate import Options, generate, open_dataset_spec
+from augsplit.generate import Options, generate
 from specs import write_spec
 
 SPEC = {
@@ -53,8 +53,8 @@ def test_preview_writes_a_sheet_per_split_and_the_coverage_map(datasets):
 def test_coverage_counts_match_the_manifest_footprints(datasets):
     """Each split's map sums to the sum of its rows' footprint_px, and lies inside the union of
     their bounding boxes: the map is the renderer's footprints, not an approximation."""
-    built = open_dataset_spec(datasets["files"])
-    df = mf.read_manifest(datasets["files"])
+    built = open_dataset(datasets["files"]).built
+    df = read_manifest(datasets["files"])
     cov = pv.coverage(built, df)
     for name, counts in cov.counts.items():
         rows = df[df["split"] == name]
@@ -71,8 +71,8 @@ def test_coverage_counts_match_the_manifest_footprints(datasets):
 
 
 def test_coverage_samples_large_splits_evenly(datasets):
-    built = open_dataset_spec(datasets["files"])
-    cov = pv.coverage(built, mf.read_manifest(datasets["files"]), max_rows=5)
+    built = open_dataset(datasets["files"]).built
+    cov = pv.coverage(built, read_manifest(datasets["files"]), max_rows=5)
     assert cov.sampled["train"] == (5, 30)
 
 
@@ -91,10 +91,10 @@ def test_overlay_colours_each_role_and_blacks_out_shared_pixels():
 
 def test_every_store_previews_the_same_pixels(datasets):
     """Files decode, Parquet bytes decode, and --store none re-renders: the same image."""
-    dfs = {k: mf.read_manifest(v) for k, v in datasets.items()}
-    built = open_dataset_spec(datasets["files"])
+    dfs = {k: read_manifest(v) for k, v in datasets.items()}
+    folders = {k: open_dataset(v) for k, v in datasets.items()}
     for i in (0, 17, 45):
-        imgs = [pv.image_of(built, datasets[k], dfs[k].iloc[i]) for k in ("files", "parquet", "none")]
+        imgs = [image_of(folders[k], dfs[k].iloc[i]) for k in ("files", "parquet", "none")]
         assert np.array_equal(imgs[0], imgs[1]) and np.array_equal(imgs[0], imgs[2])
 
 
@@ -105,8 +105,8 @@ def test_pick_rows_spreads_over_the_split():
 
 
 def test_caption_names_the_class_and_every_varied_axis(datasets):
-    built = open_dataset_spec(datasets["files"])
-    row = mf.read_manifest(datasets["files"]).iloc[3]
+    built = open_dataset(datasets["files"]).built
+    row = read_manifest(datasets["files"]).iloc[3]
     text = pv.caption(built, row)
     assert text.splitlines()[0].startswith(row["class_name"])
     assert f"x {row['x']:.1f} px" in text and f"angle {row['angle']:.1f}°" in text and f"hue {row['hue']:.1f}°" in text

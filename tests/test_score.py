@@ -6,6 +6,7 @@ import json
 
 import numpy as np
 import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -37,14 +38,31 @@ def predictions_with(manifest, correct: np.ndarray) -> pd.DataFrame:
 
 
 def write_manifest(tmp_path, manifest):
-    """Lay the table out as the generator does: one part file per split, the project's schema."""
+    """Lay the table out as a finished dataset folder: spec.json (a spec with these splits),
+    one part file per split in the project's schema, and dataset.json."""
     from augsplit import manifest as mf
+    from augsplit.dataset import layout as lay
+    from augsplit.io import write_text_atomic
+    from augsplit.spec import canonical, parse_spec, spec_hash
 
     root = tmp_path / "ds"
-    for split, g in manifest.groupby("split"):
+    names = list(pd.unique(manifest["split"]))
+    spec = parse_spec({"seed": 1, "canvas": {"width": 64, "height": 64, "mode": "gray"},
+                       "objects": {"kind": "polyomino", "cells": 3, "cell_px": 4}, "axes": {"x": {"range": [0, 64]}},
+                       "splits": {n: {"region": {"x": [0, 64]}, "count": 1} for n in names}})
+    h = spec_hash(spec)
+    meta = mf.file_metadata(canonical(spec), h)
+    for split_index, (split, g) in enumerate(manifest.groupby("split", sort=False)):
         cols = {c: g[c].to_numpy() for c in g.columns if c != "split"}
-        table = mf.to_table(cols, mf.IMAGE_SCHEMA, mf.file_metadata("{}", "test"))
-        mf.write_part(mf.part_path(root, mf.MANIFEST_DIR, split, 0), table)
+        cols.setdefault("index", np.arange(len(g)))
+        cols.setdefault("split_index", np.full(len(g), split_index))
+        path = lay.part_path(root, lay.MANIFEST_DIR, split, 0)
+        path.parent.mkdir(parents=True)
+        pq.write_table(mf.to_table(cols, mf.IMAGE_SCHEMA, meta), path)
+    write_text_atomic(root / lay.SPEC_FILE, json.dumps({"spec_hash": h, "spec": spec.model_dump(mode="json"),
+                                                        "layout": {"shard_size": 1 << 30}}))
+    splits = {n: {"images": int((manifest["split"] == n).sum())} for n in names}
+    write_text_atomic(root / lay.SUMMARY_FILE, json.dumps({"spec_hash": h, "splits": splits}))
     return root
 
 
@@ -445,7 +463,7 @@ def test_unknown_training_split_and_missing_manifest(tmp_path, manifest):
     p = predictions_with(manifest, np.ones(len(manifest), bool))
     with pytest.raises(S.DatasetError, match=r"training split 'lane_a' is not in the dataset \(splits: train, test_far\)"):
         S.score(manifest, p, train_split="lane_a")
-    with pytest.raises(S.DatasetError, match="no manifest folder"):
+    with pytest.raises(S.DatasetError, match="not an augsplit dataset"):
         S.read_manifest(tmp_path)
 
 

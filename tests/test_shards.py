@@ -11,8 +11,8 @@ import sys
 import pytest
 import yaml
 
-from augsplit import manifest as mf
 from augsplit.cli import main
+from augsplit.dataset import layout as lay
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, finalize, generate
 from specs import tree
@@ -46,7 +46,7 @@ def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file,
         stdout, stderr = p.communicate(timeout=120)
         assert p.returncode == 0, stderr
         assert "--finalize" in stdout  # each job says what to do once all are done
-    assert not (out / mf.SUMMARY_FILE).exists()  # no job declares the dataset complete
+    assert not (out / lay.SUMMARY_FILE).exists()  # no job declares the dataset complete
     code, _o, err = cli(capsys, "generate", "--finalize", "--out", out)
     assert code == 0, err
     a, b = tree(serial), tree(out)
@@ -81,7 +81,7 @@ def test_finalize_names_the_missing_shards(spec_file, tmp_path, capsys):
     for name in ("train/part-000001 (shard #1 of 10)", "train/part-000005 (shard #5 of 10)",
                  "test/part-000002 (shard #9 of 10)"):
         assert name in err
-    assert not (out / mf.SUMMARY_FILE).exists()
+    assert not (out / lay.SUMMARY_FILE).exists()
 
 
 def test_a_job_of_another_spec_is_refused(spec_file, tmp_path, capsys):
@@ -100,18 +100,18 @@ def test_finalize_refuses_a_part_copied_from_another_specs_dataset(spec_file, se
     generate(other_spec, other, Options(shard_size=SIZE, progress=False))
     mixed = tmp_path / "mixed"
     shutil.copytree(serial, mixed)
-    (mixed / mf.SUMMARY_FILE).unlink()
-    stray = mf.part_path(mixed, mf.MANIFEST_DIR, "test", 1)
-    shutil.copyfile(mf.part_path(other, mf.MANIFEST_DIR, "test", 1), stray)
+    (mixed / lay.SUMMARY_FILE).unlink()
+    stray = lay.part_path(mixed, lay.MANIFEST_DIR, "test", 1)
+    shutil.copyfile(lay.part_path(other, lay.MANIFEST_DIR, "test", 1), stray)
     code, _o, err = cli(capsys, "generate", "--finalize", "--out", mixed)
     assert code == 2 and "another spec" in err and str(stray) in err
-    assert not (mixed / mf.SUMMARY_FILE).exists()
+    assert not (mixed / lay.SUMMARY_FILE).exists()
 
 
 def test_finalize_refuses_parts_no_shard_makes(spec_file, serial, tmp_path):
     mixed = tmp_path / "mixed"
     shutil.copytree(serial, mixed)
-    shutil.copyfile(mf.part_path(mixed, mf.MANIFEST_DIR, "test", 0), mf.part_path(mixed, mf.MANIFEST_DIR, "test", 7))
+    shutil.copyfile(lay.part_path(mixed, lay.MANIFEST_DIR, "test", 0), lay.part_path(mixed, lay.MANIFEST_DIR, "test", 7))
     with pytest.raises(DatasetError, match="no shard of this spec makes"):
         finalize(mixed)
 
@@ -127,8 +127,8 @@ def test_overwrite_with_shard_is_refused(spec_file, serial, tmp_path):
 def test_finalize_sweeps_temporaries_left_by_killed_jobs(spec_file, serial, tmp_path):
     copy = tmp_path / "copy"
     shutil.copytree(serial, copy)
-    (copy / mf.SUMMARY_FILE).unlink()
-    stray = copy / mf.IMAGES_DIR / "train" / ".train-0000003.png.tmp-999"
+    (copy / lay.SUMMARY_FILE).unlink()
+    stray = copy / lay.IMAGES_DIR / "train" / ".train-0000003.png.tmp-999"
     stray.write_bytes(b"half an image")
     finalize(copy)
     assert not stray.exists() and tree(copy) == tree(serial)
@@ -142,10 +142,10 @@ def test_more_jobs_than_shards_is_harmless(spec_file, tmp_path):
 def test_a_job_array_peer_mid_start_is_not_mistaken_for_a_stranger(spec_file, tmp_path):
     """A peer has created the folder and its manifest/ but not yet renamed spec.json in."""
     out = tmp_path / "d"
-    (out / mf.MANIFEST_DIR).mkdir(parents=True)
+    (out / lay.MANIFEST_DIR).mkdir(parents=True)
     (out / ".spec.json.tmp-123").write_text("{")
     generate(spec_file, out, Options(shard_size=SIZE, progress=False, array_shard=(0, 4)))
-    assert (out / mf.SPEC_FILE).exists()
+    assert (out / lay.SPEC_FILE).exists()
     stranger = tmp_path / "s"
     stranger.mkdir()
     (stranger / "notes.txt").write_text("mine")

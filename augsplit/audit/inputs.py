@@ -201,19 +201,10 @@ def open_table(table, column_map: dict | None = None, root=None) -> TableSource:
         _check_mapped(mapping, head.columns)
         cols = _mapped_names(list(head.columns), mapping)
         return TableSource(None, (path,), "csv", tuple(cols), mapping, Path(root) if root else path.parent)
-    files: list[Path]
-    base = path
-    if path.is_dir():
-        scan = path / "manifest" if (path / "manifest").is_dir() else path
-        files = sorted(p for p in scan.rglob("*.parquet") if p.is_file())
-        if not files:
-            raise DatasetError("no Parquet files found", where=str(scan))
-    else:
-        files, base = [path], path.parent
+    files, splits, base = _parquet_files(path)
     import pyarrow.parquet as pq
 
     names: list[str] = []
-    splits: list[str | None] = []
     for f in files:
         try:
             schema = pq.ParquetFile(f).schema_arrow
@@ -222,13 +213,41 @@ def open_table(table, column_map: dict | None = None, root=None) -> TableSource:
         for n in schema.names:
             if n not in names:
                 names.append(n)
-        splits.append(next((part.split("=", 1)[1] for part in f.parts if part.startswith("split=")), None))
     if "split" not in names and all(s is not None for s in splits):
         names.append("split")  # hive-style partition folders carry the split
     _check_mapped(mapping, names)
     cols = _mapped_names(names, mapping)
     return TableSource(None, tuple(files), "parquet", tuple(cols), mapping,
                        Path(root) if root else base, tuple(splits))
+
+
+def _parquet_files(path: Path) -> tuple[list[Path], list[str | None], Path]:
+    """(files, split of each from its hive folder, folder image paths resolve in). An augsplit
+    dataset folder is opened by augsplit.dataset (checked, unfinished ones refused); any other
+    folder is discovered by pyarrow.dataset with hive partitioning (`split=<name>` folders)."""
+    if not path.is_dir():
+        return [path], [None], path.parent
+    from ..dataset import layout as lay
+    from ..dataset import open_dataset
+
+    if (path / lay.SPEC_FILE).exists():
+        parts = open_dataset(path).parts_of(lay.MANIFEST_DIR)
+        return [p.path for p in parts], [p.split for p in parts], path
+    import pyarrow as pa
+    import pyarrow.dataset as pds
+
+    scan = path / lay.MANIFEST_DIR if (path / lay.MANIFEST_DIR).is_dir() else path
+    try:
+        key = pa.schema([("split", pa.string())])
+        # the schema given, files are only listed here: each is read (and checked) later
+        found = pds.dataset(scan, schema=key, format="parquet", partitioning=pds.partitioning(key, flavor="hive"))
+        frags = sorted(((Path(f.path), pds.get_partition_keys(f.partition_expression).get("split"))
+                        for f in found.get_fragments()), key=lambda t: str(t[0]))
+    except (OSError, pa.ArrowException) as exc:
+        raise DatasetError(f"cannot read the folder as Parquet: {str(exc).splitlines()[0]}", where=str(scan)) from None
+    if not frags:
+        raise DatasetError("no Parquet files found", where=str(scan))
+    return [f for f, _ in frags], [s for _, s in frags], path
 
 
 def _mapped_names(names: list[str], mapping: dict) -> list[str]:
@@ -240,37 +259,23 @@ def _mapped_names(names: list[str], mapping: dict) -> list[str]:
 
 def decode_image(data: bytes, where: str) -> np.ndarray:
     """Encoded bytes (PNG, JPEG, WebP ...) -> RGB(A) or grey uint8 array."""
-    import cv2
+    from ..dataset.images import decode_any
 
-    img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
-    if img is None:
-        raise DatasetError("cannot decode the image", where=where)
-    return _to_rgb(img)
+    return decode_any(data, where)
 
 
-def read_image(path: Path) -> np.ndarray:
-    import cv2
+def read_image(root: Path, rel: str) -> np.ndarray:
+    """The image file a table row names, read inside the table's folder (the closed box of
+    augsplit.dataset.images: no path out of it, regular files only, a size limit)."""
+    from ..dataset.images import FOREIGN_MAX_BYTES, decode_any, read_inside
 
-    img = cv2.imread(str(path), cv2.IMREAD_UNCHANGED)
-    if img is None:
-        raise DatasetError("missing or unreadable image file", where=str(path))
-    return _to_rgb(img)
-
-
-def _to_rgb(img: np.ndarray) -> np.ndarray:
-    import cv2
-
-    if img.dtype != np.uint8:
-        img = (img / 257).astype(np.uint8) if img.dtype == np.uint16 else img.astype(np.uint8)
-    if img.ndim == 3 and img.shape[2] == 3:
-        return cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
-    if img.ndim == 3 and img.shape[2] == 4:
-        return cv2.cvtColor(img, cv2.COLOR_BGRA2RGBA)
-    return img
+    return decode_any(read_inside(root, rel, FOREIGN_MAX_BYTES, where=rel), where=rel)
 
 
 def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> None:
     """Raise one DatasetError naming the first listed image missing on disk, and the count."""
+    from ..dataset.images import ImageError, resolve_inside
+
     names = files.astype(str).to_numpy()
     listed = np.flatnonzero((names != "") & (names != "None") & (names != "nan"))
     base = root or Path(".")
@@ -279,3 +284,8 @@ def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> 
         first = missing[0]
         raise DatasetError(f"{len(missing)} listed image(s) missing on disk (first at row {int(rows[first])})",
                            where=str(base / names[first]))
+    for i in listed:
+        try:
+            resolve_inside(base, names[i])
+        except ImageError as exc:
+            raise DatasetError(f"row {int(rows[i])}: {exc.message}", where=str(base)) from None

@@ -375,7 +375,7 @@ class _Fingerprints:
         def from_file(r):
             if not self.has_file[r]:
                 raise DatasetError("row has neither image bytes nor an image file", where=f"row {int(r)}")
-            return read_image(root / names[r])
+            return read_image(root, names[r])
 
         if self.kind == "file":
             yield from _ordered_map(from_file, rows)

@@ -1,0 +1,115 @@
+"""The generator's side of a dataset folder: create or reopen it for a run (fresh, --resume,
+--overwrite, a job-array peer), record the spec and storage layout in spec.json, tell whether
+a shard is committed, and sweep temporaries. Every image and part path is made by `layout`
+and checked to stay inside the folder."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pyarrow.parquet as pq
+
+from ..errors import DatasetError
+from ..io import write_text_atomic
+from . import layout as lay
+from . import overwrite
+from .folder import LAYOUT_KEYS, read_spec_doc
+
+
+def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_old: bool = False,
+            array_shard=None, spec_path=None) -> None:
+    """Create or reopen the output folder; refuse to clobber anything without --overwrite."""
+    out = Path(out)
+    for s in built.plan.splits:  # every split becomes folder names: refuse one that would leave `out`
+        lay.component(s.name, f"split {s.name!r}")
+    if out.exists() and not out.is_dir():
+        raise DatasetError("the output path is a file, not a folder", where=str(out))
+    if array_shard is not None and overwrite_old:
+        raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
+                           "others' work; remove the folder once, then submit the array", where=str(out))
+    if out.exists() and any(out.iterdir()):
+        if overwrite_old:
+            overwrite.clear(out, spec_path)
+        elif resume or array_shard is not None:
+            check_resumable(out, built.plan.hash, layout, peer=array_shard is not None)
+            if array_shard is None:
+                # only a whole-run resume may sweep temporaries: job-array peers may be writing now
+                remove_temporaries(out)
+        else:
+            raise DatasetError("the output folder exists and is not empty; use --resume to continue it "
+                               "or --overwrite to replace it", where=str(out))
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        spec_file = out / lay.SPEC_FILE
+        if not spec_file.exists():
+            # the spec in its own key order: the order of splits and axes is part of every
+            # image's seed key and of its draws, so a sorted copy would re-make other images
+            doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
+                   "layout": layout, "spec": built.spec.model_dump(mode="json")}
+            write_text_atomic(spec_file, json.dumps(doc, indent=2))
+    except PermissionError as exc:
+        raise DatasetError("permission denied", where=str(exc.filename or out)) from None
+    except OSError as exc:
+        raise DatasetError(f"cannot create the output folder: {exc.strerror}", where=str(exc.filename or out)) from None
+
+
+def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False) -> None:
+    """The folder holds a run of this spec with these storage options (or, for a job-array
+    peer, is being started by another peer)."""
+    if not (out / lay.SPEC_FILE).exists():
+        # a job-array peer may have made the folder a moment ago and not yet renamed spec.json in
+        strangers = [p.name for p in out.iterdir()
+                     if p.name not in lay.OWN_ENTRIES and not p.name.startswith(f".{lay.SPEC_FILE}.tmp")]
+        if not peer or strangers:
+            raise DatasetError("the folder is not empty and holds no augsplit dataset to resume", where=str(out))
+        return
+    old = read_spec_doc(out)
+    if old["spec_hash"] != spec_hash:
+        raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
+                           f"this spec's hash is {spec_hash}", where=str(out))
+    recorded = old.get("layout")
+    if recorded and recorded != layout:
+        want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in LAYOUT_KEYS if recorded.get(k) != layout.get(k))
+        raise DatasetError(f"the folder was started with other storage options; rerun with {want}", where=str(out))
+
+
+def remove_temporaries(out: Path) -> None:
+    """Sweep temporaries of atomic writes a killed run left in augsplit's own folders."""
+    for entry in lay.TABLES + (lay.IMAGES_DIR,):
+        base = out / entry
+        if base.is_dir() and not base.is_symlink():
+            for sub in base.iterdir():
+                if sub.is_dir() and not sub.is_symlink():
+                    for f in sub.iterdir():
+                        if lay.is_temporary(f.name) and f.is_file() and not f.is_symlink():
+                            f.unlink(missing_ok=True)
+    for f in out.iterdir():
+        if lay.is_temporary(f.name) and f.is_file() and not f.is_symlink():
+            f.unlink(missing_ok=True)
+
+
+def part_complete(out: Path, split: str, shard: int, rows: int) -> bool:
+    """Whether a shard is committed: its manifest part is there with all its rows (an
+    unreadable part, left by a crash of the storage, is removed so the shard is redone)."""
+    p = lay.part_path(out, lay.MANIFEST_DIR, split, shard)
+    if not p.exists():
+        return False
+    try:
+        return pq.ParquetFile(p).metadata.num_rows == rows
+    except Exception:  # noqa: BLE001 - an unreadable part is simply redone
+        p.unlink(missing_ok=True)
+        return False
+
+
+def writable_dir(out: Path, table_or_images: str, split: str) -> Path:
+    """The folder a shard writes into (`manifest/split=<s>`, `images/<s>` ...), created, and
+    checked to lie inside `out` with no symbolic link on the way."""
+    if table_or_images == lay.IMAGES_DIR:
+        d = lay.image_dir(out, split)
+    else:
+        d = lay.part_path(out, table_or_images, split, 0).parent
+    lay.no_symlink_below(out, d)
+    d.mkdir(parents=True, exist_ok=True)
+    lay.no_symlink_below(out, d)
+    return d

@@ -1,0 +1,241 @@
+"""The image of a manifest row, in one place: its file, its embedded bytes, or a re-render
+from the row alone; and the codecs that encode and decode stored images.
+
+The dataset is a closed box: a `file` path from a manifest is resolved inside the dataset
+folder (no `..`, no absolute path, no symbolic link out), must name a regular file (never a
+FIFO, device or folder), and is read with a size limit derived from the canvas. Any violation,
+and any image that does not decode to the canvas, is an ImageError naming split and image id:
+verify and audit report it as a finding, loaders raise it.
+"""
+
+from __future__ import annotations
+
+import os
+import stat
+from dataclasses import dataclass
+from pathlib import Path, PurePosixPath
+
+import cv2
+import numpy as np
+
+from ..errors import DatasetError
+
+FORMATS = {"png": ".png", "jpeg": ".jpg", "webp": ".webp"}
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the first 8 bytes of every PNG file (PNG spec, section 5.2)
+
+
+class ImageError(DatasetError):
+    """The stored image of one row cannot be had; `where` names the split and image id."""
+
+
+def row_where(row) -> str:
+    return f"split {row.get('split', '?')}, image {row.get('image_id', '?')}"
+
+
+# ---- codecs -------------------------------------------------------------------------------
+
+
+def encode(image: np.ndarray, fmt: str, quality: int) -> bytes:
+    img = image[..., 0] if image.shape[2] == 1 else cv2.cvtColor(image, cv2.COLOR_RGB2BGR)
+    params = {"png": [], "jpeg": [cv2.IMWRITE_JPEG_QUALITY, quality], "webp": [cv2.IMWRITE_WEBP_QUALITY, quality]}[fmt]
+    ok, buf = cv2.imencode(FORMATS[fmt], img, params)
+    if not ok:
+        raise DatasetError(f"OpenCV could not encode a {fmt} image")
+    return buf.tobytes()
+
+
+def decode(data: bytes, channels: int, where: str | None = None, hw: tuple[int, int] | None = None) -> np.ndarray:
+    """Encoded bytes -> (H, W, C) uint8, RGB or grey (C = 1); with `hw`, the size is checked
+    (before decoding, for PNG, so a small file cannot claim a huge picture)."""
+    if hw is not None:
+        _check_png_size(data, hw, where)
+    img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_GRAYSCALE if channels == 1 else cv2.IMREAD_COLOR)
+    if img is None:
+        raise ImageError("the stored image cannot be decoded (corrupt or not an image)", where=where)
+    if hw is not None and img.shape[:2] != tuple(hw):
+        raise ImageError(f"the stored image is {img.shape[1]}x{img.shape[0]}, the canvas {hw[1]}x{hw[0]}", where=where)
+    return img[..., None] if channels == 1 else cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+
+
+def decode_any(data: bytes, where: str | None = None) -> np.ndarray:
+    """Encoded bytes of any image (PNG, JPEG, WebP ...) -> RGB(A) or grey uint8, as stored."""
+    img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
+    if img is None:
+        raise ImageError("cannot decode the image", where=where)
+    return to_rgb(img)
+
+
+def to_rgb(img: np.ndarray) -> np.ndarray:
+    """OpenCV's BGR(A) (any depth) -> RGB(A) uint8; grey stays grey."""
+    if img.dtype != np.uint8:
+        img = (img / 257).astype(np.uint8) if img.dtype == np.uint16 else img.astype(np.uint8)
+    if img.ndim == 3 and img.shape[2] == 3:
+        return cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+    if img.ndim == 3 and img.shape[2] == 4:
+        return cv2.cvtColor(img, cv2.COLOR_BGRA2RGBA)
+    return img
+
+
+def _check_png_size(data: bytes, hw: tuple[int, int], where) -> None:
+    # PNG spec, section 11.2.2: IHDR is the first chunk; width and height are big-endian at 16..24
+    if data[:8] == PNG_SIGNATURE and len(data) >= 24 and data[12:16] == b"IHDR":
+        w, h = int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
+        if (h, w) != tuple(hw):
+            raise ImageError(f"the stored image is {w}x{h}, the canvas {hw[1]}x{hw[0]}", where=where)
+
+
+# the most bytes read for one image a foreign table names (no canvas to derive a bound from)
+FOREIGN_MAX_BYTES = 256 << 20
+
+
+def max_bytes(hw: tuple[int, int], channels: int) -> int:
+    """The most bytes a stored image of this canvas may take: twice the raw pixels plus 1 MiB.
+    Generous (PNG never grows much beyond the raw size; JPEG and WebP stay below it), finite."""
+    return 2 * int(hw[0]) * int(hw[1]) * int(channels) + (1 << 20)
+
+
+# ---- the closed box -----------------------------------------------------------------------
+
+
+class Box:
+    """A folder as a closed box for the relative paths a table names (see the module
+    docstring). Each folder on the way is resolved once per box; the file itself is checked
+    with lstat before it is opened (no symbolic link, FIFO or device is ever opened through
+    it) and again with fstat after."""
+
+    def __init__(self, root: str | Path):
+        self.root = str(root)
+        self.base = os.path.realpath(root)
+        self._dirs: set[str] = set()
+
+    def _lexical(self, rel, where) -> PurePosixPath:
+        if not isinstance(rel, str) or not rel:
+            raise ImageError("the row names no image file", where=where)
+        p = PurePosixPath(rel)
+        if p.is_absolute() or rel.startswith("~") or ".." in p.parts or "\\" in rel or "\x00" in rel:
+            raise ImageError(f"image path {rel!r} leaves the dataset folder; it was not read", where=where)
+        return p
+
+    def _inside(self, real: str) -> bool:
+        return real == self.base or real.startswith(self.base.rstrip(os.sep) + os.sep)
+
+    def resolve(self, rel, where: str | None = None) -> Path:
+        """The real path of the regular file `rel` names inside the box, every link resolved."""
+        self._lexical(rel, where)
+        real = os.path.realpath(os.path.join(self.base, rel))
+        if not self._inside(real):
+            raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+                             where=where)
+        self._check_mode(self._stat(os.stat, real, rel, where), rel, where)
+        return Path(real)
+
+    def _stat(self, how, path: str, rel: str, where):
+        try:
+            return how(path)
+        except FileNotFoundError:
+            raise ImageError(f"image file {os.path.join(self.root, rel)} is missing", where=where) from None
+        except OSError as exc:
+            raise ImageError(f"image file {os.path.join(self.root, rel)} cannot be read: {exc.strerror}",
+                             where=where) from None
+
+    @staticmethod
+    def _check_mode(st, rel, where, limit: int | None = None) -> None:
+        if not stat.S_ISREG(st.st_mode):
+            raise ImageError(f"image path {rel!r} is not a regular file; it was not read", where=where)
+        if limit is not None and st.st_size > limit:
+            raise ImageError(f"image file {rel} has {st.st_size} bytes, more than the {limit} any image of this "
+                             "canvas may take; it was not read", where=where)
+
+    def read(self, rel, limit: int, where: str | None = None) -> bytes:
+        """The bytes of the regular file `rel` inside the box, at most `limit` of them."""
+        p = self._lexical(rel, where)
+        folder = str(p.parent)
+        if folder not in self._dirs:
+            real = os.path.realpath(os.path.join(self.base, folder))
+            if not self._inside(real):
+                raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+                                 where=where)
+            if os.path.isdir(real):  # a folder that is not there yet is checked again next time
+                self._dirs.add(folder)
+        path = os.path.join(self.base, rel)
+        st = self._stat(os.lstat, path, rel, where)
+        if stat.S_ISLNK(st.st_mode):
+            path = str(self.resolve(rel, where))  # a link that stays inside is followed
+            st = self._stat(os.lstat, path, rel, where)
+        self._check_mode(st, rel, where, limit)
+        try:
+            # O_NONBLOCK: were the file swapped for a FIFO since the check, open must not wait
+            fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
+        except OSError as exc:
+            raise ImageError(f"image file {rel} cannot be opened: {exc.strerror}", where=where) from None
+        with os.fdopen(fd, "rb") as f:
+            self._check_mode(os.fstat(f.fileno()), rel, where, limit)
+            data = f.read(limit + 1)
+        if len(data) > limit:
+            raise ImageError(f"image file {rel} grew beyond {limit} bytes while read", where=where)
+        return data
+
+
+def resolve_inside(root: Path, rel, where: str | None = None) -> Path:
+    """The real path of the regular file `rel` names inside `root` (see Box), or ImageError."""
+    return Box(root).resolve(rel, where)
+
+
+def read_inside(root: Path, rel, limit: int, where: str | None = None) -> bytes:
+    """The bytes of the regular file `rel` names inside `root`, at most `limit` (see Box)."""
+    return Box(root).read(rel, limit, where)
+
+
+# ---- the image of a row ---------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class RowImage:
+    image: np.ndarray  # (H, W, C) uint8
+    placed: object | None  # the target's Placed when re-rendered, else None
+    lossless: bool  # PNG, or re-rendered: pixels must equal the row's sha256
+
+
+def _embedded(row):
+    data = row.get("image_bytes") if hasattr(row, "get") else None
+    return bytes(data) if isinstance(data, (bytes, bytearray, memoryview)) else None
+
+
+def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
+    """The encoded image a row stores (its file, else its embedded bytes), None when it stores
+    none (`--store none`). ImageError when the file breaks the closed box or is too large."""
+    where = row_where(row)
+    limit = max_bytes(folder.hw, folder.channels)
+    rel = row.get("file")
+    if isinstance(rel, str) and rel:
+        return folder.box.read(rel, limit, where)
+    data = data if data is not None else _embedded(row)
+    if data is not None and len(data) > limit:
+        raise ImageError(f"embedded image of {len(data)} bytes, more than any image of this canvas", where=where)
+    return data
+
+
+def load(folder, row, *, data: bytes | None = None) -> RowImage:
+    """The image of a row: stored (file or bytes, decoded and size-checked) or re-rendered.
+    `data` passes embedded bytes a caller has already read."""
+    stored = stored_bytes(folder, row, data)
+    if stored is not None:
+        img = decode(stored, folder.channels, row_where(row), folder.hw)
+        return RowImage(img, None, stored[:8] == PNG_SIGNATURE)
+    scene = rerender(folder, row)
+    return RowImage(scene.image, scene.target, True)
+
+
+def image_of(folder, row) -> np.ndarray:
+    """The image of a row as an (H, W, C) uint8 array (see `load`)."""
+    return load(folder, row).image
+
+
+def rerender(folder, row):
+    """The Scene of a row, re-made from the row alone: its own seed key, its parameters."""
+    from ..scene import make_scene
+    from ..space.sample import RENDER, lazy_image_rng
+
+    built = folder.built
+    rng = lazy_image_rng(int(row["seed"]), int(row["split_index"]), int(row["index"]), RENDER)
+    return make_scene(built.plan, built.source, built.background, built.plan.split(row["split"]), row, rng=rng)

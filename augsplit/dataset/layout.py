@@ -1,0 +1,94 @@
+"""The names of augsplit's own dataset layout, and the paths built from them.
+
+Every path below a dataset folder is made here, one checked component at a time, so a name
+read from a spec or a manifest can never point outside the folder (`..`, `/`, absolute).
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from pathlib import Path
+
+from ..errors import DatasetError
+from ..manifest import PARTITION
+
+SPEC_FILE, SUMMARY_FILE = "spec.json", "dataset.json"
+MANIFEST_DIR, DISTRACTOR_DIR, IMAGES_DIR = "manifest", "distractors", "images"
+AUDIT_DIR, SCORE_DIR, PREVIEW_DIR = "audit", "score", "preview"  # default report folders of each command
+TABLES = (MANIFEST_DIR, DISTRACTOR_DIR)
+REPORT_DIRS = (AUDIT_DIR, SCORE_DIR, PREVIEW_DIR)
+OWN_ENTRIES = (SPEC_FILE, SUMMARY_FILE, *TABLES, IMAGES_DIR, *REPORT_DIRS)
+
+PART_RE = re.compile(r"part-(\d{6,})\.parquet")
+IMAGE_RE = re.compile(r"(?P<split>.+)-\d{7,}\.(png|jpg|webp)")
+REPORT_SUFFIXES = (".json", ".html", ".csv", ".png")  # what audit, score and preview write
+
+
+def is_temporary(name: str) -> bool:
+    """A temporary file of an atomic write (a hidden name with a `.tmp` tag), ours to sweep."""
+    return name.startswith(".") and ".tmp" in name
+
+
+def component(name: str, what: str = "name") -> str:
+    """`name` as one path component: never empty, `.`, `..`, or holding a separator."""
+    if (not isinstance(name, str) or name in ("", ".", "..") or "/" in name or "\\" in name or "\x00" in name
+            or os.sep in name):
+        raise DatasetError(f"{name!r} cannot be a file or folder name inside the dataset folder", where=what)
+    return name
+
+
+def partition_dir(split: str) -> str:
+    return f"{PARTITION}={component(split, 'split')}"
+
+
+def split_of(part: Path) -> str:
+    """The split a part file belongs to, from its `split=<name>` folder."""
+    return Path(part).parent.name.split("=", 1)[1]
+
+
+def part_name(shard: int) -> str:
+    return f"part-{int(shard):06d}.parquet"
+
+
+def part_path(root: str | Path, table: str, split: str, shard: int) -> Path:
+    """Where one shard's rows of one table go: <root>/<table>/split=<name>/part-<shard>.parquet."""
+    return Path(root) / component(table, "table") / partition_dir(split) / part_name(shard)
+
+
+def part_files(root: str | Path, table: str = MANIFEST_DIR) -> list[Path]:
+    """The committed part files of a table (temporaries are hidden names, so never listed)."""
+    return sorted(p for p in (Path(root) / table).glob(f"{PARTITION}=*/part-*.parquet") if PART_RE.fullmatch(p.name))
+
+
+def shard_of(part: Path) -> int:
+    m = PART_RE.fullmatch(Path(part).name)
+    return int(m.group(1)) if m else -1
+
+
+def expected_parts(totals: dict[str, int], shard_size: int) -> set[tuple[str, int]]:
+    """(split, shard) of every manifest part a dataset of these split sizes and shard size has."""
+    return {(name, k) for name, n in totals.items() for k in range(-(-int(n) // int(shard_size)))}
+
+
+def image_dir(root: str | Path, split: str) -> Path:
+    return Path(root) / IMAGES_DIR / component(split, "split")
+
+
+def image_relpath(split: str, image_id: str, suffix: str) -> str:
+    """A stored image's path relative to the dataset folder (the manifest's `file` column)."""
+    return f"{IMAGES_DIR}/{component(split, 'split')}/{component(image_id + suffix, 'image id')}"
+
+
+def no_symlink_below(root: Path, path: Path) -> Path:
+    """`path` (below `root`), refusing when any existing folder or file on the way is a
+    symbolic link: a write through one could land outside the dataset folder."""
+    root, path = Path(root), Path(path)
+    rel = path.relative_to(root)
+    p = root
+    for part in rel.parts:
+        p = p / part
+        if p.is_symlink():
+            raise DatasetError("a symbolic link inside the dataset folder; augsplit writes only to its own folders",
+                               where=str(p))
+    return path
