@@ -1,35 +1,206 @@
-"""Safe file writing: everything lands under a temporary name and is renamed into place,
-so an interrupted run never leaves a half-written file behind. Also: plain JSON values."""
+"""Safe writing, the one way augsplit puts a file on disk: a temporary name in the same folder,
+flushed and fsynced, renamed over a missing path or a regular file only (never a symlink,
+FIFO, device or folder), then the folder fsynced. Also `-` as stdout, report folders, and
+plain JSON values."""
 
 from __future__ import annotations
 
+import errno
 import math
 import os
+import secrets
+import stat
+import sys
 from contextlib import contextmanager
 from pathlib import Path
+
+from .errors import DatasetError
+
+STDOUT = "-"  # an --out of "-" means standard output
+
+# errno values that mean "the storage cannot take more", whatever the file
+_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
+_KINDS = ((stat.S_ISLNK, "a symbolic link"), (stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a FIFO"),
+          (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+
+
+def is_stdout(path) -> bool:
+    return isinstance(path, str) and path == STDOUT
+
+
+def _kind(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "not a regular file")
+
+
+def check_target(path: str | Path) -> Path:
+    """`path` as a Path, if a write may land there: it is missing or a regular file.
+
+    Raises DatasetError naming the path when it is a symlink, FIFO, device, socket or folder
+    (the link itself is judged, not what it points to)."""
+    p = Path(path)
+    try:
+        mode = os.lstat(p).st_mode
+    except FileNotFoundError:
+        return p
+    except OSError as exc:
+        raise os_error(exc, p) from None
+    if not stat.S_ISREG(mode):
+        raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file",
+                           where=str(p))
+    return p
+
+
+def refuse_input(out: str | Path, source: str | Path) -> None:
+    """Refuse (one line) an output that would replace the input `source` (the same file, by
+    any name) or land inside it when it is a folder."""
+    if is_stdout(out) or not os.path.lexists(source):
+        return
+    o, s = Path(out), Path(source)
+    if os.path.lexists(o) and os.path.samefile(o, s):
+        raise DatasetError("is the input table; augsplit never replaces its input, give another --out", where=str(o))
+    if s.is_dir() and o.resolve().is_relative_to(s.resolve()):
+        raise DatasetError(f"lies inside the input folder {s}; a new file there would join the table", where=str(o))
+
+
+def fsync_folder(path: str | Path) -> None:
+    """Make the folder's entries (a rename, a new file) durable. File systems that cannot
+    sync a folder (EINVAL) are left as they are."""
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    try:
+        os.fsync(fd)
+    except OSError as exc:
+        if exc.errno not in (errno.EINVAL, errno.ENOTSUP):
+            raise
+    finally:
+        os.close(fd)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def temporary_name(path: Path) -> Path:
+    """The temporary sibling a write goes to first: hidden, and matching `.*.tmp-*`."""
+    return path.with_name(f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(3)}")
 
 
 @contextmanager
 def atomic_path(path: str | Path):
-    """Yield a temporary path next to `path`; on success rename it over `path`."""
-    p = Path(path)
-    tmp = p.with_name(f".{p.name}.tmp-{os.getpid()}")
+    """Yield a temporary path next to `path` for the caller to write and close; on success
+    fsync it, rename it over `path` and fsync the folder. On failure the temporary goes.
+
+    Refuses (DatasetError) a target that is not missing or a regular file. OSErrors of the
+    storage propagate unchanged (see `os_error` for a one-line version)."""
+    p = check_target(path)
+    tmp = temporary_name(p)
     try:
         yield tmp
+        _fsync_file(tmp)
+        check_target(p)  # again: something may have appeared there while we wrote
         os.replace(tmp, p)
+        fsync_folder(p.parent)
     finally:
-        if tmp.exists():
+        if os.path.lexists(tmp):
             tmp.unlink()
 
 
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:
     with atomic_path(path) as tmp:
-        with open(tmp, "wb") as f:
+        with open(tmp, "xb") as f:
             f.write(data)
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def os_error(exc: OSError, path: str | Path) -> DatasetError:
+    """An OSError met while writing `path` -> one line naming the place and the reason."""
+    p = Path(path)
+    place = str(p)
+    if exc.errno in _FULL:
+        reason = "disk full"
+    elif exc.errno == errno.EROFS:
+        reason = "read-only file system"
+    elif isinstance(exc, PermissionError):
+        reason = "permission denied"
+    elif isinstance(exc, FileNotFoundError) and not p.parent.is_dir():
+        reason, place = "no such folder", str(p.parent)
+    elif exc.errno == errno.ENOTDIR:
+        reason = "a part of the path is not a folder"
+    elif exc.errno == errno.EISDIR:
+        reason = "is a folder"
+    else:
+        reason = exc.strerror or str(exc)
+    return DatasetError(f"cannot write: {reason}", where=place)
+
+
+@contextmanager
+def output_path(path: str | Path):
+    """`atomic_path` for a file a command writes: every refusal or storage error is one line."""
+    try:
+        with atomic_path(path) as tmp:
+            yield tmp
+    except OSError as exc:
+        raise os_error(exc, path) from None
+
+
+def write_output(path: str | Path, data: bytes | str) -> str | Path:
+    """Write one document: to standard output for `-`, else safely to `path`. Returns where."""
+    raw = data.encode("utf-8") if isinstance(data, str) else data
+    if is_stdout(path):
+        sys.stdout.flush()
+        sys.stdout.buffer.write(raw)
+        sys.stdout.buffer.flush()
+        return STDOUT
+    with output_path(path) as tmp:
+        with open(tmp, "xb") as f:
+            f.write(raw)
+    return Path(path)
+
+
+def check_folder_target(path: str | Path) -> Path:
+    """`path` as a Path, if it may be used as an output folder: missing, or a real folder
+    (not a symlink). Refuses `-` and anything else in one line. Creates nothing."""
+    if is_stdout(path):
+        raise DatasetError("this command writes several files: give a folder, not '-'", where=STDOUT)
+    p = Path(path)
+    try:
+        mode = os.lstat(p).st_mode
+    except FileNotFoundError:
+        return p
+    except OSError as exc:
+        raise os_error(exc, p) from None
+    if stat.S_ISLNK(mode):
+        raise DatasetError(f"is a symbolic link (to {os.readlink(p)}); give the folder itself", where=str(p))
+    if not stat.S_ISDIR(mode):
+        raise DatasetError(f"exists and is {_kind(mode) if not stat.S_ISREG(mode) else 'a file'}, not a folder",
+                           where=str(p))
+    return p
+
+
+def ensure_folder(path: str | Path) -> Path:
+    """An output folder ready for writing: `path` if it is a real folder we may write in, or
+    made (its parent must exist). One-line DatasetError for `-`, a file, a symlink, a missing
+    parent, a read-only file system or a permission refused."""
+    p = check_folder_target(path)
+    if not os.path.lexists(p):
+        try:
+            os.mkdir(p)
+            fsync_folder(p.parent)
+        except FileExistsError:
+            return ensure_folder(p)  # made by someone else a moment ago: judge it again
+        except OSError as exc:
+            raise os_error(exc, p) from None
+    elif not os.access(p, os.W_OK | os.X_OK):
+        read_only = os.statvfs(p).f_flag & os.ST_RDONLY
+        raise DatasetError(f"cannot write: {'read-only file system' if read_only else 'permission denied'}",
+                           where=str(p))
+    return p
 
 
 def plain(v):

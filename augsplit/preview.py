@@ -17,6 +17,7 @@ from . import manifest as mf
 from .build import Built
 from .errors import DatasetError
 from .generate import decode, open_dataset_spec
+from .io import ensure_folder, output_path
 from .render import add_footprint, footprint
 from .scene import make_scene, render_params
 
@@ -65,11 +66,7 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / mf.MANIFEST_DIR))
     if per_split < 1 or columns < 1:
         raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
-    out = Path(out) if out is not None else root / PREVIEW_DIR
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise DatasetError(f"cannot create the preview folder: {exc.strerror}", where=str(out)) from None
+    out = ensure_folder(out if out is not None else root / PREVIEW_DIR)
     paths = []
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
@@ -163,7 +160,8 @@ def contact_sheet(built: Built, root: Path, rows, path: Path, per_split: int = 2
     kind = f"{split.role}, {split.kind}" if split.kind != split.role else split.role
     fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {len(rows)} images, "
              "evenly spaced by index", fontsize=10, ha="left", va="top")
-    fig.savefig(path, dpi=110)
+    with output_path(path) as tmp:  # written safely, like every output
+        fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
     return path
 
@@ -248,7 +246,8 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
                  "re-made from the manifest rows", fontsize=10)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    with output_path(path) as tmp:  # written safely, like every output
+        fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
     return path
 
