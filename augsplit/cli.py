@@ -30,15 +30,15 @@ def _cmd_assign(a) -> int:
     from .io import check_target, is_stdout, refuse_input
 
     out = a.out or default_output(a.table)
-    output_kind(out)  # an unknown extension, the input itself, a symlink...: refused before any work
-    refuse_input(out, a.table)
+    refuse_input(out, a.table)  # the input itself, a symlink, an unknown extension: refused before any work
     if not is_stdout(out):
         check_target(out)
+    output_kind(out)
     plan = open_spec(a.spec).plan
     res = assign(plan, read_table(a.table), ref_size=a.ref_size, where=str(a.table))
     write_table(res.table, out)
     summary = ", ".join(f"{k} {v}" for k, v in sorted(res.counts.items()))
-    print(f"wrote {out}: {len(res.table)} rows ({summary}); {res.ambiguous} rows held by more than one split",
+    print(f"wrote {'stdout' if is_stdout(out) else out}: {len(res.table)} rows ({summary}); {res.ambiguous} rows held by more than one split",
           file=sys.stderr if is_stdout(out) else sys.stdout)  # stdout carries only the table
     return 0
 

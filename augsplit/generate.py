@@ -26,7 +26,7 @@ from . import executors
 from . import manifest as mf
 from .build import Built, build, open_spec
 from .errors import DatasetError
-from .io import atomic_path, write_bytes_atomic, write_text_atomic
+from .io import atomic_path, write_files_atomic, write_text_atomic
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import canonical, parse_spec
@@ -248,13 +248,10 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     return cols, dcols
 
 
-def _write_file(path: Path, data: bytes) -> None:
-    _guard_disk(lambda: write_bytes_atomic(path, data), path)
-
-
 def _write_files(batch: list[tuple[Path, bytes]]) -> None:
-    for path, data in batch:
-        _write_file(path, data)
+    # one sync for the whole batch: durable before the shard's part commits, without a
+    # journal commit per image
+    _guard_disk(lambda: write_files_atomic(batch), batch[0][0])
 
 
 # errno values that mean "the storage cannot take more", whatever the file

@@ -65,10 +65,9 @@ class Table:
         return [c for c in dict.fromkeys(columns) if c in have]
 
     def _csv_batches(self, cols: list[str], batch_rows: int) -> Iterator[pd.DataFrame]:
-        # with no column asked for, still read one so the row count is right
-        use = cols or list(self.columns[:1])
+        # every column is parsed, whichever are kept: a ragged row is an error for every reader
         try:
-            for chunk in pd.read_csv(self.path, usecols=use, chunksize=batch_rows, **_csv_options(self)):
+            for chunk in pd.read_csv(self.path, chunksize=batch_rows, **_csv_options(self)):
                 yield chunk[cols].reset_index(drop=True)
         except DatasetError:
             raise
