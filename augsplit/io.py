@@ -21,7 +21,7 @@ from .errors import DatasetError
 STDOUT = "-"  # an --out of "-" means standard output
 
 # errno values that mean "the storage cannot take more", whatever the file
-_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
+DISK_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
 _KINDS = ((stat.S_ISLNK, "a symbolic link"), (stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a FIFO"),
           (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
 
@@ -34,19 +34,25 @@ def _kind(mode: int) -> str:
     return next((name for test, name in _KINDS if test(mode)), "not a regular file")
 
 
+def _mode(p: Path) -> int | None:
+    """What is at `p` itself (a link is not followed), or None when nothing is (the write
+    that follows then says why it cannot be made, e.g. a missing folder)."""
+    try:
+        return os.lstat(p).st_mode
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    except OSError as exc:
+        raise os_error(exc, p) from None
+
+
 def check_target(path: str | Path) -> Path:
     """`path` as a Path, if a write may land there: it is missing or a regular file.
 
     Raises DatasetError naming the path when it is a symlink, FIFO, device, socket or folder
     (the link itself is judged, not what it points to)."""
     p = Path(path)
-    try:
-        mode = os.lstat(p).st_mode
-    except FileNotFoundError:
-        return p
-    except OSError as exc:
-        raise os_error(exc, p) from None
-    if not stat.S_ISREG(mode):
+    mode = _mode(p)
+    if mode is not None and not stat.S_ISREG(mode):
         raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file",
                            where=str(p))
     return p
@@ -186,7 +192,7 @@ def os_error(exc: OSError, path: str | Path) -> DatasetError:
     if not p.parent.is_dir():  # whatever the library said about it
         reason = "no such folder" if not os.path.lexists(p.parent) else "a part of the path is not a folder"
         place = str(p.parent)
-    elif exc.errno in _FULL:
+    elif exc.errno in DISK_FULL:
         reason = "disk full"
     elif exc.errno == errno.EROFS:
         reason = "read-only file system"
@@ -229,16 +235,13 @@ def check_folder_target(path: str | Path) -> Path:
     if is_stdout(path):
         raise DatasetError("this command writes several files: give a folder, not '-'", where=STDOUT)
     p = Path(path)
-    try:
-        mode = os.lstat(p).st_mode
-    except FileNotFoundError:
+    mode = _mode(p)
+    if mode is None:
         return p
-    except OSError as exc:
-        raise os_error(exc, p) from None
     if stat.S_ISLNK(mode):
         raise DatasetError(f"is a symbolic link (to {os.readlink(p)}); give the folder itself", where=str(p))
     if not stat.S_ISDIR(mode):
-        raise DatasetError(f"exists and is {_kind(mode) if not stat.S_ISREG(mode) else 'a file'}, not a folder",
+        raise DatasetError(f"the output path is {'a file' if stat.S_ISREG(mode) else _kind(mode)}, not a folder",
                            where=str(p))
     return p
 
