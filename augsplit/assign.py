@@ -1,8 +1,8 @@
 """Label the rows of an existing table with the split whose region holds them.
 
-The table (CSV or Parquet) gives parameters by axis name, or bounding boxes
-(`bbox_x0, bbox_y0, bbox_x1, bbox_y1` in px, or `bbox_x, bbox_y, bbox_w, bbox_h`) from which
-the centre (and, with a reference size, the scale) is derived. Each row gets the name of
+The table (CSV, TSV or Parquet, read by augsplit.formats.table) gives parameters by axis
+name, or bounding boxes (`bbox_x0, bbox_y0, bbox_x1, bbox_y1` in px, or `bbox_x, bbox_y,
+bbox_w, bbox_h`) from which the centre (and, with a reference size, the scale) is derived. Each row gets the name of
 the first split whose region holds it, `guard` if it lies in a band auto_guard removed, or
 `none`; `ambiguous` counts rows two splits both claim.
 """
@@ -16,24 +16,11 @@ import numpy as np
 import pandas as pd
 
 from .errors import DatasetError
+from .formats.table import PARQUET_SUFFIXES
 from .plan import Plan
 from .plan.regions import CLASS
 
 SPLIT_COLUMN = "split"
-
-
-def read_table(path: str | Path) -> pd.DataFrame:
-    p = Path(path)
-    if not p.exists():
-        raise DatasetError("no such file or folder", where=str(p))
-    try:
-        if p.is_dir() or p.suffix.lower() in (".parquet", ".pq"):
-            return pd.read_parquet(p)
-        if p.suffix.lower() in (".csv", ".tsv", ".txt"):
-            return pd.read_csv(p, sep="\t" if p.suffix.lower() == ".tsv" else ",")
-    except Exception as exc:  # noqa: BLE001 - any parser failure is the file's fault
-        raise DatasetError(f"cannot read table: {str(exc).splitlines()[0]}", where=str(p)) from None
-    raise DatasetError("unknown table format (use .csv, .tsv or .parquet)", where=str(p))
 
 
 @dataclass(frozen=True)
@@ -158,12 +145,13 @@ def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: s
     return Assignment(out, {k: int(v) for k, v in counts.items()}, int((claimed > 1).sum()))
 
 
-def write_table(df: pd.DataFrame, path: str | Path) -> None:
-    from .io import atomic_path
-
-    p = Path(path)
-    with atomic_path(p) as tmp:
-        if p.suffix.lower() in (".parquet", ".pq"):
-            df.to_parquet(tmp, index=False)
-        else:
-            df.to_csv(tmp, index=False)
+def default_output(table: str | Path) -> Path:
+    """`<table>.assigned.<ext>` beside the input: Parquet for a Parquet file or folder, TSV
+    for a TSV, CSV otherwise."""
+    p = Path(table)
+    suffix = p.suffix.lower()
+    if p.is_dir() or suffix in PARQUET_SUFFIXES:
+        ext = suffix if suffix in PARQUET_SUFFIXES else ".parquet"
+    else:
+        ext = suffix if suffix in (".tsv", ".tab") else ".csv"
+    return p.with_name(f"{p.stem}.assigned{ext}")

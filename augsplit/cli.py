@@ -24,15 +24,22 @@ def _cmd_plan(a) -> int:
 
 
 def _cmd_assign(a) -> int:
-    from .assign import assign, read_table, write_table
+    from .assign import assign, default_output
     from .build import open_spec
+    from .formats.table import output_kind, read_table, write_table
+    from .io import check_target, is_stdout, refuse_input
 
+    out = a.out or default_output(a.table)
+    refuse_input(out, a.table)  # the input itself, a symlink, an unknown extension: refused before any work
+    if not is_stdout(out):
+        check_target(out)
+    output_kind(out)
     plan = open_spec(a.spec).plan
     res = assign(plan, read_table(a.table), ref_size=a.ref_size, where=str(a.table))
-    out = Path(a.out) if a.out else Path(a.table).with_name(Path(a.table).stem + ".assigned" + (Path(a.table).suffix or ".csv"))
     write_table(res.table, out)
     summary = ", ".join(f"{k} {v}" for k, v in sorted(res.counts.items()))
-    print(f"wrote {out}: {len(res.table)} rows ({summary}); {res.ambiguous} rows held by more than one split")
+    print(f"wrote {'stdout' if is_stdout(out) else out}: {len(res.table)} rows ({summary}); {res.ambiguous} rows held by more than one split",
+          file=sys.stderr if is_stdout(out) else sys.stdout)  # stdout carries only the table
     return 0
 
 
@@ -46,7 +53,9 @@ def _shard(text: str):
 
 def _cmd_generate(a) -> int:
     from .generate import Options, finalize, generate
+    from .io import check_folder_target
 
+    check_folder_target(a.out)
     if a.finalize:
         summary = finalize(a.out)
     else:
@@ -79,8 +88,11 @@ def _cmd_verify(a) -> int:
 
 
 def _cmd_preview(a) -> int:
+    from .io import check_folder_target
     from .preview import preview
 
+    if a.out is not None:
+        check_folder_target(a.out)
     for path in preview(a.dataset, out=a.out, per_split=a.per_split, columns=a.columns,
                         allow_incomplete=a.allow_incomplete):
         print(path)
@@ -88,13 +100,15 @@ def _cmd_preview(a) -> int:
 
 
 def _cmd_score(a) -> int:
+    from .io import check_folder_target, is_stdout
     from .score import run_score
 
-    out = Path(a.out) if a.out else Path(a.dataset) / "score"
+    out = a.out if is_stdout(a.out) else check_folder_target(a.out or Path(a.dataset) / "score")
     run_score(a.dataset, a.predictions, out, compare=a.compare, train_split=a.train_split,
               reference_split=a.reference_split, allow_partial=a.allow_partial,
-              probabilities=True if a.probabilities else None)
-    print(f"wrote {out}/score.json, the curves as CSV and {out}/report.html")
+              probabilities=True if a.probabilities else None, echo=not is_stdout(out))
+    if not is_stdout(out):
+        print(f"wrote {out}/score.json, the curves as CSV and {out}/report.html")
     return 0
 
 
@@ -130,6 +144,10 @@ def _keyval(text: str):
 def _cmd_audit(a) -> int:
     from .audit.entry import audit_dataset, audit_table, is_dataset
     from .audit.report import summary_table, write_reports
+    from .io import check_folder_target, is_stdout
+
+    if a.out is not None and not is_stdout(a.out):
+        check_folder_target(a.out)  # refused before the work, not after
 
     thresholds = dict(a.threshold or [])
     column_map = dict(a.map or [])
@@ -143,15 +161,16 @@ def _cmd_audit(a) -> int:
     if is_dataset(a.input) and a.spec is None and not column_map:
         result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
                                progress=not a.quiet and sys.stderr.isatty())
-        out = Path(a.out) if a.out else Path(a.input) / "audit"
+        out = a.out or Path(a.input) / "audit"
     else:
         result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
                              column_map=column_map or None, thresholds=thresholds,
                              progress=not a.quiet and sys.stderr.isatty())
-        out = Path(a.out) if a.out else Path("audit")
+        out = a.out or Path("audit")
     paths = write_reports(result, out)
-    print(summary_table(result))
-    print(f"wrote {paths['json']} and {paths['html']}")
+    if not is_stdout(out):  # with '-', stdout carries only audit.json
+        print(summary_table(result))
+        print(f"wrote {paths['json']} and {paths['html']}")
     return result.exit_code
 
 
@@ -167,14 +186,15 @@ def build_parser() -> argparse.ArgumentParser:
 
     q = sub.add_parser("assign", help="label the rows of a CSV/Parquet table with the split whose region holds them")
     q.add_argument("spec")
-    q.add_argument("table")
-    q.add_argument("--out", help="where to write the labelled table (default: <table>.assigned.<ext>)")
+    q.add_argument("table", help="CSV, TSV, Parquet file or folder of Parquet files")
+    q.add_argument("--out", help="the labelled table: .csv, .tsv or .parquet (default: <table>.assigned.<ext>, "
+                   "Parquet for a Parquet input); '-' prints it as CSV to stdout. Never the input itself")
     q.add_argument("--ref-size", type=float, default=None, help="native object size in px, to derive scale from bboxes")
     q.set_defaults(run=_cmd_assign)
 
     q = sub.add_parser("generate", help="render the dataset a spec describes, with its Parquet manifest")
     q.add_argument("spec", nargs="?", help="YAML spec, or 'demo'")
-    q.add_argument("--out", required=True, help="output folder")
+    q.add_argument("--out", required=True, help="output folder (a real folder, not a symlink, file or '-')")
     q.add_argument("--store", choices=["files", "parquet", "none"], default="files",
                    help="image files, encoded images inside the Parquet rows, or none (the manifest re-makes them)")
     q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
@@ -201,7 +221,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     q = sub.add_parser("preview", help="contact sheets per split and a map of where each split's objects landed (PNG)")
     q.add_argument("dataset")
-    q.add_argument("--out", default=None, help="folder for the PNG files (default: DATASET/preview)")
+    q.add_argument("--out", default=None,
+                   help="folder for the PNG files (default: DATASET/preview; its parent must exist)")
     q.add_argument("--per-split", type=int, default=24, help="images on each contact sheet")
     q.add_argument("--columns", type=int, default=6, help="images per row of a contact sheet")
     q.add_argument("--allow-incomplete", action="store_true", help="preview an unfinished folder (what is made so far)")
@@ -209,9 +230,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     q = sub.add_parser("score", help="accuracy per split, class and cell, and against distance from the training region")
     q.add_argument("dataset", help="an augsplit dataset folder")
-    q.add_argument("predictions", help="CSV/Parquet: image_id and a predicted class (optional score_<class> columns)")
+    q.add_argument("predictions", help="CSV, TSV or Parquet: image_id and a predicted class (optional score_<class> "
+                   "columns)")
     q.add_argument("--compare", help="a second predictions file to lay side by side")
-    q.add_argument("--out", help="report folder (default: DATASET/score)")
+    q.add_argument("--out", help="report folder (default: DATASET/score; its parent must exist); "
+                   "'-' prints score.json to stdout and writes no CSV or HTML")
     q.add_argument("--train-split", help="the training split (default: from the dataset)")
     q.add_argument("--reference-split", help="the i.i.d. split the gaps are measured from")
     q.add_argument("--allow-partial", action="store_true", help="score even when some images have no prediction")
@@ -219,7 +242,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.set_defaults(run=_cmd_score)
 
     q = sub.add_parser("audit", help="check a dataset, parameter log or table for train/test leakage; exit 1 on a failure")
-    q.add_argument("input", help="an augsplit dataset folder, a parameter log folder, or a CSV/Parquet table")
+    q.add_argument("input", help="an augsplit dataset folder, a parameter log folder, or a CSV, TSV or Parquet table")
     q.add_argument("--spec", help="the spec whose axes, regions and guarantees the input is checked against")
     q.add_argument("--pair", type=_pair, action="append", metavar="A:B", help="splits to compare (repeatable; default: train against each other split)")
     q.add_argument("--axis", type=_axis, action="append", metavar="NAME=LO:HI[:circular|:log]", help="an axis to audit when there is no spec")
@@ -228,7 +251,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--column-map", help="a YAML file mapping augsplit names to table columns")
     q.add_argument("--threshold", type=_keyval, action="append", metavar="KEY=VALUE",
                    help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01 (also settable in the spec's audit:)")
-    q.add_argument("--out", help="where audit.json and audit.html go (default: DATASET/audit or ./audit)")
+    q.add_argument("--out", help="folder for audit.json and audit.html (default: DATASET/audit or ./audit; its "
+                   "parent must exist); '-' prints audit.json to stdout and writes no HTML")
     q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")
     q.add_argument("--quiet", action="store_true", help="no progress bars")
     q.set_defaults(run=_cmd_audit)

@@ -8,7 +8,6 @@ without one. Output is byte-identical whatever the number of workers, shards or 
 
 from __future__ import annotations
 
-import errno
 import functools
 import json
 from concurrent.futures import ThreadPoolExecutor
@@ -30,7 +29,7 @@ from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
 from .errors import DatasetError
-from .io import atomic_path, write_bytes_atomic, write_text_atomic
+from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text_atomic
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import canonical, parse_spec
@@ -251,17 +250,10 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     return cols, dcols
 
 
-def _write_file(path: Path, data: bytes) -> None:
-    _guard_disk(lambda: write_bytes_atomic(path, data), path)
-
-
 def _write_files(batch: list[tuple[Path, bytes]]) -> None:
-    for path, data in batch:
-        _write_file(path, data)
-
-
-# errno values that mean "the storage cannot take more", whatever the file
-_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
+    # one sync for the whole batch: durable before the shard's part commits, without a
+    # journal commit per image
+    _guard_disk(lambda: write_files_atomic(batch), batch[0][0])
 
 
 def _guard_disk(fn, where: Path):
@@ -271,15 +263,10 @@ def _guard_disk(fn, where: Path):
     except DatasetError:
         raise
     except OSError as exc:
-        place = str(exc.filename or where)
-        if exc.errno in _FULL:
+        if exc.errno in DISK_FULL:
             raise DatasetError("disk full; completed shards are kept; free space and rerun with --resume",
-                               where=place) from None
-        if isinstance(exc, PermissionError):
-            raise DatasetError("permission denied", where=place) from None
-        if exc.errno == errno.EROFS:
-            raise DatasetError("read-only file system", where=place) from None
-        raise DatasetError(f"cannot write: {exc.strerror or exc}", where=place) from None
+                               where=str(exc.filename or where)) from None
+        raise os_error(exc, exc.filename or where) from None
 
 
 # ---- worker plumbing: each process builds the spec once ------------------------------------

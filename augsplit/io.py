@@ -1,35 +1,269 @@
-"""Safe file writing: everything lands under a temporary name and is renamed into place,
-so an interrupted run never leaves a half-written file behind. Also: plain JSON values."""
+"""Safe writing, the one way augsplit puts a file on disk: a temporary name in the same folder,
+flushed and fsynced, renamed over a missing path or a regular file only (never a symlink,
+FIFO, device or folder), then the folder fsynced. Also `-` as stdout, report folders, and
+plain JSON values."""
 
 from __future__ import annotations
 
+import ctypes
+import errno
+import functools
 import math
 import os
+import secrets
+import stat
+import sys
 from contextlib import contextmanager
 from pathlib import Path
+
+from .errors import DatasetError
+
+STDOUT = "-"  # an --out of "-" means standard output
+
+# errno values that mean "the storage cannot take more", whatever the file
+DISK_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
+_KINDS = ((stat.S_ISLNK, "a symbolic link"), (stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a FIFO"),
+          (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+
+
+def is_stdout(path) -> bool:
+    return isinstance(path, str) and path == STDOUT
+
+
+def _kind(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "not a regular file")
+
+
+def _mode(p: Path) -> int | None:
+    """What is at `p` itself (a link is not followed), or None when nothing is (the write
+    that follows then says why it cannot be made, e.g. a missing folder)."""
+    try:
+        return os.lstat(p).st_mode
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    except OSError as exc:
+        raise os_error(exc, p) from None
+
+
+def check_target(path: str | Path) -> Path:
+    """`path` as a Path, if a write may land there: it is missing or a regular file.
+
+    Raises DatasetError naming the path when it is a symlink, FIFO, device, socket or folder
+    (the link itself is judged, not what it points to)."""
+    p = Path(path)
+    mode = _mode(p)
+    if mode is not None and not stat.S_ISREG(mode):
+        raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file",
+                           where=str(p))
+    return p
+
+
+def refuse_input(out: str | Path, source: str | Path) -> None:
+    """Refuse (one line) an output that would replace the input `source` (the same file, by
+    any name) or land inside it when it is a folder."""
+    if is_stdout(out) or not os.path.lexists(source):
+        return
+    o, s = Path(out), Path(source)
+    if os.path.lexists(o) and os.path.samefile(o, s):
+        raise DatasetError("is the input table; augsplit never replaces its input, give another --out", where=str(o))
+    if s.is_dir() and o.resolve().is_relative_to(s.resolve()):
+        raise DatasetError(f"lies inside the input folder {s}; a new file there would join the table", where=str(o))
+
+
+def fsync_folder(path: str | Path) -> None:
+    """Make the folder's entries (a rename, a new file) durable. File systems that cannot
+    sync a folder (EINVAL) are left as they are."""
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    try:
+        os.fsync(fd)
+    except OSError as exc:
+        if exc.errno not in (errno.EINVAL, errno.ENOTSUP):
+            raise
+    finally:
+        os.close(fd)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@functools.lru_cache(maxsize=1)
+def _libc_syncfs():
+    """Linux's syncfs(2), or None where the C library has none."""
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).syncfs
+    except (OSError, AttributeError):
+        return None
+    fn.argtypes = [ctypes.c_int]
+    return fn
+
+
+def syncfs(path: Path) -> bool:
+    """Flush the whole file system holding `path` in one call (Linux syncfs, which waits for
+    the writes); False where there is no such call."""
+    fn = _libc_syncfs()
+    if fn is None:
+        return False
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        if fn(fd) != 0:
+            err = ctypes.get_errno()
+            raise OSError(err, os.strerror(err), str(path))
+    finally:
+        os.close(fd)
+    return True
+
+
+def _sync_data(paths: list[Path]) -> None:
+    """Make the files' bytes durable: one syncfs per file system for a batch, an fsync each
+    for a single file or where syncfs is missing (one journal commit per call is the cost)."""
+    if len(paths) > 1:
+        devices = {os.stat(p).st_dev: p for p in paths}
+        if all(syncfs(p) for p in devices.values()):
+            return
+    for p in paths:
+        _fsync_file(p)
+
+
+def temporary_name(path: Path) -> Path:
+    """The temporary sibling a write goes to first: hidden, and matching `.*.tmp-*`."""
+    return path.with_name(f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(3)}")
 
 
 @contextmanager
 def atomic_path(path: str | Path):
-    """Yield a temporary path next to `path`; on success rename it over `path`."""
-    p = Path(path)
-    tmp = p.with_name(f".{p.name}.tmp-{os.getpid()}")
+    """Yield a temporary path next to `path` for the caller to write and close; on success
+    fsync it, rename it over `path` and fsync the folder. On failure the temporary goes.
+
+    Refuses (DatasetError) a target that is not missing or a regular file. OSErrors of the
+    storage propagate unchanged (see `os_error` for a one-line version)."""
+    p = check_target(path)
+    tmp = temporary_name(p)
     try:
         yield tmp
+        _sync_data([tmp])
+        check_target(p)  # again: something may have appeared there while we wrote
         os.replace(tmp, p)
+        fsync_folder(p.parent)
     finally:
-        if tmp.exists():
+        if os.path.lexists(tmp):
             tmp.unlink()
 
 
+def write_files_atomic(items) -> None:
+    """Write several `(path, bytes)` files with `atomic_path`'s promise for each, syncing them
+    together: every file to a temporary sibling, all made durable at once, then each renamed
+    into place and each folder fsynced once. On failure no temporary is left."""
+    items = [(check_target(p), data) for p, data in items]
+    tmps: list[Path] = []
+    try:
+        for p, data in items:
+            tmps.append(temporary_name(p))
+            with open(tmps[-1], "xb") as f:
+                f.write(data)
+        _sync_data(tmps)
+        for (p, _), tmp in zip(items, tmps):
+            check_target(p)
+            os.replace(tmp, p)
+        for folder in dict.fromkeys(p.parent for p, _ in items):
+            fsync_folder(folder)
+    finally:
+        for tmp in tmps:
+            if os.path.lexists(tmp):
+                tmp.unlink()
+
+
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:
-    with atomic_path(path) as tmp:
-        with open(tmp, "wb") as f:
-            f.write(data)
+    write_files_atomic([(path, data)])
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def os_error(exc: OSError, path: str | Path) -> DatasetError:
+    """An OSError met while writing `path` -> one line naming the place and the reason."""
+    p = Path(path)
+    place = str(p)
+    if not p.parent.is_dir():  # whatever the library said about it
+        reason = "no such folder" if not os.path.lexists(p.parent) else "a part of the path is not a folder"
+        place = str(p.parent)
+    elif exc.errno in DISK_FULL:
+        reason = "disk full"
+    elif exc.errno == errno.EROFS:
+        reason = "read-only file system"
+    elif isinstance(exc, PermissionError):
+        reason = "permission denied"
+    elif exc.errno == errno.EISDIR:
+        reason = "is a folder"
+    else:
+        reason = exc.strerror or str(exc)
+    return DatasetError(f"cannot write: {reason}", where=place)
+
+
+@contextmanager
+def output_path(path: str | Path):
+    """`atomic_path` for a file a command writes: every refusal or storage error is one line."""
+    try:
+        with atomic_path(path) as tmp:
+            yield tmp
+    except OSError as exc:
+        raise os_error(exc, path) from None
+
+
+def write_output(path: str | Path, data: bytes | str) -> str | Path:
+    """Write one document: to standard output for `-`, else safely to `path`. Returns where."""
+    raw = data.encode("utf-8") if isinstance(data, str) else data
+    if is_stdout(path):
+        sys.stdout.flush()
+        sys.stdout.buffer.write(raw)
+        sys.stdout.buffer.flush()
+        return STDOUT
+    with output_path(path) as tmp:
+        with open(tmp, "xb") as f:
+            f.write(raw)
+    return Path(path)
+
+
+def check_folder_target(path: str | Path) -> Path:
+    """`path` as a Path, if it may be used as an output folder: missing, or a real folder
+    (not a symlink). Refuses `-` and anything else in one line. Creates nothing."""
+    if is_stdout(path):
+        raise DatasetError("this command writes several files: give a folder, not '-'", where=STDOUT)
+    p = Path(path)
+    mode = _mode(p)
+    if mode is None:
+        return p
+    if stat.S_ISLNK(mode):
+        raise DatasetError(f"is a symbolic link (to {os.readlink(p)}); give the folder itself", where=str(p))
+    if not stat.S_ISDIR(mode):
+        raise DatasetError(f"the output path is {'a file' if stat.S_ISREG(mode) else _kind(mode)}, not a folder",
+                           where=str(p))
+    return p
+
+
+def ensure_folder(path: str | Path) -> Path:
+    """An output folder ready for writing: `path` if it is a real folder we may write in, or
+    made (its parent must exist). One-line DatasetError for `-`, a file, a symlink, a missing
+    parent, a read-only file system or a permission refused."""
+    p = check_folder_target(path)
+    if not os.path.lexists(p):
+        try:
+            os.mkdir(p)
+            fsync_folder(p.parent)
+        except FileExistsError:
+            return ensure_folder(p)  # made by someone else a moment ago: judge it again
+        except OSError as exc:
+            raise os_error(exc, p) from None
+    elif not os.access(p, os.W_OK | os.X_OK):
+        read_only = os.statvfs(p).f_flag & os.ST_RDONLY
+        raise DatasetError(f"cannot write: {'read-only file system' if read_only else 'permission denied'}",
+                           where=str(p))
+    return p
 
 
 def plain(v):

@@ -26,6 +26,7 @@ import pyarrow.parquet as pq
 
 from . import manifest as mf
 from .errors import DatasetError
+from .formats.table import read_table
 from .io import atomic_path
 from .spec import canonical
 
@@ -191,15 +192,9 @@ def read_log(log_dir: str | Path) -> pd.DataFrame:
     log_dir = Path(log_dir)
     if not log_dir.is_dir():
         raise DatasetError("no such parameter log folder", where=str(log_dir))
-    frames = []
-    for f in log_files(log_dir):
-        try:
-            frames.append(pq.read_table(f).to_pandas())
-        except (OSError, pa.ArrowInvalid) as exc:
-            raise DatasetError(f"unreadable parameter log part: {exc}", where=str(f)) from None
-    if not frames:
+    if not log_files(log_dir):
         return LOG_SCHEMA.empty_table().to_pandas()
-    df = pd.concat(frames, ignore_index=True)
+    df = read_table(log_dir, what="parameter log part")
     return df.sort_values(["epoch", "item", "worker", "pid"], kind="stable").reset_index(drop=True)
 
 

@@ -17,6 +17,7 @@ from .build import Built
 from .dataset import DatasetFolder, image_of, open_dataset, read_rows
 from .dataset import layout as lay
 from .errors import DatasetError
+from .io import ensure_folder, output_path
 from .render import add_footprint, footprint
 from .scene import render_params
 
@@ -67,11 +68,7 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
-    out = Path(out) if out is not None else root / PREVIEW_DIR
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise DatasetError(f"cannot create the preview folder: {exc.strerror}", where=str(out)) from None
+    out = ensure_folder(out if out is not None else folder.root / PREVIEW_DIR)
     paths = []
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
@@ -151,7 +148,8 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
     kind = f"{split.role}, {split.kind}" if split.kind != split.role else split.role
     fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {len(rows)} images, "
              "evenly spaced by index", fontsize=10, ha="left", va="top")
-    fig.savefig(path, dpi=110)
+    with output_path(path) as tmp:  # written safely, like every output
+        fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
     return path
 
@@ -236,7 +234,8 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
                  "re-made from the manifest rows", fontsize=10)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    with output_path(path) as tmp:  # written safely, like every output
+        fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
     return path
 

@@ -12,8 +12,6 @@ import html
 import io
 import json
 import math
-import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -23,7 +21,8 @@ from scipy import stats
 from scipy.spatial import cKDTree
 
 from augsplit.errors import DatasetError
-from augsplit.io import plain
+from augsplit.formats.table import read_table
+from augsplit.io import ensure_folder, is_stdout, plain, write_output
 from augsplit.manifest import UNITS
 
 PREDICTED = "predicted"  # class name or index, resolved against the manifest
@@ -205,7 +204,8 @@ def dataset_roles(folder) -> tuple[str | None, str | None]:
 
 
 def load_predictions(path, *, probabilities: bool | None = None) -> pd.DataFrame:
-    """Read a predictions CSV or Parquet file: `image_id`, a predicted class and/or scores.
+    """Read a predictions table (CSV, TSV or Parquet, see augsplit.formats.table): `image_id`,
+    a predicted class and/or scores.
 
     Class columns: `predicted` (a class name, or an index when it is not a name),
     `predicted_class` (always a name) or `predicted_index` (always an index). Per-class
@@ -215,31 +215,9 @@ def load_predictions(path, *, probabilities: bool | None = None) -> pd.DataFrame
     """
     p = Path(path)
     where = str(p)
-    if not p.exists():
-        raise DatasetError("no such predictions file", where=where)
-    if p.is_dir():
-        raise DatasetError("is a folder; expected a .csv or .parquet predictions file", where=where)
-    if p.stat().st_size == 0:
-        raise DatasetError("predictions file is empty", where=where)
-    suffix = p.suffix.lower()
-    try:
-        if suffix in (".csv", ".txt"):
-            # class labels stay text so digit-named classes are not read as indices
-            df = pd.read_csv(p, dtype={"image_id": str, PREDICTED: str, PREDICTED_CLASS: str},
-                             keep_default_na=False)
-        elif suffix in (".parquet", ".pq"):
-            df = pd.read_parquet(p)
-        else:
-            raise DatasetError(f"unknown file type {suffix or '(none)'}; use .csv or .parquet", where=where)
-    except DatasetError:
-        raise
-    except pd.errors.EmptyDataError:
-        raise DatasetError("predictions file is empty", where=where) from None
-    except Exception as exc:
-        raise DatasetError(f"cannot read predictions: {_first_line(exc)}", where=where) from None
+    # class labels stay text so digit-named classes are not read as indices
+    df = read_table(p, text=("image_id", PREDICTED, PREDICTED_CLASS), what="predictions file")
     df.columns = [str(c).strip() for c in df.columns]
-    if df.empty:
-        raise DatasetError("predictions file has no rows", where=where)
     if "image_id" not in df.columns:
         raise DatasetError(f"no 'image_id' column (columns: {', '.join(df.columns[:8])})", where=where)
     ids = df["image_id"]
@@ -850,26 +828,27 @@ def _fixed_width(cols, body) -> list[str]:
 
 def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str = "augsplit score",
                   intro_html: str = "") -> dict[str, Path]:
-    """Write score.json, one CSV per table (prefixed by label when several), and report.html."""
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise DatasetError("output path exists and is not a folder", where=str(out))
-    out.mkdir(parents=True, exist_ok=True)
+    """Write score.json, one CSV per table (prefixed by label when several), and report.html.
+    `out_dir` "-" prints score.json to standard output and writes nothing else."""
     written: dict[str, Path] = {}
     several = len(results) > 1
     doc = {label: r.to_json() for label, r in results} if several else results[0][1].to_json()
     if several:
         doc = {"models": doc, "comparison": _records(compare(results[0][1], results[1][1],
                                                               (results[0][0], results[1][0])))}
-    written["score.json"] = _atomic_write(out / "score.json", json.dumps(plain(doc), indent=2, allow_nan=False))
+    text = json.dumps(plain(doc), indent=2, allow_nan=False)
+    if is_stdout(out_dir):
+        return {"score.json": write_output(out_dir, text + "\n")}
+    out = ensure_folder(out_dir)
+    written["score.json"] = write_output(out / "score.json", text)
     for label, r in results:
         for name, t in r.tables().items():
             stem = f"{label}_{name}" if several else name
-            written[f"{stem}.csv"] = _atomic_write(out / f"{stem}.csv", t.to_csv(index=False))
+            written[f"{stem}.csv"] = write_output(out / f"{stem}.csv", t.to_csv(index=False))
     if several:
-        written["comparison.csv"] = _atomic_write(
+        written["comparison.csv"] = write_output(
             out / "comparison.csv", compare(results[0][1], results[1][1], (results[0][0], results[1][0])).to_csv(index=False))
-    written["report.html"] = _atomic_write(out / "report.html", render_html(results, title=title, intro_html=intro_html))
+    written["report.html"] = write_output(out / "report.html", render_html(results, title=title, intro_html=intro_html))
     return written
 
 
@@ -1092,21 +1071,6 @@ def _fig_legend(fig, axes) -> None:
 
 
 # ---------------------------------------------------------------- small helpers
-
-
-def _atomic_write(path: Path, text: str) -> Path:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; reports are for sharing
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
 
 
 def _records(t: pd.DataFrame) -> list[dict]:

@@ -33,6 +33,7 @@ if str(ROOT) not in sys.path:  # run from a checkout without installing
 from augsplit import models as M  # noqa: E402
 from augsplit import score as S  # noqa: E402
 from augsplit.errors import AugsplitError  # noqa: E402
+from augsplit.io import write_output  # noqa: E402
 
 SPEC = ROOT / "configs" / "demo_conveyor.yaml"
 NOISE_BELT = {"kind": "pink_noise", "mean": 0.3, "contrast": 0.2}
@@ -237,7 +238,7 @@ def run_demo(spec_path: Path = SPEC, out: Path = ROOT / "demo" / "out", *, noise
         runs.append(run_one("noise", load_spec(spec_path, NOISE_BELT, scale_counts), out, spec_path.parent, say))
     for run in runs:  # the same reports `augsplit score` writes, for checking one against the other
         S.write_outputs(run.results, out / ("score" if run.name == "main" else f"score_{run.name}"))
-    S._atomic_write(out / "report.html", page(runs, time.perf_counter() - t0))
+    write_output(out / "report.html", page(runs, time.perf_counter() - t0))
     return runs
 
 

@@ -1,6 +1,6 @@
-"""Audit inputs: column maps, axis declarations, table sources (DataFrame, CSV, Parquet file or
-dataset folder, streamed by row group) and image loaders. Every problem is a one-line
-DatasetError naming the column, axis, split, file or rows."""
+"""Audit inputs: column maps, axis declarations, table sources (DataFrame, or a CSV, TSV,
+Parquet file or folder read by augsplit.formats.table, streamed) and image loaders. Every
+problem is a one-line DatasetError naming the column, axis, split, file or rows."""
 
 from __future__ import annotations
 
@@ -13,7 +13,10 @@ from typing import Callable, Iterator
 import numpy as np
 import pandas as pd
 
+from ..dataset import layout as lay
+from ..dataset import open_dataset
 from ..errors import DatasetError
+from ..formats.table import Table, open_table_file
 from ..space.axes import LEVELS, LOG, Axis
 from .proximity import AxisScale
 
@@ -113,22 +116,21 @@ def axis_scales(axes: dict, data: pd.DataFrame | None = None) -> tuple[list[Axis
 
 @dataclass(frozen=True)
 class TableSource:
-    """Where the table comes from: a DataFrame in memory, or files read column by column.
+    """Where the table comes from: a DataFrame in memory, or a file or folder read through
+    augsplit.formats.table (streamed: Parquet by row group, CSV/TSV in chunks).
 
-    `files` are Parquet files in a fixed order (row order = concatenation), or one CSV.
     `mapping` renames source columns to augsplit names. `root` resolves image paths.
     """
 
     frame: pd.DataFrame | None
-    files: tuple[Path, ...]
+    table: Table | None
     kind: str  # "frame", "parquet", "csv"
     columns: tuple[str, ...]  # augsplit names available
     mapping: dict
     root: Path | None
-    partition_split: tuple[str | None, ...] = ()  # split value from a split=<name> folder per file
 
     def read(self, columns: list[str], batch_rows: int = 1 << 17, progress: bool = False) -> pd.DataFrame:
-        """The named columns (those present) of every row, read by row group for Parquet."""
+        """The named columns (those present) of every row."""
         cols = [c for c in columns if c in self.columns]
         if self.kind == "frame":
             return self.frame[cols].reset_index(drop=True)
@@ -145,109 +147,33 @@ class TableSource:
             for s in range(0, len(self.frame), batch_rows):
                 yield self.frame[cols].iloc[s : s + batch_rows].reset_index(drop=True)
             return
-        inverse = {dst: src for dst, src in self.mapping.items()}
-        src_cols = [inverse.get(c, c) for c in cols]
-        if self.kind == "csv":
-            for chunk in pd.read_csv(self.files[0], usecols=lambda c: c in src_cols, chunksize=batch_rows):
-                yield chunk.rename(columns={inverse.get(c, c): c for c in cols})[cols]
-            return
-        import pyarrow.parquet as pq
         from tqdm import tqdm
 
-        bar = tqdm(total=None, unit="rows", disable=not progress, desc="reading")
-        for path, split in zip(self.files, self.partition_split):
-            pf = pq.ParquetFile(path)
-            present = set(pf.schema_arrow.names)
-            want = [s for s in src_cols if s in present]
-            # One row group at a time, released before the next: ParquetFile.iter_batches
-            # was measured to keep every row group it read alive (a whole file of images).
-            for g in range(pf.num_row_groups):
-                group = pf.read_row_group(g, columns=want, use_threads=False)
-                for rb in group.to_batches(max_chunksize=batch_rows):
-                    df = rb.to_pandas()
-                    df = df.rename(columns={inverse.get(c, c): c for c in cols})
-                    if "split" in cols and "split" not in df.columns:
-                        df["split"] = split
-                    bar.update(len(df))
-                    yield df[[c for c in cols if c in df.columns]]
-                del group
-        bar.close()
-
-    def n_rows(self) -> int:
-        if self.kind == "frame":
-            return len(self.frame)
-        if self.kind == "csv":
-            return sum(len(c) for c in self.iter_batches([self.columns[0]]))
-        import pyarrow.parquet as pq
-        return sum(pq.ParquetFile(f).metadata.num_rows for f in self.files)
+        inverse = {dst: src for dst, src in self.mapping.items()}
+        to_ours = {inverse.get(c, c): c for c in cols}
+        with tqdm(total=None, unit="rows", disable=not progress, desc="reading") as bar:
+            for df in self.table.iter_batches(list(to_ours), batch_rows):
+                bar.update(len(df))
+                yield df.rename(columns=to_ours)[cols]
 
 
 def open_table(table, column_map: dict | None = None, root=None) -> TableSource:
-    """A DataFrame, a CSV file, a Parquet file, or a folder of Parquet files (an augsplit dataset
-    folder, whose rows are under manifest/) -> TableSource. Column map applied (checked)."""
+    """A DataFrame, a CSV/TSV file, a Parquet file, or a folder of Parquet files (an augsplit
+    dataset folder, whose rows are under manifest/) -> TableSource. Column map applied (checked)."""
     mapping = dict(column_map or {})
     if isinstance(table, pd.DataFrame):
         df = apply_column_map(table, mapping)
-        return TableSource(df.reset_index(drop=True), (), "frame", tuple(map(str, df.columns)), {},
+        return TableSource(df.reset_index(drop=True), None, "frame", tuple(map(str, df.columns)), {},
                            Path(root) if root else None)
     path = Path(table)
-    if not path.exists():
-        raise DatasetError("no such file or folder", where=str(path))
-    if path.is_file() and path.suffix.lower() in (".csv", ".tsv", ".txt"):
-        try:
-            head = pd.read_csv(path, nrows=0)
-        except Exception as exc:  # pandas raises several kinds for malformed text
-            raise DatasetError(f"cannot read as CSV: {exc}", where=str(path)) from None
-        _check_mapped(mapping, head.columns)
-        cols = _mapped_names(list(head.columns), mapping)
-        return TableSource(None, (path,), "csv", tuple(cols), mapping, Path(root) if root else path.parent)
-    files, splits, base = _parquet_files(path)
-    import pyarrow.parquet as pq
-
-    names: list[str] = []
-    for f in files:
-        try:
-            schema = pq.ParquetFile(f).schema_arrow
-        except Exception as exc:
-            raise DatasetError(f"not a readable Parquet file: {exc}", where=str(f)) from None
-        for n in schema.names:
-            if n not in names:
-                names.append(n)
-    if "split" not in names and all(s is not None for s in splits):
-        names.append("split")  # hive-style partition folders carry the split
-    _check_mapped(mapping, names)
-    cols = _mapped_names(names, mapping)
-    return TableSource(None, tuple(files), "parquet", tuple(cols), mapping,
-                       Path(root) if root else base, tuple(splits))
-
-
-def _parquet_files(path: Path) -> tuple[list[Path], list[str | None], Path]:
-    """(files, split of each from its hive folder, folder image paths resolve in). An augsplit
-    dataset folder is opened by augsplit.dataset (checked, unfinished ones refused); any other
-    folder is discovered by pyarrow.dataset with hive partitioning (`split=<name>` folders)."""
-    if not path.is_dir():
-        return [path], [None], path.parent
-    from ..dataset import layout as lay
-    from ..dataset import open_dataset
-
-    if (path / lay.SPEC_FILE).exists():
-        parts = open_dataset(path).parts_of(lay.MANIFEST_DIR)
-        return [p.path for p in parts], [p.split for p in parts], path
-    import pyarrow as pa
-    import pyarrow.dataset as pds
-
-    scan = path / lay.MANIFEST_DIR if (path / lay.MANIFEST_DIR).is_dir() else path
-    try:
-        key = pa.schema([("split", pa.string())])
-        # the schema given, files are only listed here: each is read (and checked) later
-        found = pds.dataset(scan, schema=key, format="parquet", partitioning=pds.partitioning(key, flavor="hive"))
-        frags = sorted(((Path(f.path), pds.get_partition_keys(f.partition_expression).get("split"))
-                        for f in found.get_fragments()), key=lambda t: str(t[0]))
-    except (OSError, pa.ArrowException) as exc:
-        raise DatasetError(f"cannot read the folder as Parquet: {str(exc).splitlines()[0]}", where=str(scan)) from None
-    if not frags:
-        raise DatasetError("no Parquet files found", where=str(scan))
-    return [f for f, _ in frags], [s for _, s in frags], path
+    if path.is_dir() and (path / lay.SPEC_FILE).exists():
+        open_dataset(path)  # an augsplit dataset folder is checked first: unfinished or mixed ones are refused
+    scan = path / lay.MANIFEST_DIR if path.is_dir() and (path / lay.MANIFEST_DIR).is_dir() else path
+    t = open_table_file(scan)
+    _check_mapped(mapping, t.columns)
+    cols = _mapped_names(list(t.columns), mapping)
+    base = path if path.is_dir() else path.parent
+    return TableSource(None, t, t.kind, tuple(cols), mapping, Path(root) if root else base)
 
 
 def _mapped_names(names: list[str], mapping: dict) -> list[str]:

@@ -50,13 +50,12 @@ import html
 import io
 import json
 import math
-import os
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from ..io import plain
+from ..io import ensure_folder, is_stdout, plain, write_output
 from .result import AuditResult, CheckResult
 
 SCHEMA = "augsplit.audit/1"
@@ -92,16 +91,10 @@ def to_json(result: AuditResult) -> dict:
     }
 
 
-def _write_atomic(path: Path, data: bytes) -> None:
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    tmp.write_bytes(data)
-    os.replace(tmp, path)  # readers never see half a report
-
-
-def write_json(result: AuditResult, path) -> Path:
-    _write_atomic(Path(path), json.dumps(to_json(result), indent=2, allow_nan=False).encode())
-    return Path(path)
+def write_json(result: AuditResult, path) -> Path | str:
+    """audit.json at `path` (written safely, see augsplit.io), or on standard output for "-"."""
+    text = json.dumps(to_json(result), indent=2, allow_nan=False)
+    return write_output(path, text + "\n" if is_stdout(path) else text)
 
 
 # ---- terminal -----------------------------------------------------------------------------
@@ -268,12 +261,13 @@ def write_html(result: AuditResult, path) -> Path:
              " table.worst{font-size:12px} img{max-width:100%}")
     doc = (f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>augsplit audit</title>"
            f"<style>{style}</style></head><body>{''.join(parts)}</body></html>")
-    _write_atomic(Path(path), doc.encode())
-    return Path(path)
+    return write_output(path, doc)
 
 
 def write_reports(result: AuditResult, out_dir) -> dict[str, Path]:
-    """audit.json and audit.html in `out_dir` (created)."""
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    """audit.json and audit.html in `out_dir` (made if missing; its parent must exist). For
+    "-", audit.json goes to standard output and no HTML is written."""
+    if is_stdout(out_dir):
+        return {"json": write_json(result, out_dir)}
+    out = ensure_folder(out_dir)
     return {"json": write_json(result, out / "audit.json"), "html": write_html(result, out / "audit.html")}

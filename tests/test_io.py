@@ -1,0 +1,161 @@
+"""augsplit.io, the one safe-write module: a temporary sibling, fsynced, renamed over a missing
+path or a regular file only, then the folder fsynced; generation commits durably through it."""
+
+from __future__ import annotations
+
+import os
+import stat
+from pathlib import Path
+
+import pytest
+from specs import spec_dict
+
+import augsplit.io as aio
+from augsplit.dataset import layout as mf
+from augsplit.build import open_mapping
+from augsplit.errors import DatasetError
+from augsplit.generate import Options, generate
+from augsplit.io import atomic_path, ensure_folder, write_bytes_atomic, write_files_atomic, write_output
+
+
+@pytest.fixture
+def events(monkeypatch):
+    """Every temporary name handed out, fsync (by the path its descriptor names), syncfs (by
+    file system) and rename, in order."""
+    log: list[tuple] = []
+    real_fsync, real_replace, real_tmp, real_syncfs = os.fsync, os.replace, aio.temporary_name, aio.syncfs
+
+    def fsync(fd):
+        log.append(("fsync", os.readlink(f"/proc/self/fd/{fd}")))  # Linux: the open file's path
+        return real_fsync(fd)
+
+    def syncfs(path):
+        done = real_syncfs(path)
+        if done:
+            log.append(("syncfs", os.stat(path).st_dev))
+        return done
+
+    def replace(src, dst, **kw):
+        log.append(("replace", str(Path(src).resolve()), str(Path(dst).resolve())))
+        return real_replace(src, dst, **kw)
+
+    def temporary_name(path):
+        tmp = real_tmp(path)
+        log.append(("tmp", str(tmp.resolve())))
+        return tmp
+
+    monkeypatch.setattr(os, "fsync", fsync)
+    monkeypatch.setattr(os, "replace", replace)
+    monkeypatch.setattr(aio, "syncfs", syncfs)
+    monkeypatch.setattr(aio, "temporary_name", temporary_name)
+    return log
+
+
+def assert_committed(log, final: Path) -> None:
+    """`final` was renamed into place from a temporary sibling whose data had been synced
+    (its own fsync, or a syncfs of its file system after it was made), and its folder was
+    fsynced after the rename (POSIX: a rename is durable once its folder is synced)."""
+    final = final.resolve()
+    i = next(k for k, e in enumerate(log) if e[0] == "replace" and e[2] == str(final))
+    tmp = log[i][1]
+    assert Path(tmp).parent == final.parent and Path(tmp).name.startswith(f".{final.name}.tmp-")
+    made = log.index(("tmp", tmp))
+    synced = [e for e in log[made:i] if e == ("fsync", tmp) or e == ("syncfs", os.stat(final).st_dev)]
+    assert synced, f"{final.name} renamed before its data was synced"
+    assert ("fsync", str(final.parent)) in log[i + 1:], f"{final.parent} not synced after the rename"
+
+
+def test_generation_commits_durably(tmp_path, events):
+    """Measured on main: nothing called fsync, so a power loss could leave a renamed but empty part."""
+    out = tmp_path / "ds"
+    generate(None, out, Options(progress=False, store="files"), built=open_mapping(spec_dict()))
+    parts = sorted((out / mf.MANIFEST_DIR).rglob("part-*.parquet"))
+    images = sorted((out / mf.IMAGES_DIR).rglob("*.png"))
+    assert parts and images
+    for f in [out / mf.SPEC_FILE, out / mf.SUMMARY_FILE, *parts, *images]:
+        assert_committed(events, f)
+    # the summary (the dataset's "complete" mark) comes after every part is durable
+    last_part = max(k for k, e in enumerate(events) if e[0] == "replace" and e[2] in {str(p.resolve()) for p in parts})
+    summary = next(k for k, e in enumerate(events) if e[0] == "replace" and e[2].endswith(mf.SUMMARY_FILE))
+    assert last_part < summary
+
+
+def test_atomic_path_syncs_what_a_writer_left_at_the_temporary(tmp_path, events):
+    target = tmp_path / "t.parquet"
+    with atomic_path(target) as tmp:
+        tmp.write_bytes(b"rows")  # e.g. a Parquet writer given the temporary path
+    assert target.read_bytes() == b"rows"
+    assert_committed(events, target)
+
+
+def test_a_batch_of_files_is_synced_once_and_committed_each(tmp_path, events):
+    items = [(tmp_path / f"{i}.png", bytes([i]) * 10) for i in range(5)]
+    write_files_atomic(items)
+    assert all(p.read_bytes() == data for p, data in items)
+    for p, _ in items:
+        assert_committed(events, p)
+    syncs = [e for e in events if e[0] in ("fsync", "syncfs") and e[1] != str(tmp_path.resolve())]
+    assert len(syncs) in (1, len(items))  # one syncfs on Linux, else one fsync per file
+
+
+def test_a_failed_write_leaves_the_old_file_and_no_temporary(tmp_path):
+    target = tmp_path / "keep.csv"
+    target.write_bytes(b"old")
+    with pytest.raises(RuntimeError):
+        with atomic_path(target) as tmp:
+            tmp.write_bytes(b"half")
+            raise RuntimeError("writer died")
+    assert target.read_bytes() == b"old" and os.listdir(tmp_path) == ["keep.csv"]
+
+
+def _special(kind: str, p: Path, elsewhere: Path):
+    if kind == "symlink":
+        elsewhere.write_bytes(b"theirs")
+        p.symlink_to(elsewhere)
+    elif kind == "dangling symlink":
+        p.symlink_to(elsewhere)
+    elif kind == "fifo":
+        os.mkfifo(p)
+    elif kind == "folder":
+        p.mkdir()
+    elif kind == "device":
+        try:
+            os.mknod(p, stat.S_IFCHR | 0o666, os.makedev(1, 3))  # a null device of our own
+        except OSError:
+            pytest.skip("cannot make a device node here")
+
+
+@pytest.mark.parametrize("kind", ["symlink", "dangling symlink", "fifo", "folder", "device"])
+def test_only_a_missing_path_or_a_regular_file_is_written(kind, tmp_path):
+    p, elsewhere = tmp_path / "out", tmp_path / "elsewhere"
+    _special(kind, p, elsewhere)
+    before = os.lstat(p)
+    with pytest.raises(DatasetError) as e:
+        write_bytes_atomic(p, b"new")
+    assert str(e.value).startswith(str(p)) and "\n" not in str(e.value)
+    after = os.lstat(p)
+    assert (after.st_mode, after.st_ino) == (before.st_mode, before.st_ino)
+    if kind == "symlink":
+        assert elsewhere.read_bytes() == b"theirs"
+    if kind == "dangling symlink":
+        assert not elsewhere.exists()  # never created through the link
+    assert not [n for n in os.listdir(tmp_path) if ".tmp-" in n]
+
+
+def test_write_output_dash_is_stdout(tmp_path, monkeypatch, capsysbinary):
+    monkeypatch.chdir(tmp_path)
+    assert write_output("-", b"{}\n") == "-"
+    assert capsysbinary.readouterr().out == b"{}\n" and os.listdir(tmp_path) == []
+
+
+def test_ensure_folder(tmp_path):
+    assert ensure_folder(tmp_path / "new").is_dir()
+    assert ensure_folder(tmp_path / "new") == tmp_path / "new"  # an existing folder is fine
+    (tmp_path / "f").write_bytes(b"x")
+    (tmp_path / "link").symlink_to(tmp_path / "new")
+    for bad, words in ((tmp_path / "f", "not a folder"), (tmp_path / "link", "symbolic link"),
+                       (tmp_path / "no" / "deeper", "no such folder"), ("-", "not '-'")):
+        with pytest.raises(DatasetError, match=words) as e:
+            ensure_folder(bad)
+        assert "\n" not in str(e.value)
+    assert not (tmp_path / "no").exists() and (tmp_path / "f").read_bytes() == b"x"
