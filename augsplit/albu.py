@@ -17,6 +17,7 @@ import cv2
 import numpy as np
 
 from .build import Built, open_spec
+from .epoch import SharedEpoch
 from .errors import DatasetError, SpecError
 from .plan.draw import params_from_t
 from .plan.geometry import WARP_SLACK_PX
@@ -281,7 +282,7 @@ class _RegionTransform:
         self.class_key = class_key
         self.item_key = item_key
         self.log = log
-        self.epoch = int(epoch)
+        self._epoch = SharedEpoch(epoch, where=f"{type(self).__name__}.epoch")
         self._built = _open(spec)
         self._draws = RegionDraws(self._built, split)
         sp = self._draws.split
@@ -314,9 +315,14 @@ class _RegionTransform:
                             "land outside it", where=f"splits.{self._draws.split.name}.region",
                             hint="use RegionPlacement with colour=True, which draws both together")
 
+    @property
+    def epoch(self) -> int:
+        return self._epoch.value
+
     def set_epoch(self, epoch: int) -> None:
-        """The epoch per-item streams and log rows belong to."""
-        self.epoch = int(epoch)
+        """The epoch per-item streams and log rows belong to; seen by DataLoader workers
+        already started from this process too (shared memory, as OnlineSampler.set_epoch)."""
+        self._epoch.set(epoch, where=f"{type(self).__name__}.set_epoch")
 
     def _uniforms(self, data: dict) -> tuple[np.ndarray, int | None]:
         item = None

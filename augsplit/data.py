@@ -25,6 +25,7 @@ import pyarrow.parquet as pq
 
 from . import manifest as mf
 from .build import Built, open_spec
+from .epoch import SharedEpoch
 from .errors import AugsplitError, DatasetError
 from .generate import decode, open_dataset_spec
 from .plan.draw import draw_online
@@ -438,7 +439,8 @@ class OnlineSampler:
     ``length``; inside torch DataLoader workers each takes its share in blocks of ``block``
     items — pass ``block=batch_size`` and worker batches equal the single-process ones), or,
     with ``length``, as a map-style dataset (``len``, ``[i]``) that DataLoader shuffles,
-    batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws.
+    batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws, in
+    persistent DataLoader workers too (the epoch lives in shared memory; see augsplit.epoch).
 
     Items have the shape of ``Dataset`` items; ``row`` holds the drawn columns (manifest names)
     plus ``epoch``, ``item`` and ``image_id`` ``'<split>-e<epoch>-<index:07d>'``. With ``log`` (a ParamLog) every drawn item is recorded.
@@ -461,7 +463,7 @@ class OnlineSampler:
             raise DatasetError(f"block must be >= 1 and start >= 0, got block={block}, start={start}",
                                where="OnlineSampler")
         self.length = None if length is None else int(length)
-        self.epoch = int(epoch)
+        self._epoch = SharedEpoch(epoch, where="OnlineSampler.epoch")
         self.block = int(block)
         self.start = int(start)
         self.chw_float = bool(chw_float)
@@ -473,8 +475,15 @@ class OnlineSampler:
         self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
         self.target = target
 
+    @property
+    def epoch(self) -> int:
+        return self._epoch.value
+
     def set_epoch(self, epoch: int) -> None:
-        self.epoch = int(epoch)
+        """Make the following items those of `epoch`, in this process and in every DataLoader
+        worker already started from it (persistent or not, fork or spawn): the epoch lives in
+        shared memory. Call it before iterating the loader for that epoch."""
+        self._epoch.set(epoch, where="OnlineSampler.set_epoch")
 
     def __len__(self) -> int:
         if self.length is None:
