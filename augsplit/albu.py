@@ -8,7 +8,10 @@ a held-out split; `RegionColour` applies the colour axes only. Draws can go to a
 
 from __future__ import annotations
 
+import json
 import math
+import os
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
@@ -16,7 +19,7 @@ import albumentations as A
 import cv2
 import numpy as np
 
-from .build import Built, open_spec
+from .build import Built, open_mapping, open_spec
 from .epoch import SharedEpoch
 from .errors import DatasetError, SpecError
 from .plan.draw import params_from_t
@@ -26,6 +29,7 @@ from .plan.regions import CLASS
 from .render import RenderParams, similarity_matrix
 from .space.region import Region
 from .space.sample import sample_t
+from .spec import canonical
 
 GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
 COLOUR_AXES = ("hue", "saturation", "brightness")
@@ -40,12 +44,20 @@ BATCH = 64  # draws taken at once from a transform's generator
 # ---- drawing from a split's region ---------------------------------------------------------
 
 
-def _open(spec) -> Built:
+def _open(spec) -> tuple[Built, str | dict]:
+    """The Built of `spec` and the form a transform keeps of it (and serializes): a spec file
+    as its absolute path, so a pipeline saved with A.save loads from any working folder; a
+    Built, or a spec already embedded, as the embedded spec ``{"spec": <canonical spec>,
+    "base_dir": <absolute folder its relative paths resolve in>}``."""
     if isinstance(spec, Built):
-        return spec
-    if not isinstance(spec, (str, Path)):
-        raise SpecError(f"spec must be a spec file path or a Built, not {type(spec).__name__}", where="spec")
-    return open_spec(spec)
+        return spec, {"spec": json.loads(canonical(spec.spec)), "base_dir": str(Path(spec.base_dir).resolve())}
+    if isinstance(spec, Mapping) and set(spec) == {"spec", "base_dir"}:
+        return _open(open_mapping(spec["spec"], spec["base_dir"]))
+    if isinstance(spec, (str, os.PathLike)):
+        path = os.path.abspath(os.path.expanduser(os.fspath(spec)))
+        return open_spec(path), path
+    raise SpecError(f"spec must be a spec file path, a Built or an embedded spec {{'spec': ..., 'base_dir': ...}}, "
+                    f"not {type(spec).__name__}", where="spec")
 
 
 def _cylinder(region: Region, keep: set[str]) -> Region:
@@ -276,14 +288,13 @@ class _RegionTransform:
     source_name = "RegionTransform"
 
     def _setup(self, spec, split, held_out: bool, class_key, item_key, log, epoch) -> None:
-        self.spec = spec
+        self._built, self.spec = _open(spec)
         self.split = split
         self.held_out = bool(held_out)
         self.class_key = class_key
         self.item_key = item_key
         self.log = log
         self._epoch = SharedEpoch(epoch, where=f"{type(self).__name__}.epoch")
-        self._built = _open(spec)
         self._draws = RegionDraws(self._built, split)
         sp = self._draws.split
         where = f"splits.{sp.name}"
@@ -400,6 +411,13 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
     worker_init_fn or the workers repeat each other's draws.) What was applied is in ``get_applied_params()`` (and
     so in Compose's ``applied_transforms`` with ``save_applied_params=True``) under
     ``'placement'``, in the result under ``params_key`` when given, and in ``log``.
+
+    Saved and reloaded like any albumentations transform (``A.to_dict``/``A.from_dict``,
+    ``A.save``/``A.load`` as JSON or YAML, pickle, ``A.ReplayCompose``; import augsplit.albu
+    before loading). ``spec`` is kept as the spec file's absolute path, so the pipeline loads
+    from any working folder (while the file is there); a ``Built`` is kept as the spec itself,
+    embedded (``{"spec": ..., "base_dir": ...}``, which ``spec`` also accepts). The ``log`` is
+    not saved: give the reloaded transform its own (a replay, which repeats a draw, logs nothing).
 
     Refused at construction (SpecError): an unknown split; a held-out split (use
     HeldOutPlacement); content of ``content_size`` (width, height) larger than the canvas at
@@ -592,7 +610,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
                 "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "check_footprint", "held_out")
 
     def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
+        spec = self.spec if not isinstance(self.spec, Mapping) else f"<spec {self._built.plan.hash}>"
         return (f"{type(self).__name__}(spec={str(spec)!r}, split={self.split!r}, content_size={self.content_size}, "
                 f"anchor={self.anchor!r}, colour={self.colour}, p={self.p})")
 
@@ -608,7 +626,11 @@ class HeldOutPlacement(RegionPlacement):
                  colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
                  interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
                  fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None,
-                 check_footprint: bool = True):
+                 check_footprint: bool = True, p: float = 1.0):
+        if _probability(p, type(self).__name__) != 1.0:
+            raise SpecError(f"a held-out placement applies to every test item, so p is 1, got {p!r}",
+                            where=f"{type(self).__name__}.p",
+                            hint="RegionPlacement(..., held_out=True, p=...) places only some items")
         super().__init__(spec, split, content_size, anchor, colour, class_key, item_key, interpolation,
                          mask_interpolation, fill, fill_mask, log, epoch, params_key, check_footprint,
                          held_out=True, p=1.0)
@@ -657,5 +679,5 @@ class RegionColour(_RegionTransform, A.ImageOnlyTransform):
         return ("spec", "split", "class_key", "item_key", "epoch", "params_key", "held_out")
 
     def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
+        spec = self.spec if not isinstance(self.spec, Mapping) else f"<spec {self._built.plan.hash}>"
         return f"RegionColour(spec={str(spec)!r}, split={self.split!r}, p={self.p})"
