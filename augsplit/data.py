@@ -28,6 +28,7 @@ from .build import Built, open_spec
 from .epoch import SharedEpoch
 from .errors import AugsplitError, DatasetError
 from .generate import decode, open_dataset_spec
+from .item_transform import ItemTransform
 from .plan.draw import draw_online
 from .render import Placed, footprint
 from .scene import make_scene, pixel_sha256, render_params
@@ -79,10 +80,6 @@ def _target_mask(placed: Placed, hw: tuple[int, int]) -> np.ndarray:
     return out
 
 
-def _to_chw_float(image: np.ndarray) -> np.ndarray:
-    return np.ascontiguousarray(image.transpose(2, 0, 1), dtype=np.float32) * np.float32(1 / 255)
-
-
 def _targets(names, row: dict, params: tuple[str, ...], mask_fn):
     out = []
     for t in names:
@@ -118,7 +115,22 @@ class Dataset:
     Rows can be filtered by ``classes`` (names or indices), ``cells`` (the region cell each
     image was drawn from, manifest column ``cell``) and ``query`` (a pandas query over the
     manifest columns, e.g. ``"scale > 1.2 and angle < 90"``); the filters intersect.
-    ``transform`` is called with the item dict (image still HWC uint8) and returns it.
+    ``transform`` changes each item before ``chw_float``; it is called the way its library
+    calls it (``transform_kind='auto'`` tells by its type; name the kind for a plain function):
+
+    - an albumentations transform or Compose (``'albumentations'``): ``transform(image=...,
+      mask=..., bboxes=...)`` with the image (H, W, C) uint8, the target mask when the target
+      includes ``'mask'`` and the target box when it includes ``'bbox'`` (as pascal_voc, so
+      declare ``bbox_params=A.BboxParams(format='pascal_voc')``; label fields get the class
+      index); what it returns replaces them (a box it drops becomes NaN);
+    - a torch module, which every torchvision v2 transform is, or another torchvision
+      transform (``'tensor'``): the image as a uint8 torch tensor (C, H, W), and the tensor it
+      returns becomes the image (tensor in, tensor out). Refused with a ``'mask'`` or ``'bbox'``
+      target, which it would leave behind;
+    - any other callable (``'item'``): the item dict, returning the item dict.
+
+    ``chw_float=True`` then makes the image float32 (C, H, W): uint8 scaled to [0, 1], a float
+    image kept as it is; a numpy image stays numpy, a tensor stays a tensor.
     ``check_pixels`` compares each image's SHA-256 with its manifest row (lossless stores).
     Items follow the split's image index, after filtering; the filtered manifest is
     ``self.manifest`` (a DataFrame, row i = item i).
@@ -126,8 +138,8 @@ class Dataset:
 
     def __init__(self, root: str | Path, split: str, target="class", chw_float: bool = False,
                  classes: Sequence | None = None, cells: Sequence[int] | None = None, query: str | None = None,
-                 transform: Callable[[dict], dict] | None = None, check_pixels: bool = False,
-                 parquet_cache: int = 4):
+                 transform: Callable | None = None, check_pixels: bool = False,
+                 parquet_cache: int = 4, transform_kind: str = "auto"):
         self.root = Path(root)
         where = str(self.root)
         if not self.root.is_dir():
@@ -147,6 +159,8 @@ class Dataset:
         self.target = target
         self.chw_float = bool(chw_float)
         self.transform = transform
+        self.transform_kind = transform_kind
+        self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="Dataset.transform")
         self.check_pixels = bool(check_pixels)
         self.parquet_cache = max(1, int(parquet_cache))
         self.classes = tuple(summary.get("classes") or ())
@@ -232,11 +246,7 @@ class Dataset:
                                    where=f"{self.root}:{row['image_id']}")
         mask_fn = (lambda: _target_mask(placed, self.hw)) if placed is not None else (lambda: self._mask(row))
         item = {"image": image, "target": _targets(self.names, row, self.param_names, mask_fn), "row": row}
-        if self.transform is not None:
-            item = self.transform(item)
-        if self.chw_float:
-            item["image"] = _to_chw_float(item["image"])
-        return item
+        return self._finish.apply(item)
 
     # ---- pixels ---------------------------------------------------------------------------
     def _image(self, i: int, row: dict):
@@ -442,14 +452,15 @@ class OnlineSampler:
     batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws, in
     persistent DataLoader workers too (the epoch lives in shared memory; see augsplit.epoch).
 
-    Items have the shape of ``Dataset`` items; ``row`` holds the drawn columns (manifest names)
+    Items have the shape of ``Dataset`` items (``transform``, ``transform_kind`` and
+    ``chw_float`` as there); ``row`` holds the drawn columns (manifest names)
     plus ``epoch``, ``item`` and ``image_id`` ``'<split>-e<epoch>-<index:07d>'``. With ``log`` (a ParamLog) every drawn item is recorded.
     ``spec`` is a spec file, a dataset folder or a Built; ``seed`` defaults to the spec's.
     """
 
     def __init__(self, spec, split: str, *, length: int | None = None, epoch: int = 0, seed: int | None = None,
                  target="class", chw_float: bool = False, log=None, block: int = 1, start: int = 0,
-                 transform: Callable[[dict], dict] | None = None):
+                 transform: Callable | None = None, transform_kind: str = "auto"):
         built = _open_built(spec)
         self._built = built
         self._split = built.plan.split(split)  # SpecError listing the splits when unknown
@@ -474,6 +485,8 @@ class OnlineSampler:
         self._k = built.plan.space.ndim + 3
         self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
         self.target = target
+        self.transform_kind = transform_kind
+        self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="OnlineSampler.transform")
 
     @property
     def epoch(self) -> int:
@@ -543,11 +556,7 @@ class OnlineSampler:
         item = {"image": scene.image,
                 "target": _targets(self.names, row, self.param_names, lambda: _target_mask(t, self.hw)),
                 "row": row}
-        if self.transform is not None:
-            item = self.transform(item)
-        if self.chw_float:
-            item["image"] = _to_chw_float(item["image"])
-        return item
+        return self._finish.apply(item)
 
     def torch_iterable(self):
         """This sampler as a torch IterableDataset (imports torch), for DataLoader's iterable
