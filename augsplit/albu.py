@@ -26,6 +26,7 @@ from .plan.draw import draw_online
 from .plan.guarantees import largest_shared_radius
 from .plan.regions import CLASS
 from .render import RenderParams, recolour_hsv, similarity_matrix
+from .reprs import Shown, made_repr
 from .space.region import Region
 from .spec import canonical
 
@@ -57,6 +58,11 @@ def _open(spec) -> tuple[Built, str | dict]:
         return open_spec(path), path
     raise SpecError(f"spec must be a spec file path, a Built or an embedded spec {{'spec': ..., 'base_dir': ...}}, "
                     f"not {type(spec).__name__}", where="spec")
+
+
+def _shown(spec, plan) -> str:
+    """How a repr shows a spec: its file path, else its hash (an embedded spec is long)."""
+    return spec if isinstance(spec, str) else Shown(f"<spec {plan.hash}>")
 
 
 def _cylinder(region: Region, keep: set[str]) -> Region:
@@ -95,6 +101,10 @@ class RegionDraws:
         # the class-picking uniform that picks class c: the middle of its share
         self._middle = {c: (share[c] + (share[c - 1] if c else 0.0)) / 2.0 for c in self.present}
         self.class_regions = {c: self.split.class_region(c) for c in self.present}
+
+    def __repr__(self) -> str:
+        return made_repr(self, {"built": _shown(None, self.plan), "split": self.split.name},
+                         positional=("built", "split"))
 
     def class_dependent(self) -> tuple[str, str] | None:
         """Two classes whose regions differ (beyond the class axis), or None."""
@@ -282,6 +292,11 @@ class _RegionTransform:
                                 hint="pass class_key='<data key holding the class name or index>'")
         self._calls = 0
         self._pending: list[dict] = []
+
+    def __repr__(self) -> str:
+        args = {**self.get_transform_init_args(), "p": self.p}
+        args["spec"] = _shown(self.spec, self._built.plan)
+        return made_repr(self, args, positional=("spec", "split"))
 
     def _names(self, role: str) -> str:
         return ", ".join(s.name for s in self._built.plan.splits if s.role == role) or "none"
@@ -575,11 +590,6 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         return ("spec", "split", "content_size", "anchor", "colour", "class_key", "item_key", "interpolation",
                 "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "check_footprint", "held_out")
 
-    def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Mapping) else f"<spec {self._built.plan.hash}>"
-        return (f"{type(self).__name__}(spec={str(spec)!r}, split={self.split!r}, content_size={self.content_size}, "
-                f"anchor={self.anchor!r}, colour={self.colour}, p={self.p})")
-
 
 class HeldOutPlacement(RegionPlacement):
     """RegionPlacement at test time: draws from a held-out split (refuses a training split)
@@ -639,7 +649,3 @@ class RegionColour(_RegionTransform, A.ImageOnlyTransform):
 
     def get_transform_init_args_names(self) -> tuple[str, ...]:
         return ("spec", "split", "class_key", "item_key", "epoch", "params_key", "held_out")
-
-    def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Mapping) else f"<spec {self._built.plan.hash}>"
-        return f"RegionColour(spec={str(spec)!r}, split={self.split!r}, p={self.p})"

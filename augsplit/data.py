@@ -31,6 +31,7 @@ from .generate import decode, open_dataset_spec
 from .item_transform import ItemTransform
 from .plan.draw import draw_online
 from .render import Placed, footprint
+from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
 from .spec import parse_spec, spec_hash
 from .space.sample import PARAMS, RENDER, LazyStream, lazy_image_rng
@@ -161,6 +162,9 @@ class Dataset:
         self.transform = transform
         self.transform_kind = transform_kind
         self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="Dataset.transform")
+        self._made = {"root": root, "split": split, "target": target, "chw_float": chw_float, "classes": classes,
+                      "cells": cells, "query": query, "transform": transform, "check_pixels": check_pixels,
+                      "parquet_cache": parquet_cache, "transform_kind": transform_kind}  # for the repr
         self.check_pixels = bool(check_pixels)
         self.parquet_cache = max(1, int(parquet_cache))
         self.classes = tuple(summary.get("classes") or ())
@@ -294,8 +298,7 @@ class Dataset:
         return _target_mask(footprint(sprite, render_params(row), self.hw, self.threshold), self.hw)
 
     def __repr__(self) -> str:
-        return (f"Dataset({str(self.root)!r}, split={self.split!r}, items={len(self)}, target={self.target!r}, "
-                f"chw_float={self.chw_float})")
+        return made_repr(self, self._made, positional=("root", "split"))
 
 
 def _read_dataset_json(root: Path):
@@ -487,6 +490,9 @@ class OnlineSampler:
         self.target = target
         self.transform_kind = transform_kind
         self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="OnlineSampler.transform")
+        self._made = {"spec": Shown(f"<spec {built.plan.hash}>") if isinstance(spec, Built) else spec, "split": split,
+                      "length": length, "target": target, "chw_float": chw_float, "log": log, "block": block,
+                      "start": start, "transform": transform, "transform_kind": transform_kind}  # for the repr
 
     @property
     def epoch(self) -> int:
@@ -564,8 +570,10 @@ class OnlineSampler:
         return _torch_iterable_class()(self)
 
     def __repr__(self) -> str:
-        n = "unlimited" if self.length is None else self.length
-        return f"OnlineSampler(split={self.split!r}, items={n}, epoch={self.epoch}, seed={self.seed}, block={self.block})"
+        # the epoch and seed in force (set_epoch changes the one; a seed equal to the spec's is its default)
+        return made_repr(self, {**self._made, "epoch": self.epoch,
+                                "seed": None if self.seed == self._built.spec.seed else self.seed},
+                         positional=("spec", "split"))
 
 
 @functools.lru_cache(maxsize=None)
@@ -580,6 +588,9 @@ def _torch_iterable_class():
 
         def __iter__(self):
             return iter(self.sampler)
+
+        def __repr__(self) -> str:
+            return made_repr(self, {"sampler": self.sampler}, positional=("sampler",))
 
     TorchOnlineIterable.__module__ = __name__
     TorchOnlineIterable.__qualname__ = "TorchOnlineIterable"

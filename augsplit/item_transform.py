@@ -15,6 +15,7 @@ from typing import Callable
 import numpy as np
 
 from .errors import DatasetError
+from .reprs import made_repr
 
 KINDS = ("auto", "albumentations", "tensor", "item")
 _MOVED_WITH_IMAGE = ("mask", "bbox")  # targets a geometric transform must move too
@@ -63,6 +64,10 @@ class ItemTransform:
                                hint="use an albumentations transform (it moves masks and boxes with the image) "
                                     "or transform_kind='item' (the whole item dict)")
         self._labels = _bbox_fields(transform, where) if self.kind == "albumentations" and "bbox" in names else ()
+
+    def __repr__(self) -> str:
+        return made_repr(self, {"transform": self.transform, "kind": self.kind, "names": self.names,
+                                "chw_float": self.chw_float}, positional=("transform",))
 
     def apply(self, item: dict) -> dict:
         if self.kind == "item":
