@@ -12,7 +12,7 @@ from __future__ import annotations
 import albumentations as A
 import numpy as np
 import pytest
-from specs import spec_dict
+from specs import LOADER
 
 from augsplit.build import open_mapping
 from augsplit.data import Dataset, OnlineSampler
@@ -22,12 +22,7 @@ from augsplit.item_transform import chw_float
 
 torch = pytest.importorskip("torch")
 
-SPEC = spec_dict(canvas={"width": 24, "height": 20, "mode": "rgb"},
-                 objects={"kind": "polyomino", "cells": 3, "cell_px": 3},
-                 background={"kind": "uniform_noise", "lo": 0.1, "hi": 0.5},
-                 axes={"x": {"range": [4, 20]}, "y": {"range": [4, 16]}, "angle": {"range": [0, 360]}},
-                 splits={"train": {"region": {"x": [4, 10]}, "per_class": 3},
-                         "test": {"region": {"x": [14, 20]}, "per_class": 2}})
+SPEC = LOADER
 H, W = 20, 24
 
 

@@ -14,7 +14,7 @@ import pickle
 import albumentations as A
 import numpy as np
 import pytest
-from specs import spec_dict
+from specs import LOADER
 
 from augsplit.albu import HeldOutPlacement
 from augsplit.build import open_mapping
@@ -25,12 +25,7 @@ from augsplit.errors import DatasetError
 torch = pytest.importorskip("torch")
 from torch.utils.data import DataLoader  # noqa: E402
 
-SPEC = spec_dict(canvas={"width": 24, "height": 24, "mode": "rgb"},
-                 objects={"kind": "polyomino", "cells": 3, "cell_px": 3},
-                 background={"kind": "uniform_noise", "lo": 0.1, "hi": 0.5},
-                 axes={"x": {"range": [4, 20]}, "y": {"range": [4, 20]}, "angle": {"range": [0, 360]}},
-                 splits={"train": {"region": {"x": [4, 10]}, "per_class": 4},
-                         "test": {"region": {"x": [14, 20]}, "per_class": 2}})
+SPEC = LOADER
 N, BATCH = 8, 4
 
 
