@@ -28,7 +28,7 @@ from .build import Built, open_spec
 from .epoch import SharedEpoch
 from .errors import AugsplitError, DatasetError
 from .generate import decode, open_dataset_spec
-from .item_transform import ItemTransform
+from .item_transform import bound
 from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
@@ -161,7 +161,7 @@ class Dataset:
         self.chw_float = bool(chw_float)
         self.transform = transform
         self.transform_kind = transform_kind
-        self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="Dataset.transform")
+        bound(self, "Dataset.transform")  # checked now; changed attributes are checked when next used
         self._made = {"root": root, "split": split, "target": target, "chw_float": chw_float, "classes": classes,
                       "cells": cells, "query": query, "transform": transform, "check_pixels": check_pixels,
                       "parquet_cache": parquet_cache, "transform_kind": transform_kind}  # for the repr
@@ -250,7 +250,7 @@ class Dataset:
                                    where=f"{self.root}:{row['image_id']}")
         mask_fn = (lambda: _target_mask(placed, self.hw)) if placed is not None else (lambda: self._mask(row))
         item = {"image": image, "target": _targets(self.names, row, self.param_names, mask_fn), "row": row}
-        return self._finish.apply(item)
+        return bound(self, "Dataset.transform").apply(item)
 
     # ---- pixels ---------------------------------------------------------------------------
     def _image(self, i: int, row: dict):
@@ -298,7 +298,11 @@ class Dataset:
         return _target_mask(footprint(sprite, render_params(row), self.hw, self.threshold), self.hw)
 
     def __repr__(self) -> str:
-        return made_repr(self, self._made, positional=("root", "split"))
+        return made_repr(self, {**self._made, **self._settable()}, positional=("root", "split"))
+
+    def _settable(self) -> dict:
+        """The constructor arguments kept as attributes a user may change: their values now."""
+        return {"chw_float": self.chw_float, "transform": self.transform, "transform_kind": self.transform_kind}
 
 
 def _read_dataset_json(root: Path):
@@ -489,7 +493,7 @@ class OnlineSampler:
         self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
         self.target = target
         self.transform_kind = transform_kind
-        self._finish = ItemTransform(transform, transform_kind, self.names, chw_float, where="OnlineSampler.transform")
+        bound(self, "OnlineSampler.transform")  # checked now; changed attributes are checked when next used
         self._made = {"spec": Shown(f"<spec {built.plan.hash}>") if isinstance(spec, Built) else spec, "split": split,
                       "length": length, "target": target, "chw_float": chw_float, "log": log, "block": block,
                       "start": start, "transform": transform, "transform_kind": transform_kind}  # for the repr
@@ -562,7 +566,7 @@ class OnlineSampler:
         item = {"image": scene.image,
                 "target": _targets(self.names, row, self.param_names, lambda: _target_mask(t, self.hw)),
                 "row": row}
-        return self._finish.apply(item)
+        return bound(self, "OnlineSampler.transform").apply(item)
 
     def torch_iterable(self):
         """This sampler as a torch IterableDataset (imports torch), for DataLoader's iterable
@@ -571,7 +575,7 @@ class OnlineSampler:
 
     def __repr__(self) -> str:
         # the epoch and seed in force (set_epoch changes the one; a seed equal to the spec's is its default)
-        return made_repr(self, {**self._made, "epoch": self.epoch,
+        return made_repr(self, {**self._made, **Dataset._settable(self), "epoch": self.epoch,
                                 "seed": None if self.seed == self._built.spec.seed else self.seed},
                          positional=("spec", "split"))
 

@@ -54,6 +54,7 @@ class ItemTransform:
         if transform is not None and not callable(transform):
             raise DatasetError(f"transform must be callable, got {type(transform).__name__}", where=where)
         self.transform = transform
+        self.requested = kind
         self.kind = None if transform is None else _kind_of(transform) if kind == "auto" else kind
         self.names = names
         self.chw_float = bool(chw_float)
@@ -124,3 +125,13 @@ def chw_float(image):
     a = a[..., None] if a.ndim == 2 else a
     out = np.ascontiguousarray(a.transpose(2, 0, 1), dtype=np.float32)
     return out * scale if a.dtype == np.uint8 else out
+
+
+def bound(owner, where: str) -> ItemTransform:
+    """The ItemTransform of a loader's current ``transform``, ``transform_kind``, ``chw_float``
+    and target ``names``: made (and so checked) again when the user has changed one of them."""
+    f = owner.__dict__.get("_finish")
+    if (f is None or f.transform is not owner.transform or f.requested != owner.transform_kind
+            or f.chw_float != bool(owner.chw_float) or f.names != owner.names):
+        f = owner._finish = ItemTransform(owner.transform, owner.transform_kind, owner.names, owner.chw_float, where)
+    return f

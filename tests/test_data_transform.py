@@ -82,6 +82,20 @@ def test_torchvision_v2_when_importable(root):
     np.testing.assert_allclose(img.numpy(), plain[2]["image"].transpose(2, 0, 1)[:, :, ::-1] / 255.0, atol=1e-6)
 
 
+def test_changed_transform_attributes_take_effect(root):
+    # as with torchvision's datasets, `ds.transform = ...` after construction is used (and checked)
+    plain = Dataset(root, "train", target="mask")
+    ds = Dataset(root, "train", target="mask")
+    ds.transform = A.Compose([A.HorizontalFlip(p=1.0)])
+    ds.chw_float = True
+    assert np.array_equal(ds[1]["target"], plain[1]["target"][:, ::-1])
+    np.testing.assert_allclose(ds[1]["image"], plain[1]["image"][:, ::-1].transpose(2, 0, 1) / 255.0, atol=1e-7)
+    assert "chw_float=True" in repr(ds) and "transform=Compose(...)" in repr(ds)  # the repr shows them too
+    ds.transform = TensorFlip()
+    with pytest.raises(DatasetError, match="'mask' target would no longer match"):
+        ds[0]
+
+
 def test_albumentations_moves_image_mask_and_box_together(root):
     plain = Dataset(root, "train", target=("class", "mask", "bbox"))
     flip = A.Compose([A.HorizontalFlip(p=1.0)], bbox_params=A.BboxParams(format="pascal_voc", label_fields=["labels"]))
