@@ -95,9 +95,9 @@ class RegionDraws:
         self.split = plan.split(split)  # SpecError listing the splits when unknown
         self.space = plan.space
         self.k = plan.space.ndim + 2
-        counts = np.cumsum(np.asarray(self.split.counts, dtype=float))
-        share = counts / counts[-1]  # as draw_online turns a uniform into a class
-        self.present = tuple(int(c) for c in np.flatnonzero(np.diff(np.r_[0.0, counts]) > 0))
+        counts = np.asarray(self.split.counts, dtype=float)
+        share = np.cumsum(counts) / counts.sum()  # as draw_online turns a uniform into a class
+        self.present = tuple(int(c) for c in np.flatnonzero(counts > 0))
         # the class-picking uniform that picks class c: the middle of its share
         self._middle = {c: (share[c] + (share[c - 1] if c else 0.0)) / 2.0 for c in self.present}
         self.class_regions = {c: self.split.class_region(c) for c in self.present}

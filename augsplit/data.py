@@ -81,6 +81,11 @@ def _target_mask(placed: Placed, hw: tuple[int, int]) -> np.ndarray:
     return out
 
 
+def _settable(loader) -> dict:
+    """A loader's constructor arguments kept as attributes the user may change: their values now."""
+    return {"chw_float": loader.chw_float, "transform": loader.transform, "transform_kind": loader.transform_kind}
+
+
 def _targets(names, row: dict, params: tuple[str, ...], mask_fn):
     out = []
     for t in names:
@@ -298,11 +303,7 @@ class Dataset:
         return _target_mask(footprint(sprite, render_params(row), self.hw, self.threshold), self.hw)
 
     def __repr__(self) -> str:
-        return made_repr(self, {**self._made, **self._settable()}, positional=("root", "split"))
-
-    def _settable(self) -> dict:
-        """The constructor arguments kept as attributes a user may change: their values now."""
-        return {"chw_float": self.chw_float, "transform": self.transform, "transform_kind": self.transform_kind}
+        return made_repr(self, {**self._made, **_settable(self)}, positional=("root", "split"))
 
 
 def _read_dataset_json(root: Path):
@@ -575,7 +576,7 @@ class OnlineSampler:
 
     def __repr__(self) -> str:
         # the epoch and seed in force (set_epoch changes the one; a seed equal to the spec's is its default)
-        return made_repr(self, {**self._made, **Dataset._settable(self), "epoch": self.epoch,
+        return made_repr(self, {**self._made, **_settable(self), "epoch": self.epoch,
                                 "seed": None if self.seed == self._built.spec.seed else self.seed},
                          positional=("spec", "split"))
 
