@@ -8,7 +8,10 @@ a held-out split; `RegionColour` applies the colour axes only. Draws can go to a
 
 from __future__ import annotations
 
+import json
 import math
+import os
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
@@ -16,15 +19,16 @@ import albumentations as A
 import cv2
 import numpy as np
 
-from .build import Built, open_spec
+from .build import Built, open_mapping, open_spec
+from .epoch import SharedEpoch
 from .errors import DatasetError, SpecError
-from .plan.draw import params_from_t
-from .plan.geometry import WARP_SLACK_PX
-from .plan.guarantees import footprint_gaps
+from .plan.draw import draw_online
+from .plan.guarantees import largest_shared_radius
 from .plan.regions import CLASS
-from .render import RenderParams, similarity_matrix
+from .render import RenderParams, recolour_hsv, similarity_matrix
+from .reprs import Shown, made_repr
 from .space.region import Region
-from .space.sample import sample_t
+from .spec import canonical
 
 GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
 COLOUR_AXES = ("hue", "saturation", "brightness")
@@ -33,18 +37,32 @@ BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 # Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
 PLUGIN = 0x616C6275
 _MASS_TOL = 1e-12
+_NOT_PLACED = ("index", "instance", "instance_seen")  # draw_online columns about the spec's own objects
 BATCH = 64  # draws taken at once from a transform's generator
 
 
 # ---- drawing from a split's region ---------------------------------------------------------
 
 
-def _open(spec) -> Built:
+def _open(spec) -> tuple[Built, str | dict]:
+    """The Built of `spec` and the form a transform keeps of it (and serializes): a spec file
+    as its absolute path, so a pipeline saved with A.save loads from any working folder; a
+    Built, or a spec already embedded, as the embedded spec ``{"spec": <canonical spec>,
+    "base_dir": <absolute folder its relative paths resolve in>}``."""
     if isinstance(spec, Built):
-        return spec
-    if not isinstance(spec, (str, Path)):
-        raise SpecError(f"spec must be a spec file path or a Built, not {type(spec).__name__}", where="spec")
-    return open_spec(spec)
+        return spec, {"spec": json.loads(canonical(spec.spec)), "base_dir": str(Path(spec.base_dir).resolve())}
+    if isinstance(spec, Mapping) and set(spec) == {"spec", "base_dir"}:
+        return _open(open_mapping(spec["spec"], spec["base_dir"]))
+    if isinstance(spec, (str, os.PathLike)):
+        path = os.path.abspath(os.path.expanduser(os.fspath(spec)))
+        return open_spec(path), path
+    raise SpecError(f"spec must be a spec file path, a Built or an embedded spec {{'spec': ..., 'base_dir': ...}}, "
+                    f"not {type(spec).__name__}", where="spec")
+
+
+def _shown(spec, plan) -> str:
+    """How a repr shows a spec: its file path, else its hash (an embedded spec is long)."""
+    return spec if isinstance(spec, str) else Shown(f"<spec {plan.hash}>")
 
 
 def _cylinder(region: Region, keep: set[str]) -> Region:
@@ -67,7 +85,8 @@ class RegionDraws:
     """Draws of one split's region for a transform: class, axes, canvas position and cell.
 
     `draw(u, c)` maps uniforms u (ndim + 2: one for the class, one for the box, one per axis)
-    through exact region sampling (space.sample) — every draw lies in the region.
+    through the planner's own online draw (plan.draw.draw_online: the class in proportion to
+    the split's per-class counts, then exact region sampling) — every draw lies in the region.
     """
 
     def __init__(self, built: Built, split: str):
@@ -77,23 +96,15 @@ class RegionDraws:
         self.space = plan.space
         self.k = plan.space.ndim + 2
         counts = np.asarray(self.split.counts, dtype=float)
+        share = np.cumsum(counts) / counts.sum()  # as draw_online turns a uniform into a class
         self.present = tuple(int(c) for c in np.flatnonzero(counts > 0))
-        self.cum = np.cumsum(counts) / counts.sum()
+        # the class-picking uniform that picks class c: the middle of its share
+        self._middle = {c: (share[c] + (share[c - 1] if c else 0.0)) / 2.0 for c in self.present}
         self.class_regions = {c: self.split.class_region(c) for c in self.present}
-        self.cells = {c: self._cell_map(c) for c in self.present}
 
-    def _cell_map(self, c: int) -> np.ndarray | None:
-        """Index in the split's region of each box of class c's region (its boxes are the
-        split's boxes cut to the class, in order); None if that correspondence does not hold."""
-        reg, part = self.split.region, self.class_regions[c]
-        ci = self.space.index[CLASS]
-        lo = np.maximum(reg.lo[:, ci], c - 0.5)
-        hi = np.minimum(reg.hi[:, ci], c + 0.5)
-        idx = np.flatnonzero(hi - lo > 1e-12)
-        if len(idx) != part.nbox or not np.allclose(reg.lo[idx][:, np.arange(self.space.ndim) != ci],
-                                                    part.lo[:, np.arange(self.space.ndim) != ci]):
-            return None
-        return idx
+    def __repr__(self) -> str:
+        return made_repr(self, {"built": _shown(None, self.plan), "split": self.split.name},
+                         positional=("built", "split"))
 
     def class_dependent(self) -> tuple[str, str] | None:
         """Two classes whose regions differ (beyond the class axis), or None."""
@@ -143,32 +154,15 @@ class RegionDraws:
         return self.draw_many(np.asarray(u, dtype=float)[None, :], c)[0]
 
     def draw_many(self, u: np.ndarray, c: int | None = None) -> list[dict]:
-        """Draws from uniforms u (n, k), vectorised: the class in proportion to the split's
-        per-class counts (as plan.draw.draw_online) unless c is given, then the point."""
-        n = len(u)
-        if c is None:
-            cls = np.searchsorted(self.cum, u[:, 0], side="right")
-            cls = np.where(np.isin(cls, self.present), cls, self.present[-1])
-        else:
-            cls = np.full(n, int(c))
-        t = np.empty((n, self.space.ndim))
-        cell = np.empty(n, dtype=np.int64)
-        for k in np.unique(cls):
-            rows = np.flatnonzero(cls == k)
-            t[rows], box = sample_t(self.class_regions[int(k)], u[rows, 1:])
-            cells = self.cells[int(k)]
-            cell[rows] = cells[box] if cells is not None else self.split.region.box_of_t(t[rows])
-        cols = params_from_t(self.plan, t)
-        names = [k for k in cols if k != "mirror"]
-        table = [cols[k].tolist() for k in names]
-        mirror = cols["mirror"].tolist()
-        classes = self.plan.classes
-        out = []
-        for i, ci in enumerate(cls.tolist()):
-            d = {k: col[i] for k, col in zip(names, table)}
-            d.update(mirror=int(mirror[i]), cell=int(cell[i]), class_index=int(ci), class_name=classes[ci])
-            out.append(d)
-        return out
+        """Draws from uniforms u (n, k), vectorised, by plan.draw.draw_online (class c when given)."""
+        u = np.asarray(u, dtype=float)
+        if c is not None:
+            u = u.copy()
+            u[:, 0] = self._middle[int(c)]
+        # draw_online's second uniform picks an object instance: the content is the caller's, so none
+        cols = draw_online(self.plan, self.split, np.insert(u, 1, 0.0, axis=1))
+        table = {k: v.tolist() for k, v in cols.items() if k not in _NOT_PLACED}
+        return [dict(zip(table, row)) for row in zip(*table.values())]
 
 
 # ---- pixel helpers -------------------------------------------------------------------------
@@ -200,23 +194,21 @@ def warp(array: np.ndarray, matrix: np.ndarray, hw: tuple[int, int], interpolati
 
 
 def recolour(image: np.ndarray, hue: float, saturation: float, brightness: float) -> np.ndarray:
-    """Hue rotated (degrees), saturation and value multiplied (clipped to 1) in OpenCV float
-    HSV — the renderer's colour axes (render.recoloured) — for uint8 or float [0, 1] images.
-    Grey images take the brightness only; channels past the third are left as they are."""
+    """The renderer's colour axes (render.recolour_hsv: hue rotated in degrees, saturation and
+    value multiplied and clipped to 1, in OpenCV float HSV) on a uint8 or float [0, 1] image.
+    A grey image is recoloured as the RGB image of its grey, so only the brightness acts on it;
+    channels past the third are left as they are."""
     if (hue % 360.0 == 0.0) and saturation == 1.0 and brightness == 1.0:
         return image
     is_u8 = image.dtype == np.uint8
     f = image.astype(np.float32) * np.float32(1 / 255) if is_u8 else image.astype(np.float32)
     grey = f.ndim == 2 or f.shape[2] == 1
+    rgb = cv2.cvtColor(f.reshape(f.shape[:2]), cv2.COLOR_GRAY2RGB) if grey else np.ascontiguousarray(f[..., :3])
+    out = recolour_hsv(*cv2.split(cv2.cvtColor(rgb, cv2.COLOR_RGB2HSV)), hue, saturation, brightness)
     if grey:
-        out = np.minimum(f * np.float32(brightness), np.float32(1.0))
-    else:
-        h, s, v = cv2.split(cv2.cvtColor(np.ascontiguousarray(f[..., :3]), cv2.COLOR_RGB2HSV))
-        h = h + np.float32(hue % 360.0)  # cv2's float HSV2RGB wraps H in [360, 720) itself
-        s = np.minimum(s * np.float32(saturation), np.float32(1.0))
-        v = np.minimum(v * np.float32(brightness), np.float32(1.0))
-        rgb = cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB)
-        out = np.concatenate([rgb, f[..., 3:]], axis=2) if f.shape[2] > 3 else rgb
+        out = out[..., 0].reshape(f.shape)
+    elif f.shape[2] > 3:
+        out = np.concatenate([out, f[..., 3:]], axis=2)
     if is_u8:
         return (out * np.float32(255) + np.float32(0.5)).astype(np.uint8)
     return out.astype(image.dtype, copy=False)
@@ -275,14 +267,13 @@ class _RegionTransform:
     source_name = "RegionTransform"
 
     def _setup(self, spec, split, held_out: bool, class_key, item_key, log, epoch) -> None:
-        self.spec = spec
+        self._built, self.spec = _open(spec)
         self.split = split
         self.held_out = bool(held_out)
         self.class_key = class_key
         self.item_key = item_key
         self.log = log
-        self.epoch = int(epoch)
-        self._built = _open(spec)
+        self._epoch = SharedEpoch(epoch, where=f"{type(self).__name__}.epoch")
         self._draws = RegionDraws(self._built, split)
         sp = self._draws.split
         where = f"splits.{sp.name}"
@@ -302,6 +293,11 @@ class _RegionTransform:
         self._calls = 0
         self._pending: list[dict] = []
 
+    def __repr__(self) -> str:
+        args = {**self.get_transform_init_args(), "p": self.p}
+        args["spec"] = _shown(self.spec, self._built.plan)
+        return made_repr(self, args, positional=("spec", "split"))
+
     def _names(self, role: str) -> str:
         return ", ".join(s.name for s in self._built.plan.splits if s.role == role) or "none"
 
@@ -314,9 +310,14 @@ class _RegionTransform:
                             "land outside it", where=f"splits.{self._draws.split.name}.region",
                             hint="use RegionPlacement with colour=True, which draws both together")
 
+    @property
+    def epoch(self) -> int:
+        return self._epoch.value
+
     def set_epoch(self, epoch: int) -> None:
-        """The epoch per-item streams and log rows belong to."""
-        self.epoch = int(epoch)
+        """The epoch per-item streams and log rows belong to; seen by DataLoader workers
+        already started from this process too (shared memory, as OnlineSampler.set_epoch)."""
+        self._epoch.set(epoch, where=f"{type(self).__name__}.set_epoch")
 
     def _uniforms(self, data: dict) -> tuple[np.ndarray, int | None]:
         item = None
@@ -395,6 +396,13 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
     so in Compose's ``applied_transforms`` with ``save_applied_params=True``) under
     ``'placement'``, in the result under ``params_key`` when given, and in ``log``.
 
+    Saved and reloaded like any albumentations transform (``A.to_dict``/``A.from_dict``,
+    ``A.save``/``A.load`` as JSON or YAML, pickle, ``A.ReplayCompose``; import augsplit.albu
+    before loading). ``spec`` is kept as the spec file's absolute path, so the pipeline loads
+    from any working folder (while the file is there); a ``Built`` is kept as the spec itself,
+    embedded (``{"spec": ..., "base_dir": ...}``, which ``spec`` also accepts). The ``log`` is
+    not saved: give the reloaded transform its own (a replay, which repeats a draw, logs nothing).
+
     Refused at construction (SpecError): an unknown split; a held-out split (use
     HeldOutPlacement); content of ``content_size`` (width, height) larger than the canvas at
     the region's smallest scale; a region that differs by class without ``class_key``; with
@@ -452,26 +460,23 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
     def _footprint_limit(self, cw: int, ch: int) -> None:
         """Carry the spec's footprint guarantees over to this content: the largest distance from
         the anchor the (bilinear) content may reach so every guarantee naming this split still
-        holds when the content, not the spec's objects, is placed on both sides (the planner's
-        own bound: position gap > scale_a * r + scale_b * r + warp slack). Refuses content whose
-        centred radius already breaks it."""
+        holds when the content, not the spec's objects, is placed on both sides — the planner's
+        own disc bound solved for the radius (plan.guarantees.largest_shared_radius). Refuses
+        content whose centred radius already breaks it."""
         plan, spec = self._built.plan, self._built.spec
         r0 = corner_radius((cw / 2.0, ch / 2.0), (ch, cw))
-        n = len(plan.classes)
         for gi, g in enumerate(spec.guarantees):
             if g.disjoint != "footprint" or self.split not in g.between:
                 continue
             a, b = (plan.split(name).region for name in g.between)
-            for gap in footprint_gaps(plan.space, plan.canvas, a, b, np.full(n, r0), np.full(n, r0), g.per_class):
-                scales = (gap.need_px - WARP_SLACK_PX) / r0
-                r_ok = (gap.gap_px - WARP_SLACK_PX) / scales if scales > 0 else math.inf
-                if r_ok < self.max_radius:
-                    self.max_radius, self._limit = r_ok, (gi, g.between, gap.gap_px, scales)
+            r_ok, gap = largest_shared_radius(plan.space, plan.canvas, a, b, g.per_class)
+            if r_ok < self.max_radius:
+                self.max_radius, self._limit = r_ok, (gi, g.between, gap.gap_px)
         if r0 >= self.max_radius:
-            gi, (sa, sb), gap, scales = self._limit
+            gi, (sa, sb), gap = self._limit
             raise SpecError(f"the spec proves {sa} and {sb} footprint-disjoint for its own objects, but content of "
-                            f"{cw}x{ch} px reaches {r0:.1f} px from its centre; at the largest scales it needs a "
-                            f"position gap of {scales * r0 + WARP_SLACK_PX:.1f} px and the regions are {gap:.1f} px apart",
+                            f"{cw}x{ch} px reaches {r0:.1f} px from its centre; with the regions {gap:.1f} px apart, "
+                            f"content at their largest scales may reach {self.max_radius:.1f} px at most",
                             where=f"guarantees.{gi}",
                             hint=f"shrink the content below {2 * self.max_radius / math.sqrt(2) - 1:.0f} px square, or "
                                  "pass check_footprint=False (the audit will then show the overlap)")
@@ -481,7 +486,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
             return
         r = corner_radius(anchor, hw)
         if r >= self.max_radius:
-            gi, (sa, sb), _, _ = self._limit
+            gi, (sa, sb), _ = self._limit
             raise DatasetError(f"placed about this anchor the content reaches {r:.1f} px from it, beyond the "
                                f"{self.max_radius:.1f} px that keeps {sa} and {sb} footprint-disjoint "
                                f"(guarantees.{gi})", where=type(self).__name__,
@@ -536,11 +541,11 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         placement.update(split=self._draws.split.name, anchor_x=anchor[0], anchor_y=anchor[1])
         colour = (values["hue"], values["saturation"], values["brightness"]) if self.colour else None
         return {"placement": placement, "matrix": index_matrix(m), "bbox_matrix": m,
-                "output_shape": self.canvas_hw, "recolour": colour}
+                "output_shape": self.canvas_hw, "hsv_change": colour}
 
-    def apply(self, img: np.ndarray, matrix: np.ndarray, output_shape, recolour=None, **params) -> np.ndarray:
-        if recolour is not None:
-            img = recolour_image(img, recolour)
+    def apply(self, img: np.ndarray, matrix: np.ndarray, output_shape, hsv_change=None, **params) -> np.ndarray:
+        if hsv_change is not None:
+            img = recolour(img, *hsv_change)
         return warp(img, matrix, output_shape, self.interpolation, self.fill)
 
     def apply_to_mask(self, mask: np.ndarray, matrix: np.ndarray, output_shape, **params) -> np.ndarray:
@@ -585,11 +590,6 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         return ("spec", "split", "content_size", "anchor", "colour", "class_key", "item_key", "interpolation",
                 "mask_interpolation", "fill", "fill_mask", "epoch", "params_key", "check_footprint", "held_out")
 
-    def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
-        return (f"{type(self).__name__}(spec={str(spec)!r}, split={self.split!r}, content_size={self.content_size}, "
-                f"anchor={self.anchor!r}, colour={self.colour}, p={self.p})")
-
 
 class HeldOutPlacement(RegionPlacement):
     """RegionPlacement at test time: draws from a held-out split (refuses a training split)
@@ -602,17 +602,17 @@ class HeldOutPlacement(RegionPlacement):
                  colour: bool | None = None, class_key: str | None = None, item_key: str | None = None,
                  interpolation: int = cv2.INTER_LINEAR, mask_interpolation: int = cv2.INTER_NEAREST,
                  fill=0, fill_mask=0, log=None, epoch: int = 0, params_key: str | None = None,
-                 check_footprint: bool = True):
+                 check_footprint: bool = True, p: float = 1.0):
+        if _probability(p, type(self).__name__) != 1.0:
+            raise SpecError(f"a held-out placement applies to every test item, so p is 1, got {p!r}",
+                            where=f"{type(self).__name__}.p",
+                            hint="RegionPlacement(..., held_out=True, p=...) places only some items")
         super().__init__(spec, split, content_size, anchor, colour, class_key, item_key, interpolation,
                          mask_interpolation, fill, fill_mask, log, epoch, params_key, check_footprint,
                          held_out=True, p=1.0)
 
     def get_transform_init_args_names(self) -> tuple[str, ...]:
         return tuple(n for n in super().get_transform_init_args_names() if n != "held_out")
-
-
-def recolour_image(img: np.ndarray, colour: tuple[float, float, float]) -> np.ndarray:
-    return recolour(img, *colour)
 
 
 class RegionColour(_RegionTransform, A.ImageOnlyTransform):
@@ -649,7 +649,3 @@ class RegionColour(_RegionTransform, A.ImageOnlyTransform):
 
     def get_transform_init_args_names(self) -> tuple[str, ...]:
         return ("spec", "split", "class_key", "item_key", "epoch", "params_key", "held_out")
-
-    def __repr__(self) -> str:
-        spec = self.spec if not isinstance(self.spec, Built) else f"<spec {self._built.plan.hash}>"
-        return f"RegionColour(spec={str(spec)!r}, split={self.split!r}, p={self.p})"

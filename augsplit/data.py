@@ -22,9 +22,12 @@ import pandas as pd
 from . import manifest as mf
 from .build import Built, open_spec
 from .dataset import images, open_dataset, rows
+from .epoch import SharedEpoch
 from .errors import DatasetError
+from .item_transform import bound
 from .plan.draw import draw_online
 from .render import Placed, footprint
+from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
 from .space.sample import PARAMS, RENDER, LazyStream
 
@@ -72,8 +75,9 @@ def _target_mask(placed: Placed, hw: tuple[int, int]) -> np.ndarray:
     return out
 
 
-def _to_chw_float(image: np.ndarray) -> np.ndarray:
-    return np.ascontiguousarray(image.transpose(2, 0, 1), dtype=np.float32) * np.float32(1 / 255)
+def _settable(loader) -> dict:
+    """A loader's constructor arguments kept as attributes the user may change: their values now."""
+    return {"chw_float": loader.chw_float, "transform": loader.transform, "transform_kind": loader.transform_kind}
 
 
 def _targets(names, row: dict, params: tuple[str, ...], mask_fn):
@@ -111,7 +115,22 @@ class Dataset:
     Rows can be filtered by ``classes`` (names or indices), ``cells`` (the region cell each
     image was drawn from, manifest column ``cell``) and ``query`` (a pandas query over the
     manifest columns, e.g. ``"scale > 1.2 and angle < 90"``); the filters intersect.
-    ``transform`` is called with the item dict (image still HWC uint8) and returns it.
+    ``transform`` changes each item before ``chw_float``; it is called the way its library
+    calls it (``transform_kind='auto'`` tells by its type; name the kind for a plain function):
+
+    - an albumentations transform or Compose (``'albumentations'``): ``transform(image=...,
+      mask=..., bboxes=...)`` with the image (H, W, C) uint8, the target mask when the target
+      includes ``'mask'`` and the target box when it includes ``'bbox'`` (as pascal_voc, so
+      declare ``bbox_params=A.BboxParams(format='pascal_voc')``; label fields get the class
+      index); what it returns replaces them (a box it drops becomes NaN);
+    - a torch module, which every torchvision v2 transform is, or another torchvision
+      transform (``'tensor'``): the image as a uint8 torch tensor (C, H, W), and the tensor it
+      returns becomes the image (tensor in, tensor out). Refused with a ``'mask'`` or ``'bbox'``
+      target, which it would leave behind;
+    - any other callable (``'item'``): the item dict, returning the item dict.
+
+    ``chw_float=True`` then makes the image float32 (C, H, W): uint8 scaled to [0, 1], a float
+    image kept as it is; a numpy image stays numpy, a tensor stays a tensor.
     ``check_pixels`` compares each image's SHA-256 with its manifest row (lossless stores).
     Items follow the split's image index, after filtering; the filtered manifest is
     ``self.manifest`` (a DataFrame, row i = item i).
@@ -119,8 +138,8 @@ class Dataset:
 
     def __init__(self, root: str | Path, split: str, target="class", chw_float: bool = False,
                  classes: Sequence | None = None, cells: Sequence[int] | None = None, query: str | None = None,
-                 transform: Callable[[dict], dict] | None = None, check_pixels: bool = False,
-                 parquet_cache: int = 4):
+                 transform: Callable | None = None, check_pixels: bool = False,
+                 parquet_cache: int = 4, transform_kind: str = "auto"):
         self.root = Path(root)
         where = str(self.root)
         # Only the spec's text is needed to open the dataset; its object source (which may
@@ -137,6 +156,11 @@ class Dataset:
         self.target = target
         self.chw_float = bool(chw_float)
         self.transform = transform
+        self.transform_kind = transform_kind
+        bound(self, "Dataset.transform")  # checked now; changed attributes are checked when next used
+        self._made = {"root": root, "split": split, "target": target, "chw_float": chw_float, "classes": classes,
+                      "cells": cells, "query": query, "transform": transform, "check_pixels": check_pixels,
+                      "parquet_cache": parquet_cache, "transform_kind": transform_kind}  # for the repr
         self.check_pixels = bool(check_pixels)
         self.parquet_cache = max(1, int(parquet_cache))
         self.classes = tuple(summary.get("classes") or ())
@@ -219,11 +243,7 @@ class Dataset:
                                    where=f"{self.root}:{row['image_id']}")
         mask_fn = (lambda: _target_mask(placed, self.hw)) if placed is not None else (lambda: self._mask(row))
         item = {"image": image, "target": _targets(self.names, row, self.param_names, mask_fn), "row": row}
-        if self.transform is not None:
-            item = self.transform(item)
-        if self.chw_float:
-            item["image"] = _to_chw_float(item["image"])
-        return item
+        return bound(self, "Dataset.transform").apply(item)
 
     # ---- pixels ---------------------------------------------------------------------------
     def _image(self, i: int, row: dict):
@@ -250,8 +270,7 @@ class Dataset:
         return _target_mask(footprint(sprite, render_params(row), self.hw, self.threshold), self.hw)
 
     def __repr__(self) -> str:
-        return (f"Dataset({str(self.root)!r}, split={self.split!r}, items={len(self)}, target={self.target!r}, "
-                f"chw_float={self.chw_float})")
+        return made_repr(self, {**self._made, **_settable(self)}, positional=("root", "split"))
 
 
 def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFrame:
@@ -317,16 +336,18 @@ class OnlineSampler:
     ``length``; inside torch DataLoader workers each takes its share in blocks of ``block``
     items — pass ``block=batch_size`` and worker batches equal the single-process ones), or,
     with ``length``, as a map-style dataset (``len``, ``[i]``) that DataLoader shuffles,
-    batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws.
+    batches and splits over workers itself. ``set_epoch(e)`` gives a new set of draws, in
+    persistent DataLoader workers too (the epoch lives in shared memory; see augsplit.epoch).
 
-    Items have the shape of ``Dataset`` items; ``row`` holds the drawn columns (manifest names)
+    Items have the shape of ``Dataset`` items (``transform``, ``transform_kind`` and
+    ``chw_float`` as there); ``row`` holds the drawn columns (manifest names)
     plus ``epoch``, ``item`` and ``image_id`` ``'<split>-e<epoch>-<index:07d>'``. With ``log`` (a ParamLog) every drawn item is recorded.
     ``spec`` is a spec file, a dataset folder or a Built; ``seed`` defaults to the spec's.
     """
 
     def __init__(self, spec, split: str, *, length: int | None = None, epoch: int = 0, seed: int | None = None,
                  target="class", chw_float: bool = False, log=None, block: int = 1, start: int = 0,
-                 transform: Callable[[dict], dict] | None = None):
+                 transform: Callable | None = None, transform_kind: str = "auto"):
         built = _open_built(spec)
         self._built = built
         self._split = built.plan.split(split)  # SpecError listing the splits when unknown
@@ -340,7 +361,7 @@ class OnlineSampler:
             raise DatasetError(f"block must be >= 1 and start >= 0, got block={block}, start={start}",
                                where="OnlineSampler")
         self.length = None if length is None else int(length)
-        self.epoch = int(epoch)
+        self._epoch = SharedEpoch(epoch, where="OnlineSampler.epoch")
         self.block = int(block)
         self.start = int(start)
         self.chw_float = bool(chw_float)
@@ -351,9 +372,21 @@ class OnlineSampler:
         self._k = built.plan.space.ndim + 3
         self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
         self.target = target
+        self.transform_kind = transform_kind
+        bound(self, "OnlineSampler.transform")  # checked now; changed attributes are checked when next used
+        self._made = {"spec": Shown(f"<spec {built.plan.hash}>") if isinstance(spec, Built) else spec, "split": split,
+                      "length": length, "target": target, "chw_float": chw_float, "log": log, "block": block,
+                      "start": start, "transform": transform, "transform_kind": transform_kind}  # for the repr
+
+    @property
+    def epoch(self) -> int:
+        return self._epoch.value
 
     def set_epoch(self, epoch: int) -> None:
-        self.epoch = int(epoch)
+        """Make the following items those of `epoch`, in this process and in every DataLoader
+        worker already started from it (persistent or not, fork or spawn): the epoch lives in
+        shared memory. Call it before iterating the loader for that epoch."""
+        self._epoch.set(epoch, where="OnlineSampler.set_epoch")
 
     def __len__(self) -> int:
         if self.length is None:
@@ -413,11 +446,7 @@ class OnlineSampler:
         item = {"image": scene.image,
                 "target": _targets(self.names, row, self.param_names, lambda: _target_mask(t, self.hw)),
                 "row": row}
-        if self.transform is not None:
-            item = self.transform(item)
-        if self.chw_float:
-            item["image"] = _to_chw_float(item["image"])
-        return item
+        return bound(self, "OnlineSampler.transform").apply(item)
 
     def torch_iterable(self):
         """This sampler as a torch IterableDataset (imports torch), for DataLoader's iterable
@@ -425,8 +454,10 @@ class OnlineSampler:
         return _torch_iterable_class()(self)
 
     def __repr__(self) -> str:
-        n = "unlimited" if self.length is None else self.length
-        return f"OnlineSampler(split={self.split!r}, items={n}, epoch={self.epoch}, seed={self.seed}, block={self.block})"
+        # the epoch and seed in force (set_epoch changes the one; a seed equal to the spec's is its default)
+        return made_repr(self, {**self._made, **_settable(self), "epoch": self.epoch,
+                                "seed": None if self.seed == self._built.spec.seed else self.seed},
+                         positional=("spec", "split"))
 
 
 @functools.lru_cache(maxsize=None)
@@ -441,6 +472,9 @@ def _torch_iterable_class():
 
         def __iter__(self):
             return iter(self.sampler)
+
+        def __repr__(self) -> str:
+            return made_repr(self, {"sampler": self.sampler}, positional=("sampler",))
 
     TorchOnlineIterable.__module__ = __name__
     TorchOnlineIterable.__qualname__ = "TorchOnlineIterable"

@@ -147,16 +147,22 @@ def recoloured(sprite: Sprite, p: RenderParams, grey: bool) -> np.ndarray:
     multiplied (clipped to 1) in OpenCV float HSV, before warping. Grey: BT.601 luma after."""
     if not p.recolours:
         return sprite.premultiplied_grey if grey else sprite.premultiplied
-    h, s, v = sprite.hsv_planes
-    shift = p.hue % 360.0
+    rgb = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness)
+    return premultiply(rgb, sprite.premultiply_weights, grey)
+
+
+def recolour_hsv(h: np.ndarray, s: np.ndarray, v: np.ndarray, hue: float, saturation: float,
+                 brightness: float) -> np.ndarray:
+    """The colour axes on float32 HSV planes (OpenCV's: H in degrees, S and V in [0, 1]): hue
+    rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB."""
+    shift = hue % 360.0
     if shift:  # cv2's float HSV2RGB wraps H in [360, 720) itself
         h = h + np.float32(shift)
-    if p.saturation != 1.0:
-        s = np.minimum(s * np.float32(p.saturation), np.float32(1.0))
-    if p.brightness != 1.0:
-        v = np.minimum(v * np.float32(p.brightness), np.float32(1.0))
-    rgb = cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB)
-    return premultiply(rgb, sprite.premultiply_weights, grey)
+    if saturation != 1.0:
+        s = np.minimum(s * np.float32(saturation), np.float32(1.0))
+    if brightness != 1.0:
+        v = np.minimum(v * np.float32(brightness), np.float32(1.0))
+    return cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB)
 
 
 def place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold: float = ALPHA_THRESHOLD) -> Placed:

@@ -25,6 +25,16 @@ def spec_dict(**changes) -> dict:
     return d
 
 
+# A small RGB spec whose images depend on their render stream (noise background), for loader
+# tests: a 24 x 20 canvas, a train and a test split apart along x.
+LOADER = spec_dict(canvas={"width": 24, "height": 20, "mode": "rgb"},
+                   objects={"kind": "polyomino", "cells": 3, "cell_px": 3},
+                   background={"kind": "uniform_noise", "lo": 0.1, "hi": 0.5},
+                   axes={"x": {"range": [4, 20]}, "y": {"range": [4, 16]}, "angle": {"range": [0, 360]}},
+                   splits={"train": {"region": {"x": [4, 10]}, "per_class": 3},
+                           "test": {"region": {"x": [14, 20]}, "per_class": 2}})
+
+
 def write_spec(folder: Path, spec: dict) -> Path:
     """The spec as a YAML file in `folder`, keys in their given order (order decides draws)."""
     p = Path(folder) / "spec.yaml"

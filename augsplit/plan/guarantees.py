@@ -185,6 +185,22 @@ def tightest(gaps: list[FootprintGap]) -> FootprintGap | None:
     return min(gaps, key=lambda g: g.slack_px) if gaps else None
 
 
+def largest_shared_radius(space: Space, canvas: Canvas, A: Region, B: Region,
+                          per_class: bool) -> tuple[float, FootprintGap | None]:
+    """The disc bound solved for the radius: objects of support radius below r, whatever their
+    class, keep every compared pair of boxes at gap > scale_a r + scale_b r + warp slack (the
+    bound footprint_gaps states). Returns r and the pair that sets it (its numbers for unit
+    radii), or (inf, None) when no pair is compared."""
+    ones = np.ones(len(space[CLASS].levels))
+    best, which = math.inf, None
+    for g in footprint_gaps(space, canvas, A, B, ones, ones, per_class):
+        scales = g.need_px - WARP_SLACK_PX  # scale_a + scale_b: the need of unit radii, less the slack
+        r = (g.gap_px - WARP_SLACK_PX) / scales if scales > 0 else math.inf
+        if r < best:
+            best, which = r, g
+    return best, which
+
+
 def dilate_positions(space: Space, canvas: Canvas, A: Region, grow_px: np.ndarray, per_class: bool) -> Region:
     """A superset of every parameter point whose position lies within grow_px[k] of box k of A.
 
