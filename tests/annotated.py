@@ -33,6 +33,15 @@ def full_masks(root: Path, df: pd.DataFrame) -> list[np.ndarray]:
     return out
 
 
+def pixel_polygons(mask: np.ndarray) -> list[list[float]]:
+    """Outer contours of a mask as COCO polygons (px) that keep every mask pixel's centre inside
+    and every other centre outside: traced on the mask doubled in size, so each vertex lies a
+    quarter pixel inside the mask's edge (OpenCV contours run through boundary pixel centres)."""
+    big = cv2.resize(mask.astype(np.uint8), None, fx=2, fy=2, interpolation=cv2.INTER_NEAREST)
+    contours, _ = cv2.findContours(big, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+    return [((c.reshape(-1, 2) + 0.5) / 2.0).reshape(-1).tolist() for c in contours if len(c) >= 3]
+
+
 def _image(root: Path, row, factor: int) -> np.ndarray:
     img = cv2.imread(str(root / row["file"]), cv2.IMREAD_UNCHANGED)
     return cv2.resize(img, None, fx=factor, fy=factor, interpolation=cv2.INTER_NEAREST) if factor != 1 else img
@@ -66,8 +75,7 @@ def write_coco(root: Path, df: pd.DataFrame, out: Path, names: dict | None = Non
             rle = cm.encode(np.asfortranarray(m))
             seg = {"size": list(rle["size"]), "counts": rle["counts"].decode("ascii")}
         else:
-            contours, _ = cv2.findContours(m, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
-            seg = [(c.reshape(-1, 2) + 0.5).reshape(-1).tolist() for c in contours if len(c) >= 3]
+            seg = pixel_polygons(m)
         anns.append({"id": 5000 + k, "image_id": 100 + k, "category_id": cat[row["class_name"]], "bbox": box,
                      "area": float(m.sum()), "iscrowd": 0, "segmentation": seg})
     cats = [{"id": i, "name": (names or {}).get(c, c)} for c, i in cat.items()]
@@ -90,8 +98,7 @@ def write_yolo(root: Path, df: pd.DataFrame, out: Path, upscale: int = 0, polygo
         w, h = row["width"], row["height"]
         c = classes.index(row["class_name"])
         if mask is not None:
-            contours, _ = cv2.findContours(mask.astype(np.uint8), cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
-            pts = max(contours, key=len).reshape(-1, 2) + 0.5
+            pts = np.reshape(max(pixel_polygons(mask), key=len), (-1, 2))
             line = f"{c} " + " ".join(f"{x / w:.6f} {y / h:.6f}" for x, y in pts)
         else:
             x0, y0, x1, y1 = (float(row[k2]) for k2 in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"))

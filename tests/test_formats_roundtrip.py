@@ -136,3 +136,28 @@ def _size(p):
     from augsplit.formats.imagesize import image_size
 
     return image_size(p)
+
+
+def test_coco_masks_reach_the_audit_as_rendered(serial, manifest, split_spec, tmp_path):
+    """RLE and polygon masks, some on images twice the canvas size, come back as the rendered
+    footprints on the canvas, pixel for pixel; polygons rasterise as pycocotools does."""
+    import pycocotools.mask as cm
+    from annotated import full_masks
+
+    from augsplit.build import open_spec
+    from augsplit.formats.audit_input import audit_input
+    from augsplit.formats.boxes import polygons_mask
+    from augsplit.formats.coco import read_coco
+
+    coco = write_coco(serial, manifest, tmp_path / "ann.json", upscale=3)
+    objs = read_coco(coco)
+    data = audit_input(objs, manifest["split"].to_numpy(), open_spec(split_spec, for_data=True).plan)
+    assert len(data.mask_rows) == len(manifest) and data.canvas_hw == (64, 64)
+    for i, truth in enumerate(full_masks(serial, manifest)):
+        x0, y0, x1, y1 = data.table.loc[i, ["bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"]]
+        assert np.array_equal(data.mask_loader(i), truth[y0:y1, x0:x1]), i
+    raw = json.loads(coco.read_text())
+    for a, im in zip(raw["annotations"], raw["images"]):
+        if isinstance(a["segmentation"], list):  # the COCO API's rasteriser as the reference
+            ref = cm.decode(cm.merge(cm.frPyObjects(a["segmentation"], im["height"], im["width"]))).astype(bool)
+            assert np.array_equal(polygons_mask(a["segmentation"], im["height"], im["width"], "t"), ref)

@@ -55,17 +55,7 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
             if s not in present:
                 raise DatasetError(f"split {s!r} has no images in the assignment (it has {', '.join(present)})",
                                    where=f"pair {a}:{b}")
-    paths = data.image_paths
-
-    @lru_cache(maxsize=32)
-    def image(path):
-        return read_image(path)
-
-    def image_loader(i: int):
-        p = paths[int(i)]
-        if p is None:
-            raise DatasetError("the source names no image file for this object", where=f"row {int(i)}")
-        return image(p)
+    image_loader, notes = _image_loader(data.image_paths)
 
     base = _thresholds(built.spec if built is not None else None, thresholds)
     results = []
@@ -77,6 +67,28 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
                                  canvas_hw=data.canvas_hw, regions=declared, mask_rows=data.mask_rows,
                                  progress=progress))
     merged = _merge(results)
+    if image_loader is None:  # say why in the terminal too, in the user's terms
+        merged = dataclasses.replace(merged, skipped=tuple(
+            dataclasses.replace(k, reason=notes[0]) if k.name == "near_duplicates" else k for k in merged.skipped))
     inputs = dict(merged.inputs, source=str(source), format=objs.kind, splits=str(splits),
-                  notes=list(merged.inputs.get("notes", [])) + list(data.notes))
+                  notes=list(merged.inputs.get("notes", [])) + list(data.notes) + notes)
     return dataclasses.replace(merged, inputs=inputs)
+
+
+def _image_loader(paths):
+    """Objects' images, decoded once per file while neighbouring rows share it. No image file
+    at all: no loader (near-duplicates are skipped, with a note); some missing: an error."""
+    exists = {p: p is not None and p.is_file() for p in set(paths)}
+    found = [p for p, ok in exists.items() if ok]
+    if not found:
+        first = next((p for p in paths if p is not None), None)
+        return None, [f"no image files found (e.g. {first}): near-duplicates not checked; give --images"]
+    missing = sorted(str(p) for p, ok in exists.items() if not ok)
+    if missing:
+        raise DatasetError(f"{len(missing)} images missing or named by no file (of {len(exists)})", where=missing[0])
+
+    @lru_cache(maxsize=32)
+    def image(path):
+        return read_image(path)
+
+    return (lambda i: image(paths[int(i)])), []
