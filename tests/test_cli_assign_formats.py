@@ -274,3 +274,18 @@ def test_audit_parameter_proximity_on_real_boxes(tmp_path):
     r = json.loads((tmp_path / "b" / "audit.json").read_text())
     prox = next(c for c in r["checks"] if c["name"] == "parameter_proximity")
     assert prox["verdict"] == "fail" and prox["numbers"]["distance"]["min"] == pytest.approx(0.0625)
+
+
+def test_positions_in_degrees_of_visual_angle_on_images_of_any_size(tmp_path):
+    # 57 cm at 10 px/cm: 570 px to the screen; x = atan((px - 64) / 570) from the canvas centre
+    spec = spec_file(tmp_path, canvas={"width": 128, "height": 64}, viewing={"distance_cm": 57, "px_per_cm": 10},
+                     axes={"x": {"range": [-5.5, 5.5], "unit": "deg"}},
+                     splits={"train": {"region": {"x": [-5.5, -2]}, "count": 1}, "test": {"region": {"x": [2, 5.5]}, "count": 1}})
+    px = np.array([20.0, 40.0, 64.0, 90.0, 110.0])  # -4.41, -2.41, 0, 2.61, 4.61 deg (exact atan, from units.py's formula)
+    expect = ["train", "train", "none", "test", "test"]
+    images = [(i, 128 * f, 64 * f) for i, f in zip(range(1, 6), (1, 2, 1, 2, 1))]
+    anns = [(i, "car", (x * f - 3 * f, 20 * f, 6 * f, 6 * f)) for (i, _, _), x, f in zip(images, px, (1, 2, 1, 2, 1))]
+    coco = write_coco(tmp_path / "ann.json", images, anns)
+    assert cli("assign", spec, coco, "--out", tmp_path / "s") == 0
+    assert pd.read_csv(tmp_path / "s" / "splits.csv")["split"].tolist() == expect
+    assert np.allclose(np.degrees(np.arctan((px - 64) / 570)), [-4.41, -2.41, 0, 2.61, 4.61], atol=0.01)

@@ -176,3 +176,33 @@ def test_polygon_parts_add_up_and_crops_match_the_whole():
     assert np.array_equal(crop, whole[2:8, 3:8])
     big = polygons_mask([a, b], 20, 20, "t", scale=(2, 2))
     assert big.sum() == pytest.approx(4 * whole.sum(), rel=0.15)
+
+
+def test_coco_without_image_sizes_reads_them_from_the_files(tmp_path):
+    cv2.imwrite(str(tmp_path / "a.png"), np.zeros((30, 40, 3), np.uint8))
+    p = _coco(tmp_path, [{"id": 1, "image_id": 7, "category_id": 1, "bbox": [2, 3, 10, 4]}],
+              images=[{"id": 7, "file_name": "a.png"}])
+    o = read_coco(p).objects
+    assert o.loc[0, ["width", "height"]].tolist() == [40, 30]
+
+
+def test_annotations_cannot_reach_outside_the_images_folder_or_size(tmp_path):
+    from augsplit.formats.audit_input import audit_input
+    from augsplit.formats.boxes import MAX_PIXELS
+
+    (tmp_path / "imgs").mkdir()
+    p = _coco(tmp_path, [{"id": 1, "image_id": 7, "category_id": 1, "bbox": [2, 3, 10, 4]}],
+              images=[{"id": 7, "file_name": "../secret.png", "width": 40, "height": 30}])
+    objs = read_coco(p, tmp_path / "imgs")
+    with pytest.raises(DatasetError, match="leaves the images folder"):
+        audit_input(objs, ["train"])
+    with pytest.raises(DatasetError, match=f"larger than {MAX_PIXELS} px"):
+        read_coco(_coco(tmp_path, [{"id": 1, "image_id": 7, "category_id": 1, "bbox": [2, 3, 10, 4]}],
+                        images=[{"id": 7, "file_name": "a.png", "width": 1 << 15, "height": 1 << 15}]))
+    big = {"size": [30, 40], "counts": [1 << 40]}
+    with pytest.raises(DatasetError, match="do not add up"):
+        rle.decode(big)
+    with pytest.raises(DatasetError, match="is not its image's"):
+        from augsplit.formats.boxes import segmentation_mask
+
+        segmentation_mask({"size": [1 << 20, 1 << 20], "counts": "0"}, 30, 40, "t")

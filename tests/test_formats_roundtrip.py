@@ -8,7 +8,6 @@ import json
 import shutil
 
 import numpy as np
-import pandas as pd
 import pytest
 from annotated import write_coco, write_voc, write_yolo
 from specs import write_spec

@@ -11,7 +11,6 @@ from __future__ import annotations
 import dataclasses
 from functools import lru_cache
 
-import numpy as np
 
 from ..errors import DatasetError
 from .entry import _claims, _merge, _pairs, _thresholds
@@ -19,15 +18,15 @@ from .inputs import read_image
 from .result import AuditResult
 from .run import run_audit
 
-NOT_SPLITS = ("none", "guard", "outside", "dropped", "mixed", "empty")
 
 
 def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict | None = None,
                     ref_size: float | None = None, images_root=None, fmt: str = "auto",
                     exact_masks: bool = True, progress: bool = False) -> AuditResult:
     """`source`: the annotations; `splits`: the assignment (see formats.write.read_assignment)."""
+    from ..assign import OUTSIDE
     from ..formats.audit_input import audit_input
-    from ..formats.placement import open_objects
+    from ..formats.placement import DROPPED, EMPTY, MIXED, open_objects
     from ..formats.write import read_assignment
 
     objs = open_objects(source, fmt, images_root=images_root)
@@ -40,7 +39,8 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
         built = open_spec(spec_path, for_data=True)
     plan = built.plan if built is not None else None
     data = audit_input(objs, read_assignment(splits, objs), plan, ref_size)
-    present = [s for s in dict.fromkeys(data.table["split"]) if s not in NOT_SPLITS]
+    labelled = list(dict.fromkeys(data.table["split"]))
+    present = [s for s in labelled if s not in ("none", "guard", OUTSIDE, DROPPED, MIXED, EMPTY)]
     if plan is not None:
         wanted = _pairs(plan, pairs)
     elif pairs:
@@ -52,7 +52,7 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
         wanted = [("train", s) for s in present if s != "train"]
     for a, b in wanted:
         for s in (a, b):
-            if s not in present:
+            if s not in labelled:
                 raise DatasetError(f"split {s!r} has no images in the assignment (it has {', '.join(present)})",
                                    where=f"pair {a}:{b}")
     image_loader, notes = _image_loader(data.image_paths)

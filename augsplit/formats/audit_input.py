@@ -15,7 +15,8 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from .boxes import Objects, polygons_mask, segmentation_mask
+from ..errors import DatasetError
+from .boxes import MAX_PIXELS, Objects, image_path, polygons_mask, segmentation_mask
 
 POSITION_AXES = ("x", "y", "eccentricity", "polar_angle")
 
@@ -39,8 +40,14 @@ def frame_size(objs: Objects, plan=None) -> tuple[int, int]:
     """(height, width) of the common frame."""
     if plan is not None:
         return int(plan.canvas.height), int(plan.canvas.width)
-    size = objs.images[["height", "width"]].astype(float)
-    return int(size["height"].max()), int(size["width"].max())
+    size = objs.objects[["height", "width"]].astype(float)  # sizes checked against MAX_PIXELS by the readers
+    if size.empty:
+        raise DatasetError("no objects to audit", where=str(objs.path))
+    h, w = int(size["height"].max()), int(size["width"].max())
+    if h * w > MAX_PIXELS:
+        raise DatasetError(f"the largest height and width make a {w} x {h} frame, larger than {MAX_PIXELS} px",
+                           where=str(objs.path), hint="give a spec: its canvas is the frame")
+    return h, w
 
 
 def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = None) -> AuditInput:
@@ -100,5 +107,6 @@ def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = 
         out[cy0 - y0: cy0 - y0 + part.shape[0], cx0 - x0: cx0 - x0 + part.shape[1]] = part
         return out
 
-    paths = np.array([objs.root / f if f else None for f in o["file"].fillna("").astype(str)], dtype=object)
+    paths = np.array([image_path(objs.root, f, str(objs.path)) if f else None for f in o["file"].fillna("").astype(str)],
+                     dtype=object)
     return AuditInput(table, axes, hw, mask_loader, mask_rows, paths, tuple(notes))

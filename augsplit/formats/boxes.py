@@ -21,6 +21,7 @@ BOX = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 IMAGE_KEYS = ("image_id", "file", "width", "height")
 OBJECT_COLUMNS = (*IMAGE_KEYS, "label", "object_id", *BOX, "segmentation")
 
+MAX_PIXELS = 1 << 28  # the largest image (width x height) whose masks are decoded or rasterised
 CONVENTIONS = ("xyxy", "xywh", "cxcywh")  # corners; top-left corner and size; centre and size
 UNITS = ("px", "norm")  # pixels of the image, or fractions of its width and height
 
@@ -81,7 +82,7 @@ def to_px(x0, y0, x1, y1, units: str, width, height):
     if units == "norm":
         w, h = np.asarray(width, float), np.asarray(height, float)
         return x0 * w, y0 * h, x1 * w, y1 * h
-    raise DatasetError(f"unknown box units {units!r} (use px or norm)", where="boxes")
+    raise DatasetError(f"unknown box units {units!r} (use {' or '.join(UNITS)})", where="boxes")
 
 
 def box_columns(columns, convention: str, named: tuple[str, ...] | None, where: str) -> tuple[str, ...]:
@@ -122,6 +123,8 @@ def segmentation_mask(seg, height: int, width: int, where: str) -> np.ndarray | 
     if isinstance(seg, dict):
         from .rle import decode
 
+        if list(seg.get("size") or []) != [int(height), int(width)]:
+            raise DatasetError(f"the RLE mask's size {seg.get('size')} is not its image's [{height}, {width}]", where=where)
         return decode(seg, where)
     if isinstance(seg, (list, tuple)):
         return polygons_mask(seg, height, width, where)
@@ -178,6 +181,19 @@ def check_boxes(df: pd.DataFrame, where: str) -> None:
     bad = ~(np.all(np.isfinite(size), axis=1) & np.all(size > 0, axis=1))
     if bad.any():
         _refuse(df, bad, "image width/height missing or not positive", where)
+    bad = size[:, 0] * size[:, 1] > MAX_PIXELS
+    if bad.any():
+        _refuse(df, bad, f"images larger than {MAX_PIXELS} px", where)
+
+
+def image_path(root: Path, name: str, where: str) -> Path:
+    """An image file named by the annotations, which must lie inside the images folder."""
+    base = Path(root).resolve()
+    p = (base / str(name)).resolve()
+    if not p.is_relative_to(base):
+        raise DatasetError(f"the image path {name!r} leaves the images folder {base}", where=where,
+                           hint="give the folder the paths are relative to (--images)")
+    return p
 
 
 def _refuse(df, bad, what, where):

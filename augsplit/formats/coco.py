@@ -40,6 +40,8 @@ def read_coco(path: str | Path, images_root: str | Path | None = None) -> Object
             raise DatasetError("an image has an 'id', 'file_name', 'width' and 'height'", where=f"{where} images[{k}]")
         images.append((im["id"], str(im.get("file_name", "")), im.get("width"), im.get("height")))
     img = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
+    root = Path(images_root) if images_root is not None else p.parent
+    _sizes_from_files(img, root)
     if img["image_id"].duplicated().any():
         dup = img["image_id"][img["image_id"].duplicated()].iloc[0]
         raise DatasetError(f"image id {dup} appears twice", where=f"{where} images")
@@ -73,8 +75,19 @@ def read_coco(path: str | Path, images_root: str | Path | None = None) -> Object
     objects = object_frame(rows, n)
     _boxes_from_masks(objects, where)
     check_boxes(objects, where)
-    root = Path(images_root) if images_root is not None else p.parent
     return Objects(objects, img, "coco", p, root, data)
+
+
+def _sizes_from_files(img: pd.DataFrame, root: Path) -> None:
+    """Images the JSON gives no width or height for take them from their files' headers."""
+    from .boxes import image_path
+    from .imagesize import image_size
+
+    w = pd.to_numeric(img["width"], errors="coerce")
+    h = pd.to_numeric(img["height"], errors="coerce")
+    for i in np.flatnonzero((w.isna() | h.isna()).to_numpy()):
+        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"))
+    img["width"], img["height"] = w.astype(float), h.astype(float)
 
 
 def _boxes_from_masks(objects: pd.DataFrame, where: str) -> None:
