@@ -2,14 +2,16 @@
 
 The table (CSV, TSV or Parquet, read by augsplit.formats.table) gives parameters by axis
 name, or bounding boxes (`bbox_x0, bbox_y0, bbox_x1, bbox_y1` in px, or `bbox_x, bbox_y,
-bbox_w, bbox_h`) from which the centre (and, with a reference size, the scale) is derived. Each row gets the name of
-the first split whose region holds it, `guard` if it lies in a band auto_guard removed, or
-`none`; `ambiguous` counts rows two splits both claim.
+bbox_w, bbox_h`) from which the centre (and, with a reference size, the scale) is derived.
+Each row gets the name of the first split whose region holds it, `guard` if it lies in a band
+auto_guard removed, `outside` if a value lies outside an axis's range, or `none`; `ambiguous`
+counts rows two splits both claim. An axis no split depends on needs no column. Annotated
+datasets (COCO, YOLO, VOC, tables of boxes) reach this module through augsplit.formats.placement.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -18,9 +20,10 @@ import pandas as pd
 from .errors import DatasetError
 from .formats.table import PARQUET_SUFFIXES
 from .plan import Plan
-from .plan.regions import CLASS
+from .plan.regions import CLASS, OTHER_CLASS
 
 SPLIT_COLUMN = "split"
+OUTSIDE = "outside"
 
 
 @dataclass(frozen=True)
@@ -28,6 +31,15 @@ class Assignment:
     table: pd.DataFrame
     counts: dict
     ambiguous: int
+    outside: dict = field(default_factory=dict)  # axis -> rows whose value lies outside its range
+    outside_rows: tuple = ()  # positions of the first few such rows
+
+
+def axis_matters(plan: Plan, name: str) -> bool:
+    """Whether some split's region depends on the axis (does not span its whole range)."""
+    i = plan.space.index[name]
+    return not all(np.all(sp.region.lo[:, i] <= plan.space.t_lo[i] + 1e-12) and
+                   np.all(sp.region.hi[:, i] >= plan.space.t_hi[i] - 1e-12) for sp in plan.splits)
 
 
 def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, where: str) -> pd.DataFrame:
@@ -41,6 +53,10 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
             continue
         if n in df.columns:
             out[n] = _numbers(df[n], n, where)
+            continue
+        if not axis_matters(plan, n):
+            i = plan.space.index[n]
+            out[n] = ax.from_t(np.full(len(df), (plan.space.t_lo[i] + plan.space.t_hi[i]) / 2.0))
             continue
         if bbox is not None and n in ("x", "y"):
             x0, y0, x1, y1 = bbox
@@ -57,15 +73,11 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
             continue
         if bbox is not None and n == "scale":
             if ref_size is None:
-                raise DatasetError("the table has no 'scale' column; give a reference size to derive it from the bboxes",
-                                   where=where)
+                raise DatasetError("a split depends on scale and the table has no 'scale' column; give a reference "
+                                   "size (--ref-size, the objects' native size in px of the spec's canvas) to derive "
+                                   "it from the boxes", where=where)
             x0, y0, x1, y1 = bbox
             out[n] = np.sqrt(np.maximum(x1 - x0, 0) * np.maximum(y1 - y0, 0)) / ref_size
-            continue
-        i = plan.space.index[n]
-        if all(np.all(sp.region.lo[:, i] <= plan.space.t_lo[i] + 1e-12) and np.all(sp.region.hi[:, i] >= plan.space.t_hi[i] - 1e-12)
-               for sp in plan.splits):
-            out[n] = ax.from_t(np.full(len(df), (plan.space.t_lo[i] + plan.space.t_hi[i]) / 2.0))  # no split depends on it
             continue
         bbox_names = " (or bbox_x0, bbox_y0, bbox_x1, bbox_y1, or bbox_x, bbox_y, bbox_w, bbox_h)"
         need = f"'{n}'" + (bbox_names if n in ("x", "y", "eccentricity", "polar_angle", "scale") else "")
@@ -93,16 +105,24 @@ def _bbox(df: pd.DataFrame, where: str = "table"):
     return None
 
 
+LABEL_COLUMNS = ("class_name", "class", "label", "category")
+
+
 def class_column(df: pd.DataFrame, plan: Plan, where: str) -> np.ndarray:
-    """Class index per row (needed only when some region depends on the class)."""
-    for col in ("class_name", "class", "label"):
+    """Class index per row, matching the labels as written to the spec's class names (needed
+    only when some region depends on the class). A label the spec does not name takes the
+    '*' class of a spec without objects; with objects it is an error."""
+    for col in LABEL_COLUMNS:
         if col in df.columns:
             names = df[col].astype(str)
-            known = {n: i for i, n in enumerate(plan.classes)}
+            known = {n: i for i, n in enumerate(plan.classes) if n != OTHER_CLASS}
             idx = names.map(known)
+            if OTHER_CLASS in plan.classes:
+                idx = idx.fillna(plan.classes.index(OTHER_CLASS))
             if idx.isna().any():
                 bad = names[idx.isna()].unique()[:3]
-                raise DatasetError(f"column '{col}' holds classes the spec does not have: {', '.join(bad)}", where=where)
+                raise DatasetError(f"column '{col}' holds classes the spec does not have: {', '.join(bad)} "
+                                   f"(the spec's classes: {', '.join(plan.classes[:8])})", where=where)
             return idx.to_numpy(float)
     return None
 
@@ -124,14 +144,18 @@ def depends_on_class(region) -> bool:
 def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: str = "table") -> Assignment:
     params = derive_parameters(df, plan, ref_size, where)
     space = plan.space
-    cls = class_column(df, plan, where)
     class_matters = any(depends_on_class(sp.region) for sp in plan.splits)
+    cls = class_column(df, plan, where) if class_matters else None
     if cls is None and class_matters:
-        raise DatasetError("the spec's regions depend on the class, but the table has no 'class_name' column", where=where)
+        raise DatasetError(f"the spec's regions depend on the class, but the table has no class column "
+                           f"({', '.join(LABEL_COLUMNS)})", where=where)
     if cls is None:
         cls = np.zeros(len(df))
     t = np.column_stack([space[n].to_t(params[n].to_numpy(float)) for n in space.names if n != CLASS] + [cls])
     labels = np.full(len(df), "none", dtype=object)
+    off = ~((t >= space.t_lo - 1e-9) & (t <= space.t_hi + 1e-9))  # NaN (e.g. log of 0) counts as outside
+    outside = {n: int(off[:, i].sum()) for i, n in enumerate(space.names) if n != CLASS and off[:, i].any()}
+    labels[off.any(axis=1)] = OUTSIDE
     claimed = np.zeros(len(df), dtype=int)
     for s in plan.splits:
         inside = s.region.contains_t(t)
@@ -142,7 +166,8 @@ def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: s
     out = df.copy()
     out[SPLIT_COLUMN] = labels
     counts = pd.Series(labels).value_counts().to_dict()
-    return Assignment(out, {k: int(v) for k, v in counts.items()}, int((claimed > 1).sum()))
+    return Assignment(out, {k: int(v) for k, v in counts.items()}, int((claimed > 1).sum()), outside,
+                      tuple(int(i) for i in np.flatnonzero(off.any(axis=1))[:5]))
 
 
 def default_output(table: str | Path) -> Path:

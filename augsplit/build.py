@@ -10,7 +10,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+from .errors import SpecError
 from .plan import Plan, make_plan
+from .plan.regions import OTHER_CLASS, named_classes
 from .render import RenderParams, footprint
 from .sources import backgrounds as bg
 from .sources.folder import SpriteFolder
@@ -64,16 +66,25 @@ def footprint_at(sprite, cx, cy, scale, angle, mirror, hw, alpha_threshold: floa
     return footprint(sprite, RenderParams(float(cx), float(cy), float(scale), float(angle), bool(mirror)), hw, alpha_threshold)
 
 
-def build(spec: Spec, base_dir: Path, strict: bool = True) -> Built:
+def build(spec: Spec, base_dir: Path, strict: bool = True, for_data: bool = False) -> Built:
+    """`for_data`: the spec splits existing data, so it may leave out `objects:`; its classes are
+    those its regions name, plus OTHER_CLASS for every other label (source is then None)."""
+    if spec.objects is None:
+        if not for_data:
+            raise SpecError("required key is missing", where="objects",
+                            hint="only a spec that splits existing data (augsplit assign, audit) may leave it out")
+        names = [n for s in spec.splits.values() for n in named_classes(s.region) + list(s.classes or [])]
+        plan = make_plan(spec, None, None, strict, classes=tuple(dict.fromkeys(names)) + (OTHER_CLASS,))
+        return Built(spec, base_dir, None, background(spec, base_dir), plan)
     source = object_source(spec, base_dir)
     thr = spec.render.alpha_threshold
     plan = make_plan(spec, source, lambda s, cx, cy, sc, a, m, hw: footprint_at(s, cx, cy, sc, a, m, hw, thr), strict)
     return Built(spec, base_dir, source, background(spec, base_dir), plan)
 
 
-def open_spec(path: str | Path) -> Built:
+def open_spec(path: str | Path, for_data: bool = False) -> Built:
     spec, base_dir = load_spec(path)
-    return build(spec, base_dir)
+    return build(spec, base_dir, for_data=for_data)
 
 
 def open_mapping(data: dict, base_dir: str | Path = ".", strict: bool = True) -> Built:

@@ -24,22 +24,20 @@ def _cmd_plan(a) -> int:
 
 
 def _cmd_assign(a) -> int:
-    from .assign import assign, default_output
-    from .build import open_spec
-    from .formats.table import output_kind, read_table, write_table
-    from .io import check_target, is_stdout, refuse_input
+    from .formats.placement import BoxOptions, split_input
+    from .formats.write import write_result
+    from .io import is_stdout, refuse_input
 
-    out = a.out or default_output(a.table)
-    refuse_input(out, a.table)  # the input itself, a symlink, an unknown extension: refused before any work
-    if not is_stdout(out):
-        check_target(out)
-    output_kind(out)
-    plan = open_spec(a.spec).plan
-    res = assign(plan, read_table(a.table), ref_size=a.ref_size, where=str(a.table))
-    write_table(res.table, out)
-    summary = ", ".join(f"{k} {v}" for k, v in sorted(res.counts.items()))
-    print(f"wrote {'stdout' if is_stdout(out) else out}: {len(res.table)} rows ({summary}); {res.ambiguous} rows held by more than one split",
-          file=sys.stderr if is_stdout(out) else sys.stdout)  # stdout carries only the table
+    if a.out:
+        refuse_input(a.out, a.table)  # never the input itself: refused before any work
+    cols = tuple(c.strip() for c in a.box_columns.split(",")) if a.box_columns else None
+    res = split_input(a.spec, a.table, fmt=a.format, ref_size=a.ref_size, mixed=a.mixed,
+                      boxes=BoxOptions(a.boxes, a.box_units, cols), images_root=a.images, replace_split=a.replace_split)
+    paths = write_result(res, a.table, a.out, a.replace_split)
+    said = sys.stderr if is_stdout(a.out or "") else sys.stdout  # with --out -, stdout carries only the table
+    for line in res.summary():
+        print(line, file=said)
+    print("wrote " + ", ".join("stdout" if is_stdout(p) else str(p) for p in paths), file=said)
     return 0
 
 
@@ -158,7 +156,17 @@ def _cmd_audit(a) -> int:
         if not isinstance(loaded, dict):
             raise AugsplitError("a column map is a mapping of augsplit names to table columns", where=a.column_map)
         column_map.update({str(k): str(v) for k, v in loaded.items()})
-    if is_dataset(a.input) and a.spec is None and not column_map:
+    if a.splits is not None or _annotated(a.input):
+        from .audit.annotated import audit_annotated
+
+        if a.splits is None:
+            raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
+                                "per-split files, or a table with a split column)", where=str(a.input))
+        result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
+                                 ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
+                                 progress=not a.quiet and sys.stderr.isatty())
+        out = Path(a.out) if a.out else Path("audit")
+    elif is_dataset(a.input) and a.spec is None and not column_map:
         result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
                                progress=not a.quiet and sys.stderr.isatty())
         out = a.out or Path(a.input) / "audit"
@@ -174,6 +182,14 @@ def _cmd_audit(a) -> int:
     return result.exit_code
 
 
+def _annotated(path) -> bool:
+    """A COCO JSON file or a YOLO / VOC folder (not an augsplit dataset or a table)."""
+    from .audit.entry import is_dataset
+    from .formats.placement import detect_format
+
+    return Path(path).exists() and not is_dataset(path) and detect_format(path) in ("coco", "yolo", "voc")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
@@ -184,12 +200,26 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--json", action="store_true", help="machine-readable output")
     q.set_defaults(run=_cmd_plan)
 
-    q = sub.add_parser("assign", help="label the rows of a CSV/Parquet table with the split whose region holds them")
-    q.add_argument("spec")
-    q.add_argument("table", help="CSV, TSV, Parquet file or folder of Parquet files")
-    q.add_argument("--out", help="the labelled table: .csv, .tsv or .parquet (default: <table>.assigned.<ext>, "
-                   "Parquet for a Parquet input); '-' prints it as CSV to stdout. Never the input itself")
-    q.add_argument("--ref-size", type=float, default=None, help="native object size in px, to derive scale from bboxes")
+    q = sub.add_parser("assign", help="split a table, COCO JSON, YOLO or VOC folder by where its objects lie")
+    q.add_argument("spec", help="YAML spec (a spec that only splits existing data may leave out objects:)")
+    q.add_argument("table", help="CSV, TSV or Parquet table (file or folder), COCO JSON file, YOLO labels folder or VOC XML folder")
+    q.add_argument("--out", help="the labelled table: .csv, .tsv or .parquet (default: <table>.assigned.<ext>, Parquet "
+                                 "for a Parquet input; '-' prints it as CSV to stdout; never the input itself), or the "
+                                 "folder for per-split files of COCO/YOLO/VOC input (default: <input>.splits beside it)")
+    q.add_argument("--format", choices=["auto", "coco", "yolo", "voc", "table"], default="auto",
+                   help="the input's format (default: from the file or folder)")
+    q.add_argument("--boxes", choices=["xyxy", "xywh", "cxcywh"], default=None,
+                   help="a table's box convention: corners, top-left corner and size, or centre and size")
+    q.add_argument("--box-units", choices=["px", "norm"], default="px",
+                   help="a table's box units: px of its image, or fractions of its width and height")
+    q.add_argument("--box-columns", default=None, metavar="A,B,C,D", help="a table's four box columns, in convention order")
+    q.add_argument("--images", default=None, metavar="DIR", help="folder COCO file names resolve in (default: the JSON's folder)")
+    q.add_argument("--mixed", choices=["drop", "keep", "largest"], default="drop",
+                   help="an image whose objects lie in different splits: drop it, keep it in a 'mixed' split, "
+                        "or give it its largest object's split")
+    q.add_argument("--replace-split", action="store_true", help="replace a table's existing split column")
+    q.add_argument("--ref-size", type=float, default=None,
+                   help="native object size in px of the spec's canvas, to derive scale from boxes (only where a split depends on scale)")
     q.set_defaults(run=_cmd_assign)
 
     q = sub.add_parser("generate", help="render the dataset a spec describes, with its Parquet manifest")
@@ -242,7 +272,12 @@ def build_parser() -> argparse.ArgumentParser:
     q.set_defaults(run=_cmd_score)
 
     q = sub.add_parser("audit", help="check a dataset, parameter log or table for train/test leakage; exit 1 on a failure")
-    q.add_argument("input", help="an augsplit dataset folder, a parameter log folder, or a CSV, TSV or Parquet table")
+    q.add_argument("input", help="an augsplit dataset folder, a parameter log folder, a CSV, TSV or Parquet table, "
+                                 "or a COCO JSON file / YOLO folder / VOC folder (with --splits)")
+    q.add_argument("--splits", default=None, help="for annotated data: the folder `augsplit assign` wrote, a folder of "
+                                                  "<split>.json / <split>.txt files, or a table with image_id and split")
+    q.add_argument("--images", default=None, metavar="DIR", help="folder COCO file names resolve in (default: the JSON's folder)")
+    q.add_argument("--ref-size", type=float, default=None, help="native object size in px of the spec's canvas, to audit scale")
     q.add_argument("--spec", help="the spec whose axes, regions and guarantees the input is checked against")
     q.add_argument("--pair", type=_pair, action="append", metavar="A:B", help="splits to compare (repeatable; default: train against each other split)")
     q.add_argument("--axis", type=_axis, action="append", metavar="NAME=LO:HI[:circular|:log]", help="an axis to audit when there is no spec")

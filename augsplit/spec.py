@@ -175,7 +175,7 @@ class Spec(Model):
     seed: NonNegInt
     canvas: CanvasSpec
     viewing: ViewingSpec | None = None
-    objects: ObjectsSpec
+    objects: ObjectsSpec | None = None  # required to generate; a spec that only splits existing data has none
     background: BackgroundSpec = SolidBg(kind="solid", value=0.0)
     axes: dict[str, AxisSpec] = {}
     render: RenderSpec = RenderSpec()

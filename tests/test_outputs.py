@@ -53,7 +53,7 @@ def world(tmp_path_factory):
 
 def command(name: str, w: dict, out) -> list[str]:
     return {
-        "assign": ["assign", str(w["spec"]), str(w["table"]), "--out", str(out)],
+        "assign": ["assign", str(w["spec"]), str(w["table"]), "--replace-split", "--out", str(out)],
         "audit": ["audit", str(w["table"]), "--axis", "x=0:64", "--quiet", "--out", str(out)],
         "score": ["score", str(w["data"]), str(w["pred"]), "--out", str(out)],
         "preview": ["preview", str(w["data"]), "--per-split", "2", "--out", str(out)],
@@ -169,7 +169,7 @@ def test_assign_refuses_an_output_inside_its_input_folder(world, tmp_path, capsy
 @pytest.mark.parametrize("ext", [".xlsx", ".json", ""])
 def test_assign_refuses_unknown_output_types(world, tmp_path, capsys, ext):
     out = tmp_path / f"x{ext}"
-    code, _, err = run(["assign", str(world["spec"]), str(world["table"]), "--out", str(out)], capsys)
+    code, _, err = run(["assign", str(world["spec"]), str(world["table"]), "--replace-split", "--out", str(out)], capsys)
     assert code == 2 and "use .csv, .tsv or .parquet" in err and err.count("\n") == 1
     assert not out.exists()
 
@@ -177,7 +177,7 @@ def test_assign_refuses_unknown_output_types(world, tmp_path, capsys, ext):
 @pytest.mark.parametrize("ext", [".csv", ".tsv", ".parquet"])
 def test_assign_writes_the_type_its_extension_names(world, tmp_path, capsys, ext):
     out = tmp_path / f"x{ext}"
-    code, _, err = run(["assign", str(world["spec"]), str(world["table"]), "--out", str(out)], capsys)
+    code, _, err = run(["assign", str(world["spec"]), str(world["table"]), "--replace-split", "--out", str(out)], capsys)
     assert code == 0, err
     got = pd.read_parquet(out) if ext == ".parquet" else pd.read_csv(out, sep="\t" if ext == ".tsv" else ",")
     assert list(got.columns) == ["split", "x", "y"]  # the input's columns, split relabelled
@@ -187,11 +187,11 @@ def test_assign_writes_the_type_its_extension_names(world, tmp_path, capsys, ext
 def test_assign_default_output_follows_the_input_type(world, tmp_path, capsys):
     pq_in = tmp_path / "t.parquet"
     pd.read_csv(world["table"]).to_parquet(pq_in)
-    assert run(["assign", str(world["spec"]), str(pq_in)], capsys)[0] == 0
+    assert run(["assign", str(world["spec"]), str(pq_in), "--replace-split"], capsys)[0] == 0
     assert len(pd.read_parquet(tmp_path / "t.assigned.parquet")) == 4  # Parquet in, Parquet out
     tsv_in = tmp_path / "t.tsv"
     pd.read_csv(world["table"]).to_csv(tsv_in, sep="\t", index=False)
-    assert run(["assign", str(world["spec"]), str(tsv_in)], capsys)[0] == 0
+    assert run(["assign", str(world["spec"]), str(tsv_in), "--replace-split"], capsys)[0] == 0
     assert "\t" in (tmp_path / "t.assigned.tsv").read_text().splitlines()[0]
 
 

@@ -79,7 +79,7 @@ def test_assign_labels_every_format_alike(tmp_path, capsys):
     wrong = ROWS.assign(split=["test", "train"] * 4)  # assign must relabel every row from x
     for name, p in as_every_format(wrong, tmp_path).items():
         out = tmp_path / f"{name}.out.csv"
-        assert main(["assign", str(spec), str(p), "--out", str(out)]) == 0, capsys.readouterr().err
+        assert main(["assign", str(spec), str(p), "--replace-split", "--out", str(out)]) == 0, capsys.readouterr().err
         got = pd.read_csv(out).sort_values("id")
         labels[name] = list(got["split"])
     assert all(v == ["train", "test"] * 4 for v in labels.values()), labels

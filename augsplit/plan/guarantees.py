@@ -25,18 +25,19 @@ CLASS = "class"
 
 @dataclass(frozen=True)
 class Verdict:
-    """Outcome of one guarantee: proved, refused (with numbers), or guarded (auto_guard)."""
+    """Outcome of one guarantee: proved, refused (with numbers), guarded (auto_guard), or declared
+    (a footprint claim of a spec without objects: nothing to prove it with; the audit checks it)."""
 
     kind: str  # "parameters" | "footprint"
     between: tuple[str, str]
-    status: str  # "proved" | "refused" | "guarded"
+    status: str  # "proved" | "refused" | "guarded" | "declared"
     per_class: bool
     numbers: dict = field(default_factory=dict)
     message: str = ""
 
     @property
     def ok(self) -> bool:
-        return self.status in ("proved", "guarded")
+        return self.status in ("proved", "guarded", "declared")
 
 
 # ---- parameters ----------------------------------------------------------------------------

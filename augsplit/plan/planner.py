@@ -93,20 +93,28 @@ def canvas_of(spec: Spec) -> Canvas:
     return Canvas(spec.canvas.width, spec.canvas.height, v)
 
 
-def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Plan:
+def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classes=None) -> Plan:
     """Plan every split and prove every guarantee. `source` is an ObjectSource; `footprint_at`
     (the renderer's footprint function) is used only to find witnesses for refusals. With
-    strict=False a refused guarantee is kept in `plan.verdicts` instead of raising."""
+    strict=False a refused guarantee is kept in `plan.verdicts` instead of raising.
+
+    `source=None` plans a spec without objects, which only splits existing data: `classes`
+    names the class levels, and footprint guarantees are declared (audited on the data's own
+    boxes), not proved."""
     canvas = canvas_of(spec)
-    classes = tuple(source.classes)
+    classes = tuple(source.classes if source is not None else classes or ())
     if not classes:
         raise SpecError("the object source has no classes", where="objects")
     space = build_space(spec, canvas, classes)
-    seen, unseen = _instances(spec, source, classes)
-    _check_fits(source, seen, unseen, space, canvas)
     thr = spec.render.alpha_threshold
-    radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
-                              for i in seen[c] + unseen[c]) for c in range(len(classes))])
+    if source is None:
+        seen, unseen = [[0] for _ in classes], [[] for _ in classes]
+        radii_all = np.zeros(len(classes))
+    else:
+        seen, unseen = _instances(spec, source, classes)
+        _check_fits(source, seen, unseen, space, canvas)
+        radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
+                                  for i in seen[c] + unseen[c]) for c in range(len(classes))])
 
     for name, sp in spec.splits.items():  # before any proof: the proofs need the split's instances
         if sp.instances == "unseen" and not any(unseen):
@@ -140,6 +148,13 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
 
     def prove(g, regions):
         a, b = g.between
+        if source is None and g.disjoint == "footprint":
+            if g.auto_guard:
+                raise SpecError("auto_guard of a footprint guarantee needs objects (their size sets the band)",
+                                where="guarantees")
+            return Verdict("footprint", g.between, "declared", g.per_class, {},
+                           "declared, not proved: the spec has no objects; `augsplit audit` checks it on the "
+                           "data's boxes or masks"), None, None
         ra = _radii(source, seen, unseen, spec.splits[a].instances, spec, classes)
         rb = _radii(source, seen, unseen, spec.splits[b].instances, spec, classes)
         ids = (_instance_ids(seen, unseen, spec.splits[a].instances, spec),
@@ -157,8 +172,8 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
         if not v.ok and g.auto_guard:
             guard = _guard_region(g, space, canvas, regions[a], regions[b], ra, rb)
             before = regions[b].mass()
+            guard_total = guard_total | (regions[b] & guard)  # what the guard takes away from b
             regions[b] = guarded[b] = regions[b] - guard
-            guard_total = guard_total | guard
             v2, _, _ = prove(g, regions)
             if not v2.ok:
                 raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
@@ -258,6 +273,8 @@ def _check_fits(source, seen, unseen, space, canvas) -> None:
 
 
 def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
+    if source is None:
+        return np.zeros(len(classes))
     mode = instances or ("seen" if spec.objects.unseen_instances else "all")
     out = []
     for c in range(len(classes)):
@@ -269,7 +286,7 @@ def _radii(source, seen, unseen, instances, spec, classes) -> np.ndarray:
 
 def _instance_ids(seen, unseen, instances, spec) -> list[list[int]]:
     """Per class, the instance ids a split may draw (as `_radii` decides)."""
-    mode = instances or ("seen" if spec.objects.unseen_instances else "all")
+    mode = instances or ("seen" if spec.objects is not None and spec.objects.unseen_instances else "all")
     return [list(s) if mode == "seen" else list(u) if mode == "unseen" else list(s) + list(u)
             for s, u in zip(seen, unseen)]
 

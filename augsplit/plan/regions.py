@@ -26,6 +26,7 @@ from ..spec import Spec, _hint
 from ..units import Canvas
 
 CLASS = "class"
+OTHER_CLASS = "*"  # by_class's name for every class it does not name
 
 
 def build_space(spec: Spec, canvas: Canvas, classes: tuple[str, ...]) -> Space:
@@ -270,6 +271,23 @@ def _by_class(space, classes, value, where, split_region) -> Region:
             part = build_region(value["*"], space, classes, f"{where}.*", split_region)
             out = out | (part & _classes_region(space, classes, rest, f"{where}.*"))
     return out
+
+
+def named_classes(node: Any) -> list[str]:
+    """Class names a region node mentions (in `class:` terms and `by_class` keys), in order."""
+    out: list[str] = []
+    if isinstance(node, dict):
+        for key, value in node.items():
+            if key == CLASS:
+                out += [value] if isinstance(value, str) else [str(v) for v in value or []]
+            elif key == "by_class" and isinstance(value, dict):
+                out += [str(k) for k in value if k != "*"]
+                out += [n for v in value.values() for n in named_classes(v)]
+            elif key in ("any_of", "all_of") and isinstance(value, list):
+                out += [n for v in value for n in named_classes(v)]
+            elif key == "minus":
+                out += named_classes(value)
+    return list(dict.fromkeys(out))
 
 
 def t_interval_text(axis: Axis, lo_t: float, hi_t: float) -> str:

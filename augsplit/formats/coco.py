@@ -1,0 +1,115 @@
+"""COCO JSON in: images, annotations (bbox [x, y, w, h] from the top-left, in px; polygons or
+RLE masks) and categories -> the per-object table. The JSON itself is kept to write splits back."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DatasetError
+from .boxes import Objects, check_boxes, object_frame, to_xyxy
+
+MAX_BYTES = 4 << 30  # a COCO file is read whole; refuse one larger than this before reading
+
+
+def read_coco(path: str | Path, images_root: str | Path | None = None) -> Objects:
+    """Read a COCO JSON file. Image files resolve against `images_root` (default: its folder)."""
+    p = Path(path)
+    where = str(p)
+    if not p.is_file():
+        raise DatasetError("no such file" if not p.exists() else "not a file", where=where)
+    if p.stat().st_size > MAX_BYTES:
+        raise DatasetError(f"the file is larger than {MAX_BYTES >> 30} GiB", where=where)
+    try:
+        data = json.loads(p.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise DatasetError(f"not valid JSON: {exc}", where=where) from None
+    if not isinstance(data, dict) or not isinstance(data.get("images"), list) or not isinstance(data.get("annotations"), list):
+        raise DatasetError("a COCO file is an object with 'images' and 'annotations' lists", where=where)
+    cats = {}
+    for k, c in enumerate(data.get("categories") or []):
+        if not isinstance(c, dict) or "id" not in c:
+            raise DatasetError("a category has an 'id' and a 'name'", where=f"{where} categories[{k}]")
+        cats[c["id"]] = str(c.get("name", c["id"]))
+    images = []
+    for k, im in enumerate(data["images"]):
+        if not isinstance(im, dict) or "id" not in im:
+            raise DatasetError("an image has an 'id', 'file_name', 'width' and 'height'", where=f"{where} images[{k}]")
+        images.append((im["id"], str(im.get("file_name", "")), im.get("width"), im.get("height")))
+    img = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
+    root = Path(images_root) if images_root is not None else p.parent
+    _sizes_from_files(img, root)
+    if img["image_id"].duplicated().any():
+        dup = img["image_id"][img["image_id"].duplicated()].iloc[0]
+        raise DatasetError(f"image id {dup} appears twice", where=f"{where} images")
+    by_id = {iid: i for i, iid in enumerate(img["image_id"])}
+    cols: dict[str, list] = {c: [] for c in ("image_id", "label", "object_id", "segmentation")}
+    raw_box = []
+    for k, a in enumerate(data["annotations"]):
+        at = f"{where} annotations[{k}]"
+        if not isinstance(a, dict) or a.get("image_id") not in by_id:
+            raise DatasetError("the annotation's image_id is not among the images", where=at)
+        box = a.get("bbox")
+        seg = a.get("segmentation") or None
+        if not (isinstance(box, list) and len(box) == 4):
+            if seg is None:
+                raise DatasetError("the annotation has neither a bbox [x, y, w, h] nor a segmentation", where=at)
+            box = [np.nan] * 4  # taken from the mask below
+        if a.get("category_id") not in cats:
+            raise DatasetError(f"category_id {a.get('category_id')!r} is not among the categories", where=at)
+        cols["image_id"].append(a["image_id"])
+        cols["label"].append(cats[a["category_id"]])
+        cols["object_id"].append(a.get("id", k))
+        cols["segmentation"].append(seg)
+        raw_box.append(box)
+    n = len(raw_box)
+    b = np.asarray(raw_box, dtype=float).reshape(n, 4)
+    x0, y0, x1, y1 = to_xyxy(b[:, 0], b[:, 1], b[:, 2], b[:, 3], "xywh")
+    rows = dict(cols, bbox_x0=x0, bbox_y0=y0, bbox_x1=x1, bbox_y1=y1)
+    pos = np.array([by_id[i] for i in cols["image_id"]], dtype=np.int64)
+    for c in ("file", "width", "height"):
+        rows[c] = img[c].to_numpy()[pos] if n else []
+    objects = object_frame(rows, n)
+    _boxes_from_masks(objects, where)
+    check_boxes(objects, where)
+    return Objects(objects, img, "coco", p, root, data)
+
+
+def _sizes_from_files(img: pd.DataFrame, root: Path) -> None:
+    """Images the JSON gives no width or height for take them from their files' headers."""
+    from .boxes import image_path
+    from .imagesize import image_size
+
+    w = pd.to_numeric(img["width"], errors="coerce")
+    h = pd.to_numeric(img["height"], errors="coerce")
+    for i in np.flatnonzero((w.isna() | h.isna()).to_numpy()):
+        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"))
+    img["width"], img["height"] = w.astype(float), h.astype(float)
+
+
+def _boxes_from_masks(objects: pd.DataFrame, where: str) -> None:
+    """Annotations given only as masks get the box of their mask."""
+    from .boxes import mask_bbox, segmentation_mask
+
+    missing = np.flatnonzero(objects["bbox_x0"].isna().to_numpy())
+    for i in missing:
+        r = objects.iloc[i]
+        m = segmentation_mask(r["segmentation"], int(r["height"]), int(r["width"]), f"{where} object {r['object_id']}")
+        box = mask_bbox(m) if m is not None else None
+        if box is not None:
+            objects.iloc[i, [objects.columns.get_loc(c) for c in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")]] = box
+
+
+def write_coco(data: dict, image_ids, path: str | Path) -> dict:
+    """The COCO JSON restricted to `image_ids` (their annotations; every category), ids kept."""
+    from ..io import write_text_atomic
+
+    keep = set(image_ids)
+    out = {k: v for k, v in data.items() if k not in ("images", "annotations")}
+    out["images"] = [im for im in data["images"] if im["id"] in keep]
+    out["annotations"] = [a for a in data["annotations"] if a["image_id"] in keep]
+    write_text_atomic(path, json.dumps(out))
+    return {"images": len(out["images"]), "annotations": len(out["annotations"])}

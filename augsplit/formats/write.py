@@ -1,0 +1,177 @@
+"""Splits written back in the user's format, and read back for the audit.
+
+COCO: one JSON per split (its images, their annotations, every category; ids kept). YOLO: one
+list of image paths per split (`<split>.txt`, absolute paths). VOC: one image-set list per
+split (`<split>.txt`, image ids). Each folder also gets `splits.csv` (every image and its
+split) and `augsplit-splits.json`, the list of files augsplit wrote there: a rerun replaces
+(or removes) only those and refuses to touch anything else. A table gets its split column.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DatasetError
+from ..io import write_text_atomic
+from .boxes import Objects
+from .placement import Placed
+
+MARKER = "augsplit-splits.json"
+SPLITS_CSV = "splits.csv"
+LIST_SUFFIX = {"coco": ".json", "yolo": ".txt", "voc": ".txt"}
+
+
+def default_out(path: str | Path, kind: str) -> Path:
+    """Where per-split files go by default: `<input>.splits` beside the input."""
+    p = Path(path)
+    return p.with_name((p.stem if p.is_file() else p.name) + ".splits")
+
+
+def write_result(result, path: str | Path, out: str | Path | None = None, replace_split: bool = False) -> list[Path]:
+    """Write what split_input returned: a table with its split column(s), or per-split files."""
+    from ..assign import default_output
+    from ..io import check_target, is_stdout, refuse_input
+    from .table import output_kind, write_table
+
+    if isinstance(result, Placed) and result.source.kind != "table":
+        return write_folder(result, out or default_out(path, result.source.kind))
+    table = result.table(replace_split) if isinstance(result, Placed) else result.table
+    target = out or default_output(path)
+    refuse_input(target, path)  # the input itself, a symlink, an unknown extension: refused
+    if not is_stdout(target):
+        check_target(target)
+    output_kind(target)
+    write_table(table, target)
+    return [target]
+
+
+def write_folder(placed: Placed, out: str | Path) -> list[Path]:
+    """Per-split files for COCO / YOLO / VOC input, splits.csv and the marker (see module doc)."""
+    src = placed.source
+    out = Path(out)
+    suffix = LIST_SUFFIX[src.kind]
+    images = placed.images
+    names = [f"{s}{suffix}" for s in placed.splits] + [SPLITS_CSV]
+    ours = _prepare(out, names)
+    written = []
+    for s in placed.splits:
+        sel = images[images["split"] == s]
+        path = out / f"{s}{suffix}"
+        if src.kind == "coco":
+            from .coco import write_coco
+
+            write_coco(src.raw, sel["image_id"].tolist(), path)
+        elif src.kind == "yolo":
+            write_text_atomic(path, "".join(f"{(src.root / f).resolve()}\n" for f in sel["file"]))
+        else:
+            write_text_atomic(path, "".join(f"{i}\n" for i in sel["image_id"]))
+        written.append(path)
+    write_text_atomic(out / SPLITS_CSV, images[["image_id", "file", "split", "n_objects", "mixed"]].to_csv(index=False))
+    written.append(out / SPLITS_CSV)
+    for stale in sorted(ours - set(names)):  # files an earlier run wrote that this one does not
+        (out / stale).unlink(missing_ok=True)
+    counts = {k: int(v) for k, v in images["split"].value_counts().items()}
+    write_text_atomic(out / MARKER, json.dumps({"files": names, "format": src.kind, "source": str(src.path),
+                                                "mixed": placed.mixed_rule, "images": counts}, indent=1))
+    return written
+
+
+def _prepare(out: Path, names: list[str]) -> set[str]:
+    """Create `out` if needed; return the files an earlier run wrote there; refuse to replace
+    anything else (or anything that is not a regular file)."""
+    if out.exists() and not out.is_dir():
+        raise DatasetError("exists and is not a folder", where=str(out))
+    ours: set[str] = set()
+    marker = out / MARKER
+    if marker.is_file() and not marker.is_symlink():
+        try:
+            ours = {str(n) for n in json.loads(marker.read_text(encoding="utf-8"))["files"] if "/" not in str(n)}
+        except (ValueError, KeyError, TypeError):
+            raise DatasetError("unreadable list of the files augsplit wrote here", where=str(marker)) from None
+    for n in names + [MARKER]:
+        q = out / n
+        if q.is_symlink() or (q.exists() and not q.is_file()):
+            raise DatasetError("exists and is not a regular file; choose another --out", where=str(q))
+        if q.exists() and n not in ours and n != MARKER:
+            raise DatasetError("exists and was not written by augsplit; choose another --out", where=str(q))
+    if marker.exists() and not ours and any((out / n).exists() for n in names):
+        raise DatasetError("unreadable list of the files augsplit wrote here", where=str(marker))
+    out.mkdir(parents=True, exist_ok=True)
+    return ours
+
+
+# ---- reading a split assignment back ----------------------------------------------------------
+
+def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
+    """The split of every image of `objs` (in `objs.images` order) from: a folder `assign` wrote
+    (its splits.csv), a folder of per-split files (`<split>.json` COCO files or `<split>.txt`
+    lists of image ids or paths), or a CSV/Parquet table with `split` and `image_id` or `file`.
+    Images the assignment does not name get 'none'."""
+    p = Path(path)
+    if p.is_dir() and (p / MARKER).is_file():
+        return _from_table(pd.read_csv(p / SPLITS_CSV, dtype=str, keep_default_na=False), objs, str(p / SPLITS_CSV))
+    if p.is_dir():
+        return _from_lists(p, objs)
+    if p.is_file():
+        from .table import read_table
+
+        return _from_table(read_table(p), objs, str(p))
+    raise DatasetError("no such file or folder", where=str(p))
+
+
+def _keys(objs: Objects) -> dict[str, int]:
+    """Every name an image may be listed by (id, file, absolute path, stem) -> its position."""
+    out: dict[str, int] = {}
+    for k, (iid, f) in enumerate(zip(objs.images["image_id"], objs.images["file"])):
+        for key in (str(iid), str(f), str((objs.root / str(f)).resolve()), Path(str(f)).stem):
+            out.setdefault(key, k)
+    return out
+
+
+def _from_table(df: pd.DataFrame, objs: Objects, where: str) -> np.ndarray:
+    if "split" not in df.columns:
+        raise DatasetError("no 'split' column", where=where)
+    key = next((c for c in ("image_id", "file", "file_name") if c in df.columns), None)
+    if key is None:
+        raise DatasetError("no 'image_id' or 'file' column to match images by", where=where)
+    keys = _keys(objs)
+    out = np.full(len(objs.images), "none", dtype=object)
+    miss = []
+    for k, s in zip(df[key].astype(str), df["split"].astype(str)):
+        i = keys.get(k)
+        if i is None:
+            miss.append(k)
+        else:
+            out[i] = s
+    _check_missing(miss, where)
+    return out
+
+
+def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
+    keys = _keys(objs)
+    out = np.full(len(objs.images), "none", dtype=object)
+    files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix in (".json", ".txt"))
+    if not files:
+        raise DatasetError("no per-split files (<split>.json or <split>.txt) found", where=str(folder))
+    for f in files:
+        if f.suffix == ".json":
+            try:
+                names = [str(im["id"]) for im in json.loads(f.read_text(encoding="utf-8"))["images"]]
+            except (ValueError, KeyError, TypeError):
+                raise DatasetError("not a COCO file with an 'images' list", where=str(f)) from None
+        else:
+            names = [s.strip() for s in f.read_text(encoding="utf-8").splitlines() if s.strip()]
+        miss = [n for n in names if n not in keys]
+        _check_missing(miss, str(f))
+        for n in names:
+            out[keys[n]] = f.stem
+    return out
+
+
+def _check_missing(miss: list, where: str) -> None:
+    if miss:
+        raise DatasetError(f"{len(miss)} listed images are not in the dataset (e.g. {', '.join(miss[:3])})", where=where)
