@@ -506,9 +506,19 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
     _remove_temporaries(out)  # left by killed job-array tasks; every shard is in, so none is running
     summary = {"spec_hash": built.plan.hash, "images": sum(s.total for s in built.plan.splits),
                "splits": {s.name: {"images": s.total, "role": s.role, "kind": s.kind} for s in built.plan.splits},
-               "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True}
+               "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True,
+               "low_visibility": low_visibility(sorted(expected))}
     _guard_disk(lambda: write_text_atomic(out / mf.SUMMARY_FILE, json.dumps(summary, indent=2, sort_keys=True)), out)
     return summary
+
+
+LOW_VISIBILITY = 0.5  # an image showing less than this share of its object's footprint is reported
+
+
+def low_visibility(parts: list[Path], threshold: float = LOW_VISIBILITY) -> dict:
+    """How many images show less than `threshold` of their target object, and how many none."""
+    vf = np.concatenate([pq.read_table(f, columns=["visible_fraction"]).column(0).to_numpy() for f in parts] or [np.zeros(0)])
+    return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 
 
 def open_dataset_spec(out: str | Path) -> Built:
