@@ -83,16 +83,14 @@ def _class_warnings(plan) -> list[PlanWarning]:
 
 
 def asked_classes(spec, name: str, classes: tuple[str, ...], visiting: tuple[str, ...] = ()) -> set[int] | None:
-    """The class indices a split asks for (None: every class): its `classes:` list, narrowed by
-    the classes its region names (`class:`, `by_class` keys, referenced splits; not `minus`)."""
+    """The class indices a split asks for (None: every class): its `classes:` list, or else the
+    classes its region names (`class:`, `by_class` keys, referenced splits; not `minus`)."""
     if name not in spec.splits or name in visiting:
         return None
     s = spec.splits[name]
-    asked = _node_classes(s.region, spec, classes, visiting + (name,))
     if s.classes is not None:
-        listed = {classes.index(c) for c in s.classes if c in classes}
-        asked = listed if asked is None else asked & listed
-    return asked
+        return {classes.index(c) for c in s.classes if c in classes}
+    return _node_classes(s.region, spec, classes, visiting + (name,))
 
 
 def _names(value, classes) -> set[int]:
