@@ -233,7 +233,10 @@ def _colour_warnings(plan, source) -> list[PlanWarning]:
 
 
 def _pct(f: float) -> str:
-    return f"{f:.1%}" if 0 < f < 0.01 else f"{f:.0%}"
+    """A share that never rounds to 0% or 100% when it is neither."""
+    if 0 < f < 0.01 or 0.99 < f < 1:
+        return f"{math.floor(f * 1000) / 10:.1f}%"
+    return f"{f:.0%}"
 
 
 def _placement(plan, w) -> dict:
