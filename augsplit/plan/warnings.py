@@ -149,8 +149,8 @@ def _axis_warnings(plan) -> list[PlanWarning]:
             v = values[0] if values else float("nan")
             out.append(PlanWarning(
                 "axis_constant",
-                f"axis {ax.name} takes the single value {v:g} in every split, so it varies nowhere; "
-                f"give it more levels (or a range) or drop it",
+                f"axis {ax.name} takes the single value {v:g} in every split, so it varies nowhere (it only "
+                f"fixes that value); give it more levels or a range to vary it",
                 None, (ax.name,), (), {"value": v}))
     return out
 
