@@ -14,12 +14,22 @@ from . import __version__
 from .errors import AugsplitError
 
 
+def _warn(command: str, plan, strict: bool, echo: bool = True) -> None:
+    """Each plan warning as one line on stderr (unless the output shows them already);
+    under --strict they are an error (exit 2)."""
+    for w in plan.warnings if echo else ():
+        print(f"augsplit {command}: warning: {w}", file=sys.stderr)
+    if strict and plan.warnings:
+        raise AugsplitError(f"the spec has {len(plan.warnings)} plan warning(s), errors under --strict", where="--strict")
+
+
 def _cmd_plan(a) -> int:
     from .build import open_spec
     from .plan.describe import plan_data, plan_text
 
     plan = open_spec(a.spec).plan
     print(json.dumps(plan_data(plan), indent=2) if a.json else plan_text(plan))
+    _warn("plan", plan, a.strict, echo=False)  # the plan lists them
     return 0
 
 
@@ -59,10 +69,14 @@ def _cmd_generate(a) -> int:
     else:
         if a.spec is None:
             raise AugsplitError("give a spec (or --finalize an existing folder)")
+        from .build import open_spec
+
         opts = Options(store=a.store, format=a.format, quality=a.quality, shard_size=a.shard_size, workers=a.workers,
                        resume=a.resume, overwrite=a.overwrite, progress=not a.quiet, array_shard=a.shard,
                        executor=a.executor, scheduler=a.scheduler)
-        summary = generate(a.spec, a.out, opts)
+        built = open_spec(a.spec)
+        _warn("generate", built.plan, a.strict)  # before anything is written
+        summary = generate(a.spec, a.out, opts, built=built)
     if "array_shard" in summary:
         k, n = summary["array_shard"]
         print(f"shard {k}/{n} of {a.out}: {summary['images']} images ({summary['made']} made now); "
@@ -70,6 +84,11 @@ def _cmd_generate(a) -> int:
     else:
         per = ", ".join(f"{k} {v['images']}" for k, v in summary["splits"].items())
         print(f"{a.out}: {summary['images']} images ({per}); spec {summary['spec_hash']}")
+        low = summary.get("low_visibility")
+        if low and low["below"]:
+            print(f"augsplit generate: warning: {low['below']} of {summary['images']} images show less than "
+                  f"{low['threshold']:.0%} of their object (visible_fraction), {low['zero']} none of it",
+                  file=sys.stderr)
     return 0
 
 
@@ -198,6 +217,7 @@ def build_parser() -> argparse.ArgumentParser:
     q = sub.add_parser("plan", help="print what each split will contain and prove the spec's guarantees")
     q.add_argument("spec", help="YAML spec, or 'demo' for the built-in demo spec")
     q.add_argument("--json", action="store_true", help="machine-readable output")
+    q.add_argument("--strict", action="store_true", help="treat plan warnings as errors (exit 2)")
     q.set_defaults(run=_cmd_plan)
 
     q = sub.add_parser("assign", help="split a table, COCO JSON, YOLO or VOC folder by where its objects lie")
@@ -240,6 +260,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--shard", type=_shard, default=None, metavar="K/N", help="make only job-array shard K of N")
     q.add_argument("--finalize", action="store_true", help="check all shards are present and write the summary")
     q.add_argument("--quiet", action="store_true", help="no progress bar")
+    q.add_argument("--strict", action="store_true", help="treat plan warnings as errors (exit 2, nothing written)")
     q.set_defaults(run=_cmd_generate)
 
     q = sub.add_parser("verify", help="check a dataset folder against its spec; exit 1 on any difference")

@@ -24,7 +24,7 @@ import pyarrow.parquet as pq
 from . import executors
 from . import manifest as mf
 from .build import Built, build, open_spec
-from .dataset import create, open_dataset
+from .dataset import create, open_dataset, read_rows
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
@@ -412,9 +412,19 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
     create.remove_temporaries(out)  # left by killed job-array tasks; every shard is in, so none is running
     summary = {"spec_hash": built.plan.hash, "images": sum(s.total for s in built.plan.splits),
                "splits": {s.name: {"images": s.total, "role": s.role, "kind": s.kind} for s in built.plan.splits},
-               "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True}
+               "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True,
+               "low_visibility": low_visibility(folder)}
     _guard_disk(lambda: write_text_atomic(out / lay.SUMMARY_FILE, json.dumps(summary, indent=2, sort_keys=True)), out)
     return summary
+
+
+LOW_VISIBILITY = 0.5  # an image showing less than this share of its object's footprint is reported
+
+
+def low_visibility(folder, threshold: float = LOW_VISIBILITY) -> dict:
+    """How many images show less than `threshold` of their target object, and how many none."""
+    vf = read_rows(folder, columns=["visible_fraction"])["visible_fraction"].to_numpy(dtype=float)
+    return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 
 
 class _NoBar:

@@ -74,7 +74,8 @@ def test_refused_guarantee_exit_2_with_numbers(tmp_path):
 
 def _demo_table(n=200, seed=0):
     rng = np.random.default_rng(seed)
-    return pd.DataFrame({"x": rng.uniform(8, 56, n), "y": rng.uniform(6, 58, n), "scale": rng.uniform(0.9, 1.1, n),
+    # the demo's axis ranges (augsplit/builtin/demo.yaml)
+    return pd.DataFrame({"x": rng.uniform(10, 54, n), "y": rng.uniform(7, 57, n), "scale": rng.uniform(0.9, 1.1, n),
                          "angle": rng.uniform(-10, 10, n)})
 
 

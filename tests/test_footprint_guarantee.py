@@ -311,7 +311,14 @@ def test_auto_guard_shrinks_test_region_until_proved():
     assert v.status == "guarded" and 0 < v.numbers["removed_fraction"] < 1
     test = built.plan.split("test")
     lo, hi = test.region.axis_extent("x")
-    assert lo >= 30 + v.numbers["need_px"] - 1e-6  # the guard is at least the needed gap
+    # the band is the narrowest on the auto_guard grid that the proof accepts: no wider than
+    # the disc bound's need, and one grid step less is not proved
+    from augsplit.plan.guard import GUARD_STEP_PX
+
+    assert lo == pytest.approx(30 + v.numbers["guard_px"]) and v.numbers["guard_px"] <= v.numbers["need_px"] + GUARD_STEP_PX
+    narrower = dict(spec, guarantees=[{"disjoint": "footprint", "between": ["train", "test"]}])
+    narrower["splits"] = dict(spec["splits"], test={"region": {"x": [lo - GUARD_STEP_PX, 64]}, "per_class": 5})
+    assert not open_mapping(narrower, strict=False).plan.verdicts[0].ok
     cov_train = _coverage(built, built.plan.split("train"), False)[-1]
     cov_test = _coverage(built, test, False)[-1]
     assert not np.any(cov_train & cov_test)

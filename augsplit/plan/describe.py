@@ -40,8 +40,13 @@ def split_data(plan: Plan, s: SplitPlan) -> dict:
            "is_product": abs(product - s.region.mass()) < 1e-9,
            "images": s.total, "per_class": classes, "instances": s.instances, "axes": axes, "boxes": boxes}
     if s.evidence:
-        out["evidence"] = {"shared_mass_fraction": s.evidence.get("shared_mass_fraction"),
-                           "unseen": {n: [_interval(space[n], a, b) for a, b in ivs] for n, ivs in s.evidence.get("unseen", {}).items()}}
+        unseen = {}
+        for n, ivs in s.evidence.get("unseen", {}).items():
+            if n == CLASS:  # class indices -> names
+                unseen[n] = [plan.classes[c] for c in range(len(plan.classes)) if any(a - 1e-9 <= c <= b + 1e-9 for a, b in ivs)]
+            else:
+                unseen[n] = [_interval(space[n], a, b) for a, b in ivs]
+        out["evidence"] = {"shared_mass_fraction": s.evidence.get("shared_mass_fraction"), "unseen": unseen}
     return out
 
 
@@ -56,6 +61,7 @@ def plan_data(plan: Plan) -> dict:
         "splits": [split_data(plan, s) for s in plan.splits],
         "guarantees": [{"disjoint": v.kind, "between": list(v.between), "per_class": v.per_class,
                         "verdict": v.status, "numbers": v.numbers, "message": v.message} for v in plan.verdicts],
+        "warnings": [w.as_dict() for w in plan.warnings],
     })
 
 
@@ -88,7 +94,8 @@ def plan_text(plan: Plan) -> str:
             if len(s["boxes"]) > MAX_BOXES:
                 lines.append(f"    ... {len(s['boxes']) - MAX_BOXES} more (see --json)")
         if s["kind"] not in ("train", "random") and s.get("evidence", {}).get("unseen"):
-            unseen = "; ".join(f"{n} {' '.join(_fmt(iv) for iv in ivs)}" for n, ivs in s["evidence"]["unseen"].items())
+            unseen = "; ".join(f"class {', '.join(ivs)}" if n == CLASS else f"{n} {' '.join(_fmt(iv) for iv in ivs)}"
+                               for n, ivs in s["evidence"]["unseen"].items())
             lines.append(f"  never seen in training: {unseen}")
         if len(s["per_class"]) < len(d["classes"]):
             lines.append(f"  classes: {', '.join(s['per_class'])}")
@@ -96,6 +103,9 @@ def plan_text(plan: Plan) -> str:
         pc = " per class" if g["per_class"] else ""
         lines.append(f"\nguarantee disjoint {g['disjoint']}{pc} {g['between'][0]} ~ {g['between'][1]}: "
                      f"{g['verdict'].upper()}  {g['message']}")
+    if d["warnings"]:
+        lines.append(f"\n{len(d['warnings'])} warning(s): the spec cannot do all it seems to say")
+        lines += [f"  warning [{w['code']}] {w['message']}" for w in d["warnings"]]
     return "\n".join(lines)
 
 

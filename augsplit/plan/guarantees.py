@@ -228,20 +228,47 @@ def dilate_positions(space: Space, canvas: Canvas, A: Region, grow_px: np.ndarra
                         lo[i], hi[i] = _level_cover(ax, va, vb)
                     else:
                         lo[i], hi[i] = float(ax.to_t(va)), float(ax.to_t(vb))
+            out = out | _clip_wrap(space, lo, hi)
         else:
-            r0, r1, p0, p1 = ps.bounds
             ea = space["eccentricity"]; i = space.index["eccentricity"]
-            v0 = float(canvas.radius_from_px(ea.unit, max(r0 - g, 0.0)))
-            v1 = float(canvas.radius_from_px(ea.unit, r1 + g))
-            lo[i], hi[i] = max(space.t_lo[i], float(ea.to_t(v0))), min(space.t_hi[i], float(ea.to_t(v1)))
             j = space.index["polar_angle"]
-            if r0 > 2 * g:
-                delta = math.degrees(math.asin(min(1.0, g / (r0 - g))))
-                lo[j], hi[j] = p0 - delta, p1 + delta
-            else:
-                lo[j], hi[j] = space.t_lo[j], space.t_hi[j]
-        out = out | _clip_wrap(space, lo, hi)
+            for ra, rb, delta in sector_rings(*ps.bounds, g):
+                ring_lo, ring_hi = lo.copy(), hi.copy()
+                va, vb = float(canvas.radius_from_px(ea.unit, ra)), float(canvas.radius_from_px(ea.unit, rb))
+                ring_lo[i], ring_hi[i] = max(space.t_lo[i], float(ea.to_t(va))), min(space.t_hi[i], float(ea.to_t(vb)))
+                if delta is None:
+                    ring_lo[j], ring_hi[j] = space.t_lo[j], space.t_hi[j]
+                else:
+                    ring_lo[j], ring_hi[j] = ps.bounds[2] - delta, ps.bounds[3] + delta
+                out = out | _clip_wrap(space, ring_lo, ring_hi)
     return out
+
+
+RING_RATIO = 1.25  # outer / inner radius of the rings a grown sector is cut into
+
+
+def sector_rings(r0: float, r1: float, p0: float, p1: float, g: float) -> list[tuple[float, float, float | None]]:
+    """The points within g px of the sector r in [r0, r1], polar angle in [p0, p1] (degrees),
+    as rings (inner px, outer px, angular growth in degrees, None for all round).
+
+    A point at radius rho > g whose direction differs from every direction of the sector by
+    d (<= 90 deg) lies at least rho sin(d) from it (its distance to the nearest ray), so
+    within g of the sector d <= asin(g / rho); each ring takes the growth at its inner
+    radius. Within g of the centre every direction is near, so a sector reaching the centre
+    only loses its direction there, not everywhere."""
+    if g <= 0:
+        return [(r0, r1, 0.0)]
+    inner, outer = max(r0 - g, 0.0), r1 + g
+    rings: list[tuple[float, float, float | None]] = []
+    if inner < g:
+        rings.append((inner, min(g, outer), None))
+        inner = g
+    while inner < outer:
+        nxt = min(outer, inner * RING_RATIO)
+        delta = math.degrees(math.asin(min(1.0, g / inner)))
+        rings.append((inner, nxt, None if 2 * delta + (p1 - p0) >= 360.0 else delta))
+        inner = nxt
+    return rings
 
 
 def _level_cover(ax, va: float, vb: float) -> tuple[float, float]:

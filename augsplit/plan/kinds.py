@@ -1,16 +1,20 @@
 """Holdout kinds, as the generalisation literature names them, and the composition check.
 
 A test split is labelled by comparing its region with the union of the training regions,
-axis by axis: `random` (drawn from the training region itself), `composition` (every value
-of every axis is seen in training, only the combination is new), `interpolation` (some
-values are unseen but lie between seen ones; any held-out arc of a circular axis) and
-`extrapolation` (some values lie beyond every seen value).
+axis by axis, the class included: `random` (drawn from the training region itself),
+`composition` (every value of every axis, class included, is seen in training, only the
+combination is new), `interpolation` (some values are unseen but lie between seen ones; any
+held-out arc of a circular axis) and `extrapolation` (some values lie beyond every seen
+value). A class no training split shows is a value outside the training support of a
+nominal axis, where nothing lies "between" seen values: extrapolation (the novel-class case),
+never composition, which needs every marginal value seen.
 """
 
 from __future__ import annotations
 
 from ..space.axes import CIRCULAR, Space
 from ..space.region import Region, _merge
+from .regions import t_interval_text
 
 CLASS = "class"
 
@@ -40,11 +44,10 @@ def _subtract(a: list[tuple[float, float]], b: list[tuple[float, float]]) -> lis
 
 
 def unseen_values(space: Space, test: Region, train: Region) -> dict[str, list[tuple[float, float]]]:
-    """Per axis, the t-intervals the test region reaches that no training region does."""
+    """Per axis (the class axis too), the t-intervals the test region reaches that no
+    training region does."""
     out = {}
     for i, ax in enumerate(space.axes):
-        if ax.name == CLASS:
-            continue
         rest = _subtract(projection(test, i), projection(train, i))
         if rest:
             out[ax.name] = rest
@@ -64,6 +67,8 @@ def holdout_kind(space: Space, test: Region, train: Region) -> tuple[str, dict]:
     evidence["unseen"] = unseen
     if not unseen:
         return "composition", evidence
+    if CLASS in unseen:
+        return "extrapolation", evidence
     for name, ivs in unseen.items():
         ax = space[name]
         if ax.measure == CIRCULAR and abs(ax.t_span - ax.period) < 1e-9:
@@ -73,3 +78,11 @@ def holdout_kind(space: Space, test: Region, train: Region) -> tuple[str, dict]:
         if any(a < lo - 1e-9 or b > hi + 1e-9 for a, b in ivs):
             return "extrapolation", evidence
     return "interpolation", evidence
+
+
+def values_text(space: Space, name: str, ivs: list[tuple[float, float]], classes: tuple[str, ...] = ()) -> str:
+    """t-intervals of one axis in the spec's terms: class names, levels or value intervals."""
+    if name == CLASS and classes:
+        idx = sorted({i for lo, hi in ivs for i in range(len(classes)) if lo - 1e-9 <= i <= hi + 1e-9})
+        return "class " + ", ".join(classes[i] for i in idx)
+    return f"{name} " + " ".join(t_interval_text(space[name], a, b) for a, b in ivs)

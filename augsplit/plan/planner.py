@@ -10,7 +10,7 @@ object source and the footprint renderer are passed in.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -20,10 +20,10 @@ from ..space.region import Region
 from ..spec import Spec, spec_hash
 from ..units import Canvas, Viewing
 from .geometry import support_radius
-from .guarantees import (Verdict, check_parameters, dilate_parameters, dilate_positions, footprint_gaps,
-                         tightest)
-from .kinds import holdout_kind
-from .regions import CLASS, build_region, build_space, t_interval_text
+from .guarantees import Verdict, check_parameters, dilate_parameters, footprint_gaps, tightest
+from .guard import footprint_guard
+from .kinds import holdout_kind, projection, values_text
+from .regions import CLASS, build_region, build_space
 
 
 @dataclass(frozen=True)
@@ -70,6 +70,7 @@ class Plan:
     verdicts: tuple[Verdict, ...]
     radii: np.ndarray = field(compare=False)  # native support radius (px) per class, over all instances
     guard: Region | None = field(default=None, compare=False)  # what auto_guard removed
+    warnings: tuple = field(default=(), compare=False)  # PlanWarning: what the spec cannot do (plan/warnings.py)
 
     def split(self, name: str) -> SplitPlan:
         for s in self.splits:
@@ -170,7 +171,7 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
         where = f"guarantees.{gi}"
         v, ra, rb = prove(g, regions)
         if not v.ok and g.auto_guard:
-            guard = _guard_region(g, space, canvas, regions[a], regions[b], ra, rb)
+            guard, guard_px = _guard_region(g, space, canvas, regions, ra, rb, lambda r: prove(g, {**regions, b: r})[0].ok)
             before = regions[b].mass()
             guard_total = guard_total | (regions[b] & guard)  # what the guard takes away from b
             regions[b] = guarded[b] = regions[b] - guard
@@ -178,9 +179,13 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
             if not v2.ok:
                 raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
             removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
-            nums = dict(v2.numbers, removed_fraction=removed, guard_px=v.numbers.get("need_px"))
+            nums = dict(v2.numbers, removed_fraction=removed)
+            band = ""
+            if guard_px is not None:
+                nums["guard_px"] = guard_px
+                band = f" (positions within {guard_px:.4g} px of {a}'s, the least band the proof accepts)"
             v = Verdict(g.disjoint, g.between, "guarded", g.per_class, nums,
-                        f"auto_guard removed {removed:.1%} of {b}'s region; then {v2.message}")
+                        f"auto_guard removed {removed:.1%} of {b}'s region{band}; then {v2.message}")
             if regions[b].is_empty():
                 raise GuaranteeError(f"auto_guard removed all of {b}'s region", where=where)
         if not v.ok and strict:
@@ -220,12 +225,15 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
             kind, evidence = "train", {}
         else:
             kind, evidence = holdout_kind(space, region, train_union)
-            _check_declared_kind(s.kind, kind, evidence, space, name)
+            _check_declared_kind(s.kind, kind, evidence, space, classes, train_union, name)
         instances = s.instances or ("seen" if any(unseen) else "all")
         splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
-    return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
+    plan = Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
                 tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
+    from .warnings import plan_warnings
+
+    return replace(plan, warnings=plan_warnings(plan, source))
 
 
 # ---- pieces ----------------------------------------------------------------------------
@@ -352,14 +360,14 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
                    f"footprints of {a} and {b} can meet: {bound}; {what}")
 
 
-def _guard_region(g, space, canvas, A, B, ra, rb) -> Region:
+def _guard_region(g, space, canvas, regions, ra, rb, proves) -> tuple[Region, float | None]:
+    """What auto_guard takes out of the second split, and (footprints) the band's width in px."""
+    A, B = regions[g.between[0]], regions[g.between[1]]
     if g.disjoint == "parameters":
-        return dilate_parameters(space, A, max(g.margin, 1e-9) * (1 + 1e-9), g.per_class)
-    gaps = footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)
-    grow = np.zeros(A.nbox)
-    for gp in gaps:
-        grow[gp.box_a] = max(grow[gp.box_a], gp.need_px + 1e-6)
-    return dilate_positions(space, canvas, A, grow, g.per_class)
+        return dilate_parameters(space, A, max(g.margin, 1e-9) * (1 + 1e-9), g.per_class), None
+    # the disc bound's largest need is a width the proof surely accepts; the search narrows it
+    start = max((gp.need_px for gp in footprint_gaps(space, canvas, A, B, ra, rb, g.per_class)), default=0.0)
+    return footprint_guard(proves, canvas, A, B, start, g.per_class)
 
 
 def _keep_inside(space, canvas, region, radii, classes, name) -> Region:
@@ -429,13 +437,17 @@ def _counts(s, region: Region, space: Space, classes, name: str) -> tuple[int, .
     return tuple(counts)
 
 
-def _check_declared_kind(declared, kind, evidence, space, name) -> None:
+def _check_declared_kind(declared, kind, evidence, space, classes, train, name) -> None:
     if declared is None or declared == kind:
         return
     where = f"splits.{name}.kind"
-    if declared == "composition":
-        axis, ivs = next(iter(evidence["unseen"].items()))
-        ax = space[axis]
-        raise SpecError(f"composition claims every marginal value is seen in training, but {axis} "
-                        f"{t_interval_text(ax, *ivs[0])} never is", where=where)
-    raise SpecError(f"declared {declared}, but the regions make it {kind}", where=where)
+    unseen = evidence.get("unseen", {})
+    never = "; ".join(values_text(space, n, ivs, classes) for n, ivs in unseen.items())
+    if declared == "composition" and unseen:
+        seen = "; ".join(values_text(space, n, projection(train, space.index[n]), classes) for n in unseen)
+        raise SpecError(f"composition claims every marginal value is seen in training, but {never} never is "
+                        f"(training has {seen}); the regions make it {kind}", where=where)
+    shared = evidence.get("shared_mass_fraction")
+    why = (f"never seen in training: {never}" if never else
+           f"{shared:.1%} of its mass lies in the training region" if shared is not None else "")
+    raise SpecError(f"declared {declared}, but the regions make it {kind}" + (f" ({why})" if why else ""), where=where)
