@@ -16,7 +16,7 @@ from .sources import backgrounds as bg
 from .sources.folder import SpriteFolder
 from .sources.glyphs import Glyphs
 from .sources.polyomino import Polyominoes
-from .spec import Spec, load_spec, parse_spec
+from .spec import Spec, parse_spec, read_spec_file
 
 
 @dataclass(frozen=True)
@@ -72,8 +72,10 @@ def build(spec: Spec, base_dir: Path, strict: bool = True) -> Built:
 
 
 def open_spec(path: str | Path) -> Built:
-    spec, base_dir = load_spec(path)
-    return build(spec, base_dir)
+    """Load, validate and plan a spec file; a SpecError names the file and line of its key path."""
+    f = read_spec_file(path)
+    with f.located():
+        return build(parse_spec(f.data, source=str(f.path)), f.path.resolve().parent)
 
 
 def open_mapping(data: dict, base_dir: str | Path = ".", strict: bool = True) -> Built:

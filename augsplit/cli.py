@@ -7,7 +7,9 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 
 from . import __version__
@@ -54,7 +56,7 @@ def _cmd_generate(a) -> int:
             raise AugsplitError("give a spec (or --finalize an existing folder)")
         opts = Options(store=a.store, format=a.format, quality=a.quality, shard_size=a.shard_size, workers=a.workers,
                        resume=a.resume, overwrite=a.overwrite, progress=not a.quiet, array_shard=a.shard,
-                       executor=a.executor, scheduler=a.scheduler)
+                       executor=a.executor, scheduler=a.scheduler, force_workers=a.force_workers)
         summary = generate(a.spec, a.out, opts)
     if "array_shard" in summary:
         k, n = summary["array_shard"]
@@ -154,8 +156,20 @@ def _cmd_audit(a) -> int:
     return result.exit_code
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a usage error is one line naming the option (not the usage block), exit 2.
+    Subcommand parsers are made of the same class (argparse's add_subparsers default)."""
+
+    def error(self, message: str):
+        self.exit(2, f"{self.prog}: error: {_one_line(message)} (see '{self.prog} --help')\n")
+
+
+def _one_line(text: str) -> str:
+    return str(text).replace("\r", "\\r").replace("\n", "\\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
+    p = _Parser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
 
@@ -177,8 +191,11 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--store", choices=["files", "parquet", "none"], default="files",
                    help="image files, encoded images inside the Parquet rows, or none (the manifest re-makes them)")
     q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
-    q.add_argument("--quality", type=int, default=95, help="JPEG/WebP quality")
-    q.add_argument("--workers", type=int, default=1, help="worker processes (local, or of a new dask LocalCluster)")
+    q.add_argument("--quality", type=int, default=95, help="JPEG quality 0-100, WebP 1-100 (PNG: unused, 0-100)")
+    q.add_argument("--workers", type=int, default=1,
+                   help="worker processes (local, or of a new dask LocalCluster); at most one per shard and per CPU core")
+    q.add_argument("--force-workers", action="store_true",
+                   help="start --workers processes even beyond the shards or cores (at most 256)")
     q.add_argument("--executor", choices=["auto", "serial", "processes", "dask"], default="auto",
                    help="where shards run: auto = serial for 1 worker, local processes otherwise")
     q.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -231,6 +248,28 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+@contextmanager
+def _quiet_opencv():
+    """OpenCV logs its own [ WARN]/[ERROR] lines to stderr (e.g. for a broken image augsplit then
+    reports in one line). Silenced for this command only: the level is restored afterwards, and
+    processes the command starts inherit OPENCV_LOG_LEVEL, which is restored too."""
+    import cv2
+
+    logging = cv2.utils.logging
+    old_env = os.environ.get("OPENCV_LOG_LEVEL")
+    old = logging.getLogLevel()
+    os.environ["OPENCV_LOG_LEVEL"] = "SILENT"
+    logging.setLogLevel(logging.LOG_LEVEL_SILENT)
+    try:
+        yield
+    finally:
+        logging.setLogLevel(old)
+        if old_env is None:
+            os.environ.pop("OPENCV_LOG_LEVEL", None)
+        else:
+            os.environ["OPENCV_LOG_LEVEL"] = old_env
+
+
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -239,9 +278,10 @@ def main(argv=None) -> int:
 
         args.spec = str(builtin_spec_path("demo"))
     try:
-        return int(args.run(args) or 0)
+        with _quiet_opencv():
+            return int(args.run(args) or 0)
     except AugsplitError as err:
-        print(f"augsplit {args.command}: error: {err}", file=sys.stderr)
+        print(f"augsplit {args.command}: error: {_one_line(err)}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
         print(f"augsplit {args.command}: interrupted; rerun with --resume to continue", file=sys.stderr)

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import GuaranteeError, SourceError, SpecError
+from ..limits import MAX_IMAGES, MAX_SPLIT_IMAGES
 from ..space.axes import Space
 from ..space.region import Region
 from ..spec import Spec, spec_hash
@@ -209,6 +210,9 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True) -> Pla
         instances = s.instances or ("seen" if any(unseen) else "all")
         splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
+    if sum(s.total for s in splits) > MAX_IMAGES:
+        raise SpecError(f"{sum(s.total for s in splits):,} images in all are above the limit of {MAX_IMAGES:,} "
+                        "(limits.MAX_IMAGES)", where="splits")
     return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
                 tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
 
@@ -409,6 +413,9 @@ def _counts(s, region: Region, space: Space, classes, name: str) -> tuple[int, .
         q, r = divmod(s.count, len(present))
         for k, c in enumerate(present):
             counts[c] = q + (1 if k < r else 0)
+    if sum(counts) > MAX_SPLIT_IMAGES:
+        raise SpecError(f"{sum(counts):,} images ({s.per_class} per class x {len(present)} classes) are above the "
+                        f"limit of {MAX_SPLIT_IMAGES:,} per split (limits.MAX_SPLIT_IMAGES)", where=f"splits.{name}")
     return tuple(counts)
 
 

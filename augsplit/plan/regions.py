@@ -20,6 +20,7 @@ from typing import Any, Callable
 import numpy as np
 
 from ..errors import SpecError
+from ..limits import MAX_GRID_CELLS, MAX_REGION_BOXES
 from ..space.axes import BUILTIN, CIRCULAR, LEVELS, LINEAR, LOG, Axis, Space
 from ..space.region import Region
 from ..spec import Spec, _hint
@@ -123,7 +124,7 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
         if key == "minus":
             continue
         if key in space.names and key != CLASS:
-            out = out & Region.box(space, {key: _intervals(space[key], value, sub)})
+            out = _bounded(out & Region.box(space, {key: _intervals(space[key], value, sub)}), sub)
         elif key == CLASS:
             out = out & _classes_region(space, classes, value, sub)
         elif key in ("any_of", "all_of"):
@@ -132,18 +133,18 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
             parts = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
             acc = parts[0]
             for p in parts[1:]:
-                acc = (acc | p) if key == "any_of" else (acc & p)
-            out = out & acc
+                acc = _bounded((acc | p) if key == "any_of" else (acc & p), sub)
+            out = _bounded(out & acc, sub)
         elif key == "band":
             out = out & _band(space, value, sub)
         elif key == "cells":
-            out = out & _cells(space, value, sub)
+            out = _bounded(out & _cells(space, value, sub), sub)
         elif key == "by_class":
-            out = out & _by_class(space, classes, value, sub, split_region)
+            out = _bounded(out & _by_class(space, classes, value, sub, split_region), sub)
         elif key == "split":
             if split_region is None:
                 raise SpecError("'split' cannot be used here", where=sub)
-            out = out & split_region(str(value), sub)
+            out = _bounded(out & split_region(str(value), sub), sub)
         else:
             known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
             if key in BUILTIN:
@@ -152,8 +153,17 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
             hint = _hint(key, known)
             raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
     if "minus" in node:
-        out = out - build_region(node["minus"], space, classes, f"{where}.minus", split_region)
+        out = _bounded(out - build_region(node["minus"], space, classes, f"{where}.minus", split_region), f"{where}.minus")
     return out
+
+
+def _bounded(region: Region, where: str) -> Region:
+    """Refuse a region of more boxes than MAX_REGION_BOXES: set operations cost the product of
+    the operands' box counts, so this keeps every later step of the planner bounded too."""
+    if region.nbox > MAX_REGION_BOXES:
+        raise SpecError(f"the region has {region.nbox:,} boxes, above the limit of {MAX_REGION_BOXES:,} "
+                        f"(limits.MAX_REGION_BOXES)", where=where, hint="use fewer cells or intervals")
+    return region
 
 
 def _intervals(axis: Axis, value: Any, where: str) -> list[tuple[float, float]]:
@@ -226,6 +236,10 @@ def _cells(space: Space, value: Any, where: str) -> Region:
         if not (isinstance(grid[n], int) and not isinstance(grid[n], bool) and grid[n] >= 1):
             raise SpecError("the number of bins must be a positive integer", where=f"{where}.grid.{n}")
     shape = [grid[n] for n in names]
+    n_cells = math.prod(shape)
+    if n_cells > MAX_GRID_CELLS:
+        raise SpecError(f"a grid of {' x '.join(map(str, shape))} = {n_cells:,} cells is above the limit of "
+                        f"{MAX_GRID_CELLS:,} (limits.MAX_GRID_CELLS)", where=f"{where}.grid")
     pick = value.get("pick", "all")
     all_cells = [tuple(int(v) for v in c) for c in np.ndindex(*shape)]
     if pick == "all":
@@ -240,17 +254,19 @@ def _cells(space: Space, value: Any, where: str) -> Region:
             if not (isinstance(c, list) and len(c) == len(shape) and all(isinstance(v, int) and 0 <= v < s for v, s in zip(c, shape))):
                 raise SpecError(f"cell {c} is not an index into a grid of {shape}", where=f"{where}.pick.{k}")
             chosen.append(tuple(c))
+        chosen = list(dict.fromkeys(chosen))  # a cell picked twice is one box
     else:
         raise SpecError("pick is a list of cell indices, 'checkerboard', 'checkerboard_odd' or 'all'", where=f"{where}.pick")
-    out = Region.empty(space)
-    for c in chosen:
-        ivs = {}
-        for n, k, s in zip(names, c, shape):
-            i = space.index[n]
-            lo, span = space.t_lo[i], space.t_span[i]
-            ivs[n] = [(lo + span * k / s, lo + span * (k + 1) / s)]
-        out = out | Region.box(space, ivs)
-    return out
+    # the cells of one grid are disjoint boxes already: build them at once (a union per cell
+    # would cost time quadratic in their number)
+    k = np.asarray(chosen, dtype=float).reshape(len(chosen), len(names))
+    lo = np.repeat(space.t_lo[None, :], len(chosen), axis=0)
+    hi = np.repeat(space.t_hi[None, :], len(chosen), axis=0)
+    for j, (n, s) in enumerate(zip(names, shape)):
+        i = space.index[n]
+        lo[:, i] = space.t_lo[i] + space.t_span[i] * k[:, j] / s
+        hi[:, i] = space.t_lo[i] + space.t_span[i] * (k[:, j] + 1) / s
+    return Region(space, lo, hi)
 
 
 def _by_class(space, classes, value, where, split_region) -> Region:
