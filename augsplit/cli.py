@@ -249,25 +249,37 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 @contextmanager
-def _quiet_opencv():
-    """OpenCV logs its own [ WARN]/[ERROR] lines to stderr (e.g. for a broken image augsplit then
-    reports in one line). Silenced for this command only: the level is restored afterwards, and
-    processes the command starts inherit OPENCV_LOG_LEVEL, which is restored too."""
-    import cv2
-
-    logging = cv2.utils.logging
-    old_env = os.environ.get("OPENCV_LOG_LEVEL")
-    old = logging.getLogLevel()
-    os.environ["OPENCV_LOG_LEVEL"] = "SILENT"
-    logging.setLogLevel(logging.LOG_LEVEL_SILENT)
+def _quiet_native_stderr():
+    """Native libraries write their own warnings straight to file descriptor 2 (OpenCV's
+    "[ WARN]"/"[ERROR]" log, libpng's "libpng error: ...", libjpeg's "Corrupt JPEG data"),
+    after which augsplit reports the problem in one line anyway. For the command's duration
+    descriptor 2 points at the null device; Python's sys.stderr, if it is that descriptor,
+    is moved to a copy of it, so augsplit's own messages and progress bars still show.
+    Both are restored when the command returns (a library call never changes either)."""
+    try:
+        sys.stderr.flush()
+        real = os.dup(2)
+    except (OSError, ValueError, AttributeError):  # no descriptor 2 to protect
+        yield
+        return
+    try:
+        swap = sys.stderr.fileno() == 2
+    except (OSError, ValueError, AttributeError):  # e.g. a notebook's or a test's stream object
+        swap = False
+    old = sys.stderr
+    if swap:
+        sys.stderr = open(os.dup(real), "w", buffering=1, encoding=old.encoding, errors="backslashreplace")
+    null = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(null, 2)
+    os.close(null)
     try:
         yield
     finally:
-        logging.setLogLevel(old)
-        if old_env is None:
-            os.environ.pop("OPENCV_LOG_LEVEL", None)
-        else:
-            os.environ["OPENCV_LOG_LEVEL"] = old_env
+        if swap:
+            sys.stderr.close()
+            sys.stderr = old
+        os.dup2(real, 2)
+        os.close(real)
 
 
 def main(argv=None) -> int:
@@ -278,7 +290,7 @@ def main(argv=None) -> int:
 
         args.spec = str(builtin_spec_path("demo"))
     try:
-        with _quiet_opencv():
+        with _quiet_native_stderr():
             return int(args.run(args) or 0)
     except AugsplitError as err:
         print(f"augsplit {args.command}: error: {_one_line(err)}", file=sys.stderr)

@@ -30,7 +30,7 @@ PosInt = Annotated[int, Field(gt=0, strict=True)]
 ImageCount = Annotated[int, Field(gt=0, le=L.MAX_SPLIT_IMAGES, strict=True)]
 NonNegInt = Annotated[int, Field(ge=0, strict=True)]
 PosFloat = Annotated[float, Field(gt=0)]
-Colour = Union[float, tuple[int, int, int]]
+Colour = Union[Annotated[float, Field(ge=0, le=1)], tuple[int, int, int]]  # a grey level in [0, 1] or RGB
 
 
 def _hint(word: str, choices) -> str | None:
@@ -166,6 +166,10 @@ class DistractorSpec(Model):
         if self.count[0] > self.count[1]:
             raise SpecError(f"[{self.count[0]}, {self.count[1]}] is not [min, max] (min is above max)",
                             where="render.distractors.count")
+        if self.count[1] * self.attempts > L.MAX_PLACEMENT_TRIES:
+            raise SpecError(f"up to {self.count[1]} distractors x {self.attempts} attempts = "
+                            f"{self.count[1] * self.attempts:,} placements tried per image, above the limit of "
+                            f"{L.MAX_PLACEMENT_TRIES:,} (limits.MAX_PLACEMENT_TRIES)", where="render.distractors")
         return self
 
 
@@ -258,10 +262,12 @@ def _loc(loc) -> str:
 
 
 _UNION_TAGS = {"polyomino", "glyphs", "folder", "solid", "uniform_noise", "gaussian_noise", "pink_noise",
-               "function-after[_one_count(), SplitSpec]", "tagged-union[PolyominoSpec,GlyphSpec,FolderSpec]"}
+               "function-after[_one_count(), SplitSpec]", "tagged-union[PolyominoSpec,GlyphSpec,FolderSpec]",
+               "constrained-float", "tuple[int, int, int]"}
 
 # a schema bound that is one of augsplit's limits is named in the message
-_LIMIT_NAMES = {v: k for k, v in vars(L).items() if k.startswith("MAX_") and isinstance(v, int)}
+_LIMIT_NAMES = {v: k for k, v in vars(L).items() if k.startswith("MAX_") and isinstance(v, int)
+                and sum(1 for x in vars(L).values() if x == v) == 1}
 
 
 def _first_error(err: ValidationError) -> SpecError:

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import GuaranteeError, SourceError, SpecError
-from ..limits import MAX_IMAGES, MAX_SPLIT_IMAGES
+from ..limits import MAX_IMAGES, MAX_SCALED_SPRITE_PIXELS, MAX_SPLIT_IMAGES
 from ..space.axes import Space
 from ..space.region import Region
 from ..spec import Spec, spec_hash
@@ -247,11 +247,20 @@ def _instances(spec: Spec, source, classes):
 
 
 def _check_fits(source, seen, unseen, space, canvas) -> None:
-    """Refuse a sprite whose opaque part is larger than the canvas even at the smallest scale."""
+    """Refuse a sprite whose opaque part is larger than the canvas even at the smallest scale,
+    or whose warp box (the renderer's allocation) at the largest scale is above the limit."""
     smin = float(space["scale"].from_t(space.t_lo[space.index["scale"]])) if "scale" in space else 1.0
+    smax = float(space["scale"].from_t(space.t_hi[space.index["scale"]])) if "scale" in space else 1.0
     for c in range(len(seen)):
         for i in seen[c] + unseen[c]:
             sp = source.sprite(c, i)
+            side = math.hypot(sp.width + 1, sp.height + 1) * smax + 2  # any angle; as render._warp_box
+            if side * side > MAX_SCALED_SPRITE_PIXELS:
+                files = getattr(source, "files", None)
+                where = "axes.scale" if not files else str(files[c][i])
+                raise SpecError(f"at the largest scale {smax:g} the {sp.width}x{sp.height} px sprite of class "
+                                f"{source.classes[c]} needs a {side:.4g} x {side:.4g} px patch, above the limit of "
+                                f"{MAX_SCALED_SPRITE_PIXELS:,} px (limits.MAX_SCALED_SPRITE_PIXELS)", where=where)
             rows, cols = np.nonzero(sp.rgba[..., 3] > 0)
             h, w = (rows.max() - rows.min() + 1) * smin, (cols.max() - cols.min() + 1) * smin
             if h > canvas.height or w > canvas.width:

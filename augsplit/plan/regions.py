@@ -217,7 +217,21 @@ def _band(space: Space, value: Any, where: str) -> Region:
         raise SpecError("at must be [f0, f1] with 0 <= f0 < f1 <= 1", where=f"{where}.at")
     i = space.index[name]
     lo, span = space.t_lo[i], space.t_span[i]
-    return Region.box(space, {name: [(lo + at[0] * span, lo + at[1] * span)]})
+    iv = _whole_levels(space[name], lo + at[0] * span, lo + at[1] * span)
+    if iv is None:
+        raise SpecError(f"the band holds none of the levels of axis '{name}' ({len(space[name].levels)} levels, "
+                        f"each 1/{len(space[name].levels)} of the normalised range)", where=f"{where}.at")
+    return Region.box(space, {name: [iv]})
+
+
+def _whole_levels(axis: Axis, lo_t: float, hi_t: float) -> tuple[float, float] | None:
+    """On a levels axis a box spans whole level cells (space/sample.py draws whole cells): the
+    levels whose index lies in [lo_t, hi_t), as one box, or None if no level does. Other
+    axes: the interval as it is."""
+    if axis.measure != LEVELS:
+        return (lo_t, hi_t)
+    k0, k1 = math.ceil(lo_t - 1e-9), math.ceil(hi_t - 1e-9) - 1
+    return (k0 - 0.5, k1 + 0.5) if k0 <= k1 else None
 
 
 def _cells(space: Space, value: Any, where: str) -> Region:
@@ -259,14 +273,22 @@ def _cells(space: Space, value: Any, where: str) -> Region:
         raise SpecError("pick is a list of cell indices, 'checkerboard', 'checkerboard_odd' or 'all'", where=f"{where}.pick")
     # the cells of one grid are disjoint boxes already: build them at once (a union per cell
     # would cost time quadratic in their number)
-    k = np.asarray(chosen, dtype=float).reshape(len(chosen), len(names))
     lo = np.repeat(space.t_lo[None, :], len(chosen), axis=0)
     hi = np.repeat(space.t_hi[None, :], len(chosen), axis=0)
-    for j, (n, s) in enumerate(zip(names, shape)):
-        i = space.index[n]
-        lo[:, i] = space.t_lo[i] + space.t_span[i] * k[:, j] / s
-        hi[:, i] = space.t_lo[i] + space.t_span[i] * (k[:, j] + 1) / s
-    return Region(space, lo, hi)
+    keep = np.ones(len(chosen), dtype=bool)
+    for r, cell in enumerate(chosen):
+        for n, k, s in zip(names, cell, shape):
+            i = space.index[n]
+            iv = _whole_levels(space[n], space.t_lo[i] + space.t_span[i] * k / s,
+                               space.t_lo[i] + space.t_span[i] * (k + 1) / s)
+            if iv is None:  # a bin between two levels holds nothing to draw
+                if isinstance(pick, list):
+                    raise SpecError(f"cell {list(cell)} holds none of the levels of axis '{n}'",
+                                    where=f"{where}.pick.{r}")
+                keep[r] = False
+                break
+            lo[r, i], hi[r, i] = iv
+    return Region(space, lo[keep], hi[keep])
 
 
 def _by_class(space, classes, value, where, split_region) -> Region:
