@@ -18,7 +18,7 @@ from .sources import backgrounds as bg
 from .sources.folder import SpriteFolder
 from .sources.glyphs import Glyphs
 from .sources.polyomino import Polyominoes
-from .spec import Spec, load_spec, parse_spec
+from .spec import Spec, parse_spec, read_spec_file
 
 
 @dataclass(frozen=True)
@@ -83,8 +83,11 @@ def build(spec: Spec, base_dir: Path, strict: bool = True, for_data: bool = Fals
 
 
 def open_spec(path: str | Path, for_data: bool = False) -> Built:
-    spec, base_dir = load_spec(path)
-    return build(spec, base_dir, for_data=for_data)
+    """Load, validate and plan a spec file; a SpecError names the file and line of its key path.
+    `for_data`: the spec only splits existing data (it may leave out `objects:`)."""
+    f = read_spec_file(path)
+    with f.located():
+        return build(parse_spec(f.data, source=str(f.path)), f.path.resolve().parent, for_data=for_data)
 
 
 def open_mapping(data: dict, base_dir: str | Path = ".", strict: bool = True) -> Built:

@@ -7,7 +7,9 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 
 from . import __version__
@@ -60,7 +62,7 @@ def _shard(text: str):
 
 
 def _cmd_generate(a) -> int:
-    from .generate import Options, finalize, generate
+    from .generate import Options, check_options, finalize, generate
     from .io import check_folder_target
 
     check_folder_target(a.out)
@@ -73,7 +75,8 @@ def _cmd_generate(a) -> int:
 
         opts = Options(store=a.store, format=a.format, quality=a.quality, shard_size=a.shard_size, workers=a.workers,
                        resume=a.resume, overwrite=a.overwrite, progress=not a.quiet, array_shard=a.shard,
-                       executor=a.executor, scheduler=a.scheduler)
+                       executor=a.executor, scheduler=a.scheduler, force_workers=a.force_workers)
+        check_options(opts)  # a bad option is named before the spec is read
         built = open_spec(a.spec)
         _warn("generate", built.plan, a.strict)  # before anything is written
         summary = generate(a.spec, a.out, opts, built=built)
@@ -209,8 +212,20 @@ def _annotated(path) -> bool:
     return Path(path).exists() and not is_dataset(path) and detect_format(path) in ("coco", "yolo", "voc")
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a usage error is one line naming the option (not the usage block), exit 2.
+    Subcommand parsers are made of the same class (argparse's add_subparsers default)."""
+
+    def error(self, message: str):
+        self.exit(2, f"{self.prog}: error: {_one_line(message)} (see '{self.prog} --help')\n")
+
+
+def _one_line(text: str) -> str:
+    return str(text).replace("\r", "\\r").replace("\n", "\\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="augsplit", description="Datasets with held-out regions of transform space.")
+    p = _Parser(prog="augsplit", description="Datasets with held-out regions of transform space.")
     p.add_argument("--version", action="version", version=f"augsplit {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
 
@@ -248,8 +263,11 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--store", choices=["files", "parquet", "none"], default="files",
                    help="image files, encoded images inside the Parquet rows, or none (the manifest re-makes them)")
     q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
-    q.add_argument("--quality", type=int, default=95, help="JPEG/WebP quality")
-    q.add_argument("--workers", type=int, default=1, help="worker processes (local, or of a new dask LocalCluster)")
+    q.add_argument("--quality", type=int, default=95, help="JPEG quality 0-100, WebP 1-100 (PNG: unused, 0-100)")
+    q.add_argument("--workers", type=int, default=1,
+                   help="worker processes (local, or of a new dask LocalCluster); at most one per shard and per CPU core")
+    q.add_argument("--force-workers", action="store_true",
+                   help="start --workers processes even beyond the shards or cores (at most 256)")
     q.add_argument("--executor", choices=["auto", "serial", "processes", "dask"], default="auto",
                    help="where shards run: auto = serial for 1 worker, local processes otherwise")
     q.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -315,6 +333,40 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+@contextmanager
+def _quiet_native_stderr():
+    """Native libraries write their own warnings straight to file descriptor 2 (OpenCV's
+    "[ WARN]"/"[ERROR]" log, libpng's "libpng error: ...", libjpeg's "Corrupt JPEG data"),
+    after which augsplit reports the problem in one line anyway. For the command's duration
+    descriptor 2 points at the null device; Python's sys.stderr, if it is that descriptor,
+    is moved to a copy of it, so augsplit's own messages and progress bars still show.
+    Both are restored when the command returns (a library call never changes either)."""
+    try:
+        sys.stderr.flush()
+        real = os.dup(2)
+    except (OSError, ValueError, AttributeError):  # no descriptor 2 to protect
+        yield
+        return
+    try:
+        swap = sys.stderr.fileno() == 2
+    except (OSError, ValueError, AttributeError):  # e.g. a notebook's or a test's stream object
+        swap = False
+    old = sys.stderr
+    if swap:
+        sys.stderr = open(os.dup(real), "w", buffering=1, encoding=old.encoding, errors="backslashreplace")
+    null = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(null, 2)
+    os.close(null)
+    try:
+        yield
+    finally:
+        if swap:
+            sys.stderr.close()
+            sys.stderr = old
+        os.dup2(real, 2)
+        os.close(real)
+
+
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -323,9 +375,10 @@ def main(argv=None) -> int:
 
         args.spec = str(builtin_spec_path("demo"))
     try:
-        return int(args.run(args) or 0)
+        with _quiet_native_stderr():
+            return int(args.run(args) or 0)
     except AugsplitError as err:
-        print(f"augsplit {args.command}: error: {err}", file=sys.stderr)
+        print(f"augsplit {args.command}: error: {_one_line(err)}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
         print(f"augsplit {args.command}: interrupted; rerun with --resume to continue", file=sys.stderr)

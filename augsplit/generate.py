@@ -10,9 +10,10 @@ from __future__ import annotations
 
 import functools
 import json
+import os
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import ExitStack, closing, contextmanager, suppress
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from threading import BoundedSemaphore
 
@@ -30,11 +31,15 @@ from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
 from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text_atomic
+from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import canonical, parse_spec
 
 STORES = ("files", "parquet", "none")
+# OpenCV's ranges (imgcodecs: IMWRITE_JPEG_QUALITY 0-100, IMWRITE_WEBP_QUALITY 1-100 lossy);
+# PNG ignores the value, which must still be a quality a reader would recognise
+QUALITY = {"png": (0, 100), "jpeg": (0, 100), "webp": (1, 100)}
 EXECUTORS = executors.EXECUTORS
 
 # A row group holds at most this many rows, and (with --store parquet) about this many bytes
@@ -59,6 +64,7 @@ class Options:
     array_shard: tuple[int, int] | None = None  # (k, n): make only job-array shard k of n
     executor: str = "auto"  # auto (serial for 1 worker, else processes), serial, processes, dask
     scheduler: str | None = None  # dask scheduler address; None with executor dask: a LocalCluster
+    force_workers: bool = False  # take `workers` as given (up to MAX_WORKERS), not min(workers, shards, cores)
 
 
 @dataclass(frozen=True)
@@ -306,7 +312,7 @@ def shard_done(out: Path, job: ShardJob) -> bool:
 # ---- the whole run -------------------------------------------------------------------------
 
 
-def _check_options(opts: Options) -> None:
+def check_options(opts: Options) -> None:
     if opts.store not in STORES:
         raise DatasetError(f"unknown store '{opts.store}'; use one of {', '.join(STORES)}")
     if opts.format not in FORMATS:
@@ -317,6 +323,12 @@ def _check_options(opts: Options) -> None:
         raise DatasetError(f"shard size must be at least 1, got {opts.shard_size}", where="--shard-size")
     if opts.workers < 1:
         raise DatasetError(f"workers must be at least 1, got {opts.workers}", where="--workers")
+    if opts.force_workers and opts.workers > MAX_WORKERS:
+        raise DatasetError(f"{opts.workers} workers are above the limit of {MAX_WORKERS} even when forced "
+                           "(limits.MAX_WORKERS)", where="--workers")
+    lo, hi = QUALITY[opts.format]
+    if not lo <= opts.quality <= hi:
+        raise DatasetError(f"quality must lie in {lo}..{hi} for {opts.format}, got {opts.quality}", where="--quality")
     if opts.array_shard is not None:
         k, n = opts.array_shard
         if n < 1 or not 0 <= k < n:
@@ -324,10 +336,30 @@ def _check_options(opts: Options) -> None:
                                where="--shard")
 
 
+def usable_workers(opts: Options, n_shards: int) -> int:
+    """Worker processes worth starting: more than the shards or the CPU cores only slow a run
+    down and cost memory, unless `force_workers` (for a remote scheduler the count is unused)."""
+    if opts.force_workers:
+        return opts.workers
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    return max(1, min(opts.workers, n_shards, cores))
+
+
+def _check_shards(built: Built, opts: Options) -> Options:
+    """The run's options with `workers` capped; refuses more shards per split than part names hold."""
+    most = max(-(-s.total // opts.shard_size) for s in built.plan.splits)
+    if most > MAX_SHARDS_PER_SPLIT:
+        raise DatasetError(f"a split of {most:,} shards is above the limit of {MAX_SHARDS_PER_SPLIT:,} "
+                           "(limits.MAX_SHARDS_PER_SPLIT); use a larger --shard-size", where="--shard-size")
+    n_shards = sum(-(-s.total // opts.shard_size) for s in built.plan.splits)
+    return replace(opts, workers=usable_workers(opts, n_shards))
+
+
 def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Options(), built: Built | None = None) -> dict:
     """Make (or resume, or finish one job-array shard of) the dataset; returns the summary."""
-    _check_options(opts)
+    check_options(opts)
     built = built or open_spec(spec_path)
+    opts = _check_shards(built, opts)
     out = Path(out)
     dask = opts.executor == "dask" or bool(opts.scheduler)
     # connect first: an unreachable scheduler must fail before the output folder is touched

@@ -12,19 +12,25 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+import math
+from contextlib import contextmanager
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from . import limits as L
 from .errors import SpecError
+from .names import check_distinct_casefold, check_name, shown
 from .space.axes import BUILTIN
 
 PosInt = Annotated[int, Field(gt=0, strict=True)]
+ImageCount = Annotated[int, Field(gt=0, le=L.MAX_SPLIT_IMAGES, strict=True)]
 NonNegInt = Annotated[int, Field(ge=0, strict=True)]
 PosFloat = Annotated[float, Field(gt=0)]
-Colour = Union[float, tuple[int, int, int]]
+Colour = Union[Annotated[float, Field(ge=0, le=1)], tuple[int, int, int]]  # a grey level in [0, 1] or RGB
 
 
 def _hint(word: str, choices) -> str | None:
@@ -50,10 +56,20 @@ class Model(BaseModel):
         return data
 
 
+CanvasSide = Annotated[int, Field(gt=0, le=L.MAX_CANVAS_SIDE, strict=True)]
+
+
 class CanvasSpec(Model):
-    width: PosInt
-    height: PosInt
+    width: CanvasSide
+    height: CanvasSide
     mode: Literal["rgb", "gray"] = "rgb"
+
+    @model_validator(mode="after")
+    def _pixels(self):
+        if self.width * self.height > L.MAX_CANVAS_PIXELS:
+            raise SpecError(f"{self.width} x {self.height} = {self.width * self.height:,} px is above the limit of "
+                            f"{L.MAX_CANVAS_PIXELS:,} px per image (limits.MAX_CANVAS_PIXELS)", where="canvas")
+        return self
 
 
 class ViewingSpec(Model):
@@ -87,6 +103,11 @@ class FolderSpec(Model):
     key_colour: tuple[int, int, int] | None = None
     mask_suffix: str = "_mask"
     unseen_instances: NonNegInt = 0
+
+    @field_validator("mask_suffix")
+    @classmethod
+    def _suffix(cls, v):  # part of file names (and of a glob pattern): the name rule keeps it literal
+        return check_name(v, "objects.mask_suffix")
 
 
 ObjectsSpec = Annotated[Union[PolyominoSpec, GlyphSpec, FolderSpec], Field(discriminator="kind")]
@@ -135,9 +156,21 @@ class AxisSpec(Model):
 
 
 class DistractorSpec(Model):
-    count: tuple[NonNegInt, NonNegInt] = (0, 0)
+    count: tuple[Annotated[int, Field(ge=0, le=L.MAX_DISTRACTORS, strict=True)],
+                 Annotated[int, Field(ge=0, le=L.MAX_DISTRACTORS, strict=True)]] = (0, 0)
     no_overlap: bool = True
-    attempts: PosInt = 50
+    attempts: Annotated[int, Field(gt=0, le=L.MAX_PLACEMENT_ATTEMPTS, strict=True)] = 50
+
+    @model_validator(mode="after")
+    def _ordered(self):
+        if self.count[0] > self.count[1]:
+            raise SpecError(f"[{self.count[0]}, {self.count[1]}] is not [min, max] (min is above max)",
+                            where="render.distractors.count")
+        if self.count[1] * self.attempts > L.MAX_PLACEMENT_TRIES:
+            raise SpecError(f"up to {self.count[1]} distractors x {self.attempts} attempts = "
+                            f"{self.count[1] * self.attempts:,} placements tried per image, above the limit of "
+                            f"{L.MAX_PLACEMENT_TRIES:,} (limits.MAX_PLACEMENT_TRIES)", where="render.distractors")
+        return self
 
 
 class RenderSpec(Model):
@@ -148,8 +181,8 @@ class RenderSpec(Model):
 
 class SplitSpec(Model):
     region: Any = None
-    per_class: PosInt | None = None
-    count: PosInt | None = None
+    per_class: ImageCount | None = None
+    count: ImageCount | None = None
     instances: Literal["seen", "unseen", "all"] | None = None
     classes: list[str] | None = None
     role: Literal["train", "test"] | None = None
@@ -172,7 +205,7 @@ class GuaranteeSpec(Model):
 
 
 class Spec(Model):
-    seed: NonNegInt
+    seed: Annotated[int, Field(ge=0, le=L.MAX_SEED, strict=True)]
     canvas: CanvasSpec
     viewing: ViewingSpec | None = None
     objects: ObjectsSpec | None = None  # required to generate; a spec that only splits existing data has none
@@ -193,6 +226,15 @@ class Spec(Model):
                     hint = _hint(name, choices)
                     raise ValueError(f"unknown axis '{name}'" + (f" ({hint})" if hint else "")
                                      + f"; axes are {', '.join(choices)}")
+        return v
+
+    @field_validator("splits", mode="before")
+    @classmethod
+    def _split_names(cls, v):  # a split name becomes folder and file names
+        if isinstance(v, dict):
+            for name in v:
+                check_name(name, f"splits.{shown(name)}")
+            check_distinct_casefold(v, "splits")
         return v
 
     @model_validator(mode="after")
@@ -220,7 +262,12 @@ def _loc(loc) -> str:
 
 
 _UNION_TAGS = {"polyomino", "glyphs", "folder", "solid", "uniform_noise", "gaussian_noise", "pink_noise",
-               "function-after[_one_count(), SplitSpec]", "tagged-union[PolyominoSpec,GlyphSpec,FolderSpec]"}
+               "function-after[_one_count(), SplitSpec]", "tagged-union[PolyominoSpec,GlyphSpec,FolderSpec]",
+               "constrained-float", "tuple[int, int, int]"}
+
+# a schema bound that is one of augsplit's limits is named in the message
+_LIMIT_NAMES = {v: k for k, v in vars(L).items() if k.startswith("MAX_") and isinstance(v, int)
+                and sum(1 for x in vars(L).values() if x == v) == 1}
 
 
 def _first_error(err: ValidationError) -> SpecError:
@@ -231,46 +278,200 @@ def _first_error(err: ValidationError) -> SpecError:
         msg = "required key is missing"
     elif e["type"] == "extra_forbidden":
         msg = "unknown key"
+    elif e["type"] == "less_than_equal" and e.get("ctx", {}).get("le") in _LIMIT_NAMES:
+        msg += f" (limits.{_LIMIT_NAMES[e['ctx']['le']]})"
     # a message that names its own key path (cross checks) becomes the location
     if ": " in msg and msg.split(": ", 1)[0].replace(".", "").replace("_", "").isalnum() and "." in msg.split(": ", 1)[0]:
         where, msg = msg.split(": ", 1)
     return SpecError(msg, where=where or "spec")
 
 
+def check_numbers(data: Any, where: str = "") -> None:
+    """Every number in a parsed spec is finite and every integer fits int64 (YAML allows .nan,
+    .inf and integers of any size; generate's numpy and Arrow columns do not)."""
+    stack = [(data, where)]
+    while stack:
+        v, w = stack.pop()
+        if isinstance(v, dict):
+            stack.extend((x, f"{w}.{shown(k)}" if w else shown(k)) for k, x in v.items())
+        elif isinstance(v, (list, tuple)):
+            stack.extend((x, f"{w}.{i}") for i, x in enumerate(v))
+        elif isinstance(v, float) and not math.isfinite(v):
+            raise SpecError(f"{v} is not a finite number", where=w or "spec")
+        elif isinstance(v, int) and not isinstance(v, bool) and not L.INT64_RANGE[0] <= v <= L.INT64_RANGE[1]:
+            raise SpecError(f"the integer {v} does not fit in 64 bits", where=w or "spec")
+
+
 def parse_spec(data: Any, source: str = "spec") -> Spec:
     """Validate an already-parsed YAML/JSON value."""
     if not isinstance(data, dict):
         raise SpecError(f"the spec must be a mapping of keys to values, not {type(data).__name__}", where=source)
+    check_numbers(data)
     try:
         return Spec.model_validate(data)
     except ValidationError as err:
         raise _first_error(err) from None
 
 
-def read_yaml(path: str | Path) -> Any:
-    """Safe YAML load (no object construction) with one-line errors naming file:line:column."""
+# ---- YAML: safe, bounded, no silent duplicates, every key's line remembered ---------------------
+
+_MERGE = "tag:yaml.org,2002:merge"
+
+
+def _children(node) -> list:
+    if isinstance(node, yaml.MappingNode):
+        return [n for pair in node.value for n in pair]
+    if isinstance(node, yaml.SequenceNode):
+        return list(node.value)
+    return []
+
+
+def _expanded_size(root, file: str) -> int:
+    """Nodes of the document with every alias expanded where it is used, counted without
+    expanding (each node once, children's counts summed); capped just above the limit."""
+    cap = L.MAX_YAML_NODES + 1
+    size: dict[int, int] = {}
+    path: set[int] = set()  # nodes whose subtree is being counted: meeting one again is a cycle
+    stack = [(root, False)]
+    while stack:
+        node, done = stack.pop()
+        if done:
+            path.discard(id(node))
+            size[id(node)] = min(cap, 1 + sum(size[id(c)] for c in _children(node)))
+        elif id(node) not in size:
+            path.add(id(node))
+            stack.append((node, True))
+            for c in _children(node):
+                if id(c) in path:
+                    raise SpecError("an alias refers to a node that contains it (a recursive structure)",
+                                    where=f"{file}:{c.start_mark.line + 1}")
+                stack.append((c, False))
+    return size[id(root)]
+
+
+def _key_lines(root, file: str) -> dict[str, int]:
+    """Dotted key path -> line of its key (1-based); refuses a key given twice in one mapping.
+    Merge keys (<<) contribute the merged mapping's keys, which explicit keys override."""
+    lines: dict[str, int] = {}
+    stack = [(root, "")]
+    while stack:
+        node, path = stack.pop()
+        if isinstance(node, yaml.SequenceNode):
+            for i, c in enumerate(node.value):
+                lines.setdefault(f"{path}.{i}" if path else str(i), c.start_mark.line + 1)
+                stack.append((c, f"{path}.{i}" if path else str(i)))
+        elif isinstance(node, yaml.MappingNode):
+            first: dict[tuple[str, Any], int] = {}
+            merged = []
+            for k, v in node.value:
+                if k.tag == _MERGE:
+                    merged += v.value if isinstance(v, yaml.SequenceNode) else [v]
+                    continue
+                ident = (k.tag, k.value if isinstance(k, yaml.ScalarNode) else id(k))
+                line = k.start_mark.line + 1
+                key = shown(k.value) if isinstance(k, yaml.ScalarNode) else "?"
+                p = f"{path}.{key}" if path else key
+                if ident in first:
+                    raise SpecError(f"duplicate key '{key}' (first given at line {first[ident]}); a second key "
+                                    "would silently replace the first", where=f"{file}:{line}: {p}")
+                first[ident] = line
+                lines[p] = line
+                stack.append((v, p))
+            for m in merged:  # lower precedence: only keys not given explicitly
+                if isinstance(m, yaml.MappingNode):
+                    for k, v in m.value:
+                        if isinstance(k, yaml.ScalarNode) and k.tag != _MERGE and (k.tag, k.value) not in first:
+                            p = f"{path}.{shown(k.value)}" if path else shown(k.value)
+                            lines.setdefault(p, k.start_mark.line + 1)
+                            stack.append((v, p))
+    return lines
+
+
+@dataclass(frozen=True)
+class SpecFile:
+    """A parsed YAML file and the line of every key path in it, to point errors at lines."""
+
+    path: Path
+    data: Any
+    lines: dict[str, int] = field(default_factory=dict, repr=False)
+
+    def locate(self, where: str | None) -> str:
+        """`file:line: key.path` for a key path of this file (its longest prefix that has a line)."""
+        if where in (None, "spec", str(self.path)):
+            return str(self.path)
+        if ": " in where:
+            return where  # located already
+        probe = where.replace("[", ".").replace("]", "")
+        top = probe.split(".", 1)[0]
+        if top not in Spec.model_fields:
+            return where  # not a key path (a file, a row...)
+        cuts = [i for i, ch in enumerate(probe) if ch == "."] + [len(probe)]
+        for i in reversed(cuts):
+            if probe[:i] in self.lines:
+                return f"{self.path}:{self.lines[probe[:i]]}: {where}"
+        return f"{self.path}: {where}"
+
+    @contextmanager
+    def located(self):
+        """Re-raise a SpecError with the file and line of the key path it names."""
+        try:
+            yield
+        except SpecError as err:
+            err.where = self.locate(err.where)
+            err.args = (str(err),)
+            raise
+
+
+def _yaml_problem(exc: yaml.YAMLError, p: Path) -> SpecError:
+    mark = getattr(exc, "problem_mark", None)
+    where = f"{p}:{mark.line + 1}:{mark.column + 1}" if mark else str(p)
+    problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+    if "\t" in problem or "'\\t'" in problem:
+        problem = "a tab character; indent YAML with spaces"
+    return SpecError(f"not valid YAML: {problem}", where=where)
+
+
+def read_spec_file(path: str | Path) -> SpecFile:
+    """Safe YAML load (no object construction) with one-line errors naming file:line:column;
+    refuses files above MAX_SPEC_BYTES, alias expansion above MAX_YAML_NODES and duplicate keys."""
     p = Path(path)
-    if not p.is_file():
+    if not p.is_file():  # also refuses FIFOs and devices, which could block or never end
         raise SpecError("no such file" if not p.exists() else "not a file", where=str(p))
     try:
+        if p.stat().st_size > L.MAX_SPEC_BYTES:
+            raise SpecError(f"the file is {p.stat().st_size:,} bytes; a spec may have at most "
+                            f"{L.MAX_SPEC_BYTES:,} (limits.MAX_SPEC_BYTES)", where=str(p))
         text = p.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise SpecError(f"cannot read: {exc}", where=str(p)) from None
+    loader = yaml.SafeLoader(text)
     try:
-        return yaml.safe_load(text)
+        node = loader.get_single_node()
+        if node is None:
+            return SpecFile(p, None)
+        n = _expanded_size(node, str(p))
+        if n > L.MAX_YAML_NODES:
+            raise SpecError(f"the YAML expands to more than {L.MAX_YAML_NODES:,} nodes once its aliases (*name) "
+                            "are expanded (limits.MAX_YAML_NODES)", where=str(p))
+        lines = _key_lines(node, str(p))
+        return SpecFile(p, loader.construct_document(node), lines)
     except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"{p}:{mark.line + 1}:{mark.column + 1}" if mark else str(p)
-        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
-        if "\t" in problem or "'\\t'" in problem:
-            problem = "a tab character; indent YAML with spaces"
-        raise SpecError(f"not valid YAML: {problem}", where=where) from None
+        raise _yaml_problem(exc, p) from None
+    finally:
+        loader.dispose()
+
+
+def read_yaml(path: str | Path) -> Any:
+    """The parsed YAML of a file (see read_spec_file for what is refused)."""
+    return read_spec_file(path).data
 
 
 def load_spec(path: str | Path) -> tuple[Spec, Path]:
     """Spec and the folder relative paths in it are resolved against."""
-    p = Path(path)
-    return parse_spec(read_yaml(p), source=str(p)), p.resolve().parent
+    f = read_spec_file(path)
+    with f.located():
+        spec = parse_spec(f.data, source=str(f.path))
+    return spec, f.path.resolve().parent
 
 
 def canonical(spec: Spec) -> str:

@@ -24,7 +24,9 @@ from augsplit.generate import Options, generate
 from augsplit.dataset import read_manifest
 
 KINDS = ("missing", "file", "symlink", "fifo", "device", "folder", "dash")
-SPLITS = {"train": {"region": {"x": [0, 20]}, "per_class": 3}, "test": {"region": {"x": [44, 64]}, "per_class": 2}}
+SPLITS = {"train": {"region": {"x": [8, 20]}, "per_class": 3}, "test": {"region": {"x": [44, 56]}, "per_class": 2}}
+# objects stay inside the canvas, so the spec gives no plan warning: a refusal is the only line
+AXES = {"x": {"range": [8, 56]}, "y": {"range": [8, 56]}}
 OLD = b"the user's own bytes\n"
 
 
@@ -41,11 +43,11 @@ def _no_hang():
 def world(tmp_path_factory):
     """A spec, a table, a dataset and its predictions."""
     d = tmp_path_factory.mktemp("world")
-    spec = write_spec(d, spec_dict(splits=SPLITS))
-    pd.DataFrame({"split": ["train", "test", "train", "test"], "x": [1.0, 50, 3, 60],
-                  "y": [2.0, 3, 4, 5]}).to_csv(d / "t.csv", index=False)
+    spec = write_spec(d, spec_dict(splits=SPLITS, axes=AXES))
+    pd.DataFrame({"split": ["train", "test", "train", "test"], "x": [9.0, 50, 11, 55],
+                  "y": [9.0, 10, 11, 12]}).to_csv(d / "t.csv", index=False)
     data = d / "data"
-    generate(None, data, Options(progress=False, store="none"), built=open_mapping(spec_dict(splits=SPLITS)))
+    generate(None, data, Options(progress=False, store="none"), built=open_mapping(spec_dict(splits=SPLITS, axes=AXES)))
     m = read_manifest(data)
     pd.DataFrame({"image_id": m["image_id"], "predicted": m["class_name"]}).to_csv(d / "pred.csv", index=False)
     return {"spec": spec, "table": d / "t.csv", "data": data, "pred": d / "pred.csv"}

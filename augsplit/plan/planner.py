@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from ..errors import GuaranteeError, SourceError, SpecError
+from ..limits import MAX_IMAGES, MAX_SCALED_SPRITE_PIXELS, MAX_SPLIT_IMAGES
 from ..space.axes import Space
 from ..space.region import Region
 from ..spec import Spec, spec_hash
@@ -229,6 +230,9 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
         instances = s.instances or ("seen" if any(unseen) else "all")
         splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
+    if sum(s.total for s in splits) > MAX_IMAGES:
+        raise SpecError(f"{sum(s.total for s in splits):,} images in all are above the limit of {MAX_IMAGES:,} "
+                        "(limits.MAX_IMAGES)", where="splits")
     plan = Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
                 tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
     from .warnings import plan_warnings
@@ -266,11 +270,20 @@ def _instances(spec: Spec, source, classes):
 
 
 def _check_fits(source, seen, unseen, space, canvas) -> None:
-    """Refuse a sprite whose opaque part is larger than the canvas even at the smallest scale."""
+    """Refuse a sprite whose opaque part is larger than the canvas even at the smallest scale,
+    or whose warp box (the renderer's allocation) at the largest scale is above the limit."""
     smin = float(space["scale"].from_t(space.t_lo[space.index["scale"]])) if "scale" in space else 1.0
+    smax = float(space["scale"].from_t(space.t_hi[space.index["scale"]])) if "scale" in space else 1.0
     for c in range(len(seen)):
         for i in seen[c] + unseen[c]:
             sp = source.sprite(c, i)
+            side = math.hypot(sp.width + 1, sp.height + 1) * smax + 2  # any angle; as render._warp_box
+            if side * side > MAX_SCALED_SPRITE_PIXELS:
+                files = getattr(source, "files", None)
+                where = "axes.scale" if not files else str(files[c][i])
+                raise SpecError(f"at the largest scale {smax:g} the {sp.width}x{sp.height} px sprite of class "
+                                f"{source.classes[c]} needs a {side:.4g} x {side:.4g} px patch, above the limit of "
+                                f"{MAX_SCALED_SPRITE_PIXELS:,} px (limits.MAX_SCALED_SPRITE_PIXELS)", where=where)
             rows, cols = np.nonzero(sp.rgba[..., 3] > 0)
             h, w = (rows.max() - rows.min() + 1) * smin, (cols.max() - cols.min() + 1) * smin
             if h > canvas.height or w > canvas.width:
@@ -434,6 +447,9 @@ def _counts(s, region: Region, space: Space, classes, name: str) -> tuple[int, .
         q, r = divmod(s.count, len(present))
         for k, c in enumerate(present):
             counts[c] = q + (1 if k < r else 0)
+    if sum(counts) > MAX_SPLIT_IMAGES:
+        raise SpecError(f"{sum(counts):,} images ({s.per_class} per class x {len(present)} classes) are above the "
+                        f"limit of {MAX_SPLIT_IMAGES:,} per split (limits.MAX_SPLIT_IMAGES)", where=f"splits.{name}")
     return tuple(counts)
 
 

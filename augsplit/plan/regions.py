@@ -20,6 +20,7 @@ from typing import Any, Callable
 import numpy as np
 
 from ..errors import SpecError
+from ..limits import MAX_GRID_CELLS, MAX_REGION_BOXES
 from ..space.axes import BUILTIN, CIRCULAR, LEVELS, LINEAR, LOG, Axis, Space
 from ..space.region import Region
 from ..spec import Spec, _hint
@@ -124,7 +125,7 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
         if key == "minus":
             continue
         if key in space.names and key != CLASS:
-            out = out & Region.box(space, {key: _intervals(space[key], value, sub)})
+            out = _bounded(out & Region.box(space, {key: _intervals(space[key], value, sub)}), sub)
         elif key == CLASS:
             out = out & _classes_region(space, classes, value, sub)
         elif key in ("any_of", "all_of"):
@@ -133,18 +134,18 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
             parts = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
             acc = parts[0]
             for p in parts[1:]:
-                acc = (acc | p) if key == "any_of" else (acc & p)
-            out = out & acc
+                acc = _bounded((acc | p) if key == "any_of" else (acc & p), sub)
+            out = _bounded(out & acc, sub)
         elif key == "band":
             out = out & _band(space, value, sub)
         elif key == "cells":
-            out = out & _cells(space, value, sub)
+            out = _bounded(out & _cells(space, value, sub), sub)
         elif key == "by_class":
-            out = out & _by_class(space, classes, value, sub, split_region)
+            out = _bounded(out & _by_class(space, classes, value, sub, split_region), sub)
         elif key == "split":
             if split_region is None:
                 raise SpecError("'split' cannot be used here", where=sub)
-            out = out & split_region(str(value), sub)
+            out = _bounded(out & split_region(str(value), sub), sub)
         else:
             known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
             if key in BUILTIN:
@@ -153,8 +154,17 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
             hint = _hint(key, known)
             raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
     if "minus" in node:
-        out = out - build_region(node["minus"], space, classes, f"{where}.minus", split_region)
+        out = _bounded(out - build_region(node["minus"], space, classes, f"{where}.minus", split_region), f"{where}.minus")
     return out
+
+
+def _bounded(region: Region, where: str) -> Region:
+    """Refuse a region of more boxes than MAX_REGION_BOXES: set operations cost the product of
+    the operands' box counts, so this keeps every later step of the planner bounded too."""
+    if region.nbox > MAX_REGION_BOXES:
+        raise SpecError(f"the region has {region.nbox:,} boxes, above the limit of {MAX_REGION_BOXES:,} "
+                        f"(limits.MAX_REGION_BOXES)", where=where, hint="use fewer cells or intervals")
+    return region
 
 
 def _intervals(axis: Axis, value: Any, where: str) -> list[tuple[float, float]]:
@@ -208,7 +218,21 @@ def _band(space: Space, value: Any, where: str) -> Region:
         raise SpecError("at must be [f0, f1] with 0 <= f0 < f1 <= 1", where=f"{where}.at")
     i = space.index[name]
     lo, span = space.t_lo[i], space.t_span[i]
-    return Region.box(space, {name: [(lo + at[0] * span, lo + at[1] * span)]})
+    iv = _whole_levels(space[name], lo + at[0] * span, lo + at[1] * span)
+    if iv is None:
+        raise SpecError(f"the band holds none of the levels of axis '{name}' ({len(space[name].levels)} levels, "
+                        f"each 1/{len(space[name].levels)} of the normalised range)", where=f"{where}.at")
+    return Region.box(space, {name: [iv]})
+
+
+def _whole_levels(axis: Axis, lo_t: float, hi_t: float) -> tuple[float, float] | None:
+    """On a levels axis a box spans whole level cells (space/sample.py draws whole cells): the
+    levels whose index lies in [lo_t, hi_t), as one box, or None if no level does. Other
+    axes: the interval as it is."""
+    if axis.measure != LEVELS:
+        return (lo_t, hi_t)
+    k0, k1 = math.ceil(lo_t - 1e-9), math.ceil(hi_t - 1e-9) - 1
+    return (k0 - 0.5, k1 + 0.5) if k0 <= k1 else None
 
 
 def _cells(space: Space, value: Any, where: str) -> Region:
@@ -227,6 +251,10 @@ def _cells(space: Space, value: Any, where: str) -> Region:
         if not (isinstance(grid[n], int) and not isinstance(grid[n], bool) and grid[n] >= 1):
             raise SpecError("the number of bins must be a positive integer", where=f"{where}.grid.{n}")
     shape = [grid[n] for n in names]
+    n_cells = math.prod(shape)
+    if n_cells > MAX_GRID_CELLS:
+        raise SpecError(f"a grid of {' x '.join(map(str, shape))} = {n_cells:,} cells is above the limit of "
+                        f"{MAX_GRID_CELLS:,} (limits.MAX_GRID_CELLS)", where=f"{where}.grid")
     pick = value.get("pick", "all")
     all_cells = [tuple(int(v) for v in c) for c in np.ndindex(*shape)]
     if pick == "all":
@@ -241,17 +269,27 @@ def _cells(space: Space, value: Any, where: str) -> Region:
             if not (isinstance(c, list) and len(c) == len(shape) and all(isinstance(v, int) and 0 <= v < s for v, s in zip(c, shape))):
                 raise SpecError(f"cell {c} is not an index into a grid of {shape}", where=f"{where}.pick.{k}")
             chosen.append(tuple(c))
+        chosen = list(dict.fromkeys(chosen))  # a cell picked twice is one box
     else:
         raise SpecError("pick is a list of cell indices, 'checkerboard', 'checkerboard_odd' or 'all'", where=f"{where}.pick")
-    out = Region.empty(space)
-    for c in chosen:
-        ivs = {}
-        for n, k, s in zip(names, c, shape):
+    # the cells of one grid are disjoint boxes already: build them at once (a union per cell
+    # would cost time quadratic in their number)
+    lo = np.repeat(space.t_lo[None, :], len(chosen), axis=0)
+    hi = np.repeat(space.t_hi[None, :], len(chosen), axis=0)
+    keep = np.ones(len(chosen), dtype=bool)
+    for r, cell in enumerate(chosen):
+        for n, k, s in zip(names, cell, shape):
             i = space.index[n]
-            lo, span = space.t_lo[i], space.t_span[i]
-            ivs[n] = [(lo + span * k / s, lo + span * (k + 1) / s)]
-        out = out | Region.box(space, ivs)
-    return out
+            iv = _whole_levels(space[n], space.t_lo[i] + space.t_span[i] * k / s,
+                               space.t_lo[i] + space.t_span[i] * (k + 1) / s)
+            if iv is None:  # a bin between two levels holds nothing to draw
+                if isinstance(pick, list):
+                    raise SpecError(f"cell {list(cell)} holds none of the levels of axis '{n}'",
+                                    where=f"{where}.pick.{r}")
+                keep[r] = False
+                break
+            lo[r, i], hi[r, i] = iv
+    return Region(space, lo[keep], hi[keep])
 
 
 def _by_class(space, classes, value, where, split_region) -> Region:

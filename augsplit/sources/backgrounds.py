@@ -14,7 +14,7 @@ import cv2
 import numpy as np
 
 from ..errors import SourceError, SpecError
-from .base import LUMA_BT601
+from .base import LUMA_BT601, PixelBudget
 from .folder import is_hidden, read_image, to_rgb
 
 
@@ -164,7 +164,8 @@ class ImageFolder:
         if not files:
             raise SourceError("background folder has no images", where=str(root))
         self.path, self.files = root, tuple(files)
-        self._images = tuple(to_rgb(read_image(p)) for p in files)  # read_image names any bad file
+        budget = PixelBudget("MAX_BACKGROUND_PIXELS", "MAX_BACKGROUNDS_PIXELS")
+        self._images = tuple(to_rgb(read_image(p, budget)) for p in files)  # read_image names any bad file
         self._grey: dict[int, np.ndarray] = {}
 
     def _image(self, i: int, channels: int) -> np.ndarray:

@@ -13,7 +13,8 @@ from typing import Iterator, Protocol, runtime_checkable
 import cv2
 import numpy as np
 
-from ..errors import SourceError
+from .. import limits as L
+from ..errors import AugsplitError, SourceError
 
 # The alpha level (fraction of 255) above which a pixel belongs to the object: used for the
 # anchor, the extents and, by default, the renderer's footprint.
@@ -190,6 +191,27 @@ class SpriteTable:
         if not 0 <= class_index < len(self.classes):
             raise IndexError(f"class index {class_index} out of range for {len(self.classes)} classes")
         return class_index
+
+
+class PixelBudget:
+    """Sizes of the images a source will hold, refused before each is allocated: one image may
+    have at most `per_image` pixels, all of them together `total` (names of limits.* constants)."""
+
+    def __init__(self, per_image: str, total: str, error: type[AugsplitError] = SourceError):
+        self.per_image, self.total, self.error = per_image, total, error
+        self.used = 0
+
+    def take(self, width: int, height: int, where: str) -> None:
+        n = int(width) * int(height)
+        limit = getattr(L, self.per_image)
+        if n > limit:
+            raise self.error(f"{width}x{height} = {n:,} px is above the limit of {limit:,} px per image "
+                             f"(limits.{self.per_image})", where=where)
+        total = getattr(L, self.total)
+        if self.used + n > total:
+            raise self.error(f"with this image the source holds {self.used + n:,} px, above the limit of "
+                             f"{total:,} px for all its images together (limits.{self.total})", where=where)
+        self.used += n
 
 
 def parse_colour(value, where: str) -> tuple[int, int, int]:

@@ -11,7 +11,10 @@ import cv2
 import numpy as np
 
 from ..errors import SourceError, SpecError
-from .base import ALPHA_THRESHOLD, Sprite, SpriteTable, parse_colour
+from ..limits import MAX_CLASSES, MAX_IMAGE_FILE_BYTES
+from ..names import check_name
+from .base import ALPHA_THRESHOLD, PixelBudget, Sprite, SpriteTable, parse_colour
+from .header import image_size
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".webp", ".tif", ".tiff")
 
@@ -20,23 +23,40 @@ def is_hidden(path: Path) -> bool:
     return path.name.startswith(".")
 
 
-def read_image(path: Path) -> np.ndarray:
+def read_image(path: Path, budget: PixelBudget | None = None) -> np.ndarray:
     """Decode an image file to uint8 (h, w, C) with C = 1, 3 (RGB) or 4 (RGBA); SourceError if it
-    cannot be used. Reads bytes first so non-ASCII paths work and decode errors stay quiet."""
+    cannot be used. The file must be a regular file of at most MAX_IMAGE_FILE_BYTES, and the
+    size its header announces must fit `budget` (default: one sprite) before it is decoded.
+    Reads bytes first so non-ASCII paths work and decode errors stay quiet."""
     where = str(path)
+    budget = budget or PixelBudget("MAX_SPRITE_PIXELS", "MAX_SPRITE_PIXELS")
     if path.suffix.lower() not in IMAGE_SUFFIXES:
         raise SourceError(f"not an image file (expected one of {', '.join(IMAGE_SUFFIXES)})", where=where)
     try:
-        data = np.fromfile(path, dtype=np.uint8)
+        if not path.is_file():  # a FIFO or device could block or never end
+            raise SourceError("not a regular file", where=where)
+        size = path.stat().st_size
+        if size > MAX_IMAGE_FILE_BYTES:
+            raise SourceError(f"the file is {size:,} bytes, above the limit of {MAX_IMAGE_FILE_BYTES:,} "
+                              "(limits.MAX_IMAGE_FILE_BYTES)", where=where)
+        data = np.fromfile(path, dtype=np.uint8, count=MAX_IMAGE_FILE_BYTES + 1)
     except OSError as err:
         raise SourceError(f"cannot read file: {err.strerror or err}", where=where) from None
     if data.size == 0:
         raise SourceError("file is empty (0 bytes)", where=where)
+    dims = image_size(memoryview(data))
+    if dims is None:
+        raise SourceError("not a readable image (no PNG, JPEG, BMP, WebP or TIFF header, or a broken one)",
+                          where=where)
+    budget.take(*dims, where=where)
     img = cv2.imdecode(data, cv2.IMREAD_UNCHANGED)
     if img is None:
         raise SourceError("not a readable image (corrupt or not really a " + path.suffix.lower() + ")", where=where)
     if img.size == 0:
         raise SourceError(f"image has zero size ({img.shape})", where=where)
+    if img.shape[1] * img.shape[0] > dims[0] * dims[1]:  # never: the header is what was decoded
+        raise SourceError(f"decoded {img.shape[1]}x{img.shape[0]} px, but the header says {dims[0]}x{dims[1]}",
+                          where=where)
     if img.dtype == np.uint16:  # 16-bit PNG/TIFF: keep the high byte, the usual 8-bit reduction
         img = (img >> 8).astype(np.uint8)
     elif img.dtype != np.uint8:
@@ -79,15 +99,22 @@ class SpriteFolder(SpriteTable):
             raise SourceError("expected only one subfolder per class here, found a file", where=str(stray[0]))
         if not entries:
             raise SourceError("sprite folder is empty: expected one subfolder per class", where=str(root))
+        if len(entries) > MAX_CLASSES:
+            raise SourceError(f"{len(entries):,} class folders, above the limit of {MAX_CLASSES:,} "
+                              "(limits.MAX_CLASSES)", where=str(root))
+        for d in entries:  # class and instance names are folder and file names: one rule for them all
+            check_name(d.name, str(d), SourceError)
         self.classes = tuple(p.name for p in entries)
         self.files: tuple[tuple[Path, ...], ...] = tuple(self._instance_files(d) for d in entries)
+        budget = PixelBudget("MAX_SPRITE_PIXELS", "MAX_SOURCE_PIXELS")
         self._sprites = tuple(
-            tuple(self._load(f, ci, inst) for inst, f in enumerate(files))
+            tuple(self._load(f, ci, inst, budget) for inst, f in enumerate(files))
             for ci, files in enumerate(self.files))
 
     def _instance_files(self, folder: Path) -> tuple[Path, ...]:
         files = sorted(p for p in folder.iterdir() if not is_hidden(p))
         for p in files:
+            check_name(p.name, str(p), SourceError)
             if p.is_dir():
                 raise SourceError("class folders hold image files, not subfolders", where=str(p))
             if p.suffix.lower() not in IMAGE_SUFFIXES:
@@ -108,13 +135,13 @@ class SpriteFolder(SpriteTable):
                 return p
         return None
 
-    def _load(self, file: Path, ci: int, inst: int) -> Sprite:
-        img = read_image(file)
+    def _load(self, file: Path, ci: int, inst: int, budget: PixelBudget) -> Sprite:
+        img = read_image(file, budget)
         rgba = np.empty(img.shape[:2] + (4,), dtype=np.uint8)
         rgba[..., :3] = to_rgb(img)
         mask_file = self._mask_file(file)
         if mask_file is not None:
-            mask = read_image(mask_file)
+            mask = read_image(mask_file)  # one sprite's worth; must match the image's size
             if mask.shape[:2] != img.shape[:2]:
                 raise SourceError(f"mask is {mask.shape[1]}x{mask.shape[0]} but its image is "
                                   f"{img.shape[1]}x{img.shape[0]}", where=str(mask_file))

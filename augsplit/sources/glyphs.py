@@ -14,7 +14,8 @@ import cv2
 import numpy as np
 
 from ..errors import SpecError
-from .base import Sprite, SpriteTable, parse_colour
+from ..limits import MAX_CLASSES, MAX_SPRITE_SIDE
+from .base import PixelBudget, Sprite, SpriteTable, parse_colour
 
 FONTS = {
     "simplex": cv2.FONT_HERSHEY_SIMPLEX,
@@ -40,22 +41,26 @@ def font_code(name: str) -> int:
 DEFAULT_FONTS = ("simplex", "duplex", "script_simplex", "script_complex")  # distinct in OpenCV 4 and 5
 
 
-def _ink(text: str, font: int, scale: float, thickness: int) -> np.ndarray:
+def _ink(text: str, font: int, scale: float, thickness: int, budget: PixelBudget | None = None,
+         where: str = "objects.texts") -> np.ndarray:
     (w, h), baseline = cv2.getTextSize(text, font, scale, thickness)
     pad = thickness + 4 + h // 2  # italics and script fonts overhang the reported box
+    if budget is not None:  # refuse before allocating
+        budget.take(w + 2 * pad, h + baseline + 2 * pad, where)
     ink = np.zeros((h + baseline + 2 * pad, w + 2 * pad), dtype=np.uint8)
     cv2.putText(ink, text, (pad, pad + h), font, scale, 255, thickness, cv2.LINE_AA)
     x, y, bw, bh = cv2.boundingRect(ink)
     return ink[y:y + bh, x:x + bw]
 
 
-def draw_text(text: str, font: int, height_px: int, thickness: int) -> np.ndarray:
+def draw_text(text: str, font: int, height_px: int, thickness: int, budget: PixelBudget | None = None,
+              where: str = "objects.texts") -> np.ndarray:
     """Antialiased coverage (uint8, 0-255) of `text`, cropped to its ink, scaled so that a
     capital 'H' in this font is about height_px tall (measured, as font metrics differ
-    between OpenCV versions)."""
+    between OpenCV versions). With a budget, the patch's size is refused before it is drawn."""
     probe = 4.0
     scale = probe * height_px / _ink("H", font, probe, thickness).shape[0]
-    return _ink(text, font, scale, thickness)
+    return _ink(text, font, scale, thickness, budget, where)
 
 
 class Glyphs(SpriteTable):
@@ -83,17 +88,25 @@ class Glyphs(SpriteTable):
         codes = [font_code(f) for f in fonts]
         if not isinstance(height_px, (int, np.integer)) or height_px < 4:
             raise SpecError(f"height_px must be an integer >= 4, got {height_px!r}", where="objects.height_px")
-        if not isinstance(thickness, (int, np.integer)) or thickness < 1:
-            raise SpecError(f"thickness must be a positive integer, got {thickness!r}", where="objects.thickness")
+        if height_px > MAX_SPRITE_SIDE:
+            raise SpecError(f"height_px {height_px} is above the limit of {MAX_SPRITE_SIDE} (limits.MAX_SPRITE_SIDE)",
+                            where="objects.height_px")
+        if not isinstance(thickness, (int, np.integer)) or not 1 <= thickness <= height_px:
+            raise SpecError(f"thickness must be a positive integer no larger than height_px ({height_px}), "
+                            f"got {thickness!r}", where="objects.thickness")
         self.texts, self.fonts = texts, fonts
         self.height_px, self.thickness = int(height_px), int(thickness)
         self.colour = parse_colour(colour, "objects.colour")
         self.classes = texts
+        if len(texts) > MAX_CLASSES:
+            raise SpecError(f"{len(texts):,} texts, above the limit of {MAX_CLASSES:,} classes (limits.MAX_CLASSES)",
+                            where="objects.texts")
+        budget = PixelBudget("MAX_SPRITE_PIXELS", "MAX_SOURCE_PIXELS", SpecError)
         rows = []
         for ci, text in enumerate(texts):
             row = []
             for inst, (fname, code) in enumerate(zip(fonts, codes)):
-                ink = draw_text(text, code, self.height_px, self.thickness)
+                ink = draw_text(text, code, self.height_px, self.thickness, budget, f"objects.texts[{ci}]")
                 rgba = np.empty(ink.shape + (4,), dtype=np.uint8)
                 rgba[..., :3] = self.colour
                 rgba[..., 3] = ink

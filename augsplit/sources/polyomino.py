@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import SpecError
-from .base import Sprite, SpriteTable, parse_colour
+from .base import PixelBudget, Sprite, SpriteTable, parse_colour
 
 Cells = tuple[tuple[int, int], ...]  # sorted (row, col) pairs, min row and min col are 0
 
@@ -77,6 +77,11 @@ class Polyominoes(SpriteTable):
         self.one_sided = bool(one_sided)
         self.colour = parse_colour(colour, "objects.colour")
         self.shapes = enumerate_polyominoes(self.cells, self.one_sided)
+        budget = PixelBudget("MAX_SPRITE_PIXELS", "MAX_SOURCE_PIXELS", SpecError)
+        pitch = self.cell_px + self.gap_px
+        for shape in self.shapes:  # every patch's size, before any is drawn
+            rows, cols = (max(v[k] for v in shape) + 1 for k in (0, 1))
+            budget.take(cols * pitch - self.gap_px, rows * pitch - self.gap_px, "objects.cell_px")
         digits = max(2, len(str(len(self.shapes) - 1)))
         self.classes = tuple(f"P{self.cells}-{i:0{digits}d}" for i in range(len(self.shapes)))
         self._sprites = tuple(
