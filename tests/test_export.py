@@ -275,3 +275,29 @@ def test_export_needs_a_finished_dataset(tmp_path, capsys):
     assert run_export(tmp_path / "missing", tmp_path / "o", "coco") == 2
     assert "no such dataset folder" in capsys.readouterr().err
     assert not os.path.exists(tmp_path / "o")
+
+
+def test_an_interrupted_export_is_finished_by_a_rerun(datasets_by_store, tmp_path, monkeypatch):
+    from augsplit.formats import export as ex
+
+    ds = datasets_by_store["files"]
+    fresh, out = tmp_path / "fresh", tmp_path / "out"
+    assert run_export(ds, fresh, "yolo") == 0
+    real, calls = ex.Rows._encoded, []
+
+    def dies_on_the_fifth(self, row):
+        calls.append(row["image_id"])
+        if len(calls) == 5:
+            raise KeyboardInterrupt
+        return real(self, row)
+
+    monkeypatch.setattr(ex.Rows, "_encoded", dies_on_the_fifth)
+    monkeypatch.setattr("augsplit.formats.exporters.BATCH_FILES", 2)  # files land before the interruption
+    with pytest.raises(KeyboardInterrupt):
+        ex.export(ds, out, "yolo")
+    monkeypatch.setattr(ex.Rows, "_encoded", real)
+    assert json.loads((out / ex.MARKER).read_text())["complete"] is False
+    assert any(out.rglob("*.png"))  # the first files are there
+    assert run_export(ds, out, "yolo") == 0
+    mine, want = snapshot(out), snapshot(fresh)
+    assert {k: v for k, v in mine.items() if k != ex.MARKER} == {k: v for k, v in want.items() if k != ex.MARKER}

@@ -4,20 +4,24 @@ YOLO (detection or segmentation), tar shards of (image, JSON) pairs, or a Huggin
 rows in spec order, each row's encoded image (stored bytes as they are, or re-rendered and
 PNG-encoded) and its objects with their footprints, and the output folder's guard.
 
-The output folder is new, empty, or an earlier export of ours: `augsplit-export.json` lists
-every file an export wrote, so a rerun replaces (or removes) only those files and refuses a
-folder holding anything else. Nothing outside the output folder is written.
+The output folder is new, empty, or an earlier export of ours: `augsplit-export.json` is
+written first (marking an export in progress: the files of its format's layout are ours) and
+last (listing every file the export wrote), so a rerun, also after an interrupted run,
+replaces or removes only our files and refuses a folder holding anything else. Nothing
+outside the output folder is written.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from ..dataset.layout import is_temporary
 from ..errors import DatasetError
 from ..io import check_folder_target, ensure_folder, write_text_atomic
 
@@ -133,47 +137,79 @@ class Rows:
 # ---- the output folder ----------------------------------------------------------------------
 
 
-def _listed(out: Path) -> set[str]:
-    """The files an earlier export wrote into `out` (relative paths), from its marker."""
+def layout_re(to: str, splits) -> re.Pattern:
+    """The relative paths an export of format `to` writes for these splits (see `exporters`)."""
+    s = "(?:" + "|".join(re.escape(x) for x in splits) + ")" if splits else "(?!)"
+    img = rf"{s}-\d{{7,}}\.(?:png|jpg|webp)"
+    paths = {"coco": [rf"{s}\.json", rf"{s}/{img}"],
+             "yolo": [r"data\.yaml", rf"images/{s}/{img}", rf"labels/{s}/{s}-\d{{7,}}\.txt"],
+             "tar": [rf"{s}-\d{{6,}}\.tar"],
+             "hf": [r"README\.md", rf"data/{s}-\d{{5,}}-of-\d{{5,}}\.parquet"]}
+    paths["yolo-seg"] = paths["yolo"]
+    return re.compile("|".join(paths[to]))
+
+
+def _marker(out: Path) -> dict | None:
     marker = out / MARKER
     if not marker.is_file() or marker.is_symlink():
-        return set()
+        return None
     try:
-        files = json.loads(marker.read_text(encoding="utf-8"))["files"]
-        return {str(f) for f in files}
+        doc = json.loads(marker.read_text(encoding="utf-8"))
+        doc["files"] = [str(f) for f in doc["files"]]
+        return doc
     except (OSError, ValueError, KeyError, TypeError):
         raise DatasetError("unreadable list of the files an earlier export wrote", where=str(marker)) from None
 
 
+def _ours(out: Path, doc: dict | None) -> set[str]:
+    """The files an earlier export made in `out`: those its marker lists and, when it was
+    interrupted (`complete` false), every file of its format's layout and every temporary."""
+    if doc is None:
+        return set()
+    files = {f for f in doc["files"] if (out / f).is_file()}
+    if doc.get("complete") is False and doc.get("format") in FORMATS:
+        pattern = layout_re(doc["format"], [str(s) for s in doc.get("splits") or []])
+        for p in out.rglob("*"):
+            rel = p.relative_to(out).as_posix()
+            if p.is_file() and not p.is_symlink() and (pattern.fullmatch(rel) or is_temporary(p.name)):
+                files.add(rel)
+    return files
+
+
 def prepare(out: str | Path, dataset: str | Path) -> tuple[Path, set[str]]:
     """Check `out` may take an export (see the module docstring); return it and the files an
-    earlier export wrote there. Creates `out` (its parent must exist)."""
+    earlier export made there. Creates `out` (its parent must exist)."""
     out = check_folder_target(out)
     src = os.path.realpath(dataset)
     if Path(os.path.realpath(out)).is_relative_to(src):
         raise DatasetError("lies inside the dataset folder; give an export folder outside it", where=str(out))
     ours: set[str] = set()
     if out.is_dir():
-        ours = _listed(out)
+        doc = _marker(out)
+        ours = _ours(out, doc)
         strangers = []
         for dirpath, dirnames, filenames in os.walk(out):
             for name in dirnames + filenames:
                 p = Path(dirpath) / name
                 rel = p.relative_to(out).as_posix()
-                if p.is_symlink() or (not p.is_dir() and not p.is_file()):
+                if p.is_symlink() or not (p.is_dir() or p.is_file()) or (p.is_file() and rel != MARKER and rel not in ours):
                     strangers.append(rel)
-                elif p.is_file() and rel != MARKER and rel not in ours:
-                    strangers.append(rel)
-            if len(strangers) > 5:
+            if len(strangers) > 3:
                 break
         if strangers:
-            what = "is not empty and holds files no augsplit export wrote" if not ours else "holds files the earlier export did not write"
-            raise DatasetError(f"{what} (e.g. {', '.join(strangers[:3])}); give a new or empty --out", where=str(out))
+            what = "holds files no augsplit export wrote" if doc is None else "holds files the earlier export did not write"
+            raise DatasetError(f"{what} (e.g. {', '.join(sorted(strangers)[:3])}); give a new or empty --out", where=str(out))
     return ensure_folder(out), ours
 
 
+def start(out: Path, ours: set[str], meta: dict) -> None:
+    """Mark the folder as an export in progress before writing anything into it, so an
+    interrupted run's files are known as ours (see `_ours`)."""
+    write_text_atomic(out / MARKER, json.dumps({**meta, "complete": False, "files": sorted(ours)}, indent=1))
+
+
 def finish(out: Path, ours: set[str], written: list[str], meta: dict) -> None:
-    """Remove what an earlier export wrote and this one did not; write the marker last."""
+    """Remove what an earlier export made and this one did not; write the marker last."""
     keep = set(written)
     for rel in sorted(ours - keep):
         p = out / rel
@@ -183,7 +219,7 @@ def finish(out: Path, ours: set[str], written: list[str], meta: dict) -> None:
         d = out / rel
         if rel != "." and d.is_dir() and not d.is_symlink() and not any(d.iterdir()):
             d.rmdir()
-    write_text_atomic(out / MARKER, json.dumps({**meta, "files": sorted(keep)}, indent=1))
+    write_text_atomic(out / MARKER, json.dumps({**meta, "complete": True, "files": sorted(keep)}, indent=1))
 
 
 def export(dataset: str | Path, out: str | Path, to: str, *, per_shard: int = DEFAULT_PER_SHARD,
@@ -203,6 +239,9 @@ def export(dataset: str | Path, out: str | Path, to: str, *, per_shard: int = DE
     rows = Rows(folder, masks=to in ("coco", "yolo-seg"))
     writer = WRITERS[to](out, rows, int(per_shard))
     writer.check()
+    meta = {"format": to, "dataset": str(Path(dataset).resolve()), "spec_hash": folder.spec_hash,
+            "splits": list(folder.splits)}
+    start(out, ours, meta)
     counts: dict[str, dict] = {}
     with bar(total=rows.count(), unit="img", desc=f"export {to}", disable=not progress) as pbar:
         for split, items in rows.splits():
@@ -213,6 +252,5 @@ def export(dataset: str | Path, out: str | Path, to: str, *, per_shard: int = DE
                 pbar.update(1)
             counts[split] = {"images": n_img, "objects": n_obj}
     written = writer.finish(counts)
-    meta = {"format": to, "dataset": str(Path(dataset).resolve()), "spec_hash": folder.spec_hash, "splits": counts}
-    finish(out, ours, written, meta)
+    finish(out, ours, written, {**meta, "images": counts})
     return {"format": to, "out": str(out), "splits": counts, "files": len(written) + 1}

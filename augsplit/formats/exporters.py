@@ -26,7 +26,7 @@ import pyarrow.parquet as pq
 
 from .. import manifest as mf
 from ..errors import DatasetError
-from ..io import output_path, plain, write_files_atomic, write_text_atomic
+from ..io import ensure_folder, output_path, plain, write_files_atomic, write_text_atomic
 from . import rle
 
 BATCH_FILES = 256  # image files made durable together (one sync per batch)
@@ -44,7 +44,9 @@ class Writer:
         """Refuse, before anything is written, what this format cannot hold."""
 
     def folder(self, rel: str) -> None:
-        (self.out / rel).mkdir(parents=True, exist_ok=True)
+        d = self.out
+        for part in rel.split("/"):
+            d = ensure_folder(d / part)  # a real folder at every level, never through a link
 
     def file(self, rel: str, data: bytes) -> None:
         self._pending.append((rel, data))
