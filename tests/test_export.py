@@ -267,7 +267,7 @@ def test_hf_refuses_split_names_it_cannot_load(tmp_path, capsys):
     generate(spec, ds, Options(store="none", progress=False))
     assert run_export(ds, tmp_path / "hf", "hf") == 2
     assert "test-far" in capsys.readouterr().err
-    assert not any((tmp_path / "hf").rglob("*.parquet"))
+    assert not (tmp_path / "hf").exists()  # refused before the folder is made
     assert run_export(ds, tmp_path / "tar", "tar") == 0  # other formats take any safe split name
 
 
@@ -301,3 +301,27 @@ def test_an_interrupted_export_is_finished_by_a_rerun(datasets_by_store, tmp_pat
     assert run_export(ds, out, "yolo") == 0
     mine, want = snapshot(out), snapshot(fresh)
     assert {k: v for k, v in mine.items() if k != ex.MARKER} == {k: v for k, v in want.items() if k != ex.MARKER}
+
+
+def test_a_moved_dataset_exports_its_stored_images_without_the_sprite_folder(tmp_path, capsys):
+    import shutil
+
+    from augsplit.build import open_mapping
+
+    sprites = tmp_path / "sprites"
+    for name, colour in (("bolt", (255, 0, 0)), ("nut", (0, 255, 0))):
+        (sprites / name).mkdir(parents=True)
+        rgba = np.zeros((7, 7, 4), np.uint8)
+        rgba[1:6, 2:5] = (*colour, 255)
+        cv2.imwrite(str(sprites / name / "a.png"), cv2.cvtColor(rgba, cv2.COLOR_RGBA2BGRA))
+    spec = spec_dict(objects={"kind": "folder", "path": str(sprites)}, canvas={"width": 32, "height": 32, "mode": "rgb"},
+                     axes={"x": {"range": [4, 28]}, "y": {"range": [4, 28]}},
+                     splits={"train": {"region": {"x": [4, 12]}, "per_class": 2},
+                             "test": {"region": {"x": [20, 28]}, "per_class": 1}})
+    ds = tmp_path / "ds"
+    generate(None, ds, Options(progress=False), built=open_mapping(spec, base_dir=tmp_path))
+    shutil.rmtree(sprites)
+    assert run_export(ds, tmp_path / "yolo", "yolo") == 0  # boxes and stored images need no sprites
+    assert (tmp_path / "yolo" / "data.yaml").read_text().endswith('names:\n  0: "bolt"\n  1: "nut"\n')
+    assert run_export(ds, tmp_path / "coco", "coco") == 2  # masks are re-rendered: the sprites are named
+    assert "sprites" in capsys.readouterr().err and not (tmp_path / "coco").exists()

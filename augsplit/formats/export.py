@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from ..dataset.layout import is_temporary
-from ..errors import DatasetError
+from ..errors import AugsplitError, DatasetError
 from ..io import check_folder_target, ensure_folder, write_text_atomic
 
 MARKER = "augsplit-export.json"
@@ -83,7 +83,18 @@ class Rows:
         self.classes = self._classes()
 
     def _classes(self) -> tuple[str, ...]:
-        return tuple(self.folder.built.source.classes)
+        """The spec's classes in the object source's order. Without masks to re-render, a dataset
+        whose objects cannot be built (a moved sprite folder) names them from its manifest."""
+        try:
+            return tuple(self.folder.built.source.classes)
+        except AugsplitError:
+            if self.masks:
+                raise
+        from ..dataset import read_rows
+
+        pairs = read_rows(self.folder, columns=["class_index", "class_name"]).drop_duplicates()
+        names = dict(zip(pairs["class_index"].astype(int), pairs["class_name"].astype(str)))
+        return tuple(names.get(i, f"class_{i}") for i in range(max(names, default=-1) + 1))
 
     def count(self) -> int:
         return sum(p.rows for p in self.folder.parts_of())
@@ -235,10 +246,10 @@ def export(dataset: str | Path, out: str | Path, to: str, *, per_shard: int = DE
     if int(per_shard) < 1:
         raise DatasetError(f"images per shard must be at least 1, got {per_shard}", where="--per-shard")
     folder = open_dataset(dataset)
-    out, ours = prepare(out, dataset)
     rows = Rows(folder, masks=to in ("coco", "yolo-seg"))
+    WRITERS[to].check(rows)  # all refusals before the output folder is made
+    out, ours = prepare(out, dataset)
     writer = WRITERS[to](out, rows, int(per_shard))
-    writer.check()
     meta = {"format": to, "dataset": str(Path(dataset).resolve()), "spec_hash": folder.spec_hash,
             "splits": list(folder.splits)}
     start(out, ours, meta)

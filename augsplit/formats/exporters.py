@@ -40,7 +40,8 @@ class Writer:
         self.written: list[str] = []
         self._pending: list[tuple[str, bytes]] = []
 
-    def check(self) -> None:
+    @classmethod
+    def check(cls, rows) -> None:
         """Refuse, before anything is written, what this format cannot hold."""
 
     def folder(self, rel: str) -> None:
@@ -227,12 +228,16 @@ def hf_schema() -> pa.Schema:
 
 
 class HuggingFace(Writer):
-    def check(self):
-        for s in self.rows.folder.splits:
+    def __init__(self, *args):
+        super().__init__(*args)
+        self.schema = hf_schema()
+
+    @classmethod
+    def check(cls, rows):
+        for s in rows.folder.splits:
             if not HF_SPLIT.fullmatch(s):
                 raise DatasetError(f"split name {s!r} is not one Hugging Face datasets accepts (letters, digits, "
                                    "'_', dots between them); export another format", where="splits")
-        self.schema = hf_schema()
 
     def split(self, name, items):
         total = sum(p.rows for p in self.rows.folder.parts_of(splits=[name]))
