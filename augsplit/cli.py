@@ -212,6 +212,36 @@ def _annotated(path) -> bool:
     return Path(path).exists() and not is_dataset(path) and detect_format(path) in ("coco", "yolo", "voc")
 
 
+def _cmd_export(a) -> int:
+    from .formats.export import export
+
+    res = export(a.dataset, a.out, a.to, per_shard=a.per_shard, progress=not a.quiet and sys.stderr.isatty())
+    per = ", ".join(f"{k} {v['images']} images / {v['objects']} objects" for k, v in res["splits"].items())
+    print(f"{res['out']}: {a.to} export ({per}); {res['files']} files")
+    return 0
+
+
+class _ShowDefaults(argparse.HelpFormatter):
+    """Every option's help ends with its default, unless it has none (None or a flag's False)
+    or the help already names it."""
+
+    @staticmethod
+    def shown(action) -> bool:
+        return (action.default not in (None, False, argparse.SUPPRESS)
+                and bool(action.option_strings or action.nargs in ("?", "*")))
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        return text + " (default: %(default)s)" if self.shown(action) and "default" not in text else text
+
+    @classmethod
+    def apply(cls, parser: argparse.ArgumentParser) -> None:
+        parser.formatter_class = cls
+        for action in parser._actions:
+            if action.help is None and cls.shown(action):  # argparse shows no line for help=None
+                action.help = "(default: %(default)s)"
+
+
 class _Parser(argparse.ArgumentParser):
     """argparse, but a usage error is one line naming the option (not the usage block), exit 2.
     Subcommand parsers are made of the same class (argparse's add_subparsers default)."""
@@ -330,6 +360,18 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")
     q.add_argument("--quiet", action="store_true", help="no progress bars")
     q.set_defaults(run=_cmd_audit)
+
+    q = sub.add_parser("export", help="write a finished dataset as COCO JSON, YOLO, tar shards or a Hugging Face layout")
+    q.add_argument("dataset", help="an augsplit dataset folder (any --store)")
+    q.add_argument("--to", required=True, choices=["coco", "yolo", "yolo-seg", "tar", "hf"],
+                   help="coco: <split>.json with RLE masks; yolo / yolo-seg: images/, labels/, data.yaml; tar: "
+                        "shards of (image, JSON row) pairs; hf: data/<split>-*.parquet and a README.md dataset card")
+    q.add_argument("--out", required=True, help="export folder: new, empty or an earlier export (its parent must exist)")
+    q.add_argument("--per-shard", type=int, default=1000, help="images per tar shard or Parquet file")
+    q.add_argument("--quiet", action="store_true", help="no progress bar")
+    q.set_defaults(run=_cmd_export)
+    for q in sub.choices.values():  # one mechanism for every subcommand: defaults shown in --help
+        _ShowDefaults.apply(q)
     return p
 
 

@@ -472,6 +472,6 @@ def _progress(total: int, initial: int, enabled: bool):
 
     if not enabled or not sys.stderr.isatty():
         return _NoBar()
-    from tqdm import tqdm
+    from .progress import bar as tqdm
 
     return tqdm(total=total, initial=initial, unit="img", desc="generate")

@@ -147,7 +147,7 @@ class TableSource:
             for s in range(0, len(self.frame), batch_rows):
                 yield self.frame[cols].iloc[s : s + batch_rows].reset_index(drop=True)
             return
-        from tqdm import tqdm
+        from ..progress import bar as tqdm
 
         inverse = {dst: src for dst, src in self.mapping.items()}
         to_ours = {inverse.get(c, c): c for c in cols}

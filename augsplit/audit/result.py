@@ -90,6 +90,16 @@ class AuditResult:
     def failed(self) -> list[CheckResult]:
         return [c for c in self.checks if c.verdict == FAIL]
 
+    def __repr__(self) -> str:
+        from ..reprs import audit_repr
+
+        return audit_repr(self)
+
+    def _repr_html_(self) -> str:
+        from ..reprs import audit_html
+
+        return audit_html(self)
+
 
 def top_rows(frame: pd.DataFrame, by: str, k: int, ascending: bool) -> pd.DataFrame:
     """The k worst rows by one column, ties broken by row order so output is stable."""

@@ -348,7 +348,7 @@ class _Fingerprints:
         rows = np.flatnonzero(need)
         hashes = np.zeros(len(df), np.uint64)
         computed_sha = np.empty(len(df), dtype=object)
-        from tqdm import tqdm
+        from ..progress import bar as tqdm
 
         h, s = fingerprint_images(tqdm(self._images(rows), total=len(rows), unit="img", desc="hashing",
                                        disable=not self.progress))

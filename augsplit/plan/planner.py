@@ -87,7 +87,14 @@ class Plan:
         return tuple(sorted(self.instances[c] + self.unseen[c]))
 
     def __repr__(self) -> str:
-        return f"Plan(hash={self.hash}, splits={[s.name for s in self.splits]}, classes={len(self.classes)})"
+        from ..reprs import plan_repr
+
+        return plan_repr(self)
+
+    def _repr_html_(self) -> str:
+        from ..reprs import plan_html
+
+        return plan_html(self)
 
 
 def canvas_of(spec: Spec) -> Canvas:
