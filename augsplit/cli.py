@@ -403,7 +403,9 @@ def _quiet_native_stderr():
         yield
     finally:
         if swap:
-            sys.stderr.close()
+            # flushed, not closed: a logging handler made during the command (dask's) may
+            # still hold it and write at exit; it is a copy of the real stderr
+            sys.stderr.flush()
             sys.stderr = old
         os.dup2(real, 2)
         os.close(real)
