@@ -23,19 +23,18 @@ from .build import Built, open_mapping, open_spec
 from .epoch import SharedEpoch
 from .errors import DatasetError, SpecError
 from .plan.draw import draw_online
+from .plan.geometry import reach_of_cells
 from .plan.guarantees import largest_shared_radius
 from .plan.regions import CLASS
 from .render import RenderParams, recolour_hsv, similarity_matrix
 from .reprs import Shown, made_repr
+from .space.axes import COLOUR_AXES, GEOMETRY_AXES
 from .space.region import Region
+from .space.sample import PLUGIN, plugin_rng  # noqa: F401 (PLUGIN re-exported)
 from .spec import canonical
 
-GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
-COLOUR_AXES = ("hue", "saturation", "brightness")
 ANCHORS = ("centre", "mask", "bbox")
 BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
-# Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
-PLUGIN = 0x616C6275
 _MASS_TOL = 1e-12
 _NOT_PLACED = ("index", "instance", "instance_seen")  # draw_online columns about the spec's own objects
 BATCH = 64  # draws taken at once from a transform's generator
@@ -235,11 +234,8 @@ def move_bboxes(boxes: np.ndarray, matrix: np.ndarray) -> np.ndarray:
 def corner_radius(anchor: tuple[float, float], hw: tuple[int, int]) -> float:
     """Farthest distance from `anchor` to a corner of the content grown by half a pixel (the
     reach of bilinear sampling, as Sprite.support_radius), continuous coordinates."""
-    h, w = hw
-    ax, ay = anchor
-    dx = max(abs(-0.5 - ax), abs(w + 0.5 - ax))
-    dy = max(abs(-0.5 - ay), abs(h + 0.5 - ay))
-    return math.hypot(dx, dy)
+    h, w = hw  # the farthest point of a rectangle is one of its corner pixels' corners
+    return reach_of_cells((0, 0, h - 1, h - 1), (0, w - 1, 0, w - 1), anchor, grow=0.5)
 
 
 def content_box(matrix: np.ndarray, hw: tuple[int, int], canvas_hw: tuple[int, int]) -> tuple[int, int, int, int]:
@@ -324,8 +320,7 @@ class _RegionTransform:
         if self.item_key is not None and self.item_key in data:
             item = int(data[self.item_key])
             seed = self._built.spec.seed if self.seed is None else int(self.seed)
-            ss = np.random.SeedSequence(seed, spawn_key=(PLUGIN, self._draws.split.index, self.epoch, item))
-            return np.random.Generator(np.random.PCG64(ss)).random(self._draws.k), item
+            return plugin_rng(seed, self._draws.split.index, self.epoch, item).random(self._draws.k), item
         return None, item
 
     def set_random_seed(self, seed: int | None) -> None:

@@ -29,15 +29,12 @@ from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
-from .space.sample import PARAMS, RENDER, LazyStream
+from .space.sample import ONLINE, PARAMS, RENDER, LazyStream, online_rng  # noqa: F401 (ONLINE re-exported)
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 # Columns an item's `row` carries: every manifest column but the encoded image itself.
 ROW_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if c.name != "image_bytes")
-# Domain tag of the online sampler's streams: its spawn keys (ONLINE, split, epoch, index,
-# purpose) have a length no generated image's key (split, index, purpose) has.
-ONLINE = 0x6F6E6C6E
 
 
 class DatasetIndexError(DatasetError, IndexError):
@@ -318,12 +315,6 @@ def _open_built(spec) -> Built:
 
 _SAMPLER_EXTRA = ("image_id", "split", "epoch", "item", "seed", "split_index", *BBOX_COLUMNS, "footprint_px",
                   "visible_fraction", "n_distractors", "width", "height")
-
-
-def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
-    """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
-    ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
-    return np.random.Generator(np.random.PCG64(ss))
 
 
 class OnlineSampler:

@@ -15,10 +15,12 @@ import numpy as np
 
 from .plan import Plan, SplitPlan
 from .plan.draw import draw_online
+from .plan.geometry import reach
 from .render import Placed, RenderParams, footprint, masks_overlap, render
+from .space.axes import RENDER_PARAMS
 from .space.sample import RENDER, lazy_image_rng
 
-PARAM_KEYS = ("cx_px", "cy_px", "scale", "angle", "mirror", "hue", "saturation", "brightness")
+PARAM_KEYS = RENDER_PARAMS  # the pixel centre and every axis the renderer reads by name
 
 
 @dataclass(frozen=True, eq=False)
@@ -88,10 +90,4 @@ def pixel_sha256(image: np.ndarray) -> str:
 @lru_cache(maxsize=4096)
 def native_diameter(sprite, alpha_threshold: float) -> float:
     """Twice the largest distance from the anchor to a corner of a pixel above the threshold."""
-    rows, cols = np.nonzero(sprite.rgba[..., 3] > alpha_threshold * 255)
-    if rows.size == 0:
-        return 0.0
-    ax, ay = sprite.anchor
-    dx = np.maximum(np.abs(cols - ax), np.abs(cols + 1 - ax))
-    dy = np.maximum(np.abs(rows - ay), np.abs(rows + 1 - ay))
-    return float(2.0 * np.sqrt(dx * dx + dy * dy).max())
+    return 2.0 * reach(sprite.rgba[..., 3] > alpha_threshold * 255, sprite.anchor)

@@ -17,10 +17,9 @@ import pandas as pd
 
 from ..dataset import layout as lay
 from ..errors import DatasetError
+from ..space.axes import CLASS
 from .result import FAIL, PASS, AuditResult, CheckResult
 from .run import Thresholds, run_audit
-
-CLASS = "class"
 
 
 def _merge(results: list[AuditResult]) -> AuditResult:

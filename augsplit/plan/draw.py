@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..space.axes import CLASS, DRAW_DEFAULTS, POSITION_AXES
 from ..space.sample import image_uniforms, sample_t
 from .planner import Plan, SplitPlan
-from .regions import CLASS
 
-DEFAULTS = {"scale": 1.0, "angle": 0.0, "hue": 0.0, "saturation": 1.0, "brightness": 1.0, "mirror": 0.0}
-POSITION = ("x", "y", "eccentricity", "polar_angle")
+DEFAULTS = DRAW_DEFAULTS  # the catalogue's values for axes a spec does not vary
+POSITION = POSITION_AXES
 
 
 def class_of(split: SplitPlan, indices: np.ndarray) -> np.ndarray:

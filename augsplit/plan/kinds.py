@@ -9,10 +9,9 @@ values are unseen but lie between seen ones; any held-out arc of a circular axis
 
 from __future__ import annotations
 
-from ..space.axes import CIRCULAR, Space
+from ..space.axes import CIRCULAR, CLASS, Space
 from ..space.region import Region, _merge
 
-CLASS = "class"
 
 
 def projection(region: Region, i: int) -> list[tuple[float, float]]:
