@@ -53,8 +53,9 @@ class SplitPlan:
         return self._class_regions[c]
 
     def __repr__(self) -> str:
+        how = self.region.how if len(self.region.how) <= 120 else self.region.how[:117] + "..."
         return (f"SplitPlan({self.name!r}, role={self.role}, kind={self.kind}, images={self.total}, "
-                f"mass={self.region.mass():.4g}, boxes={self.region.nbox})")
+                + (f"region={how}, " if how else "") + f"mass={self.region.mass():.4g}, boxes={self.region.nbox})")
 
 
 @dataclass(frozen=True)
