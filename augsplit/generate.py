@@ -33,6 +33,7 @@ from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import canonical, parse_spec
+from .threads import limit_opencv
 
 STORES = ("files", "parquet", "none")
 EXECUTORS = executors.EXECUTORS
@@ -335,8 +336,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     # OpenCV's own thread pool gains nothing on per-object boxes this small but spins a second
     # core (measured: 2x the CPU per image, same wall time); pool workers forked from here
     # inherit the setting. Same pixels either way. Restored when the run ends.
-    cv_threads = cv2.getNumThreads()
-    cv2.setNumThreads(1)
+    restore_threads = limit_opencv(1)
     try:
         if opts.scheduler:
             _check_worker_versions(client, opts.scheduler)
@@ -350,7 +350,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         done_before = total - sum(j.stop - j.start for j in todo)
         _run(built, todo, out, opts, client, _progress(total, done_before, opts.progress))
     finally:
-        cv2.setNumThreads(cv_threads)
+        restore_threads()
         if client is not None:
             executors.close_dask(client, cluster)
     if opts.array_shard is not None:

@@ -970,19 +970,13 @@ def render_sections(results: list[tuple[str, ScoreResult]], level: int = 2) -> l
 def _img(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
     return f"<img alt='plot' src='data:image/png;base64,{base64.b64encode(buf.getvalue()).decode('ascii')}'>"
 
 
 def _plt():
-    import matplotlib
+    from augsplit import figures  # Figure objects on an Agg canvas: no pyplot, the backend left alone
 
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    return plt
+    return figures
 
 
 COLOURS = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:brown")
@@ -1034,6 +1028,8 @@ def _plot_distance(results):
 
 
 def _plot_values(results):
+    from matplotlib.ticker import NullLocator
+
     plt = _plt()
     axes_names = list(dict.fromkeys(a for _, r in results for a in r.by_value["axis"]))
     ncol = min(3, len(axes_names))
@@ -1057,7 +1053,7 @@ def _plot_values(results):
             lo, hi = ax.get_xlim()
             ticks = np.exp2(np.linspace(np.log2(lo), np.log2(hi), 5)[1:-1])
             ax.set_xticks(ticks, [f"{t:.3g}" for t in ticks])
-            ax.xaxis.set_minor_locator(_plt().NullLocator())
+            ax.xaxis.set_minor_locator(NullLocator())
         ax.set_xlabel(f"{name} ({rng_info.get('unit', '')})")
         ax.set_ylim(0, 1.05)
     for ax in axs.ravel()[len(axes_names):]:
