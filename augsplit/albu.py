@@ -31,7 +31,6 @@ from .reprs import Shown, made_repr
 from .space.axes import COLOUR_AXES, GEOMETRY_AXES
 from .space.region import Region
 from .space.sample import PLUGIN, plugin_rng  # noqa: F401 (PLUGIN re-exported)
-from .spec import canonical
 
 ANCHORS = ("centre", "mask", "bbox")
 BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
@@ -49,7 +48,7 @@ def _open(spec) -> tuple[Built, str | dict]:
     Built, or a spec already embedded, as the embedded spec ``{"spec": <canonical spec>,
     "base_dir": <absolute folder its relative paths resolve in>}``."""
     if isinstance(spec, Built):
-        return spec, {"spec": json.loads(canonical(spec.spec)), "base_dir": str(Path(spec.base_dir).resolve())}
+        return spec, {"spec": json.loads(spec.plan.settings.canonical), "base_dir": str(Path(spec.base_dir).resolve())}
     if isinstance(spec, Mapping) and set(spec) == {"spec", "base_dir"}:
         return _open(open_mapping(spec["spec"], spec["base_dir"]))
     if isinstance(spec, (str, os.PathLike)):
@@ -319,7 +318,7 @@ class _RegionTransform:
         item = None
         if self.item_key is not None and self.item_key in data:
             item = int(data[self.item_key])
-            seed = self._built.spec.seed if self.seed is None else int(self.seed)
+            seed = self._built.plan.seed if self.seed is None else int(self.seed)
             return plugin_rng(seed, self._draws.split.index, self.epoch, item).random(self._draws.k), item
         return None, item
 
@@ -437,7 +436,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         self.fill = fill
         self.fill_mask = fill_mask
         self.params_key = params_key
-        canvas = self._built.spec.canvas
+        canvas = self._built.plan.canvas
         self.canvas_hw = (canvas.height, canvas.width)
         s = self._draws.smallest_scale()
         if cw * s > canvas.width or ch * s > canvas.height:
@@ -458,9 +457,9 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         holds when the content, not the spec's objects, is placed on both sides — the planner's
         own disc bound solved for the radius (plan.guarantees.largest_shared_radius). Refuses
         content whose centred radius already breaks it."""
-        plan, spec = self._built.plan, self._built.spec
+        plan = self._built.plan
         r0 = corner_radius((cw / 2.0, ch / 2.0), (ch, cw))
-        for gi, g in enumerate(spec.guarantees):
+        for gi, g in enumerate(plan.settings.claims):
             if g.disjoint != "footprint" or self.split not in g.between:
                 continue
             a, b = (plan.split(name).region for name in g.between)

@@ -154,8 +154,8 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
 
 def coverage(built: Built, df, max_rows: int = MAX_COVERAGE_ROWS) -> Coverage:
     """Footprint counts per split, from the renderer's own footprints at each row's parameters."""
-    h, w = built.spec.canvas.height, built.spec.canvas.width
-    thr = built.spec.render.alpha_threshold
+    h, w = built.plan.canvas.height, built.plan.canvas.width
+    thr = built.plan.render.alpha_threshold
     counts, sampled, roles = {}, {}, {}
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
@@ -224,7 +224,7 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
         axes[1][0].legend(handles=[Patch(color=TRAIN_RGB, label="train"), Patch(color=TEST_RGB, label="test"),
                                    Patch(color="black", label="both")], loc="upper left",
                           bbox_to_anchor=(0.0, -0.02), ncol=3, fontsize=7, frameon=False)
-    c = built.spec.canvas
+    c = built.plan.canvas
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
                  "re-made from the manifest rows", fontsize=10)
     fig.tight_layout()
@@ -237,7 +237,7 @@ def footprint_guaranteed(built: Built, test_split: str) -> bool:
     """Whether the spec states `disjoint: footprint` between this split and a train split."""
     trains = {s.name for s in built.plan.splits if s.role == "train"}
     return any(g.disjoint == "footprint" and test_split in g.between and trains & set(g.between)
-               for g in built.spec.guarantees)
+               for g in built.plan.settings.claims)
 
 
 def _frame(ax, shape) -> None:

@@ -41,17 +41,16 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
 
     `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
     fresh draw never reuses the background of the generated image with the same index)."""
-    spec = plan.spec
-    h, w = spec.canvas.height, spec.canvas.width
-    channels = 1 if spec.canvas.mode == "gray" else 3
-    thr = spec.render.alpha_threshold
+    h, w = plan.canvas.height, plan.canvas.width
+    channels = plan.render.channels
+    thr = plan.render.alpha_threshold
     if rng is None:
-        rng = lazy_image_rng(spec.seed, split.index, int(row["index"]), RENDER)
+        rng = lazy_image_rng(plan.seed, split.index, int(row["index"]), RENDER)
     bg = background.draw(rng, h, w, channels)
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]
     extra: list[dict] = []
-    d = spec.render.distractors
+    d = plan.render.distractors
     if d.count[1] > 0:
         want = int(rng.integers(d.count[0], d.count[1] + 1))
         taken = [footprint(target[0], target[1], (h, w), thr)]

@@ -68,7 +68,7 @@ def draw(plan: Plan, split: SplitPlan | str, indices) -> dict[str, np.ndarray]:
         rows = np.flatnonzero(cls == c)
         ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
         inst[rows] = ids[(idx[rows] - starts[c]) % len(ids)]
-    u = image_uniforms(plan.spec.seed, split.index, idx, plan.space.ndim + 1)
+    u = image_uniforms(plan.seed, split.index, idx, plan.space.ndim + 1)
     if split.stratify:
         u = _stratified(split, idx, cls, starts, u)
     return _columns(plan, split, idx, cls, inst, u)

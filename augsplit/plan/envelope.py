@@ -57,7 +57,7 @@ import cv2
 import numpy as np
 from scipy.signal import fftconvolve
 
-from ..space.axes import CLASS, LEVELS, Space
+from ..space.axes import LEVELS, Space
 from ..space.region import Region
 from ..units import Canvas
 from .geometry import PositionSet, box_classes, position_sets

@@ -24,6 +24,7 @@ from .guarantees import (Verdict, check_parameters, dilate_parameters, dilate_po
                          tightest)
 from .kinds import holdout_kind
 from .regions import CLASS, build_region, build_space, t_interval_text
+from .settings import RenderSettings, Settings, settings_of
 
 
 @dataclass(frozen=True)
@@ -71,6 +72,15 @@ class Plan:
     verdicts: tuple[Verdict, ...]
     radii: np.ndarray = field(compare=False)  # native support radius (px) per class, over all instances
     guard: Region | None = field(default=None, compare=False)  # what auto_guard removed
+    settings: Settings | None = field(default=None, compare=False)  # the spec's settings as plain values
+
+    @property
+    def seed(self) -> int:
+        return self.settings.seed
+
+    @property
+    def render(self) -> RenderSettings:
+        return self.settings.render
 
     def split(self, name: str) -> SplitPlan:
         for s in self.splits:
@@ -226,7 +236,8 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
         splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
 
     return Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
-                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
+                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None,
+                settings_of(spec))
 
 
 # ---- pieces ----------------------------------------------------------------------------

@@ -17,8 +17,6 @@ from __future__ import annotations
 import math
 from typing import Any, Callable
 
-import numpy as np
-
 from ..errors import SpecError
 from ..space.axes import BUILTIN, CIRCULAR, CLASS, LEVELS, LINEAR, LOG, Axis, Space
 from ..space import builders as rb
