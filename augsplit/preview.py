@@ -21,6 +21,7 @@ from .errors import DatasetError
 from .io import ensure_folder, output_path
 from .render import add_footprint, footprint
 from .scene import render_params
+from .space.axes import ANGLE_AXES
 
 PREVIEW_DIR = lay.PREVIEW_DIR
 COVERAGE_FILE = "coverage.png"
@@ -32,7 +33,7 @@ TEST_CMAPS = ("Oranges", "Reds", "YlOrBr", "RdPu")
 TRAIN_RGB = np.array([0.12, 0.40, 0.85])
 TEST_RGB = np.array([0.95, 0.45, 0.05])
 
-_DEG_AXES = {"angle", "hue", "polar_angle"}
+_DEG_AXES = set(ANGLE_AXES)  # circular axes in degrees (the axis catalogue)
 
 
 @dataclass(frozen=True)
