@@ -80,12 +80,7 @@ DISTRACTOR_COLUMNS: tuple[Column, ...] = (
     _c("instance", pa.int32(), "", "instance within the class"),
     _c("cx_px", pa.float64(), "px", "centre column"),
     _c("cy_px", pa.float64(), "px", "centre row"),
-    _c("scale", pa.float64(), "x", "multiplier of native size"),
-    _c("angle", pa.float64(), "deg", "rotation"),
-    _c("hue", pa.float64(), "deg", "hue rotation"),
-    _c("saturation", pa.float64(), "x", "saturation multiplier"),
-    _c("brightness", pa.float64(), "x", "brightness multiplier"),
-    _c("mirror", pa.int8(), "", "mirrored"),
+    *(f for f in AXIS_FIELDS if BUILTIN[f.name].render_param),  # what the renderer took, by name
     _c("bbox_x0", pa.int32(), "px", "visible bounding box"),
     _c("bbox_y0", pa.int32(), "px", ""),
     _c("bbox_x1", pa.int32(), "px", ""),

@@ -53,6 +53,8 @@ def test_every_consumer_covers_the_axis(k):
     fields = {f.name: f.default for f in dataclasses.fields(RenderParams)}
     if k.render_param:
         assert k.render_param in scene.PARAM_KEYS and fields[k.render_param] == k.default
+        # ... and the distractor table records it, as the image table does
+        assert {c.name: c.type for c in manifest.DISTRACTOR_COLUMNS}[k.column] == col.type
     else:
         assert k.name in draw.POSITION and {"cx_px", "cy_px"} <= set(scene.PARAM_KEYS)
     # albu: exactly one of the geometry / colour lists
