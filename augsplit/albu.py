@@ -23,19 +23,17 @@ from .build import Built, open_mapping, open_spec
 from .epoch import SharedEpoch
 from .errors import DatasetError, SpecError
 from .plan.draw import draw_online
+from .plan.geometry import reach_of_cells
 from .plan.guarantees import largest_shared_radius
 from .plan.regions import CLASS
 from .render import RenderParams, recolour_hsv, similarity_matrix
 from .reprs import Shown, made_repr
+from .space.axes import COLOUR_AXES, GEOMETRY_AXES
 from .space.region import Region
-from .spec import canonical
+from .space.sample import PLUGIN, plugin_rng  # noqa: F401 (PLUGIN re-exported)
 
-GEOMETRY_AXES = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "mirror")
-COLOUR_AXES = ("hue", "saturation", "brightness")
 ANCHORS = ("centre", "mask", "bbox")
 BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
-# Domain tag of the per-item streams (item_key): spawn keys (PLUGIN, split, epoch, item).
-PLUGIN = 0x616C6275
 _MASS_TOL = 1e-12
 _NOT_PLACED = ("index", "instance", "instance_seen")  # draw_online columns about the spec's own objects
 BATCH = 64  # draws taken at once from a transform's generator
@@ -50,7 +48,7 @@ def _open(spec) -> tuple[Built, str | dict]:
     Built, or a spec already embedded, as the embedded spec ``{"spec": <canonical spec>,
     "base_dir": <absolute folder its relative paths resolve in>}``."""
     if isinstance(spec, Built):
-        return spec, {"spec": json.loads(canonical(spec.spec)), "base_dir": str(Path(spec.base_dir).resolve())}
+        return spec, {"spec": json.loads(spec.plan.settings.canonical), "base_dir": str(Path(spec.base_dir).resolve())}
     if isinstance(spec, Mapping) and set(spec) == {"spec", "base_dir"}:
         return _open(open_mapping(spec["spec"], spec["base_dir"]))
     if isinstance(spec, (str, os.PathLike)):
@@ -235,11 +233,8 @@ def move_bboxes(boxes: np.ndarray, matrix: np.ndarray) -> np.ndarray:
 def corner_radius(anchor: tuple[float, float], hw: tuple[int, int]) -> float:
     """Farthest distance from `anchor` to a corner of the content grown by half a pixel (the
     reach of bilinear sampling, as Sprite.support_radius), continuous coordinates."""
-    h, w = hw
-    ax, ay = anchor
-    dx = max(abs(-0.5 - ax), abs(w + 0.5 - ax))
-    dy = max(abs(-0.5 - ay), abs(h + 0.5 - ay))
-    return math.hypot(dx, dy)
+    h, w = hw  # the farthest point of a rectangle is one of its corner pixels' corners
+    return reach_of_cells((0, 0, h - 1, h - 1), (0, w - 1, 0, w - 1), anchor, grow=0.5)
 
 
 def content_box(matrix: np.ndarray, hw: tuple[int, int], canvas_hw: tuple[int, int]) -> tuple[int, int, int, int]:
@@ -323,9 +318,8 @@ class _RegionTransform:
         item = None
         if self.item_key is not None and self.item_key in data:
             item = int(data[self.item_key])
-            seed = self._built.spec.seed if self.seed is None else int(self.seed)
-            ss = np.random.SeedSequence(seed, spawn_key=(PLUGIN, self._draws.split.index, self.epoch, item))
-            return np.random.Generator(np.random.PCG64(ss)).random(self._draws.k), item
+            seed = self._built.plan.seed if self.seed is None else int(self.seed)
+            return plugin_rng(seed, self._draws.split.index, self.epoch, item).random(self._draws.k), item
         return None, item
 
     def set_random_seed(self, seed: int | None) -> None:
@@ -442,7 +436,7 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         self.fill = fill
         self.fill_mask = fill_mask
         self.params_key = params_key
-        canvas = self._built.spec.canvas
+        canvas = self._built.plan.canvas
         self.canvas_hw = (canvas.height, canvas.width)
         s = self._draws.smallest_scale()
         if cw * s > canvas.width or ch * s > canvas.height:
@@ -463,9 +457,9 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         holds when the content, not the spec's objects, is placed on both sides — the planner's
         own disc bound solved for the radius (plan.guarantees.largest_shared_radius). Refuses
         content whose centred radius already breaks it."""
-        plan, spec = self._built.plan, self._built.spec
+        plan = self._built.plan
         r0 = corner_radius((cw / 2.0, ch / 2.0), (ch, cw))
-        for gi, g in enumerate(spec.guarantees):
+        for gi, g in enumerate(plan.settings.claims):
             if g.disjoint != "footprint" or self.split not in g.between:
                 continue
             a, b = (plan.split(name).region for name in g.between)

@@ -29,15 +29,12 @@ from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
-from .space.sample import PARAMS, RENDER, LazyStream
+from .space.sample import ONLINE, PARAMS, RENDER, LazyStream, online_rng  # noqa: F401 (ONLINE re-exported)
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
 # Columns an item's `row` carries: every manifest column but the encoded image itself.
 ROW_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if c.name != "image_bytes")
-# Domain tag of the online sampler's streams: its spawn keys (ONLINE, split, epoch, index,
-# purpose) have a length no generated image's key (split, index, purpose) has.
-ONLINE = 0x6F6E6C6E
 
 
 class DatasetIndexError(DatasetError, IndexError):
@@ -145,7 +142,7 @@ class Dataset:
         # Only the spec's text is needed to open the dataset; its object source (which may
         # live in a folder the dataset has since moved away from) is built when an item needs it.
         self.folder = open_dataset(self.root)
-        spec, self.spec_hash, summary = self.folder.spec, self.folder.spec_hash, self.folder.summary
+        self.spec_hash, summary = self.folder.spec_hash, self.folder.summary
         have = [s for s in self.folder.splits if self.folder.parts_of(splits=[s])]
         if split not in have:
             close = difflib.get_close_matches(str(split), have, n=1)
@@ -164,11 +161,11 @@ class Dataset:
         self.check_pixels = bool(check_pixels)
         self.parquet_cache = max(1, int(parquet_cache))
         self.classes = tuple(summary.get("classes") or ())
-        names = set(spec.axes) | ({"polar_angle"} if "eccentricity" in spec.axes else set())
+        names = set(self.folder.axis_names) | ({"polar_angle"} if "eccentricity" in self.folder.axis_names else set())
         self.param_names = tuple(n for n in mf.AXIS_COLUMNS if n in names)
-        self.channels = 1 if spec.canvas.mode == "gray" else 3
-        self.hw = (spec.canvas.height, spec.canvas.width)
-        self.threshold = spec.render.alpha_threshold
+        self.channels = self.folder.channels
+        self.hw = self.folder.hw
+        self.threshold = self.folder.settings.render.alpha_threshold
 
         self.parts = self.folder.parts_of(splits=[split])
         frame = rows.read_rows(self.folder, splits=[split], columns=ROW_COLUMNS, positions=True)
@@ -320,12 +317,6 @@ _SAMPLER_EXTRA = ("image_id", "split", "epoch", "item", "seed", "split_index", *
                   "visible_fraction", "n_distractors", "width", "height")
 
 
-def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
-    """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
-    ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
-    return np.random.Generator(np.random.PCG64(ss))
-
-
 class OnlineSampler:
     """Unlimited fresh images of one split: item `index` of epoch `epoch` draws its class,
     instance and transform from the split's region with the stream
@@ -352,7 +343,7 @@ class OnlineSampler:
         self._built = built
         self._split = built.plan.split(split)  # SpecError listing the splits when unknown
         self.split = split
-        self.seed = built.spec.seed if seed is None else int(seed)
+        self.seed = built.plan.seed if seed is None else int(seed)
         if self.seed < 0:
             raise DatasetError(f"seed must be a non-negative integer, got {seed}", where="OnlineSampler")
         if length is not None and int(length) < 0:
@@ -368,7 +359,7 @@ class OnlineSampler:
         self.transform = transform
         self.log = log
         self.param_names = param_names(built)
-        self.hw = (built.spec.canvas.height, built.spec.canvas.width)
+        self.hw = (built.plan.canvas.height, built.plan.canvas.width)
         self._k = built.plan.space.ndim + 3
         self.names = _check_target(target, tuple(self.draw(0)) + _SAMPLER_EXTRA, "target")
         self.target = target
@@ -456,7 +447,7 @@ class OnlineSampler:
     def __repr__(self) -> str:
         # the epoch and seed in force (set_epoch changes the one; a seed equal to the spec's is its default)
         return made_repr(self, {**self._made, **_settable(self), "epoch": self.epoch,
-                                "seed": None if self.seed == self._built.spec.seed else self.seed},
+                                "seed": None if self.seed == self._built.plan.seed else self.seed},
                          positional=("spec", "split"))
 
 

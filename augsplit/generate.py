@@ -34,7 +34,8 @@ from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
-from .spec import canonical, parse_spec
+from .spec import parse_spec
+from .threads import limit_opencv
 
 STORES = ("files", "parquet", "none")
 # OpenCV's ranges (imgcodecs: IMWRITE_JPEG_QUALITY 0-100, IMWRITE_WEBP_QUALITY 1-100 lossy);
@@ -95,8 +96,8 @@ def array_jobs(jobs: list[ShardJob], k: int, n: int) -> list[ShardJob]:
 def rows_per_group(built: Built, opts: Options) -> int:
     if opts.store != "parquet":
         return ROW_GROUP_ROWS
-    c = built.spec.canvas
-    raw = c.width * c.height * (1 if c.mode == "gray" else 3)
+    c = built.plan.canvas
+    raw = c.width * c.height * built.plan.render.channels
     return int(max(1, min(ROW_GROUP_ROWS, ROW_GROUP_BYTES // raw)))
 
 
@@ -147,9 +148,9 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
 
     Rows are rendered and written one row group at a time (memory stays flat however large
     the shard); image files are written before the manifest part, whose rename commits."""
-    plan, spec = built.plan, built.spec
+    plan = built.plan
     split = plan.split(job.split)
-    meta = mf.file_metadata(canonical(spec), plan.hash)
+    meta = mf.file_metadata(plan.settings.canonical, plan.hash)
     step = rows_per_group(built, opts)
     part = lay.part_path(out, lay.MANIFEST_DIR, job.split, job.shard)
     dpart = lay.part_path(out, lay.DISTRACTOR_DIR, job.split, job.shard)
@@ -206,10 +207,10 @@ def _parquet_writer(path: Path, schema):
 
 def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: Path, opts: Options, files):
     """Image and distractor columns for some consecutive image indices of one shard."""
-    plan, spec = built.plan, built.spec
+    plan = built.plan
     cols = draw(plan, split, indices)
     n = len(indices)
-    thr = spec.render.alpha_threshold
+    thr = plan.render.alpha_threshold
     names = list(cols)
     values = zip(*(cols[k].tolist() for k in names))  # plain Python scalars: cheap per-row access
     bbox = np.zeros((n, 4), dtype=np.int64)
@@ -246,8 +247,8 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     cols.update(image_id=ids, bbox_x0=bbox[:, 0], bbox_y0=bbox[:, 1], bbox_x1=bbox[:, 2], bbox_y1=bbox[:, 3],
                 footprint_px=footprint_px, visible_fraction=visible, n_distractors=n_dist, file=file_col,
                 image_bytes=data_col, sha256=sums, size_px=size_px, split_index=np.full(n, job.split_index),
-                seed=np.full(n, spec.seed), width=np.full(n, spec.canvas.width),
-                height=np.full(n, spec.canvas.height))
+                seed=np.full(n, plan.seed), width=np.full(n, plan.canvas.width),
+                height=np.full(n, plan.canvas.height))
     if plan.canvas.viewing is not None:
         cols["size_deg"] = plan.canvas.viewing.size_to_deg(size_px)
     else:
@@ -367,8 +368,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     # OpenCV's own thread pool gains nothing on per-object boxes this small but spins a second
     # core (measured: 2x the CPU per image, same wall time); pool workers forked from here
     # inherit the setting. Same pixels either way. Restored when the run ends.
-    cv_threads = cv2.getNumThreads()
-    cv2.setNumThreads(1)
+    restore_threads = limit_opencv(1)
     try:
         if opts.scheduler:
             _check_worker_versions(client, opts.scheduler)
@@ -382,7 +382,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         done_before = total - sum(j.stop - j.start for j in todo)
         _run(built, todo, out, opts, client, _progress(total, done_before, opts.progress))
     finally:
-        cv2.setNumThreads(cv_threads)
+        restore_threads()
         if client is not None:
             executors.close_dask(client, cluster)
     if opts.array_shard is not None:
@@ -413,7 +413,7 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
         if client is None and (opts.executor == "serial" or (opts.executor == "auto" and (opts.workers <= 1 or len(todo) <= 1))):
             results = ((job, make_shard(built, job, out, opts)) for job in todo)
         else:
-            key = (json.dumps(built.spec.model_dump(mode="json")), str(built.base_dir), str(out.resolve()),
+            key = (built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
                    json.dumps(asdict(opts)))
             results = executors.run(functools.partial(_shard_task, key), todo, opts.workers,
                                     executor=opts.executor, client=client)

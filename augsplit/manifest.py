@@ -14,6 +14,8 @@ from dataclasses import dataclass
 
 import pyarrow as pa
 
+from .space.axes import AXIS_COLUMNS as AXIS_COLUMN_NAMES, BUILTIN
+
 
 @dataclass(frozen=True)
 class Column:
@@ -29,7 +31,12 @@ def _c(name, type_, unit, doc):
 
 # Axis values as sampled, in the spec's own unit for that axis (see the spec's `axes:`).
 # Axes a spec does not vary hold their fixed default (scale 1, angle 0, hue 0, ...).
-AXIS_COLUMNS = ("x", "y", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness", "mirror")
+# Names, types, units and meanings come from the axis catalogue (augsplit.space.axes).
+AXIS_COLUMNS = AXIS_COLUMN_NAMES
+AXIS_FIELDS: tuple[Column, ...] = tuple(
+    _c(k.column, getattr(pa, k.dtype)(), "spec" if len(k.units) > 1 else k.units[0],
+       k.doc + (", spec unit" if len(k.units) > 1 else ""))
+    for k in BUILTIN.values() if k.column)
 
 IMAGE_COLUMNS: tuple[Column, ...] = (
     _c("image_id", pa.string(), "", "unique id '<split>-<index:07d>'; predictions join on it"),
@@ -42,16 +49,7 @@ IMAGE_COLUMNS: tuple[Column, ...] = (
     _c("instance", pa.int32(), "", "object instance within the class"),
     _c("instance_seen", pa.bool_(), "", "whether the instance is one of the class's seen instances"),
     _c("cell", pa.int32(), "", "which disjoint box (region cell) of the split's region the parameters came from"),
-    _c("x", pa.float64(), "spec", "object centre, horizontal, spec unit (NaN for polar specs: see cx_px)"),
-    _c("y", pa.float64(), "spec", "object centre, vertical (down), spec unit"),
-    _c("eccentricity", pa.float64(), "spec", "distance of centre from canvas centre, spec unit (NaN for x/y specs)"),
-    _c("polar_angle", pa.float64(), "deg", "direction of centre from canvas centre, counter-clockwise from right"),
-    _c("scale", pa.float64(), "x", "multiplier of native size"),
-    _c("angle", pa.float64(), "deg", "in-plane rotation, counter-clockwise"),
-    _c("hue", pa.float64(), "deg", "hue rotation"),
-    _c("saturation", pa.float64(), "x", "saturation multiplier"),
-    _c("brightness", pa.float64(), "x", "brightness (value) multiplier"),
-    _c("mirror", pa.int8(), "", "1 when mirrored left-right before rotation"),
+    *AXIS_FIELDS,
     _c("cx_px", pa.float64(), "px", "object centre as rendered, column coordinate (pixel centres at .5)"),
     _c("cy_px", pa.float64(), "px", "object centre as rendered, row coordinate"),
     _c("x_deg", pa.float64(), "deg", "horizontal visual angle of the centre from the canvas centre (NaN without viewing)"),
@@ -82,12 +80,7 @@ DISTRACTOR_COLUMNS: tuple[Column, ...] = (
     _c("instance", pa.int32(), "", "instance within the class"),
     _c("cx_px", pa.float64(), "px", "centre column"),
     _c("cy_px", pa.float64(), "px", "centre row"),
-    _c("scale", pa.float64(), "x", "multiplier of native size"),
-    _c("angle", pa.float64(), "deg", "rotation"),
-    _c("hue", pa.float64(), "deg", "hue rotation"),
-    _c("saturation", pa.float64(), "x", "saturation multiplier"),
-    _c("brightness", pa.float64(), "x", "brightness multiplier"),
-    _c("mirror", pa.int8(), "", "mirrored"),
+    *(f for f in AXIS_FIELDS if BUILTIN[f.name].render_param),  # what the renderer took, by name
     _c("bbox_x0", pa.int32(), "px", "visible bounding box"),
     _c("bbox_y0", pa.int32(), "px", ""),
     _c("bbox_x1", pa.int32(), "px", ""),

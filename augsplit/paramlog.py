@@ -28,7 +28,6 @@ from . import manifest as mf
 from .errors import DatasetError
 from .formats.table import read_table
 from .io import atomic_path
-from .spec import canonical
 
 # Columns taken from the manifest schema (same names, types and units), then the log's own.
 SHARED_COLUMNS = ("class_name", "class_index", "cell", *mf.AXIS_COLUMNS, "cx_px", "cy_px",
@@ -117,7 +116,7 @@ class ParamLog:
             self._own()
             if self._hash is None:
                 self._hash = plan.hash
-                self._meta = mf.file_metadata(canonical(plan.spec), plan.hash)
+                self._meta = mf.file_metadata(plan.settings.canonical, plan.hash)
             elif plan.hash != self._hash:
                 raise DatasetError(f"this log already holds draws of spec {self._hash}; draws of spec {plan.hash} "
                                    "need a log folder of their own", where=str(self.log_dir))

@@ -16,10 +16,12 @@ import numpy as np
 from .build import Built
 from .dataset import DatasetFolder, image_of, open_dataset, read_rows
 from .dataset import layout as lay
+from . import figures
 from .errors import DatasetError
 from .io import ensure_folder, output_path
 from .render import add_footprint, footprint
 from .scene import render_params
+from .space.axes import ANGLE_AXES
 
 PREVIEW_DIR = lay.PREVIEW_DIR
 COVERAGE_FILE = "coverage.png"
@@ -31,7 +33,7 @@ TEST_CMAPS = ("Oranges", "Reds", "YlOrBr", "RdPu")
 TRAIN_RGB = np.array([0.12, 0.40, 0.85])
 TEST_RGB = np.array([0.95, 0.45, 0.05])
 
-_DEG_AXES = {"angle", "hue", "polar_angle"}
+_DEG_AXES = set(ANGLE_AXES)  # circular axes in degrees (the axis catalogue)
 
 
 @dataclass(frozen=True)
@@ -58,9 +60,6 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
             allow_incomplete: bool = False) -> list[Path]:
     """Write one contact sheet per split and the coverage map; return their paths. An
     unfinished folder is refused unless `allow_incomplete` (then what is made so far shows)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
     if per_split < 1 or columns < 1:
         raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
@@ -114,8 +113,6 @@ def caption(built: Built, row) -> str:
 
 
 def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, columns: int = 6) -> Path:
-    import matplotlib.pyplot as plt
-
     built = folder.built
 
     pick = rows.iloc[pick_rows(len(rows), per_split)]
@@ -127,7 +124,7 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
     img, gap, cap, top, margin = 1.8, 0.18, 0.03 + 0.115 * lines, 0.45, 0.15
     cell_h = cap + img + gap
     width, height = 2 * margin + cols * img + (cols - 1) * gap, top + nrows * cell_h + margin - gap
-    fig = plt.figure(figsize=(width, height))
+    fig = figures.figure(figsize=(width, height))
     split = built.plan.split(pick["split"].iloc[0])
     for i, (_, row) in enumerate(pick.iterrows()):
         r, c = divmod(i, cols)
@@ -150,7 +147,6 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
              "evenly spaced by index", fontsize=10, ha="left", va="top")
     with output_path(path) as tmp:  # written safely, like every output
         fig.savefig(tmp, dpi=110, format="png")
-    plt.close(fig)
     return path
 
 
@@ -159,8 +155,8 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
 
 def coverage(built: Built, df, max_rows: int = MAX_COVERAGE_ROWS) -> Coverage:
     """Footprint counts per split, from the renderer's own footprints at each row's parameters."""
-    h, w = built.spec.canvas.height, built.spec.canvas.width
-    thr = built.spec.render.alpha_threshold
+    h, w = built.plan.canvas.height, built.plan.canvas.width
+    thr = built.plan.render.alpha_threshold
     counts, sampled, roles = {}, {}, {}
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
@@ -195,7 +191,6 @@ def overlay(train: np.ndarray | None, test: np.ndarray | None) -> np.ndarray:
 
 def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     """Top row: one heat map per split. Bottom row: each test split over all train splits."""
-    import matplotlib.pyplot as plt
     from matplotlib.patches import Patch
 
     names = list(cov.counts)
@@ -203,7 +198,7 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     train = cov.union("train")
     ncols = max(len(names), len(tests), 1)
     nrows = 2 if tests and train is not None else 1
-    fig, axes = plt.subplots(nrows, ncols, figsize=(3.5 * ncols, 3.6 * nrows + 0.5), squeeze=False)
+    fig, axes = figures.subplots(nrows, ncols, figsize=(3.5 * ncols, 3.6 * nrows + 0.5), squeeze=False)
     for ax in axes.ravel():
         ax.set_axis_off()
     cmaps = {"train": iter(TRAIN_CMAPS * 4), "test": iter(TEST_CMAPS * 4)}
@@ -230,13 +225,12 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
         axes[1][0].legend(handles=[Patch(color=TRAIN_RGB, label="train"), Patch(color=TEST_RGB, label="test"),
                                    Patch(color="black", label="both")], loc="upper left",
                           bbox_to_anchor=(0.0, -0.02), ncol=3, fontsize=7, frameon=False)
-    c = built.spec.canvas
+    c = built.plan.canvas
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
                  "re-made from the manifest rows", fontsize=10)
     fig.tight_layout()
     with output_path(path) as tmp:  # written safely, like every output
         fig.savefig(tmp, dpi=110, format="png")
-    plt.close(fig)
     return path
 
 
@@ -244,7 +238,7 @@ def footprint_guaranteed(built: Built, test_split: str) -> bool:
     """Whether the spec states `disjoint: footprint` between this split and a train split."""
     trains = {s.name for s in built.plan.splits if s.role == "train"}
     return any(g.disjoint == "footprint" and test_split in g.between and trains & set(g.between)
-               for g in built.spec.guarantees)
+               for g in built.plan.settings.claims)
 
 
 def _frame(ax, shape) -> None:

@@ -15,10 +15,12 @@ import numpy as np
 
 from .plan import Plan, SplitPlan
 from .plan.draw import draw_online
+from .plan.geometry import reach
 from .render import Placed, RenderParams, footprint, masks_overlap, render
+from .space.axes import RENDER_PARAMS
 from .space.sample import RENDER, lazy_image_rng
 
-PARAM_KEYS = ("cx_px", "cy_px", "scale", "angle", "mirror", "hue", "saturation", "brightness")
+PARAM_KEYS = RENDER_PARAMS  # the pixel centre and every axis the renderer reads by name
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,17 +41,16 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
 
     `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
     fresh draw never reuses the background of the generated image with the same index)."""
-    spec = plan.spec
-    h, w = spec.canvas.height, spec.canvas.width
-    channels = 1 if spec.canvas.mode == "gray" else 3
-    thr = spec.render.alpha_threshold
+    h, w = plan.canvas.height, plan.canvas.width
+    channels = plan.render.channels
+    thr = plan.render.alpha_threshold
     if rng is None:
-        rng = lazy_image_rng(spec.seed, split.index, int(row["index"]), RENDER)
+        rng = lazy_image_rng(plan.seed, split.index, int(row["index"]), RENDER)
     bg = background.draw(rng, h, w, channels)
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]
     extra: list[dict] = []
-    d = spec.render.distractors
+    d = plan.render.distractors
     if d.count[1] > 0:
         want = int(rng.integers(d.count[0], d.count[1] + 1))
         taken = [footprint(target[0], target[1], (h, w), thr)]
@@ -88,10 +89,4 @@ def pixel_sha256(image: np.ndarray) -> str:
 @lru_cache(maxsize=4096)
 def native_diameter(sprite, alpha_threshold: float) -> float:
     """Twice the largest distance from the anchor to a corner of a pixel above the threshold."""
-    rows, cols = np.nonzero(sprite.rgba[..., 3] > alpha_threshold * 255)
-    if rows.size == 0:
-        return 0.0
-    ax, ay = sprite.anchor
-    dx = np.maximum(np.abs(cols - ax), np.abs(cols + 1 - ax))
-    dy = np.maximum(np.abs(rows - ay), np.abs(rows + 1 - ay))
-    return float(2.0 * np.sqrt(dx * dx + dy * dy).max())
+    return 2.0 * reach(sprite.rgba[..., 3] > alpha_threshold * 255, sprite.anchor)

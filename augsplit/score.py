@@ -24,6 +24,7 @@ from augsplit.errors import DatasetError
 from augsplit.formats.table import read_table
 from augsplit.io import ensure_folder, is_stdout, plain, write_output
 from augsplit.manifest import UNITS
+from augsplit.space.axes import AXIS_COLUMNS, BUILTIN, POSITION_AXES
 
 PREDICTED = "predicted"  # class name or index, resolved against the manifest
 PREDICTED_CLASS = "predicted_class"  # class name, never read as an index
@@ -36,8 +37,10 @@ N_BOOT = 2000
 SEED = 20240601
 MANIFEST_COLUMNS = (
     "image_id", "split", "split_index", "index", "class_name", "class_index", "cell", "cx_px", "cy_px", "x_deg", "y_deg",
-    "eccentricity_deg", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness",
+    "eccentricity_deg", *AXIS_COLUMNS,
 )
+# positions are scored through the rendered centre (px, deg); every other catalogue axis by itself
+_OWN_AXES = tuple(k for k in BUILTIN.values() if k.column and k.name not in POSITION_AXES)
 
 
 # ---------------------------------------------------------------- distance and value axes
@@ -54,17 +57,23 @@ class DistanceAxis:
     doc: str
 
 
+def _own_distance(k) -> DistanceAxis:
+    """A catalogue axis's distance: octaves for scale, the short way round for circular axes,
+    the plain difference otherwise."""
+    if k.distance == "octaves":
+        return DistanceAxis(f"{k.name}_octaves", "oct", (k.name,), "octaves", f"|log2({k.name} / nearest training {k.name})|")
+    if k.distance == "circular":
+        return DistanceAxis(f"{k.name}_deg", "deg", (k.name,), "circular",
+                            f"{k.name} difference to the nearest training {k.name}, the short way round")
+    return DistanceAxis(k.name, k.units[0], (k.name,), "euclidean", f"{k.name} difference to the nearest training {k.name}")
+
+
 DISTANCE_AXES: tuple[DistanceAxis, ...] = (
     DistanceAxis("position_px", "px", ("cx_px", "cy_px"), "euclidean",
                  "distance of the object centre to the nearest training centre"),
     DistanceAxis("position_deg", "deg", ("x_deg", "y_deg"), "visual_angle",
                  "the angle at the eye between the two centres' lines of sight (needs viewing geometry)"),
-    DistanceAxis("scale_octaves", "oct", ("scale",), "octaves",
-                 "|log2(scale / nearest training scale)|"),
-    DistanceAxis("angle_deg", "deg", ("angle",), "circular",
-                 "rotation difference to the nearest training angle, the short way round"),
-    DistanceAxis("hue_deg", "deg", ("hue",), "circular",
-                 "hue difference to the nearest training hue, the short way round"),
+    *(_own_distance(k) for k in _OWN_AXES),
 )
 
 
@@ -78,8 +87,7 @@ VALUE_AXES: tuple[ValueAxis, ...] = (
     ValueAxis("cx_px", "linear"), ValueAxis("cy_px", "linear"),
     ValueAxis("x_deg", "linear"), ValueAxis("y_deg", "linear"),
     ValueAxis("eccentricity_deg", "linear"), ValueAxis("polar_angle", "circular"),
-    ValueAxis("scale", "log"), ValueAxis("angle", "circular"), ValueAxis("hue", "circular"),
-    ValueAxis("saturation", "linear"), ValueAxis("brightness", "linear"),
+    *(ValueAxis(k.name, {"octaves": "log", "circular": "circular"}.get(k.distance, "linear")) for k in _OWN_AXES),
 )
 PERIOD = 360.0
 
@@ -962,19 +970,13 @@ def render_sections(results: list[tuple[str, ScoreResult]], level: int = 2) -> l
 def _img(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
     return f"<img alt='plot' src='data:image/png;base64,{base64.b64encode(buf.getvalue()).decode('ascii')}'>"
 
 
 def _plt():
-    import matplotlib
+    from augsplit import figures  # Figure objects on an Agg canvas: no pyplot, the backend left alone
 
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    return plt
+    return figures
 
 
 COLOURS = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:brown")
@@ -1026,6 +1028,8 @@ def _plot_distance(results):
 
 
 def _plot_values(results):
+    from matplotlib.ticker import NullLocator
+
     plt = _plt()
     axes_names = list(dict.fromkeys(a for _, r in results for a in r.by_value["axis"]))
     ncol = min(3, len(axes_names))
@@ -1049,7 +1053,7 @@ def _plot_values(results):
             lo, hi = ax.get_xlim()
             ticks = np.exp2(np.linspace(np.log2(lo), np.log2(hi), 5)[1:-1])
             ax.set_xticks(ticks, [f"{t:.3g}" for t in ticks])
-            ax.xaxis.set_minor_locator(_plt().NullLocator())
+            ax.xaxis.set_minor_locator(NullLocator())
         ax.set_xlabel(f"{name} ({rng_info.get('unit', '')})")
         ax.set_ylim(0, 1.05)
     for ax in axs.ravel()[len(axes_names):]:

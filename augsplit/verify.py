@@ -72,7 +72,7 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
             if counts.get(c, 0) != n:
                 rep.add(f"split {s.name}, class {plan.classes[c]}: {counts.get(c, 0)} rows, the plan says {n}")
                 break
-        keyed = (got["split_index"] != s.index) | (got["seed"] != plan.spec.seed)
+        keyed = (got["split_index"] != s.index) | (got["seed"] != plan.seed)
         if keyed.any():
             rep.add(f"split {s.name}: {int(keyed.sum())} rows whose seed key (seed, split_index) is not the plan's, "
                     f"e.g. {got['image_id'][keyed].iloc[0]}")

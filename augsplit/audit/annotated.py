@@ -57,10 +57,10 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
                                    where=f"pair {a}:{b}")
     image_loader, notes = _image_loader(data.image_paths)
 
-    base = _thresholds(built.spec if built is not None else None, thresholds)
+    base = _thresholds(built.plan if built is not None else None, thresholds)
     results = []
     for a, b in wanted:
-        claims = _claims(built.spec, a, b) if built is not None else {}
+        claims = _claims(built.plan, a, b) if built is not None else {}
         declared = {a: plan.split(a).region, b: plan.split(b).region} if claims else None
         results.append(run_audit(data.table, data.axes, pairs=[(a, b)], thresholds=dict(base, **claims),
                                  image_loader=image_loader, mask_loader=data.mask_loader if exact_masks else None,

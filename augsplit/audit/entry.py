@@ -17,10 +17,9 @@ import pandas as pd
 
 from ..dataset import layout as lay
 from ..errors import DatasetError
+from ..space.axes import CLASS
 from .result import FAIL, PASS, AuditResult, CheckResult
 from .run import Thresholds, run_audit
-
-CLASS = "class"
 
 
 def _merge(results: list[AuditResult]) -> AuditResult:
@@ -38,10 +37,10 @@ def _merge(results: list[AuditResult]) -> AuditResult:
                        tuple(s for r in results for s in r.skipped), first.inputs, first.arrays)
 
 
-def _claims(spec, a: str, b: str) -> dict:
+def _claims(plan, a: str, b: str) -> dict:
     """Threshold fields declared by the spec's guarantees between splits a and b."""
     out: dict = {}
-    for g in spec.guarantees:
+    for g in plan.settings.claims:
         if set(g.between) != {a, b}:
             continue
         if g.disjoint == "parameters":
@@ -53,8 +52,8 @@ def _claims(spec, a: str, b: str) -> dict:
     return out
 
 
-def _thresholds(spec, extra: dict | None) -> dict:
-    d = dict(spec.audit) if spec is not None else {}
+def _thresholds(plan, extra: dict | None) -> dict:
+    d = dict(plan.settings.audit) if plan is not None else {}
     d.update(extra or {})
     try:
         Thresholds.from_dict(d)
@@ -89,7 +88,7 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     axes = {n: plan.space[n] for n in plan.space.names if n != CLASS}
     regions = {s.name: s.region for s in plan.splits}
     hw = folder.hw
-    thr = built.spec.render.alpha_threshold
+    thr = built.plan.render.alpha_threshold
     broken: dict[int, str] = {}
 
     def mask_loader(i: int):
@@ -105,13 +104,13 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
             # the unreadable row cannot fake a duplicate; the image_files check fails on it
             return np.random.default_rng(int(i)).integers(0, 256, (*hw, folder.channels), dtype=np.uint8)
 
-    base = _thresholds(built.spec, thresholds)
+    base = _thresholds(built.plan, thresholds)
     results = []
     for a, b in _pairs(plan, pairs):
         for name in (a, b):
             if name not in regions:
                 raise DatasetError(f"the dataset has no split '{name}' (it has {', '.join(regions)})", where=f"pair {a}:{b}")
-        claims = _claims(built.spec, a, b)
+        claims = _claims(built.plan, a, b)
         th = dict(base, **claims)
         if plan.split(b).kind == "random" or plan.split(a).kind == "random":
             th.setdefault("near_duplicates_fail", False)  # look-alikes are expected within one region
@@ -204,11 +203,11 @@ def audit_table(table, spec_path=None, pairs=None, axes: dict | None = None, col
     wanted = _pairs(plan, pairs)
     runnable = [p for p in wanted if p[0] in present and p[1] in present]
     results = []
-    base = _thresholds(built.spec, thresholds)
+    base = _thresholds(built.plan, thresholds)
     for a, b in runnable:
-        th = dict(base, **_claims(built.spec, a, b))
+        th = dict(base, **_claims(built.plan, a, b))
         results.append(run_audit(table, {n: plan.space[n] for n in names}, pairs=[(a, b)], thresholds=th,
-                                 regions={a: plan.split(a).region, b: plan.split(b).region} if _claims(built.spec, a, b) else None,
+                                 regions={a: plan.split(a).region, b: plan.split(b).region} if _claims(built.plan, a, b) else None,
                                  column_map=column_map, progress=progress))
     if not results:
         return AuditResult((region_check,), (), (), {"table": str(table), "spec": str(spec_path)}, {})

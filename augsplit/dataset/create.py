@@ -46,7 +46,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
             # the spec in its own key order: the order of splits and axes is part of every
             # image's seed key and of its draws, so a sorted copy would re-make other images
             doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
-                   "layout": layout, "spec": built.spec.model_dump(mode="json")}
+                   "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
             write_text_atomic(spec_file, json.dumps(doc, indent=2))
     except PermissionError as exc:
         raise DatasetError("permission denied", where=str(exc.filename or out)) from None

@@ -19,6 +19,7 @@ import pyarrow.parquet as pq
 
 from .. import manifest as mf
 from ..errors import AugsplitError, DatasetError
+from ..plan.settings import Settings, settings_of
 from ..spec import Spec, parse_spec, spec_hash
 from . import layout as lay
 
@@ -61,8 +62,20 @@ class DatasetFolder:
         return tuple(self.spec.splits)
 
     @property
+    def settings(self) -> Settings:
+        """The spec's settings as plain values (the folder reads spec.json: the spec's boundary)."""
+        if "settings" not in self._cache:
+            self._cache["settings"] = settings_of(self.spec)
+        return self._cache["settings"]
+
+    @property
+    def axis_names(self) -> tuple[str, ...]:
+        """The axes the spec varies, in its order."""
+        return tuple(self.spec.axes)
+
+    @property
     def channels(self) -> int:
-        return 1 if self.spec.canvas.mode == "gray" else 3
+        return self.settings.render.channels
 
     @property
     def hw(self) -> tuple[int, int]:

@@ -16,9 +16,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DatasetError
+from ..space.axes import POSITION_AXES
 from .boxes import MAX_PIXELS, Objects, image_path, polygons_mask, segmentation_mask
-
-POSITION_AXES = ("x", "y", "eccentricity", "polar_angle")
 
 
 @dataclass(frozen=True)

@@ -140,7 +140,7 @@ class Rows:
 
             built = self.folder.built
             sprite = built.source.sprite(int(r["class_index"]), int(r["instance"]))
-            mask = canvas_mask(footprint(sprite, render_params(r), self.hw, built.spec.render.alpha_threshold), self.hw)
+            mask = canvas_mask(footprint(sprite, render_params(r), self.hw, built.plan.render.alpha_threshold), self.hw)
         box = tuple(int(r[c]) for c in ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1"))
         return Obj(k, int(r["class_index"]), str(r["class_name"]), box, int(r["footprint_px"]), mask)
 

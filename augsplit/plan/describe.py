@@ -53,7 +53,7 @@ def split_data(plan: Plan, s: SplitPlan) -> dict:
 def plan_data(plan: Plan) -> dict:
     return plain({
         "spec_hash": plan.hash,
-        "seed": plan.spec.seed,
+        "seed": plan.seed,
         "canvas": {"width": plan.canvas.width, "height": plan.canvas.height},
         "classes": list(plan.classes),
         "axes": {ax.name: {"range": [ax.lo, ax.hi], "unit": ax.unit, "measure": ax.measure}

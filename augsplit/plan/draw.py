@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..space.axes import CLASS, DRAW_DEFAULTS, POSITION_AXES
 from ..space.sample import image_uniforms, sample_t
 from .planner import Plan, SplitPlan
-from .regions import CLASS
 
-DEFAULTS = {"scale": 1.0, "angle": 0.0, "hue": 0.0, "saturation": 1.0, "brightness": 1.0, "mirror": 0.0}
-POSITION = ("x", "y", "eccentricity", "polar_angle")
+DEFAULTS = DRAW_DEFAULTS  # the catalogue's values for axes a spec does not vary
+POSITION = POSITION_AXES
 
 
 def class_of(split: SplitPlan, indices: np.ndarray) -> np.ndarray:
@@ -68,7 +68,7 @@ def draw(plan: Plan, split: SplitPlan | str, indices) -> dict[str, np.ndarray]:
         rows = np.flatnonzero(cls == c)
         ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
         inst[rows] = ids[(idx[rows] - starts[c]) % len(ids)]
-    u = image_uniforms(plan.spec.seed, split.index, idx, plan.space.ndim + 1)
+    u = image_uniforms(plan.seed, split.index, idx, plan.space.ndim + 1)
     if split.stratify:
         u = _stratified(split, idx, cls, starts, u)
     return _columns(plan, split, idx, cls, inst, u)

@@ -61,8 +61,8 @@ from ..space.axes import LEVELS, Space
 from ..space.region import Region
 from ..units import Canvas
 from .geometry import PositionSet, box_classes, position_sets
+from .geometry import reach as sprite_reach  # this module has a reach of its own (of a run of items)
 
-CLASS = "class"
 TWO_PI = 2.0 * math.pi
 SQRT2 = math.sqrt(2.0)
 # Largest difference between the renderer's warped alpha and exact float64 bilinear
@@ -236,13 +236,7 @@ class NodeMax:
 def alpha_radius(sprite) -> float:
     """Beyond this distance from the anchor (source px) the bilinear alpha is exactly zero:
     the farthest corner of the open squares (i - 1, i + 1) around pixels with alpha > 0."""
-    rows, cols = np.nonzero(sprite.rgba[..., 3] > 0)
-    if rows.size == 0:
-        return 0.0
-    ax, ay = sprite.anchor
-    dx = np.maximum(np.abs(cols - 0.5 - ax), np.abs(cols + 1.5 - ax))
-    dy = np.maximum(np.abs(rows - 0.5 - ay), np.abs(rows + 1.5 - ay))
-    return float(np.sqrt(dx * dx + dy * dy).max())
+    return sprite_reach(sprite.rgba[..., 3] > 0, sprite.anchor, grow=0.5)
 
 
 # ---- the log-polar table of one sprite -------------------------------------------------------

@@ -37,15 +37,39 @@ def bilinear_reach(alpha_threshold: float) -> float:
     return max(math.sqrt(2.0) * (1.0 - math.sqrt(w)), 1.0 - w)
 
 
-def support_radius(rgba: np.ndarray, anchor: tuple[float, float], alpha_threshold: float = 0.0) -> float:
-    """Largest distance from the anchor at which the warped sprite can have alpha above the
-    threshold, in source pixels (multiply by the scale for canvas pixels)."""
-    rows, cols = np.nonzero(rgba[..., 3] > 0)
+def reach(mask: np.ndarray, anchor: tuple[float, float], grow: float = 0.0) -> float:
+    """THE reach of a sprite: the largest distance from `anchor` (x, y) to a point of the pixel
+    squares where `mask` is true, each square [c, c + 1) x [r, r + 1) grown by `grow` px on
+    every side (grow -0.5 shrinks a square to its centre); 0 for an empty mask. Source pixels:
+    multiply by the scale for canvas pixels. Every "how far does the object reach" is this:
+
+    * native extent (Sprite.radius, size_px / 2): mask alpha > threshold, grow 0;
+    * proof bound of the warped footprint (support_radius): alpha > 0, grow -0.5, plus
+      `bilinear_reach(threshold)`;
+    * zero-alpha bound of bilinear sampling (envelope): alpha > 0, grow 0.5;
+    * placed content (albu): the content's rectangle, grow 0.5.
+    """
+    rows, cols = np.nonzero(mask)
+    return reach_of_cells(rows, cols, anchor, grow)
+
+
+def reach_of_cells(rows, cols, anchor: tuple[float, float], grow: float = 0.0) -> float:
+    """`reach` over the pixels (rows[i], cols[i]): the farthest corner of their grown squares."""
+    rows, cols = np.asarray(rows, dtype=float), np.asarray(cols, dtype=float)
     if rows.size == 0:
         return 0.0
     ax, ay = anchor
-    d = np.hypot(cols + 0.5 - ax, rows + 0.5 - ay)
-    return float(d.max() + bilinear_reach(alpha_threshold))
+    dx = np.maximum(np.abs(cols - grow - ax), np.abs(cols + 1 + grow - ax))
+    dy = np.maximum(np.abs(rows - grow - ay), np.abs(rows + 1 + grow - ay))
+    return float(np.hypot(dx, dy).max())
+
+
+def support_radius(rgba: np.ndarray, anchor: tuple[float, float], alpha_threshold: float = 0.0) -> float:
+    """Largest distance from the anchor at which the warped sprite can have alpha above the
+    threshold, in source pixels (multiply by the scale for canvas pixels)."""
+    if not rgba[..., 3].any():
+        return 0.0
+    return reach(rgba[..., 3] > 0, anchor, grow=-0.5) + bilinear_reach(alpha_threshold)
 
 
 @dataclass(frozen=True)

@@ -15,12 +15,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..space.axes import CIRCULAR, LEVELS, Space
+from ..space.axes import CIRCULAR, CLASS, LEVELS, Space
 from ..space.region import Region
 from ..units import Canvas
 from .geometry import WARP_SLACK_PX, box_classes, box_max_scale, position_sets, set_distance
 
-CLASS = "class"
 
 
 @dataclass(frozen=True)

@@ -12,11 +12,10 @@ never composition, which needs every marginal value seen.
 
 from __future__ import annotations
 
-from ..space.axes import CIRCULAR, Space
+from ..space.axes import CIRCULAR, CLASS, Space
 from ..space.region import Region, _merge
 from .regions import t_interval_text
 
-CLASS = "class"
 
 
 def projection(region: Region, i: int) -> list[tuple[float, float]]:

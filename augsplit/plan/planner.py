@@ -25,6 +25,7 @@ from .guarantees import Verdict, check_parameters, dilate_parameters, footprint_
 from .guard import footprint_guard
 from .kinds import holdout_kind, projection, values_text
 from .regions import CLASS, build_region, build_space
+from .settings import RenderSettings, Settings, settings_of
 
 
 @dataclass(frozen=True)
@@ -54,8 +55,9 @@ class SplitPlan:
         return self._class_regions[c]
 
     def __repr__(self) -> str:
+        how = self.region.how if len(self.region.how) <= 120 else self.region.how[:117] + "..."
         return (f"SplitPlan({self.name!r}, role={self.role}, kind={self.kind}, images={self.total}, "
-                f"mass={self.region.mass():.4g}, boxes={self.region.nbox})")
+                + (f"region={how}, " if how else "") + f"mass={self.region.mass():.4g}, boxes={self.region.nbox})")
 
 
 @dataclass(frozen=True)
@@ -72,6 +74,15 @@ class Plan:
     radii: np.ndarray = field(compare=False)  # native support radius (px) per class, over all instances
     guard: Region | None = field(default=None, compare=False)  # what auto_guard removed
     warnings: tuple = field(default=(), compare=False)  # PlanWarning: what the spec cannot do (plan/warnings.py)
+    settings: Settings | None = field(default=None, compare=False)  # the spec's settings as plain values
+
+    @property
+    def seed(self) -> int:
+        return self.settings.seed
+
+    @property
+    def render(self) -> RenderSettings:
+        return self.settings.render
 
     def split(self, name: str) -> SplitPlan:
         for s in self.splits:
@@ -241,7 +252,8 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
         raise SpecError(f"{sum(s.total for s in splits):,} images in all are above the limit of {MAX_IMAGES:,} "
                         "(limits.MAX_IMAGES)", where="splits")
     plan = Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
-                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None)
+                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None,
+                settings=settings_of(spec))
     from .warnings import plan_warnings
 
     return replace(plan, warnings=plan_warnings(plan, source))

@@ -17,17 +17,15 @@ from __future__ import annotations
 import math
 from typing import Any, Callable
 
-import numpy as np
-
 from ..errors import SpecError
-from ..limits import MAX_GRID_CELLS, MAX_REGION_BOXES
-from ..space.axes import BUILTIN, CIRCULAR, LEVELS, LINEAR, LOG, Axis, Space
+from ..limits import MAX_REGION_BOXES
+from ..space import builders as rb
+from ..space.axes import BUILTIN, CIRCULAR, CLASS, LEVELS, LINEAR, LOG, Axis, Space
+from ..space.builders import OTHER_CLASS
 from ..space.region import Region
 from ..spec import Spec, _hint
 from ..units import Canvas
 
-CLASS = "class"
-OTHER_CLASS = "*"  # by_class's name for every class it does not name
 
 
 def build_space(spec: Spec, canvas: Canvas, classes: tuple[str, ...]) -> Space:
@@ -119,33 +117,34 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
         return full
     if not isinstance(node, dict):
         raise SpecError(f"a region is a mapping (axis: interval, any_of, minus, ...), not {type(node).__name__}", where=where)
-    out = full
+    parts: list[tuple[str, Region]] = []  # (key path, region), ANDed in the order written
     for key, value in node.items():
         sub = f"{where}.{key}"
         if key == "minus":
             continue
         if key in space.names and key != CLASS:
-            out = _bounded(out & Region.box(space, {key: _intervals(space[key], value, sub)}), sub)
+            _intervals(space[key], value, sub)  # each interval checked where it is written
+            parts.append((sub, _built(rb.box, sub, space, {key: value})))
         elif key == CLASS:
-            out = out & _classes_region(space, classes, value, sub)
+            parts.append((sub, _classes_region(space, classes, value, sub)))
         elif key in ("any_of", "all_of"):
             if not isinstance(value, list) or not value:
                 raise SpecError(f"{key} takes a non-empty list of regions", where=sub)
-            parts = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
-            acc = parts[0]
-            for p in parts[1:]:
-                acc = _bounded((acc | p) if key == "any_of" else (acc & p), sub)
-            out = _bounded(out & acc, sub)
+            terms = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
+            acc = terms[0]
+            for t in terms[1:]:
+                acc = _bounded((acc | t) if key == "any_of" else (acc & t), sub)
+            parts.append((sub, acc))
         elif key == "band":
-            out = out & _band(space, value, sub)
+            parts.append((sub, _band(space, value, sub)))
         elif key == "cells":
-            out = _bounded(out & _cells(space, value, sub), sub)
+            parts.append((sub, _bounded(_cells(space, value, sub), sub)))
         elif key == "by_class":
-            out = _bounded(out & _by_class(space, classes, value, sub, split_region), sub)
+            parts.append((sub, _bounded(_by_class(space, classes, value, sub, split_region), sub)))
         elif key == "split":
             if split_region is None:
                 raise SpecError("'split' cannot be used here", where=sub)
-            out = _bounded(out & split_region(str(value), sub), sub)
+            parts.append((sub, split_region(str(value), sub)))
         else:
             known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
             if key in BUILTIN:
@@ -153,6 +152,9 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
                                 hint="add it under axes: to vary it")
             hint = _hint(key, known)
             raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
+    out = full
+    for sub, part in parts:
+        out = part if out is full else _bounded(out & part, sub)
     if "minus" in node:
         out = _bounded(out - build_region(node["minus"], space, classes, f"{where}.minus", split_region), f"{where}.minus")
     return out
@@ -203,8 +205,16 @@ def _class_indices(classes, value, where) -> list[int]:
 
 
 def _classes_region(space, classes, value, where) -> Region:
-    idx = _class_indices(classes, value, where)
-    return Region.box(space, {CLASS: [(i - 0.5, i + 0.5) for i in idx]})
+    _class_indices(classes, value, where)
+    return _built(rb.of_classes, where, space, classes, value)
+
+
+def _built(fn, where: str, *args, **kw) -> Region:
+    """Call a Python region builder; its ValueError becomes a SpecError at `where`."""
+    try:
+        return fn(*args, **kw)
+    except ValueError as exc:
+        raise SpecError(str(exc), where=where) from None
 
 
 def _band(space: Space, value: Any, where: str) -> Region:
@@ -213,26 +223,7 @@ def _band(space: Space, value: Any, where: str) -> Region:
     name = value["axis"]
     if name not in space.names or name == CLASS:
         raise SpecError(f"unknown axis '{name}'", where=f"{where}.axis")
-    at = value["at"]
-    if not (isinstance(at, list) and len(at) == 2 and 0 <= at[0] < at[1] <= 1):
-        raise SpecError("at must be [f0, f1] with 0 <= f0 < f1 <= 1", where=f"{where}.at")
-    i = space.index[name]
-    lo, span = space.t_lo[i], space.t_span[i]
-    iv = _whole_levels(space[name], lo + at[0] * span, lo + at[1] * span)
-    if iv is None:
-        raise SpecError(f"the band holds none of the levels of axis '{name}' ({len(space[name].levels)} levels, "
-                        f"each 1/{len(space[name].levels)} of the normalised range)", where=f"{where}.at")
-    return Region.box(space, {name: [iv]})
-
-
-def _whole_levels(axis: Axis, lo_t: float, hi_t: float) -> tuple[float, float] | None:
-    """On a levels axis a box spans whole level cells (space/sample.py draws whole cells): the
-    levels whose index lies in [lo_t, hi_t), as one box, or None if no level does. Other
-    axes: the interval as it is."""
-    if axis.measure != LEVELS:
-        return (lo_t, hi_t)
-    k0, k1 = math.ceil(lo_t - 1e-9), math.ceil(hi_t - 1e-9) - 1
-    return (k0 - 0.5, k1 + 0.5) if k0 <= k1 else None
+    return _built(rb.band, f"{where}.at", space, name, value["at"])
 
 
 def _cells(space: Space, value: Any, where: str) -> Region:
@@ -244,71 +235,29 @@ def _cells(space: Space, value: Any, where: str) -> Region:
     grid = value["grid"]
     if not isinstance(grid, dict) or not grid:
         raise SpecError("grid maps axis names to numbers of bins", where=f"{where}.grid")
-    names = list(grid)
-    for n in names:
+    for n in grid:
         if n not in space.names or n == CLASS:
             raise SpecError(f"unknown axis '{n}'", where=f"{where}.grid")
         if not (isinstance(grid[n], int) and not isinstance(grid[n], bool) and grid[n] >= 1):
             raise SpecError("the number of bins must be a positive integer", where=f"{where}.grid.{n}")
-    shape = [grid[n] for n in names]
-    n_cells = math.prod(shape)
-    if n_cells > MAX_GRID_CELLS:
-        raise SpecError(f"a grid of {' x '.join(map(str, shape))} = {n_cells:,} cells is above the limit of "
-                        f"{MAX_GRID_CELLS:,} (limits.MAX_GRID_CELLS)", where=f"{where}.grid")
+    _built(rb.check_grid_size, f"{where}.grid", [grid[n] for n in grid])
     pick = value.get("pick", "all")
-    all_cells = [tuple(int(v) for v in c) for c in np.ndindex(*shape)]
-    if pick == "all":
-        chosen = all_cells
-    elif pick in ("checkerboard", "checkerboard_odd"):
-        parity = 0 if pick == "checkerboard" else 1
-        chosen = [c for c in all_cells if sum(c) % 2 == parity]
-    elif isinstance(pick, list) and pick:
-        chosen = []
+    if isinstance(pick, list):
+        shape = list(grid.values())
         for k, c in enumerate(pick):
-            c = [c] if isinstance(c, int) else c
-            if not (isinstance(c, list) and len(c) == len(shape) and all(isinstance(v, int) and 0 <= v < s for v, s in zip(c, shape))):
-                raise SpecError(f"cell {c} is not an index into a grid of {shape}", where=f"{where}.pick.{k}")
-            chosen.append(tuple(c))
-        chosen = list(dict.fromkeys(chosen))  # a cell picked twice is one box
-    else:
-        raise SpecError("pick is a list of cell indices, 'checkerboard', 'checkerboard_odd' or 'all'", where=f"{where}.pick")
-    # the cells of one grid are disjoint boxes already: build them at once (a union per cell
-    # would cost time quadratic in their number)
-    lo = np.repeat(space.t_lo[None, :], len(chosen), axis=0)
-    hi = np.repeat(space.t_hi[None, :], len(chosen), axis=0)
-    keep = np.ones(len(chosen), dtype=bool)
-    for r, cell in enumerate(chosen):
-        for n, k, s in zip(names, cell, shape):
-            i = space.index[n]
-            iv = _whole_levels(space[n], space.t_lo[i] + space.t_span[i] * k / s,
-                               space.t_lo[i] + space.t_span[i] * (k + 1) / s)
-            if iv is None:  # a bin between two levels holds nothing to draw
-                if isinstance(pick, list):
-                    raise SpecError(f"cell {list(cell)} holds none of the levels of axis '{n}'",
-                                    where=f"{where}.pick.{r}")
-                keep[r] = False
-                break
-            lo[r, i], hi[r, i] = iv
-    return Region(space, lo[keep], hi[keep])
+            _built(rb.grid_cells, f"{where}.pick.{k}", shape, [c])
+    return _built(rb.cells, f"{where}.pick", space, grid, pick)
 
 
 def _by_class(space, classes, value, where, split_region) -> Region:
     if not isinstance(value, dict) or not value:
         raise SpecError("by_class maps class names (or '*') to regions", where=where)
-    out = Region.empty(space)
-    named = []
+    parts = {}
     for name, node in value.items():
-        if name == "*":
-            continue
-        named += _class_indices(classes, name, f"{where}.{name}")
-        part = build_region(node, space, classes, f"{where}.{name}", split_region)
-        out = out | (part & _classes_region(space, classes, name, f"{where}.{name}"))
-    if "*" in value:
-        rest = [c for i, c in enumerate(classes) if i not in named]
-        if rest:
-            part = build_region(value["*"], space, classes, f"{where}.*", split_region)
-            out = out | (part & _classes_region(space, classes, rest, f"{where}.*"))
-    return out
+        if name != OTHER_CLASS:
+            _class_indices(classes, name, f"{where}.{name}")
+        parts[name] = build_region(node, space, classes, f"{where}.{name}", split_region)
+    return _built(rb.by_class, where, space, classes, parts)
 
 
 def named_classes(node: Any) -> list[str]:

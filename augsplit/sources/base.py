@@ -105,7 +105,9 @@ class Sprite:
     @cached_property
     def radius(self) -> float:
         """Native extent: farthest corner of any pixel with alpha > ALPHA_THRESHOLD from the anchor."""
-        return _corner_radius(self.rgba[..., 3] > ALPHA_THRESHOLD * 255, self.anchor, 0.0)
+        from ..plan.geometry import reach  # the one definition of reach (below the sources' layer)
+
+        return reach(self.rgba[..., 3] > ALPHA_THRESHOLD * 255, self.anchor)
 
     def __repr__(self) -> str:
         return (f"Sprite({self.class_name!r}, class_index={self.class_index}, instance={self.instance}, "
@@ -135,16 +137,6 @@ def alpha_anchor(alpha_u8: np.ndarray, threshold: float = ALPHA_THRESHOLD) -> tu
         return None
     rows, cols = np.indices(a.shape, dtype=np.float64)
     return (float((a * (cols + 0.5)).sum() / total), float((a * (rows + 0.5)).sum() / total))
-
-
-def _corner_radius(mask: np.ndarray, anchor: tuple[float, float], grow: float) -> float:
-    rows, cols = np.nonzero(mask)
-    if rows.size == 0:
-        return 0.0
-    ax, ay = anchor
-    dx = np.maximum(np.abs(cols - grow - ax), np.abs(cols + 1 + grow - ax))
-    dy = np.maximum(np.abs(rows - grow - ay), np.abs(rows + 1 + grow - ay))
-    return float(np.sqrt(dx * dx + dy * dy).max())
 
 
 @runtime_checkable

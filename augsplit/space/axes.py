@@ -16,9 +16,23 @@ LINEAR, LOG, CIRCULAR, LEVELS = "linear", "log", "circular", "levels"
 MEASURES = (LINEAR, LOG, CIRCULAR, LEVELS)
 
 
+# What an axis does to the pixels: moves or reshapes the object, recolours it, picks it, or
+# nothing the renderer sees directly (the polar pair is turned into a position first).
+GEOMETRY, COLOUR, PICK = "geometry", "colour", "class"
+PIXEL_EFFECTS = (GEOMETRY, COLOUR, PICK)
+# How a distance is measured along an axis: plain difference, log2 ratio (octaves), the short
+# way round a circle, or whether two levels differ.
+DISTANCES = (LINEAR, "octaves", CIRCULAR, LEVELS)
+
+CLASS = "class"  # the internal axis that gives regions per class (by_class)
+
+
 @dataclass(frozen=True)
 class AxisKind:
-    """What a built-in axis name means: its default range, measure, units and role."""
+    """One built-in axis: its meaning, measure, units, manifest column and dtype, the value an
+    image takes when a spec does not vary it, what it does to pixels and how distance on it is
+    measured. THE catalogue: manifest columns, draw defaults, render parameters, the albu
+    transforms, score, audit and the parameter log all derive their axis lists from BUILTIN."""
 
     name: str
     role: str  # "position", "polar", "scale", "angle", "colour", "mirror", "class"
@@ -26,26 +40,61 @@ class AxisKind:
     default_range: tuple[float, float] | None
     units: tuple[str, ...]
     doc: str
+    column: str | None = None  # manifest column (None: not stored as such, e.g. class)
+    dtype: str = "float64"  # the manifest column's Arrow type name
+    default: float | None = None  # value when a spec does not vary the axis (None: NaN / derived)
+    pixels: str = GEOMETRY  # GEOMETRY, COLOUR or PICK
+    distance: str = LINEAR  # one of DISTANCES
+    render_param: str | None = None  # the renderer's parameter this axis ends up as (None: via cx/cy)
+
+    def __post_init__(self):
+        if self.pixels not in PIXEL_EFFECTS or self.distance not in DISTANCES:
+            raise ValueError(f"axis {self.name}: pixels {self.pixels!r} / distance {self.distance!r} unknown")
+
+
+def _k(name, role, measure, default_range, units, doc, *, dtype="float64", default=None, pixels=GEOMETRY,
+       distance=None, render=None, column=True):
+    return AxisKind(name, role, measure, default_range, units, doc, name if column else None, dtype, default,
+                    pixels, distance or measure, render)
 
 
 # The built-in axes. Positions: y grows downward (image rows) in every unit; polar_angle
 # is counter-clockwise from rightward as seen on the screen (the visual-field convention).
+# Positions reach the renderer as the pixel centre (cx_px, cy_px), the others by name.
 BUILTIN: dict[str, AxisKind] = {
     k.name: k
     for k in (
-        AxisKind("x", "position", LINEAR, None, ("px", "frac", "deg"), "object centre, horizontal"),
-        AxisKind("y", "position", LINEAR, None, ("px", "frac", "deg"), "object centre, vertical (down)"),
-        AxisKind("eccentricity", "polar", LINEAR, None, ("px", "deg"), "distance of the centre from the canvas centre"),
-        AxisKind("polar_angle", "polar", CIRCULAR, (0.0, 360.0), ("deg",), "direction of the centre from the canvas centre"),
-        AxisKind("scale", "scale", LINEAR, (1.0, 1.0), ("x",), "multiplier of the object's native size"),
-        AxisKind("angle", "angle", CIRCULAR, (0.0, 360.0), ("deg",), "in-plane rotation, counter-clockwise"),
-        AxisKind("hue", "colour", CIRCULAR, (0.0, 360.0), ("deg",), "hue rotation of the object's colours"),
-        AxisKind("saturation", "colour", LINEAR, (1.0, 1.0), ("x",), "saturation multiplier"),
-        AxisKind("brightness", "colour", LINEAR, (1.0, 1.0), ("x",), "value (brightness) multiplier"),
-        AxisKind("mirror", "mirror", LEVELS, (0.0, 1.0), ("",), "0 as drawn, 1 mirrored left-right"),
-        AxisKind("class", "class", LEVELS, None, ("",), "object class index (internal; regions per class)"),
+        _k("x", "position", LINEAR, None, ("px", "frac", "deg"), "object centre, horizontal (NaN for polar specs: see cx_px)"),
+        _k("y", "position", LINEAR, None, ("px", "frac", "deg"), "object centre, vertical (down)"),
+        _k("eccentricity", "polar", LINEAR, None, ("px", "deg"), "distance of the centre from the canvas centre (NaN for x/y specs)"),
+        _k("polar_angle", "polar", CIRCULAR, (0.0, 360.0), ("deg",), "direction of the centre from the canvas centre"),
+        _k("scale", "scale", LINEAR, (1.0, 1.0), ("x",), "multiplier of the object's native size",
+           default=1.0, distance="octaves", render="scale"),
+        _k("angle", "angle", CIRCULAR, (0.0, 360.0), ("deg",), "in-plane rotation, counter-clockwise",
+           default=0.0, render="angle"),
+        _k("hue", "colour", CIRCULAR, (0.0, 360.0), ("deg",), "hue rotation of the object's colours",
+           default=0.0, pixels=COLOUR, render="hue"),
+        _k("saturation", "colour", LINEAR, (1.0, 1.0), ("x",), "saturation multiplier",
+           default=1.0, pixels=COLOUR, render="saturation"),
+        _k("brightness", "colour", LINEAR, (1.0, 1.0), ("x",), "value (brightness) multiplier",
+           default=1.0, pixels=COLOUR, render="brightness"),
+        _k("mirror", "mirror", LEVELS, (0.0, 1.0), ("",), "0 as drawn, 1 mirrored left-right",
+           dtype="int8", default=0.0, render="mirror"),
+        _k(CLASS, "class", LEVELS, None, ("",), "object class index (internal; regions per class)",
+           dtype="int32", pixels=PICK, column=False),
     )
 }
+
+# Derived lists (in catalogue order): every consumer takes its axis names from these.
+AXIS_COLUMNS: tuple[str, ...] = tuple(k.column for k in BUILTIN.values() if k.column)
+DRAW_DEFAULTS: dict[str, float] = {k.name: k.default for k in BUILTIN.values() if k.default is not None}
+POSITION_AXES: tuple[str, ...] = tuple(k.name for k in BUILTIN.values() if k.role in ("position", "polar"))
+GEOMETRY_AXES: tuple[str, ...] = tuple(k.name for k in BUILTIN.values() if k.pixels == GEOMETRY)
+COLOUR_AXES: tuple[str, ...] = tuple(k.name for k in BUILTIN.values() if k.pixels == COLOUR)
+# the renderer's parameters: the pixel centre, then the axes that reach it by name (geometry first)
+RENDER_PARAMS: tuple[str, ...] = ("cx_px", "cy_px") + tuple(
+    k.render_param for eff in (GEOMETRY, COLOUR) for k in BUILTIN.values() if k.render_param and k.pixels == eff)
+ANGLE_AXES: tuple[str, ...] = tuple(k.name for k in BUILTIN.values() if "deg" in k.units and k.measure == CIRCULAR)
 
 
 @dataclass(frozen=True)

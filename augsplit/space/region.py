@@ -27,6 +27,7 @@ class Region:
     space: Space
     lo: np.ndarray  # (nbox, ndim)
     hi: np.ndarray  # (nbox, ndim)
+    how: str = ""  # how it was made, e.g. "band('x', at=(0, 0.3)) - cells(...)": shown by repr
 
     def __post_init__(self):
         lo = np.asarray(self.lo, dtype=float).reshape(-1, self.space.ndim)
@@ -81,7 +82,7 @@ class Region:
         self._check(other)
         lo = np.maximum(self.lo[:, None, :], other.lo[None, :, :]).reshape(-1, self.space.ndim)
         hi = np.minimum(self.hi[:, None, :], other.hi[None, :, :]).reshape(-1, self.space.ndim)
-        return Region(self.space, lo, hi)
+        return Region(self.space, lo, hi, _combined(self, "&", other))
 
     def __sub__(self, other: "Region") -> "Region":
         self._check(other)
@@ -90,12 +91,12 @@ class Region:
             if len(lo) == 0:
                 break
             lo, hi = _box_difference(lo, hi, b_lo, b_hi)
-        return Region(self.space, lo, hi)
+        return Region(self.space, lo, hi, _combined(self, "-", other))
 
     def __or__(self, other: "Region") -> "Region":
         self._check(other)
         rest = other - self
-        return Region(self.space, np.vstack([self.lo, rest.lo]), np.vstack([self.hi, rest.hi]))
+        return Region(self.space, np.vstack([self.lo, rest.lo]), np.vstack([self.hi, rest.hi]), _combined(self, "|", other))
 
     def complement(self) -> "Region":
         return Region.full(self.space) - self
@@ -190,8 +191,64 @@ class Region:
                 changed |= merged
         return Region(self.space, lo, hi)
 
+    def with_how(self, how: str) -> "Region":
+        """The same region, shown as made by `how`."""
+        return Region(self.space, self.lo, self.hi, how)
+
+    # ---- value equality -------------------------------------------------------------------
+    def canonical(self) -> tuple:
+        """The region as a set, independent of how it is cut into boxes: per axis the cuts
+        that really bound it (t rounded to 1e-9), and which cells of that grid it fills.
+        Equal sets (up to faces of zero mass) have equal canonical forms."""
+        cached = self.__dict__.get("_canonical")
+        if cached is None:
+            cached = _canonical(self)
+            object.__setattr__(self, "_canonical", cached)
+        return cached
+
+    def __eq__(self, other) -> bool:
+        if not isinstance(other, Region):
+            return NotImplemented
+        return self.space == other.space and self.canonical() == other.canonical()
+
+    def __hash__(self) -> int:
+        return hash((self.space, self.canonical()))
+
     def __repr__(self) -> str:
-        return f"Region({self.nbox} boxes over {', '.join(self.space.names)}, mass={self.mass():.4g})"
+        made = self.how if len(self.how) <= 200 else self.how[:197] + "..."
+        return (f"Region({made + '; ' if made else ''}{self.nbox} boxes over {', '.join(self.space.names)}, "
+                f"mass={self.mass():.4g})")
+
+
+def _combined(a: Region, op: str, b: Region) -> str:
+    if not (a.how and b.how):
+        return ""
+    wrap = lambda h: f"({h})" if any(f" {o} " in h for o in "|&-") else h  # noqa: E731
+    return f"{wrap(a.how)} {op} {wrap(b.how)}"
+
+
+_DIGITS = 9  # cuts closer than 1e-9 in t are one cut (t spans are O(1)..O(1000))
+MAX_CANONICAL_CELLS = 1 << 22
+
+
+def _canonical(r: Region) -> tuple:
+    sp = r.space
+    lo, hi = np.round(r.lo, _DIGITS), np.round(r.hi, _DIGITS)
+    ends = np.round(np.stack([sp.t_lo, sp.t_hi], axis=1), _DIGITS)
+    cuts = [np.unique(np.r_[lo[:, i], hi[:, i], ends[i]]) for i in range(sp.ndim)]
+    shape = tuple(len(c) - 1 for c in cuts)
+    if int(np.prod(shape, dtype=float)) > MAX_CANONICAL_CELLS:
+        raise ValueError(f"region of {r.nbox} boxes is too finely cut to compare ({'x'.join(map(str, shape))} cells)")
+    occ = np.zeros(shape, dtype=bool)
+    for b in range(r.nbox):
+        occ[tuple(slice(np.searchsorted(c, lo[b, i]), np.searchsorted(c, hi[b, i])) for i, c in enumerate(cuts))] = True
+    # drop the cuts that bound nothing: the cells on either side are filled alike
+    for i in range(sp.ndim):
+        keep = [0] + [j for j in range(1, occ.shape[i]) if not np.array_equal(np.take(occ, j - 1, axis=i),
+                                                                             np.take(occ, j, axis=i))]
+        occ = np.take(occ, keep, axis=i)
+        cuts[i] = np.r_[cuts[i][keep], cuts[i][-1]]
+    return tuple(tuple(c.tolist()) for c in cuts), occ.shape, occ.tobytes()
 
 
 def _merge(ivs) -> list[tuple[float, float]]:

@@ -13,12 +13,34 @@ import numpy as np
 
 from .region import Region
 
-PARAMS, RENDER = 0, 1  # stream purposes: transform parameters; everything the renderer draws
+# THE registry of seed-stream domains. Purposes (last spawn-key item): the transform
+# parameters, and everything the renderer draws (background, distractors).
+PARAMS, RENDER = 0, 1
+# Domain tags, first spawn-key item of streams that are not a generated image's: the online
+# sampler's (ONLINE, split, epoch, index, purpose) and the albumentations transforms' per-item
+# (PLUGIN, split, epoch, item). Their keys have lengths no image key (split, index, purpose)
+# has, so no two domains ever share a stream.
+ONLINE = 0x6F6E6C6E
+PLUGIN = 0x616C6275
+STREAMS = {"image": "(split_index, index, purpose)", "online": "(ONLINE, split_index, epoch, index, purpose)",
+           "plugin": "(PLUGIN, split_index, epoch, item)"}
 
 
 def image_rng(seed: int, split_index: int, image_index: int, purpose: int = PARAMS) -> np.random.Generator:
     """The stream of one image for one purpose, spawned (never offset) from the spec seed."""
     ss = np.random.SeedSequence(int(seed), spawn_key=(int(split_index), int(image_index), int(purpose)))
+    return np.random.Generator(np.random.PCG64(ss))
+
+
+def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
+    """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
+    ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
+    return np.random.Generator(np.random.PCG64(ss))
+
+
+def plugin_rng(seed: int, split_index: int, epoch: int, item: int) -> np.random.Generator:
+    """The stream of one item an albumentations transform places: (PLUGIN, split, epoch, item)."""
+    ss = np.random.SeedSequence(int(seed), spawn_key=(PLUGIN, int(split_index), int(epoch), int(item)))
     return np.random.Generator(np.random.PCG64(ss))
 
 

@@ -1,0 +1,67 @@
+"""Library calls leave the caller's global state alone: the matplotlib backend (a notebook
+user keeps theirs), pyplot's open figures, OpenCV's thread count and the warnings filters
+are the same after preview, audit, score and generate as before."""
+
+from __future__ import annotations
+
+import warnings
+
+import cv2
+import matplotlib
+import pandas as pd
+import pytest
+
+from augsplit import api
+from augsplit.audit.entry import audit_dataset
+from augsplit.preview import preview
+from augsplit.threads import opencv_threads
+
+
+def _state():
+    import matplotlib.pyplot as plt
+
+    return (matplotlib.get_backend(), len(plt.get_fignums()), cv2.getNumThreads(), list(warnings.filters),
+            matplotlib.rcParams["backend"])
+
+
+@pytest.fixture
+def caller_state():
+    """A caller with a non-Agg backend, 3 OpenCV threads and a filter of their own."""
+    old_backend, old_threads = matplotlib.get_backend(), cv2.getNumThreads()
+    matplotlib.use("svg", force=True)  # any backend but Agg: the one preview used to force
+    cv2.setNumThreads(3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", category=ResourceWarning)
+        yield
+    cv2.setNumThreads(old_threads)
+    matplotlib.use(old_backend, force=True)
+
+
+def test_library_calls_restore_global_state(tmp_path, caller_state):
+    before = _state()
+    assert before[0] == "svg" and before[2] == 3
+    out = tmp_path / "ds"
+    api.generate_dataset("demo", out, store="none", progress=False, overwrite=False)
+    assert _state() == before
+    preview(out, tmp_path / "preview", per_split=2)
+    assert _state() == before
+    audit_dataset(out)
+    assert _state() == before
+    rows = pd.read_parquet(out / "manifest")
+    preds = pd.DataFrame({"image_id": rows["image_id"], "predicted": rows["class_name"]})
+    result = api.score_predictions(out, preds)
+    assert _state() == before
+    from augsplit.score import write_outputs
+
+    write_outputs([("model", result)], tmp_path / "score")  # the plots, made without pyplot
+    assert _state() == before
+    assert (tmp_path / "preview").is_dir() and any((tmp_path / "score").iterdir())
+
+
+def test_opencv_threads_restores_even_on_error():
+    cv2.setNumThreads(2)
+    with pytest.raises(RuntimeError):
+        with opencv_threads(1):
+            assert cv2.getNumThreads() == 1
+            raise RuntimeError("boom")
+    assert cv2.getNumThreads() == 2
