@@ -78,8 +78,10 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
             allow_incomplete: bool = False) -> list[Path]:
     """Write one contact sheet per split and the coverage map; return their paths. An
     unfinished folder is refused unless `allow_incomplete` (then what is made so far shows)."""
-    if per_split < 1 or columns < 1:
-        raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
+    if per_split < 1:
+        raise DatasetError(f"need at least one image per split, got {per_split}", where="per_split / --per-split")
+    if columns < 1:
+        raise DatasetError(f"need at least one column, got {columns}", where="columns / --columns")
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
     root, built = folder.root, folder.built
     df = read_rows(folder)

@@ -97,7 +97,7 @@ def _class_values(values: pd.Series, col: str, where: str) -> pd.Series:
     if col != PREDICTED_INDEX:
         return values.astype(str).str.strip()
     idx = pd.to_numeric(values, errors="coerce")
-    bad = idx.isna() | (idx != np.round(idx))
+    bad = idx.isna() | (idx != np.round(idx)) | (idx.abs() > 2.0 ** 53)  # beyond 2**53 a float is no exact index
     if bad.any():
         raise DatasetError(f"{col} must hold whole numbers (first bad at row {first_row(bad)})", where=where)
     return idx.astype(np.int64)
