@@ -158,3 +158,28 @@ def test_render_html_does_not_switch_the_backend():
         assert matplotlib.get_backend() == "svg"
     finally:
         matplotlib.use(before)
+
+
+def test_the_plan_decides_whether_the_protocol_is_per_class():
+    """A per-class guarantee, or regions that put classes in different places, make the
+    protocol per class; the small per-class shrinking keep_inside makes does not."""
+    from pathlib import Path
+    from types import SimpleNamespace
+
+    import yaml
+
+    from augsplit.build import open_mapping
+    from augsplit.score.inputs import per_class_protocol
+
+    configs = Path(__file__).resolve().parent.parent / "configs"
+
+    def protocol(d):
+        built = open_mapping(d)
+        return per_class_protocol(SimpleNamespace(plan=built.plan, spec=built.spec))
+
+    pc = yaml.safe_load((configs / "per_class_placement.yaml").read_text())
+    assert "per class" in protocol(pc)
+    pc["guarantees"] = []
+    assert "each class from its own region" in protocol(pc)
+    assert protocol(yaml.safe_load((configs / "scale_extrapolation.yaml").read_text())) is None
+    assert protocol(yaml.safe_load((configs / "translation_no_overlap.yaml").read_text())) is None

@@ -55,7 +55,8 @@ def score(manifest: pd.DataFrame, predictions: pd.DataFrame, train_split: str = 
         t["split"] = t["split"].astype(str)
     return ScoreResult(
         dataset=mwhere, predictions=where, train_split=train_split, reference_split=reference_split,
-        classes=classes.names, topk=ks, n_images=len(manifest), n_scored=len(rows), coverage=len(predictions) / len(manifest),
+        classes=classes.names, topk=ks, n_images=len(manifest), n_scored=len(rows),
+        coverage=len(predictions) / len(manifest),
         rows=rows, by_split=by_split, by_class=by_class, by_cell=by_cell, distance=distance, by_value=by_value,
         train_ranges=train_ranges, gaps=gaps, verdicts=verdicts, notes=tuple(notes),
         confidence=confidence, n_boot=n_boot, seed=seed, distance_reference=SAME_CLASS if same_class else ANY_CLASS)
@@ -101,7 +102,8 @@ def _check_ids(manifest: pd.DataFrame, predictions: pd.DataFrame, where: str, al
     msg = (f"predictions cover {n_scored} of {n_images} images ({n_scored / n_images:.1%}); "
            f"{len(missing)} missing (e.g. {few(list(missing))})")
     if not allow_partial:
-        raise DatasetError(msg, where=where, hint="pass allow_partial=True / --allow-partial to score the covered images only")
+        raise DatasetError(msg, where=where,
+                           hint="pass allow_partial=True / --allow-partial to score the covered images only")
     return [msg]
 
 
