@@ -9,12 +9,14 @@ import pandas as pd
 
 from augsplit.errors import AugsplitError, DatasetError
 
+from .distance import DISTANCE_AXES, VALUE_AXES
+
 CLASS_AXIS = "class"
-MANIFEST_COLUMNS = (
-    "image_id", "split", "split_index", "index", "class_name", "class_index", "cell", "cx_px", "cy_px", "x_deg", "y_deg",
-    "eccentricity_deg", "eccentricity", "polar_angle", "scale", "angle", "hue", "saturation", "brightness",
-)
-CIRCULAR_COLUMNS = ("polar_angle", "angle", "hue")
+ROW_COLUMNS = ("image_id", "split", "split_index", "index", "class_name", "class_index", "cell", "eccentricity")
+# the axis columns come from the axis lists in distance.py
+MANIFEST_COLUMNS = tuple(dict.fromkeys(ROW_COLUMNS + tuple(c for ax in DISTANCE_AXES for c in ax.columns)
+                                       + tuple(ax.column for ax in VALUE_AXES)))
+CIRCULAR_COLUMNS = tuple(ax.column for ax in VALUE_AXES if ax.kind == "circular")
 
 
 def read_manifest(dataset_dir) -> pd.DataFrame:
