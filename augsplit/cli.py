@@ -107,12 +107,25 @@ def _cmd_verify(a) -> int:
     return 1
 
 
-def _cmd_preview(a) -> int:
+def _out_option(out) -> Path:
+    """The --out folder, checked before any work (a usable target whose parent exists); an
+    error names the option."""
     from .io import check_folder_target
+
+    try:
+        p = check_folder_target(out)
+        if not p.absolute().parent.is_dir():
+            raise AugsplitError("cannot write: no such folder", where=str(p.absolute().parent))
+        return p
+    except AugsplitError as err:
+        raise type(err)(err.message, where=f"--out {err.where or out}", hint=err.hint) from None
+
+
+def _cmd_preview(a) -> int:
     from .preview import preview
 
     if a.out is not None:
-        check_folder_target(a.out)
+        _out_option(a.out)
     for path in preview(a.dataset, out=a.out, per_split=a.per_split, columns=a.columns,
                         allow_incomplete=a.allow_incomplete):
         print(path)
@@ -123,7 +136,10 @@ def _cmd_score(a) -> int:
     from .io import check_folder_target, is_stdout
     from .score import run_score
 
-    out = a.out if is_stdout(a.out) else check_folder_target(a.out or Path(a.dataset) / "score")
+    if a.out is None:
+        out = check_folder_target(Path(a.dataset) / "score")
+    else:
+        out = a.out if is_stdout(a.out) else _out_option(a.out)
     run_score(a.dataset, a.predictions, out, compare=a.compare, train_split=a.train_split,
               reference_split=a.reference_split, allow_partial=a.allow_partial,
               probabilities=True if a.probabilities else None, echo=not is_stdout(out))

@@ -2,13 +2,15 @@
 
 A contact sheet per split (a grid of its images, each captioned with its class and the values of
 the axes the spec varies) and a coverage map: how often each canvas pixel is covered by an
-object of each split, train and test in different colours, with the pixels both touch counted.
+object of each split, train and test in different colours, with the pixels both touch counted
+(under a per-class footprint guarantee, only pixels an object of the same class touches in both).
+Figures are `matplotlib.figure.Figure` objects: the caller's backend and pyplot state are untouched.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -34,19 +36,37 @@ TRAIN_RGB = np.array([0.12, 0.40, 0.85])
 TEST_RGB = np.array([0.95, 0.45, 0.05])
 
 _DEG_AXES = set(ANGLE_AXES)  # circular axes in degrees (the axis catalogue)
+ALL, PER_CLASS = "all", "per class"  # what a footprint guarantee excludes: any shared pixel, or same-class ones
 
 
 @dataclass(frozen=True)
 class Coverage:
-    """Per split: how many of its (sampled) images cover each canvas pixel."""
+    """Per split: how many of its (sampled) images cover each canvas pixel, and per class which
+    pixels its images of that class cover."""
 
     counts: dict  # split name -> (H, W) int array
     sampled: dict  # split name -> (rows used, rows in the split)
     roles: dict  # split name -> "train" | "test"
+    by_class: dict = field(default_factory=dict)  # split name -> {class index: (H, W) bool array}
 
     def union(self, role: str) -> np.ndarray:
         maps = [c for name, c in self.counts.items() if self.roles[name] == role]
         return np.sum(maps, axis=0) if maps else None
+
+    def shared(self, split: str, per_class: bool = False) -> np.ndarray:
+        """Pixels the split's objects cover that some train split's objects cover too; with
+        `per_class`, only pixels that objects of one class cover in both."""
+        trains = [n for n in self.counts if self.roles[n] == "train" and n != split]
+        if not per_class:
+            train = self.union("train")
+            return np.zeros(self.counts[split].shape, bool) if train is None else (train > 0) & (self.counts[split] > 0)
+        out = np.zeros(self.counts[split].shape, bool)
+        for c, mask in self.by_class.get(split, {}).items():
+            for t in trains:
+                other = self.by_class.get(t, {}).get(c)
+                if other is not None:
+                    out |= mask & other
+        return out
 
     def shared_pixels(self) -> int:
         """Canvas pixels covered by some train image and by some test image."""
@@ -60,8 +80,10 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
             allow_incomplete: bool = False) -> list[Path]:
     """Write one contact sheet per split and the coverage map; return their paths. An
     unfinished folder is refused unless `allow_incomplete` (then what is made so far shows)."""
-    if per_split < 1 or columns < 1:
-        raise DatasetError(f"need at least one image and one column, got {per_split} and {columns}")
+    if per_split < 1:
+        raise DatasetError(f"need at least one image per split, got {per_split}", where="per_split / --per-split")
+    if columns < 1:
+        raise DatasetError(f"need at least one column, got {columns}", where="columns / --columns")
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
     root, built = folder.root, folder.built
     df = read_rows(folder)
@@ -157,24 +179,30 @@ def coverage(built: Built, df, max_rows: int = MAX_COVERAGE_ROWS) -> Coverage:
     """Footprint counts per split, from the renderer's own footprints at each row's parameters."""
     h, w = built.plan.canvas.height, built.plan.canvas.width
     thr = built.plan.render.alpha_threshold
-    counts, sampled, roles = {}, {}, {}
+    counts, sampled, roles, by_class = {}, {}, {}, {}
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
         if not len(rows):
             continue
         pick = rows.iloc[pick_rows(len(rows), max_rows)]
         acc = np.zeros((h, w), dtype=np.int64)
+        masks: dict[int, np.ndarray] = {}
         cls, inst = pick["class_index"].to_numpy(), pick["instance"].to_numpy()
         for i, (_, row) in enumerate(pick.iterrows()):
             sprite = built.source.sprite(int(cls[i]), int(inst[i]))
-            add_footprint(acc, footprint(sprite, render_params(row), (h, w), thr))
+            fp = footprint(sprite, render_params(row), (h, w), thr)
+            add_footprint(acc, fp)
+            if int(cls[i]) not in masks:
+                masks[int(cls[i])] = np.zeros((h, w), dtype=np.int64)
+            add_footprint(masks[int(cls[i])], fp)
         counts[s.name], sampled[s.name], roles[s.name] = acc, (len(pick), len(rows)), s.role
-    return Coverage(counts, sampled, roles)
+        by_class[s.name] = {c: m > 0 for c, m in masks.items()}
+    return Coverage(counts, sampled, roles, by_class)
 
 
-def overlay(train: np.ndarray | None, test: np.ndarray | None) -> np.ndarray:
+def overlay(train: np.ndarray | None, test: np.ndarray | None, shared: np.ndarray | None = None) -> np.ndarray:
     """An RGB picture: train coverage in blue, test in orange, on white; a pixel both touch
-    is drawn black so a leak cannot hide in a blend of colours."""
+    (or, when given, a pixel of `shared`) is drawn black so a leak cannot hide in a blend."""
     shape = (train if train is not None else test).shape
     rgb = np.ones(shape + (3,))
     for m, colour in ((train, TRAIN_RGB), (test, TEST_RGB)):
@@ -184,7 +212,9 @@ def overlay(train: np.ndarray | None, test: np.ndarray | None) -> np.ndarray:
         a = np.log1p(m) / max(np.log1p(m.max()), 1e-9)
         a = np.where(m > 0, 0.25 + 0.75 * a, 0.0)[..., None]
         rgb = rgb * (1 - a) + colour * a
-    if train is not None and test is not None:
+    if shared is not None:
+        rgb[shared] = 0.0
+    elif train is not None and test is not None:
         rgb[(train > 0) & (test > 0)] = 0.0
     return rgb
 
@@ -203,27 +233,14 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
         ax.set_axis_off()
     cmaps = {"train": iter(TRAIN_CMAPS * 4), "test": iter(TEST_CMAPS * 4)}
     for ax, name in zip(axes[0], names):
-        m = cov.counts[name]
-        split = built.plan.split(name)
-        im = ax.imshow(np.ma.masked_equal(m, 0), cmap=next(cmaps[cov.roles[name]]), interpolation="nearest")
-        used, total = cov.sampled[name]
-        of = f"{used} images" if used == total else f"{used} of {total} images"
-        kind = split.role if split.kind == split.role else f"{split.role}, {split.kind}"
-        ax.set_title(f"{name} ({kind})\n{of}; {np.count_nonzero(m)} px covered", fontsize=9)
-        fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).set_label("images covering the pixel", fontsize=7)
-        _frame(ax, m.shape)
+        _split_panel(fig, ax, built.plan.split(name), cov, next(cmaps[cov.roles[name]]))
     if nrows == 2:
-        for ax, name in zip(axes[1], tests):
-            m = cov.counts[name]
-            shared = int(np.count_nonzero((train > 0) & (m > 0)))
-            ax.imshow(overlay(train, m), interpolation="nearest")
-            promised = footprint_guaranteed(built, name)
-            note = " (the spec guarantees 0)" if promised else ""
-            ax.set_title(f"train (blue) vs {name} (orange)\npixels touched by both: {shared}{note}", fontsize=9,
-                         color="firebrick" if promised and shared else "black")
-            _frame(ax, m.shape)
+        promises = [footprint_guarantee(built, name) for name in tests]
+        for ax, name, promise in zip(axes[1], tests, promises):
+            _pair_panel(ax, name, cov, promise)
+        both = "both, same class" if PER_CLASS in promises else "both"
         axes[1][0].legend(handles=[Patch(color=TRAIN_RGB, label="train"), Patch(color=TEST_RGB, label="test"),
-                                   Patch(color="black", label="both")], loc="upper left",
+                                   Patch(color="black", label=both)], loc="upper left",
                           bbox_to_anchor=(0.0, -0.02), ncol=3, fontsize=7, frameon=False)
     c = built.plan.canvas
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
@@ -234,11 +251,48 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     return path
 
 
+def _split_panel(fig, ax, split, cov: Coverage, cmap: str) -> None:
+    """One split's heat map: how many of its images cover each pixel."""
+    m = cov.counts[split.name]
+    im = ax.imshow(np.ma.masked_equal(m, 0), cmap=cmap, interpolation="nearest")
+    used, total = cov.sampled[split.name]
+    of = f"{used} images" if used == total else f"{used} of {total} images"
+    kind = split.role if split.kind == split.role else f"{split.role}, {split.kind}"
+    ax.set_title(f"{split.name} ({kind})\n{of}; {np.count_nonzero(m)} px covered", fontsize=9)
+    fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03).set_label("images covering the pixel", fontsize=7)
+    _frame(ax, m.shape)
+
+
+def _pair_panel(ax, name: str, cov: Coverage, promise: str | None) -> None:
+    """A test split over every train split; the pixels both touch black (under a per-class
+    guarantee, only pixels an object of the same class touches in both)."""
+    m = cov.counts[name]
+    per_class = promise == PER_CLASS
+    shared = cov.shared(name, per_class)
+    ax.imshow(overlay(cov.union("train"), m, shared), interpolation="nearest")
+    n = int(np.count_nonzero(shared))
+    what = "same-class pixels in both splits" if per_class else "pixels touched by both"
+    note = {PER_CLASS: "\n(per-class guarantee: the spec guarantees 0\nfor objects of the same class)",
+            ALL: " (the spec guarantees 0)"}.get(promise, "")
+    ax.set_title(f"train (blue) vs {name} (orange)\n{what}: {n}{note}", fontsize=9,
+                 color="firebrick" if promise and n else "black")
+    _frame(ax, m.shape)
+
+
+def footprint_guarantee(built: Built, test_split: str) -> str | None:
+    """How the plan guarantees disjoint footprints between this split and a train split: ALL
+    (no pixel shared), PER_CLASS (no pixel shared by objects of one class), or None."""
+    trains = {s.name for s in built.plan.splits if s.role == "train"}
+    found = [v.per_class for v in built.plan.verdicts
+             if v.kind == "footprint" and test_split in v.between and trains & set(v.between)]
+    if not found:
+        return None
+    return PER_CLASS if all(found) else ALL
+
+
 def footprint_guaranteed(built: Built, test_split: str) -> bool:
     """Whether the spec states `disjoint: footprint` between this split and a train split."""
-    trains = {s.name for s in built.plan.splits if s.role == "train"}
-    return any(g.disjoint == "footprint" and test_split in g.between and trains & set(g.between)
-               for g in built.plan.settings.claims)
+    return footprint_guarantee(built, test_split) is not None
 
 
 def _frame(ax, shape) -> None:

@@ -21,6 +21,7 @@ from augsplit.plan import draw
 from augsplit.plan.envelope import alpha_radius
 from augsplit.plan.geometry import bilinear_reach, reach, support_radius
 from augsplit.render import RenderParams
+from augsplit.score import inputs as score_inputs
 from augsplit.scene import native_diameter
 from augsplit.sources.base import ALPHA_THRESHOLD, Sprite
 from augsplit.space import axes as cat
@@ -60,7 +61,7 @@ def test_every_consumer_covers_the_axis(k):
     # albu: exactly one of the geometry / colour lists
     assert (k.name in albu.GEOMETRY_AXES) != (k.name in albu.COLOUR_AXES)
     # score: read from the manifest and scored (positions through the rendered centre)
-    assert k.column in score.MANIFEST_COLUMNS
+    assert k.column in score_inputs.MANIFEST_COLUMNS
     scored = {c for a in score.DISTANCE_AXES for c in a.columns} | {v.column for v in score.VALUE_AXES}
     assert k.name in scored or k.name in draw.POSITION and {"cx_px", "cy_px"} <= scored
     # parameter log: the same column and type as the manifest

@@ -128,3 +128,72 @@ def test_cli_preview_of_a_folder_that_is_no_dataset_is_exit_2(tmp_path, capsys):
 def test_preview_needs_at_least_one_image(datasets):
     with pytest.raises(DatasetError, match="at least one image"):
         pv.preview(datasets["files"], per_split=0)
+
+
+# ---- per-class guarantees --------------------------------------------------------------------
+
+PER_CLASS_SPEC = {
+    "seed": 31,
+    "canvas": {"width": 48, "height": 48, "mode": "rgb"},
+    "objects": {"kind": "polyomino", "cells": 3, "cell_px": 3, "colour": [220, 40, 40]},
+    "background": {"kind": "solid", "value": 0.9},
+    "axes": {"x": {"range": [6, 42]}, "y": {"range": [6, 42]}},
+    "splits": {"train": {"per_class": 8, "region": {"by_class": {"P3-00": {"x": [6, 14]}, "P3-01": {"x": [34, 42]}}}},
+               "test": {"per_class": 8, "region": {"by_class": {"P3-00": {"x": [34, 42]}, "P3-01": {"x": [6, 14]}}}}},
+    "guarantees": [{"disjoint": "footprint", "between": ["train", "test"], "per_class": True}],
+}
+
+
+@pytest.fixture(scope="module")
+def per_class(tmp_path_factory):
+    root = tmp_path_factory.mktemp("prev_pc")
+    out = root / "data"
+    generate(write_spec(root, PER_CLASS_SPEC), out, Options(store="none", progress=False))
+    return out
+
+
+def test_a_per_class_guarantee_compares_same_class_pixels_only(per_class):
+    """Each class is trained where the other is tested: pixels are shared across classes (the
+    class-blind count is large) but never within one class, which is all the guarantee says."""
+    built = open_dataset(per_class).built
+    df = read_manifest(per_class)
+    cov = pv.coverage(built, df)
+    assert pv.footprint_guarantee(built, "test") == pv.PER_CLASS
+    assert cov.shared("test", per_class=False).sum() > 20
+    assert cov.shared("test", per_class=True).sum() == 0
+    # the per-class masks are the class-blind counts split by class: they add back up
+    for name, counts in cov.counts.items():
+        assert np.array_equal(np.sum([m for m in cov.by_class[name].values()], axis=0) > 0, counts > 0)
+
+
+def test_same_class_sharing_is_counted_pixel_by_pixel():
+    # hand-made masks: class 0 shares pixel (0, 0); class 1 of train meets class 0 of test at (1, 1)
+    z = np.zeros((2, 2), bool)
+    tr0, tr1, te0 = z.copy(), z.copy(), z.copy()
+    tr0[0, 0] = True
+    tr1[1, 1] = True
+    te0[0, 0] = te0[1, 1] = True
+    cov = pv.Coverage({"train": (tr0 | tr1).astype(int), "test": te0.astype(int)}, {}, {"train": "train", "test": "test"},
+                      {"train": {0: tr0, 1: tr1}, "test": {0: te0}})
+    assert cov.shared("test", per_class=True).tolist() == [[True, False], [False, False]]
+    assert cov.shared("test", per_class=False).tolist() == [[True, False], [False, True]]
+
+
+def test_preview_leaves_the_callers_backend_alone(per_class, tmp_path):
+    import matplotlib
+    import matplotlib.pyplot as plt
+
+    before = matplotlib.get_backend()
+    matplotlib.use("svg")
+    try:
+        pv.preview(per_class, out=tmp_path / "p", per_split=2)
+        assert matplotlib.get_backend() == "svg" and plt.get_fignums() == []
+    finally:
+        matplotlib.use(before)
+
+
+def test_preview_option_errors_name_the_option(per_class, capsys):
+    assert main(["preview", str(per_class), "--per-split", "0"]) == 2
+    assert "--per-split" in capsys.readouterr().err
+    assert main(["preview", str(per_class), "--columns", "-1"]) == 2
+    assert "--columns" in capsys.readouterr().err
