@@ -202,13 +202,18 @@ def _embedded(row):
 
 
 def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
-    """The encoded image a row stores (its file, else its embedded bytes), None when it stores
-    none (`--store none`). ImageError when the file breaks the closed box or is too large."""
+    """The encoded image a row stores (its file, its shard archive's member, else its embedded
+    bytes), None when it stores none (`--store none`). ImageError when the file breaks the closed box or is too large."""
     where = row_where(row)
     limit = max_bytes(folder.hw, folder.channels)
     rel = row.get("file")
     if isinstance(rel, str) and rel:
         return folder.box.read(rel, limit, where)
+    tar = row.get("tar_file")
+    if isinstance(tar, str) and tar:
+        from .tarstore import read_member  # --store tar: the member at the row's offset
+
+        return read_member(folder, row)
     data = data if data is not None else _embedded(row)
     if data is not None and len(data) > limit:
         raise ImageError(f"embedded image of {len(data)} bytes, more than any image of this canvas", where=where)
