@@ -294,25 +294,25 @@ def _check_stored(folder, row, store, archive, res: PartResult) -> None:
     if not isinstance(recorded, str) or not recorded:
         res.no_byte_sum += 1
     elif tarstore.sha256_hex(data) != recorded:
-        res.bad_bytes.add(iid)
+        res.bad_bytes.add(where)
     try:
         img = decode(data, folder.channels, where, folder.hw)
     except ImageError as exc:
         res.broken.add(f"{exc.where}: {exc.message}")
         return
     if data.startswith(PNG_SIGNATURE) and pixel_sha256(img) != row["sha256"]:
-        res.bad_pixels.add(iid)
+        res.bad_pixels.add(where)
 
 
 def _check_render(folder, row, res: PartResult) -> None:
-    iid = str(row.get("image_id"))
+    where = row_where(row)
     try:
         same = pixel_sha256(rerender(folder, row).image) == row["sha256"]
     except (AugsplitError, ValueError, KeyError, TypeError) as exc:  # a row too damaged to render
-        res.bad_render.add(f"{iid} ({type(exc).__name__})")
+        res.bad_render.add(f"{where} ({type(exc).__name__})")
         return
     if not same:
-        res.bad_render.add(iid)
+        res.bad_render.add(where)
 
 
 class _Archive:
@@ -397,10 +397,10 @@ def _report(folder, plan, parts, results: list[PartResult], rep: Report, sample)
     for found, what in ((whole.bad_bytes, "do not match their checksum (stored bytes)"),
                         (whole.bad_pixels, "do not match their checksum (pixels)")):
         if found.n:
-            rep.add(f"{found.n} stored images {what}, e.g. {', '.join(found.examples[:3])}")
+            rep.add(f"{found.n} stored images {what}, e.g. {'; '.join(found.examples[:3])}")
     if whole.bad_render.n:
         rep.add(f"{whole.bad_render.n} images do not re-render identically from their rows, "
-                f"e.g. {', '.join(whole.bad_render.examples[:3])}")
+                f"e.g. {'; '.join(whole.bad_render.examples[:3])}")
     rep.rerendered = whole.rerendered
     if whole.no_byte_sum:
         rep.skipped.append(f"{whole.no_byte_sum} stored images have no recorded checksum of their bytes (written "

@@ -47,6 +47,8 @@ def encode(image: np.ndarray, fmt: str, quality: int) -> bytes:
 def decode(data: bytes, channels: int, where: str | None = None, hw: tuple[int, int] | None = None) -> np.ndarray:
     """Encoded bytes -> (H, W, C) uint8, RGB or grey (C = 1); with `hw`, the size is checked
     (before decoding, for PNG, so a small file cannot claim a huge picture)."""
+    if not data:  # OpenCV asserts on an empty buffer
+        raise ImageError("the stored image is empty (0 bytes)", where=where)
     if hw is not None:
         _check_png_size(data, hw, where)
     img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_GRAYSCALE if channels == 1 else cv2.IMREAD_COLOR)
