@@ -28,7 +28,8 @@ from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
-from .dataset.tarstore import TarShardWriter, row_record, sha256_hex
+from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
+from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text_atomic
 from .plan.draw import draw
@@ -206,7 +207,7 @@ def _add_to_tar(tar: TarShardWriter, table: pa.Table, job: ShardJob, suffix: str
     offsets = []
     for rec, blob in zip(records, data):
         rec["split"] = job.split
-        offsets.append(tar.add(rec["image_id"], suffix, blob, row_record(rec)))
+        offsets.append(tar.add(rec["image_id"], suffix, blob, fast_record(rec)))
     i = table.schema.get_field_index("tar_offset")
     table = table.set_column(i, table.schema.field(i), pa.array(offsets, pa.int64()))
     i = table.schema.get_field_index("image_bytes")
@@ -366,6 +367,9 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     _check_options(opts)
     built = built or open_spec(spec_path)
     out = Path(out)
+    if opts.store == "tar":  # every member name must fit a ustar header: refused before any work
+        for s in built.plan.splits:
+            tar_header(f"{s.name}-{max(s.total - 1, 0):07d}.json", 0)
     dask = opts.executor == "dask" or bool(opts.scheduler)
     # connect first: an unreachable scheduler must fail before the output folder is touched
     client, cluster = executors.dask_client(opts.scheduler, opts.workers) if dask else (None, None)

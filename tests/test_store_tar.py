@@ -7,6 +7,7 @@ of a row (loader, preview, audit) reads from the archives."""
 from __future__ import annotations
 
 import dataclasses
+import io
 import json
 import shutil
 import tarfile
@@ -168,3 +169,27 @@ def test_an_archive_without_a_part_is_a_stray(copy):
 def test_overwrite_removes_a_tar_dataset(spec_file, copy):
     generate(spec_file, copy, dataclasses.replace(SERIAL, store="parquet", overwrite=True))
     assert not (copy / lay.SHARDS_DIR).exists() and verify(copy).ok
+
+
+def test_the_archives_are_the_bytes_pythons_tarfile_writes_for_their_members(serial):
+    """Reference: the standard library's tarfile writing the same members as ustar with the
+    fixed owner, mode and time; the archive (headers, padding, end blocks) must be identical."""
+    for rel in sorted(shards(serial)):
+        raw = (serial / rel).read_bytes()
+        with tarfile.open(serial / rel) as tf:
+            members = [(m.name, tf.extractfile(m).read()) for m in tf.getmembers()]
+        buf = io.BytesIO()
+        with tarfile.open(fileobj=buf, mode="w", format=tarfile.USTAR_FORMAT) as tw:
+            for name, data in members:
+                ti = tarfile.TarInfo(name)
+                ti.size, ti.mtime, ti.mode, ti.uid, ti.gid, ti.uname, ti.gname = len(data), 0, 0o644, 0, 0, "", ""
+                tw.addfile(ti, io.BytesIO(data))
+        assert buf.getvalue() == raw, rel
+
+
+def test_a_name_too_long_for_ustar_is_refused_in_one_line():
+    from augsplit.dataset.tarstore import header
+    from augsplit.errors import DatasetError
+
+    with pytest.raises(DatasetError, match="1 to 100 bytes"):
+        header("s" * 95 + "-0000001.png", 10)  # ustar names hold at most 100 bytes (POSIX.1-1988)
