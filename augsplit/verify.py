@@ -29,8 +29,10 @@ from pathlib import Path
 
 import cv2
 import numpy as np
+import pyarrow as pa
 
 from . import executors
+from . import manifest as mf
 from .dataset import layout as lay
 from .dataset import open_dataset
 from .dataset import tarstore
@@ -42,6 +44,8 @@ from .scene import pixel_sha256
 SHOWN = 5  # problems of one kind listed by name
 BATCH_ROWS = 2048  # rows read at a time: memory is bounded by this, not by the dataset
 STORED = ("files", "parquet", "tar")  # stores whose every row holds an image
+# what the stored-image checks read of a row
+LIGHT_COLUMNS = ("image_id", "split", "index", "file", "image_bytes", "sha256", "file_sha256", "tar_file", "tar_offset")
 
 
 @dataclass
@@ -252,24 +256,41 @@ def check_part(folder, job: PartJob) -> PartResult:
     seen: set[int] = set()
     archive = _Archive(folder, job)
     offset = 0
-    for df in iter_batches(folder, parts=[part], batch_rows=BATCH_ROWS):
-        for row in df.to_dict("records"):
-            iid = str(row.get("image_id"))
-            index = int(row["index"])
-            res.rows += 1
-            res.classes[int(row["class_index"])] += 1
-            if iid != f"{job.split}-{index:07d}" or not first <= index < first + job.rows or index in seen:
+    for batch in iter_batches(folder, parts=[part], batch_rows=BATCH_ROWS, arrow=True):
+        ids = [str(v) for v in batch.column("image_id").to_pylist()]
+        res.rows += batch.num_rows
+        res.classes.update(batch.column("class_index").to_pylist())
+        for iid, i in zip(ids, batch.column("index").to_pylist()):
+            if iid != f"{job.split}-{i:07d}" or not first <= i < first + job.rows or i in seen:
                 res.bad_id.add(iid)
-            seen.add(index)
-            if int(row["split_index"]) != split_index or int(row["seed"]) != folder.spec.seed:
-                res.bad_key.add(iid)
+            seen.add(i)
+        keyed = ((batch.column("split_index").to_numpy(zero_copy_only=False) != split_index)
+                 | (batch.column("seed").to_numpy(zero_copy_only=False) != folder.spec.seed))
+        for j in np.flatnonzero(keyed):
+            res.bad_key.add(ids[j])
+        # whole rows only where a check needs every column (a tar member's JSON, a re-render):
+        # converting all 40-odd columns of every row costs more than the checks
+        whole = want is None or any(batch.column("tar_file").to_pylist())
+        rows = (batch if whole else batch.select(list(LIGHT_COLUMNS))).to_pylist()
+        for j, row in enumerate(rows):
             _check_stored(folder, row, store, archive, res)
-            if want is None or offset in want:
+            if want is None or offset + j in want:
                 res.rerendered += 1
-                _check_render(folder, row, res)
-            offset += 1
+                _check_render(folder, _numeric_nulls_as_nan(row if whole else batch.slice(j, 1).to_pylist()[0]), res)
+        offset += batch.num_rows
     archive.finish(res)
     return res
+
+
+FLOAT_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if pa.types.is_floating(c.type))
+
+
+def _numeric_nulls_as_nan(row: dict) -> dict:
+    """A row as the renderer reads it: NaN where Parquet stores a null float (as pandas reads it)."""
+    for k in FLOAT_COLUMNS:
+        if row.get(k, 0) is None:
+            row[k] = float("nan")
+    return row
 
 
 def _check_stored(folder, row, store, archive, res: PartResult) -> None:
