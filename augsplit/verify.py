@@ -167,9 +167,9 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
         raise DatasetError("the dataset has no manifest rows", where=str(folder.root / lay.MANIFEST_DIR))
     picks = _sample(parts, total, sample, seed)
     jobs = [PartJob(k, p.split, p.shard, p.rows, picks[k] if picks is not None else None) for k, p in enumerate(parts)]
-    results = _run(folder, jobs, workers, executor, scheduler, _progress(total, progress))
+    by_split, present = _run(folder, jobs, workers, executor, scheduler, _progress(total, progress))
     rep.checked = total
-    _report(folder, plan, parts, results, rep, sample)
+    _report(folder, plan, by_split, present, rep, sample)
     return rep
 
 
@@ -204,18 +204,23 @@ def _part_task(key: tuple, job: PartJob) -> PartResult:
     return check_part(_folder(key), job)
 
 
-def _run(folder, jobs, workers, executor, scheduler, bar) -> list[PartResult]:
+def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
+    """Run the part tasks; merge each result as it arrives (merging is order-free, so any
+    executor gives the same report) into one result per split, keeping per part only what the
+    stray-file scan needs: (split, shard) -> (rows, file suffixes)."""
     key = (str(folder.root.resolve()), not folder.complete)
     dask = executor == "dask" or bool(scheduler)
     client, cluster = executors.dask_client(scheduler, workers) if dask else (None, None)
     cv_threads = cv2.getNumThreads()
     cv2.setNumThreads(1)  # per-image work is small: OpenCV's pool only burns CPU (see generate)
     _FOLDERS[key] = folder
-    results: list = [None] * len(jobs)
+    by_split: dict[str, PartResult] = {}
+    present: dict[tuple[str, int], tuple[int, frozenset]] = {}
     try:
         stream = executors.run(functools.partial(_part_task, key), jobs, workers, executor=executor, client=client)
         for job, res in stream:
-            results[job.index] = res
+            by_split.setdefault(job.split, PartResult()).merge(res)
+            present[job.split, job.shard] = (job.rows, frozenset(res.suffixes))
             bar.update(job.rows)
     finally:
         bar.close()
@@ -223,7 +228,7 @@ def _run(folder, jobs, workers, executor, scheduler, bar) -> list[PartResult]:
         cv2.setNumThreads(cv_threads)
         if client is not None:
             executors.close_dask(client, cluster)
-    return results
+    return by_split, present
 
 
 class _NoBar:
@@ -392,12 +397,11 @@ class _Archive:
 # ---- the whole report ----------------------------------------------------------------------------
 
 
-def _report(folder, plan, parts, results: list[PartResult], rep: Report, sample) -> None:
-    by_split: dict[str, PartResult] = {}
+def _report(folder, plan, by_split: dict, present: dict, rep: Report, sample) -> None:
     whole = PartResult()
-    for p, r in zip(parts, results):
-        by_split.setdefault(p.split, PartResult()).merge(r)
-        whole.merge(r)
+    for name in folder.splits:
+        if name in by_split:
+            whole.merge(by_split[name])
     for s in plan.splits:
         got = by_split.get(s.name, PartResult())
         if got.rows != s.total:
@@ -412,7 +416,7 @@ def _report(folder, plan, parts, results: list[PartResult], rep: Report, sample)
     if whole.bad_id.n:
         rep.add(f"{whole.bad_id.n} image ids that are not their split and index within their shard, or repeat, "
                 f"e.g. {', '.join(whole.bad_id.examples[:3])}")
-    rep.add_found(_strays(folder, parts, results), "files without rows")
+    rep.add_found(_strays(folder, present), "files without rows")
     rep.add_found(whole.broken, "rows whose image cannot be read")
     rep.add_found(whole.archive, "shard archive problems")
     for found, what in ((whole.bad_bytes, "do not match their checksum (stored bytes)"),
@@ -431,12 +435,11 @@ def _report(folder, plan, parts, results: list[PartResult], rep: Report, sample)
                            f"(--sample {sample}); every stored image was still read and checked")
 
 
-def _strays(folder, parts, results) -> Found:
+def _strays(folder, present: dict) -> Found:
     """Files in images/ and shards/ that no row names, found by name alone (a row's file is
     `images/<split>/<split>-<index>.<ext>` and its shard has a part), listing each folder once:
     no set of every file name is held."""
     root, size = folder.root, folder.shard_size
-    present = {(p.split, p.shard): (p.rows, r.suffixes) for p, r in zip(parts, results)}
     strays = Found()
     images = root / lay.IMAGES_DIR
     for sub in _entries(images):
