@@ -389,7 +389,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         todo = [j for j in jobs if not shard_done(out, j)]
         total = sum(j.stop - j.start for j in jobs)
         done_before = total - sum(j.stop - j.start for j in todo)
-        _run(built, todo, out, opts, client, _progress(total, done_before, opts.progress))
+        _run(built, todo, out, opts, client, executors.progress(total, opts.progress, "generate", done_before))
     finally:
         cv2.setNumThreads(cv_threads)
         if client is not None:
@@ -456,21 +456,3 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
                "classes": list(built.plan.classes), "versions": mf.versions(), "complete": True}
     _guard_disk(lambda: write_text_atomic(out / lay.SUMMARY_FILE, json.dumps(summary, indent=2, sort_keys=True)), out)
     return summary
-
-
-class _NoBar:
-    def update(self, n):
-        pass
-
-    def close(self):
-        pass
-
-
-def _progress(total: int, initial: int, enabled: bool):
-    import sys
-
-    if not enabled or not sys.stderr.isatty():
-        return _NoBar()
-    from tqdm import tqdm
-
-    return tqdm(total=total, initial=initial, unit="img", desc="generate")

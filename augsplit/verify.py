@@ -22,7 +22,6 @@ import json
 import os
 import re
 import stat
-import sys
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -167,7 +166,7 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
         raise DatasetError("the dataset has no manifest rows", where=str(folder.root / lay.MANIFEST_DIR))
     picks = _sample(parts, total, sample, seed)
     jobs = [PartJob(k, p.split, p.shard, p.rows, picks[k] if picks is not None else None) for k, p in enumerate(parts)]
-    by_split, present = _run(folder, jobs, workers, executor, scheduler, _progress(total, progress))
+    by_split, present = _run(folder, jobs, workers, executor, scheduler, executors.progress(total, progress, "verify"))
     rep.checked = total
     _report(folder, plan, by_split, present, rep, sample)
     return rep
@@ -229,22 +228,6 @@ def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
         if client is not None:
             executors.close_dask(client, cluster)
     return by_split, present
-
-
-class _NoBar:
-    def update(self, n):
-        pass
-
-    def close(self):
-        pass
-
-
-def _progress(total: int, enabled: bool):
-    if not enabled or not sys.stderr.isatty():
-        return _NoBar()
-    from tqdm import tqdm
-
-    return tqdm(total=total, unit="img", desc="verify")
 
 
 # ---- one part ----------------------------------------------------------------------------------
