@@ -193,3 +193,25 @@ def test_a_name_too_long_for_ustar_is_refused_in_one_line():
 
     with pytest.raises(DatasetError, match="1 to 100 bytes"):
         header("s" * 95 + "-0000001.png", 10)  # ustar names hold at most 100 bytes (POSIX.1-1988)
+
+
+def test_a_failure_while_writing_the_archive_commits_nothing(spec_file, tmp_path, monkeypatch):
+    """The archive is complete and renamed before the part, the shard's commit, is renamed: a
+    shard whose archive could not be finished leaves neither, and a resumed run makes both."""
+    from augsplit.dataset import tarstore
+
+    out = tmp_path / "fail"
+    real_close = tarstore.TarShardWriter.close
+
+    def failing_close(self):
+        raise OSError(5, "Input/output error")
+
+    monkeypatch.setattr(tarstore.TarShardWriter, "close", failing_close)
+    from augsplit.errors import DatasetError
+
+    with pytest.raises(DatasetError, match="Input/output error"):
+        generate(spec_file, out, SERIAL)
+    assert not lay.part_files(out) and not list((out / lay.SHARDS_DIR).rglob("*.tar"))
+    monkeypatch.setattr(tarstore.TarShardWriter, "close", real_close)
+    generate(spec_file, out, dataclasses.replace(SERIAL, resume=True))
+    assert verify(out).ok
