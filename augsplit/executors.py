@@ -205,6 +205,25 @@ def run_dask(task: Callable, jobs: Iterable, workers: int = 2, scheduler: str | 
             close_dask(client, cluster)
 
 
+class _NoBar:
+    def update(self, n):
+        pass
+
+    def close(self):
+        pass
+
+
+def progress(total: int, enabled: bool, desc: str, initial: int = 0):
+    """A tqdm bar on stderr counting images as tasks finish, only on a terminal (else a no-op)."""
+    import sys
+
+    if not enabled or not sys.stderr.isatty():
+        return _NoBar()
+    from .progress import bar  # tqdm.auto: a widget in a notebook, text in a terminal
+
+    return bar(total=total, initial=initial, unit="img", desc=desc)
+
+
 def run(task: Callable, jobs: list, workers: int = 1, init: Callable | None = None, initargs: tuple = (),
         executor: str = "auto", scheduler: str | None = None, client=None) -> Iterator:
     """Dispatch: 'auto' is serial for one worker (or one job) and local processes otherwise."""

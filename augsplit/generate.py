@@ -29,6 +29,8 @@ from .dataset import create, open_dataset, read_rows
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.images import FORMATS, encode
+from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
+from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text_atomic
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
@@ -37,7 +39,7 @@ from .scene import make_scene, native_diameter, pixel_sha256
 from .spec import parse_spec
 from .threads import limit_opencv
 
-STORES = ("files", "parquet", "none")
+STORES = ("files", "parquet", "tar", "none")
 # OpenCV's ranges (imgcodecs: IMWRITE_JPEG_QUALITY 0-100, IMWRITE_WEBP_QUALITY 1-100 lossy);
 # PNG ignores the value, which must still be a quality a reader would recognise
 QUALITY = {"png": (0, 100), "jpeg": (0, 100), "webp": (1, 100)}
@@ -162,10 +164,17 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
         tmp = stack.enter_context(atomic_path(part))
         writer = stack.enter_context(_parquet_writer(tmp, mf.IMAGE_SCHEMA.with_metadata(meta)))
         dwriter = dtmp = None
+        tar = None
+        if opts.store == "tar":
+            # entered after the part: closed, fsynced and renamed before the part commits
+            tar = _guard_disk(lambda: stack.enter_context(_tar_writer(out, job)), out)
         try:
             for lo in range(job.start, job.stop, step):
                 cols, dcols = _render_rows(built, split, job, np.arange(lo, min(lo + step, job.stop)), out, opts, files)
-                _guard_disk(lambda: writer.write_table(mf.to_table(cols, mf.IMAGE_SCHEMA, meta)), part)
+                table = mf.to_table(cols, mf.IMAGE_SCHEMA, meta)
+                if tar is not None:
+                    table = _guard_disk(lambda: _add_to_tar(tar, table, job, FORMATS[opts.format]), part)
+                _guard_disk(lambda: writer.write_table(table), part)
                 if dcols:
                     if dwriter is None:
                         _guard_disk(lambda: create.writable_dir(out, lay.DISTRACTOR_DIR, job.split), out)
@@ -183,6 +192,33 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
         # later, left earlier), then the manifest part, whose presence is the shard's commit.
         _guard_disk(stack.close, part)
     return job.stop - job.start
+
+
+@contextmanager
+def _tar_writer(out: Path, job: ShardJob):
+    """The shard's archive, written to a temporary name and renamed into place on success."""
+    path = out / lay.tar_relpath(job.split, job.shard)
+    create.writable_dir(out, lay.SHARDS_DIR, job.split)
+    with atomic_path(path) as tmp, open(tmp, "xb", buffering=1 << 20) as f:
+        writer = TarShardWriter(f)
+        yield writer
+        writer.close()
+        f.flush()
+
+
+def _add_to_tar(tar: TarShardWriter, table: pa.Table, job: ShardJob, suffix: str) -> pa.Table:
+    """Append a row group's (image, JSON row) members; the table with image_bytes moved out
+    and each row's tar_offset filled in."""
+    data = table.column("image_bytes").to_pylist()
+    records = table.drop_columns(["image_bytes"]).to_pylist()
+    offsets = []
+    for rec, blob in zip(records, data):
+        rec["split"] = job.split
+        offsets.append(tar.add(rec["image_id"], suffix, blob, fast_record(rec)))
+    i = table.schema.get_field_index("tar_offset")
+    table = table.set_column(i, table.schema.field(i), pa.array(offsets, pa.int64()))
+    i = table.schema.get_field_index("image_bytes")
+    return table.set_column(i, table.schema.field(i), pa.nulls(len(data), pa.binary()))
 
 
 @contextmanager
@@ -218,7 +254,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     visible = np.zeros(n, dtype=np.float64)
     n_dist = np.zeros(n, dtype=np.int64)
     size_px = np.zeros(n, dtype=np.float64)
-    ids, file_col, data_col, sums = [], [], [], []
+    ids, file_col, data_col, sums, byte_sums = [], [], [], [], []
     dist_rows: list[dict] = []
     for r, vals in enumerate(values):
         row = dict(zip(names, vals))
@@ -234,6 +270,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
         size_px[r] = native_diameter(sprite, thr) * float(row["scale"])
         ids.append(image_id)
         data = encode(scene.image, opts.format, opts.quality) if opts.store != "none" else None
+        byte_sums.append(sha256_hex(data) if data is not None else None)
         if files is not None:
             rel = lay.image_relpath(job.split, image_id, FORMATS[opts.format])
             files.write(out / rel, data)
@@ -246,7 +283,9 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
             dist_rows.append({"image_id": image_id, **d})
     cols.update(image_id=ids, bbox_x0=bbox[:, 0], bbox_y0=bbox[:, 1], bbox_x1=bbox[:, 2], bbox_y1=bbox[:, 3],
                 footprint_px=footprint_px, visible_fraction=visible, n_distractors=n_dist, file=file_col,
-                image_bytes=data_col, sha256=sums, size_px=size_px, split_index=np.full(n, job.split_index),
+                image_bytes=data_col, sha256=sums, file_sha256=byte_sums,
+                tar_file=[lay.tar_relpath(job.split, job.shard) if opts.store == "tar" else ""] * n,
+                size_px=size_px, split_index=np.full(n, job.split_index),
                 seed=np.full(n, plan.seed), width=np.full(n, plan.canvas.width),
                 height=np.full(n, plan.canvas.height))
     if plan.canvas.viewing is not None:
@@ -362,6 +401,9 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     built = built or open_spec(spec_path)
     opts = _check_shards(built, opts)
     out = Path(out)
+    if opts.store == "tar":  # every member name must fit a ustar header: refused before any work
+        for s in built.plan.splits:
+            tar_header(f"{s.name}-{max(s.total - 1, 0):07d}.json", 0)
     dask = opts.executor == "dask" or bool(opts.scheduler)
     # connect first: an unreachable scheduler must fail before the output folder is touched
     client, cluster = executors.dask_client(opts.scheduler, opts.workers) if dask else (None, None)
@@ -380,7 +422,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         todo = [j for j in jobs if not shard_done(out, j)]
         total = sum(j.stop - j.start for j in jobs)
         done_before = total - sum(j.stop - j.start for j in todo)
-        _run(built, todo, out, opts, client, _progress(total, done_before, opts.progress))
+        _run(built, todo, out, opts, client, executors.progress(total, opts.progress, "generate", done_before))
     finally:
         restore_threads()
         if client is not None:
@@ -458,20 +500,3 @@ def low_visibility(folder, threshold: float = LOW_VISIBILITY) -> dict:
     vf = read_rows(folder, columns=["visible_fraction"])["visible_fraction"].to_numpy(dtype=float)
     return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 
-
-class _NoBar:
-    def update(self, n):
-        pass
-
-    def close(self):
-        pass
-
-
-def _progress(total: int, initial: int, enabled: bool):
-    import sys
-
-    if not enabled or not sys.stderr.isatty():
-        return _NoBar()
-    from .progress import bar as tqdm
-
-    return tqdm(total=total, initial=initial, unit="img", desc="generate")

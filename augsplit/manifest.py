@@ -69,7 +69,17 @@ IMAGE_COLUMNS: tuple[Column, ...] = (
     _c("file", pa.string(), "", "image path relative to the dataset folder ('' when not stored as a file)"),
     _c("image_bytes", pa.binary(), "", "encoded image when stored in Parquet (null otherwise)"),
     _c("sha256", pa.string(), "", "SHA-256 of the raw pixel array (H x W x C uint8, C-order)"),
+    _c("file_sha256", pa.string(), "", "SHA-256 of the stored image's encoded bytes as written (file, "
+       "image_bytes or tar member), so lossy formats are checked too; null with --store none"),
+    _c("tar_file", pa.string(), "", "with --store tar: the shard's tar relative to the dataset folder "
+       "(members <image_id>.<ext> and <image_id>.json); '' otherwise"),
+    _c("tar_offset", pa.int64(), "B", "with --store tar: byte offset of the image member's 512-byte ustar "
+       "header in tar_file; null otherwise"),
 )
+
+# Columns added after datasets were first written: a part made before them lacks them, and
+# readers see nulls there (verify counts what it therefore could not check).
+ADDED_COLUMNS = ("file_sha256", "tar_file", "tar_offset")
 
 DISTRACTOR_COLUMNS: tuple[Column, ...] = (
     _c("image_id", pa.string(), "", "the scene's image id"),

@@ -1,26 +1,72 @@
 """`augsplit verify`: a dataset folder is exactly what its spec says it is.
 
-Checks: every shard is present; each row has its image and each image file its row; counts
-per split and class match the plan; each row's seed key is the plan's; stored images decode
-to the canvas, inside the folder (a path out of it, a FIFO, a device or an oversized file is
-a finding, never read) and, for lossless formats, match each row's checksum; and each image
-re-renders identically from its row alone.
+Checks: every shard is present; each row has its image and each image file (or shard archive)
+its row; counts per split and class match the plan; each row's seed key is the plan's and its
+id its split and index; every stored image, whatever its format, is read inside the folder (a
+path out of it, a FIFO, a device or an oversized file is a finding, never read), matches the
+checksum of its bytes recorded at write time, decodes to the canvas and, when lossless,
+matches its pixel checksum; tar-store archives hold exactly each row's image and JSON row, in
+order; and each image (or a `sample` of them) re-renders identically from its row alone.
+
+Rows are read part by part in bounded batches (memory does not grow with the dataset); each
+manifest part is one task, run serially, on local processes or on dask like generate's
+shards, and the results are merged in part order, so every executor gives the same report.
+What could not be checked is counted in `Report.skipped`, never passed over in silence.
 """
 
 from __future__ import annotations
 
+import bisect
+import functools
+import json
+import os
+import re
+import stat
+from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import cv2
 import numpy as np
+import pyarrow as pa
 
+from . import executors
+from . import manifest as mf
 from .dataset import layout as lay
-from .dataset import open_dataset, read_rows
-from .dataset.images import PNG_SIGNATURE, ImageError, decode, rerender, row_where, stored_bytes
-from .errors import DatasetError
+from .dataset import open_dataset
+from .dataset import tarstore
+from .dataset.images import FORMATS, PNG_SIGNATURE, ImageError, decode, max_bytes, rerender, row_where, stored_bytes
+from .dataset.rows import iter_batches
+from .errors import AugsplitError, DatasetError
+from .plan.settings import settings_of
 from .scene import pixel_sha256
 
 SHOWN = 5  # problems of one kind listed by name
+BATCH_ROWS = 2048  # rows read at a time: memory is bounded by this, not by the dataset
+STORED = ("files", "parquet", "tar")  # stores whose every row holds an image
+# what the stored-image checks read of a row
+LIGHT_COLUMNS = ("image_id", "split", "index", "file", "image_bytes", "sha256", "file_sha256", "tar_file", "tar_offset")
+
+
+@dataclass
+class Found:
+    """How many of one kind of problem, and the first few (smallest, so the same whatever order
+    parts finish in)."""
+
+    n: int = 0
+    examples: list = field(default_factory=list)
+
+    def add(self, item: str) -> None:
+        self.n += 1
+        if len(self.examples) < SHOWN or item < self.examples[-1]:
+            bisect.insort(self.examples, item)
+            del self.examples[SHOWN:]
+
+    def merge(self, other: "Found") -> None:
+        for e in other.examples:
+            bisect.insort(self.examples, e)
+        del self.examples[SHOWN:]
+        self.n += other.n
 
 
 @dataclass
@@ -28,6 +74,7 @@ class Report:
     checked: int = 0
     rerendered: int = 0
     problems: list = field(default_factory=list)
+    skipped: list = field(default_factory=list)  # what could not be checked, each counted
 
     def add(self, what: str) -> None:
         self.problems.append(what)
@@ -39,83 +86,374 @@ class Report:
         if len(items) > SHOWN:
             self.add(f"... {len(items) - SHOWN} more {more}")
 
+    def add_found(self, found: Found, more: str) -> None:
+        for item in found.examples:
+            self.add(item)
+        if found.n > len(found.examples):
+            self.add(f"... {found.n - len(found.examples)} more {more}")
+
     @property
     def ok(self) -> bool:
         return not self.problems
 
 
-def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_incomplete: bool = False) -> Report:
-    """Verify a dataset; `sample` re-renders only that many rows (all when None).
-    An unfinished folder is refused unless `allow_incomplete` (then its absence of
-    dataset.json is itself a finding)."""
-    if sample is not None and (isinstance(sample, bool) or not isinstance(sample, (int, np.integer)) or sample < 0):
-        raise DatasetError(f"the sample size must be a whole number >= 0, got {sample!r}", where="--sample")
+@dataclass(frozen=True)
+class PartJob:
+    """One manifest part to verify: its position in `folder.parts_of()`, and which of its rows
+    (offsets within the part) to re-render, None for all."""
+
+    index: int
+    split: str
+    shard: int
+    rows: int
+    rerender: tuple[int, ...] | None = None
+
+    def __str__(self) -> str:
+        return f"{self.split}/part-{self.shard:06d}"
+
+
+@dataclass
+class PartResult:
+    rows: int = 0
+    rerendered: int = 0
+    no_byte_sum: int = 0  # stored images without a recorded checksum of their bytes
+    classes: Counter = field(default_factory=Counter)
+    suffixes: set = field(default_factory=set)  # the image-file suffixes its rows name
+    bad_key: Found = field(default_factory=Found)
+    bad_id: Found = field(default_factory=Found)
+    broken: Found = field(default_factory=Found)
+    bad_bytes: Found = field(default_factory=Found)
+    bad_pixels: Found = field(default_factory=Found)
+    bad_render: Found = field(default_factory=Found)
+    archive: Found = field(default_factory=Found)
+
+    FOUND = ("bad_key", "bad_id", "broken", "bad_bytes", "bad_pixels", "bad_render", "archive")
+
+    def merge(self, other: "PartResult") -> None:
+        self.rows += other.rows
+        self.rerendered += other.rerendered
+        self.no_byte_sum += other.no_byte_sum
+        self.classes.update(other.classes)
+        self.suffixes |= other.suffixes
+        for name in self.FOUND:
+            getattr(self, name).merge(getattr(other, name))
+
+
+def _check_sample(sample) -> None:
+    if sample is not None and (isinstance(sample, bool) or not isinstance(sample, (int, np.integer)) or sample < 1):
+        raise DatasetError(f"the sample size must be a whole number >= 1, got {sample!r}", where="--sample")
+
+
+def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_incomplete: bool = False, *,
+           workers: int = 1, executor: str = "auto", scheduler: str | None = None, progress: bool = False) -> Report:
+    """Verify a dataset; `sample` re-renders only that many random rows (all when None) while
+    every stored image is still read and checked. `workers`, `executor` and `scheduler` run the
+    per-part checks as generate runs shards. An unfinished folder is refused unless
+    `allow_incomplete` (then its absence of dataset.json is itself a finding)."""
+    _check_sample(sample)
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise DatasetError(f"workers must be at least 1, got {workers!r}", where="--workers")
+    if executor not in executors.EXECUTORS:
+        raise DatasetError(f"unknown executor '{executor}'; use one of {', '.join(executors.EXECUTORS)}",
+                           where="--executor")
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
-    root = folder.root
-    plan = folder.plan
+    plan = folder.plan  # built here, so forked workers inherit it
     rep = Report()
     if not folder.complete:
         rep.add("dataset.json is missing: generation did not finish (rerun generate --resume, or --finalize)")
-    df = read_rows(folder)
-    if df.empty:
-        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
-    rep.checked = len(df)
-    dup = df["image_id"].duplicated()
-    if dup.any():
-        rep.add(f"{int(dup.sum())} duplicated image ids, e.g. {df['image_id'][dup].iloc[0]}")
-    for s in plan.splits:
-        got = df[df["split"] == s.name]
-        if len(got) != s.total:
-            rep.add(f"split {s.name}: {len(got)} rows, the plan says {s.total}")
-        counts = got["class_index"].value_counts().to_dict()
-        for c, n in enumerate(s.counts):
-            if counts.get(c, 0) != n:
-                rep.add(f"split {s.name}, class {plan.classes[c]}: {counts.get(c, 0)} rows, the plan says {n}")
-                break
-        keyed = (got["split_index"] != s.index) | (got["seed"] != plan.seed)
-        if keyed.any():
-            rep.add(f"split {s.name}: {int(keyed.sum())} rows whose seed key (seed, split_index) is not the plan's, "
-                    f"e.g. {got['image_id'][keyed].iloc[0]}")
-    _check_files(root, df, rep)
-    _check_pixels(folder, df, rep, sample, seed)
+    parts = folder.parts_of(lay.MANIFEST_DIR)
+    total = sum(p.rows for p in parts)
+    if total == 0:
+        raise DatasetError("the dataset has no manifest rows", where=str(folder.root / lay.MANIFEST_DIR))
+    picks = _sample(parts, total, sample, seed)
+    jobs = [PartJob(k, p.split, p.shard, p.rows, picks[k] if picks is not None else None) for k, p in enumerate(parts)]
+    by_split, present = _run(folder, jobs, workers, executor, scheduler, executors.progress(total, progress, "verify"))
+    rep.checked = total
+    _report(folder, plan, by_split, present, rep, sample)
     return rep
 
 
-def _check_files(root: Path, df, rep: Report) -> None:
-    """Every image file under images/ belongs to a row (rows' own files are read later)."""
-    files = df["file"].fillna("")
-    listed = set(files[files != ""])
-    images = root / lay.IMAGES_DIR
-    on_disk = ({str(p.relative_to(root)) for p in images.rglob("*") if p.is_file() or p.is_symlink()}
-               if images.is_dir() else set())
-    rep.add_each([f"image without a row: {rel}" for rel in sorted(on_disk - listed)], "images without rows")
+def _sample(parts, total: int, sample, seed: int) -> list[tuple[int, ...]] | None:
+    """Row offsets to re-render in each part: `sample` distinct rows of the whole dataset."""
+    if sample is None or sample >= total:
+        return None
+    chosen = np.sort(np.random.default_rng(seed).choice(total, size=sample, replace=False))
+    starts = np.cumsum([0] + [p.rows for p in parts])
+    out = []
+    for k in range(len(parts)):
+        lo, hi = np.searchsorted(chosen, [starts[k], starts[k + 1]])
+        out.append(tuple(int(v) for v in chosen[lo:hi] - starts[k]))
+    return out
 
 
-def _check_pixels(folder, df, rep: Report, sample, seed) -> None:
-    """Stored images: inside the box, decodable, lossless ones equal to the checksum. Then the
-    re-render of every (or a sample of) row."""
-    broken, bad_sum, bad_render = [], [], []
-    records = df.to_dict("records")
-    for row in records:
-        where = row_where(row)
+# ---- running the per-part tasks -----------------------------------------------------------------
+
+_FOLDERS: dict = {}  # per process: the opened folder of a run (the driver's own, inherited on fork)
+
+
+def _folder(key: tuple):
+    folder = _FOLDERS.get(key)
+    if folder is None:
+        # a fresh process (spawned, or a dask worker): one OpenCV thread, as generate's workers
+        cv2.setNumThreads(1)
+        folder = _FOLDERS[key] = open_dataset(key[0], allow_incomplete=key[1])
+    return folder
+
+
+def _part_task(key: tuple, job: PartJob) -> PartResult:
+    return check_part(_folder(key), job)
+
+
+def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
+    """Run the part tasks; merge each result as it arrives (merging is order-free, so any
+    executor gives the same report) into one result per split, keeping per part only what the
+    stray-file scan needs: (split, shard) -> (rows, file suffixes)."""
+    key = (str(folder.root.resolve()), not folder.complete)
+    dask = executor == "dask" or bool(scheduler)
+    client, cluster = executors.dask_client(scheduler, workers) if dask else (None, None)
+    cv_threads = cv2.getNumThreads()
+    cv2.setNumThreads(1)  # per-image work is small: OpenCV's pool only burns CPU (see generate)
+    _FOLDERS[key] = folder
+    by_split: dict[str, PartResult] = {}
+    present: dict[tuple[str, int], tuple[int, frozenset]] = {}
+    try:
+        stream = executors.run(functools.partial(_part_task, key), jobs, workers, executor=executor, client=client)
+        for job, res in stream:
+            by_split.setdefault(job.split, PartResult()).merge(res)
+            present[job.split, job.shard] = (job.rows, frozenset(res.suffixes))
+            bar.update(job.rows)
+    finally:
+        bar.close()
+        _FOLDERS.pop(key, None)
+        cv2.setNumThreads(cv_threads)
+        if client is not None:
+            executors.close_dask(client, cluster)
+    return by_split, present
+
+
+# ---- one part ----------------------------------------------------------------------------------
+
+
+def check_part(folder, job: PartJob) -> PartResult:
+    """Every row of one manifest part: identity, seed key, stored image, re-render."""
+    part = folder.parts_of(lay.MANIFEST_DIR)[job.index]
+    res = PartResult()
+    store = folder.layout.get("store")
+    split_index = folder.splits.index(job.split)
+    first = job.shard * folder.shard_size
+    want = None if job.rerender is None else set(job.rerender)
+    seen: set[int] = set()
+    archive = _Archive(folder, job)
+    offset = 0
+    spec_seed = settings_of(folder.spec).seed
+    for batch in iter_batches(folder, parts=[part], batch_rows=BATCH_ROWS, arrow=True):
+        ids = [str(v) for v in batch.column("image_id").to_pylist()]
+        res.rows += batch.num_rows
+        res.classes.update(batch.column("class_index").to_pylist())
+        for iid, i in zip(ids, batch.column("index").to_pylist()):
+            if iid != f"{job.split}-{i:07d}" or not first <= i < first + job.rows or i in seen:
+                res.bad_id.add(iid)
+            seen.add(i)
+        keyed = ((batch.column("split_index").to_numpy(zero_copy_only=False) != split_index)
+                 | (batch.column("seed").to_numpy(zero_copy_only=False) != spec_seed))
+        for j in np.flatnonzero(keyed):
+            res.bad_key.add(ids[j])
+        # whole rows only where a check needs every column (a tar member's JSON, a re-render):
+        # converting all 40-odd columns of every row costs more than the checks
+        whole = want is None or any(batch.column("tar_file").to_pylist())
+        rows = (batch if whole else batch.select(list(LIGHT_COLUMNS))).to_pylist()
+        for j, row in enumerate(rows):
+            _check_stored(folder, row, store, archive, res)
+            if want is None or offset + j in want:
+                res.rerendered += 1
+                _check_render(folder, _numeric_nulls_as_nan(row if whole else batch.slice(j, 1).to_pylist()[0]), res)
+        offset += batch.num_rows
+    archive.finish(res)
+    return res
+
+
+FLOAT_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if pa.types.is_floating(c.type))
+
+
+def _numeric_nulls_as_nan(row: dict) -> dict:
+    """A row as the renderer reads it: NaN where Parquet stores a null float (as pandas reads it)."""
+    for k in FLOAT_COLUMNS:
+        if row.get(k, 0) is None:
+            row[k] = float("nan")
+    return row
+
+
+def _check_stored(folder, row, store, archive, res: PartResult) -> None:
+    where, iid = row_where(row), str(row.get("image_id"))
+    rel = row.get("file")
+    if isinstance(rel, str) and rel:
+        stem, suffix = os.path.splitext(rel)
+        if stem != f"{lay.IMAGES_DIR}/{row.get('split')}/{iid}" or suffix not in FORMATS.values():
+            res.broken.add(f"{where}: the row names {rel!r}, not its own image file")
+        res.suffixes.add(suffix)
+    try:
+        tar = row.get("tar_file")
+        data = archive.next(row, res) if isinstance(tar, str) and tar else stored_bytes(folder, row)
+    except ImageError as exc:
+        res.broken.add(f"{exc.where}: {exc.message}")
+        return
+    if data is None:
+        if store in STORED:
+            res.broken.add(f"{where}: the row stores no image, though the dataset's store is {store}")
+        return
+    recorded = row.get("file_sha256")
+    if not isinstance(recorded, str) or not recorded:
+        res.no_byte_sum += 1
+    elif tarstore.sha256_hex(data) != recorded:
+        res.bad_bytes.add(where)
+    try:
+        img = decode(data, folder.channels, where, folder.hw)
+    except ImageError as exc:
+        res.broken.add(f"{exc.where}: {exc.message}")
+        return
+    if data.startswith(PNG_SIGNATURE) and pixel_sha256(img) != row["sha256"]:
+        res.bad_pixels.add(where)
+
+
+def _check_render(folder, row, res: PartResult) -> None:
+    where = row_where(row)
+    try:
+        same = pixel_sha256(rerender(folder, row).image) == row["sha256"]
+    except (AugsplitError, ValueError, KeyError, TypeError) as exc:  # a row too damaged to render
+        res.bad_render.add(f"{where} ({type(exc).__name__})")
+        return
+    if not same:
+        res.bad_render.add(where)
+
+
+class _Archive:
+    """A part's shard archive read in one pass alongside its rows (tar store)."""
+
+    def __init__(self, folder, job: PartJob):
+        self.folder, self.job = folder, job
+        self.rel = lay.tar_relpath(job.split, job.shard)
+        self.limit = max_bytes(folder.hw, folder.channels)
+        self.members = None
+        self.dead = None  # the error that ended the archive
+
+    def _next_member(self, where):
+        if self.dead is not None:
+            raise ImageError(f"not read: {self.dead}", where=where)
+        if self.members is None:
+            self.members = tarstore.iter_members(self.folder, self.rel, where, max(self.limit, tarstore.JSON_MAX_BYTES))
         try:
-            data = stored_bytes(folder, row)
-            if data is not None:
-                img = decode(data, folder.channels, where, folder.hw)
-                if data.startswith(PNG_SIGNATURE) and pixel_sha256(img) != row["sha256"]:
-                    bad_sum.append(row["image_id"])
+            return next(self.members)
+        except StopIteration:
+            self.dead = f"shard archive {self.rel} ends before this row's members"
         except ImageError as exc:
-            broken.append(f"{exc.where}: {exc.message}")
-    rows = np.arange(len(records))
-    if sample is not None and sample < len(records):
-        rows = np.sort(np.random.default_rng(seed).choice(len(records), size=sample, replace=False))
-    for i in rows:
-        row = records[int(i)]
-        rep.rerendered += 1
-        if pixel_sha256(rerender(folder, row).image) != row["sha256"]:
-            bad_render.append(row["image_id"])
-    rep.add_each(broken, "rows whose image cannot be read")
-    if bad_sum:
-        rep.add(f"{len(bad_sum)} stored images do not match their checksum, e.g. {', '.join(bad_sum[:3])}")
-    if bad_render:
-        rep.add(f"{len(bad_render)} images do not re-render identically from their rows, e.g. {', '.join(bad_render[:3])}")
+            self.dead = exc.message
+        raise ImageError(self.dead, where=where)
+
+    def next(self, row, res: PartResult) -> bytes:
+        where, iid = row_where(row), str(row.get("image_id"))
+        if row.get("tar_file") != self.rel:
+            res.archive.add(f"{where}: tar_file {row.get('tar_file')!r} is not its shard's archive {self.rel}")
+        ti, data = self._next_member(where)
+        stem, _, ext = ti.name.rpartition(".")
+        if stem != iid or f".{ext}" not in FORMATS.values() or data is None:
+            raise ImageError(f"member {ti.name!r} of {self.rel} is where this row's image should be", where=where)
+        if tarstore.plain(row.get("tar_offset")) != ti.offset:
+            res.archive.add(f"{where}: tar_offset {row.get('tar_offset')} but the image's header is at {ti.offset}")
+        tj, blob = self._next_member(where)
+        if tj.name != f"{iid}.json" or blob is None:
+            res.archive.add(f"{where}: member {tj.name!r} of {self.rel} is where the row's JSON should be")
+        else:
+            try:
+                same = json.loads(blob) == tarstore.row_record(row)
+            except ValueError:
+                same = False
+            if not same:
+                res.archive.add(f"{where}: the JSON member {tj.name} differs from the manifest row")
+        return data
+
+    def finish(self, res: PartResult) -> None:
+        if self.members is None or self.dead is not None:
+            return
+        extra = sum(1 for _ in self.members)
+        if extra:
+            res.archive.add(f"shard archive {self.rel}: {extra} members after the last row's")
+
+
+# ---- the whole report ----------------------------------------------------------------------------
+
+
+def _report(folder, plan, by_split: dict, present: dict, rep: Report, sample) -> None:
+    whole = PartResult()
+    for name in folder.splits:
+        if name in by_split:
+            whole.merge(by_split[name])
+    for s in plan.splits:
+        got = by_split.get(s.name, PartResult())
+        if got.rows != s.total:
+            rep.add(f"split {s.name}: {got.rows} rows, the plan says {s.total}")
+        for c, n in enumerate(s.counts):
+            if got.classes.get(c, 0) != n:
+                rep.add(f"split {s.name}, class {plan.classes[c]}: {got.classes.get(c, 0)} rows, the plan says {n}")
+                break
+        if got.bad_key.n:
+            rep.add(f"split {s.name}: {got.bad_key.n} rows whose seed key (seed, split_index) is not the plan's, "
+                    f"e.g. {got.bad_key.examples[0]}")
+    if whole.bad_id.n:
+        rep.add(f"{whole.bad_id.n} image ids that are not their split and index within their shard, or repeat, "
+                f"e.g. {', '.join(whole.bad_id.examples[:3])}")
+    rep.add_found(_strays(folder, present), "files without rows")
+    rep.add_found(whole.broken, "rows whose image cannot be read")
+    rep.add_found(whole.archive, "shard archive problems")
+    for found, what in ((whole.bad_bytes, "do not match their checksum (stored bytes)"),
+                        (whole.bad_pixels, "do not match their checksum (pixels)")):
+        if found.n:
+            rep.add(f"{found.n} stored images {what}, e.g. {'; '.join(found.examples[:3])}")
+    if whole.bad_render.n:
+        rep.add(f"{whole.bad_render.n} images do not re-render identically from their rows, "
+                f"e.g. {'; '.join(whole.bad_render.examples[:3])}")
+    rep.rerendered = whole.rerendered
+    if whole.no_byte_sum:
+        rep.skipped.append(f"{whole.no_byte_sum} stored images have no recorded checksum of their bytes (written "
+                           "before it was recorded): only decoded, size-checked and, for PNG, pixel-checked")
+    if whole.rerendered < rep.checked:
+        rep.skipped.append(f"{rep.checked - whole.rerendered} of {rep.checked} rows not re-rendered "
+                           f"(--sample {sample}); every stored image was still read and checked")
+
+
+def _strays(folder, present: dict) -> Found:
+    """Files in images/ and shards/ that no row names, found by name alone (a row's file is
+    `images/<split>/<split>-<index>.<ext>` and its shard has a part), listing each folder once:
+    no set of every file name is held."""
+    root, size = folder.root, folder.shard_size
+    strays = Found()
+    images = root / lay.IMAGES_DIR
+    for sub in _entries(images):
+        if not sub.is_dir(follow_symlinks=False):
+            strays.add(f"image without a row: {lay.IMAGES_DIR}/{sub.name}")
+            continue
+        pattern = re.compile(re.escape(sub.name) + r"-(\d{7,})(\.\w+)")
+        for f in _entries(Path(sub.path)):
+            m = pattern.fullmatch(f.name)
+            listed = False
+            if m and (f.is_file(follow_symlinks=False) or f.is_symlink()):
+                index = int(m.group(1))
+                rows, suffixes = present.get((sub.name, index // size), (0, set()))
+                listed = index % size < rows and m.group(2) in suffixes
+            if not listed:
+                strays.add(f"image without a row: {lay.IMAGES_DIR}/{sub.name}/{f.name}")
+    for sub in _entries(root / lay.SHARDS_DIR):
+        for f in _entries(Path(sub.path)) if sub.is_dir(follow_symlinks=False) else [sub]:
+            m = lay.TAR_RE.fullmatch(f.name)
+            split = sub.name.partition("=")[2]
+            ok = m and sub.name.startswith("split=") and (split, int(m.group(1))) in present and \
+                stat.S_ISREG(f.stat(follow_symlinks=False).st_mode)
+            if not ok:
+                strays.add(f"shard archive without a manifest part: {os.path.relpath(f.path, root)}")
+    return strays
+
+
+def _entries(path: Path):
+    if not path.is_dir() or path.is_symlink():
+        return []
+    with os.scandir(path) as it:
+        yield from it

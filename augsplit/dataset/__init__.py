@@ -5,7 +5,8 @@ generator's side (create, resume, --overwrite). Readers import this, never the g
     layout     names and paths of the layout (spec.json, dataset.json, manifest/, images/ ...)
     folder     open_dataset(path, allow_incomplete=False) -> DatasetFolder
     rows       read_rows / iter_batches / read_manifest
-    images     the image of a row (file, bytes or re-render) inside a closed box; encode, decode
+    images     the image of a row (file, bytes, tar member or re-render) inside a closed box; codecs
+    tarstore   --store tar: one deterministic ustar archive per shard; write, read a member
     create     the generator's folder: prepare, check_resumable, part_complete, remove_temporaries
     overwrite  clear(out, spec_path): remove augsplit's own layout and nothing else
 """

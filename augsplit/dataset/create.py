@@ -76,7 +76,7 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
 
 def remove_temporaries(out: Path) -> None:
     """Sweep temporaries of atomic writes a killed run left in augsplit's own folders."""
-    for entry in lay.TABLES + (lay.IMAGES_DIR,):
+    for entry in lay.TABLES + (lay.IMAGES_DIR, lay.SHARDS_DIR):
         base = out / entry
         if base.is_dir() and not base.is_symlink():
             for sub in base.iterdir():
@@ -107,6 +107,8 @@ def writable_dir(out: Path, table_or_images: str, split: str) -> Path:
     checked to lie inside `out` with no symbolic link on the way."""
     if table_or_images == lay.IMAGES_DIR:
         d = lay.image_dir(out, split)
+    elif table_or_images == lay.SHARDS_DIR:
+        d = (out / lay.tar_relpath(split, 0)).parent
     else:
         d = lay.part_path(out, table_or_images, split, 0).parent
     lay.no_symlink_below(out, d)

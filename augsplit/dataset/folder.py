@@ -221,9 +221,12 @@ def scan_parts(root: Path, table: str, recorded_hash: str, splits: tuple[str, ..
 
 
 def check_schema(schema: pa.Schema, declared: pa.Schema, where: str) -> None:
-    """Every declared column is there with its declared type (extra columns are ignored)."""
+    """Every declared column is there with its declared type (extra columns are ignored; a
+    column added later, `manifest.ADDED_COLUMNS`, may be absent from an older part)."""
     for f in declared:
         i = schema.get_field_index(f.name)
+        if i < 0 and f.name in mf.ADDED_COLUMNS:
+            continue
         if i < 0:
             raise DatasetError(f"the part has no column '{f.name}' (declared in augsplit.manifest)", where=where)
         if not schema.field(i).type.equals(f.type):

@@ -47,6 +47,8 @@ def encode(image: np.ndarray, fmt: str, quality: int) -> bytes:
 def decode(data: bytes, channels: int, where: str | None = None, hw: tuple[int, int] | None = None) -> np.ndarray:
     """Encoded bytes -> (H, W, C) uint8, RGB or grey (C = 1); with `hw`, the size is checked
     (before decoding, for PNG, so a small file cannot claim a huge picture)."""
+    if not data:  # OpenCV asserts on an empty buffer
+        raise ImageError("the stored image is empty (0 bytes)", where=where)
     if hw is not None:
         _check_png_size(data, hw, where)
     img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_GRAYSCALE if channels == 1 else cv2.IMREAD_COLOR)
@@ -202,13 +204,18 @@ def _embedded(row):
 
 
 def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
-    """The encoded image a row stores (its file, else its embedded bytes), None when it stores
-    none (`--store none`). ImageError when the file breaks the closed box or is too large."""
+    """The encoded image a row stores (its file, its shard archive's member, else its embedded
+    bytes), None when it stores none (`--store none`). ImageError when the file breaks the closed box or is too large."""
     where = row_where(row)
     limit = max_bytes(folder.hw, folder.channels)
     rel = row.get("file")
     if isinstance(rel, str) and rel:
         return folder.box.read(rel, limit, where)
+    tar = row.get("tar_file")
+    if isinstance(tar, str) and tar:
+        from .tarstore import read_member  # --store tar: the member at the row's offset
+
+        return read_member(folder, row)
     data = data if data is not None else _embedded(row)
     if data is not None and len(data) > limit:
         raise ImageError(f"embedded image of {len(data)} bytes, more than any image of this canvas", where=where)

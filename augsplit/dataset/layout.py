@@ -15,12 +15,14 @@ from ..manifest import PARTITION
 
 SPEC_FILE, SUMMARY_FILE = "spec.json", "dataset.json"
 MANIFEST_DIR, DISTRACTOR_DIR, IMAGES_DIR = "manifest", "distractors", "images"
+SHARDS_DIR = "shards"  # --store tar: shards/split=<name>/part-NNNNNN.tar
 AUDIT_DIR, SCORE_DIR, PREVIEW_DIR = "audit", "score", "preview"  # default report folders of each command
 TABLES = (MANIFEST_DIR, DISTRACTOR_DIR)
 REPORT_DIRS = (AUDIT_DIR, SCORE_DIR, PREVIEW_DIR)
-OWN_ENTRIES = (SPEC_FILE, SUMMARY_FILE, *TABLES, IMAGES_DIR, *REPORT_DIRS)
+OWN_ENTRIES = (SPEC_FILE, SUMMARY_FILE, *TABLES, IMAGES_DIR, SHARDS_DIR, *REPORT_DIRS)
 
 PART_RE = re.compile(r"part-(\d{6,})\.parquet")
+TAR_RE = re.compile(r"part-(\d{6,})\.tar")
 IMAGE_RE = re.compile(r"(?P<split>.+)-\d{7,}\.(png|jpg|webp)")
 REPORT_SUFFIXES = (".json", ".html", ".csv", ".png")  # what audit, score and preview write
 
@@ -69,6 +71,11 @@ def shard_of(part: Path) -> int:
 def expected_parts(totals: dict[str, int], shard_size: int) -> set[tuple[str, int]]:
     """(split, shard) of every manifest part a dataset of these split sizes and shard size has."""
     return {(name, k) for name, n in totals.items() for k in range(-(-int(n) // int(shard_size)))}
+
+
+def tar_relpath(split: str, shard: int) -> str:
+    """A shard's tar relative to the dataset folder (the manifest's `tar_file` column)."""
+    return f"{SHARDS_DIR}/{partition_dir(split)}/part-{int(shard):06d}.tar"
 
 
 def image_dir(root: str | Path, split: str) -> Path:

@@ -1,7 +1,8 @@
 """`--overwrite`: remove augsplit's own layout from a folder, and nothing else.
 
 Ours: spec.json, dataset.json, manifest/ and distractors/ holding only `split=<name>/part-*`
-files, images/ holding only `<split>/<split>-NNNNNNN.<ext>` files, the report folders
+files, images/ holding only `<split>/<split>-NNNNNNN.<ext>` files, shards/ holding only
+`split=<name>/part-*.tar` files, the report folders
 (audit/, score/, preview/) holding only report files, and temporaries of atomic writes. A
 folder holding anything else (symbolic links included) is refused in one line listing up to
 five of the strangers. The spec being read and the working directory are never removed.
@@ -34,14 +35,15 @@ def _is_dir(p: Path) -> bool:
     return stat.S_ISDIR(p.lstat().st_mode)
 
 
-def _table_strangers(d: Path) -> list[Path]:
+def _table_strangers(d: Path, pattern=lay.PART_RE) -> list[Path]:
+    """Strangers in a `split=<name>/<file>` folder whose own files match `pattern`."""
     out = []
     for sub in sorted(d.iterdir()):
         if not (sub.name.startswith("split=") and _is_dir(sub)):
             out.append(sub)
             continue
         out += [f for f in sorted(sub.iterdir())
-                if not ((lay.PART_RE.fullmatch(f.name) or lay.is_temporary(f.name)) and _is_file(f))]
+                if not ((pattern.fullmatch(f.name) or lay.is_temporary(f.name)) and _is_file(f))]
     return out
 
 
@@ -75,6 +77,9 @@ def classify(out: Path) -> tuple[list[Path], list[Path]]:
         elif name in lay.TABLES and _is_dir(entry):
             ours.append(entry)
             strangers += _table_strangers(entry)
+        elif name == lay.SHARDS_DIR and _is_dir(entry):
+            ours.append(entry)
+            strangers += _table_strangers(entry, lay.TAR_RE)
         elif name == lay.IMAGES_DIR and _is_dir(entry):
             ours.append(entry)
             strangers += _image_strangers(entry)

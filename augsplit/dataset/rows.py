@@ -30,8 +30,8 @@ def table_schema(table: str) -> pa.Schema:
     return SCHEMAS[table].append(pa.field(mf.PARTITION, pa.string()))
 
 
-def _dataset(folder: DatasetFolder, table: str, splits) -> tuple[pds.Dataset | None, list[Part]]:
-    parts = folder.parts_of(table, splits)
+def _dataset(folder: DatasetFolder, table: str, splits, parts=None) -> tuple[pds.Dataset | None, list[Part]]:
+    parts = folder.parts_of(table, splits) if parts is None else list(parts)
     if not parts:
         return None, parts
     dset = pds.dataset([str(p.path) for p in parts], schema=table_schema(table), format="parquet",
@@ -97,16 +97,18 @@ def read_rows(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits=No
 
 
 def iter_batches(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits=None, columns=None,
-                 batch_rows: int = 1 << 14) -> Iterator[pd.DataFrame]:
-    """The same rows as `read_rows`, part by part in bounded batches (flat memory)."""
+                 batch_rows: int = 1 << 14, parts=None, arrow: bool = False) -> Iterator[pd.DataFrame]:
+    """The same rows as `read_rows`, part by part in bounded batches (flat memory); `parts`
+    (of `folder.parts_of(table)`) reads only those; `arrow` yields pyarrow RecordBatches
+    (no pandas conversion, for row-at-a-time work through `to_pylist`)."""
     cols = _columns(table, columns)
-    dset, parts = _dataset(folder, table, splits)
+    dset, parts = _dataset(folder, table, splits, parts)
     if dset is None:
         return
     for (_k, part), frag in _fragments(dset, parts):
         try:
             for batch in frag.to_batches(columns=cols, schema=dset.schema, batch_size=batch_rows):
-                yield batch.to_pandas()
+                yield batch if arrow else batch.to_pandas()
         except (OSError, pa.ArrowException) as exc:
             raise _unreadable(part, exc) from None
 
