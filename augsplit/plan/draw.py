@@ -91,6 +91,23 @@ def _stratified(split: SplitPlan, idx, cls, starts, u) -> np.ndarray:
 def draw_online(plan: Plan, split: SplitPlan | str, u: np.ndarray, indices=None) -> dict[str, np.ndarray]:
     """Columns for fresh draws (online augmentation): uniforms u (N, ndim + 3) pick the class
     (in proportion to the split's per-class counts), the instance, then the transform."""
+    split, u, cls, inst = _online_pick(plan, split, u)
+    idx = np.arange(len(u), dtype=np.int64) if indices is None else np.asarray(indices, dtype=np.int64)
+    return _columns(plan, split, idx, cls, inst, u[:, 2:])
+
+
+def draw_placements(plan: Plan, split: SplitPlan | str, u: np.ndarray) -> dict[str, np.ndarray]:
+    """The draws of `draw_online` with only what placing an object needs: class_index,
+    class_name, instance and the transform columns (no index, cell or instance_seen), for
+    the extra objects of a scene, drawn a few at a time."""
+    split, u, cls, inst = _online_pick(plan, split, u)
+    out = params_from_t(plan, _sample(split, cls, u[:, 2:], plan.space.ndim))
+    out.update(class_index=cls.astype(np.int32), instance=inst, class_name=_class_names(plan, cls))
+    return out
+
+
+def _online_pick(plan: Plan, split: SplitPlan | str, u: np.ndarray):
+    """(split, u as (N, ndim + 3), class, instance) of fresh draws."""
     split = plan.split(split) if isinstance(split, str) else split
     u = np.asarray(u, dtype=float).reshape(-1, plan.space.ndim + 3)
     w = np.cumsum(np.asarray(split.counts, dtype=float))
@@ -100,18 +117,27 @@ def draw_online(plan: Plan, split: SplitPlan | str, u: np.ndarray, indices=None)
         rows = np.flatnonzero(cls == c)
         ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
         inst[rows] = ids[np.minimum((u[rows, 1] * len(ids)).astype(np.int64), len(ids) - 1)]
-    idx = np.arange(len(u), dtype=np.int64) if indices is None else np.asarray(indices, dtype=np.int64)
-    return _columns(plan, split, idx, cls, inst, u[:, 2:])
+    return split, u, cls, inst
 
 
-def _columns(plan, split, idx, cls, inst, u) -> dict[str, np.ndarray]:
-    t = np.empty((len(idx), plan.space.ndim))
+def _sample(split: SplitPlan, cls: np.ndarray, u: np.ndarray, ndim: int) -> np.ndarray:
+    """Points in t: each row sampled exactly from its class's region."""
+    t = np.empty((len(cls), ndim))
     for c in np.unique(cls):
         rows = np.flatnonzero(cls == c)
         t[rows], _ = sample_t(split.class_region(int(c)), u[rows])
+    return t
+
+
+def _class_names(plan: Plan, cls: np.ndarray) -> np.ndarray:
+    return np.array([plan.classes[c] for c in cls], dtype=object)
+
+
+def _columns(plan, split, idx, cls, inst, u) -> dict[str, np.ndarray]:
+    t = _sample(split, cls, u, plan.space.ndim)
     out = params_from_t(plan, t)
     seen = np.array([i in plan.instances[c] for c, i in zip(cls.tolist(), inst.tolist())], dtype=bool)
     out.update(index=idx, class_index=cls.astype(np.int32), instance=inst, instance_seen=seen,
                cell=split.region.box_of_t(t).astype(np.int32))
-    out["class_name"] = np.array([plan.classes[c] for c in cls], dtype=object)
+    out["class_name"] = _class_names(plan, cls)
     return out
