@@ -242,8 +242,13 @@ def _cells(space: Space, value: Any, where: str) -> Region:
             chosen.append(tuple(c))
     else:
         raise SpecError("pick is a list of cell indices, 'checkerboard', 'checkerboard_odd' or 'all'", where=f"{where}.pick")
-    # cells of one grid are disjoint (up to shared faces), so their boxes form the region as
-    # they are: no pairwise set algebra (a union cell by cell is quadratic in the cells)
+    return _grid_cells(space, names, shape, chosen)
+
+
+def _grid_cells(space: Space, names: list, shape: list, chosen: list) -> Region:
+    """The region of the chosen cells of a grid. Cells of one grid are disjoint (up to shared
+    faces), so their boxes form the region as they are: no pairwise set algebra (a union
+    taken cell by cell is quadratic in the number of cells)."""
     boxes = []
     for c in dict.fromkeys(chosen):  # a cell listed twice counts once
         ivs = {}
@@ -252,7 +257,7 @@ def _cells(space: Space, value: Any, where: str) -> Region:
             lo, span = space.t_lo[i], space.t_span[i]
             ivs[n] = [(lo + span * k / s, lo + span * (k + 1) / s)]
         boxes.append(Region.box(space, ivs))
-    if not boxes:
+    if not boxes:  # e.g. the odd checkerboard of a single cell
         return Region.empty(space)
     return Region(space, np.vstack([b.lo for b in boxes]), np.vstack([b.hi for b in boxes]))
 
