@@ -27,8 +27,10 @@ Why this is a proof (a pixel left out of a mask is covered by no allowed placeme
   cells [a h, (a+1) h] that touch the position set. Pixel centres sit at cell centres
   (f odd), so p - (position cell) is exactly an offset cell: p is in the envelope only
   if some position cell a and the offset cell m_p - a are both kept, which is a binary
-  dilation (FFT convolution). Every step keeps a superset; the only looseness is one cell
-  (h px) plus the bins' Lipschitz margin.
+  dilation sampled at pixel centres. Both sets are kept as runs along rows, and a run of
+  each adds up to one run of cells, so each pixel row is a union of intervals (exact,
+  and never built on the super-sampled grid). Every step keeps a superset; the only
+  looseness is one cell (h px) plus the bins' Lipschitz margin.
 * Stage 3 works on boxes of placements (anchor c, angle th, scale s) for one pixel p:
   over a box, u stays within D = |c - c0|/s_lo + |z0| ((1/s_lo - 1/s0) + dth/s0) of its
   value u0 at the box centre (z0 = p - c0; |R(a) - R(b)| <= |a - b|, and 1/s - 1/s0 is
