@@ -352,8 +352,19 @@ def square_polar(x0, y0, x1, y1):
     """For squares [x0, x1] x [y0, y1] (relative to the origin, y down): nearest and farthest
     distance, the smallest screen angle (counter-clockwise) and the angular width of the
     square as seen from the origin (2 pi when it holds or touches the origin)."""
+    dmin, dmax = square_distances(x0, y0, x1, y1)
+    return (dmin, dmax) + square_angles(x0, y0, x1, y1, dmin)
+
+
+def square_distances(x0, y0, x1, y1):
+    """Nearest and farthest distance from the origin to the squares (see `square_polar`)."""
     dmin = np.hypot(np.maximum(0.0, np.maximum(x0, -x1)), np.maximum(0.0, np.maximum(y0, -y1)))
     dmax = np.hypot(np.maximum(np.abs(x0), np.abs(x1)), np.maximum(np.abs(y0), np.abs(y1)))
+    return dmin, dmax
+
+
+def square_angles(x0, y0, x1, y1, dmin):
+    """Smallest screen angle and angular width of the squares (see `square_polar`)."""
     ref = np.arctan2(-(y0 + y1) / 2, (x0 + x1) / 2)
     lo = np.zeros_like(ref)
     hi = np.zeros_like(ref)
@@ -362,7 +373,7 @@ def square_polar(x0, y0, x1, y1):
         lo = np.minimum(lo, d)
         hi = np.maximum(hi, d)
     width = np.where(dmin <= 1e-12, 2 * TWO_PI, hi - lo)
-    return dmin, dmax, ref + lo, width
+    return ref + lo, width
 
 
 # ---- stage 2: masks ---------------------------------------------------------------------------
@@ -418,12 +429,17 @@ def _sector_cells(ps: PositionSet, h: float, a0: int, a1: int, b0: int, b1: int)
     r0, r1, p0, p1 = ps.bounds
     ccx, ccy = ps.centre
     gx, gy = np.meshgrid(np.arange(a0, a1 + 1) * h - ccx, np.arange(b0, b1 + 1) * h - ccy)
-    dmin, dmax, plo, width = square_polar(gx, gy, gx + h, gy + h)
-    radial = (dmax >= r0 - 1e-9) & (dmin <= r1 + 1e-9)
+    dmin, dmax = square_distances(gx, gy, gx + h, gy + h)
+    mask = (dmax >= r0 - 1e-9) & (dmin <= r1 + 1e-9)
     s0, span = math.radians(p0), math.radians(p1 - p0)
-    angular = ((width >= TWO_PI) | (span >= TWO_PI - 1e-12)
-               | (np.mod(plo - s0, TWO_PI) <= span + 1e-9) | (np.mod(s0 - plo, TWO_PI) <= width + 1e-9))
-    return radial & angular
+    if span >= TWO_PI - 1e-12 or not mask.any():  # a whole ring: no angle to test
+        return mask
+    # the angles (the costly part) only of the cells the ring keeps
+    x, y = gx[mask], gy[mask]
+    plo, width = square_angles(x, y, x + h, y + h, dmin[mask])
+    mask[mask] = ((width >= TWO_PI) | (np.mod(plo - s0, TWO_PI) <= span + 1e-9)
+                  | (np.mod(s0 - plo, TWO_PI) <= width + 1e-9))
+    return mask
 
 
 def position_cells(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
@@ -476,13 +492,14 @@ class Offsets:
 
 
 class Tables:
-    """What one footprint proof computes once and reuses, per sprite: the log-polar table
+    """What one footprint proof computes once and reuses: per sprite, the log-polar table
     (bins sized for the largest scale of every item given), the padded alpha and its node
-    maxima; and the offset cells per pose and sprites. Sprites are keys (they compare by
-    identity), so nothing here depends on object ids."""
+    maxima; the offset cells per pose and sprites; the position cells per position set.
+    Sprites are keys (they compare by identity), so nothing here depends on object ids."""
 
     def __init__(self, items: list[Item], threshold: float, tol_px: float = BIN_TOL_PX):
         smax = max([it.pose.max_scale for it in items] or [1.0])
+        self.items = list(items)
         self.polar: dict = {}
         for it in items:
             for s in it.sprites:
@@ -491,6 +508,7 @@ class Tables:
         self._apad: dict = {}
         self._nodemax: dict = {}
         self._offsets: dict = {}
+        self._positions: dict = {}
 
     def rho_max(self, sprite) -> float:
         return self.polar[sprite].rho_max
@@ -504,6 +522,19 @@ class Tables:
         if sprite not in self._nodemax:
             self._nodemax[sprite] = NodeMax(self.apad(sprite))
         return self._nodemax[sprite]
+
+    def positions(self, ps: PositionSet, f: int, window: tuple[int, int, int, int], n: int):
+        """`position_runs` of a position set: every cell that can reach a pixel centre of the
+        window through offset cells up to n (or any item's, if more) cells long. The items of
+        one box, one per class, share it; a cell beyond an item's own offsets adds nothing."""
+        key = (ps, f, window)
+        if key not in self._positions or self._positions[key][0] < n:
+            n = max([n] + [int(math.ceil(item_reach(it, self) * f)) + 2 for it in self.items])  # >= offset_cells' N
+            c0, r0, c1, r1 = window
+            c = (f - 1) // 2
+            self._positions[key] = (n, position_runs(ps, 1.0 / f, (f * c0 + c - n, f * (c1 - 1) + c + n),
+                                                     (f * r0 + c - n, f * (r1 - 1) + c + n)))
+        return self._positions[key][1]
 
     def offsets(self, item: Item, f: int) -> Offsets:
         key = (item.pose, item.sprites, f)
@@ -587,8 +618,7 @@ def item_patch(item: Item, tables: Tables, window: tuple[int, int, int, int], f:
         return None
     off = tables.offsets(item, f)
     n, c = off.n, (f - 1) // 2
-    pos = position_runs(item.position, 1.0 / f, (f * c0 + c - n, f * (c1 - 1) + c + n),
-                        (f * r0 + c - n, f * (r1 - 1) + c + n))
+    pos = tables.positions(item.position, f, window, n)
     if pos is None or not len(off.runs[0]):
         return None
     oi, oq0, oq1 = off.runs
