@@ -13,7 +13,7 @@ Specs (all proved, by the stage named):
                  the rasterised envelopes (and at 2048 px an exact search) prove it.
   grid 40x40     a checkerboard of 40 x 40 position cells and its complement (parameters).
   grid 40x40 fp  a checkerboard of 40 x 40 cells in the top half of a 512 px canvas and a
-                 band below it, glyph-like trominoes turning 15 degrees (footprints).
+                 band below it, trominoes turning 15 degrees (footprints).
 
     python tests/bench/bench_plan.py [--sizes 256,512,1024,2048] [--baseline REF] [--repeat 1]
 """
