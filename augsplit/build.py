@@ -53,7 +53,7 @@ def background(spec: Spec, base_dir: Path):
     if b.kind == "gaussian_noise":
         return bg.GaussianNoise(b.mean, b.sd, b.per_channel)
     if b.kind == "pink_noise":
-        return bg.PinkNoise(b.mean, b.contrast, b.exponent, b.per_channel)
+        return bg.PinkNoise(b.mean, b.contrast, b.exponent, b.per_channel, b.synthesis)
     return bg.ImageFolder(_resolve(b.path, base_dir))
 
 

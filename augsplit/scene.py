@@ -14,7 +14,7 @@ from functools import lru_cache
 import numpy as np
 
 from .plan import Plan, SplitPlan
-from .plan.draw import draw_online
+from .plan.draw import draw_placements
 from .plan.geometry import reach
 from .render import Placed, RenderParams, footprint, masks_overlap, render
 from .space.axes import RENDER_PARAMS
@@ -50,23 +50,9 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]
     extra: list[dict] = []
-    d = plan.render.distractors
-    if d.count[1] > 0:
-        want = int(rng.integers(d.count[0], d.count[1] + 1))
-        taken = [footprint(target[0], target[1], (h, w), thr)]
-        for _ in range(want):
-            for _attempt in range(d.attempts):
-                u = rng.random((1, plan.space.ndim + 3))
-                cols = draw_online(plan, split, u)
-                r = {k: v[0] for k, v in cols.items()}
-                sp, rp = source.sprite(int(r["class_index"]), int(r["instance"])), render_params(r)
-                fp = footprint(sp, rp, (h, w), thr)
-                if d.no_overlap and any(masks_overlap(fp, t) for t in taken):
-                    continue
-                taken.append(fp)
-                placements.append((sp, rp))
-                extra.append(r)
-                break
+    for sp, rp, r in _distractors(plan, source, split, rng, target, (h, w), thr):
+        placements.append((sp, rp))
+        extra.append(r)
     image, placed = render(bg, placements, thr)
     rows = []
     for k, (r, p) in enumerate(zip(extra, placed[1:])):
@@ -74,6 +60,49 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
                      "instance": int(r["instance"]), **{key: r[key] for key in PARAM_KEYS},
                      **placed_columns(p)})
     return Scene(image, placed[0], rows, placed[1:])
+
+
+class _Draws:
+    """A scene's distractor draws, one row of uniforms each, taken from the render stream in
+    batches (one draw_placements call per batch): row j holds the same numbers as the j-th of
+    one-row draws would, and nothing else in the scene draws from the stream afterwards."""
+
+    def __init__(self, plan: Plan, split: SplitPlan, rng: np.random.Generator, first: int):
+        self.plan, self.split, self.rng = plan, split, rng
+        self.size, self.rows = max(first, 1), []
+
+    def next(self) -> dict:
+        if not self.rows:
+            u = self.rng.random((self.size, self.plan.space.ndim + 3))
+            cols = draw_placements(self.plan, self.split, u)
+            self.rows = [dict(zip(cols, vals)) for vals in zip(*map(list, cols.values()))][::-1]
+            self.size *= 2  # rejections: draw further ahead next time
+        return self.rows.pop()
+
+
+def _distractors(plan: Plan, source, split: SplitPlan, rng: np.random.Generator, target, hw, thr) -> list:
+    """(sprite, RenderParams, drawn columns) of each distractor the scene gets: a count drawn
+    from the stream, then up to `attempts` draws per distractor; with no_overlap, a draw whose
+    footprint meets an earlier object's is dropped (footprints are made only then)."""
+    d = plan.render.distractors
+    if d.count[1] <= 0:
+        return []
+    want = int(rng.integers(d.count[0], d.count[1] + 1))
+    draws = _Draws(plan, split, rng, want)
+    taken = [footprint(target[0], target[1], hw, thr)] if d.no_overlap else None
+    out = []
+    for _ in range(want):
+        for _attempt in range(d.attempts):
+            r = draws.next()
+            sp, rp = source.sprite(int(r["class_index"]), int(r["instance"])), render_params(r)
+            if taken is not None:
+                fp = footprint(sp, rp, hw, thr)
+                if any(masks_overlap(fp, t) for t in taken):
+                    continue
+                taken.append(fp)
+            out.append((sp, rp, r))
+            break
+    return out
 
 
 def placed_columns(p: Placed) -> dict:

@@ -138,6 +138,10 @@ class PinkNoiseBg(Model):
     contrast: Annotated[float, Field(ge=0)] = 0.15
     exponent: float = 1.0
     per_channel: bool = False
+    # how the noise is made (see sources.backgrounds.PinkNoise); "white" re-makes datasets made
+    # before this key existed. The default is part of every pink-noise spec's hash, so such
+    # specs hash anew and their datasets are never silently re-rendered another way.
+    synthesis: Literal["spectrum", "white"] = "spectrum"
 
 
 class FolderBg(Model):

@@ -135,3 +135,88 @@ def test_image_folder_errors_name_the_file(tmp_path):
     with pytest.raises(SourceError, match="0 bytes") as e:
         ImageFolder(tmp_path)
     assert e.value.where == str(bad)
+
+
+# ---- the two pink-noise syntheses ---------------------------------------------------------------
+
+
+def _white_reference(mean, contrast, exponent, seed, h, w, k=1):
+    """Pink noise as every dataset before the `synthesis` key was made (kept here as the
+    reference): float64 white noise, filtered by 1/f^exponent through rfft2 and irfft2."""
+    r = np.random.default_rng(seed)
+    fy = np.fft.fftfreq(h)[:, None]
+    fx = np.fft.rfftfreq(w)[None, :]
+    f = np.hypot(fx, fy)
+    f[0, 0] = 1.0
+    gain = f ** -exponent
+    gain[0, 0] = 0.0
+    shaped = np.fft.irfft2(np.fft.rfft2(r.standard_normal((k, h, w))) * gain, s=(h, w))
+    shaped -= shaped.mean(axis=(1, 2), keepdims=True)
+    sd = shaped.std(axis=(1, 2), keepdims=True)
+    shaped /= np.where(sd > 0, sd, 1.0)
+    v = mean * (1.0 + contrast * shaped)
+    return np.clip(v * 255.0 + 0.5, 0, 255).astype(np.uint8)
+
+
+@pytest.mark.parametrize("h,w,exponent,per_channel", [(96, 96, 1.0, False), (33, 47, 1.5, True), (64, 31, 0.5, False)])
+def test_white_synthesis_remakes_the_earlier_pixels(h, w, exponent, per_channel):
+    bg = PinkNoise(0.45, 0.2, exponent, per_channel, synthesis="white")
+    for seed in range(6):
+        for channels in (1, 3):
+            got = bg.draw(rng(seed), h, w, channels)
+            ref = _white_reference(0.45, 0.2, exponent, seed, h, w, channels if per_channel else 1)
+            ref = np.repeat(np.moveaxis(ref, 0, -1), channels // ref.shape[0], axis=2)
+            np.testing.assert_array_equal(got, ref)
+
+
+@pytest.mark.parametrize("h,w", [(32, 32), (31, 33), (24, 17)])
+def test_spectrum_synthesis_has_the_power_spectrum_of_filtered_white_noise(h, w):
+    # The power of each rfft2 coefficient, averaged over many fields, must be the same for
+    # both syntheses (a Gaussian field is fixed by its spectrum; reference: the DFT of
+    # white noise has independent coefficients of equal power, from memory). Columns 0 and
+    # w/2 are where drawing coefficients directly differs from filtering white noise.
+    n = 1500
+    power = {}
+    for syn in ("spectrum", "white"):
+        bg, r = PinkNoise(0.5, 0.2, synthesis=syn), rng(3)
+        p = np.zeros((h, w // 2 + 1))
+        for _ in range(n):
+            field = bg.field(r, h, w)[0].astype(np.float64)
+            p += np.abs(np.fft.rfft2(field - field.mean())) ** 2
+        power[syn] = p / p.sum()
+    ratio = power["spectrum"][1:] / power["white"][1:]  # row 0 holds the DC coefficient (zero)
+    # each column's mean over its rows is within a few standard errors of 1 (about 1/sqrt(n)
+    # per coefficient and estimate), the first and last column included
+    cols = ratio.mean(axis=0)
+    assert np.all(np.abs(cols - 1.0) < 0.05), cols
+    assert np.abs(ratio.mean() - 1.0) < 0.01
+
+
+def test_spectrum_synthesis_mean_contrast_and_gaussian_marginal():
+    bg = PinkNoise(0.4, 0.25)
+    assert bg.synthesis == "spectrum"
+    field = bg.field(rng(2), 96, 96)[0].astype(np.float64)
+    assert field.mean() == pytest.approx(0.4, abs=1e-6)  # single precision
+    assert field.std() / field.mean() == pytest.approx(0.25, rel=1e-5)  # RMS contrast (Peli 1990)
+    # the marginal of a Gaussian field is normal: a few far-apart pixels of many fields,
+    # standardised, against scipy's normal distribution (Kolmogorov-Smirnov)
+    from scipy import stats
+
+    z = np.concatenate([((bg.field(rng(s), 64, 64)[0] - 0.4) / 0.1)[::16, ::16].ravel() for s in range(60)])
+    assert stats.kstest(z, "norm").pvalue > 0.001
+
+
+def test_pink_noise_synthesis_is_named_in_the_spec_and_its_hash():
+    from augsplit.spec import canonical, parse_spec, spec_hash
+    import json
+
+    base = {"seed": 1, "canvas": {"width": 32, "height": 32},
+            "objects": {"kind": "polyomino", "cells": 2, "cell_px": 3},
+            "background": {"kind": "pink_noise"},
+            "splits": {"train": {"per_class": 1}}}
+    spec = parse_spec(base)
+    assert json.loads(canonical(spec))["background"]["synthesis"] == "spectrum"
+    white = parse_spec({**base, "background": {"kind": "pink_noise", "synthesis": "white"}})
+    assert spec_hash(white) != spec_hash(spec)
+    with pytest.raises(SpecError):
+        PinkNoise(synthesis="fast")

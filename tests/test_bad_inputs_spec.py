@@ -233,13 +233,13 @@ CASES = [
     Case("grid-1e10-cells", spec(split("t2", region={"cells": {"grid": {"x": 100000, "y": 100000}}})),
          ("splits.t2.region.cells.grid", "10,000,000,000 cells", "limits.MAX_GRID_CELLS"), isolate=True,
          line_has="grid"),
-    Case("grid-2000-bins", spec(split("t2", region={"cells": {"grid": {"x": 2000}}})),
+    Case("grid-3000-bins", spec(split("t2", region={"cells": {"grid": {"x": 3000}}})),
          ("limits.MAX_GRID_CELLS",), args=PLAN),
     Case("region-too-many-boxes", spec(axes={"x": {"range": [0, 64]}, "y": {"range": [0, 64]}},
                                        splits={"train": {"region": {
-                                           "x": [[i / 10, i / 10 + 0.05] for i in range(40)],
-                                           "y": [[i / 10, i / 10 + 0.05] for i in range(40)]}, "per_class": 1}}),
-         ("splits.train.region.y", "1,600 boxes", "limits.MAX_REGION_BOXES"), args=PLAN),
+                                           "x": [[i / 10, i / 10 + 0.05] for i in range(60)],
+                                           "y": [[i / 10, i / 10 + 0.05] for i in range(60)]}, "per_class": 1}}),
+         ("splits.train.region.y", "3,600 boxes", "limits.MAX_REGION_BOXES"), args=PLAN),
     # -- object sources and backgrounds --
     Case("polyomino-cell-px", spec(objects={"kind": "polyomino", "cells": 3, "cell_px": 10**6}),
          ("objects.cell_px", "limits.MAX_SPRITE_PIXELS"), args=PLAN, line_has="cell_px"),

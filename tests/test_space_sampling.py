@@ -218,3 +218,26 @@ def test_first_uniforms_of_consecutive_images_are_uniform_and_uncorrelated():
     # neighbouring images must not share structure: Pearson r near 0 (scipy.stats.pearsonr)
     assert stats.pearsonr(u[:-1, 0], u[1:, 0]).pvalue > ALPHA
     assert stats.pearsonr(u[:, 0], u[:, 1]).pvalue > ALPHA
+
+
+# ---- rows from several regions at once -------------------------------------------------------------
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 40))
+def test_sample_t_each_gives_the_numbers_of_sample_t_row_by_row(seed, n):
+    # reference: sample_t on each row alone, from its own region (the numbers must be equal)
+    from augsplit.space.sample import sample_t_each
+
+    rng = np.random.default_rng(seed)
+    regions = []
+    for _ in range(4):
+        a, b = sorted(rng.uniform(-6, 5.9, 2))
+        lv = sorted(rng.choice(10, 2, replace=False).astype(float))
+        regions.append(region_of(x=(a, b + 0.1), **{"class": (lv[0], lv[1])}) | region_of(angle=(350.0, 20.0)))
+    which = rng.integers(0, 4, n)
+    u = rng.random((n, SPACE.ndim + 1))
+    u[rng.random(n) < 0.1, 0] = 1.0  # the top end goes to the last box
+    got = sample_t_each(regions, which, u)
+    want = np.stack([sample_t(regions[k], u[i:i + 1])[0][0] for i, k in enumerate(which)])
+    np.testing.assert_array_equal(got, want)
+    cum = np.cumsum(regions[0].box_masses())
+    np.testing.assert_array_equal(regions[0].cumulative_share(), cum / cum[-1])

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..space.axes import CLASS, DRAW_DEFAULTS, POSITION_AXES
-from ..space.sample import image_uniforms, sample_t
+from ..space.sample import image_uniforms, sample_t_each
 from .planner import Plan, SplitPlan
 
 DEFAULTS = DRAW_DEFAULTS  # the catalogue's values for axes a spec does not vary
@@ -91,27 +91,49 @@ def _stratified(split: SplitPlan, idx, cls, starts, u) -> np.ndarray:
 def draw_online(plan: Plan, split: SplitPlan | str, u: np.ndarray, indices=None) -> dict[str, np.ndarray]:
     """Columns for fresh draws (online augmentation): uniforms u (N, ndim + 3) pick the class
     (in proportion to the split's per-class counts), the instance, then the transform."""
-    split = plan.split(split) if isinstance(split, str) else split
-    u = np.asarray(u, dtype=float).reshape(-1, plan.space.ndim + 3)
-    w = np.cumsum(np.asarray(split.counts, dtype=float))
-    cls = np.minimum(np.searchsorted(w / w[-1], u[:, 0], side="right"), len(w) - 1)
-    inst = np.empty(len(u), dtype=np.int32)
-    for c in np.unique(cls):
-        rows = np.flatnonzero(cls == c)
-        ids = np.array(plan.instance_ids(split, int(c)), dtype=np.int32)
-        inst[rows] = ids[np.minimum((u[rows, 1] * len(ids)).astype(np.int64), len(ids) - 1)]
+    split, u, cls, inst = _online_pick(plan, split, u)
     idx = np.arange(len(u), dtype=np.int64) if indices is None else np.asarray(indices, dtype=np.int64)
     return _columns(plan, split, idx, cls, inst, u[:, 2:])
 
 
+def draw_placements(plan: Plan, split: SplitPlan | str, u: np.ndarray) -> dict[str, np.ndarray]:
+    """The draws of `draw_online` with only what placing an object needs: class_index,
+    class_name, instance and the transform columns (no index, cell or instance_seen), for
+    the extra objects of a scene, drawn a few at a time."""
+    split, u, cls, inst = _online_pick(plan, split, u)
+    out = params_from_t(plan, _sample(split, cls, u[:, 2:]))
+    out.update(class_index=cls.astype(np.int32), instance=inst, class_name=_class_names(plan, cls))
+    return out
+
+
+def _online_pick(plan: Plan, split: SplitPlan | str, u: np.ndarray):
+    """(split, u as (N, ndim + 3), class, instance) of fresh draws."""
+    split = plan.split(split) if isinstance(split, str) else split
+    u = np.asarray(u, dtype=float).reshape(-1, plan.space.ndim + 3)
+    w = np.cumsum(np.asarray(split.counts, dtype=float))
+    cls = np.minimum(np.searchsorted(w / w[-1], u[:, 0], side="right"), len(w) - 1)
+    allowed = {c: plan.instance_ids(split, c) for c in set(cls.tolist())}
+    ids = [allowed[c] for c in cls.tolist()]
+    n = np.array([len(i) for i in ids], dtype=np.int64)
+    pick = np.minimum((u[:, 1] * n).astype(np.int64), n - 1)
+    inst = np.array([i[k] for i, k in zip(ids, pick.tolist())], dtype=np.int32)
+    return split, u, cls, inst
+
+
+def _sample(split: SplitPlan, cls: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Points in t: each row sampled exactly from its class's region."""
+    return sample_t_each([split.class_region(c) for c in range(len(split.counts))], cls, u)
+
+
+def _class_names(plan: Plan, cls: np.ndarray) -> np.ndarray:
+    return np.array([plan.classes[c] for c in cls], dtype=object)
+
+
 def _columns(plan, split, idx, cls, inst, u) -> dict[str, np.ndarray]:
-    t = np.empty((len(idx), plan.space.ndim))
-    for c in np.unique(cls):
-        rows = np.flatnonzero(cls == c)
-        t[rows], _ = sample_t(split.class_region(int(c)), u[rows])
+    t = _sample(split, cls, u)
     out = params_from_t(plan, t)
     seen = np.array([i in plan.instances[c] for c, i in zip(cls.tolist(), inst.tolist())], dtype=bool)
     out.update(index=idx, class_index=cls.astype(np.int32), instance=inst, instance_seen=seen,
                cell=split.region.box_of_t(t).astype(np.int32))
-    out["class_name"] = np.array([plan.classes[c] for c in cls], dtype=object)
+    out["class_name"] = _class_names(plan, cls)
     return out

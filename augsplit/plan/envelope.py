@@ -27,8 +27,10 @@ Why this is a proof (a pixel left out of a mask is covered by no allowed placeme
   cells [a h, (a+1) h] that touch the position set. Pixel centres sit at cell centres
   (f odd), so p - (position cell) is exactly an offset cell: p is in the envelope only
   if some position cell a and the offset cell m_p - a are both kept, which is a binary
-  dilation (FFT convolution). Every step keeps a superset; the only looseness is one cell
-  (h px) plus the bins' Lipschitz margin.
+  dilation sampled at pixel centres. Both sets are kept as runs along rows, and a run of
+  each adds up to one run of cells, so each pixel row is a union of intervals (exact,
+  and never built on the super-sampled grid). Every step keeps a superset; the only
+  looseness is one cell (h px) plus the bins' Lipschitz margin.
 * Stage 3 works on boxes of placements (anchor c, angle th, scale s) for one pixel p:
   over a box, u stays within D = |c - c0|/s_lo + |z0| ((1/s_lo - 1/s0) + dth/s0) of its
   value u0 at the box centre (z0 = p - c0; |R(a) - R(b)| <= |a - b|, and 1/s - 1/s0 is
@@ -55,7 +57,6 @@ from dataclasses import dataclass, field, replace
 
 import cv2
 import numpy as np
-from scipy.signal import fftconvolve
 
 from ..space.axes import LEVELS, Space
 from ..space.region import Region
@@ -345,8 +346,19 @@ def square_polar(x0, y0, x1, y1):
     """For squares [x0, x1] x [y0, y1] (relative to the origin, y down): nearest and farthest
     distance, the smallest screen angle (counter-clockwise) and the angular width of the
     square as seen from the origin (2 pi when it holds or touches the origin)."""
+    dmin, dmax = square_distances(x0, y0, x1, y1)
+    return (dmin, dmax) + square_angles(x0, y0, x1, y1, dmin)
+
+
+def square_distances(x0, y0, x1, y1):
+    """Nearest and farthest distance from the origin to the squares (see `square_polar`)."""
     dmin = np.hypot(np.maximum(0.0, np.maximum(x0, -x1)), np.maximum(0.0, np.maximum(y0, -y1)))
     dmax = np.hypot(np.maximum(np.abs(x0), np.abs(x1)), np.maximum(np.abs(y0), np.abs(y1)))
+    return dmin, dmax
+
+
+def square_angles(x0, y0, x1, y1, dmin):
+    """Smallest screen angle and angular width of the squares (see `square_polar`)."""
     ref = np.arctan2(-(y0 + y1) / 2, (x0 + x1) / 2)
     lo = np.zeros_like(ref)
     hi = np.zeros_like(ref)
@@ -355,72 +367,187 @@ def square_polar(x0, y0, x1, y1):
         lo = np.minimum(lo, d)
         hi = np.maximum(hi, d)
     width = np.where(dmin <= 1e-12, 2 * TWO_PI, hi - lo)
-    return dmin, dmax, ref + lo, width
+    return ref + lo, width
 
 
 # ---- stage 2: masks ---------------------------------------------------------------------------
 
 
-def offset_cells(tables: list[PolarTable], pose: Pose, h: float) -> tuple[int, np.ndarray]:
+def offset_cells(tables: list[PolarTable], pose: Pose, h: float, block: int = 256) -> tuple[int, np.ndarray]:
     """Offset cells (side h, centred on n*h, n in [-N, N]^2, rows = y) that may meet the
-    object at some pose the box allows, for any of the sprites. Returns (N, mask)."""
+    object at some pose the box allows, for any of the sprites. Returns (N, mask).
+    Rows are done `block` at a time, so the temporaries stay small at any size."""
     smax = pose.max_scale
     reach = max(t.rho_max for t in tables) * smax
     n = int(math.ceil(reach / h)) + 1
     k = np.arange(-n, n + 1) * h
-    cx, cy = np.meshgrid(k, k)  # cy varies along rows
     half = h / 2
-    dmin, dmax, plo, width = square_polar(cx - half, cy - half, cx + half, cy + half)
-    mask = np.zeros(cx.shape, dtype=bool)
-    for tab in tables:
-        for m in pose.mirrors:
-            for sa, sb in pose.scales:
-                for a0, a1 in pose.angles:
-                    th0, th1 = math.radians(a0), math.radians(a1)
-                    todo = ~mask
-                    mask[todo] |= tab.may_meet(m, dmin[todo] / sb, dmax[todo] / sa, plo[todo] - th1,
-                                               width[todo] + (th1 - th0))
+    mask = np.zeros((len(k), len(k)), dtype=bool)
+    cx = k[None, :]
+    for r0 in range(0, len(k), block):
+        cy = k[r0:r0 + block, None]  # cy varies along rows
+        dmin, dmax, plo, width = square_polar(cx - half, cy - half, cx + half, cy + half)
+        sub = mask[r0:r0 + block]
+        for tab in tables:
+            for m in pose.mirrors:
+                for sa, sb in pose.scales:
+                    for a0, a1 in pose.angles:
+                        th0, th1 = math.radians(a0), math.radians(a1)
+                        todo = ~sub
+                        sub[todo] |= tab.may_meet(m, dmin[todo] / sb, dmax[todo] / sa, plo[todo] - th1,
+                                                  width[todo] + (th1 - th0))
     return n, mask
 
 
-def position_cells(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
-    """Cells [a h, (a+1) h]^2 touching the position set, limited to the index ranges given.
-    Returns (ax0, ay0, mask) with mask rows = y; None if no cell is left."""
+def _cell_bounds(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
+    """Index bounds (a0, a1, b0, b1) of the cells that may touch the position set, limited
+    to the ranges given; None if none is left."""
     if ps.kind == "rect":
         x0, x1, y0, y1 = ps.bounds
         a0 = max(int(math.ceil(x0 / h - 1 - 1e-9)), ax_range[0])
         a1 = min(int(math.floor(x1 / h + 1e-9)), ax_range[1])
         b0 = max(int(math.ceil(y0 / h - 1 - 1e-9)), ay_range[0])
         b1 = min(int(math.floor(y1 / h + 1e-9)), ay_range[1])
-        if a1 < a0 or b1 < b0:
-            return None
-        return a0, b0, np.ones((b1 - b0 + 1, a1 - a0 + 1), dtype=bool)
+    else:
+        r1 = ps.bounds[1]
+        ccx, ccy = ps.centre
+        a0 = max(int(math.floor((ccx - r1) / h)) - 1, ax_range[0])
+        a1 = min(int(math.ceil((ccx + r1) / h)) + 1, ax_range[1])
+        b0 = max(int(math.floor((ccy - r1) / h)) - 1, ay_range[0])
+        b1 = min(int(math.ceil((ccy + r1) / h)) + 1, ay_range[1])
+    return None if a1 < a0 or b1 < b0 else (a0, a1, b0, b1)
+
+
+def _sector_cells(ps: PositionSet, h: float, a0: int, a1: int, b0: int, b1: int) -> np.ndarray:
+    """Which cells [a h, (a+1) h] x [b h, (b+1) h] (a0 <= a <= a1, b0 <= b <= b1) touch the sector."""
     r0, r1, p0, p1 = ps.bounds
     ccx, ccy = ps.centre
-    a0 = max(int(math.floor((ccx - r1) / h)) - 1, ax_range[0])
-    a1 = min(int(math.ceil((ccx + r1) / h)) + 1, ax_range[1])
-    b0 = max(int(math.floor((ccy - r1) / h)) - 1, ay_range[0])
-    b1 = min(int(math.ceil((ccy + r1) / h)) + 1, ay_range[1])
-    if a1 < a0 or b1 < b0:
-        return None
     gx, gy = np.meshgrid(np.arange(a0, a1 + 1) * h - ccx, np.arange(b0, b1 + 1) * h - ccy)
-    dmin, dmax, plo, width = square_polar(gx, gy, gx + h, gy + h)
-    radial = (dmax >= r0 - 1e-9) & (dmin <= r1 + 1e-9)
+    dmin, dmax = square_distances(gx, gy, gx + h, gy + h)
+    mask = (dmax >= r0 - 1e-9) & (dmin <= r1 + 1e-9)
     s0, span = math.radians(p0), math.radians(p1 - p0)
-    angular = ((width >= TWO_PI) | (span >= TWO_PI - 1e-12)
-               | (np.mod(plo - s0, TWO_PI) <= span + 1e-9) | (np.mod(s0 - plo, TWO_PI) <= width + 1e-9))
-    mask = radial & angular
-    if not mask.any():
+    if span >= TWO_PI - 1e-12 or not mask.any():  # a whole ring: no angle to test
+        return mask
+    # the angles (the costly part) only of the cells the ring keeps
+    x, y = gx[mask], gy[mask]
+    plo, width = square_angles(x, y, x + h, y + h, dmin[mask])
+    mask[mask] = ((width >= TWO_PI) | (np.mod(plo - s0, TWO_PI) <= span + 1e-9)
+                  | (np.mod(s0 - plo, TWO_PI) <= width + 1e-9))
+    return mask
+
+
+def position_cells(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
+    """Cells [a h, (a+1) h]^2 touching the position set, limited to the index ranges given.
+    Returns (ax0, ay0, mask) with mask rows = y; None if no cell is left."""
+    bounds = _cell_bounds(ps, h, ax_range, ay_range)
+    if bounds is None:
         return None
-    return a0, b0, mask
+    a0, a1, b0, b1 = bounds
+    if ps.kind == "rect":
+        return a0, b0, np.ones((b1 - b0 + 1, a1 - a0 + 1), dtype=bool)
+    mask = _sector_cells(ps, h, a0, a1, b0, b1)
+    return (a0, b0, mask) if mask.any() else None
 
 
-def item_reach(item: Item, tables: dict) -> float:
+def row_runs(mask: np.ndarray, row0: int = 0, col0: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Maximal runs of True along the rows of a 2-D mask: (row, first col, last col) arrays
+    in row-major order, offset by (row0, col0)."""
+    edges = np.diff(np.pad(mask, ((0, 0), (1, 1))).view(np.int8), axis=1)
+    rs, cs = np.nonzero(edges == 1)
+    ce = np.nonzero(edges == -1)[1]
+    return rs.astype(np.int64) + row0, cs.astype(np.int64) + col0, ce.astype(np.int64) - 1 + col0
+
+
+def position_runs(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int],
+                  block: int = 512):
+    """The cells of `position_cells` as row runs (see `row_runs`), built `block` rows at a
+    time (a rectangle's runs directly); None if no cell is left."""
+    bounds = _cell_bounds(ps, h, ax_range, ay_range)
+    if bounds is None:
+        return None
+    a0, a1, b0, b1 = bounds
+    if ps.kind == "rect":
+        rows = np.arange(b0, b1 + 1, dtype=np.int64)
+        return rows, np.full(len(rows), a0, dtype=np.int64), np.full(len(rows), a1, dtype=np.int64)
+    parts = [row_runs(_sector_cells(ps, h, a0, a1, r, min(r + block - 1, b1)), r, a0)
+             for r in range(b0, b1 + 1, block)]
+    runs = tuple(np.concatenate(p) for p in zip(*parts))
+    return runs if len(runs[0]) else None
+
+
+@dataclass(frozen=True, eq=False)
+class Offsets:
+    """The offset cells of one (pose, sprites) pair on the grid of side 1/f: their mask
+    (2n + 1 square, offset (i - n, j - n) at row i, column j) and its row runs."""
+
+    n: int
+    mask: np.ndarray = field(repr=False)
+    runs: tuple = field(repr=False)
+
+
+class Tables:
+    """What one footprint proof computes once and reuses: per sprite, the log-polar table
+    (bins sized for the largest scale of every item given), the padded alpha and its node
+    maxima; the offset cells per pose and sprites; the position cells per position set.
+    Sprites are keys (they compare by identity), so nothing here depends on object ids."""
+
+    def __init__(self, items: list[Item], threshold: float, tol_px: float = BIN_TOL_PX):
+        smax = max([it.pose.max_scale for it in items] or [1.0])
+        self.items = list(items)
+        self.polar: dict = {}
+        for it in items:
+            for s in it.sprites:
+                if s not in self.polar:
+                    self.polar[s] = polar_table(s, threshold, smax, tol_px)
+        self._apad: dict = {}
+        self._nodemax: dict = {}
+        self._offsets: dict = {}
+        self._positions: dict = {}
+
+    def rho_max(self, sprite) -> float:
+        return self.polar[sprite].rho_max
+
+    def apad(self, sprite) -> np.ndarray:
+        if sprite not in self._apad:
+            self._apad[sprite] = padded_alpha(sprite)
+        return self._apad[sprite]
+
+    def nodemax(self, sprite) -> NodeMax:
+        if sprite not in self._nodemax:
+            self._nodemax[sprite] = NodeMax(self.apad(sprite))
+        return self._nodemax[sprite]
+
+    def positions(self, ps: PositionSet, f: int, window: tuple[int, int, int, int], n: int):
+        """`position_runs` of a position set: every cell that can reach a pixel centre of the
+        window through offset cells up to n (or any item's, if more) cells long. The items of
+        one box, one per class, share it; a cell beyond an item's own offsets adds nothing."""
+        key = (ps, f, window)
+        if key not in self._positions or self._positions[key][0] < n:
+            n = max([n] + [int(math.ceil(item_reach(it, self) * f)) + 2 for it in self.items])  # >= offset_cells' N
+            c0, r0, c1, r1 = window
+            c = (f - 1) // 2
+            self._positions[key] = (n, position_runs(ps, 1.0 / f, (f * c0 + c - n, f * (c1 - 1) + c + n),
+                                                     (f * r0 + c - n, f * (r1 - 1) + c + n)))
+        return self._positions[key][1]
+
+    def offsets(self, item: Item, f: int) -> Offsets:
+        key = (item.pose, item.sprites, f)
+        if key not in self._offsets:  # boxes of one region often share a pose
+            n, mask = offset_cells([self.polar[s] for s in item.sprites], item.pose, 1.0 / f)
+            self._offsets[key] = Offsets(n, mask, row_runs(mask))
+        return self._offsets[key]
+
+
+def make_tables(items_a: list[Item], items_b: list[Item], threshold: float, tol_px: float = BIN_TOL_PX) -> Tables:
+    return Tables(list(items_a) + list(items_b), threshold, tol_px)
+
+
+def item_reach(item: Item, tables: Tables) -> float:
     """How far (canvas px) from its anchor any object of the item can put alpha > 0."""
-    return item.pose.max_scale * max(tables[id(s)].rho_max for s in item.sprites)
+    return item.pose.max_scale * max(tables.rho_max(s) for s in item.sprites)
 
 
-def item_bbox(item: Item, tables: dict) -> tuple[float, float, float, float]:
+def item_bbox(item: Item, tables: Tables) -> tuple[float, float, float, float]:
     """(x0, y0, x1, y1) canvas px holding every pixel centre the item can cover."""
     r = item_reach(item, tables) + 1.0
     if item.position.kind == "rect":
@@ -432,33 +559,81 @@ def item_bbox(item: Item, tables: dict) -> tuple[float, float, float, float]:
     return x0 - r, y0 - r, x1 + r, y1 + r
 
 
-def item_mask(item: Item, tables: dict, window: tuple[int, int, int, int], f: int = SUPER) -> np.ndarray:
+def _pixel_span(lo_cell: int, hi_cell: int, f: int, lo_px: int, hi_px: int) -> tuple[int, int]:
+    """Pixels p in [lo_px, hi_px) whose centre cell f p + (f - 1) / 2 lies in [lo_cell, hi_cell],
+    as a half-open range (empty when the first is not below the second)."""
+    c = (f - 1) // 2
+    return np.maximum(-((c - lo_cell) // f), lo_px), np.minimum((hi_cell - c) // f + 1, hi_px)
+
+
+def _sum_at_pixels(pos, off: Offsets, f: int, cols: tuple[int, int], rows: tuple[int, int],
+                   pairs: int = 1 << 20) -> np.ndarray:
+    """Pixels (rows x cols, half-open canvas ranges) whose centre cell is a position cell plus
+    an offset cell: the binary dilation of the position cells by the offset cells, sampled at
+    pixel centres. A position run [s, e] in row b and an offset run [q0, q1] in row i give
+    exactly the cells [s + q0 - n, e + q1 - n] of row b + i - n, so each pixel row is a union
+    of intervals painted at once; pixel rows go a block at a time (at most `pairs` row pairs)."""
+    pb, ps_, pe = pos
+    oi, oq0, oq1 = off.runs
+    n, c = off.n, (f - 1) // 2
+    x0, x1 = cols
+    w = x1 - x0
+    bmin = int(pb[0])
+    counts = np.bincount(pb - bmin)
+    first = np.cumsum(counts) - counts
+    out = np.zeros((rows[1] - rows[0], w), dtype=bool)
+    step = max(1, pairs // max(len(oi), 1))
+    for y0 in range(rows[0], rows[1], step):
+        ry = np.arange(y0, min(y0 + step, rows[1]))
+        b = (f * ry + c)[:, None] - (oi - n)[None, :] - bmin  # position row of each (pixel row, offset run)
+        ok = (b >= 0) & (b < len(counts))
+        cnt = np.where(ok, counts[np.clip(b, 0, len(counts) - 1)], 0).ravel()
+        pair = np.flatnonzero(cnt)
+        cnt = cnt[pair]
+        rep = np.repeat(np.arange(len(pair)), cnt)
+        k = first[b.ravel()[pair]][rep] + (np.arange(len(rep)) - np.repeat(np.cumsum(cnt) - cnt, cnt))
+        j = (pair % len(oi))[rep]
+        lo, hi = _pixel_span(ps_[k] + oq0[j] - n, pe[k] + oq1[j] - n, f, x0, x1)
+        yy = (pair // len(oi))[rep]
+        keep = lo < hi
+        yy, lo, hi = yy[keep], lo[keep], hi[keep]
+        size = len(ry) * (w + 1)
+        edge = (np.bincount(yy * (w + 1) + lo - x0, minlength=size)
+                - np.bincount(yy * (w + 1) + hi - x0, minlength=size))
+        out[y0 - rows[0]:y0 - rows[0] + len(ry)] = np.cumsum(edge.reshape(len(ry), w + 1), axis=1)[:, :w] > 0
+    return out
+
+
+def item_patch(item: Item, tables: Tables, window: tuple[int, int, int, int], f: int = SUPER):
+    """The item's envelope (see `item_mask`) on the smallest part of the window that can
+    hold any of it: (x0, y0, mask) in canvas px, or None where it holds nothing."""
+    c0, r0, c1, r1 = window
+    if c1 <= c0 or r1 <= r0:
+        return None
+    off = tables.offsets(item, f)
+    n = off.n
+    pos = tables.positions(item.position, f, window, n)
+    if pos is None or not len(off.runs[0]):
+        return None
+    oi, oq0, oq1 = off.runs
+    cols = _pixel_span(int(pos[1].min() + oq0.min()) - n, int(pos[2].max() + oq1.max()) - n, f, c0, c1)
+    rows = _pixel_span(int(pos[0][0] + oi[0]) - n, int(pos[0][-1] + oi[-1]) - n, f, r0, r1)
+    cols, rows = (int(cols[0]), int(cols[1])), (int(rows[0]), int(rows[1]))
+    if cols[1] <= cols[0] or rows[1] <= rows[0]:
+        return None
+    return cols[0], rows[0], _sum_at_pixels(pos, off, f, cols, rows)
+
+
+def item_mask(item: Item, tables: Tables, window: tuple[int, int, int, int], f: int = SUPER) -> np.ndarray:
     """Conservative footprint envelope of one item on the pixel window (c0, r0, c1, r1),
     as bool (r1 - r0, c1 - c0): False means no allowed placement covers that pixel.
     `tables` comes from `make_tables` (it also caches offset masks)."""
     c0, r0, c1, r1 = window
     out = np.zeros((max(r1 - r0, 0), max(c1 - c0, 0)), dtype=bool)
-    if out.size == 0:
-        return out
-    h = 1.0 / f
-    key = ("offsets", item.pose, tuple(id(s) for s in item.sprites), f)
-    if key not in tables:  # boxes of one region often share a pose
-        tables[key] = offset_cells([tables[id(s)] for s in item.sprites], item.pose, h)
-    n, k = tables[key]
-    mx = f * np.arange(c0, c1) + (f - 1) // 2  # cell index of each pixel centre
-    my = f * np.arange(r0, r1) + (f - 1) // 2
-    pc = position_cells(item.position, h, (int(mx[0]) - n, int(mx[-1]) + n), (int(my[0]) - n, int(my[-1]) + n))
-    if pc is None:
-        return out
-    a0, b0, pm = pc
-    conv = fftconvolve(pm.astype(np.float64), k.astype(np.float64), mode="full")
-    # conv[j] pairs position cell a0 + i with offset cell k - n where i + k = j: pixel cell m = a0 - n + j
-    jx = mx - a0 + n
-    jy = my - b0 + n
-    okx = (jx >= 0) & (jx < conv.shape[1])
-    oky = (jy >= 0) & (jy < conv.shape[0])
-    sub = conv[np.ix_(jy[oky], jx[okx])] > 0.5
-    out[np.ix_(np.flatnonzero(oky), np.flatnonzero(okx))] = sub
+    patch = item_patch(item, tables, window, f)
+    if patch is not None:
+        x0, y0, m = patch
+        out[y0 - r0:y0 - r0 + m.shape[0], x0 - c0:x0 - c0 + m.shape[1]] = m
     return out
 
 
@@ -508,7 +683,7 @@ class Reach:
     boxes: int = 0  # placement boxes evaluated
 
 
-def _initial_boxes(items: list[Item], run: Run, tables: dict):
+def _initial_boxes(items: list[Item], run: Run, tables: Tables):
     """One box per item, sprite, mirror, scale interval and angle interval: position (rect
     x0, x1, y0, y1 or sector r0, r1, psi0, psi1 in radians), angle, scale.
 
@@ -521,7 +696,7 @@ def _initial_boxes(items: list[Item], run: Run, tables: dict):
     for ii, it in enumerate(items):
         for si, s in enumerate(it.sprites):
             # only anchors within this distance of the pixel can cover it
-            r = it.pose.max_scale * tables[id(s)].rho_max + 1e-6
+            r = it.pose.max_scale * tables.rho_max(s) + 1e-6
             ps = it.position
             if ps.kind == "rect":
                 x0, x1, y0, y1 = ps.bounds
@@ -561,7 +736,7 @@ def _foldable(items: list[Item], dx: int, dy: int) -> bool:
     return True
 
 
-def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, tables: dict,
+def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, tables: Tables,
           max_boxes: int = 1_000_000, batch: int = 1024) -> Reach:
     """Does some allowed placement of `items` cover a pixel of `run` (or one pixel (col, row))?
 
@@ -573,27 +748,35 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
     rows = _initial_boxes(items, run, tables)
     if not rows:
         return Reach("excluded")
-    t_eff = threshold - ALPHA_SLACK
-    px, py = run.col + 0.5, run.row + 0.5
-    meta = np.array([r[0] for r in rows], dtype=np.int64)  # item, sprite, is_sector, mirror
-    combos = np.unique(meta[:, :2], axis=0)  # (item, sprite) pairs, few: evaluated group by group
-    lo = np.array([r[1] for r in rows], dtype=np.float64)  # pos a, pos b, angle, scale
-    hi = np.array([r[2] for r in rows], dtype=np.float64)
-    ccx_all = np.array([it.position.centre[0] for it in items])
-    ccy_all = np.array([it.position.centre[1] for it in items])
+    return _BranchAndBound(items, run, threshold, tables, rows).search(max_boxes, batch)
 
-    def evaluate(lo, hi, meta):
+
+class _BranchAndBound:
+    """The placement boxes of one run and how to bound alpha on them (see the module docstring)."""
+
+    def __init__(self, items: list[Item], run: Run, threshold: float, tables: Tables, rows: list):
+        self.items, self.run, self.threshold, self.tables = items, run, threshold, tables
+        self.t_eff = threshold - ALPHA_SLACK
+        self.px, self.py = run.col + 0.5, run.row + 0.5
+        self.meta = np.array([r[0] for r in rows], dtype=np.int64)  # item, sprite, is_sector, mirror
+        self.combos = np.unique(self.meta[:, :2], axis=0)  # (item, sprite) pairs, few: evaluated group by group
+        self.lo = np.array([r[1] for r in rows], dtype=np.float64)  # pos a, pos b, angle, scale
+        self.hi = np.array([r[2] for r in rows], dtype=np.float64)
+        self.ccx = np.array([it.position.centre[0] for it in items])
+        self.ccy = np.array([it.position.centre[1] for it in items])
+
+    def evaluate(self, lo, hi, meta):
         """Centre placement, its alpha, an upper bound of alpha on the box, split terms."""
         mid, half = (lo + hi) / 2, (hi - lo) / 2
         sector = meta[:, 2] == 1
-        ccx, ccy = ccx_all[meta[:, 0]], ccy_all[meta[:, 0]]
+        ccx, ccy = self.ccx[meta[:, 0]], self.ccy[meta[:, 0]]
         cx = np.where(sector, ccx + mid[:, 0] * np.cos(mid[:, 1]), mid[:, 0])
         cy = np.where(sector, ccy - mid[:, 0] * np.sin(mid[:, 1]), mid[:, 1])
         # how far the anchor can be from the box's centre point
         pos_a = half[:, 0]
         pos_b = np.where(sector, (mid[:, 0] + half[:, 0]) * half[:, 1], half[:, 1])
         e_c = np.where(sector, pos_a + pos_b, np.hypot(pos_a, pos_b))
-        zx, zy = px - cx, py - cy
+        zx, zy = self.px - cx, self.py - cy
         th, s = mid[:, 2], mid[:, 3]
         c, sn = np.cos(th), np.sin(th)
         wx = (c * zx - sn * zy) / s
@@ -603,34 +786,41 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
         s_lo = lo[:, 3]
         terms = np.stack([pos_a / s_lo, pos_b / s_lo, zn * half[:, 2] / s, zn * (1.0 / s_lo - 1.0 / s)], axis=1)
         dev = e_c / s_lo + terms[:, 2] + terms[:, 3]
-        alpha = np.zeros(len(lo))
-        upper = alpha + SQRT2 * dev  # the Lipschitz bound
-        rho_out = np.zeros(len(lo))
-        small = dev < 0.5
-        for key in combos:
-            sel = (meta[:, 0] == key[0]) & (meta[:, 1] == key[1])
-            if not sel.any():
-                continue
-            spr = items[key[0]].sprites[key[1]]
-            ax, ay = spr.anchor
-            apad = _apad(spr, tables)
-            alpha[sel] = bilinear(apad, ax + wx[sel], ay + wy[sel])
-            upper[sel] += alpha[sel]
-            rho_out[sel] = tables[id(spr)].rho_max
-            # where the Lipschitz bound cannot drop the box: the largest alpha of the source
-            # cells the square holding the disc of radius dev touches, and for small boxes
-            # the exact maximum over that square
-            big = sel & (upper > t_eff)
-            if big.any():
-                upper[big] = np.minimum(upper[big], _nodemax(spr, tables)(ax + wx[big], ay + wy[big], dev[big]))
-            sq = sel & small & (upper > t_eff)
-            if sq.any():
-                upper[sq] = np.minimum(upper[sq], square_max(apad, ax + wx[sq], ay + wy[sq], dev[sq]))
+        alpha, upper, rho_out = self._bounds(meta, wx, wy, dev)
         # beyond rho_max from the anchor the alpha is exactly zero
         upper = np.where(np.hypot(wx, wy) - dev > rho_out, 0.0, upper)
         return cx, cy, th, s, alpha, upper, terms
 
-    def placement(k, cx, cy, th, s, alpha, meta):
+    def _bounds(self, meta, wx, wy, dev):
+        """Alpha at the box centres (sprite coordinates anchor + (wx, wy)), the upper bound
+        on each box (deviation dev), and each box's sprite radius."""
+        alpha = np.zeros(len(meta))
+        upper = alpha + SQRT2 * dev  # the Lipschitz bound
+        rho_out = np.zeros(len(meta))
+        small = dev < 0.5
+        for key in self.combos:
+            sel = (meta[:, 0] == key[0]) & (meta[:, 1] == key[1])
+            if not sel.any():
+                continue
+            spr = self.items[key[0]].sprites[key[1]]
+            ax, ay = spr.anchor
+            apad = self.tables.apad(spr)
+            alpha[sel] = bilinear(apad, ax + wx[sel], ay + wy[sel])
+            upper[sel] += alpha[sel]
+            rho_out[sel] = self.tables.rho_max(spr)
+            # where the Lipschitz bound cannot drop the box: the largest alpha of the source
+            # cells the square holding the disc of radius dev touches, and for small boxes
+            # the exact maximum over that square
+            big = sel & (upper > self.t_eff)
+            if big.any():
+                upper[big] = np.minimum(upper[big], self.tables.nodemax(spr)(ax + wx[big], ay + wy[big], dev[big]))
+            sq = sel & small & (upper > self.t_eff)
+            if sq.any():
+                upper[sq] = np.minimum(upper[sq], square_max(apad, ax + wx[sq], ay + wy[sq], dev[sq]))
+        return alpha, upper, rho_out
+
+    def placement(self, k, cx, cy, th, s, alpha, meta):
+        run, items = self.run, self.items
         ii, si = int(meta[k, 0]), int(meta[k, 1])
         step = 0
         if run.n > 1:  # unfold: the first pixel of the run whose anchor lands in the true set
@@ -641,74 +831,71 @@ def reach(items: list[Item], run: Run | tuple[int, int], threshold: float, table
                        float(s[k]), math.degrees(float(th[k])), bool(meta[k, 3]), ii, float(alpha[k]))
         return pl, run.pixel(step)
 
-    # best first: split the boxes with the largest upper bounds, a batch at a time, so a
-    # covering placement turns up early; excluding needs every box settled either way
-    total = 0
-    best = None  # (alpha, placement, pixel): the best placement seen
-    pool = None
-    clo, chi, cmeta = lo, hi, meta
-    while True:
-        total += len(clo)
-        cx, cy, th, s, alpha, cup, cterms = evaluate(clo, chi, cmeta)
-        k = int(np.argmax(alpha))
-        if best is None or alpha[k] > best[0]:
-            best = (float(alpha[k]),) + placement(k, cx, cy, th, s, alpha, cmeta)
-            if best[0] > threshold + WITNESS_MARGIN:
-                return Reach("covered", best[1], best[2], total)
-            if best[0] > t_eff:
-                # a placement within the renderer's rounding of the threshold: no proof can
-                # exclude the pixel, so look a little further for a clear one, then report it
-                # (its rendering decides)
-                max_boxes = min(max_boxes, total + TIE_BOXES)
-        keep = cup > t_eff
-        if pool is None:
-            lo, hi, meta, upper, terms = clo[keep], chi[keep], cmeta[keep], cup[keep], cterms[keep]
-        else:
-            lo = np.concatenate([lo[pool], clo[keep]])
-            hi = np.concatenate([hi[pool], chi[keep]])
-            meta = np.concatenate([meta[pool], cmeta[keep]])
-            upper = np.concatenate([upper[pool], cup[keep]])
-            terms = np.concatenate([terms[pool], cterms[keep]])
-        if not len(lo):
-            return Reach("excluded", boxes=total)
-        near = best[0] > threshold - TIE_BAND and upper.max() < threshold + TIE_BAND
-        if total >= max_boxes or near:
-            # out of budget, or the best alpha here is pinned within TIE_BAND of the threshold
-            # (settling it would take ever smaller boxes): report the best placement if it is
-            # close enough for the renderer to decide
-            marginal = best[0] > threshold - TIE_BAND
-            return Reach("undecided", best[1] if marginal else None, best[2] if marginal else None, total)
-        # a batch that grows with the pool keeps the bookkeeping linear in the boxes evaluated
-        size = max(batch, len(lo) // 2)
-        if len(lo) > size:
-            take = np.argpartition(-upper, size)[:size]
-            pool = np.ones(len(lo), dtype=bool)
-            pool[take] = False
-        else:
-            take, pool = np.arange(len(lo)), np.zeros(len(lo), dtype=bool)
-        blo, bhi, bmeta = lo[take], hi[take].copy(), meta[take]
-        # split each box across the dimension that moves u the most
-        dim = np.argmax(terms[take], axis=1)
-        r_ = np.arange(len(blo))
-        m = (blo[r_, dim] + bhi[r_, dim]) / 2
-        lo2, hi2 = blo.copy(), bhi.copy()
-        bhi[r_, dim] = m
-        lo2[r_, dim] = m
-        clo, chi, cmeta = np.concatenate([blo, lo2]), np.concatenate([bhi, hi2]), np.concatenate([bmeta, bmeta])
+    def search(self, max_boxes: int, batch: int) -> Reach:
+        # best first: split the boxes with the largest upper bounds, a batch at a time, so a
+        # covering placement turns up early; excluding needs every box settled either way
+        threshold, t_eff = self.threshold, self.t_eff
+        total = 0
+        best = None  # (alpha, placement, pixel): the best placement seen
+        pool = None
+        clo, chi, cmeta = self.lo, self.hi, self.meta
+        while True:
+            total += len(clo)
+            cx, cy, th, s, alpha, cup, cterms = self.evaluate(clo, chi, cmeta)
+            k = int(np.argmax(alpha))
+            if best is None or alpha[k] > best[0]:
+                best = (float(alpha[k]),) + self.placement(k, cx, cy, th, s, alpha, cmeta)
+                if best[0] > threshold + WITNESS_MARGIN:
+                    return Reach("covered", best[1], best[2], total)
+                if best[0] > t_eff:
+                    # a placement within the renderer's rounding of the threshold: no proof can
+                    # exclude the pixel, so look a little further for a clear one, then report it
+                    # (its rendering decides)
+                    max_boxes = min(max_boxes, total + TIE_BOXES)
+            keep = cup > t_eff
+            if pool is None:
+                lo, hi, meta, upper, terms = clo[keep], chi[keep], cmeta[keep], cup[keep], cterms[keep]
+            else:
+                lo = np.concatenate([lo[pool], clo[keep]])
+                hi = np.concatenate([hi[pool], chi[keep]])
+                meta = np.concatenate([meta[pool], cmeta[keep]])
+                upper = np.concatenate([upper[pool], cup[keep]])
+                terms = np.concatenate([terms[pool], cterms[keep]])
+            if not len(lo):
+                return Reach("excluded", boxes=total)
+            near = best[0] > threshold - TIE_BAND and upper.max() < threshold + TIE_BAND
+            if total >= max_boxes or near:
+                # out of budget, or the best alpha here is pinned within TIE_BAND of the threshold
+                # (settling it would take ever smaller boxes): report the best placement if it is
+                # close enough for the renderer to decide
+                marginal = best[0] > threshold - TIE_BAND
+                return Reach("undecided", best[1] if marginal else None, best[2] if marginal else None, total)
+            pool, take = _best_batch(upper, batch)
+            clo, chi, cmeta = _split(lo[take], hi[take], meta[take], terms[take])
 
 
-def _nodemax(sprite, tables: dict) -> NodeMax:
-    key = ("nodemax", id(sprite))
-    if key not in tables:
-        tables[key] = NodeMax(_apad(sprite, tables))
-    return tables[key]
+def _best_batch(upper: np.ndarray, batch: int):
+    """(the boxes left in the pool, the boxes to split): the largest upper bounds, a batch
+    that grows with the pool so the bookkeeping stays linear in the boxes evaluated."""
+    size = max(batch, len(upper) // 2)
+    if len(upper) > size:
+        take = np.argpartition(-upper, size)[:size]
+        pool = np.ones(len(upper), dtype=bool)
+        pool[take] = False
+        return pool, take
+    return np.zeros(len(upper), dtype=bool), np.arange(len(upper))
 
 
-def _apad(sprite, tables: dict) -> np.ndarray:
-    key = ("apad", id(sprite))
-    if key not in tables:
-        tables[key] = padded_alpha(sprite)
-    return tables[key]
+def _split(blo, bhi, bmeta, terms):
+    """Each box cut in two across the dimension that moves u the most."""
+    bhi = bhi.copy()
+    dim = np.argmax(terms, axis=1)
+    r_ = np.arange(len(blo))
+    m = (blo[r_, dim] + bhi[r_, dim]) / 2
+    lo2, hi2 = blo.copy(), bhi.copy()
+    bhi[r_, dim] = m
+    lo2[r_, dim] = m
+    return np.concatenate([blo, lo2]), np.concatenate([bhi, hi2]), np.concatenate([bmeta, bmeta])
 
 
 # ---- stages 2 and 3 together ----------------------------------------------------------------------
@@ -727,17 +914,7 @@ class EnvelopeCheck:
     accepted: object = None  # what on_pair accepted (a verified witness), if any
 
 
-def make_tables(items_a: list[Item], items_b: list[Item], threshold: float, tol_px: float = BIN_TOL_PX) -> dict:
-    smax = max([it.pose.max_scale for it in items_a + items_b] or [1.0])
-    tables: dict = {}
-    for it in items_a + items_b:
-        for s in it.sprites:
-            if id(s) not in tables:
-                tables[id(s)] = polar_table(s, threshold, smax, tol_px)
-    return tables
-
-
-def _window(items_a, items_b, tables, canvas: Canvas):
+def _window(items_a, items_b, tables: Tables, canvas: Canvas):
     def bbox(items):
         b = np.array([item_bbox(it, tables) for it in items])
         return b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max()
@@ -754,31 +931,142 @@ def _window(items_a, items_b, tables, canvas: Canvas):
 def _runs(mask: np.ndarray, down_ok: bool, across_ok: bool) -> list[tuple[int, int, int, int, int]]:
     """Maximal straight runs of True pixels, (col, row, dx, dy, n): along columns or along
     rows (where allowed), whichever gives fewer runs; single pixels when neither is."""
-    def along(m):
-        out = []
-        for j in range(m.shape[1]):
-            col = np.concatenate([[False], m[:, j], [False]]).astype(np.int8)
-            d = np.diff(col)
-            for a, b in zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)):
-                out.append((j, int(a), int(b - a)))
-        return out
-
     if not (down_ok or across_ok):
         return [(int(j), int(i), 0, 0, 1) for i, j in zip(*np.nonzero(mask))]
-    down = along(mask) if down_ok else None
-    across = along(mask.T) if across_ok else None
-    if across is None or (down is not None and len(down) <= len(across)):
-        return [(j, a, 0, 1, n) for j, a, n in down]
-    return [(a, j, 1, 0, n) for j, a, n in across]
+    down = row_runs(mask.T) if down_ok else None  # runs down each column: (col, first row, last row)
+    across = row_runs(mask) if across_ok else None
+    if across is None or (down is not None and len(down[0]) <= len(across[0])):
+        return [(int(j), int(a), 0, 1, int(b - a + 1)) for j, a, b in zip(*down)]
+    return [(int(a), int(i), 1, 0, int(b - a + 1)) for i, a, b in zip(*across)]
 
 
 @dataclass
 class _Group:
-    items_a: list
-    items_b: list
-    masks_a: list
-    masks_b: list
+    """Items of the two sides that may meet (indices into the full item lists), their
+    envelopes as patches (x0, y0, mask) or None, and the window they share."""
+
+    a: list
+    b: list
+    patches_a: list
+    patches_b: list
     window: tuple
+
+    def on(self, side: str, run: Run) -> tuple[int, ...]:
+        """Indices of the side's items whose envelope holds a pixel of the run."""
+        idx, patches = (self.a, self.patches_a) if side == "a" else (self.b, self.patches_b)
+        ks = np.arange(run.n)
+        xs, ys = run.col + ks * run.dx, run.row + ks * run.dy
+        return tuple(i for i, p in zip(idx, patches) if _holds(p, xs, ys))
+
+
+def _holds(patch, xs: np.ndarray, ys: np.ndarray) -> bool:
+    if patch is None:
+        return False
+    x0, y0, m = patch
+    xi, yi = xs - x0, ys - y0
+    ok = (xi >= 0) & (xi < m.shape[1]) & (yi >= 0) & (yi < m.shape[0])
+    return bool(m[yi[ok], xi[ok]].any())
+
+
+def _union(patches: list, window: tuple) -> np.ndarray:
+    c0, r0, c1, r1 = window
+    out = np.zeros((r1 - r0, c1 - c0), dtype=bool)
+    for p in patches:
+        if p is not None:
+            x0, y0, m = p
+            out[y0 - r0:y0 - r0 + m.shape[0], x0 - c0:x0 - c0 + m.shape[1]] |= m
+    return out
+
+
+class _Search:
+    """Stage 3 over the shared pixels of every group: the box budget left, the answers
+    already known (halving and the witness shortcut revisit pixels), and the tallies."""
+
+    def __init__(self, items_a: list[Item], items_b: list[Item], threshold: float, tables: Tables,
+                 max_boxes: int, on_pair):
+        self.items = {"a": items_a, "b": items_b}
+        self.threshold, self.tables, self.max_boxes, self.on_pair = threshold, tables, max_boxes, on_pair
+        self.budget = max_boxes
+        self.known: dict = {}  # (side, item indices, run) -> Reach
+        self.out = EnvelopeCheck(disjoint=True)
+
+    def reach(self, side: str, idx: tuple[int, ...], run: Run) -> Reach:
+        key = (side, idx, run)
+        if key in self.known:
+            return self.known[key]
+        if self.budget <= 0:
+            return Reach("undecided")
+        items = [self.items[side][i] for i in idx]
+        r = reach(items, run, self.threshold, self.tables, max_boxes=min(self.max_boxes // 4, self.budget))
+        self.budget -= r.boxes
+        self.out.boxes += r.boxes
+        if r.status == "undecided" and r.placement is not None:
+            # alpha within the renderer's rounding of the threshold: no proof can follow, so
+            # keep only a little budget to look for a witness
+            self._no_proof()
+        self.known[key] = r
+        return r
+
+    def _no_proof(self) -> None:
+        self.budget = min(self.budget, self.max_boxes // 8)
+
+    def pair(self, pixel, ra: Reach, idx_a: tuple, rb: Reach, idx_b: tuple) -> bool:
+        """Record two placements covering `pixel` (each indexing its idx list); True when
+        on_pair accepts them as a witness."""
+        pa = replace(ra.placement, item=idx_a[ra.placement.item])
+        pb = replace(rb.placement, item=idx_b[rb.placement.item])
+        self.out.pairs.append((pixel, pa, pb))
+        if self.on_pair is not None:
+            w = self.on_pair(pixel, pa, pb)
+            if w:
+                self.out.accepted = w
+                return True
+        return False
+
+    def settle(self, g: _Group, run: Run) -> bool:
+        """Settle every pixel of the run; True when a witness was accepted (stop)."""
+        sub_a, sub_b = g.on("a", run), g.on("b", run)
+        ra = self.reach("a", sub_a, run)
+        if ra.status == "excluded":
+            self.out.excluded += run.n
+            return False
+        rb = self.reach("b", sub_b, run)
+        if rb.status == "excluded":
+            self.out.excluded += run.n
+            return False
+        if run.n == 1:
+            if ra.placement is not None and rb.placement is not None:
+                if self.pair(run.pixel(0), ra, sub_a, rb, sub_b):
+                    return True
+            self.out.undecided += 1
+            self._no_proof()
+            return False
+        # the pixel one side covers is the likeliest witness: try the other side there first
+        if self._at_pixel(g, ra, "a", sub_a) or self._at_pixel(g, rb, "b", sub_b):
+            return True
+        first, second = run.halves()
+        return self.settle(g, first) or self.settle(g, second)
+
+    def _at_pixel(self, g: _Group, r: Reach, known: str, sub: tuple) -> bool:
+        """Where one side's placement covers a pixel, search the other side there."""
+        if r.placement is None:
+            return False
+        one = Run(r.pixel[0], r.pixel[1], 0, 0, 1)
+        here_a, here_b = g.on("a", one), g.on("b", one)
+        if known == "a":
+            pa, pb = _reindex(r, sub, here_a), self.reach("b", here_b, one)
+        else:
+            pa, pb = self.reach("a", here_a, one), _reindex(r, sub, here_b)
+        return (pa is not None and pb is not None and pa.placement is not None and pb.placement is not None
+                and self.pair(one.pixel(0), pa, here_a, pb, here_b))
+
+
+def _groups(items_a: list[Item], items_b: list[Item], per_class: bool) -> list[tuple[list, list]]:
+    """Index lists of the items that may meet: per shared class, or all of each side."""
+    if per_class:
+        return [([i for i, it in enumerate(items_a) if it.cls == c], [i for i, it in enumerate(items_b) if it.cls == c])
+                for c in sorted({i.cls for i in items_a} & {i.cls for i in items_b})]
+    return [(list(range(len(items_a))), list(range(len(items_b))))] if items_a and items_b else []
 
 
 def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, threshold: float, per_class: bool,
@@ -791,122 +1079,39 @@ def check_envelopes(items_a: list[Item], items_b: list[Item], canvas: Canvas, th
     `on_pair(pixel, placement_a, placement_b)` may verify a pair and return a witness; the
     search stops at the first one it accepts. `max_boxes` bounds the work of stage 3."""
     tables = make_tables(items_a, items_b, threshold, tol_px)
-    if per_class:
-        pairs = [([i for i in items_a if i.cls == c], [i for i in items_b if i.cls == c])
-                 for c in sorted({i.cls for i in items_a} & {i.cls for i in items_b})]
-    else:
-        pairs = [(items_a, items_b)] if items_a and items_b else []
-    index_a = {id(it): n for n, it in enumerate(items_a)}
-    index_b = {id(it): n for n, it in enumerate(items_b)}
-    out = EnvelopeCheck(disjoint=True)
+    search = _Search(items_a, items_b, threshold, tables, max_boxes, on_pair)
+    out = search.out
     work = []  # (-depth, group, Run)
     groups = []
-    for ga, gb in pairs:
+    for ia, ib in _groups(items_a, items_b, per_class):
+        ga, gb = [items_a[i] for i in ia], [items_b[i] for i in ib]
         win = _window(ga, gb, tables, canvas)
         c0, r0, c1, r1 = win
         if c1 <= c0 or r1 <= r0:
             continue
-        ma = [item_mask(it, tables, win, f) for it in ga]
-        mb = [item_mask(it, tables, win, f) for it in gb]
-        shared = np.logical_or.reduce(ma) & np.logical_or.reduce(mb)
+        pa = [item_patch(it, tables, win, f) for it in ga]
+        pb = [item_patch(it, tables, win, f) for it in gb]
+        shared = _union(pa, win) & _union(pb, win)
         if not shared.any():
             continue
-        g = _Group(ga, gb, ma, mb, win)
-        groups.append(g)
+        groups.append(_Group(ia, ib, pa, pb, win))
         out.candidates += int(shared.sum())
         depth = cv2.distanceTransform(np.pad(shared, 1).astype(np.uint8), cv2.DIST_L2, 3)[1:-1, 1:-1]
-        runs = _runs(shared, _foldable(ga + gb, 0, 1), _foldable(ga + gb, 1, 0))
-        for col, row, dx, dy, n in runs:
+        for col, row, dx, dy, n in _runs(shared, _foldable(ga + gb, 0, 1), _foldable(ga + gb, 1, 0)):
             ks = np.arange(n)
             run = Run(col + c0, row + r0, dx, dy, n)
             work.append((-float(depth[row + ks * dy, col + ks * dx].max()), len(groups) - 1, run))
-    if not work:
-        return out
     work.sort(key=lambda w: (w[0], w[2].row, w[2].col))
-    budget = [max_boxes]
-
-    def items_on(g: _Group, run: Run, side: str):
-        items, masks = (g.items_a, g.masks_a) if side == "a" else (g.items_b, g.masks_b)
-        c0, r0 = g.window[:2]
-        ks = np.arange(run.n)
-        ys, xs = run.row - r0 + ks * run.dy, run.col - c0 + ks * run.dx
-        keep = [k for k, m in enumerate(masks) if m[ys, xs].any()]
-        return [items[k] for k in keep]
-
-    memo: dict = {}
-
-    def run_reach(items, run):
-        key = (tuple(map(id, items)), run)  # halving and the witness shortcut revisit pixels
-        if key in memo:
-            return memo[key]
-        if budget[0] <= 0:
-            return Reach("undecided")
-        r = reach(items, run, threshold, tables, max_boxes=min(max_boxes // 4, budget[0]))
-        budget[0] -= r.boxes
-        out.boxes += r.boxes
-        if r.status == "undecided" and r.placement is not None:
-            # alpha within the renderer's rounding of the threshold: no proof can follow, so
-            # keep only a little budget to look for a witness
-            budget[0] = min(budget[0], max_boxes // 8)
-        memo[key] = r
-        return r
-
-    def pair(g, sub_a, sub_b, pixel, ra: Reach, rb: Reach):
-        pa = replace(ra.placement, item=index_a[id(sub_a[ra.placement.item])])
-        pb = replace(rb.placement, item=index_b[id(sub_b[rb.placement.item])])
-        out.pairs.append((pixel, pa, pb))
-        if on_pair is not None:
-            w = on_pair(pixel, pa, pb)
-            if w:
-                out.accepted = w
-                return True
-        return False
-
-    def settle(g: _Group, run: Run) -> bool:
-        """Settle every pixel of the run; True when a witness was accepted (stop)."""
-        sub_a, sub_b = items_on(g, run, "a"), items_on(g, run, "b")
-        ra = run_reach(sub_a, run)
-        if ra.status == "excluded":
-            out.excluded += run.n
-            return False
-        rb = run_reach(sub_b, run)
-        if rb.status == "excluded":
-            out.excluded += run.n
-            return False
-        if run.n == 1:
-            if ra.placement is not None and rb.placement is not None:
-                if pair(g, sub_a, sub_b, run.pixel(0), ra, rb):
-                    return True
-            out.undecided += 1
-            budget[0] = min(budget[0], max_boxes // 8)  # no proof can follow now
-            return False
-        # the pixel one side covers is the likeliest witness: try the other side there first
-        for r, known in ((ra, "a"), (rb, "b")):
-            if r.placement is None:
-                continue
-            one = Run(r.pixel[0], r.pixel[1], 0, 0, 1)
-            here_a, here_b = items_on(g, one, "a"), items_on(g, one, "b")
-            if known == "a":
-                pa, pb = _reindex(r, sub_a, here_a), run_reach(here_b, one)
-            else:
-                pa, pb = run_reach(here_a, one), _reindex(r, sub_b, here_b)
-            if (pa is not None and pb is not None and pa.placement is not None and pb.placement is not None
-                    and pair(g, here_a, here_b, one.pixel(0), pa, pb)):
-                return True
-        first, second = run.halves()
-        return settle(g, first) or settle(g, second)
-
     for _, gi, run in work:
-        if settle(groups[gi], run):
+        if search.settle(groups[gi], run):
             break
     out.disjoint = out.accepted is None and out.excluded == out.candidates
     return out
 
 
-def _reindex(r: Reach, old: list, new: list) -> Reach | None:
+def _reindex(r: Reach, old: tuple, new: tuple) -> Reach | None:
     """The reach with its placement indexing `new` instead of `old` (None if not there)."""
     it = old[r.placement.item]
-    for k, cand in enumerate(new):
-        if cand is it:
-            return replace(r, placement=replace(r.placement, item=k))
-    return None
+    if it not in new:
+        return None
+    return replace(r, placement=replace(r.placement, item=new.index(it)))

@@ -12,6 +12,7 @@ from pathlib import Path
 
 import cv2
 import numpy as np
+import scipy.fft
 
 from ..errors import SourceError, SpecError
 from .base import LUMA_BT601, PixelBudget
@@ -34,6 +35,8 @@ def _shape_channels(field: np.ndarray, channels: int, per_channel: bool) -> np.n
     """(C, H, W) or (1, H, W) floats to (H, W, channels)."""
     if channels not in (1, 3):
         raise ValueError(f"channels must be 1 or 3, got {channels}")
+    if field.shape[0] != channels and field.dtype == np.uint8:  # one plane to three: cv2 is far faster
+        return cv2.cvtColor(np.ascontiguousarray(field[0]), cv2.COLOR_GRAY2RGB)
     out = np.moveaxis(field, 0, -1)
     if out.shape[2] != channels:
         out = np.repeat(out[..., :1], channels, axis=2)
@@ -118,29 +121,62 @@ def spectral_filter(height: int, width: int, exponent: float) -> np.ndarray:
 class PinkNoise:
     """Gaussian noise shaped to an amplitude spectrum 1/f^exponent (exponent 1: "pink", the
     average spectrum of natural images, Field 1987), scaled to the given mean and RMS contrast
-    (standard deviation / mean of intensity), then clipped to [0, 1]."""
+    (standard deviation / mean of intensity), then clipped to [0, 1].
 
-    def __init__(self, mean: float = 0.5, contrast: float = 0.2, exponent: float = 1.0, per_channel: bool = False):
+    Two syntheses of the same process (their pixels differ): "spectrum" (the default) draws
+    the Fourier coefficients themselves, in single precision, and makes one inverse FFT;
+    "white" draws white noise in double precision and filters it (two FFTs), as every
+    dataset made before the choice existed did."""
+
+    SYNTHESES = ("spectrum", "white")
+
+    def __init__(self, mean: float = 0.5, contrast: float = 0.2, exponent: float = 1.0, per_channel: bool = False,
+                 synthesis: str = "spectrum"):
         self.mean = _unit(mean, "background.mean")
         if isinstance(contrast, bool) or not isinstance(contrast, (int, float)) or contrast < 0:
             raise SpecError(f"contrast must be a non-negative number, got {contrast!r}", where="background.contrast")
         if isinstance(exponent, bool) or not isinstance(exponent, (int, float)) or not 0 <= exponent <= 4:
             raise SpecError(f"exponent must be a number in [0, 4], got {exponent!r}", where="background.exponent")
+        if synthesis not in self.SYNTHESES:
+            raise SpecError(f"synthesis must be one of {', '.join(self.SYNTHESES)}, got {synthesis!r}",
+                            where="background.synthesis")
         self.contrast, self.exponent = float(contrast), float(exponent)
-        self.per_channel = bool(per_channel)
+        self.per_channel, self.synthesis = bool(per_channel), synthesis
         self._filters: dict[tuple[int, int], np.ndarray] = {}  # per canvas size; pure function of it
 
-    def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:
-        """(k, H, W) float fields with exactly the requested mean and RMS contrast (before clipping)."""
+    def _gain(self, height: int, width: int) -> np.ndarray:
         gain = self._filters.get((height, width))
         if gain is None:
-            gain = self._filters[(height, width)] = spectral_filter(height, width, self.exponent)
-        white = rng.standard_normal((k, height, width))
-        shaped = np.fft.irfft2(np.fft.rfft2(white) * gain, s=(height, width))
+            gain = spectral_filter(height, width, self.exponent)
+            if self.synthesis == "spectrum":
+                gain = coefficient_gain(gain, width).astype(np.float32)
+            self._filters[(height, width)] = gain
+        return gain
+
+    def _shaped(self, rng: np.random.Generator, height: int, width: int, k: int) -> np.ndarray:
+        """(k, H, W) zero-mean fields with the 1/f^exponent spectrum, before normalising."""
+        gain = self._gain(height, width)
+        if self.synthesis == "white":
+            white = rng.standard_normal((k, height, width))
+            return np.fft.irfft2(np.fft.rfft2(white) * gain, s=(height, width))
+        # real and imaginary parts of every rfft2 coefficient, as complex64
+        coef = rng.standard_normal((k, height, 2 * gain.shape[1]), dtype=np.float32).view(np.complex64)
+        coef *= gain
+        return scipy.fft.irfft2(coef, s=(height, width), overwrite_x=True)
+
+    def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:
+        """(k, H, W) float fields with exactly the requested mean and RMS contrast (before
+        clipping; to single precision for "spectrum")."""
+        shaped = self._shaped(rng, height, width, k)
         shaped -= shaped.mean(axis=(1, 2), keepdims=True)
-        sd = shaped.std(axis=(1, 2), keepdims=True)
-        shaped /= np.where(sd > 0, sd, 1.0)
-        return self.mean * (1.0 + self.contrast * shaped)
+        if self.synthesis == "white":  # the arithmetic those datasets were made with
+            sd = shaped.std(axis=(1, 2), keepdims=True)
+            shaped /= np.where(sd > 0, sd, 1.0)
+            return self.mean * (1.0 + self.contrast * shaped)
+        sd = np.sqrt(np.square(shaped).mean(axis=(1, 2), keepdims=True))
+        shaped *= (self.mean * self.contrast / np.where(sd > 0, sd, 1.0)).astype(np.float32)
+        shaped += np.float32(self.mean)
+        return shaped
 
     def draw(self, rng, height, width, channels):
         field = self.field(rng, height, width, channels if self.per_channel else 1)
@@ -148,7 +184,25 @@ class PinkNoise:
 
     def __repr__(self) -> str:
         return (f"PinkNoise(mean={self.mean}, contrast={self.contrast}, exponent={self.exponent}, "
-                f"per_channel={self.per_channel})")
+                f"per_channel={self.per_channel}, synthesis={self.synthesis!r})")
+
+
+def coefficient_gain(gain: np.ndarray, width: int) -> np.ndarray:
+    """The gain on independent standard normal real and imaginary parts of rfft2 coefficients
+    that gives, through irfft2, the field of `gain` applied to white noise.
+
+    White noise's coefficients have independent real and imaginary parts of equal variance,
+    except that conjugate coefficients are tied; inside the rfft2 half-plane only columns 0
+    and (even width) width/2 hold conjugate pairs. irfft2 keeps the Hermitian part of those
+    columns, (X[k] + conj X[-k]) / 2, which halves the variance of independent draws there
+    (a self-conjugate coefficient keeps its real part only: half as well). So those columns
+    get sqrt(2) more gain; every coefficient then has the variance white noise gives it,
+    up to one common factor (the fields are normalised afterwards)."""
+    out = gain.copy()
+    out[:, 0] *= math.sqrt(2.0)
+    if width % 2 == 0:
+        out[:, -1] *= math.sqrt(2.0)
+    return out
 
 
 class ImageFolder:

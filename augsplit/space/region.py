@@ -110,6 +110,16 @@ class Region:
         """Mass of each box as a fraction of the whole space (product of the axes' measures)."""
         return np.prod((self.hi - self.lo) / self.space.t_span, axis=1)
 
+    def cumulative_share(self) -> np.ndarray:
+        """Cumulative box masses over the total (how exact sampling picks a box), made once."""
+        cum = self.__dict__.get("_cumulative")
+        if cum is None:
+            cum = np.cumsum(self.box_masses())
+            cum = cum / cum[-1]
+            cum.setflags(write=False)
+            object.__setattr__(self, "_cumulative", cum)
+        return cum
+
     def mass(self) -> float:
         return float(self.box_masses().sum())
 

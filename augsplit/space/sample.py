@@ -62,26 +62,56 @@ def sample_t(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """
     if region.is_empty():
         raise ValueError("cannot sample from an empty region")
+    u = _uniforms(region.space, u)
+    box = _pick(region, u[:, 0])
+    return _place(region.space, region.lo[box], region.hi[box], u[:, 1:]), box
+
+
+def sample_t_each(regions: list[Region], which: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Points in t: row i sampled from regions[which[i]] exactly as `sample_t` would sample
+    it (the same numbers), the regions' boxes picked one region at a time and the points
+    placed in one pass (for draws whose rows come from several regions, a few at a time)."""
+    which = np.asarray(which, dtype=np.int64)
+    space = regions[0].space
+    u = _uniforms(space, u)
+    lo, hi = np.empty((len(u), space.ndim)), np.empty((len(u), space.ndim))
+    for k in np.unique(which):
+        if regions[k].is_empty():
+            raise ValueError("cannot sample from an empty region")
+        rows = np.flatnonzero(which == k)
+        box = _pick(regions[k], u[rows, 0])
+        lo[rows], hi[rows] = regions[k].lo[box], regions[k].hi[box]
+    return _place(space, lo, hi, u[:, 1:])
+
+
+def _uniforms(space, u) -> np.ndarray:
     u = np.asarray(u, dtype=float)
-    n_col = region.space.ndim + 1
+    n_col = space.ndim + 1
     if u.ndim == 1 and u.size == n_col:
         u = u[None, :]
     if u.ndim != 2 or u.shape[1] != n_col:
         raise ValueError(f"expected uniforms of shape (N, {n_col}) (one for the box, one per axis), got shape {u.shape}")
     if not np.all((u >= 0) & (u <= 1)):
         raise ValueError("uniforms must lie in [0, 1]")
-    cum = np.cumsum(region.box_masses())
-    # u0 in [0, 1) falls in box k with probability mass_k / total; u0 = 1 goes to the last box
-    box = np.minimum(np.searchsorted(cum / cum[-1], u[:, 0], side="right"), region.nbox - 1)
-    lo, hi = region.lo[box], region.hi[box]
-    t = lo + u[:, 1:] * (hi - lo)
-    levels = region.space.discrete
+    return u
+
+
+def _pick(region: Region, u0: np.ndarray) -> np.ndarray:
+    """The box of each uniform: u0 in [0, 1) falls in box k with probability mass_k / total;
+    u0 = 1 goes to the last box."""
+    return np.minimum(np.searchsorted(region.cumulative_share(), u0, side="right"), region.nbox - 1)
+
+
+def _place(space, lo: np.ndarray, hi: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Points of the boxes (lo, hi), one uniform per axis."""
+    t = lo + u * (hi - lo)
+    levels = space.discrete
     if levels.any():
         # a levels box spans whole unit cells: pick one cell evenly and return its exact
         # index, so no draw can land on a cell face and round to a level outside the box
         n = np.maximum(np.rint(hi - lo), 1.0)
-        t = np.where(levels, np.rint(lo + 0.5) + np.minimum(np.floor(u[:, 1:] * n), n - 1), t)
-    return t, box
+        t = np.where(levels, np.rint(lo + 0.5) + np.minimum(np.floor(u * n), n - 1), t)
+    return t
 
 
 def sample(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -1,0 +1,250 @@
+"""Benchmark of rendering: scenes with distractors, lazily re-rendered 1/f-noise items, and
+PNG settings per background kind.
+
+1. Distractors: CPU time per image of `generate --store none` (96x96 RGB, solid background,
+   pentominoes), marginal (the difference of two run lengths, so start-up is not counted),
+   with 0, 2, 5 and 5 non-overlapping distractors. Aim: 5 distractors at most 5x one object.
+2. Lazy noise: CPU time per item of re-rendering a 1/f-noise item from its manifest row
+   (the scene, as a lazy loader makes it) against decoding the PNG the generator stores for
+   it (cv2.imdecode, BGR to RGB) — and the same through the Dataset loader (store none
+   against store files). Aim: lazy at least as fast (ratio of speeds >= 1).
+3. PNG settings: encoded size and encode / decode CPU time of the generator's images per
+   background kind, for OpenCV's default and a grid of compression levels, strategies and
+   filters (pixels are identical whatever the setting: PNG is lossless).
+
+Times are CPU time of one process (time.process_time: other jobs on a shared machine are
+not counted), contenders run in turn within each round, and each keeps its best round.
+With `--baseline REF` sections 1 and 2 also run on the package as it was at git ref REF.
+
+    python tests/bench/bench_scenes.py [--baseline REF] [--n 600] [--rounds 5] [--skip png]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+HERE = Path(__file__).resolve()
+sys.path.insert(0, str(HERE.parent))
+
+from sidebyside import child, export, load, verdict  # noqa: E402
+
+SCENE = {
+    "seed": 7, "canvas": {"width": 96, "height": 96, "mode": "rgb"},
+    "objects": {"kind": "polyomino", "cells": 5, "cell_px": 5, "colour": [220, 80, 40]},
+    "background": {"kind": "solid", "value": 0.5},
+    "axes": {"x": {"range": [16, 80]}, "y": {"range": [16, 80]}, "scale": {"range": [0.75, 1.5], "dist": "log"},
+             "angle": {"range": [0, 360]}, "hue": {"range": [0, 360]}},
+    "splits": {"train": {"region": {"x": [16, 40]}, "count": 100}, "test": {"region": {"x": [56, 80]}, "count": 20}},
+}
+BACKGROUNDS = {
+    "solid": {"kind": "solid", "value": 0.5},
+    "uniform_noise": {"kind": "uniform_noise"},
+    "gaussian_noise": {"kind": "gaussian_noise", "mean": 0.5, "sd": 0.1},
+    "pink_noise": {"kind": "pink_noise", "mean": 0.5, "contrast": 0.15},
+}
+DISTRACTORS = [("one object", [0, 0], False), ("2 distractors", [2, 2], False), ("5 distractors", [5, 5], False),
+               ("5 no_overlap", [5, 5], True)]
+
+
+def _spec(n: int, background: dict, count=(0, 0), no_overlap=False) -> dict:
+    s = json.loads(json.dumps(SCENE))
+    s["background"] = background
+    s["splits"]["train"]["count"], s["splits"]["test"]["count"] = n, max(1, n // 5)
+    s["render"] = {"distractors": {"count": list(count), "no_overlap": no_overlap}}
+    return s
+
+
+# ---- children (run with the tree under test first on the path) ----------------------------------
+
+
+def child_distractors(n: int, rounds: int) -> dict:
+    """CPU s per image of generate --store none, marginal, per distractor setting."""
+    from augsplit.build import open_mapping
+    from augsplit.generate import Options, generate
+
+    tmp = Path(tempfile.mkdtemp(prefix="augsplit-bench-"))
+    runs = {}
+    for name, count, no in DISTRACTORS:
+        for k in (1, 3):
+            runs[(name, k)] = open_mapping(_spec(k * n, BACKGROUNDS["solid"], count, no))
+    best = {key: float("inf") for key in runs}
+    for _ in range(rounds):
+        for key, built in runs.items():
+            out = tmp / "out"
+            shutil.rmtree(out, ignore_errors=True)
+            t0 = time.process_time()
+            generate(None, out, Options(store="none", progress=False), built=built)
+            best[key] = min(best[key], time.process_time() - t0)
+    shutil.rmtree(tmp, ignore_errors=True)
+    per = {name: (best[(name, 3)] - best[(name, 1)]) / (2 * (n + max(1, n // 5))) for name, _, _ in DISTRACTORS}
+    return {"per_image": per}
+
+
+def child_lazy(n: int, rounds: int) -> dict:
+    """CPU s per item: re-rendering 1/f-noise items vs decoding their stored PNGs (and the
+    same through the Dataset loader, when this tree has one)."""
+    from augsplit.build import open_mapping
+    from augsplit.plan.draw import draw
+    from augsplit.scene import make_scene
+
+    built = open_mapping(_spec(n, BACKGROUNDS["pink_noise"]))
+    plan, split = built.plan, built.plan.split("train")
+    cols = draw(plan, split, np.arange(n))
+    rows = [{k: v[i] for k, v in cols.items()} for i in range(n)]
+    pngs = [cv2.imencode(".png", cv2.cvtColor(make_scene(plan, built.source, built.background, split, r).image,
+                                              cv2.COLOR_RGB2BGR))[1] for r in rows]
+
+    def lazy():
+        for r in rows:
+            make_scene(plan, built.source, built.background, split, r)
+
+    def decode():
+        for p in pngs:
+            cv2.cvtColor(cv2.imdecode(p, cv2.IMREAD_COLOR), cv2.COLOR_BGR2RGB)
+
+    fns = {"lazy": lazy, "decode": decode}
+    fns.update(_dataset_fns(built, n))
+    best = {k: float("inf") for k in fns}
+    for _ in range(rounds):
+        for k, fn in fns.items():
+            t0 = time.process_time()
+            fn()
+            best[k] = min(best[k], (time.process_time() - t0) / n)
+    return best
+
+
+def _dataset_fns(built, n: int) -> dict:
+    try:
+        from augsplit.data import Dataset
+        from augsplit.generate import Options, generate
+    except ImportError:
+        return {}
+    tmp = Path(tempfile.mkdtemp(prefix="augsplit-bench-"))
+    sets = {}
+    for store in ("none", "files"):
+        generate(None, tmp / store, Options(store=store, progress=False), built=built)
+        sets[store] = Dataset(tmp / store, "train")
+
+    def run(ds):
+        return lambda: [ds[i] for i in range(n)]
+
+    return {"dataset_lazy": run(sets["none"]), "dataset_files": run(sets["files"])}
+
+
+# ---- PNG settings (this tree only) ----------------------------------------------------------------
+
+
+PNG_SETTINGS = {"OpenCV default": []}
+PNG_SETTINGS.update({f"level {lv}": [cv2.IMWRITE_PNG_COMPRESSION, lv] for lv in (0, 1, 3, 6, 9)})
+for _f in ("NONE", "SUB", "UP", "PAETH"):
+    PNG_SETTINGS[f"level 1, filter {_f.lower()}"] = [cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_FILTER,
+                                                      getattr(cv2, f"IMWRITE_PNG_FILTER_{_f}")]
+for _s in ("RLE", "HUFFMAN_ONLY", "FILTERED"):
+    PNG_SETTINGS[f"level 1, strategy {_s.lower()}"] = [cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_STRATEGY,
+                                                        getattr(cv2, f"IMWRITE_PNG_STRATEGY_{_s}")]
+
+
+def png_table(n: int, rounds: int) -> None:
+    from augsplit.build import open_mapping
+    from augsplit.plan.draw import draw
+    from augsplit.scene import make_scene
+
+    print("\n== PNG settings: bytes per image and CPU time per image to encode / decode "
+          f"(96x96 RGB, {n} generated images per background)")
+    for kind, bg in BACKGROUNDS.items():
+        built = open_mapping(_spec(n, bg))
+        plan, split = built.plan, built.plan.split("train")
+        cols = draw(plan, split, np.arange(n))
+        imgs = [cv2.cvtColor(make_scene(plan, built.source, built.background, split,
+                                         {k: v[i] for k, v in cols.items()}).image, cv2.COLOR_RGB2BGR) for i in range(n)]
+        rows = []
+        for name, params in PNG_SETTINGS.items():
+            enc = dec = float("inf")
+            bufs = [cv2.imencode(".png", im, params)[1] for im in imgs]
+            for _ in range(rounds):
+                t0 = time.process_time()
+                for im in imgs:
+                    cv2.imencode(".png", im, params)
+                enc = min(enc, (time.process_time() - t0) / n)
+                t0 = time.process_time()
+                for b in bufs:
+                    cv2.imdecode(b, cv2.IMREAD_COLOR)
+                dec = min(dec, (time.process_time() - t0) / n)
+            assert all(np.array_equal(cv2.imdecode(b, cv2.IMREAD_COLOR), im) for b, im in zip(bufs[:20], imgs))
+            rows.append((name, float(np.mean([len(b) for b in bufs])), enc, dec))
+        base = rows[0]
+        print(f"{kind}:")
+        for name, size, enc, dec in rows:
+            print(f"  {name:30s} {size:8.0f} B ({size / base[1]:5.2f}x)   encode {enc * 1e6:6.0f} us "
+                  f"({enc / base[2]:4.2f}x)   decode {dec * 1e6:5.0f} us ({dec / base[3]:4.2f}x)")
+        smallest = min(rows, key=lambda r: (r[1], r[2]))
+        fastest = min(rows, key=lambda r: r[2] + r[3])
+        # the pick: the smallest files among settings that encode at most 1.5x slower than the default
+        pick = min((r for r in rows if r[2] <= 1.5 * base[2]), key=lambda r: r[1])
+        print(f"  -> smallest: {smallest[0]}; fastest encode + decode: {fastest[0]}; "
+              f"smallest within 1.5x the default's encode time: {pick[0]}")
+
+
+# ---- the report ------------------------------------------------------------------------------------
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--baseline", default=None, help="git ref to measure side by side")
+    ap.add_argument("--n", type=int, default=600, help="images per measured run")
+    ap.add_argument("--rounds", type=int, default=5, help="rounds per figure (the best is kept)")
+    ap.add_argument("--skip", default="", help="comma-separated sections to skip: distractors,lazy,png")
+    ap.add_argument("--child", nargs=3, default=None, help=argparse.SUPPRESS)
+    a = ap.parse_args()
+    if a.child:
+        what, n, rounds = a.child[0], int(a.child[1]), int(a.child[2])
+        print(json.dumps({"distractors": child_distractors, "lazy": child_lazy}[what](n, rounds)))
+        return
+    skip = set(filter(None, a.skip.split(",")))
+    trees = {"now": None}
+    if a.baseline:
+        trees[a.baseline] = export(a.baseline)
+    print(f"== rendering benchmarks ({load()} at start)")
+    if "distractors" not in skip:
+        print(f"\n== distractors: CPU per image of generate --store none (96x96 RGB, solid background), "
+              f"best of {a.rounds} rounds")
+        res = {label: child(HERE, ["--child", "distractors", str(a.n), str(a.rounds)], tree)["per_image"]
+               for label, tree in trees.items()}
+        for label, per in res.items():
+            one = per["one object"]
+            cells = "   ".join(f"{k} {v * 1e6:5.0f} us ({v / one:4.1f}x)" for k, v in per.items())
+            print(f"  {label:8s} {cells}")
+        r = res["now"]["5 distractors"] / res["now"]["one object"]
+        print(f"  aim: 5 distractors at most 5x one object: {r:.1f}x {verdict(r <= 5.0)}")
+    if "lazy" not in skip:
+        print(f"\n== lazy 1/f-noise items vs decoding their stored PNGs (96x96 RGB), best of {a.rounds} rounds")
+        res = {label: child(HERE, ["--child", "lazy", str(a.n), str(a.rounds)], tree) for label, tree in trees.items()}
+        for label, t in res.items():
+            line = (f"  {label:8s} re-render {t['lazy'] * 1e6:5.0f} us, PNG decode {t['decode'] * 1e6:5.0f} us: "
+                    f"lazy / decode speed {t['decode'] / t['lazy']:4.2f}x")
+            if "dataset_lazy" in t:
+                line += (f";  Dataset store none {t['dataset_lazy'] * 1e6:5.0f} us, store files "
+                         f"{t['dataset_files'] * 1e6:5.0f} us: {t['dataset_files'] / t['dataset_lazy']:4.2f}x")
+            print(line)
+        t = res["now"]
+        ratio = t["decode"] / t["lazy"]
+        print(f"  aim: re-rendering at least as fast as decoding the PNG: {ratio:.2f}x {verdict(ratio >= 1.0)}")
+        if "dataset_lazy" in t:
+            r2 = t["dataset_files"] / t["dataset_lazy"]
+            print(f"  aim, through the Dataset loader: {r2:.2f}x {verdict(r2 >= 1.0)}")
+    if "png" not in skip:
+        png_table(min(a.n, 300), a.rounds)
+    print(f"\n({load()} at the end)")
+
+
+if __name__ == "__main__":
+    main()
