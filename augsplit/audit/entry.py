@@ -17,7 +17,7 @@ import pandas as pd
 
 from .. import manifest as mf
 from ..errors import DatasetError
-from .result import FAIL, PASS, AuditResult, CheckResult
+from .result import FAIL, PASS, AuditResult, CheckResult, merge_arrays
 from .run import Thresholds, run_audit
 
 CLASS = "class"
@@ -35,7 +35,8 @@ def _merge(results: list[AuditResult]) -> AuditResult:
                 seen_global.add(c.name)
             checks.append(c)
     return AuditResult(tuple(checks), tuple(p for r in results for p in r.pairs),
-                       tuple(s for r in results for s in r.skipped), first.inputs, first.arrays)
+                       tuple(s for r in results for s in r.skipped), first.inputs,
+                       merge_arrays([r.arrays for r in results]))
 
 
 def _claims(spec, a: str, b: str) -> dict:
@@ -109,12 +110,13 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
                 raise DatasetError(f"the dataset has no split '{name}' (it has {', '.join(regions)})", where=f"pair {a}:{b}")
         claims = _claims(built.spec, a, b)
         th = dict(base, **claims)
-        if plan.split(b).kind == "random" or plan.split(a).kind == "random":
-            th.setdefault("near_duplicates_fail", False)  # look-alikes are expected within one region
         declared = {a: regions[a], b: regions[b]} if claims else None
         results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=image_loader,
                                  mask_loader=mask_loader if exact_masks else None, canvas_hw=hw,
-                                 regions=declared, root=root, progress=progress))
+                                 regions=declared, root=root, progress=progress,
+                                 reference_loader=lambda i: make_scene(plan, built.source, built.background,
+                                                                       plan.split(df["split"].iat[int(i)]),
+                                                                       df.iloc[int(i)]).image))
     return _merge(results)
 
 

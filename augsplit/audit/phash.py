@@ -194,15 +194,16 @@ def pack_bits(bits: np.ndarray) -> np.ndarray:
     return np.packbits(b, axis=1, bitorder="big").view(">u8").astype(np.uint64).ravel()
 
 
-def fingerprint_images(images, batch: int = 256) -> tuple[np.ndarray, list[str]]:
-    """Perceptual hash and content hash of each image of an iterable (any sizes, in order).
+def fingerprint_images(images, batch: int = 256, coefficients: bool = False):
+    """Perceptual hash and content hash of each image of an iterable (any sizes, in order);
+    with `coefficients=True` also each image's (8, 8) low-frequency DCT block (float32).
 
     Images of one shape are hashed together in batches, so memory stays at `batch` images.
     """
     n = 0
     sha: list[str] = []
     pending: dict[tuple, list[tuple[int, np.ndarray]]] = {}
-    result: dict[int, int] = {}
+    result: dict[int, tuple] = {}
     for img in images:
         a = np.asarray(img)
         sha.append(content_hash(a))
@@ -213,12 +214,16 @@ def fingerprint_images(images, batch: int = 256) -> tuple[np.ndarray, list[str]]
             _flush(pending.pop(g.shape), result)
     for group in pending.values():
         _flush(group, result)
-    return np.array([result[i] for i in range(n)], dtype=np.uint64), sha
+    hashes = np.array([result[i][0] for i in range(n)], dtype=np.uint64)
+    if not coefficients:
+        return hashes, sha
+    coef = np.stack([result[i][1] for i in range(n)]) if n else np.zeros((0, HASH_SIZE, HASH_SIZE), np.float32)
+    return hashes, sha, coef
 
 
 def _flush(group, result) -> None:
-    hashes = phash_batch(np.stack([g for _, g in group]))
-    result.update(zip((i for i, _ in group), hashes.tolist()))
+    hashes, coef = phash_batch(np.stack([g for _, g in group]), coefficients=True)
+    result.update(zip((i for i, _ in group), zip(hashes.tolist(), coef)))
 
 
 def content_hash(image: np.ndarray) -> str:
