@@ -123,15 +123,25 @@ def _keyval(text: str):
         raise argparse.ArgumentTypeError(f"'{text}' is not KEY=VALUE")
     import yaml
 
-    return k, yaml.safe_load(v)
+    try:
+        return k, yaml.safe_load(v)
+    except yaml.YAMLError:
+        return k, v  # not a YAML scalar: the text itself (the threshold's type check names it)
 
 
 def _cmd_audit(a) -> int:
     from .audit.entry import audit_dataset, audit_table, is_dataset
     from .audit.report import summary_table, write_reports
 
+    from .audit.run import Thresholds
+
     thresholds = dict(a.threshold or [])
+    try:  # every value typed and range-checked before anything is read
+        Thresholds.from_dict(thresholds)
+    except AugsplitError as exc:
+        raise AugsplitError(exc.message, where=(exc.where or "").replace("thresholds.", "--threshold ")) from None
     column_map = dict(a.map or [])
+    from_option = {k: "--map" for k in column_map}
     if a.column_map:
         from .spec import read_yaml
 
@@ -139,15 +149,27 @@ def _cmd_audit(a) -> int:
         if not isinstance(loaded, dict):
             raise AugsplitError("a column map is a mapping of augsplit names to table columns", where=a.column_map)
         column_map.update({str(k): str(v) for k, v in loaded.items()})
-    if is_dataset(a.input) and a.spec is None and not column_map:
-        result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
-                               progress=not a.quiet and sys.stderr.isatty())
-        out = Path(a.out) if a.out else Path(a.input) / "audit"
-    else:
-        result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
-                             column_map=column_map or None, thresholds=thresholds,
-                             progress=not a.quiet and sys.stderr.isatty())
-        out = Path(a.out) if a.out else Path("audit")
+        from_option.update({str(k): f"--column-map {a.column_map}:" for k in loaded})
+    try:
+        if is_dataset(a.input) and a.spec is None and not column_map:
+            result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
+                                   progress=not a.quiet and sys.stderr.isatty())
+            out = Path(a.out) if a.out else Path(a.input) / "audit"
+        else:
+            result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
+                                 column_map=column_map or None, thresholds=thresholds,
+                                 progress=not a.quiet and sys.stderr.isatty())
+            out = Path(a.out) if a.out else Path("audit")
+    except AugsplitError as exc:  # name the option a mapped name came from
+        where = exc.where or ""
+        if where.startswith("column_map."):
+            name = where.split(".", 1)[1]
+            raise type(exc)(exc.message, where=f"{from_option.get(name, '--map')} {name}", hint=exc.hint) from None
+        if where.startswith("thresholds."):
+            key = where.split(".", 1)[1]
+            raise type(exc)(exc.message, where=f"--threshold {key}" if key in thresholds else f"the spec's audit.{key}",
+                            hint=exc.hint) from None
+        raise
     paths = write_reports(result, out)
     print(summary_table(result))
     print(f"wrote {paths['json']} and {paths['html']}")
@@ -223,7 +245,8 @@ def build_parser() -> argparse.ArgumentParser:
                    metavar="NAME=COLUMN", help="take augsplit's NAME from the table's COLUMN (repeatable)")
     q.add_argument("--column-map", help="a YAML file mapping augsplit names to table columns")
     q.add_argument("--threshold", type=_keyval, action="append", metavar="KEY=VALUE",
-                   help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01 (also settable in the spec's audit:)")
+                   help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01, duplicate_judge=radius "
+                        "(also settable in the spec's audit:)")
     q.add_argument("--out", help="where audit.json and audit.html go (default: DATASET/audit or ./audit)")
     q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")
     q.add_argument("--quiet", action="store_true", help="no progress bars")

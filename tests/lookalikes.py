@@ -88,8 +88,10 @@ LEAKS = {"copy": lambda img: img.copy(), "shift": _shift, "jpeg": _jpeg, "bright
 
 def plant(src: Path, dst: Path, kinds: list[str], per_kind: int = 1, seed: int = 0) -> list[tuple]:
     """Copy dataset folder `src` to `dst` and write leaks over test images (one distinct test
-    image and one distinct train image per leak). Returns [(kind, test split, test id, train id)].
-    The store must be image files; the file keeps its format (a .jpg leak is re-encoded)."""
+    image and one distinct train image per leak). Returns [(kind, test split, test id, source
+    train ids)]: the source and every train image whose recorded pixels equal the source's
+    (naming any of them names the source). The store must be image files; the file keeps its
+    format (a .jpg leak is re-encoded)."""
     shutil.copytree(src, dst)
     m = read_manifest(dst)
     rng = np.random.default_rng(seed)
@@ -103,7 +105,8 @@ def plant(src: Path, dst: Path, kinds: list[str], per_kind: int = 1, seed: int =
         kind = kinds[k // per_kind]
         img = cv2.imread(str(dst / s["file"]), cv2.IMREAD_UNCHANGED)
         assert cv2.imwrite(str(dst / d["file"]), LEAKS[kind](img))
-        out.append((kind, d["split"], d["image_id"], s["image_id"]))
+        same = set(train.loc[train["sha256"] == s["sha256"], "image_id"]) | {s["image_id"]}
+        out.append((kind, d["split"], d["image_id"], same))
     return out
 
 
@@ -111,9 +114,9 @@ def named(result, planted: list[tuple]) -> dict[str, list[bool]]:
     """Per leak kind: whether the near-duplicate check failed its pair and named each planted
     test image as a copy of its source train image."""
     out: dict[str, list[bool]] = {}
-    for kind, split, test_id, train_id in planted:
+    for kind, split, test_id, sources in planted:
         c = next(c for c in result.checks if c.name == "near_duplicates" and c.pair[1] == split)
         w = c.worst
         hit = w[(w["test_id"] == test_id) & w["leak"]]
-        out.setdefault(kind, []).append(c.verdict == "fail" and bool((hit["train_id"] == train_id).any()))
+        out.setdefault(kind, []).append(c.verdict == "fail" and bool(hit["train_id"].isin(sources).any()))
     return out

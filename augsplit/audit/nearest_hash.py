@@ -253,9 +253,9 @@ def check_near_duplicates(
     Candidates are each test image's nearest train image by perceptual hash when within
     `radius` bits, pixel-identical pairs (equal content hashes) and `extra_pairs` (test, train
     positions). `judge(test_pos, train_pos)` decides which candidates are leaks and returns
-    {"leak": bool array, "method": name, "numbers": {...}, optional "ambiguous": bool array,
-    and evidence arrays shown beside each pair}; without one every candidate is a leak (a
-    fixed radius). A leak fails (with near_fails=False only a pixel-identical one does, other
+    {"leak": bool array, optional "ambiguous": bool array, and evidence arrays shown beside
+    each pair}; its attributes `method` and `numbers` are reported. Without a judge every
+    candidate is a leak (a fixed radius). A leak fails (with near_fails=False only a pixel-identical one does, other
     leaks warn); pixel-identical images the judge explains, and ambiguous pairs, warn.
     """
     train_hash = np.asarray(train_hash, np.uint64); test_hash = np.asarray(test_hash, np.uint64)
@@ -279,7 +279,7 @@ def check_near_duplicates(
     verdicts = judge(ct, cr) if judge is not None and len(ct) else None
     leak = np.ones(len(ct), bool) if verdicts is None else np.asarray(verdicts["leak"], bool)
     ambiguous = np.zeros(len(ct), bool) if verdicts is None else np.asarray(verdicts.get("ambiguous", np.zeros(len(ct), bool)), bool)
-    method = "radius" if judge is None else (verdicts or {}).get("method") or getattr(judge, "method", "judge")
+    method = "radius" if judge is None else getattr(judge, "method", "judge")
     pair_exact = exact_src[ct] == cr if len(ct) else np.zeros(0, bool)
     is_leak_t = np.zeros(n_test, bool); np.logical_or.at(is_leak_t, ct, leak)
     leak_exact = np.zeros(n_test, bool); np.logical_or.at(leak_exact, ct, leak & pair_exact)
@@ -304,7 +304,7 @@ def check_near_duplicates(
         "min_distance_bits": int(dist[near_dup].min()) if n_near else None,
         "distance_histogram": [int(v) for v in hist],
         "substrings": int(index.m),
-        **((verdicts or {}).get("numbers") or {}),
+        **(getattr(judge, "numbers", None) or {}),
     }
     if test_class is not None and n_test:
         cls = pd.Series(np.asarray(test_class)).astype(str)
@@ -323,7 +323,7 @@ def check_near_duplicates(
         "train_id": ids_at(train_ids, cr),
     })
     for k, v in (verdicts or {}).items():
-        if k not in ("leak", "ambiguous", "method", "numbers") and len(np.asarray(v)) == len(ct):
+        if k not in ("leak", "ambiguous") and len(np.asarray(v)) == len(ct):
             frame[k] = np.asarray(v)
     # one row per test image, its most telling pair: a leak before a look-alike, pixel-identical
     # first, then the closest by the judge's evidence (the likely source), then by hash

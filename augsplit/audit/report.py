@@ -140,8 +140,10 @@ def summary_table(result: AuditResult) -> str:
     for s in result.skipped:
         lines.append(f"skipped {s.name} ({'/'.join(s.pair) if s.pair else '-'}): {s.reason}")
     n_fail = len(result.failed())
+    skipped = sorted({s.name for s in result.skipped})
     lines.append(f"audit {result.verdict.upper()}: {len(result.checks)} checks, {n_fail} failed, "
-                 f"{sum(c.verdict == 'warn' for c in result.checks)} warnings, {len(result.skipped)} skipped")
+                 f"{sum(c.verdict == 'warn' for c in result.checks)} warnings, {len(result.skipped)} skipped"
+                 + (f" (not run: {', '.join(skipped)}; see above)" if skipped else ""))
     return "\n".join(lines)
 
 
@@ -212,9 +214,9 @@ def _axis_plots(result: AuditResult) -> str:
         for split, counts in h["counts"].items():
             ax.stairs(counts, edges, label=str(split), fill=False)
         ax.set_title(name, fontsize=9)
-        if k == 0:
-            ax.legend(fontsize=7)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 0, 1, 0.9))
+    handles, labels = fig.axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 6), fontsize=8, frameon=False)
     return _png(fig)
 
 

@@ -137,6 +137,15 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     if margin is not None:
         th = dataclasses.replace(th, margin=float(margin))
     src = open_table(table, column_map, root)
+    region_cols = []
+    for reg in (regions or {}).values():
+        region_cols += [("class_index" if n == "class" else n) for n in reg.space.names]
+    want = list(dict.fromkeys(["split", "image_id", "class_name", "instance", "instance_seen", *axes,
+                               *BBOX_COLUMNS, "width", "height", "file", "sha256", th.hash_column, *region_cols]))
+    _check_column_map(column_map, list(dict.fromkeys([*want, "image_bytes", "class_index"])))
+    if th.hash_column != Thresholds.hash_column and th.hash_column not in src.columns:
+        raise DatasetError(f"no column {th.hash_column!r} in the table, so near_duplicates cannot use it",
+                           where="thresholds.hash_column")
     if "split" not in src.columns:
         raise DatasetError(f"table has no split column (columns: {', '.join(src.columns[:12])})",
                            where="column 'split'", hint="map one, e.g. column_map={'split': 'phase'}")
@@ -145,12 +154,6 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     for name in axes:
         if name not in src.columns:
             raise DatasetError(f"no column {name!r} in the table", where=f"axes.{name}")
-    region_cols = []
-    for reg in (regions or {}).values():
-        region_cols += [("class_index" if n == "class" else n) for n in reg.space.names]
-    want = list(dict.fromkeys(["split", "image_id", "class_name", "instance", "instance_seen", *axes,
-                               *BBOX_COLUMNS, "width", "height", "file", "sha256", th.hash_column, *region_cols]))
-    taken = _check_column_map(column_map, [*want, "image_bytes", "class_index"], src.columns)
     df = src.read(want, progress=progress)
     split = df["split"].astype(str).to_numpy()
     present = list(pd.unique(split))
@@ -228,16 +231,16 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
                 checks.append(check_category_overlap(bi_a, cls[fa], bi_b, cls[fb], rng, hw, th.category_pairs,
                                                      mask_loader, fa, fb, th.category_max_ratio, pair))
             else:
-                skipped.append(_skip("category_overlap", pair, "no class_name column", ["class_name"], taken))
+                skipped.append(Skipped("category_overlap", pair, "no class_name column"))
         else:
             missing = [c for c in BBOX_COLUMNS if c not in df]
             for name in ("footprint_overlap", "category_overlap"):
-                skipped.append(_skip(name, pair, f"no footprints: columns {', '.join(missing)} missing", missing, taken))
+                skipped.append(Skipped(name, pair, f"no footprints: columns {', '.join(missing)} missing"))
 
         # near-duplicate images (hashes of every row, not only finite-parameter ones)
         hashes, sha, reason = fp.get()
         if hashes is None:
-            skipped.append(_skip("near_duplicates", pair, reason, ["file", "image_bytes", th.hash_column], taken))
+            skipped.append(Skipped("near_duplicates", pair, reason))
         else:
             judge, extra = _duplicate_judge(th, fp, df, ra, rb, reference_loader, rng_for=np.random.default_rng(th.seed))
             res = check_near_duplicates(hashes[ra], hashes[rb], th.hash_radius,
@@ -259,7 +262,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
             checks.append(_globalise(res, ra, rb))
         else:
             need = [c for c in ("class_name", "instance", "instance_seen") if c not in df]
-            skipped.append(_skip("instance_leakage", pair, f"columns {', '.join(need)} missing", need, taken))
+            skipped.append(Skipped("instance_leakage", pair, f"columns {', '.join(need)} missing"))
 
     checks = _attach_thumbnails(checks, fp, th)
     inputs = {
@@ -277,29 +280,22 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
 
 # ---- helpers -------------------------------------------------------------------------------
 
-def _check_column_map(column_map: dict | None, known: list, have) -> set:
-    """Every mapped name must be one the audit reads (did-you-mean otherwise). Returns the table
-    columns the map renamed away, so a check skipped for lack of one is bad input, not a skip."""
+def _check_column_map(column_map: dict | None, known: list) -> None:
+    """Every mapped name must be one the audit reads (did-you-mean otherwise), and no column
+    the audit reads may be renamed to another name: a check would then skip or fail for lack
+    of a column the table has, which is the map's doing, so it is bad input, never a skip."""
     mapping = dict(column_map or {})
-    for dst in mapping:
-        if dst not in known:
-            import difflib
+    import difflib
 
+    for dst, src in mapping.items():
+        if dst not in known:
             close = difflib.get_close_matches(str(dst), known, n=1)
             raise DatasetError(f"{dst!r} is not a column the audit reads"
                                + (f" (did you mean {close[0]!r}?)" if close else "")
                                + f"; it reads {', '.join(known)}", where=f"column_map.{dst}")
-    return {src for dst, src in mapping.items() if src != dst and src not in mapping}
-
-
-def _skip(name: str, pair, reason: str, columns: list, taken: set) -> Skipped:
-    """A check that cannot run for lack of `columns`. When the column map took one of them
-    for another name, the user asked for a check the map disabled: bad input, not a skip."""
-    lost = [c for c in columns if c in taken]
-    if lost:
-        raise DatasetError(f"the map takes column {lost[0]!r} for another name, so {name} cannot run; "
-                           f"map it to {lost[0]!r} itself or leave it unmapped", where=f"column_map (column {lost[0]!r})")
-    return Skipped(name, pair, reason)
+        if src != dst and src in known and src not in mapping:
+            raise DatasetError(f"the map takes column {src!r}, which the audit reads as {src!r} itself, for {dst!r}; "
+                               "the checks that need it would not run", where=f"column_map.{dst}")
 
 
 class _GuardedMasks:
@@ -340,8 +336,8 @@ class _GuardedMasks:
                                "every row's footprint re-made from its parameters fits its recorded bbox", pair)
         first = frame.iloc[0]
         return CheckResult("row_integrity", FAIL, numbers, frame.head(worst_k),
-                           f"{len(bad)} rows do not match their own parameters (e.g. {first['id']} of split "
-                           f"{first['split']}: {first['reason']}); they count as their bbox", pair)
+                           f"{len(bad)} of {len(rows)} rows do not match their own parameters (e.g. {first['id']} "
+                           f"of split {first['split']}: {first['reason']}); they count as their bbox", pair)
 
 
 def _duplicate_judge(th: Thresholds, fp, df: pd.DataFrame, ra: np.ndarray, rb: np.ndarray,
@@ -362,8 +358,8 @@ def _duplicate_judge(th: Thresholds, fp, df: pd.DataFrame, ra: np.ndarray, rb: n
             if sha is not None:
                 exact = np.asarray(sha, dtype=object)[rb[tp]] == np.asarray(sha, dtype=object)[ra[rp]]
             leak = (d < q) | exact
-            return {"leak": leak, "ambiguous": ~leak, "method": "hash", "numbers": nums}
-        return judge_hash, None
+            return {"leak": leak, "ambiguous": ~leak}
+        return _labelled(judge_hash, "hash", nums), None
 
     if reference_loader is not None:
         unchanged = fp.unchanged()
@@ -383,9 +379,8 @@ def _duplicate_judge(th: Thresholds, fp, df: pd.DataFrame, ra: np.ndarray, rb: n
         nums = {"n_test_changed": int(len(changed)), "copy_ratio": lookalike.COPY_RATIO}
 
         def judge_render(tp, rp):
-            out = lookalike.judge_by_render(rb[tp], ra[rp], unchanged, fp.fetch, reference_loader)
-            return {**out, "method": "render", "numbers": nums}
-        return judge_render, extra
+            return lookalike.judge_by_render(rb[tp], ra[rp], unchanged, fp.fetch, reference_loader)
+        return _labelled(judge_render, "render", nums), extra
 
     null = lookalike.pixel_null(ra, hashes, sha, fp.fetch, rng_for)
     tau = lookalike.null_threshold(null)
@@ -394,8 +389,14 @@ def _duplicate_judge(th: Thresholds, fp, df: pd.DataFrame, ra: np.ndarray, rb: n
     def judge_pixels(tp, rp):
         t, r = rb[tp], ra[rp]
         same = np.zeros(len(tp), bool) if sha is None else np.asarray(sha, dtype=object)[t] == np.asarray(sha, dtype=object)[r]
-        return {**lookalike.judge_by_pixels(t, r, fp.fetch, tau, same), "method": "pixels", "numbers": nums}
-    return judge_pixels, None
+        return lookalike.judge_by_pixels(t, r, fp.fetch, tau, same)
+    return _labelled(judge_pixels, "pixels", nums), None
+
+
+def _labelled(judge, method: str, numbers: dict):
+    """A judge carries its method's name and figures (reported even with no candidate)."""
+    judge.method, judge.numbers = method, numbers
+    return judge
 
 
 def _null_numbers(null: np.ndarray) -> dict:
