@@ -129,17 +129,30 @@ def _keyval(text: str):
         return k, v  # not a YAML scalar: the text itself (the threshold's type check names it)
 
 
+def _named_option(exc: AugsplitError, thresholds: dict, from_option: dict) -> AugsplitError:
+    """The error with the option a bad threshold or mapped name came from as its `where`,
+    in place of the library's key path (thresholds.KEY, column_map.NAME)."""
+    where = exc.where or ""
+    head, _, key = where.partition(".")
+    if head == "column_map" and key:
+        where = f"{from_option.get(key, '--map')} {key}"
+    elif head == "thresholds" and key:
+        where = f"--threshold {key}" if key in thresholds else f"the spec's audit.{key}"
+    else:
+        return exc
+    return type(exc)(exc.message, where=where, hint=exc.hint)
+
+
 def _cmd_audit(a) -> int:
     from .audit.entry import audit_dataset, audit_table, is_dataset
     from .audit.report import summary_table, write_reports
-
     from .audit.run import Thresholds
 
     thresholds = dict(a.threshold or [])
     try:  # every value typed and range-checked before anything is read
         Thresholds.from_dict(thresholds)
     except AugsplitError as exc:
-        raise AugsplitError(exc.message, where=(exc.where or "").replace("thresholds.", "--threshold ")) from None
+        raise _named_option(exc, thresholds, {}) from None
     column_map = dict(a.map or [])
     from_option = {k: "--map" for k in column_map}
     if a.column_map:
@@ -160,16 +173,8 @@ def _cmd_audit(a) -> int:
                                  column_map=column_map or None, thresholds=thresholds,
                                  progress=not a.quiet and sys.stderr.isatty())
             out = Path(a.out) if a.out else Path("audit")
-    except AugsplitError as exc:  # name the option a mapped name came from
-        where = exc.where or ""
-        if where.startswith("column_map."):
-            name = where.split(".", 1)[1]
-            raise type(exc)(exc.message, where=f"{from_option.get(name, '--map')} {name}", hint=exc.hint) from None
-        if where.startswith("thresholds."):
-            key = where.split(".", 1)[1]
-            raise type(exc)(exc.message, where=f"--threshold {key}" if key in thresholds else f"the spec's audit.{key}",
-                            hint=exc.hint) from None
-        raise
+    except AugsplitError as exc:
+        raise _named_option(exc, thresholds, from_option) from None
     paths = write_reports(result, out)
     print(summary_table(result))
     print(f"wrote {paths['json']} and {paths['html']}")

@@ -97,6 +97,7 @@ def plant(src: Path, dst: Path, kinds: list[str], per_kind: int = 1, seed: int =
     rng = np.random.default_rng(seed)
     train = m[m["split"] == "train"]
     test = m[m["split"] != "train"]
+    per_kind = max(1, min(per_kind, len(test) // len(kinds), len(train) // len(kinds)))  # small splits: fewer
     n = len(kinds) * per_kind
     srcs = train.iloc[rng.choice(len(train), n, replace=False)]
     dsts = test.iloc[rng.choice(len(test), n, replace=False)]

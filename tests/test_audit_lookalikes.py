@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from lookalikes import LEAKS, make, named, plant, random_spec
 
-from augsplit.audit import lookalike, run_audit
+from augsplit.audit import run_audit
 from augsplit.audit.entry import audit_dataset
 from augsplit.generate import Options, generate, open_dataset_spec
 from augsplit.spec import builtin_spec_path
@@ -154,6 +154,8 @@ def _texture(seed: int, hw=(48, 40)):
 @given(seed=st.integers(0, 10_000), dx=st.integers(-2, 2), dy=st.integers(-2, 2),
        gain=st.floats(0.7, 1.2), offset=st.floats(-15, 15))
 def test_residual_ignores_small_shifts_and_brightness_but_not_other_images(seed, dx, dy, gain, offset):
+    from augsplit.audit import lookalike
+
     a = _texture(seed)
     moved = np.roll(a, (dy, dx), axis=(0, 1))
     # the comparison is over the overlap at the best shift: a pure shift leaves nothing
@@ -169,6 +171,7 @@ def test_residual_ignores_small_shifts_and_brightness_but_not_other_images(seed,
 
 
 def test_most_similar_finds_the_shifted_source_among_look_alikes():
+    from augsplit.audit import lookalike
     from augsplit.audit.phash import phash_batch
 
     imgs = [_texture(s, (64, 64)) for s in range(40)]

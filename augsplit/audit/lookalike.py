@@ -6,10 +6,10 @@ design itself makes many (the same shape in another cell or at another scale). T
 from strongest to weakest evidence:
 
 - render: on a dataset augsplit generated, each row re-renders its image. An image whose
-  pixels are its own row's render (its recorded content hash, or the re-render itself) is
-  explained by its parameters. An image is a copy of a train image when its pixels lie at
-  most half as far from that image (best 1-2 px shift and brightness gain) as from its own
-  row's render.
+  pixels are its own row's recorded render (content hash equal) is explained by its
+  parameters. Otherwise a test image is a copy of a train image when it lies at most half as
+  far from that image (best 1-2 px shift and brightness gain) as from its own row's render,
+  and closer than the two rows' renders lie to each other.
 - pixels: without a renderer, the aligned residual of a pair, in units of the images' own
   contrast, is compared with the same residual between distinct training images and their
   nearest training neighbour by hash (the null the data's renderer and background produce).
@@ -28,7 +28,8 @@ from .nearest_hash import hamming
 
 WORK_SIDE = 128  # pixel comparisons run at most this many pixels on a side (INTER_AREA)
 MAX_SHIFT = 2  # integer shifts tried in each direction at the working size
-COPY_RATIO = 0.5  # a copy lies at most this fraction as far from the source as from its own render
+GAIN = (0.5, 2.0)  # the brightness gains a residual may apply
+COPY_RATIO = 0.5  # a copy lies at most this fraction as far from its source as from its own render
 NULL_SAMPLES = 200  # training images whose nearest training neighbour forms the null
 NULL_QUANTILE = 0.01
 SIMILAR_K = 10  # train images, by DCT block, compared with a changed test image
@@ -60,10 +61,12 @@ def spread(img: np.ndarray) -> float:
 def residual(a: np.ndarray, b: np.ndarray, max_shift: int = MAX_SHIFT, gain: bool = True) -> float:
     """Mean absolute difference (grey levels, working size) between b and a, minimised over
     integer shifts of up to `max_shift` px and, with `gain`, over b ~ g a + o (least squares,
-    one gain for all channels). Copies, shifted copies, re-encodes and brightness changes of an
+    one gain for all channels, held to GAIN). Copies, shifted copies, re-encodes and brightness changes of an
     image lie near 0."""
     A, B = working(a), working(b)
-    if A.shape != B.shape:
+    c = min(A.shape[2], B.shape[2])  # grey against colour: compare the first channel(s) only
+    A, B = A[..., :c], B[..., :c]
+    if A.shape != B.shape:  # images of different sizes: b at a's size
         B = cv2.resize(B, (A.shape[1], A.shape[0]), interpolation=cv2.INTER_AREA).reshape(A.shape)
     h, w = A.shape[:2]
     best = np.inf
@@ -77,7 +80,8 @@ def residual(a: np.ndarray, b: np.ndarray, max_shift: int = MAX_SHIFT, gain: boo
                 xm, ym = float(x.mean()), float(y.mean())
                 xc = x - xm
                 var = float((xc * xc).sum())
-                g = float((xc * (y - ym)).sum()) / var if var > 0 else 0.0
+                g = float((xc * (y - ym)).sum()) / var if var > 0 else 1.0
+                g = min(max(g, GAIN[0]), GAIN[1])  # a brightness change, not "explain b by a constant"
                 r = float(np.abs(y - (g * xc + ym)).mean())
             else:
                 r = float(np.abs(y - x).mean())
@@ -110,37 +114,37 @@ Fetch = Callable[[list], dict]
 
 def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
                     rendered: Callable[[int], np.ndarray]) -> dict:
-    """Pairs (global table rows) -> {leak, own_test, own_train, cross} arrays.
+    """Pairs (global table rows) -> {leak, ambiguous, own, design, cross} arrays.
 
     `unchanged[row]`: the stored pixels are the row's recorded render (content hash equal), so
-    the row explains them with no pixel work. Otherwise the row is re-rendered and its stored
-    image compared with the render (own, no shift) and with the other image (cross, best shift
-    and gain): a leak when cross <= COPY_RATIO * own for either side."""
+    the row explains them with no pixel work; a pair of two such rows is a look-alike by
+    design. Otherwise, with `cross` the residual between the two stored images (best shift
+    and gain), `own` the plain difference between a changed image and its own row's render
+    (the larger when both changed) and `design` the residual between the two rows' renders,
+    the pair is a leak when cross <= COPY_RATIO * own (the image sits at most half as far from
+    the other image as from its own render) and cross < design (the renders themselves are
+    not that close: a near-identical pair the design makes, stored lossily, stays a look-alike).
+    A row that cannot be re-rendered leaves its pair ambiguous."""
     t_rows = np.asarray(test_rows, np.int64); r_rows = np.asarray(train_rows, np.int64)
     n = len(t_rows)
-    leak = np.zeros(n, bool)
-    own_t = np.zeros(n); own_r = np.zeros(n); cross = np.full(n, np.nan)
+    own = np.zeros(n); design = np.full(n, np.nan); cross = np.full(n, np.nan)
     need = [k for k in range(n) if not (unchanged[t_rows[k]] and unchanged[r_rows[k]])]
-    own_cache: dict[int, float] = {}
-
-    def own(row: int, img) -> float:
-        if unchanged[row]:
-            return 0.0
-        if row not in own_cache:
-            ref = rendered(row)  # None: the row cannot be re-rendered, so it explains nothing
-            own_cache[row] = np.nan if ref is None else residual(img, ref, max_shift=0, gain=False)
-        return own_cache[row]
-
     for part in _chunks(need):
         imgs = stored([int(v) for k in part for v in (t_rows[k], r_rows[k])])
+        refs = {row: (imgs[row] if unchanged[row] else rendered(row))  # an unchanged image is its render
+                for row in {int(v) for k in part for v in (t_rows[k], r_rows[k])}}
         for k in part:
             t, r = int(t_rows[k]), int(r_rows[k])
-            own_t[k], own_r[k] = own(t, imgs[t]), own(r, imgs[r])
+            if refs[t] is None or refs[r] is None:
+                own[k] = np.nan
+                continue
+            own[k] = max(residual(imgs[v], refs[v], max_shift=0, gain=False) for v in (t, r) if not unchanged[v])
+            design[k] = residual(refs[r], refs[t])
             cross[k] = residual(imgs[r], imgs[t])
-            worst = max(own_t[k], own_r[k])
-            leak[k] = bool(worst > 0 and cross[k] <= COPY_RATIO * worst)
-    unknown = np.isnan(own_t) | np.isnan(own_r)
-    return {"leak": leak & ~unknown, "ambiguous": unknown, "own_test": own_t, "own_train": own_r, "cross": cross}
+    unknown = np.isnan(own)
+    with np.errstate(invalid="ignore"):
+        leak = ~unknown & (own > 0) & (cross <= COPY_RATIO * own) & (cross < design)
+    return {"leak": leak, "ambiguous": unknown, "own": own, "design": design, "cross": cross}
 
 
 def judge_by_pixels(test_rows, train_rows, stored: Fetch, threshold: float, identical: np.ndarray) -> dict:
@@ -216,8 +220,8 @@ def pixel_null(train_rows: np.ndarray, hashes: np.ndarray, sha, stored: Fetch, r
 
 def normalised_residual(a: np.ndarray, b: np.ndarray) -> float:
     """residual() in units of the pair's mean spread: 0 for copies, about 1 for unrelated images."""
-    s = 0.5 * (spread(a) + spread(b))
-    return residual(a, b) / s if s > 0 else (0.0 if residual(a, b) == 0 else np.inf)
+    s, r = 0.5 * (spread(a) + spread(b)), residual(a, b)
+    return r / s if s > 0 else (0.0 if r == 0 else np.inf)
 
 
 def null_threshold(null: np.ndarray) -> float:

@@ -365,7 +365,7 @@ def _detail(nb: dict, n_leak: int, n_leak_exact: int, worst: pd.DataFrame, radiu
             "cannot be judged: a row of the pair cannot be re-rendered (see row_integrity)" if method == "render" else
             "hash as close to it as distinct training images hash to each other: the hash alone cannot tell copies here"))
     if nb["n_lookalikes"]:
-        why = {"render": "every one is its own row's render (look-alikes by design)",
+        why = {"render": "each is explained by its own row's parameters (look-alikes by design)",
                "pixels": "their pixels differ as much as distinct training images do (look-alikes)"}.get(method, "")
         parts.append(f"no copies; {nb['n_lookalikes']} test images hash within {radius} bits of a train image, "
                      + why)

@@ -36,7 +36,7 @@ audit.json (schema "augsplit.audit/1"; keys are stable, new keys may be added):
                          n_near_duplicates, n_exact_duplicates, n_leaks}}; render: n_test_changed,
                          copy_ratio; pixels: null{n, min, p01, p05, median}, threshold; hash:
                          null{...}, threshold_bits. worst[] rows carry leak and the evidence
-                         (own_test, own_train, cross grey levels; or delta)
+                         (own, design, cross: grey levels; or delta)
     row_integrity        (with masks) n_rows_checked, n_bad_rows; worst[] row, split, id, reason
     instance_leakage     n_unseen_instances, n_test_rows_unseen, n_leaked_instances,
                          n_leaked_test_rows, n_train_rows_flagged_unseen, leaked[{class, instance}]
