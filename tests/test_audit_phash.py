@@ -6,6 +6,8 @@ import cv2
 import imagehash
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from PIL import Image
 
 from augsplit.audit.phash import (content_hash, fingerprint_images, hex_to_uint64, luma, pack_bits,
@@ -111,3 +113,15 @@ def test_coefficients_are_the_block_the_bits_threshold():
     flat = coef.reshape(5, 64).astype(np.float64)
     # imagehash's rule: a bit is set where the coefficient exceeds the block's median
     assert np.array_equal(pack_bits(flat > np.median(flat, axis=1, keepdims=True)), hashes)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-1e9, 1e9, allow_nan=False, width=64), min_size=64, max_size=64),
+       st.integers(0, 64))
+def test_median_of_the_dct_block_is_numpys(values, zeros):
+    # Reference: numpy.median (imagehash thresholds the block at it); ties and zeros included.
+    from augsplit.audit.phash import _median64
+
+    a = np.array(values, dtype=np.float64)
+    a[:zeros] = 0.0
+    assert np.array_equal(_median64(a[None]), np.median(a[None], axis=1, keepdims=True))

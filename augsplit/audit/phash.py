@@ -174,10 +174,17 @@ def phash_batch(images: np.ndarray, chunk: int = 256, coefficients: bool = False
         px = resize_grey(grey)
         dct = scipy.fftpack.dct(scipy.fftpack.dct(px, axis=1), axis=2)
         low = dct[:, :HASH_SIZE, :HASH_SIZE].reshape(len(part), -1)
-        out[s : s + chunk] = pack_bits(low > np.median(low, axis=1, keepdims=True))
+        out[s : s + chunk] = pack_bits(low > _median64(low))
         if coef is not None:
             coef[s : s + chunk] = low.reshape(-1, HASH_SIZE, HASH_SIZE)
     return (out, coef) if coefficients else out
+
+
+def _median64(low: np.ndarray) -> np.ndarray:
+    """(N, 64) -> (N, 1) medians as np.median computes them (the mean of the 32nd and 33rd
+    smallest), by one partition: np.median's own overhead outweighs the work at this size."""
+    part = np.partition(low, (31, 32), axis=1)
+    return ((part[:, 31] + part[:, 32]) / 2.0)[:, None]
 
 
 def phash(image: np.ndarray) -> int:
