@@ -255,8 +255,9 @@ def check_near_duplicates(
     positions). `judge(test_pos, train_pos)` decides which candidates are leaks and returns
     {"leak": bool array, optional "ambiguous": bool array, and evidence arrays shown beside
     each pair}; its attributes `method` and `numbers` are reported. Without a judge every
-    candidate is a leak (a fixed radius). A leak fails (with near_fails=False only a pixel-identical one does, other
-    leaks warn); pixel-identical images the judge explains, and ambiguous pairs, warn.
+    candidate is a leak (a fixed radius). A leak fails (with near_fails=False only a
+    pixel-identical one does, other leaks warn); pixel-identical images the judge explains,
+    and ambiguous pairs, warn.
     """
     train_hash = np.asarray(train_hash, np.uint64); test_hash = np.asarray(test_hash, np.uint64)
     n_test = len(test_hash)
