@@ -176,19 +176,42 @@ def _keyval(text: str):
         raise argparse.ArgumentTypeError(f"'{text}' is not KEY=VALUE")
     import yaml
 
-    return k, yaml.safe_load(v)
+    try:
+        return k, yaml.safe_load(v)
+    except yaml.YAMLError:
+        return k, v  # not a YAML scalar: the text itself (the threshold's type check names it)
+
+
+def _named_option(exc: AugsplitError, thresholds: dict, from_option: dict) -> AugsplitError:
+    """The error with the option a bad threshold or mapped name came from as its `where`,
+    in place of the library's key path (thresholds.KEY, column_map.NAME)."""
+    where = exc.where or ""
+    head, _, key = where.partition(".")
+    if head == "column_map" and key:
+        where = f"{from_option.get(key, '--map')} {key}"
+    elif head == "thresholds" and key:
+        where = f"--threshold {key}" if key in thresholds else f"the spec's audit.{key}"
+    else:
+        return exc
+    return type(exc)(exc.message, where=where, hint=exc.hint)
 
 
 def _cmd_audit(a) -> int:
     from .audit.entry import audit_dataset, audit_table, is_dataset
     from .audit.report import summary_table, write_reports
+    from .audit.run import Thresholds
     from .io import check_folder_target, is_stdout
 
     if a.out is not None and not is_stdout(a.out):
         check_folder_target(a.out)  # refused before the work, not after
 
     thresholds = dict(a.threshold or [])
+    try:  # every value typed and range-checked before anything is read
+        Thresholds.from_dict(thresholds)
+    except AugsplitError as exc:
+        raise _named_option(exc, thresholds, {}) from None
     column_map = dict(a.map or [])
+    from_option = {k: "--map" for k in column_map}
     if a.column_map:
         from .spec import read_yaml
 
@@ -196,25 +219,29 @@ def _cmd_audit(a) -> int:
         if not isinstance(loaded, dict):
             raise AugsplitError("a column map is a mapping of augsplit names to table columns", where=a.column_map)
         column_map.update({str(k): str(v) for k, v in loaded.items()})
-    if a.splits is not None or _annotated(a.input):
-        from .audit.annotated import audit_annotated
+        from_option.update({str(k): f"--column-map {a.column_map}:" for k in loaded})
+    progress = not a.quiet and sys.stderr.isatty()
+    try:
+        if a.splits is not None or _annotated(a.input):
+            from .audit.annotated import audit_annotated
 
-        if a.splits is None:
-            raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
-                                "per-split files, or a table with a split column)", where=str(a.input))
-        result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
-                                 ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
-                                 progress=not a.quiet and sys.stderr.isatty())
-        out = Path(a.out) if a.out else Path("audit")
-    elif is_dataset(a.input) and a.spec is None and not column_map:
-        result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
-                               progress=not a.quiet and sys.stderr.isatty())
-        out = a.out or Path(a.input) / "audit"
-    else:
-        result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
-                             column_map=column_map or None, thresholds=thresholds,
-                             progress=not a.quiet and sys.stderr.isatty())
-        out = a.out or Path("audit")
+            if a.splits is None:
+                raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
+                                    "per-split files, or a table with a split column)", where=str(a.input))
+            result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
+                                     ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
+                                     progress=progress)
+            out = a.out or Path("audit")
+        elif is_dataset(a.input) and a.spec is None and not column_map:
+            result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
+                                   progress=progress)
+            out = a.out or Path(a.input) / "audit"
+        else:
+            result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
+                                 column_map=column_map or None, thresholds=thresholds, progress=progress)
+            out = a.out or Path("audit")
+    except AugsplitError as exc:
+        raise _named_option(exc, thresholds, from_option) from None
     paths = write_reports(result, out)
     if not is_stdout(out):  # with '-', stdout carries only audit.json
         print(summary_table(result))
@@ -380,7 +407,8 @@ def build_parser() -> argparse.ArgumentParser:
                    metavar="NAME=COLUMN", help="take augsplit's NAME from the table's COLUMN (repeatable)")
     q.add_argument("--column-map", help="a YAML file mapping augsplit names to table columns")
     q.add_argument("--threshold", type=_keyval, action="append", metavar="KEY=VALUE",
-                   help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01 (also settable in the spec's audit:)")
+                   help="e.g. margin=0.05, hash_radius=6, footprint_max_fraction=0.01, duplicate_judge=radius "
+                        "(also settable in the spec's audit:)")
     q.add_argument("--out", help="folder for audit.json and audit.html (default: DATASET/audit or ./audit; its "
                    "parent must exist); '-' prints audit.json to stdout and writes no HTML")
     q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")

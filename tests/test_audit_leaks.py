@@ -41,7 +41,7 @@ def test_clean_split_passes_every_check(clean):
     res = _audit(clean)
     assert res.verdict == "pass" and res.exit_code == 0, [(c.name, c.detail) for c in res.failed()]
     assert set(_verdicts(res)) == {"finite_values", "declared_regions", "parameter_proximity", "footprint_overlap",
-                                   "category_overlap", "near_duplicates", "instance_leakage"}
+                                   "category_overlap", "near_duplicates", "instance_leakage", "row_integrity"}
     assert not res.skipped
     # lanes 20 px apart: same-class pixels across the splits never coincide (the hard case)
     assert res.get("category_overlap").numbers["mean_iou_same_class_across"] == 0.0

@@ -6,6 +6,8 @@ import cv2
 import imagehash
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from PIL import Image
 
 from augsplit.audit.phash import (content_hash, fingerprint_images, hex_to_uint64, luma, pack_bits,
@@ -82,3 +84,44 @@ def test_content_hash_sees_one_pixel_and_shifted_images_hash_close():
     assert bin(phash(img) ^ phash(shifted)).count("1") <= 5
     far = cv2.GaussianBlur(rng.integers(0, 256, (96, 96, 3), dtype=np.uint8), (0, 0), 2)
     assert bin(phash(img) ^ phash(far)).count("1") > 10
+
+
+@pytest.mark.parametrize("hw", [(480, 640), (768, 1024), (384, 512), (600, 800), (1024, 300), (257, 1023)])
+def test_large_images_hash_bit_for_bit_like_imagehash(hw):
+    # Reference: imagehash.phash. Large reductions take the banded resize (a window of the row
+    # per block of 8 outputs) and row chunks; (1024, 300) takes Pillow's vertical-first order.
+    rng = np.random.default_rng(hw[0] + hw[1])
+    imgs = []
+    for k in range(3):
+        img = cv2.GaussianBlur(rng.integers(0, 256, (*hw, 3), dtype=np.uint8), (0, 0), 1 + 2 * k)
+        pts = rng.integers(0, min(hw), size=(6, 2)).astype(np.int32)
+        cv2.fillPoly(img, [pts], color=(250, 20, 90))
+        imgs.append(img)
+    ref = [_reference(i) for i in imgs]
+    assert [phash(i) for i in imgs] == ref
+    assert [int(h) for h in phash_batch(np.stack(imgs))] == ref
+    grey = luma(imgs[0])
+    pil = np.asarray(Image.fromarray(grey, "L").resize((32, 32), Image.Resampling.LANCZOS))
+    assert np.array_equal(resize_grey(grey[None])[0], pil.astype(float))
+
+
+def test_coefficients_are_the_block_the_bits_threshold():
+    rng = np.random.default_rng(11)
+    imgs = np.stack([cv2.GaussianBlur(rng.integers(0, 256, (70, 90, 3), dtype=np.uint8), (0, 0), 2) for _ in range(5)])
+    hashes, coef = phash_batch(imgs, coefficients=True)
+    assert coef.shape == (5, 8, 8)
+    flat = coef.reshape(5, 64).astype(np.float64)
+    # imagehash's rule: a bit is set where the coefficient exceeds the block's median
+    assert np.array_equal(pack_bits(flat > np.median(flat, axis=1, keepdims=True)), hashes)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-1e9, 1e9, allow_nan=False, width=64), min_size=64, max_size=64),
+       st.integers(0, 64))
+def test_median_of_the_dct_block_is_numpys(values, zeros):
+    # Reference: numpy.median (imagehash thresholds the block at it); ties and zeros included.
+    from augsplit.audit.phash import _median64
+
+    a = np.array(values, dtype=np.float64)
+    a[:zeros] = 0.0
+    assert np.array_equal(_median64(a[None]), np.median(a[None], axis=1, keepdims=True))

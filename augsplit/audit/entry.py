@@ -18,7 +18,7 @@ import pandas as pd
 from ..dataset import layout as lay
 from ..errors import DatasetError
 from ..space.axes import CLASS
-from .result import FAIL, PASS, AuditResult, CheckResult
+from .result import FAIL, PASS, AuditResult, CheckResult, merge_arrays
 from .run import Thresholds, run_audit
 
 
@@ -34,7 +34,8 @@ def _merge(results: list[AuditResult]) -> AuditResult:
                 seen_global.add(c.name)
             checks.append(c)
     return AuditResult(tuple(checks), tuple(p for r in results for p in r.pairs),
-                       tuple(s for r in results for s in r.skipped), first.inputs, first.arrays)
+                       tuple(s for r in results for s in r.skipped), first.inputs,
+                       merge_arrays([r.arrays for r in results]))
 
 
 def _claims(plan, a: str, b: str) -> dict:
@@ -75,7 +76,7 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     stored image cannot be read (missing, out of the folder, not a regular file, undecodable)
     fails the `image_files` check, naming split and image id."""
     from ..dataset import open_dataset, read_rows
-    from ..dataset.images import ImageError, image_of
+    from ..dataset.images import ImageError, image_of, rerender
     from ..render import footprint
     from ..scene import render_params
 
@@ -112,12 +113,11 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
                 raise DatasetError(f"the dataset has no split '{name}' (it has {', '.join(regions)})", where=f"pair {a}:{b}")
         claims = _claims(built.plan, a, b)
         th = dict(base, **claims)
-        if plan.split(b).kind == "random" or plan.split(a).kind == "random":
-            th.setdefault("near_duplicates_fail", False)  # look-alikes are expected within one region
         declared = {a: regions[a], b: regions[b]} if claims else None
         results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=image_loader,
                                  mask_loader=mask_loader if exact_masks else None, canvas_hw=hw,
-                                 regions=declared, root=root, progress=progress))
+                                 regions=declared, root=root, progress=progress,
+                                 reference_loader=lambda i: rerender(folder, df.iloc[int(i)]).image))
     merged = _merge(results)
     if broken:
         merged = dataclasses.replace(merged, checks=merged.checks + (_image_files_check(df, broken),))

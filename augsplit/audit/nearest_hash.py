@@ -220,6 +220,19 @@ def pairs_within(train, test, radius: int, m: int | None = None):
     return HashIndex.build(train, radius, m).pairs_within(test)
 
 
+def _candidates(near: np.ndarray, exact_src: np.ndarray, extra) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct (test, train) position pairs: hash-nearest within the radius, pixel-identical
+    copies, and any extra pairs a judge asked for."""
+    t = [np.flatnonzero(near >= 0), np.flatnonzero(exact_src >= 0)]
+    r = [near[near >= 0], exact_src[exact_src >= 0]]
+    if extra is not None and len(extra[0]):
+        t.append(np.asarray(extra[0], np.int64)); r.append(np.asarray(extra[1], np.int64))
+    t = np.concatenate(t).astype(np.int64); r = np.concatenate(r).astype(np.int64)
+    width = int(r.max()) + 1 if len(r) else 1
+    key = np.unique(t * width + r)
+    return key // width, key % width
+
+
 def check_near_duplicates(
     train_hash: np.ndarray,
     test_hash: np.ndarray,
@@ -232,12 +245,19 @@ def check_near_duplicates(
     pair: tuple[str, str] | None = None,
     worst_k: int = 20,
     near_fails: bool = True,
+    judge=None,
+    extra_pairs=None,
 ) -> CheckResult:
-    """Near-duplicate and exact-duplicate images between two splits.
+    """Copies of train images in the test split, told apart from look-alikes.
 
-    Fails when any test image is an exact copy (same content hash) of a train image, or its
-    perceptual hash lies within `radius` bits of a train image's; with near_fails=False (two
-    splits drawn from one region, where look-alikes are expected) near-duplicates only warn.
+    Candidates are each test image's nearest train image by perceptual hash when within
+    `radius` bits, pixel-identical pairs (equal content hashes) and `extra_pairs` (test, train
+    positions). `judge(test_pos, train_pos)` decides which candidates are leaks and returns
+    {"leak": bool array, optional "ambiguous": bool array, and evidence arrays shown beside
+    each pair}; its attributes `method` and `numbers` are reported. Without a judge every
+    candidate is a leak (a fixed radius). A leak fails (with near_fails=False only a
+    pixel-identical one does, other leaks warn); pixel-identical images the judge explains,
+    and ambiguous pairs, warn.
     """
     train_hash = np.asarray(train_hash, np.uint64); test_hash = np.asarray(test_hash, np.uint64)
     n_test = len(test_hash)
@@ -245,42 +265,111 @@ def check_near_duplicates(
     test_ids = np.arange(n_test) if test_ids is None else np.asarray(test_ids)
     index = HashIndex.build(train_hash, radius)
     dist, near = index.nearest_within(test_hash)
-    exact = np.zeros(n_test, dtype=bool)
-    if train_sha is not None and test_sha is not None:
-        exact = pd.Index(pd.unique(np.asarray(train_sha, dtype=object))).get_indexer(np.asarray(test_sha, dtype=object)) >= 0
+    exact_src = np.full(n_test, -1, np.int64)
+    if train_sha is not None and test_sha is not None and len(train_hash):
+        tsha = np.asarray(train_sha, dtype=object)
+        uniq, first = np.unique(tsha.astype(str), return_index=True)
+        pos = pd.Index(uniq).get_indexer(np.asarray(test_sha, dtype=object).astype(str))
+        exact_src[pos >= 0] = first[pos[pos >= 0]]
+    exact = exact_src >= 0
     near_dup = dist >= 0
     n_near, n_exact = int(near_dup.sum()), int(exact.sum())
     hist = np.bincount(dist[near_dup], minlength=radius + 1)[: radius + 1] if n_near else np.zeros(radius + 1, int)
+
+    ct, cr = _candidates(near, exact_src, extra_pairs)
+    verdicts = judge(ct, cr) if judge is not None and len(ct) else None
+    leak = np.ones(len(ct), bool) if verdicts is None else np.asarray(verdicts["leak"], bool)
+    ambiguous = np.zeros(len(ct), bool) if verdicts is None else np.asarray(verdicts.get("ambiguous", np.zeros(len(ct), bool)), bool)
+    method = "radius" if judge is None else getattr(judge, "method", "judge")
+    pair_exact = exact_src[ct] == cr if len(ct) else np.zeros(0, bool)
+    is_leak_t = np.zeros(n_test, bool); np.logical_or.at(is_leak_t, ct, leak)
+    leak_exact = np.zeros(n_test, bool); np.logical_or.at(leak_exact, ct, leak & pair_exact)
+    amb_t = np.zeros(n_test, bool); np.logical_or.at(amb_t, ct, ambiguous & ~leak)
+    design_exact = exact & ~is_leak_t & ~amb_t
+    candidate_t = np.zeros(n_test, bool); candidate_t[ct] = True
+    n_leak = int(is_leak_t.sum())
+    n_look = int((candidate_t & ~is_leak_t & ~amb_t).sum())
     numbers = {
+        "method": method,
         "n_test": int(n_test),
         "n_train": int(len(train_hash)),
         "radius_bits": int(radius),
         "n_near_duplicates": n_near,
         "fraction_near_duplicates": n_near / n_test if n_test else 0.0,
         "n_exact_duplicates": n_exact,
+        "n_candidates": int(len(ct)),
+        "n_leaks": n_leak,
+        "n_lookalikes": n_look,
+        "n_identical_by_design": int(design_exact.sum()),
+        "n_ambiguous": int((amb_t & ~is_leak_t).sum()),
         "min_distance_bits": int(dist[near_dup].min()) if n_near else None,
         "distance_histogram": [int(v) for v in hist],
         "substrings": int(index.m),
+        **(getattr(judge, "numbers", None) or {}),
     }
     if test_class is not None and n_test:
         cls = pd.Series(np.asarray(test_class)).astype(str)
         numbers["per_class"] = {
-            str(k): {"n_test": int(len(g)), "n_near_duplicates": int(near_dup[g.index].sum()), "n_exact_duplicates": int(exact[g.index].sum())}
+            str(k): {"n_test": int(len(g)), "n_near_duplicates": int(near_dup[g.index].sum()),
+                     "n_exact_duplicates": int(exact[g.index].sum()), "n_leaks": int(is_leak_t[g.index].sum())}
             for k, g in cls.groupby(cls, sort=True)
         }
-    bad = near_dup | exact
     frame = pd.DataFrame({
-        "test_row": np.flatnonzero(bad),
-        "test_id": test_ids[bad],
-        "hamming": dist[bad].astype(int),
-        "exact_copy": exact[bad],
-        "train_row": near[bad],
-        "train_id": ids_at(train_ids, near[bad]),
+        "test_row": ct,
+        "test_id": test_ids[ct] if len(ct) else np.zeros(0, object),
+        "hamming": hamming(test_hash[ct], train_hash[cr]).astype(int) if len(ct) else np.zeros(0, int),
+        "exact_copy": pair_exact,
+        "leak": leak,
+        "train_row": cr,
+        "train_id": ids_at(train_ids, cr),
     })
-    frame["rank"] = np.where(frame["exact_copy"], -1, frame["hamming"])
+    for k, v in (verdicts or {}).items():
+        if k not in ("leak", "ambiguous") and len(np.asarray(v)) == len(ct):
+            frame[k] = np.asarray(v)
+    # one row per test image, its most telling pair: a leak before a look-alike, pixel-identical
+    # first, then the closest by the judge's evidence (the likely source), then by hash
+    evidence = next((c for c in ("cross", "delta") if c in frame), None)
+    keys = ["leak", "exact_copy"] + ([evidence] if evidence else []) + ["hamming"]
+    frame = frame.sort_values(keys, ascending=[False, False] + ([True] if evidence else []) + [True],
+                              kind="stable", na_position="last").drop_duplicates("test_row")
+    frame["rank"] = np.where(frame["leak"], np.where(frame["exact_copy"], -2, -1), frame["hamming"])
     worst = top_rows(frame, "rank", worst_k, ascending=True).drop(columns="rank")
-    verdict = FAIL if (n_exact or (n_near and near_fails)) else WARN if n_near else PASS
-    detail = (f"{n_exact} exact copies and {n_near} test images within {radius} bits of a train image"
-              if verdict != PASS else f"no test image within {radius} bits of any train image, no exact copies")
+    n_leak_exact = int(leak_exact.sum())
+    if n_leak_exact or (n_leak and near_fails):
+        verdict = FAIL
+    elif n_leak or design_exact.any() or amb_t.any():
+        verdict = WARN
+    else:
+        verdict = PASS
+    detail = _detail(numbers, n_leak, n_leak_exact, worst, radius)
     return CheckResult("near_duplicates", verdict, numbers, worst, detail, pair,
                        arrays={"distance_histogram": hist})
+
+
+def _detail(nb: dict, n_leak: int, n_leak_exact: int, worst: pd.DataFrame, radius: int) -> str:
+    method = nb["method"]
+    if n_leak:
+        first = worst[worst["leak"]].iloc[0]
+        how = {"render": "their pixels lie closer to a train image than to their own rows' renders",
+               "pixels": "closer to a train image than distinct training images lie to each other",
+               "hash": "their hashes lie closer to a train image than distinct training images' do",
+               }.get(method, f"within {radius} bits of a train image")
+        return (f"{n_leak} test images are copies of train images ({n_leak_exact} pixel-identical): {how}; "
+                f"e.g. {first['test_id']} copies {first['train_id']}")
+    parts = []
+    if nb["n_identical_by_design"]:
+        parts.append(f"{nb['n_identical_by_design']} test images are pixel-identical to a train image though each is "
+                     "its own row's render: the design draws them alike (objects off the canvas, or an axis that "
+                     "changes no pixel)")
+    if nb["n_ambiguous"]:
+        parts.append(f"{nb['n_ambiguous']} test images look like a train image and " + (
+            "cannot be judged: a row of the pair cannot be re-rendered (see row_integrity)" if method == "render" else
+            "hash as close to it as distinct training images hash to each other: the hash alone cannot tell copies here"))
+    if nb["n_lookalikes"]:
+        why = {"render": "each is explained by its own row's parameters (look-alikes by design)",
+               "pixels": "their pixels differ as much as distinct training images do (look-alikes)"}.get(method, "")
+        parts.append(f"no copies; {nb['n_lookalikes']} test images hash within {radius} bits of a train image, "
+                     + why)
+    if parts:
+        return "; ".join(parts)
+    return f"no test image within {radius} bits of any train image, no pixel-identical copies"

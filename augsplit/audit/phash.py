@@ -88,35 +88,77 @@ def resample_matrix(in_size: int, out_size: int) -> np.ndarray:
     return fixed
 
 
-def _resample_pass(img: np.ndarray, mat: np.ndarray) -> np.ndarray:
-    # img (N, A, B) float of integers, resampled along the last axis. Integer products
-    # summed in float64 stay exact (< 2^53), so this equals Pillow's int32 accumulation.
-    acc = img @ mat.T + float(1 << (_PRECISION_BITS - 1))
-    return np.clip(np.floor(acc / float(1 << _PRECISION_BITS)), 0, 255)
+# OpenBLAS multiplies on the calling thread when M*N*K is at most 4 * 65536 (interface/gemm.c,
+# GEMM_MULTITHREAD_THRESHOLD); larger products start its threads, which on a busy machine spin
+# against the image decoders and made a 640x480 hash several times slower. Products are cut
+# into row chunks under this size.
+_ONE_THREAD_MNK = 1 << 18
+
+
+@lru_cache(maxsize=64)
+def _bands(in_size: int, out_size: int) -> tuple:
+    """Blocks of output columns with the input span their weights touch: (start, stop, lo, hi,
+    weights (hi - lo, stop - start)). Small inputs are one dense block; for large reductions
+    each block of 8 outputs reads only its window, about 1/5 of the row at 640 -> 32."""
+    mat = resample_matrix(in_size, out_size)
+    block = out_size if in_size <= 4 * out_size else 8
+    out = []
+    for s in range(0, out_size, block):
+        e = min(s + block, out_size)
+        used = np.flatnonzero((mat[s:e] != 0).any(axis=0))
+        lo, hi = (int(used[0]), int(used[-1]) + 1) if len(used) else (0, 1)
+        out.append((s, e, lo, hi, np.ascontiguousarray(mat[s:e, lo:hi].T)))
+    return tuple(out)
+
+
+def _rows_pass(g: np.ndarray, out_size: int) -> np.ndarray:
+    """(M, L) float64 of integers -> (M, out_size): Pillow's Lanczos pass along each row, with
+    its fixed-point rounding. Integer products summed in float64 stay exact (< 2^53), so this
+    equals Pillow's int32 accumulation; clip to [0, 255] as Pillow's clip8."""
+    m, length = g.shape
+    acc = np.empty((m, out_size), dtype=np.float64)
+    for s, e, lo, hi, w in _bands(length, out_size):
+        step = max(1, _ONE_THREAD_MNK // max((hi - lo) * (e - s), 1))
+        for r in range(0, m, step):
+            np.matmul(g[r : r + step, lo:hi], w, out=acc[r : r + step, s:e])
+    acc += float(1 << (_PRECISION_BITS - 1))
+    acc *= 1.0 / float(1 << _PRECISION_BITS)  # a power of two: exact
+    np.floor(acc, out=acc)
+    return np.clip(acc, 0.0, 255.0, out=acc)
 
 
 def resize_grey(grey: np.ndarray, side: int = _SIDE) -> np.ndarray:
     """(N, H, W) uint8 -> (N, side, side) float64 holding Pillow's LANCZOS resize values."""
-    g = np.asarray(grey, dtype=np.float64)
+    g = np.asarray(grey)
     n, h, w = g.shape
     # Pillow 13 (Resample.c) runs the vertical pass first when the height shrinks by
     # more than twice as many pixels as the width; each pass rounds to uint8, so the order
     # matters for the last bit. Older Pillow always went horizontal first (see module doc).
-    horizontal_first = not ((h - side) > 0 and (h - side) > (w - side) * 2)
-    for axis in ("x", "y") if horizontal_first else ("y", "x"):
-        if axis == "x" and w != side:
-            g = _resample_pass(g, resample_matrix(w, side))
-        elif axis == "y" and h != side:
-            g = np.swapaxes(_resample_pass(np.swapaxes(g, 1, 2), resample_matrix(h, side)), 1, 2)
+    # Every pass runs along rows; a vertical pass on transposed images.
+    vertical_first = (h - side) > 0 and (h - side) > (w - side) * 2
+    if vertical_first:
+        t = np.ascontiguousarray(g.transpose(0, 2, 1)).astype(np.float64)  # (N, W, H)
+        t = _rows_pass(t.reshape(n * w, h), side).reshape(n, w, side)
+        g = np.ascontiguousarray(t.transpose(0, 2, 1))  # (N, side, W)
+        if w != side:
+            g = _rows_pass(g.reshape(n * side, w), side).reshape(n, side, side)
+        return g
+    g = g.astype(np.float64)
+    if w != side:
+        g = _rows_pass(g.reshape(n * h, w), side).reshape(n, h, side)
+    if h != side:
+        t = np.ascontiguousarray(g.transpose(0, 2, 1))  # (N, side, H), small
+        g = _rows_pass(t.reshape(n * side, h), side).reshape(n, side, side).transpose(0, 2, 1)
     return g
 
 
-def phash_batch(images: np.ndarray, chunk: int = 256) -> np.ndarray:
+def phash_batch(images: np.ndarray, chunk: int = 256, coefficients: bool = False):
     """Perceptual hashes of equal-sized images, (N, H, W) grey or (N, H, W, C) RGB(A) uint8.
 
     Returns uint64, most significant bit = DCT coefficient (0, 0), row-major like
-    `str(imagehash.phash(img))` read as a hexadecimal number. Works `chunk` images at a
-    time so temporaries stay small (float copies are 8x the uint8 input).
+    `str(imagehash.phash(img))` read as a hexadecimal number; with `coefficients=True` also
+    the (N, 8, 8) float32 low-frequency DCT block the bits are thresholded from. Works at most
+    `chunk` images (and about half a million pixels: temporaries stay in cache) at a time.
     """
     a = np.asarray(images)
     if a.dtype != np.uint8:
@@ -124,14 +166,25 @@ def phash_batch(images: np.ndarray, chunk: int = 256) -> np.ndarray:
     if a.ndim not in (3, 4):
         raise ValueError(f"expected (N, H, W) or (N, H, W, C) images, got shape {a.shape}")
     out = np.zeros(len(a), dtype=np.uint64)
+    coef = np.zeros((len(a), HASH_SIZE, HASH_SIZE), dtype=np.float32) if coefficients else None
+    chunk = max(1, min(chunk, (1 << 19) // max(a.shape[1] * a.shape[2], 1)))
     for s in range(0, len(a), chunk):
         part = a[s : s + chunk]
         grey = luma(part) if part.ndim == 4 else part
         px = resize_grey(grey)
         dct = scipy.fftpack.dct(scipy.fftpack.dct(px, axis=1), axis=2)
         low = dct[:, :HASH_SIZE, :HASH_SIZE].reshape(len(part), -1)
-        out[s : s + chunk] = pack_bits(low > np.median(low, axis=1, keepdims=True))
-    return out
+        out[s : s + chunk] = pack_bits(low > _median64(low))
+        if coef is not None:
+            coef[s : s + chunk] = low.reshape(-1, HASH_SIZE, HASH_SIZE)
+    return (out, coef) if coefficients else out
+
+
+def _median64(low: np.ndarray) -> np.ndarray:
+    """(N, 64) -> (N, 1) medians as np.median computes them (the mean of the 32nd and 33rd
+    smallest), by one partition: np.median's own overhead outweighs the work at this size."""
+    part = np.partition(low, (31, 32), axis=1)
+    return ((part[:, 31] + part[:, 32]) / 2.0)[:, None]
 
 
 def phash(image: np.ndarray) -> int:
@@ -148,15 +201,16 @@ def pack_bits(bits: np.ndarray) -> np.ndarray:
     return np.packbits(b, axis=1, bitorder="big").view(">u8").astype(np.uint64).ravel()
 
 
-def fingerprint_images(images, batch: int = 256) -> tuple[np.ndarray, list[str]]:
-    """Perceptual hash and content hash of each image of an iterable (any sizes, in order).
+def fingerprint_images(images, batch: int = 256, coefficients: bool = False):
+    """Perceptual hash and content hash of each image of an iterable (any sizes, in order);
+    with `coefficients=True` also each image's (8, 8) low-frequency DCT block (float32).
 
     Images of one shape are hashed together in batches, so memory stays at `batch` images.
     """
     n = 0
     sha: list[str] = []
     pending: dict[tuple, list[tuple[int, np.ndarray]]] = {}
-    result: dict[int, int] = {}
+    result: dict[int, tuple] = {}
     for img in images:
         a = np.asarray(img)
         sha.append(content_hash(a))
@@ -167,12 +221,16 @@ def fingerprint_images(images, batch: int = 256) -> tuple[np.ndarray, list[str]]
             _flush(pending.pop(g.shape), result)
     for group in pending.values():
         _flush(group, result)
-    return np.array([result[i] for i in range(n)], dtype=np.uint64), sha
+    hashes = np.array([result[i][0] for i in range(n)], dtype=np.uint64)
+    if not coefficients:
+        return hashes, sha
+    coef = np.stack([result[i][1] for i in range(n)]) if n else np.zeros((0, HASH_SIZE, HASH_SIZE), np.float32)
+    return hashes, sha, coef
 
 
 def _flush(group, result) -> None:
-    hashes = phash_batch(np.stack([g for _, g in group]))
-    result.update(zip((i for i, _ in group), hashes.tolist()))
+    hashes, coef = phash_batch(np.stack([g for _, g in group]), coefficients=True)
+    result.update(zip((i for i, _ in group), zip(hashes.tolist(), coef)))
 
 
 def content_hash(image: np.ndarray) -> str:

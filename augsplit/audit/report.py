@@ -28,10 +28,16 @@ audit.json (schema "augsplit.audit/1"; keys are stable, new keys may be added):
                          shared_px_total, shared_px_max, shared_canvas_px, claim, max_fraction,
                          n_masks, per_class{class: {n_test, n_overlapping, fraction_overlapping,
                          shared_px_max, train_covered_px}}
-    near_duplicates      n_test, n_train, radius_bits, n_near_duplicates,
-                         fraction_near_duplicates, n_exact_duplicates, min_distance_bits,
+    near_duplicates      method ("render"|"pixels"|"hash"|"radius"), n_test, n_train,
+                         radius_bits, n_near_duplicates, fraction_near_duplicates,
+                         n_exact_duplicates, n_candidates, n_leaks, n_lookalikes,
+                         n_identical_by_design, n_ambiguous, min_distance_bits,
                          distance_histogram[radius+1], substrings, per_class{class: {n_test,
-                         n_near_duplicates, n_exact_duplicates}}
+                         n_near_duplicates, n_exact_duplicates, n_leaks}}; render: n_test_changed,
+                         copy_ratio; pixels: null{n, min, p01, p05, median}, threshold; hash:
+                         null{...}, threshold_bits. worst[] rows carry leak and the evidence
+                         (own, design, cross: grey levels; or delta)
+    row_integrity        (with masks) n_rows_checked, n_bad_rows; worst[] row, split, id, reason
     instance_leakage     n_unseen_instances, n_test_rows_unseen, n_leaked_instances,
                          n_leaked_test_rows, n_train_rows_flagged_unseen, leaked[{class, instance}]
     category_overlap     footprint ("bbox"|"mask"), n_same_pairs, n_diff_pairs,
@@ -64,7 +70,8 @@ _HEADLINE = {  # the one number the terminal table shows per check
     "declared_regions": ("joint_overlap_mass", "joint overlap"),
     "parameter_proximity": (("distance", "min"), "min distance"),
     "footprint_overlap": ("fraction_overlapping", "overlapping"),
-    "near_duplicates": ("n_near_duplicates", "near dups"),
+    "near_duplicates": ("n_leaks", "copies"),
+    "row_integrity": ("n_bad_rows", "bad rows"),
     "instance_leakage": ("n_leaked_instances", "leaked"),
     "category_overlap": ("ratio", "IoU ratio"),
 }
@@ -126,8 +133,10 @@ def summary_table(result: AuditResult) -> str:
     for s in result.skipped:
         lines.append(f"skipped {s.name} ({'/'.join(s.pair) if s.pair else '-'}): {s.reason}")
     n_fail = len(result.failed())
+    skipped = sorted({s.name for s in result.skipped})
     lines.append(f"audit {result.verdict.upper()}: {len(result.checks)} checks, {n_fail} failed, "
-                 f"{sum(c.verdict == 'warn' for c in result.checks)} warnings, {len(result.skipped)} skipped")
+                 f"{sum(c.verdict == 'warn' for c in result.checks)} warnings, {len(result.skipped)} skipped"
+                 + (f" (not run: {', '.join(skipped)}; see above)" if skipped else ""))
     return "\n".join(lines)
 
 
@@ -198,9 +207,9 @@ def _axis_plots(result: AuditResult) -> str:
         for split, counts in h["counts"].items():
             ax.stairs(counts, edges, label=str(split), fill=False)
         ax.set_title(name, fontsize=9)
-        if k == 0:
-            ax.legend(fontsize=7)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 0, 1, 0.9))
+    handles, labels = fig.axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="upper center", ncol=min(len(labels), 6), fontsize=8, frameon=False)
     return _png(fig)
 
 

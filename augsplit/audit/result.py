@@ -101,6 +101,25 @@ class AuditResult:
         return audit_html(self)
 
 
+def merge_arrays(parts: list[dict]) -> dict:
+    """Table-wide plot data of several runs over one table (one run per audited pair): the
+    per-axis histograms share their edges, so their per-split counts are united."""
+    out: dict = {}
+    for arrays in parts:
+        for key, value in arrays.items():
+            if key == "axis_hist" and key in out:
+                for axis, h in value.items():
+                    if axis in out[key]:
+                        out[key][axis] = {**out[key][axis], "counts": {**out[key][axis]["counts"], **h["counts"]}}
+                    else:
+                        out[key][axis] = h
+            elif key == "axis_hist":
+                out[key] = dict(value)
+            else:
+                out.setdefault(key, value)
+    return out
+
+
 def top_rows(frame: pd.DataFrame, by: str, k: int, ascending: bool) -> pd.DataFrame:
     """The k worst rows by one column, ties broken by row order so output is stable."""
     if len(frame) == 0:

@@ -11,13 +11,14 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from ..errors import DatasetError
+from ..errors import AugsplitError, DatasetError
+from . import lookalike
 from .category import check_category_overlap
 from .footprint import check_footprint
 from .inputs import (BBOX_COLUMNS, ImageLoader, TableSource, axis_scales, check_files_exist,
                      decode_image, open_table, read_image)
 from .instances import check_instances
-from .nearest_hash import check_near_duplicates
+from .nearest_hash import check_near_duplicates, hamming
 from .phash import fingerprint_images
 from .proximity import check_proximity
 from .regions import check_data_ranges, check_declared_regions
@@ -33,14 +34,17 @@ class Thresholds:
     footprint_disjoint: bool | None = None  # declared: no shared pixel between the splits
     footprint_max_fraction: float = 0.0  # allowed fraction of overlapping test objects
     footprint_per_class: bool = True  # compare footprints within a class only (False: across classes too)
-    # Hamming bits at or under which two images count as near-duplicates. Measured on our
-    # synthetic 96 px tiles on noise: a 1 px shift moves the hash by <= 8 bits, distinct images
-    # stay >= 16 apart. Flat backgrounds make the hash unstable (see audit/phash.py).
+    # Hamming bits at or under which a test image's nearest train image is a candidate copy.
+    # Candidates are then judged (audit/lookalike.py): by re-rendering on generated datasets,
+    # else against the distances distinct training images show. A 1 px shift moves the hash by
+    # up to 8 bits on noise backgrounds and up to 16 on flat ones (generated copies of changed
+    # images are found by their DCT block instead; see lookalike.changed_rows).
     hash_radius: int = 8
-    near_duplicates_fail: bool = True  # False: near-duplicates warn (exact copies still fail)
+    near_duplicates_fail: bool = True  # False: copies warn (pixel-identical copies still fail)
+    duplicate_judge: str = "auto"  # "auto": judge candidates (see above); "radius": every candidate is a copy
     category_max_ratio: float | None = None  # fail when same/different-class IoU ratio exceeds it
     category_pairs: int = 2000
-    seed: int = 0  # the category check's pair sampling
+    seed: int = 0  # the category check's pair sampling and the near-duplicate null sample
     p: float = 2.0  # Minkowski p of parameter distances (2 = Euclidean)
     worst_k: int = 20
     thumbnails: int = 6
@@ -48,19 +52,73 @@ class Thresholds:
 
     @classmethod
     def from_dict(cls, d: dict | None) -> "Thresholds":
+        """Thresholds from a mapping, every value typed and range-checked: a DatasetError
+        naming `thresholds.KEY` (with the closest known key for a misspelt one)."""
         d = dict(d or {})
-        names = {f.name for f in dataclasses.fields(cls)}
-        for k in d:
+        names = [f.name for f in dataclasses.fields(cls)]
+        for k, v in d.items():
             if k not in names:
-                raise DatasetError(f"unknown threshold (known: {', '.join(sorted(names))})", where=f"thresholds.{k}")
+                import difflib
+
+                close = difflib.get_close_matches(str(k), names, n=1)
+                raise DatasetError(f"unknown threshold{f' (did you mean {close[0]!r}?)' if close else ''}; "
+                                   f"known: {', '.join(sorted(names))}", where=f"thresholds.{k}")
         return cls(**d)
+
+    def __post_init__(self):
+        for f in dataclasses.fields(self):
+            object.__setattr__(self, f.name, _typed(f.name, getattr(self, f.name)))
+
+
+# name -> (type, lowest, highest, may be None); ranges are inclusive
+_RULES = {
+    "margin": (float, 0.0, None, True), "footprint_disjoint": (bool, None, None, True),
+    "footprint_max_fraction": (float, 0.0, 1.0, False), "footprint_per_class": (bool, None, None, False),
+    "hash_radius": (int, 0, 63, False), "near_duplicates_fail": (bool, None, None, False),
+    "duplicate_judge": (("auto", "radius"), None, None, False),
+    "category_max_ratio": (float, 0.0, None, True), "category_pairs": (int, 1, 10_000_000, False),
+    "seed": (int, 0, 2**63 - 1, False), "p": (float, 1.0, float("inf"), False),
+    "worst_k": (int, 0, 1_000_000, False), "thumbnails": (int, 0, 1000, False), "hash_column": (str, None, None, False),
+}
+
+
+def _typed(name: str, v):
+    kind, lo, hi, nullable = _RULES[name]
+    where = f"thresholds.{name}"
+    if v is None:
+        if nullable:
+            return None
+        raise DatasetError("needs a value", where=where)
+    if isinstance(kind, tuple):
+        if v not in kind:
+            raise DatasetError(f"must be one of {', '.join(kind)}, got {v!r}", where=where)
+        return v
+    if kind is bool:
+        if not isinstance(v, (bool, np.bool_)):
+            raise DatasetError(f"must be true or false, got {v!r}", where=where)
+        return bool(v)
+    if kind is str:
+        if not isinstance(v, str) or not v:
+            raise DatasetError(f"must be a column name, got {v!r}", where=where)
+        return v
+    ok = isinstance(v, (int, np.integer)) if kind is int else isinstance(v, (int, float, np.integer, np.floating))
+    if isinstance(v, (bool, np.bool_)) or not ok:
+        noun = "an integer" if kind is int else "a number"
+        raise DatasetError(f"must be {noun}, got {v!r}", where=where)
+    v = kind(v)
+    if v != v or (v in (float("inf"), float("-inf")) and hi != float("inf")):
+        raise DatasetError(f"must be finite, got {v!r}", where=where)
+    if (lo is not None and v < lo) or (hi is not None and v > hi):
+        rng = f"at least {lo:g}" if hi is None else f"in [{lo:g}, {hi:g}]"
+        raise DatasetError(f"must be {rng}, got {v:g}", where=where)
+    return v
 
 
 def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresholds=None,
               image_loader: ImageLoader | None = None, mask_loader: Callable | None = None,
               canvas_hw: tuple[int, int] | None = None, regions: dict | None = None,
               column_map: dict | None = None, root=None, mask_rows=None,
-              progress: bool = False) -> AuditResult:
+              progress: bool = False, reference_loader: ImageLoader | None = None) -> AuditResult:
     """Audit a table for leakage between splits.
 
     table: DataFrame, CSV, Parquet file or dataset folder (columns as in augsplit.manifest;
@@ -68,11 +126,26 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     periodic[, "log"])} or augsplit Axis objects. pairs: [(train, test), ...]; default
     "train" against every other split. Loaders take a table row number. `regions`
     {split: Region} enables the declared-region check; `margin` overrides thresholds.margin.
+    `reference_loader` re-renders a row from its parameters (a generated dataset): it lets the
+    near-duplicate check tell look-alikes the design makes from copies (audit/lookalike.py).
+
+    A check that cannot run because the table lacks its columns is listed in `skipped`; when
+    the columns are missing because `column_map` took them for another name, or a mapped name
+    is not one the audit reads, that is bad input (DatasetError naming `column_map.NAME`).
     """
     th = thresholds if isinstance(thresholds, Thresholds) else Thresholds.from_dict(thresholds)
     if margin is not None:
         th = dataclasses.replace(th, margin=float(margin))
     src = open_table(table, column_map, root)
+    region_cols = []
+    for reg in (regions or {}).values():
+        region_cols += [("class_index" if n == "class" else n) for n in reg.space.names]
+    want = list(dict.fromkeys(["split", "image_id", "class_name", "instance", "instance_seen", *axes,
+                               *BBOX_COLUMNS, "width", "height", "file", "sha256", th.hash_column, *region_cols]))
+    _check_column_map(column_map, list(dict.fromkeys([*want, "image_bytes", "class_index"])))
+    if th.hash_column != Thresholds.hash_column and th.hash_column not in src.columns:
+        raise DatasetError(f"no column {th.hash_column!r} in the table, so near_duplicates cannot use it",
+                           where="thresholds.hash_column")
     if "split" not in src.columns:
         raise DatasetError(f"table has no split column (columns: {', '.join(src.columns[:12])})",
                            where="column 'split'", hint="map one, e.g. column_map={'split': 'phase'}")
@@ -81,11 +154,6 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     for name in axes:
         if name not in src.columns:
             raise DatasetError(f"no column {name!r} in the table", where=f"axes.{name}")
-    region_cols = []
-    for reg in (regions or {}).values():
-        region_cols += [("class_index" if n == "class" else n) for n in reg.space.names]
-    want = list(dict.fromkeys(["split", "image_id", "class_name", "instance", "instance_seen", *axes,
-                               *BBOX_COLUMNS, "width", "height", "file", "sha256", th.hash_column, *region_cols]))
     df = src.read(want, progress=progress)
     split = df["split"].astype(str).to_numpy()
     present = list(pd.unique(split))
@@ -111,7 +179,9 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     finite_res, ok = _check_finite(values, [s.name for s in scales], bbox, audited, ids, th.worst_k)
     checks.append(finite_res)
 
-    fp = _Fingerprints(src, df, image_loader, th, progress, audited)
+    fp = _Fingerprints(src, df, image_loader, th, progress, audited, coefficients=reference_loader is not None)
+    guard = _GuardedMasks(mask_loader, bbox, df, ids) if mask_loader is not None and has_bbox else None
+    mask_loader = guard
     hw = _canvas(canvas_hw, df, bbox, ok) if has_bbox else None
     cls = df["class_name"].astype(str).to_numpy() if "class_name" in df else None
     rng = np.random.default_rng(th.seed)
@@ -155,6 +225,8 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
                                   mask_loader, fa, fb, mr_a, mr_b, th.footprint_disjoint, th.footprint_max_fraction,
                                   ids[fa], ids[fb], pair, th.worst_k)
             checks.append(_globalise(dataclasses.replace(res, detail=res.detail + note), fa, fb))
+            if guard is not None:
+                checks.append(guard.check(np.concatenate([fa, fb]), pair, th.worst_k))
             if cls is not None:
                 checks.append(check_category_overlap(bi_a, cls[fa], bi_b, cls[fb], rng, hw, th.category_pairs,
                                                      mask_loader, fa, fb, th.category_max_ratio, pair))
@@ -170,10 +242,11 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
         if hashes is None:
             skipped.append(Skipped("near_duplicates", pair, reason))
         else:
+            judge, extra = _duplicate_judge(th, fp, df, ra, rb, reference_loader, rng_for=np.random.default_rng(th.seed))
             res = check_near_duplicates(hashes[ra], hashes[rb], th.hash_radius,
                                         sha[ra] if sha is not None else None, sha[rb] if sha is not None else None,
                                         ids[ra], ids[rb], cls[rb] if cls is not None else None, pair, th.worst_k,
-                                        th.near_duplicates_fail)
+                                        th.near_duplicates_fail, judge=judge, extra_pairs=extra)
             if sha is None:
                 res = dataclasses.replace(res, detail=res.detail + " (no content hashes: exact copies not checked)")
             checks.append(_globalise(res, ra, rb))
@@ -206,6 +279,134 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
 
 
 # ---- helpers -------------------------------------------------------------------------------
+
+def _check_column_map(column_map: dict | None, known: list) -> None:
+    """Every mapped name must be one the audit reads (did-you-mean otherwise), and no column
+    the audit reads may be renamed to another name: a check would then skip or fail for lack
+    of a column the table has, which is the map's doing, so it is bad input, never a skip."""
+    mapping = dict(column_map or {})
+    import difflib
+
+    for dst, src in mapping.items():
+        if dst not in known:
+            close = difflib.get_close_matches(str(dst), known, n=1)
+            raise DatasetError(f"{dst!r} is not a column the audit reads"
+                               + (f" (did you mean {close[0]!r}?)" if close else "")
+                               + f"; it reads {', '.join(known)}", where=f"column_map.{dst}")
+        if src != dst and src in known and src not in mapping:
+            raise DatasetError(f"the map takes column {src!r}, which the audit reads as {src!r} itself, for {dst!r}; "
+                               "the checks that need it would not run", where=f"column_map.{dst}")
+
+
+class _GuardedMasks:
+    """The mask loader, guarded: a row whose footprint cannot be re-made from its parameters,
+    or whose mask does not fit its recorded bbox, is recorded (reported by `check`, naming
+    split and image id) and counts as its bbox instead of stopping the audit."""
+
+    def __init__(self, loader, bbox: np.ndarray, df: pd.DataFrame, ids: np.ndarray):
+        self.loader, self.bbox, self.ids = loader, bbox, ids
+        self.split = df["split"].astype(str).to_numpy()
+        self.bad: dict[int, str] = {}
+
+    def __call__(self, row: int):
+        row = int(row)
+        if row in self.bad:
+            return None
+        try:
+            m = self.loader(row)
+        except (AugsplitError, IndexError, KeyError, ValueError) as exc:
+            self.bad[row] = f"footprint cannot be re-made: {exc}"
+            return None
+        if m is None:
+            return None
+        b = self.bbox[row]
+        want = (int(b[3]) - int(b[1]), int(b[2]) - int(b[0])) if np.isfinite(b).all() else None
+        if np.shape(m) != want:
+            self.bad[row] = f"mask shape {tuple(np.shape(m))} does not match its bbox {want}"
+            return None
+        return m
+
+    def check(self, rows: np.ndarray, pair, worst_k: int) -> CheckResult:
+        bad = [r for r in sorted(self.bad) if r in set(rows.tolist())]
+        frame = pd.DataFrame({"row": bad, "split": self.split[bad] if bad else [],
+                              "id": self.ids[bad] if bad else [], "reason": [self.bad[r] for r in bad]})
+        numbers = {"n_rows_checked": int(len(rows)), "n_bad_rows": len(bad)}
+        if not bad:
+            return CheckResult("row_integrity", PASS, numbers, None,
+                               "every row's footprint re-made from its parameters fits its recorded bbox", pair)
+        first = frame.iloc[0]
+        return CheckResult("row_integrity", FAIL, numbers, frame.head(worst_k),
+                           f"{len(bad)} of {len(rows)} rows do not match their own parameters (e.g. {first['id']} "
+                           f"of split {first['split']}: {first['reason']}); they count as their bbox", pair)
+
+
+def _duplicate_judge(th: Thresholds, fp, df: pd.DataFrame, ra: np.ndarray, rb: np.ndarray,
+                     reference_loader, rng_for: np.random.Generator):
+    """How the near-duplicate check tells copies from look-alikes for one pair (train rows ra,
+    test rows rb): (judge over pair positions, extra candidate pairs) - see audit/lookalike.py."""
+    if th.duplicate_judge == "radius":
+        return None, None
+    hashes, sha = fp.hashes, fp.sha
+    if fp.kind in ("none", "hash_column"):
+        null = lookalike.hash_null(hashes[ra], rng_for)
+        q = float(np.quantile(null, lookalike.NULL_QUANTILE)) if len(null) else 0.0
+        nums = {"null": _null_numbers(null), "threshold_bits": q}
+
+        def judge_hash(tp, rp):
+            d = hamming(hashes[rb[tp]], hashes[ra[rp]]).astype(float)
+            exact = np.zeros(len(tp), bool)
+            if sha is not None:
+                exact = np.asarray(sha, dtype=object)[rb[tp]] == np.asarray(sha, dtype=object)[ra[rp]]
+            leak = (d < q) | exact
+            return {"leak": leak, "ambiguous": ~leak}
+        return _labelled(judge_hash, "hash", nums), None
+
+    if reference_loader is not None:
+        unchanged = fp.unchanged()
+        loader = reference_loader
+
+        def reference_loader(row: int):  # a row that cannot be re-rendered explains nothing
+            try:
+                return loader(row)
+            except (AugsplitError, IndexError, KeyError, ValueError):
+                return None
+        changed = lookalike.changed_rows(rb, ra, unchanged, fp.fetch, reference_loader)
+        extra = None
+        if len(changed) and fp.coef is not None and len(ra):
+            near = lookalike.most_similar(fp.coef[changed].astype(np.float32), fp.coef[ra].astype(np.float32))
+            pos_of = {int(r): k for k, r in enumerate(rb)}
+            extra = (np.repeat([pos_of[int(r)] for r in changed], near.shape[1]), near.ravel())
+        nums = {"n_test_changed": int(len(changed)), "copy_ratio": lookalike.COPY_RATIO}
+
+        def judge_render(tp, rp):
+            return lookalike.judge_by_render(rb[tp], ra[rp], unchanged, fp.fetch, reference_loader)
+        return _labelled(judge_render, "render", nums), extra
+
+    null = lookalike.pixel_null(ra, hashes, sha, fp.fetch, rng_for)
+    tau = lookalike.null_threshold(null)
+    nums = {"null": _null_numbers(null), "threshold": tau}
+
+    def judge_pixels(tp, rp):
+        t, r = rb[tp], ra[rp]
+        same = np.zeros(len(tp), bool) if sha is None else np.asarray(sha, dtype=object)[t] == np.asarray(sha, dtype=object)[r]
+        return lookalike.judge_by_pixels(t, r, fp.fetch, tau, same)
+    return _labelled(judge_pixels, "pixels", nums), None
+
+
+def _labelled(judge, method: str, numbers: dict):
+    """A judge carries its method's name and figures (reported even with no candidate)."""
+    judge.method, judge.numbers = method, numbers
+    return judge
+
+
+def _null_numbers(null: np.ndarray) -> dict:
+    null = np.asarray(null, float)
+    if len(null) == 0:
+        return {"n": 0}
+    q = np.quantile(null, [0.0, 0.01, 0.05, 0.5])
+    return {"n": int(len(null)), "min": float(q[0]), "p01": float(q[1]), "p05": float(q[2]), "median": float(q[3])}
+
+
 
 def _resolve_pairs(pairs, present: list) -> list[tuple[str, str]]:
     if pairs is None:
@@ -300,10 +501,12 @@ def _globalise(res: CheckResult, rows_a: np.ndarray, rows_b: np.ndarray, row_col
 class _Fingerprints:
     """Perceptual and content hashes of every row, computed once, on first need."""
 
-    def __init__(self, src: TableSource, df: pd.DataFrame, image_loader, th: Thresholds, progress: bool, rows: np.ndarray):
+    def __init__(self, src: TableSource, df: pd.DataFrame, image_loader, th: Thresholds, progress: bool, rows: np.ndarray,
+                 coefficients: bool = False):
         self.src, self.df, self.loader, self.th, self.progress, self.rows = src, df, image_loader, th, progress, rows
         self._done = False
-        self.hashes = self.sha = None
+        self.hashes = self.sha = self.coef = None
+        self.want_coef = coefficients
         self.reason = ""
         self.kind = "none"
         has_file = np.zeros(len(df), bool)
@@ -350,10 +553,13 @@ class _Fingerprints:
         computed_sha = np.empty(len(df), dtype=object)
         from ..progress import bar as tqdm
 
-        h, s = fingerprint_images(tqdm(self._images(rows), total=len(rows), unit="img", desc="hashing",
-                                       disable=not self.progress))
-        hashes[rows] = h
-        computed_sha[rows] = s
+        out = fingerprint_images(tqdm(self._images(rows), total=len(rows), unit="img", desc="hashing",
+                                      disable=not self.progress), coefficients=self.want_coef)
+        hashes[rows] = out[0]
+        computed_sha[rows] = out[1]
+        if self.want_coef:  # directions of the DCT blocks (float16), to find what a changed image copies
+            self.coef = np.zeros((len(df), 63), np.float16)
+            self.coef[rows] = lookalike.ac_directions(out[2])
         self.hashes = hashes
         # pixels read are the evidence: a file copied over another after generation keeps its
         # old manifest sha256, so the column is used only when no image is read
@@ -390,6 +596,15 @@ class _Fingerprints:
                     pos += len(batch)
             yield from _ordered_map(lambda job: decode_image(job[1], f"row {job[0]}") if job[1] is not None
                                     else from_file(job[0]), jobs())
+
+    def unchanged(self) -> np.ndarray:
+        """Per row: the pixels read are those the manifest's sha256 recorded when the row was
+        rendered (False where either is missing)."""
+        out = np.zeros(len(self.df), bool)
+        if self.sha is not None and "sha256" in self.df and self.kind != "hash_column":
+            rec = self.df["sha256"].astype(str).to_numpy(object)
+            out = np.array([a is not None and a == b for a, b in zip(self.sha, rec)], bool)
+        return out
 
     def fetch(self, rows: list[int]) -> dict[int, np.ndarray]:
         """A few rows' images (for thumbnails); empty when images are not available."""
