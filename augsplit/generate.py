@@ -25,9 +25,10 @@ import pyarrow.parquet as pq
 from . import executors
 from . import manifest as mf
 from .build import Built, build, open_spec
-from .dataset import create, open_dataset, read_rows
+from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
+from .dataset.rows import read_column
 from .dataset.images import FORMATS, encode
 from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_text_atomic
@@ -427,10 +428,12 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
                                     executor=opts.executor, client=client)
         with closing(results):
             for job, count in results:
-                # the driver counts a shard only once its committed part is there in full
-                if not shard_done(out, job):
+                # the driver counts a shard only once its committed part is there; its footer
+                # (the row count) is read once, by `finalize`, not here as well
+                part = lay.part_path(out, lay.MANIFEST_DIR, job.split, job.shard)
+                if count != job.stop - job.start or not part.is_file():
                     raise DatasetError(f"shard {job} reported done but its manifest part is missing or short",
-                                       where=str(out))
+                                       where=str(part))
                 bar.update(count)
     finally:
         bar.close()
@@ -442,7 +445,9 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
     folder = open_dataset(out, allow_incomplete=True)  # parts of this spec, in the declared schema
     built = built or folder.built
     jobs = shard_jobs(built, folder.shard_size)
-    missing = [(g, j) for g, j in enumerate(jobs) if not shard_done(out, j)]
+    # the footers open_dataset has just read: each committed part's footer is read once here
+    rows = {(p.split, p.shard): p.rows for p in folder.parts_of(lay.MANIFEST_DIR)}
+    missing = [(g, j) for g, j in enumerate(jobs) if rows.get((j.split, j.shard)) != j.stop - j.start]
     if missing:
         names = ", ".join(f"{j.split}/part-{j.shard:06d} (shard #{g} of {len(jobs)})" for g, j in missing[:5])
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
@@ -463,7 +468,9 @@ LOW_VISIBILITY = 0.5  # an image showing less than this share of its object's fo
 
 def low_visibility(folder, threshold: float = LOW_VISIBILITY) -> dict:
     """How many images show less than `threshold` of their target object, and how many none."""
-    vf = read_rows(folder, columns=["visible_fraction"])["visible_fraction"].to_numpy(dtype=float)
+    # part by part with pyarrow: a generation run never needs pandas (0.5 s to import)
+    vf = np.concatenate([np.zeros(0)] + [read_column(p, "visible_fraction").to_numpy(zero_copy_only=False)
+                                         for p in folder.parts_of(lay.MANIFEST_DIR)]).astype(float)
     return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 
 
