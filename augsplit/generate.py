@@ -25,14 +25,15 @@ import pyarrow.parquet as pq
 from . import executors
 from . import manifest as mf
 from .build import Built, build, open_spec
-from .dataset import create, open_dataset, read_rows
+from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
+from .dataset.rows import read_column
 from .dataset.images import FORMATS, encode
 from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
-from .io import DISK_FULL, atomic_path, os_error, write_files_atomic, write_text_atomic
+from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_text_atomic
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
 from .scene import make_scene, native_diameter, pixel_sha256
@@ -109,15 +110,22 @@ def rows_per_group(built: Built, opts: Options) -> int:
 class _FileWriter:
     """Atomic image-file writes on a few threads, so file-system latency overlaps rendering.
     Files go to the threads in batches (a future per file costs more than a fast write); at
-    most WRITES_IN_FLIGHT encoded images wait in memory; `close` re-raises the first error."""
+    most WRITES_IN_FLIGHT encoded images wait in memory; `close` re-raises the first error.
+
+    Each file is renamed into place whole but unsynced; `close` then makes the shard's files
+    durable at once (one syncfs, measured cheaper than one per batch), before the caller
+    commits the shard's part. A crash before that leaves the shard without a part, and a
+    resumed run rewrites every image of such a shard."""
 
     def __init__(self):
         self._pool = ThreadPoolExecutor(WRITER_THREADS, thread_name_prefix="augsplit-write")
         self._slots = BoundedSemaphore(WRITES_IN_FLIGHT // WRITE_BATCH)
         self._futures = []
         self._batch: list[tuple[Path, bytes]] = []
+        self._written: list[Path] = []
 
     def write(self, path: Path, data: bytes) -> None:
+        self._written.append(path)
         self._batch.append((path, data))
         if len(self._batch) >= WRITE_BATCH:
             self._flush()
@@ -140,6 +148,8 @@ class _FileWriter:
         self._pool.shutdown(wait=True)
         for f in self._futures:
             f.result()
+        if self._written:
+            _guard_disk(lambda: sync_files(self._written), self._written[0])
 
     def abort(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
@@ -297,9 +307,8 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
 
 
 def _write_files(batch: list[tuple[Path, bytes]]) -> None:
-    # one sync for the whole batch: durable before the shard's part commits, without a
-    # journal commit per image
-    _guard_disk(lambda: write_files_atomic(batch), batch[0][0])
+    # unsynced: `_FileWriter.close` syncs the whole shard once, before its part commits
+    _guard_disk(lambda: write_files_atomic(batch, sync=False), batch[0][0])
 
 
 def _guard_disk(fn, where: Path):
@@ -461,10 +470,12 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
                                     executor=opts.executor, client=client)
         with closing(results):
             for job, count in results:
-                # the driver counts a shard only once its committed part is there in full
-                if not shard_done(out, job):
+                # the driver counts a shard only once its committed part is there; its footer
+                # (the row count) is read once, by `finalize`, not here as well
+                part = lay.part_path(out, lay.MANIFEST_DIR, job.split, job.shard)
+                if count != job.stop - job.start or not part.is_file():
                     raise DatasetError(f"shard {job} reported done but its manifest part is missing or short",
-                                       where=str(out))
+                                       where=str(part))
                 bar.update(count)
     finally:
         bar.close()
@@ -476,7 +487,9 @@ def finalize(out: str | Path, built: Built | None = None) -> dict:
     folder = open_dataset(out, allow_incomplete=True)  # parts of this spec, in the declared schema
     built = built or folder.built
     jobs = shard_jobs(built, folder.shard_size)
-    missing = [(g, j) for g, j in enumerate(jobs) if not shard_done(out, j)]
+    # the footers open_dataset has just read: each committed part's footer is read once here
+    rows = {(p.split, p.shard): p.rows for p in folder.parts_of(lay.MANIFEST_DIR)}
+    missing = [(g, j) for g, j in enumerate(jobs) if rows.get((j.split, j.shard)) != j.stop - j.start]
     if missing:
         names = ", ".join(f"{j.split}/part-{j.shard:06d} (shard #{g} of {len(jobs)})" for g, j in missing[:5])
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
@@ -497,6 +510,8 @@ LOW_VISIBILITY = 0.5  # an image showing less than this share of its object's fo
 
 def low_visibility(folder, threshold: float = LOW_VISIBILITY) -> dict:
     """How many images show less than `threshold` of their target object, and how many none."""
-    vf = read_rows(folder, columns=["visible_fraction"])["visible_fraction"].to_numpy(dtype=float)
+    # part by part with pyarrow: a generation run never needs pandas (0.5 s to import)
+    vf = np.concatenate([np.zeros(0)] + [read_column(p, "visible_fraction").to_numpy(zero_copy_only=False)
+                                         for p in folder.parts_of(lay.MANIFEST_DIR)]).astype(float)
     return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 

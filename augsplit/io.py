@@ -154,10 +154,14 @@ def atomic_path(path: str | Path):
             tmp.unlink()
 
 
-def write_files_atomic(items) -> None:
+def write_files_atomic(items, *, sync: bool = True) -> None:
     """Write several `(path, bytes)` files with `atomic_path`'s promise for each, syncing them
     together: every file to a temporary sibling, all made durable at once, then each renamed
-    into place and each folder fsynced once. On failure no temporary is left."""
+    into place and each folder fsynced once. On failure no temporary is left.
+
+    With `sync=False` the files are renamed into place unsynced: a reader still never sees a
+    partial file, but the caller must `sync_files` them before it relies on them surviving a
+    power loss (generation does so once per shard, before the shard's part commits)."""
     items = [(check_target(p), data) for p, data in items]
     tmps: list[Path] = []
     try:
@@ -165,16 +169,32 @@ def write_files_atomic(items) -> None:
             tmps.append(temporary_name(p))
             with open(tmps[-1], "xb") as f:
                 f.write(data)
-        _sync_data(tmps)
+        if sync:
+            _sync_data(tmps)
         for (p, _), tmp in zip(items, tmps):
             check_target(p)
             os.replace(tmp, p)
-        for folder in dict.fromkeys(p.parent for p, _ in items):
-            fsync_folder(folder)
+        if sync:
+            _sync_folders(p for p, _ in items)
     finally:
         for tmp in tmps:
             if os.path.lexists(tmp):
                 tmp.unlink()
+
+
+def _sync_folders(paths) -> None:
+    for folder in dict.fromkeys(Path(p).parent for p in paths):
+        fsync_folder(folder)
+
+
+def sync_files(paths) -> None:
+    """Make files written with `write_files_atomic(..., sync=False)` durable, names included:
+    one syncfs per file system (an fsync per file where there is none), then each folder
+    fsynced once."""
+    paths = [Path(p) for p in paths]
+    if paths:
+        _sync_data(paths)
+        _sync_folders(paths)
 
 
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:

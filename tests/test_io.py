@@ -65,15 +65,49 @@ def assert_committed(log, final: Path) -> None:
     assert ("fsync", str(final.parent)) in log[i + 1:], f"{final.parent} not synced after the rename"
 
 
+def assert_durable_before_part(log, image: Path, parts: list[Path]) -> None:
+    """An image file renamed into place whole (from a temporary sibling), then its data synced
+    (its own fsync or a syncfs of its file system) and its folder fsynced, all before the next
+    part commits (serial run: its shard's part). POSIX: fsync of the file and of its folder
+    make the data and the name durable."""
+    image = image.resolve()
+    i = next(k for k, e in enumerate(log) if e[0] == "replace" and e[2] == str(image))
+    tmp = log[i][1]
+    assert Path(tmp).name.startswith(f".{image.name}.tmp-")
+    made = log.index(("tmp", tmp))
+    names = {str(p.resolve()) for p in parts}
+    commit = next(k for k, e in enumerate(log) if k > i and e[0] == "replace" and e[2] in names)
+    synced = {("fsync", tmp), ("fsync", str(image)), ("syncfs", os.stat(image).st_dev)}
+    assert synced & set(log[made:commit]), f"{image.name}'s shard committed before the image was synced"
+    assert ("fsync", str(image.parent)) in log[i + 1:commit], f"{image.parent} not synced before the part commits"
+
+
 def test_generation_commits_durably(tmp_path, events):
     """Measured on main: nothing called fsync, so a power loss could leave a renamed but empty part."""
     out = tmp_path / "ds"
-    generate(None, out, Options(progress=False, store="files"), built=open_mapping(spec_dict()))
+    generate(None, out, Options(progress=False, store="files", shard_size=10), built=open_mapping(spec_dict()))
     parts = sorted((out / mf.MANIFEST_DIR).rglob("part-*.parquet"))
     images = sorted((out / mf.IMAGES_DIR).rglob("*.png"))
-    assert parts and images
-    for f in [out / mf.SPEC_FILE, out / mf.SUMMARY_FILE, *parts, *images]:
+    assert len(parts) > 1 and images
+    for f in [out / mf.SPEC_FILE, out / mf.SUMMARY_FILE, *parts]:
         assert_committed(events, f)
+    for f in images:
+        assert_durable_before_part(events, f, parts)
+
+
+def test_a_shard_of_files_is_synced_once_not_per_batch(tmp_path, events):
+    """Measured before: one syncfs per batch of 16 image files (32 per shard of 500); now one
+    per shard, still before the shard's part commits."""
+    if not aio.syncfs(tmp_path):
+        pytest.skip("no syncfs here")
+    events.clear()
+    out = tmp_path / "ds"
+    many = {"train": {"region": {"x": [0, 20]}, "count": 80}, "test": {"region": {"x": [44, 64]}, "count": 40}}
+    generate(None, out, Options(progress=False, store="files", shard_size=40),
+             built=open_mapping(spec_dict(splits=many)))
+    parts = sorted((out / mf.MANIFEST_DIR).rglob("part-*.parquet"))
+    syncfs = [e for e in events if e[0] == "syncfs"]
+    assert len(syncfs) == len(parts)
     # the summary (the dataset's "complete" mark) comes after every part is durable
     last_part = max(k for k, e in enumerate(events) if e[0] == "replace" and e[2] in {str(p.resolve()) for p in parts})
     summary = next(k for k, e in enumerate(events) if e[0] == "replace" and e[2].endswith(mf.SUMMARY_FILE))

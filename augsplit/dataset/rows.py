@@ -8,12 +8,10 @@ one-line DatasetError naming it, never a traceback.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Iterator
+from typing import TYPE_CHECKING, Iterator
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
-import pyarrow.dataset as pds
 import pyarrow.parquet as pq
 
 from .. import manifest as mf
@@ -21,7 +19,12 @@ from ..errors import DatasetError
 from . import layout as lay
 from .folder import SCHEMAS, DatasetFolder, Part, open_dataset
 
-PARTITIONING = pds.partitioning(pa.schema([(mf.PARTITION, pa.string())]), flavor="hive")
+if TYPE_CHECKING:
+    import pandas as pd
+    import pyarrow.dataset as pds
+
+# pyarrow.dataset and pandas (which it imports: 0.5 s) are imported where rows are read as a
+# table, so a generation run, which only writes parts and reads single columns, needs neither
 PART_COLUMN, OFFSET_COLUMN = "_part", "_offset"  # with positions=True: which part, which row of it
 
 
@@ -31,11 +34,14 @@ def table_schema(table: str) -> pa.Schema:
 
 
 def _dataset(folder: DatasetFolder, table: str, splits, parts=None) -> tuple[pds.Dataset | None, list[Part]]:
+    import pyarrow.dataset as pds
+
     parts = folder.parts_of(table, splits) if parts is None else list(parts)
     if not parts:
         return None, parts
     dset = pds.dataset([str(p.path) for p in parts], schema=table_schema(table), format="parquet",
-                       partitioning=PARTITIONING, partition_base_dir=str(folder.root / table))
+                       partitioning=pds.partitioning(pa.schema([(mf.PARTITION, pa.string())]), flavor="hive"),
+                       partition_base_dir=str(folder.root / table))
     return dset, parts
 
 
@@ -66,6 +72,8 @@ def read_rows(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits=No
     """Rows of a table as a DataFrame (`split` a plain string column), splits in spec order,
     image order within each. `positions` adds `_part` (index into `folder.parts_of(table,
     splits)`) and `_offset` (row within that part)."""
+    import pandas as pd
+
     cols = _columns(table, columns)
     dset, parts = _dataset(folder, table, splits)
     frames = []
@@ -116,7 +124,8 @@ def iter_batches(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits
 def read_column(part: Part, column: str) -> pa.Array:
     """One column of one part (for example its image bytes, which loaders cache per part)."""
     try:
-        return pq.read_table(part.path, columns=[column]).column(column).combine_chunks()
+        # ParquetFile, not read_table: the latter imports pyarrow.dataset and pandas (0.5 s)
+        return pq.ParquetFile(part.path).read(columns=[column]).column(column).combine_chunks()
     except (OSError, pa.ArrowException) as exc:
         raise _unreadable(part, exc) from None
 
