@@ -132,9 +132,10 @@ class DeclaredRegions(Check):
 
 
 class DataRanges(Check):
-    """Runs where no regions are declared for the pair: the ranges the data covers."""
+    """Runs where no regions are declared for the pair: the ranges the data covers, reported
+    under the declared-region check's name (its stand-in)."""
 
-    name = "data_ranges"
+    name = "declared_regions"
 
     def applies(self, data, p):
         return not DeclaredRegions().applies(data, p)
