@@ -27,10 +27,12 @@ import pandas as pd
 import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
-if str(ROOT) not in sys.path:  # run from a checkout without installing
-    sys.path.insert(0, str(ROOT))
+HERE = Path(__file__).resolve().parent
+for _p in (ROOT, HERE):  # run from a checkout without installing; the demo's models beside this file
+    if str(_p) not in sys.path:
+        sys.path.insert(0, str(_p))
 
-from augsplit import models as M  # noqa: E402
+import models as M  # noqa: E402
 from augsplit import score as S  # noqa: E402
 from augsplit.errors import AugsplitError  # noqa: E402
 from augsplit.io import write_output  # noqa: E402

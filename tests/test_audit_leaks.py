@@ -8,7 +8,7 @@ import cv2
 import pytest
 
 from augsplit.audit import Thresholds, run_audit, apply_column_map
-from augsplit.audit.synthetic import AXES, make_dataset, plant
+from synthetic import AXES, make_dataset, plant
 from augsplit.errors import DatasetError
 from augsplit.space import Axis, Region, Space
 

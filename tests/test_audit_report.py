@@ -8,7 +8,7 @@ import pytest
 
 from augsplit.audit import Thresholds, run_audit, summary_table, write_reports
 from augsplit.audit.report import SCHEMA
-from augsplit.audit.synthetic import AXES, make_dataset, plant
+from synthetic import AXES, make_dataset, plant
 
 
 @pytest.fixture(scope="module")

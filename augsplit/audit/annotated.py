@@ -24,9 +24,8 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
                     ref_size: float | None = None, images_root=None, fmt: str = "auto",
                     exact_masks: bool = True, progress: bool = False) -> AuditResult:
     """`source`: the annotations; `splits`: the assignment (see formats.write.read_assignment)."""
-    from ..assign import OUTSIDE
     from ..formats.audit_input import audit_input
-    from ..formats.placement import DROPPED, EMPTY, MIXED, open_objects
+    from ..formats.placement import open_objects
     from ..formats.write import read_assignment
 
     objs = open_objects(source, fmt, images_root=images_root)
@@ -39,7 +38,33 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
         built = open_spec(spec_path, for_data=True)
     plan = built.plan if built is not None else None
     data = audit_input(objs, read_assignment(splits, objs), plan, ref_size)
-    labelled = list(dict.fromkeys(data.table["split"]))
+    wanted = _wanted_pairs(plan, pairs, list(dict.fromkeys(data.table["split"])), splits)
+    image_loader, notes = _image_loader(data.image_paths)
+
+    base = _thresholds(plan, thresholds)
+    results = []
+    for a, b in wanted:
+        claims = _claims(plan, a, b) if plan is not None else {}
+        declared = {a: plan.split(a).region, b: plan.split(b).region} if claims else None
+        results.append(run_audit(data.table, data.axes, pairs=[(a, b)], thresholds=dict(base, **claims),
+                                 image_loader=image_loader, mask_loader=data.mask_loader if exact_masks else None,
+                                 canvas_hw=data.canvas_hw, regions=declared, mask_rows=data.mask_rows,
+                                 progress=progress))
+    merged = _merge(results)
+    if image_loader is None:  # say why in the terminal too, in the user's terms
+        merged = dataclasses.replace(merged, skipped=tuple(
+            dataclasses.replace(k, reason=notes[0]) if k.name == "near_duplicates" else k for k in merged.skipped))
+    inputs = dict(merged.inputs, source=str(source), format=objs.kind, splits=str(splits),
+                  notes=list(merged.inputs.get("notes", [])) + list(data.notes) + notes)
+    return dataclasses.replace(merged, inputs=inputs)
+
+
+def _wanted_pairs(plan, pairs, labelled: list, splits) -> list:
+    """The pairs to audit: the spec's (or those named), else "train" against every other
+    labelled split; each split named must have images in the assignment."""
+    from ..assign import OUTSIDE
+    from ..formats.placement import DROPPED, EMPTY, MIXED
+
     present = [s for s in labelled if s not in ("none", "guard", OUTSIDE, DROPPED, MIXED, EMPTY)]
     if plan is not None:
         wanted = _pairs(plan, pairs)
@@ -55,24 +80,7 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
             if s not in labelled:
                 raise DatasetError(f"split {s!r} has no images in the assignment (it has {', '.join(present)})",
                                    where=f"pair {a}:{b}")
-    image_loader, notes = _image_loader(data.image_paths)
-
-    base = _thresholds(built.plan if built is not None else None, thresholds)
-    results = []
-    for a, b in wanted:
-        claims = _claims(built.plan, a, b) if built is not None else {}
-        declared = {a: plan.split(a).region, b: plan.split(b).region} if claims else None
-        results.append(run_audit(data.table, data.axes, pairs=[(a, b)], thresholds=dict(base, **claims),
-                                 image_loader=image_loader, mask_loader=data.mask_loader if exact_masks else None,
-                                 canvas_hw=data.canvas_hw, regions=declared, mask_rows=data.mask_rows,
-                                 progress=progress))
-    merged = _merge(results)
-    if image_loader is None:  # say why in the terminal too, in the user's terms
-        merged = dataclasses.replace(merged, skipped=tuple(
-            dataclasses.replace(k, reason=notes[0]) if k.name == "near_duplicates" else k for k in merged.skipped))
-    inputs = dict(merged.inputs, source=str(source), format=objs.kind, splits=str(splits),
-                  notes=list(merged.inputs.get("notes", [])) + list(data.notes) + notes)
-    return dataclasses.replace(merged, inputs=inputs)
+    return wanted
 
 
 def _image_loader(paths):

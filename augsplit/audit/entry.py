@@ -134,17 +134,32 @@ def _image_files_check(df: pd.DataFrame, broken: dict[int, str], worst_k: int = 
     return CheckResult("image_files", FAIL, {"n_unreadable": len(rows)}, worst, detail)
 
 
-def check_log_regions(log: pd.DataFrame, plan, ids=None, worst_k: int = 20) -> CheckResult:
-    """Every logged draw lies in the region of the split it says it came from, and no draw of a
-    training split lies in a held-out (test) region."""
-    space = plan.space
+def _log_points(log: pd.DataFrame, space) -> dict:
+    """The log's draws as points of the spec's space (class from class_index, else 0)."""
     names = [n for n in space.names if n != CLASS]
     missing = [n for n in names if n not in log.columns]
     if missing:
         raise DatasetError(f"the log has no column {missing[0]!r} (an axis of the spec)", where=f"axes.{missing[0]}")
-    cls = log["class_index"].to_numpy(float) if "class_index" in log else np.zeros(len(log))
     pts = {n: pd.to_numeric(log[n], errors="coerce").to_numpy(float) for n in names}
-    pts[CLASS] = cls
+    pts[CLASS] = log["class_index"].to_numpy(float) if "class_index" in log else np.zeros(len(log))
+    return pts
+
+
+def _mark_intrusions(train, tests, sub: dict, idx: np.ndarray, intrude: np.ndarray, where_to: np.ndarray) -> None:
+    """Training draws (`sub`, table rows `idx`) inside a held-out region: marked in `intrude`,
+    the region's split named in `where_to`."""
+    for t in tests:
+        if (t.region & train.region).mass() > 0:
+            continue  # an i.i.d. split shares the training region by design
+        hit = t.region.contains(sub) & ~train.region.contains(sub)
+        intrude[idx[hit]] = True
+        where_to[idx[hit]] = t.name
+
+
+def check_log_regions(log: pd.DataFrame, plan, ids=None, worst_k: int = 20) -> CheckResult:
+    """Every logged draw lies in the region of the split it says it came from, and no draw of a
+    training split lies in a held-out (test) region."""
+    pts = _log_points(log, plan.space)
     split = log["split"].astype(str).to_numpy()
     ids = np.arange(len(log)) if ids is None else np.asarray(ids)
     outside = np.zeros(len(log), bool)
@@ -158,13 +173,7 @@ def check_log_regions(log: pd.DataFrame, plan, ids=None, worst_k: int = 20) -> C
         sub = {k: v[rows] for k, v in pts.items()}
         outside[rows] = ~s.region.contains(sub)
         if s.role == "train":
-            for t in tests:
-                if (t.region & s.region).mass() > 0:
-                    continue  # an i.i.d. split shares the training region by design
-                hit = t.region.contains(sub) & ~s.region.contains(sub)
-                idx = np.flatnonzero(rows)[hit]
-                intrude[idx] = True
-                where_to[idx] = t.name
+            _mark_intrusions(s, tests, sub, np.flatnonzero(rows), intrude, where_to)
     unknown = sorted(set(split) - {s.name for s in plan.splits})
     n_bad = int(outside.sum() + intrude.sum())
     worst = pd.DataFrame({"row": ids[outside | intrude], "split": split[outside | intrude],

@@ -61,55 +61,69 @@ def axis_scales(axes: dict, data: pd.DataFrame | None = None) -> tuple[list[Axis
     """
     scales, notes = [], []
     for name, spec in axes.items():
-        where = f"axes.{name}"
         if isinstance(spec, AxisScale):
-            scales.append(spec); continue
-        if isinstance(spec, Axis):
-            if spec.measure == LOG:
-                scales.append(AxisScale(name, spec.lo, spec.hi, False, True))
-            elif spec.measure == LEVELS:
-                # the table holds level values, so the range is that of the values
-                lv = [float(v) for v in spec.levels] or [0.0]
-                lo_v, hi_v = min(lv), max(lv)
-                scales.append(AxisScale(name, lo_v, hi_v if hi_v > lo_v else lo_v + 1.0, False))
-            else:
-                scales.append(AxisScale(name, float(spec.lo), float(spec.hi), spec.circular))
-            continue
-        try:
-            items = tuple(spec)
-        except TypeError:
-            raise DatasetError(f"expected (lo, hi, periodic), got {spec!r}", where=where) from None
-        if len(items) not in (3, 4):
-            raise DatasetError(f"expected (lo, hi, periodic[, 'log']), got {spec!r}", where=where)
-        lo, hi, periodic = items[:3]
-        log = len(items) == 4 and items[3] == "log"
-        if len(items) == 4 and items[3] not in ("log", "linear", None):
-            raise DatasetError(f"4th item must be 'log' or 'linear', got {items[3]!r}", where=where)
-        periodic = bool(periodic)
-        if lo is None or hi is None:
-            if periodic:
-                raise DatasetError("circular axis has no period: give its range (lo, hi), e.g. (0, 360)", where=where)
-            if data is None or name not in data:
-                raise DatasetError("no range given and no data to take it from", where=where)
-            v = pd.to_numeric(data[name], errors="coerce").to_numpy(float)
-            v = v[np.isfinite(v)]
-            if len(v) == 0:
-                raise DatasetError("no range given and no finite values to take it from", where=where)
-            lo = float(v.min()) if lo is None else lo
-            hi = float(v.max()) if hi is None else hi
-            if hi <= lo:
-                hi = lo + 1.0  # a constant column: any positive span gives distance 0 on it
-            notes.append(f"{name}: range [{lo:g}, {hi:g}] taken from the data")
-        try:
-            lo, hi = float(lo), float(hi)
-        except (TypeError, ValueError):
-            raise DatasetError(f"range bounds must be numbers, got ({lo!r}, {hi!r})", where=where) from None
-        if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
-            raise DatasetError(f"range [{lo:g}, {hi:g}] is empty or not finite", where=where)
-        if log and lo <= 0:
-            raise DatasetError(f"log axis needs a positive range, got [{lo:g}, {hi:g}]", where=where)
-        scales.append(AxisScale(name, lo, hi, periodic, log))
+            scales.append(spec)
+        elif isinstance(spec, Axis):
+            scales.append(_scale_of_axis(name, spec))
+        else:
+            scales.append(_scale_of_tuple(name, spec, data, notes))
     return scales, notes
+
+
+def _scale_of_axis(name: str, spec: Axis) -> AxisScale:
+    if spec.measure == LOG:
+        return AxisScale(name, spec.lo, spec.hi, False, True)
+    if spec.measure == LEVELS:
+        # the table holds level values, so the range is that of the values
+        lv = [float(v) for v in spec.levels] or [0.0]
+        lo_v, hi_v = min(lv), max(lv)
+        return AxisScale(name, lo_v, hi_v if hi_v > lo_v else lo_v + 1.0, False)
+    return AxisScale(name, float(spec.lo), float(spec.hi), spec.circular)
+
+
+def _scale_of_tuple(name: str, spec, data: pd.DataFrame | None, notes: list) -> AxisScale:
+    """(lo, hi, periodic[, "log" | "linear"]); a missing bound of a non-periodic axis is taken
+    from the data (noted in `notes`)."""
+    where = f"axes.{name}"
+    try:
+        items = tuple(spec)
+    except TypeError:
+        raise DatasetError(f"expected (lo, hi, periodic), got {spec!r}", where=where) from None
+    if len(items) not in (3, 4):
+        raise DatasetError(f"expected (lo, hi, periodic[, 'log']), got {spec!r}", where=where)
+    lo, hi, periodic = items[:3]
+    log = len(items) == 4 and items[3] == "log"
+    if len(items) == 4 and items[3] not in ("log", "linear", None):
+        raise DatasetError(f"4th item must be 'log' or 'linear', got {items[3]!r}", where=where)
+    periodic = bool(periodic)
+    if lo is None or hi is None:
+        lo, hi = _range_from_data(name, lo, hi, periodic, data, where)
+        notes.append(f"{name}: range [{lo:g}, {hi:g}] taken from the data")
+    try:
+        lo, hi = float(lo), float(hi)
+    except (TypeError, ValueError):
+        raise DatasetError(f"range bounds must be numbers, got ({lo!r}, {hi!r})", where=where) from None
+    if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
+        raise DatasetError(f"range [{lo:g}, {hi:g}] is empty or not finite", where=where)
+    if log and lo <= 0:
+        raise DatasetError(f"log axis needs a positive range, got [{lo:g}, {hi:g}]", where=where)
+    return AxisScale(name, lo, hi, periodic, log)
+
+
+def _range_from_data(name: str, lo, hi, periodic: bool, data: pd.DataFrame | None, where: str):
+    if periodic:
+        raise DatasetError("circular axis has no period: give its range (lo, hi), e.g. (0, 360)", where=where)
+    if data is None or name not in data:
+        raise DatasetError("no range given and no data to take it from", where=where)
+    v = pd.to_numeric(data[name], errors="coerce").to_numpy(float)
+    v = v[np.isfinite(v)]
+    if len(v) == 0:
+        raise DatasetError("no range given and no finite values to take it from", where=where)
+    lo = float(v.min()) if lo is None else lo
+    hi = float(v.max()) if hi is None else hi
+    if hi <= lo:
+        hi = lo + 1.0  # a constant column: any positive span gives distance 0 on it
+    return lo, hi
 
 
 # ---- table sources -----------------------------------------------------------------------

@@ -265,41 +265,30 @@ def check_near_duplicates(
     test_ids = np.arange(n_test) if test_ids is None else np.asarray(test_ids)
     index = HashIndex.build(train_hash, radius)
     dist, near = index.nearest_within(test_hash)
-    exact_src = np.full(n_test, -1, np.int64)
-    if train_sha is not None and test_sha is not None and len(train_hash):
-        tsha = np.asarray(train_sha, dtype=object)
-        uniq, first = np.unique(tsha.astype(str), return_index=True)
-        pos = pd.Index(uniq).get_indexer(np.asarray(test_sha, dtype=object).astype(str))
-        exact_src[pos >= 0] = first[pos[pos >= 0]]
+    exact_src = _exact_sources(train_sha, test_sha, n_test, len(train_hash))
     exact = exact_src >= 0
     near_dup = dist >= 0
-    n_near, n_exact = int(near_dup.sum()), int(exact.sum())
+    n_near = int(near_dup.sum())
     hist = np.bincount(dist[near_dup], minlength=radius + 1)[: radius + 1] if n_near else np.zeros(radius + 1, int)
 
     ct, cr = _candidates(near, exact_src, extra_pairs)
-    verdicts = judge(ct, cr) if judge is not None and len(ct) else None
-    leak = np.ones(len(ct), bool) if verdicts is None else np.asarray(verdicts["leak"], bool)
-    ambiguous = np.zeros(len(ct), bool) if verdicts is None else np.asarray(verdicts.get("ambiguous", np.zeros(len(ct), bool)), bool)
-    method = "radius" if judge is None else getattr(judge, "method", "judge")
+    verdicts, leak, ambiguous = _judged(judge, ct, cr)
     pair_exact = exact_src[ct] == cr if len(ct) else np.zeros(0, bool)
-    is_leak_t = np.zeros(n_test, bool); np.logical_or.at(is_leak_t, ct, leak)
-    leak_exact = np.zeros(n_test, bool); np.logical_or.at(leak_exact, ct, leak & pair_exact)
-    amb_t = np.zeros(n_test, bool); np.logical_or.at(amb_t, ct, ambiguous & ~leak)
+    is_leak_t, leak_exact, amb_t = (_any_per_test(n_test, ct, m) for m in (leak, leak & pair_exact, ambiguous & ~leak))
     design_exact = exact & ~is_leak_t & ~amb_t
     candidate_t = np.zeros(n_test, bool); candidate_t[ct] = True
     n_leak = int(is_leak_t.sum())
-    n_look = int((candidate_t & ~is_leak_t & ~amb_t).sum())
     numbers = {
-        "method": method,
+        "method": "radius" if judge is None else getattr(judge, "method", "judge"),
         "n_test": int(n_test),
         "n_train": int(len(train_hash)),
         "radius_bits": int(radius),
         "n_near_duplicates": n_near,
         "fraction_near_duplicates": n_near / n_test if n_test else 0.0,
-        "n_exact_duplicates": n_exact,
+        "n_exact_duplicates": int(exact.sum()),
         "n_candidates": int(len(ct)),
         "n_leaks": n_leak,
-        "n_lookalikes": n_look,
+        "n_lookalikes": int((candidate_t & ~is_leak_t & ~amb_t).sum()),
         "n_identical_by_design": int(design_exact.sum()),
         "n_ambiguous": int((amb_t & ~is_leak_t).sum()),
         "min_distance_bits": int(dist[near_dup].min()) if n_near else None,
@@ -308,12 +297,18 @@ def check_near_duplicates(
         **(getattr(judge, "numbers", None) or {}),
     }
     if test_class is not None and n_test:
-        cls = pd.Series(np.asarray(test_class)).astype(str)
-        numbers["per_class"] = {
-            str(k): {"n_test": int(len(g)), "n_near_duplicates": int(near_dup[g.index].sum()),
-                     "n_exact_duplicates": int(exact[g.index].sum()), "n_leaks": int(is_leak_t[g.index].sum())}
-            for k, g in cls.groupby(cls, sort=True)
-        }
+        numbers["per_class"] = _per_class(test_class, near_dup, exact, is_leak_t)
+    frame = _pair_frame(ct, cr, test_ids, train_ids, test_hash, train_hash, pair_exact, leak, verdicts)
+    worst = _most_telling(frame, worst_k)
+    n_leak_exact = int(leak_exact.sum())
+    verdict = _verdict(n_leak_exact, n_leak, near_fails, bool(design_exact.any() or amb_t.any()))
+    detail = _detail(numbers, n_leak, n_leak_exact, worst, radius)
+    return CheckResult("near_duplicates", verdict, numbers, worst, detail, pair,
+                       arrays={"distance_histogram": hist})
+
+
+def _pair_frame(ct, cr, test_ids, train_ids, test_hash, train_hash, pair_exact, leak, verdicts) -> pd.DataFrame:
+    """Every candidate pair with its hash distance, verdict and the judge's evidence."""
     frame = pd.DataFrame({
         "test_row": ct,
         "test_id": test_ids[ct] if len(ct) else np.zeros(0, object),
@@ -326,24 +321,65 @@ def check_near_duplicates(
     for k, v in (verdicts or {}).items():
         if k not in ("leak", "ambiguous") and len(np.asarray(v)) == len(ct):
             frame[k] = np.asarray(v)
-    # one row per test image, its most telling pair: a leak before a look-alike, pixel-identical
-    # first, then the closest by the judge's evidence (the likely source), then by hash
+    return frame
+
+
+def _verdict(n_leak_exact: int, n_leak: int, near_fails: bool, warn_anyway: bool) -> str:
+    """A pixel-identical leak fails; another leak fails unless near_fails is off (then warns);
+    pixel-identical images by design and ambiguous pairs warn."""
+    if n_leak_exact or (n_leak and near_fails):
+        return FAIL
+    if n_leak or warn_anyway:
+        return WARN
+    return PASS
+
+
+def _exact_sources(train_sha, test_sha, n_test: int, n_train: int) -> np.ndarray:
+    """Per test image, the first train position with the same content hash (-1: none)."""
+    exact_src = np.full(n_test, -1, np.int64)
+    if train_sha is not None and test_sha is not None and n_train:
+        tsha = np.asarray(train_sha, dtype=object)
+        uniq, first = np.unique(tsha.astype(str), return_index=True)
+        pos = pd.Index(uniq).get_indexer(np.asarray(test_sha, dtype=object).astype(str))
+        exact_src[pos >= 0] = first[pos[pos >= 0]]
+    return exact_src
+
+
+def _judged(judge, ct: np.ndarray, cr: np.ndarray):
+    """The judge's verdicts on the candidate pairs (None without one), and its leak and
+    ambiguous masks (every candidate a leak without a judge)."""
+    verdicts = judge(ct, cr) if judge is not None and len(ct) else None
+    if verdicts is None:
+        return None, np.ones(len(ct), bool), np.zeros(len(ct), bool)
+    return (verdicts, np.asarray(verdicts["leak"], bool),
+            np.asarray(verdicts.get("ambiguous", np.zeros(len(ct), bool)), bool))
+
+
+def _any_per_test(n_test: int, ct: np.ndarray, flags: np.ndarray) -> np.ndarray:
+    out = np.zeros(n_test, bool)
+    np.logical_or.at(out, ct, flags)
+    return out
+
+
+def _per_class(test_class, near_dup: np.ndarray, exact: np.ndarray, is_leak: np.ndarray) -> dict:
+    cls = pd.Series(np.asarray(test_class)).astype(str)
+    return {
+        str(k): {"n_test": int(len(g)), "n_near_duplicates": int(near_dup[g.index].sum()),
+                 "n_exact_duplicates": int(exact[g.index].sum()), "n_leaks": int(is_leak[g.index].sum())}
+        for k, g in cls.groupby(cls, sort=True)
+    }
+
+
+def _most_telling(frame: pd.DataFrame, worst_k: int) -> pd.DataFrame:
+    """One row per test image, its most telling pair: a leak before a look-alike,
+    pixel-identical first, then the closest by the judge's evidence (the likely source), then
+    by hash; the worst_k of them."""
     evidence = next((c for c in ("cross", "delta") if c in frame), None)
     keys = ["leak", "exact_copy"] + ([evidence] if evidence else []) + ["hamming"]
     frame = frame.sort_values(keys, ascending=[False, False] + ([True] if evidence else []) + [True],
                               kind="stable", na_position="last").drop_duplicates("test_row")
     frame["rank"] = np.where(frame["leak"], np.where(frame["exact_copy"], -2, -1), frame["hamming"])
-    worst = top_rows(frame, "rank", worst_k, ascending=True).drop(columns="rank")
-    n_leak_exact = int(leak_exact.sum())
-    if n_leak_exact or (n_leak and near_fails):
-        verdict = FAIL
-    elif n_leak or design_exact.any() or amb_t.any():
-        verdict = WARN
-    else:
-        verdict = PASS
-    detail = _detail(numbers, n_leak, n_leak_exact, worst, radius)
-    return CheckResult("near_duplicates", verdict, numbers, worst, detail, pair,
-                       arrays={"distance_histogram": hist})
+    return top_rows(frame, "rank", worst_k, ascending=True).drop(columns="rank")
 
 
 def _detail(nb: dict, n_leak: int, n_leak_exact: int, worst: pd.DataFrame, radius: int) -> str:

@@ -108,6 +108,31 @@ def _summary(d: np.ndarray) -> dict:
             "median": float(q[2]), "mean": float(finite.mean())}
 
 
+def _per_class(test_class, d_same: np.ndarray, margin: float | None) -> dict:
+    cls = pd.Series(np.asarray(test_class)).astype(str)
+    per = {}
+    for k, g in cls.groupby(cls, sort=True):
+        ix = g.index.to_numpy()
+        entry = _summary(d_same[ix])
+        if margin is not None:
+            entry["n_below_margin"] = int((d_same[ix] < margin).sum())
+        per[str(k)] = entry
+    return per
+
+
+def _verdict(n_bad: int, margin: float | None, by_class: bool, d_min) -> tuple[str, str]:
+    """With a margin: fail when a test row is closer. Without one: warn when a test row
+    repeats a train row's parameters exactly."""
+    if margin is not None:
+        if n_bad:
+            return FAIL, (f"{n_bad} test rows closer than the margin {margin:g} to a train row"
+                          + (" of their class" if by_class else ""))
+        return PASS, f"every test row is at least {margin:g} from the train rows (min {d_min:.4g})"
+    if n_bad:
+        return WARN, f"{n_bad} test rows repeat a train row's parameters exactly (no margin declared)"
+    return PASS, f"no margin declared; nearest distance {d_min if d_min is not None else float('nan'):.4g}"
+
+
 def check_proximity(
     train: np.ndarray,
     test: np.ndarray,
@@ -155,15 +180,7 @@ def check_proximity(
         below = d_same <= 1e-12
         numbers["n_identical_parameters"] = int(below.sum())
     if by_class:
-        cls = pd.Series(np.asarray(test_class)).astype(str)
-        per = {}
-        for k, g in cls.groupby(cls, sort=True):
-            ix = g.index.to_numpy()
-            entry = _summary(d_same[ix])
-            if margin is not None:
-                entry["n_below_margin"] = int((d_same[ix] < margin).sum())
-            per[str(k)] = entry
-        numbers["per_class"] = per
+        numbers["per_class"] = _per_class(test_class, d_same, margin)
     frame = pd.DataFrame({
         "test_row": np.arange(n_test), "test_id": test_ids, "distance": d_same,
         "train_row": i_same,
@@ -175,15 +192,6 @@ def check_proximity(
     finite = d_same[np.isfinite(d_same)]
     hi = max(float(finite.max()) if len(finite) else 1.0, 1e-9)
     hist, edges = np.histogram(finite, bins=bins, range=(0.0, hi))
-    n_bad = int(below.sum())
-    if margin is not None:
-        verdict = FAIL if n_bad else PASS
-        detail = (f"{n_bad} test rows closer than the margin {margin:g} to a train row"
-                  + (" of their class" if by_class else "")
-                  if n_bad else f"every test row is at least {margin:g} from the train rows (min {numbers['distance']['min']:.4g})")
-    else:
-        verdict = WARN if n_bad else PASS
-        detail = (f"{n_bad} test rows repeat a train row's parameters exactly (no margin declared)"
-                  if n_bad else f"no margin declared; nearest distance {numbers['distance']['min'] if numbers['distance']['min'] is not None else float('nan'):.4g}")
+    verdict, detail = _verdict(int(below.sum()), margin, by_class, numbers["distance"]["min"])
     return CheckResult("parameter_proximity", verdict, numbers, worst, detail, pair,
                        arrays={"distance_hist": hist, "distance_edges": edges, "margin": margin})

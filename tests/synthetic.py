@@ -1,4 +1,4 @@
-"""Small synthetic datasets for audit tests, demos and benchmarks: polygon tiles of a few
+"""Small synthetic datasets for the audit tests: polygon tiles of a few
 classes on noisy backgrounds, split by position, with leaks that can be planted on purpose.
 
 A camera looks down on a conveyor: training footage shows cut tiles in the left lane only,
@@ -13,7 +13,7 @@ import cv2
 import numpy as np
 import pandas as pd
 
-from .phash import content_hash
+from augsplit.audit.phash import content_hash
 
 # Unit outlines of the tile classes (vertices about the centre, radius <= 1).
 SHAPES = {
