@@ -197,7 +197,6 @@ def _named_option(exc: AugsplitError, thresholds: dict, from_option: dict) -> Au
 
 
 def _cmd_audit(a) -> int:
-    from .audit.entry import audit_dataset, audit_table, is_dataset
     from .audit.report import summary_table, write_reports
     from .audit.run import Thresholds
     from .io import check_folder_target, is_stdout
@@ -210,6 +209,20 @@ def _cmd_audit(a) -> int:
         Thresholds.from_dict(thresholds)
     except AugsplitError as exc:
         raise _named_option(exc, thresholds, {}) from None
+    column_map, from_option = _audit_column_map(a)
+    try:
+        result, out = _audit_input(a, thresholds, column_map, progress=not a.quiet and sys.stderr.isatty())
+    except AugsplitError as exc:
+        raise _named_option(exc, thresholds, from_option) from None
+    paths = write_reports(result, out)
+    if not is_stdout(out):  # with '-', stdout carries only audit.json
+        print(summary_table(result))
+        print(f"wrote {paths['json']} and {paths['html']}")
+    return result.exit_code
+
+
+def _audit_column_map(a) -> tuple[dict, dict]:
+    """The audit's column map (--map, then --column-map's file) and, per key, the option it came from."""
     column_map = dict(a.map or [])
     from_option = {k: "--map" for k in column_map}
     if a.column_map:
@@ -220,33 +233,31 @@ def _cmd_audit(a) -> int:
             raise AugsplitError("a column map is a mapping of augsplit names to table columns", where=a.column_map)
         column_map.update({str(k): str(v) for k, v in loaded.items()})
         from_option.update({str(k): f"--column-map {a.column_map}:" for k in loaded})
-    progress = not a.quiet and sys.stderr.isatty()
-    try:
-        if a.splits is not None or _annotated(a.input):
-            from .audit.annotated import audit_annotated
+    return column_map, from_option
 
-            if a.splits is None:
-                raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
-                                    "per-split files, or a table with a split column)", where=str(a.input))
-            result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
-                                     ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
-                                     progress=progress)
-            out = a.out or Path("audit")
-        elif is_dataset(a.input) and a.spec is None and not column_map:
-            result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
-                                   progress=progress)
-            out = a.out or Path(a.input) / "audit"
-        else:
-            result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
-                                 column_map=column_map or None, thresholds=thresholds, progress=progress)
-            out = a.out or Path("audit")
-    except AugsplitError as exc:
-        raise _named_option(exc, thresholds, from_option) from None
-    paths = write_reports(result, out)
-    if not is_stdout(out):  # with '-', stdout carries only audit.json
-        print(summary_table(result))
-        print(f"wrote {paths['json']} and {paths['html']}")
-    return result.exit_code
+
+def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
+    """Audit the input by its kind (annotations with a split assignment, an augsplit dataset, or
+    a table); the result and the report folder."""
+    from .audit.entry import audit_dataset, audit_table, is_dataset
+
+    if a.splits is not None or _annotated(a.input):
+        from .audit.annotated import audit_annotated
+
+        if a.splits is None:
+            raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
+                                "per-split files, or a table with a split column)", where=str(a.input))
+        result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
+                                 ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
+                                 progress=progress)
+        return result, a.out or Path("audit")
+    if is_dataset(a.input) and a.spec is None and not column_map:
+        result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
+                               progress=progress)
+        return result, a.out or Path(a.input) / "audit"
+    result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
+                         column_map=column_map or None, thresholds=thresholds, progress=progress)
+    return result, a.out or Path("audit")
 
 
 def _annotated(path) -> bool:

@@ -362,33 +362,46 @@ def _key_lines(root, file: str) -> dict[str, int]:
         node, path = stack.pop()
         if isinstance(node, yaml.SequenceNode):
             for i, c in enumerate(node.value):
-                lines.setdefault(f"{path}.{i}" if path else str(i), c.start_mark.line + 1)
-                stack.append((c, f"{path}.{i}" if path else str(i)))
+                lines.setdefault(_joined(path, str(i)), c.start_mark.line + 1)
+                stack.append((c, _joined(path, str(i))))
         elif isinstance(node, yaml.MappingNode):
-            first: dict[tuple[str, Any], int] = {}
-            merged = []
-            for k, v in node.value:
-                if k.tag == _MERGE:
-                    merged += v.value if isinstance(v, yaml.SequenceNode) else [v]
-                    continue
-                ident = (k.tag, k.value if isinstance(k, yaml.ScalarNode) else id(k))
-                line = k.start_mark.line + 1
-                key = shown(k.value) if isinstance(k, yaml.ScalarNode) else "?"
-                p = f"{path}.{key}" if path else key
-                if ident in first:
-                    raise SpecError(f"duplicate key '{key}' (first given at line {first[ident]}); a second key "
-                                    "would silently replace the first", where=f"{file}:{line}: {p}")
-                first[ident] = line
-                lines[p] = line
-                stack.append((v, p))
-            for m in merged:  # lower precedence: only keys not given explicitly
-                if isinstance(m, yaml.MappingNode):
-                    for k, v in m.value:
-                        if isinstance(k, yaml.ScalarNode) and k.tag != _MERGE and (k.tag, k.value) not in first:
-                            p = f"{path}.{shown(k.value)}" if path else shown(k.value)
-                            lines.setdefault(p, k.start_mark.line + 1)
-                            stack.append((v, p))
+            stack += _mapping_lines(node, path, file, lines)
     return lines
+
+
+def _joined(path: str, key: str) -> str:
+    return f"{path}.{key}" if path else key
+
+
+def _mapping_lines(node, path: str, file: str, lines: dict[str, int]) -> list[tuple[Any, str]]:
+    """Record the lines of one mapping's keys (explicit ones, then merged ones they do not
+    override); its values with their key paths, to visit next."""
+    first: dict[tuple[str, Any], int] = {}
+    merged = []
+    children = []
+    for k, v in node.value:
+        if k.tag == _MERGE:
+            merged += v.value if isinstance(v, yaml.SequenceNode) else [v]
+            continue
+        ident = (k.tag, k.value if isinstance(k, yaml.ScalarNode) else id(k))
+        line = k.start_mark.line + 1
+        key = shown(k.value) if isinstance(k, yaml.ScalarNode) else "?"
+        p = _joined(path, key)
+        if ident in first:
+            raise SpecError(f"duplicate key '{key}' (first given at line {first[ident]}); a second key "
+                            "would silently replace the first", where=f"{file}:{line}: {p}")
+        first[ident] = line
+        lines[p] = line
+        children.append((v, p))
+    for m in merged:  # lower precedence: only keys not given explicitly
+        if not isinstance(m, yaml.MappingNode):
+            continue
+        for k, v in m.value:
+            if isinstance(k, yaml.ScalarNode) and k.tag != _MERGE and (k.tag, k.value) not in first:
+                p = _joined(path, shown(k.value))
+                lines.setdefault(p, k.start_mark.line + 1)
+                children.append((v, p))
+    return children
 
 
 @dataclass(frozen=True)

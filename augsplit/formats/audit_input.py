@@ -51,9 +51,6 @@ def frame_size(objs: Objects, plan=None) -> tuple[int, int]:
 
 def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = None) -> AuditInput:
     """`image_split`: the split of each image of `objs.images`, in order."""
-    from ..assign import class_column, depends_on_class, derive_parameters
-    from .placement import canvas_table
-
     o = objs.objects
     split_of = dict(zip(objs.images["image_id"], np.asarray(image_split, dtype=object)))
     hw = frame_size(objs, plan)
@@ -65,39 +62,64 @@ def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = 
                           "image_id": o["image_id"].astype(str).to_numpy(), "class_name": o["label"].astype(str).to_numpy(),
                           "bbox_x0": box[:, 0], "bbox_y0": box[:, 1], "bbox_x1": box[:, 2], "bbox_y1": box[:, 3],
                           "width": hw[1], "height": hw[0]})
-    notes = []
+    notes: list[str] = []
     if plan is not None:
-        frame = canvas_table(objs, plan, objs.raw if isinstance(objs.raw, pd.DataFrame) else None)
-        params = derive_parameters(frame, plan, ref_size, str(objs.path))
-        given = [n for n in params.columns if n in POSITION_AXES or n in frame.columns or (n == "scale" and ref_size)]
-        for n in params.columns:
-            table[n] = params[n].to_numpy()
-        cls = class_column(frame, plan, str(objs.path)) if any(depends_on_class(s.region) for s in plan.splits) else None
-        table["class_index"] = cls if cls is not None else 0.0
-        axes = {n: plan.space[n] for n in given}
-        skipped = [n for n in params.columns if n not in given]
-        if skipped:
-            notes.append(f"axes the data does not give are not audited: {', '.join(skipped)}")
+        axes = _spec_parameters(table, objs, plan, ref_size, notes)
     else:
-        w, h = o["width"].to_numpy(float), o["height"].to_numpy(float)
-        table["x"] = ((o["bbox_x0"] + o["bbox_x1"]) / 2.0 / w).to_numpy()
-        table["y"] = ((o["bbox_y0"] + o["bbox_y1"]) / 2.0 / h).to_numpy()
-        table["size"] = np.sqrt((o["bbox_x1"] - o["bbox_x0"]) * (o["bbox_y1"] - o["bbox_y0"]) / (w * h)).to_numpy()
-        axes = {"x": (0.0, 1.0, False), "y": (0.0, 1.0, False), "size": (None, None, False, "log")}
-        notes.append("no spec: positions as fractions of the image, size as sqrt(box area / image area)")
+        axes = _box_parameters(table, o, notes)
     segs = o["segmentation"].to_numpy(object)
     mask_rows = np.flatnonzero([s is not None and not (isinstance(s, float) and np.isnan(s)) for s in segs])
+    paths = np.array([image_path(objs.root, f, str(objs.path)) if f else None for f in o["file"].fillna("").astype(str)],
+                     dtype=object)
+    return AuditInput(table, axes, hw, _MaskLoader(objs, segs, box, sx, sy, hw), mask_rows, paths, tuple(notes))
 
-    def mask_loader(i: int):
-        seg = segs[int(i)]
+
+def _spec_parameters(table: pd.DataFrame, objs: Objects, plan, ref_size, notes: list[str]) -> dict:
+    """Add the spec's parameters the data gives (and the class index) to `table`; their axes."""
+    from ..assign import class_column, depends_on_class, derive_parameters
+    from .placement import canvas_table
+
+    frame = canvas_table(objs, plan, objs.raw if isinstance(objs.raw, pd.DataFrame) else None)
+    params = derive_parameters(frame, plan, ref_size, str(objs.path))
+    given = [n for n in params.columns if n in POSITION_AXES or n in frame.columns or (n == "scale" and ref_size)]
+    for n in params.columns:
+        table[n] = params[n].to_numpy()
+    cls = class_column(frame, plan, str(objs.path)) if any(depends_on_class(s.region) for s in plan.splits) else None
+    table["class_index"] = cls if cls is not None else 0.0
+    skipped = [n for n in params.columns if n not in given]
+    if skipped:
+        notes.append(f"axes the data does not give are not audited: {', '.join(skipped)}")
+    return {n: plan.space[n] for n in given}
+
+
+def _box_parameters(table: pd.DataFrame, o: pd.DataFrame, notes: list[str]) -> dict:
+    """Without a spec: the box centre as fractions of the image and its relative size."""
+    w, h = o["width"].to_numpy(float), o["height"].to_numpy(float)
+    table["x"] = ((o["bbox_x0"] + o["bbox_x1"]) / 2.0 / w).to_numpy()
+    table["y"] = ((o["bbox_y0"] + o["bbox_y1"]) / 2.0 / h).to_numpy()
+    table["size"] = np.sqrt((o["bbox_x1"] - o["bbox_x0"]) * (o["bbox_y1"] - o["bbox_y0"]) / (w * h)).to_numpy()
+    notes.append("no spec: positions as fractions of the image, size as sqrt(box area / image area)")
+    return {"x": (0.0, 1.0, False), "y": (0.0, 1.0, False), "size": (None, None, False, "log")}
+
+
+class _MaskLoader:
+    """Row -> its object's mask inside its frame box (None for a box-only object)."""
+
+    def __init__(self, objs: Objects, segs, box, sx, sy, hw):
+        self.objs, self.segs, self.box, self.sx, self.sy, self.hw = objs, segs, box, sx, sy, hw
+
+    def __call__(self, i: int):
+        o = self.objs.objects
+        seg = self.segs[int(i)]
         if seg is None:
             return None
-        x0, y0, x1, y1 = (int(v) for v in box[int(i)])
-        where = f"{objs.path} object {o['object_id'].iat[int(i)]}"
+        x0, y0, x1, y1 = (int(v) for v in self.box[int(i)])
+        where = f"{self.objs.path} object {o['object_id'].iat[int(i)]}"
         if isinstance(seg, list):
-            return polygons_mask(seg, y1 - y0, x1 - x0, where, (sx[int(i)], sy[int(i)]), (x0, y0))
+            return polygons_mask(seg, y1 - y0, x1 - x0, where, (self.sx[int(i)], self.sy[int(i)]), (x0, y0))
         import cv2
 
+        hw = self.hw
         full = segmentation_mask(seg, int(o["height"].iat[int(i)]), int(o["width"].iat[int(i)]), where)
         full = cv2.resize(full.astype(np.uint8), (hw[1], hw[0]), interpolation=cv2.INTER_NEAREST)
         out = np.zeros((y1 - y0, x1 - x0), bool)
@@ -105,7 +127,3 @@ def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = 
         part = full[cy0:max(y1, 0), cx0:max(x1, 0)] > 0
         out[cy0 - y0: cy0 - y0 + part.shape[0], cx0 - x0: cx0 - x0 + part.shape[1]] = part
         return out
-
-    paths = np.array([image_path(objs.root, f, str(objs.path)) if f else None for f in o["file"].fillna("").astype(str)],
-                     dtype=object)
-    return AuditInput(table, axes, hw, mask_loader, mask_rows, paths, tuple(notes))

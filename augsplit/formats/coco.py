@@ -19,6 +19,27 @@ def read_coco(path: str | Path, images_root: str | Path | None = None) -> Object
     """Read a COCO JSON file. Image files resolve against `images_root` (default: its folder)."""
     p = Path(path)
     where = str(p)
+    data = _load(p, where)
+    cats = _categories(data, where)
+    root = Path(images_root) if images_root is not None else p.parent
+    img = _image_table(data, root, where)
+    by_id = {iid: i for i, iid in enumerate(img["image_id"])}
+    cols, raw_box = _annotation_columns(data, by_id, cats, where)
+    n = len(raw_box)
+    b = np.asarray(raw_box, dtype=float).reshape(n, 4)
+    x0, y0, x1, y1 = to_xyxy(b[:, 0], b[:, 1], b[:, 2], b[:, 3], "xywh")
+    rows = dict(cols, bbox_x0=x0, bbox_y0=y0, bbox_x1=x1, bbox_y1=y1)
+    pos = np.array([by_id[i] for i in cols["image_id"]], dtype=np.int64)
+    for c in ("file", "width", "height"):
+        rows[c] = img[c].to_numpy()[pos] if n else []
+    objects = object_frame(rows, n)
+    _boxes_from_masks(objects, where)
+    check_boxes(objects, where)
+    return Objects(objects, img, "coco", p, root, data)
+
+
+def _load(p: Path, where: str) -> dict:
+    """The file's JSON object, refused unless it has 'images' and 'annotations' lists."""
     if not p.is_file():
         raise DatasetError("no such file" if not p.exists() else "not a file", where=where)
     if p.stat().st_size > MAX_BYTES:
@@ -29,23 +50,36 @@ def read_coco(path: str | Path, images_root: str | Path | None = None) -> Object
         raise DatasetError(f"not valid JSON: {exc}", where=where) from None
     if not isinstance(data, dict) or not isinstance(data.get("images"), list) or not isinstance(data.get("annotations"), list):
         raise DatasetError("a COCO file is an object with 'images' and 'annotations' lists", where=where)
+    return data
+
+
+def _categories(data: dict, where: str) -> dict:
+    """Category id -> name."""
     cats = {}
     for k, c in enumerate(data.get("categories") or []):
         if not isinstance(c, dict) or "id" not in c:
             raise DatasetError("a category has an 'id' and a 'name'", where=f"{where} categories[{k}]")
         cats[c["id"]] = str(c.get("name", c["id"]))
+    return cats
+
+
+def _image_table(data: dict, root: Path, where: str) -> pd.DataFrame:
+    """One row per image (id, file, width, height); sizes the JSON lacks come from the files."""
     images = []
     for k, im in enumerate(data["images"]):
         if not isinstance(im, dict) or "id" not in im:
             raise DatasetError("an image has an 'id', 'file_name', 'width' and 'height'", where=f"{where} images[{k}]")
         images.append((im["id"], str(im.get("file_name", "")), im.get("width"), im.get("height")))
     img = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
-    root = Path(images_root) if images_root is not None else p.parent
     _sizes_from_files(img, root)
     if img["image_id"].duplicated().any():
         dup = img["image_id"][img["image_id"].duplicated()].iloc[0]
         raise DatasetError(f"image id {dup} appears twice", where=f"{where} images")
-    by_id = {iid: i for i, iid in enumerate(img["image_id"])}
+    return img
+
+
+def _annotation_columns(data: dict, by_id: dict, cats: dict, where: str) -> tuple[dict[str, list], list]:
+    """The annotations' columns and their raw [x, y, w, h] boxes (NaN where only a mask is given)."""
     cols: dict[str, list] = {c: [] for c in ("image_id", "label", "object_id", "segmentation")}
     raw_box = []
     for k, a in enumerate(data["annotations"]):
@@ -65,17 +99,7 @@ def read_coco(path: str | Path, images_root: str | Path | None = None) -> Object
         cols["object_id"].append(a.get("id", k))
         cols["segmentation"].append(seg)
         raw_box.append(box)
-    n = len(raw_box)
-    b = np.asarray(raw_box, dtype=float).reshape(n, 4)
-    x0, y0, x1, y1 = to_xyxy(b[:, 0], b[:, 1], b[:, 2], b[:, 3], "xywh")
-    rows = dict(cols, bbox_x0=x0, bbox_y0=y0, bbox_x1=x1, bbox_y1=y1)
-    pos = np.array([by_id[i] for i in cols["image_id"]], dtype=np.int64)
-    for c in ("file", "width", "height"):
-        rows[c] = img[c].to_numpy()[pos] if n else []
-    objects = object_frame(rows, n)
-    _boxes_from_masks(objects, where)
-    check_boxes(objects, where)
-    return Objects(objects, img, "coco", p, root, data)
+    return cols, raw_box
 
 
 def _sizes_from_files(img: pd.DataFrame, root: Path) -> None:

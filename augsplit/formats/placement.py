@@ -75,38 +75,19 @@ def open_objects(path, fmt: str = "auto", boxes: BoxOptions = BoxOptions(), imag
 
 def table_objects(df: pd.DataFrame, boxes: BoxOptions, where: str, default_size=None, path=None) -> Objects | None:
     """A table whose rows are objects with boxes -> Objects (None when it has no boxes)."""
-    conv = boxes.convention
-    if conv is None:
-        if set(BOX) <= set(df.columns):
-            conv, cols = "xyxy", BOX
-        elif {"bbox_x", "bbox_y", "bbox_w", "bbox_h"} <= set(df.columns):
-            conv, cols = "xywh", ("bbox_x", "bbox_y", "bbox_w", "bbox_h")
-        elif boxes.columns is not None:
-            raise DatasetError("--box-columns needs --boxes (xyxy, xywh or cxcywh)", where=where)
-        else:
-            guess = looks_like_boxes(df.columns)
-            if guess is not None:
-                raise DatasetError(f"columns {', '.join(guess)} look like boxes: name their convention with --boxes "
-                                   f"({', '.join(CONVENTIONS)}) and --box-units (px or norm)", where=where)
-            return None
-    else:
-        if conv not in CONVENTIONS:
-            raise DatasetError(f"unknown box convention {conv!r} (use {', '.join(CONVENTIONS)})", where=where)
-        cols = box_columns(df.columns, conv, boxes.columns, where)
+    found = _table_box_columns(df, boxes, where)
+    if found is None:
+        return None
+    conv, cols = found
     n = len(df)
     size = next((c for c in SIZE_COLUMNS if set(c) <= set(df.columns) and not set(c) & set(cols)), None)
-    if size is not None:
-        w, h = (pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in size)
-    elif default_size is not None:
-        w, h = np.full(n, float(default_size[0])), np.full(n, float(default_size[1]))
-    else:
-        raise DatasetError("the table has no image size columns (image_width, image_height)", where=where)
+    w, h = _image_sizes(df, size, default_size, where)
     vals = [pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in cols]
     x0, y0, x1, y1 = to_px(*to_xyxy(*vals, conv), boxes.units, w, h)
-    key = next((c for c in IMAGE_KEY_COLUMNS if c in df.columns), None)
+    key = _first_column(df, IMAGE_KEY_COLUMNS)
     ids = df[key].to_numpy() if key is not None else np.arange(n)
-    label = next((c for c in LABEL_COLUMNS if c in df.columns), None)
-    file = next((c for c in ("file_name", "file", "path") if c in df.columns), None)
+    label = _first_column(df, LABEL_COLUMNS)
+    file = _first_column(df, ("file_name", "file", "path"))
     rows = {"image_id": ids, "file": df[file].astype(str).to_numpy() if file else [""] * n, "width": w, "height": h,
             "label": df[label].astype(str).to_numpy() if label else [None] * n, "object_id": np.arange(n),
             "bbox_x0": x0, "bbox_y0": y0, "bbox_x1": x1, "bbox_y1": y1}
@@ -116,6 +97,40 @@ def table_objects(df: pd.DataFrame, boxes: BoxOptions, where: str, default_size=
     images = objects.drop_duplicates("image_id")[["image_id", "file", "width", "height"]].reset_index(drop=True)
     p = Path(path) if path is not None else Path(where)
     return Objects(objects, images, "table", p, p.parent, df)
+
+
+def _first_column(df: pd.DataFrame, names) -> str | None:
+    return next((c for c in names if c in df.columns), None)
+
+
+def _table_box_columns(df: pd.DataFrame, boxes: BoxOptions, where: str):
+    """The table's box convention and its four columns (None when the table has no boxes)."""
+    conv = boxes.convention
+    if conv is not None:
+        if conv not in CONVENTIONS:
+            raise DatasetError(f"unknown box convention {conv!r} (use {', '.join(CONVENTIONS)})", where=where)
+        return conv, box_columns(df.columns, conv, boxes.columns, where)
+    if set(BOX) <= set(df.columns):
+        return "xyxy", BOX
+    if {"bbox_x", "bbox_y", "bbox_w", "bbox_h"} <= set(df.columns):
+        return "xywh", ("bbox_x", "bbox_y", "bbox_w", "bbox_h")
+    if boxes.columns is not None:
+        raise DatasetError("--box-columns needs --boxes (xyxy, xywh or cxcywh)", where=where)
+    guess = looks_like_boxes(df.columns)
+    if guess is not None:
+        raise DatasetError(f"columns {', '.join(guess)} look like boxes: name their convention with --boxes "
+                           f"({', '.join(CONVENTIONS)}) and --box-units (px or norm)", where=where)
+    return None
+
+
+def _image_sizes(df: pd.DataFrame, size, default_size, where: str):
+    """Per row the image's width and height: from the size columns, else the default size."""
+    if size is not None:
+        return (pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in size)
+    if default_size is not None:
+        n = len(df)
+        return np.full(n, float(default_size[0])), np.full(n, float(default_size[1]))
+    raise DatasetError("the table has no image size columns (image_width, image_height)", where=where)
 
 
 def canvas_table(objs: Objects, plan, extra: pd.DataFrame | None = None) -> pd.DataFrame:

@@ -34,15 +34,7 @@ def read_yolo(path: str | Path) -> Objects:
         raise DatasetError("a YOLO dataset is a folder (with labels/ and images/)", where=str(p))
     root, labels_dir, images_dir = _layout(p)
     names = _class_names(root)
-    if labels_dir is not None:
-        pairs = {}
-        for lab in sorted(labels_dir.rglob("*.txt")):
-            rel = lab.relative_to(labels_dir).with_suffix("")
-            pairs[rel] = (lab, _image_for(images_dir / rel))
-        for img in sorted(q for q in images_dir.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES and q.is_file()):
-            pairs.setdefault(img.relative_to(images_dir).with_suffix(""), (None, img))  # no label file: no objects
-    else:
-        pairs = {lab.relative_to(root).with_suffix(""): (lab, img) for lab, img in _flat_pairs(root)}
+    pairs = _pairs(root, labels_dir, images_dir)
     if not pairs:
         raise DatasetError("no label files (*.txt) found", where=str(p))
     images, cols = [], {c: [] for c in ("image_id", "label", "object_id", "segmentation", "box")}
@@ -54,19 +46,8 @@ def read_yolo(path: str | Path) -> Objects:
         w, h = image_size(img)
         image_id = rel.as_posix()
         images.append((image_id, img.relative_to(root).as_posix(), w, h))
-        if lab is None:
-            continue
-        for line_no, cls, coords in _lines(lab):
-            cols["image_id"].append(image_id)
-            cols["label"].append(names.get(cls, cls))
-            cols["object_id"].append(line_no)
-            if len(coords) == 4:
-                cols["box"].append(to_xyxy(*coords, "cxcywh"))
-                cols["segmentation"].append(None)
-            else:
-                xy = np.asarray(coords, float).reshape(-1, 2)
-                cols["box"].append((xy[:, 0].min(), xy[:, 1].min(), xy[:, 0].max(), xy[:, 1].max()))
-                cols["segmentation"].append([(xy * (w, h)).reshape(-1).tolist()])
+        if lab is not None:
+            _add_objects(cols, lab, image_id, names, w, h)
     img_df = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
     n = len(cols["box"])
     size = img_df.set_index("image_id").loc[cols["image_id"], ["file", "width", "height"]] if n else None
@@ -80,6 +61,34 @@ def read_yolo(path: str | Path) -> Objects:
     objects = object_frame(rows, n)
     check_boxes(objects, str(p))
     return Objects(objects, img_df, "yolo", p, root)
+
+
+def _pairs(root: Path, labels_dir: Path | None, images_dir: Path | None) -> dict:
+    """Sub-path without suffix -> (label file or None, image file or None)."""
+    if labels_dir is None:
+        return {lab.relative_to(root).with_suffix(""): (lab, img) for lab, img in _flat_pairs(root)}
+    pairs = {}
+    for lab in sorted(labels_dir.rglob("*.txt")):
+        rel = lab.relative_to(labels_dir).with_suffix("")
+        pairs[rel] = (lab, _image_for(images_dir / rel))
+    for img in sorted(q for q in images_dir.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES and q.is_file()):
+        pairs.setdefault(img.relative_to(images_dir).with_suffix(""), (None, img))  # no label file: no objects
+    return pairs
+
+
+def _add_objects(cols: dict[str, list], lab: Path, image_id: str, names: dict, w, h) -> None:
+    """Append one label file's objects (boxes as fractions; polygons also in px) to `cols`."""
+    for line_no, cls, coords in _lines(lab):
+        cols["image_id"].append(image_id)
+        cols["label"].append(names.get(cls, cls))
+        cols["object_id"].append(line_no)
+        if len(coords) == 4:
+            cols["box"].append(to_xyxy(*coords, "cxcywh"))
+            cols["segmentation"].append(None)
+        else:
+            xy = np.asarray(coords, float).reshape(-1, 2)
+            cols["box"].append((xy[:, 0].min(), xy[:, 1].min(), xy[:, 0].max(), xy[:, 1].max()))
+            cols["segmentation"].append([(xy * (w, h)).reshape(-1).tolist()])
 
 
 def _layout(p: Path) -> tuple[Path, Path | None, Path | None]:

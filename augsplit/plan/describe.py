@@ -75,30 +75,7 @@ def plan_text(plan: Plan) -> str:
     lines.append("axes: " + ", ".join(f"{n} [{a['range'][0]:g}, {a['range'][1]:g}] {a['unit']} ({a['measure']})".replace("  ", " ")
                                       for n, a in d["axes"].items()))
     for s in d["splits"]:
-        counts = sorted(set(s["per_class"].values()))
-        per = (f"{counts[0]} per class x {len(s['per_class'])} classes" if len(counts) == 1
-               else f"{len(s['per_class'])} classes, {min(counts)}-{max(counts)} each")
-        lines.append(f"\nsplit {s['name']}  [{s['role']}, {s['kind']}]  mass {s['mass']:.4f} of the space  "
-                     f"{s['images']} images ({per})  instances: {s['instances']}")
-        for n, a in s["axes"].items():
-            ivs = "  ".join(_fmt(iv) for iv in a["intervals"])
-            lines.append(f"  {n:<13} {ivs} {a['unit']}".rstrip())
-        if not s["is_product"]:
-            lines.append(f"  not a product of the above: {len(s['boxes'])} boxes, e.g.")
-            for b in s["boxes"][:MAX_BOXES]:
-                parts = [f"{n} {_fmt(iv)}" for n, iv in b.items() if n != "classes" and iv != d["axes"][n]["range"]
-                         and not (isinstance(iv, dict) and len(iv["levels"]) == len(d["axes"][n].get("levels", iv["levels"])))]
-                cl = b["classes"]
-                who = f"  [{', '.join(cl)}]" if len(cl) < len(d["classes"]) else ""
-                lines.append(f"    {', '.join(parts) or 'everything'}{who}")
-            if len(s["boxes"]) > MAX_BOXES:
-                lines.append(f"    ... {len(s['boxes']) - MAX_BOXES} more (see --json)")
-        if s["kind"] not in ("train", "random") and s.get("evidence", {}).get("unseen"):
-            unseen = "; ".join(f"class {', '.join(ivs)}" if n == CLASS else f"{n} {' '.join(_fmt(iv) for iv in ivs)}"
-                               for n, ivs in s["evidence"]["unseen"].items())
-            lines.append(f"  never seen in training: {unseen}")
-        if len(s["per_class"]) < len(d["classes"]):
-            lines.append(f"  classes: {', '.join(s['per_class'])}")
+        lines += _split_lines(d, s)
     for g in d["guarantees"]:
         pc = " per class" if g["per_class"] else ""
         lines.append(f"\nguarantee disjoint {g['disjoint']}{pc} {g['between'][0]} ~ {g['between'][1]}: "
@@ -107,6 +84,42 @@ def plan_text(plan: Plan) -> str:
         lines.append(f"\n{len(d['warnings'])} warning(s): the spec cannot do all it seems to say")
         lines += [f"  warning [{w['code']}] {w['message']}" for w in d["warnings"]]
     return "\n".join(lines)
+
+
+def _split_lines(d: dict, s: dict) -> list[str]:
+    """The text of one split of `plan_data`: its header, intervals, boxes and evidence."""
+    counts = sorted(set(s["per_class"].values()))
+    per = (f"{counts[0]} per class x {len(s['per_class'])} classes" if len(counts) == 1
+           else f"{len(s['per_class'])} classes, {min(counts)}-{max(counts)} each")
+    lines = [f"\nsplit {s['name']}  [{s['role']}, {s['kind']}]  mass {s['mass']:.4f} of the space  "
+             f"{s['images']} images ({per})  instances: {s['instances']}"]
+    for n, a in s["axes"].items():
+        ivs = "  ".join(_fmt(iv) for iv in a["intervals"])
+        lines.append(f"  {n:<13} {ivs} {a['unit']}".rstrip())
+    if not s["is_product"]:
+        lines += _box_lines(d, s["boxes"])
+    if s["kind"] not in ("train", "random") and s.get("evidence", {}).get("unseen"):
+        unseen = "; ".join(f"class {', '.join(ivs)}" if n == CLASS else f"{n} {' '.join(_fmt(iv) for iv in ivs)}"
+                           for n, ivs in s["evidence"]["unseen"].items())
+        lines.append(f"  never seen in training: {unseen}")
+    if len(s["per_class"]) < len(d["classes"]):
+        lines.append(f"  classes: {', '.join(s['per_class'])}")
+    return lines
+
+
+def _box_lines(d: dict, boxes: list) -> list[str]:
+    """A region that is not a product of its intervals: its first MAX_BOXES boxes, each naming
+    only the axes it restricts."""
+    lines = [f"  not a product of the above: {len(boxes)} boxes, e.g."]
+    for b in boxes[:MAX_BOXES]:
+        parts = [f"{n} {_fmt(iv)}" for n, iv in b.items() if n != "classes" and iv != d["axes"][n]["range"]
+                 and not (isinstance(iv, dict) and len(iv["levels"]) == len(d["axes"][n].get("levels", iv["levels"])))]
+        cl = b["classes"]
+        who = f"  [{', '.join(cl)}]" if len(cl) < len(d["classes"]) else ""
+        lines.append(f"    {', '.join(parts) or 'everything'}{who}")
+    if len(boxes) > MAX_BOXES:
+        lines.append(f"    ... {len(boxes) - MAX_BOXES} more (see --json)")
+    return lines
 
 
 def _fmt(iv) -> str:

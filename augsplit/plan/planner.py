@@ -121,142 +121,208 @@ def make_plan(spec: Spec, source, footprint_at=None, strict: bool = True, classe
     `source=None` plans a spec without objects, which only splits existing data: `classes`
     names the class levels, and footprint guarantees are declared (audited on the data's own
     boxes), not proved."""
-    canvas = canvas_of(spec)
-    classes = tuple(source.classes if source is not None else classes or ())
-    if not classes:
-        raise SpecError("the object source has no classes", where="objects")
-    space = build_space(spec, canvas, classes)
-    thr = spec.render.alpha_threshold
-    if source is None:
-        seen, unseen = [[0] for _ in classes], [[] for _ in classes]
-        radii_all = np.zeros(len(classes))
-    else:
+    return _Planner(spec, source, footprint_at, strict, classes).plan()
+
+
+class _Planner:
+    """The state one `make_plan` call shares between its steps: the space, the classes and
+    their instances, the split regions, and the guarantees' verdicts."""
+
+    def __init__(self, spec: Spec, source, footprint_at, strict: bool, classes):
+        self.spec, self.source, self.footprint_at, self.strict = spec, source, footprint_at, strict
+        self.canvas = canvas_of(spec)
+        self.classes = tuple(source.classes if source is not None else classes or ())
+        if not self.classes:
+            raise SpecError("the object source has no classes", where="objects")
+        self.space = build_space(spec, self.canvas, self.classes)
+        self.thr = spec.render.alpha_threshold
+        self.seen, self.unseen, self.radii_all = self._objects()
+        self._check_split_instances()
+
+    # ---- build space and classes -------------------------------------------------------
+
+    def _objects(self):
+        """Per class the seen and unseen instance ids, and the largest support radius."""
+        spec, source, classes = self.spec, self.source, self.classes
+        if source is None:
+            return [[0] for _ in classes], [[] for _ in classes], np.zeros(len(classes))
         seen, unseen = _instances(spec, source, classes)
-        _check_fits(source, seen, unseen, space, canvas)
-        radii_all = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, thr)
-                                  for i in seen[c] + unseen[c]) for c in range(len(classes))])
+        _check_fits(source, seen, unseen, self.space, self.canvas)
+        radii = np.array([max(support_radius(source.sprite(c, i).rgba, source.sprite(c, i).anchor, self.thr)
+                              for i in seen[c] + unseen[c]) for c in range(len(classes))])
+        return seen, unseen, radii
 
-    for name, sp in spec.splits.items():  # before any proof: the proofs need the split's instances
-        if sp.instances == "unseen" and not any(unseen):
-            raise SpecError("no instances are held out (set objects.unseen_instances)", where=f"splits.{name}.instances")
+    def _check_split_instances(self) -> None:
+        """Before any proof: the proofs need the split's instances."""
+        for name, sp in self.spec.splits.items():
+            if sp.instances == "unseen" and not any(self.unseen):
+                raise SpecError("no instances are held out (set objects.unseen_instances)",
+                                where=f"splits.{name}.instances")
 
-    def resolve(fixed: dict[str, Region]) -> dict[str, Region]:
+    # ---- regions per split -------------------------------------------------------------
+
+    def resolve(self, fixed: dict[str, Region]) -> dict[str, Region]:
         """Every split's region; `fixed` ones (already guarded) are taken as they are, so a
         split defined by reference to a guarded split sees its guarded region."""
-        regions = dict(fixed)
-        visiting: list[str] = []
+        return _Resolver(self, fixed).all()
 
-        def split_region(name: str, where: str) -> Region:
-            if name not in spec.splits:
-                raise SpecError(f"unknown split '{name}'", where=where)
-            if name in visiting:
-                raise SpecError(f"splits refer to each other in a cycle: {' -> '.join(visiting + [name])}", where=where)
-            if name not in regions:
-                visiting.append(name)
-                region = _split_region(spec, name, space, classes, split_region)
-                if spec.render.keep_inside:
-                    region = _keep_inside(space, canvas, region, radii_all, classes, name)
-                regions[name] = region
-                visiting.pop()
-            return regions[name]
+    def region_of(self, name: str, split_region) -> Region:
+        region = _split_region(self.spec, name, self.space, self.classes, split_region)
+        if self.spec.render.keep_inside:
+            region = _keep_inside(self.space, self.canvas, region, self.radii_all, self.classes, name)
+        return region
 
-        for name in spec.splits:
-            split_region(name, f"splits.{name}")
-        return regions
+    # ---- proofs ------------------------------------------------------------------------
 
-    regions = resolve({})
-
-    def prove(g, regions):
+    def prove(self, g, regions):
         a, b = g.between
-        if source is None and g.disjoint == "footprint":
-            if g.auto_guard:
-                raise SpecError("auto_guard of a footprint guarantee needs objects (their size sets the band)",
-                                where="guarantees")
-            return Verdict("footprint", g.between, "declared", g.per_class, {},
-                           "declared, not proved: the spec has no objects; `augsplit audit` checks it on the "
-                           "data's boxes or masks"), None, None
-        ra = _radii(source, seen, unseen, spec.splits[a].instances, spec, classes)
-        rb = _radii(source, seen, unseen, spec.splits[b].instances, spec, classes)
-        ids = (_instance_ids(seen, unseen, spec.splits[a].instances, spec),
-               _instance_ids(seen, unseen, spec.splits[b].instances, spec))
-        return _prove(g, space, canvas, regions[a], regions[b], ra, rb, source, seen, unseen, footprint_at, classes, thr, ids), ra, rb
+        if self.source is None and g.disjoint == "footprint":
+            return _declared_footprint(g), None, None
+        spec = self.spec
+        ra = _radii(self.source, self.seen, self.unseen, spec.splits[a].instances, spec, self.classes)
+        rb = _radii(self.source, self.seen, self.unseen, spec.splits[b].instances, spec, self.classes)
+        ids = (_instance_ids(self.seen, self.unseen, spec.splits[a].instances, spec),
+               _instance_ids(self.seen, self.unseen, spec.splits[b].instances, spec))
+        return _prove(g, self.space, self.canvas, regions[a], regions[b], ra, rb, self.source, self.seen,
+                      self.unseen, self.footprint_at, self.classes, self.thr, ids), ra, rb
 
-    # guarantees (auto_guard may shrink the second split's region)
-    verdicts = []
-    guarded: dict[str, Region] = {}
-    guard_total = Region.empty(space)
-    for gi, g in enumerate(spec.guarantees):
+    # ---- guards ------------------------------------------------------------------------
+
+    def guarantees(self, regions: dict[str, Region]):
+        """Prove every guarantee; auto_guard may shrink the second split's region (in place).
+        Returns the verdicts, the guarded regions and what the guards took away."""
+        verdicts = []
+        guarded: dict[str, Region] = {}
+        guard_total = Region.empty(self.space)
+        for gi, g in enumerate(self.spec.guarantees):
+            v, ra, rb = self.prove(g, regions)
+            if not v.ok and g.auto_guard:
+                v, taken = self._auto_guard(g, regions, ra, rb, where=f"guarantees.{gi}")
+                guarded[g.between[1]] = regions[g.between[1]]
+                guard_total = guard_total | taken
+            if not v.ok and self.strict:
+                raise GuaranteeError(v.message, where=f"guarantees.{gi}",
+                                     hint="move the regions apart, lower the largest scale, or set auto_guard: true")
+            verdicts.append(v)
+        return verdicts, guarded, guard_total
+
+    def _auto_guard(self, g, regions, ra, rb, where: str):
+        """Shrink the second split's region until the guarantee holds; the "guarded" verdict
+        and what was taken away."""
         a, b = g.between
-        where = f"guarantees.{gi}"
-        v, ra, rb = prove(g, regions)
-        if not v.ok and g.auto_guard:
-            guard, guard_px = _guard_region(g, space, canvas, regions, ra, rb, lambda r: prove(g, {**regions, b: r})[0].ok)
-            before = regions[b].mass()
-            guard_total = guard_total | (regions[b] & guard)  # what the guard takes away from b
-            regions[b] = guarded[b] = regions[b] - guard
-            v2, _, _ = prove(g, regions)
-            if not v2.ok:
-                raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
-            removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
-            nums = dict(v2.numbers, removed_fraction=removed)
-            band = ""
-            if guard_px is not None:
-                nums["guard_px"] = guard_px
-                band = f" (positions within {guard_px:.4g} px of {a}'s, the least band the proof accepts)"
-            v = Verdict(g.disjoint, g.between, "guarded", g.per_class, nums,
-                        f"auto_guard removed {removed:.1%} of {b}'s region{band}; then {v2.message}")
-            if regions[b].is_empty():
-                raise GuaranteeError(f"auto_guard removed all of {b}'s region", where=where)
-        if not v.ok and strict:
-            raise GuaranteeError(v.message, where=where,
-                                 hint="move the regions apart, lower the largest scale, or set auto_guard: true")
-        verdicts.append(v)
+        guard, guard_px = _guard_region(g, self.space, self.canvas, regions, ra, rb,
+                                        lambda r: self.prove(g, {**regions, b: r})[0].ok)
+        before = regions[b].mass()
+        taken = regions[b] & guard  # what the guard takes away from b
+        regions[b] = regions[b] - guard
+        v2, _, _ = self.prove(g, regions)
+        if not v2.ok:
+            raise GuaranteeError(f"auto_guard could not make the guarantee hold: {v2.message}", where=where)
+        removed = 1.0 - (regions[b].mass() / before if before > 0 else 0.0)
+        nums = dict(v2.numbers, removed_fraction=removed)
+        band = ""
+        if guard_px is not None:
+            nums["guard_px"] = guard_px
+            band = f" (positions within {guard_px:.4g} px of {a}'s, the least band the proof accepts)"
+        v = Verdict(g.disjoint, g.between, "guarded", g.per_class, nums,
+                    f"auto_guard removed {removed:.1%} of {b}'s region{band}; then {v2.message}")
+        if regions[b].is_empty():
+            raise GuaranteeError(f"auto_guard removed all of {b}'s region", where=where)
+        return v, taken
 
-    if guarded:
-        # splits defined by reference to a guarded split follow it; every guarantee is proved
-        # again on the final regions (a reference through `minus` can grow a region)
-        final = resolve(guarded)
-        changed = {n for n in spec.splits if n not in guarded and (final[n] - regions[n]).mass() + (regions[n] - final[n]).mass() > 1e-12}
-        regions = final
-        for gi, g in enumerate(spec.guarantees):
+    def reprove(self, regions, guarded, verdicts) -> dict[str, Region]:
+        """Splits defined by reference to a guarded split follow it; every guarantee is proved
+        again on the final regions (a reference through `minus` can grow a region)."""
+        final = self.resolve(guarded)
+        changed = {n for n in self.spec.splits
+                   if n not in guarded and (final[n] - regions[n]).mass() + (regions[n] - final[n]).mass() > 1e-12}
+        for gi, g in enumerate(self.spec.guarantees):
             if not changed & set(g.between):
                 continue
-            v, _, _ = prove(g, regions)
-            if not v.ok and strict:
+            v, _, _ = self.prove(g, final)
+            if not v.ok and self.strict:
                 raise GuaranteeError(f"after auto_guard, {v.message}", where=f"guarantees.{gi}",
                                      hint="splits defined by reference to a guarded split changed with it")
             if verdicts[gi].status != "guarded":
                 verdicts[gi] = v
+        return final
 
-    train_names = [n for n in spec.splits if _role(n, spec.splits[n]) == "train"]
-    train_union = Region.empty(space)
-    for n in train_names:
-        train_union = train_union | regions[n]
+    # ---- kinds and counts --------------------------------------------------------------
 
-    splits = []
-    for index, (name, s) in enumerate(spec.splits.items()):
-        role = _role(name, s)
-        region = regions[name]
-        if region.is_empty():
-            raise SpecError("the region is empty", where=f"splits.{name}.region")
-        counts = _counts(s, region, space, classes, name)
-        if role == "train":
-            kind, evidence = "train", {}
-        else:
-            kind, evidence = holdout_kind(space, region, train_union)
-            _check_declared_kind(s.kind, kind, evidence, space, classes, train_union, name)
-        instances = s.instances or ("seen" if any(unseen) else "all")
-        splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
+    def split_plans(self, regions) -> list[SplitPlan]:
+        spec, space, classes = self.spec, self.space, self.classes
+        train_union = Region.empty(space)
+        for n in spec.splits:
+            if _role(n, spec.splits[n]) == "train":
+                train_union = train_union | regions[n]
+        splits = []
+        for index, (name, s) in enumerate(spec.splits.items()):
+            role = _role(name, s)
+            region = regions[name]
+            if region.is_empty():
+                raise SpecError("the region is empty", where=f"splits.{name}.region")
+            counts = _counts(s, region, space, classes, name)
+            if role == "train":
+                kind, evidence = "train", {}
+            else:
+                kind, evidence = holdout_kind(space, region, train_union)
+                _check_declared_kind(s.kind, kind, evidence, space, classes, train_union, name)
+            instances = s.instances or ("seen" if any(self.unseen) else "all")
+            splits.append(SplitPlan(name, index, role, kind, region, counts, instances, evidence, s.stratify))
+        total = sum(s.total for s in splits)
+        if total > MAX_IMAGES:
+            raise SpecError(f"{total:,} images in all are above the limit of {MAX_IMAGES:,} "
+                            "(limits.MAX_IMAGES)", where="splits")
+        return splits
 
-    if sum(s.total for s in splits) > MAX_IMAGES:
-        raise SpecError(f"{sum(s.total for s in splits):,} images in all are above the limit of {MAX_IMAGES:,} "
-                        "(limits.MAX_IMAGES)", where="splits")
-    plan = Plan(spec, spec_hash(spec), canvas, space, classes, tuple(map(tuple, seen)), tuple(map(tuple, unseen)),
-                tuple(splits), tuple(verdicts), radii_all, guard_total if guard_total.nbox else None,
-                settings=settings_of(spec))
-    from .warnings import plan_warnings
+    def plan(self) -> Plan:
+        spec = self.spec
+        regions = self.resolve({})
+        verdicts, guarded, guard_total = self.guarantees(regions)
+        if guarded:
+            regions = self.reprove(regions, guarded, verdicts)
+        splits = self.split_plans(regions)
+        plan = Plan(spec, spec_hash(spec), self.canvas, self.space, self.classes, tuple(map(tuple, self.seen)),
+                    tuple(map(tuple, self.unseen)), tuple(splits), tuple(verdicts), self.radii_all,
+                    guard_total if guard_total.nbox else None, settings=settings_of(spec))
+        from .warnings import plan_warnings
 
-    return replace(plan, warnings=plan_warnings(plan, source))
+        return replace(plan, warnings=plan_warnings(plan, self.source))
+
+
+class _Resolver:
+    """Evaluates split regions that may refer to one another, refusing unknown names and cycles."""
+
+    def __init__(self, planner: _Planner, fixed: dict[str, Region]):
+        self.planner = planner
+        self.regions = dict(fixed)
+        self.visiting: list[str] = []
+
+    def all(self) -> dict[str, Region]:
+        for name in self.planner.spec.splits:
+            self.split_region(name, f"splits.{name}")
+        return self.regions
+
+    def split_region(self, name: str, where: str) -> Region:
+        if name not in self.planner.spec.splits:
+            raise SpecError(f"unknown split '{name}'", where=where)
+        if name in self.visiting:
+            raise SpecError(f"splits refer to each other in a cycle: {' -> '.join(self.visiting + [name])}", where=where)
+        if name not in self.regions:
+            self.visiting.append(name)
+            self.regions[name] = self.planner.region_of(name, self.split_region)
+            self.visiting.pop()
+        return self.regions[name]
+
+
+def _declared_footprint(g) -> Verdict:
+    """A footprint guarantee of a spec without objects: declared, audited later on the data."""
+    if g.auto_guard:
+        raise SpecError("auto_guard of a footprint guarantee needs objects (their size sets the band)",
+                        where="guarantees")
+    return Verdict("footprint", g.between, "declared", g.per_class, {},
+                   "declared, not proved: the spec has no objects; `augsplit audit` checks it on the "
+                   "data's boxes or masks")
 
 
 # ---- pieces ----------------------------------------------------------------------------
@@ -341,20 +407,11 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
     t = tightest(gaps)
     if t is None:
         return Verdict("footprint", g.between, "proved", g.per_class, {"gap_px": math.inf}, "no class appears in both splits")
-    nums = {"gap_px": t.gap_px, "need_px": t.need_px, "slack_px": t.slack_px,
-            "class_a": classes[t.class_a], "class_b": classes[t.class_b]}
-    if canvas.viewing is not None:
-        nums["gap_deg"] = float(canvas.viewing.offset_to_deg(t.gap_px))
-        nums["need_deg"] = float(canvas.viewing.offset_to_deg(t.need_px))
-    a, b = g.between
-    deg = (f" ({nums['gap_deg']:.3g} deg)" if "gap_deg" in nums else "")
-    bound = (f"position gap {t.gap_px:.2f} px{deg} {'>' if t.slack_px > 0 else '<'} {t.need_px:.2f} px needed "
-             f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales)")
+    nums, bound = _disc_bound(g, canvas, t, classes)
     if t.slack_px > 0:
         nums["stage"] = "disc"
         return Verdict("footprint", g.between, "proved", g.per_class, nums, bound)
-    from .envelope import check_envelopes, region_items
-    from .witness import find_witness, pair_witness
+    from .witness import find_witness
 
     ids_a, ids_b = ids if ids is not None else ([s + u for s, u in zip(seen, unseen)],) * 2
     witness = None
@@ -363,10 +420,7 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
         sb = [source.sprite(t.class_b, i) for i in ids_b[t.class_b]]
         witness = find_witness(space, canvas, A, B, t, sa, sb, footprint_at)
     if witness is None:
-        items_a = region_items(space, canvas, A, {c: [source.sprite(c, i) for i in ids_a[c]] for c in range(len(classes))})
-        items_b = region_items(space, canvas, B, {c: [source.sprite(c, i) for i in ids_b[c]] for c in range(len(classes))})
-        check = pair_witness(space, canvas, A, B, items_a, items_b, footprint_at) if footprint_at is not None else None
-        env = check_envelopes(items_a, items_b, canvas, alpha_threshold, g.per_class, check)
+        env = _envelopes(g, space, canvas, A, B, source, footprint_at, classes, alpha_threshold, ids_a, ids_b)
         nums["envelope"] = {"candidates": env.candidates, "excluded": env.excluded, "undecided": env.undecided,
                             "boxes": env.boxes}
         if env.disjoint:
@@ -377,6 +431,37 @@ def _prove(g, space, canvas, A, B, ra, rb, source, seen, unseen, footprint_at, c
                            f"no pixel is coverable by both (by rasterised envelopes: {how}); the disc bound alone "
                            f"does not suffice: {bound}")
         witness = env.accepted
+    return _refusal(g, nums, bound, witness)
+
+
+def _disc_bound(g, canvas, t, classes) -> tuple[dict, str]:
+    """The numbers of the tightest class pair's disc bound, and the sentence stating it."""
+    nums = {"gap_px": t.gap_px, "need_px": t.need_px, "slack_px": t.slack_px,
+            "class_a": classes[t.class_a], "class_b": classes[t.class_b]}
+    if canvas.viewing is not None:
+        nums["gap_deg"] = float(canvas.viewing.offset_to_deg(t.gap_px))
+        nums["need_deg"] = float(canvas.viewing.offset_to_deg(t.need_px))
+    a, b = g.between
+    deg = (f" ({nums['gap_deg']:.3g} deg)" if "gap_deg" in nums else "")
+    bound = (f"position gap {t.gap_px:.2f} px{deg} {'>' if t.slack_px > 0 else '<'} {t.need_px:.2f} px needed "
+             f"(class {classes[t.class_a]} in {a}, {classes[t.class_b]} in {b} at their largest scales)")
+    return nums, bound
+
+
+def _envelopes(g, space, canvas, A, B, source, footprint_at, classes, alpha_threshold, ids_a, ids_b):
+    """Stages 2 and 3: rasterised envelopes of both regions and the exact per-pixel search."""
+    from .envelope import check_envelopes, region_items
+    from .witness import pair_witness
+
+    items_a = region_items(space, canvas, A, {c: [source.sprite(c, i) for i in ids_a[c]] for c in range(len(classes))})
+    items_b = region_items(space, canvas, B, {c: [source.sprite(c, i) for i in ids_b[c]] for c in range(len(classes))})
+    check = pair_witness(space, canvas, A, B, items_a, items_b, footprint_at) if footprint_at is not None else None
+    return check_envelopes(items_a, items_b, canvas, alpha_threshold, g.per_class, check)
+
+
+def _refusal(g, nums: dict, bound: str, witness) -> Verdict:
+    """The refused verdict: an overlap with its witness, or unproven when none was found."""
+    a, b = g.between
     nums["witness"] = witness
     status = "overlap" if witness else "unproven"
     nums["status"] = status

@@ -44,30 +44,11 @@ def _axis(name: str, a, spec: Spec, canvas: Canvas) -> Axis:
     kind = BUILTIN[name]
     where = f"axes.{name}"
     unit = a.unit if a is not None and a.unit is not None else _default_unit(kind)
-    if unit not in kind.units:
-        raise SpecError(f"unit '{unit}' is not one of {', '.join(repr(u) for u in kind.units)}", where=f"{where}.unit")
-    if unit == "deg" and name in ("x", "y", "eccentricity") and spec.viewing is None:
-        raise SpecError("unit 'deg' needs viewing geometry", where=f"{where}.unit",
-                        hint="add viewing: {distance_cm: 57, px_per_cm: 38}")
+    _check_unit(name, kind, unit, spec, where)
     if a is not None and a.levels is not None:
-        lv = sorted(set(float(v) for v in a.levels))
-        if not lv:
-            raise SpecError("levels must not be empty", where=f"{where}.levels")
-        if name == "mirror" and not set(lv) <= {0.0, 1.0}:
-            raise SpecError("mirror levels are 0 and/or 1", where=f"{where}.levels")
-        if name == "scale" and lv[0] <= 0:
-            raise SpecError("scale must be positive", where=f"{where}.levels")
-        return Axis(name, lv[0], lv[-1], LEVELS, unit, tuple(lv))
+        return _levels_axis(name, a.levels, unit, where)
     rng = a.range if a is not None and a.range is not None else _default_range(kind, unit, canvas, where)
-    lo, hi = float(rng[0]), float(rng[1])
-    if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
-        raise SpecError(f"range [{lo:g}, {hi:g}] is empty", where=f"{where}.range")
-    if name == "scale" and lo <= 0:
-        raise SpecError(f"scale must be positive, got range [{lo:g}, {hi:g}]", where=f"{where}.range")
-    if name in ("saturation", "brightness", "eccentricity") and lo < 0:
-        raise SpecError(f"{name} cannot be negative, got range [{lo:g}, {hi:g}]", where=f"{where}.range")
-    if unit == "deg" and name in ("x", "y", "eccentricity") and max(abs(lo), abs(hi)) >= 90:
-        raise SpecError("visual angles must lie within (-90, 90) degrees", where=f"{where}.range")
+    lo, hi = _checked_range(name, rng, unit, where)
     dist = a.dist if a is not None else "uniform"
     if name == "mirror":
         levels = tuple(v for v in (0.0, 1.0) if lo <= v <= hi)
@@ -81,6 +62,41 @@ def _axis(name: str, a, spec: Spec, canvas: Canvas) -> Axis:
     if kind.measure == CIRCULAR and abs((hi - lo) - 360.0) < 1e-9:
         return Axis(name, lo, hi, CIRCULAR, unit)
     return Axis(name, lo, hi, LINEAR, unit)
+
+
+_ANGLE_AXES = ("x", "y", "eccentricity")  # the axes a visual-angle unit applies to
+
+
+def _check_unit(name: str, kind, unit: str, spec: Spec, where: str) -> None:
+    if unit not in kind.units:
+        raise SpecError(f"unit '{unit}' is not one of {', '.join(repr(u) for u in kind.units)}", where=f"{where}.unit")
+    if unit == "deg" and name in _ANGLE_AXES and spec.viewing is None:
+        raise SpecError("unit 'deg' needs viewing geometry", where=f"{where}.unit",
+                        hint="add viewing: {distance_cm: 57, px_per_cm: 38}")
+
+
+def _levels_axis(name: str, levels, unit: str, where: str) -> Axis:
+    lv = sorted(set(float(v) for v in levels))
+    if not lv:
+        raise SpecError("levels must not be empty", where=f"{where}.levels")
+    if name == "mirror" and not set(lv) <= {0.0, 1.0}:
+        raise SpecError("mirror levels are 0 and/or 1", where=f"{where}.levels")
+    if name == "scale" and lv[0] <= 0:
+        raise SpecError("scale must be positive", where=f"{where}.levels")
+    return Axis(name, lv[0], lv[-1], LEVELS, unit, tuple(lv))
+
+
+def _checked_range(name: str, rng, unit: str, where: str) -> tuple[float, float]:
+    lo, hi = float(rng[0]), float(rng[1])
+    if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
+        raise SpecError(f"range [{lo:g}, {hi:g}] is empty", where=f"{where}.range")
+    if name == "scale" and lo <= 0:
+        raise SpecError(f"scale must be positive, got range [{lo:g}, {hi:g}]", where=f"{where}.range")
+    if name in ("saturation", "brightness", "eccentricity") and lo < 0:
+        raise SpecError(f"{name} cannot be negative, got range [{lo:g}, {hi:g}]", where=f"{where}.range")
+    if unit == "deg" and name in _ANGLE_AXES and max(abs(lo), abs(hi)) >= 90:
+        raise SpecError("visual angles must lie within (-90, 90) degrees", where=f"{where}.range")
+    return lo, hi
 
 
 def _default_unit(kind) -> str:
@@ -117,47 +133,61 @@ def build_region(node: Any, space: Space, classes: tuple[str, ...], where: str,
         return full
     if not isinstance(node, dict):
         raise SpecError(f"a region is a mapping (axis: interval, any_of, minus, ...), not {type(node).__name__}", where=where)
-    parts: list[tuple[str, Region]] = []  # (key path, region), ANDed in the order written
-    for key, value in node.items():
-        sub = f"{where}.{key}"
-        if key == "minus":
-            continue
-        if key in space.names and key != CLASS:
-            _intervals(space[key], value, sub)  # each interval checked where it is written
-            parts.append((sub, _built(rb.box, sub, space, {key: value})))
-        elif key == CLASS:
-            parts.append((sub, _classes_region(space, classes, value, sub)))
-        elif key in ("any_of", "all_of"):
-            if not isinstance(value, list) or not value:
-                raise SpecError(f"{key} takes a non-empty list of regions", where=sub)
-            terms = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
-            acc = terms[0]
-            for t in terms[1:]:
-                acc = _bounded((acc | t) if key == "any_of" else (acc & t), sub)
-            parts.append((sub, acc))
-        elif key == "band":
-            parts.append((sub, _band(space, value, sub)))
-        elif key == "cells":
-            parts.append((sub, _bounded(_cells(space, value, sub), sub)))
-        elif key == "by_class":
-            parts.append((sub, _bounded(_by_class(space, classes, value, sub, split_region), sub)))
-        elif key == "split":
-            if split_region is None:
-                raise SpecError("'split' cannot be used here", where=sub)
-            parts.append((sub, split_region(str(value), sub)))
-        else:
-            known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
-            if key in BUILTIN:
-                raise SpecError(f"axis '{key}' is not among the spec's axes ({', '.join(n for n in space.names if n != CLASS)})", where=sub,
-                                hint="add it under axes: to vary it")
-            hint = _hint(key, known)
-            raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
+    parts = [(f"{where}.{key}", _term(key, value, space, classes, f"{where}.{key}", split_region))
+             for key, value in node.items() if key != "minus"]  # (key path, region), ANDed in the order written
     out = full
     for sub, part in parts:
         out = part if out is full else _bounded(out & part, sub)
     if "minus" in node:
         out = _bounded(out - build_region(node["minus"], space, classes, f"{where}.minus", split_region), f"{where}.minus")
     return out
+
+
+def _term(key: str, value, space: Space, classes, sub: str, split_region) -> Region:
+    """One key of a region node -> its Region (an axis interval or one of _TERMS)."""
+    if key in space.names and key != CLASS:
+        _intervals(space[key], value, sub)  # each interval checked where it is written
+        return _built(rb.box, sub, space, {key: value})
+    handler = _TERMS.get(key)
+    if handler is not None:
+        return handler(key, value, space, classes, sub, split_region)
+    known = [n for n in space.names if n != CLASS] + list(_NODE_KEYS)
+    if key in BUILTIN:
+        raise SpecError(f"axis '{key}' is not among the spec's axes ({', '.join(n for n in space.names if n != CLASS)})", where=sub,
+                        hint="add it under axes: to vary it")
+    hint = _hint(key, known)
+    raise SpecError(f"unknown region key '{key}'" + (f" ({hint})" if hint else ""), where=sub)
+
+
+def _combined(key, value, space, classes, sub, split_region) -> Region:
+    """any_of / all_of: the union / intersection of a list of nodes."""
+    if not isinstance(value, list) or not value:
+        raise SpecError(f"{key} takes a non-empty list of regions", where=sub)
+    terms = [build_region(v, space, classes, f"{sub}.{i}", split_region) for i, v in enumerate(value)]
+    acc = terms[0]
+    for t in terms[1:]:
+        acc = _bounded((acc | t) if key == "any_of" else (acc & t), sub)
+    return acc
+
+
+def _split_term(key, value, space, classes, sub, split_region) -> Region:
+    if split_region is None:
+        raise SpecError("'split' cannot be used here", where=sub)
+    return split_region(str(value), sub)
+
+
+# region node key -> handler(key, value, space, classes, where, split_region); `minus` is
+# taken away after the other terms, in build_region itself
+_TERMS: dict[str, Callable[..., Region]] = {
+    CLASS: lambda key, value, space, classes, sub, split_region: _classes_region(space, classes, value, sub),
+    "any_of": _combined,
+    "all_of": _combined,
+    "band": lambda key, value, space, classes, sub, split_region: _band(space, value, sub),
+    "cells": lambda key, value, space, classes, sub, split_region: _bounded(_cells(space, value, sub), sub),
+    "by_class": lambda key, value, space, classes, sub, split_region: _bounded(
+        _by_class(space, classes, value, sub, split_region), sub),
+    "split": _split_term,
+}
 
 
 def _bounded(region: Region, where: str) -> Region:

@@ -265,16 +265,7 @@ def _canvas_warnings(plan, source) -> list[PlanWarning]:
         w = least_visible(space, plan.canvas, s.region, sprites, thr)
         if w is None:
             continue
-        axes = []
-        if "eccentricity" in space:
-            axes.append("eccentricity")
-        else:
-            if "x" in space and {"left", "right"} & set(w.edges):
-                axes.append("x")
-            if "y" in space and {"top", "bottom"} & set(w.edges):
-                axes.append("y")
-        if "scale" in space and (w.smaller_scale_helps or not axes):
-            axes.append("scale")
+        axes = _off_canvas_axes(space, w)
         where = _placement(plan, w)
         shown = ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}"
                           for k, v in where.items() if k in space.names or k in ("eccentricity", "polar_angle"))
@@ -291,3 +282,18 @@ def _canvas_warnings(plan, source) -> list[PlanWarning]:
             {"least_visible_fraction": w.fraction, "class": cls, "instance": w.instance, "edges": list(w.edges),
              "placement": where}))
     return out
+
+
+def _off_canvas_axes(space, w) -> list[str]:
+    """The axes whose range lets the least visible placement `w` cross the canvas edges."""
+    axes = []
+    if "eccentricity" in space:
+        axes.append("eccentricity")
+    else:
+        if "x" in space and {"left", "right"} & set(w.edges):
+            axes.append("x")
+        if "y" in space and {"top", "bottom"} & set(w.edges):
+            axes.append("y")
+    if "scale" in space and (w.smaller_scale_helps or not axes):
+        axes.append("scale")
+    return axes

@@ -70,30 +70,9 @@ class Glyphs(SpriteTable):
                  height_px: int = 20, thickness: int = 2, colour=(255, 255, 255)):
         texts = tuple(texts)  # a plain string "ABC" means the classes "A", "B", "C"
         fonts = (fonts,) if isinstance(fonts, str) else tuple(fonts)
-        if not texts:
-            raise SpecError("needs at least one text", where="objects.texts")
-        for i, t in enumerate(texts):
-            if not isinstance(t, str) or not t.strip():
-                raise SpecError(f"text {t!r} is empty", where=f"objects.texts[{i}]")
-            if not all(32 <= ord(ch) < 127 for ch in t):
-                raise SpecError(f"text {t!r} has characters outside printable ASCII, which the Hershey fonts "
-                                f"cannot draw", where=f"objects.texts[{i}]")
-        if len(set(texts)) != len(texts):
-            dup = sorted({t for t in texts if texts.count(t) > 1})
-            raise SpecError(f"texts repeat {dup}; each text is a class", where="objects.texts")
-        if not fonts:
-            raise SpecError("needs at least one font", where="objects.fonts")
-        if len(set(fonts)) != len(fonts):
-            raise SpecError(f"fonts repeat: {list(fonts)}", where="objects.fonts")
-        codes = [font_code(f) for f in fonts]
-        if not isinstance(height_px, (int, np.integer)) or height_px < 4:
-            raise SpecError(f"height_px must be an integer >= 4, got {height_px!r}", where="objects.height_px")
-        if height_px > MAX_SPRITE_SIDE:
-            raise SpecError(f"height_px {height_px} is above the limit of {MAX_SPRITE_SIDE} (limits.MAX_SPRITE_SIDE)",
-                            where="objects.height_px")
-        if not isinstance(thickness, (int, np.integer)) or not 1 <= thickness <= height_px:
-            raise SpecError(f"thickness must be a positive integer no larger than height_px ({height_px}), "
-                            f"got {thickness!r}", where="objects.thickness")
+        _check_texts(texts)
+        codes = _font_codes(fonts)
+        _check_sizes(height_px, thickness)
         self.texts, self.fonts = texts, fonts
         self.height_px, self.thickness = int(height_px), int(thickness)
         self.colour = parse_colour(colour, "objects.colour")
@@ -102,22 +81,56 @@ class Glyphs(SpriteTable):
             raise SpecError(f"{len(texts):,} texts, above the limit of {MAX_CLASSES:,} classes (limits.MAX_CLASSES)",
                             where="objects.texts")
         budget = PixelBudget("MAX_SPRITE_PIXELS", "MAX_SOURCE_PIXELS", SpecError)
-        rows = []
-        for ci, text in enumerate(texts):
-            row = []
-            for inst, (fname, code) in enumerate(zip(fonts, codes)):
-                ink = draw_text(text, code, self.height_px, self.thickness, budget, f"objects.texts[{ci}]")
-                rgba = np.empty(ink.shape + (4,), dtype=np.uint8)
-                rgba[..., :3] = self.colour
-                rgba[..., 3] = ink
-                row.append(Sprite.from_rgba(rgba, text, ci, inst, where=f"objects.texts[{ci}] in font {fname}"))
-            _check_distinct(row, fonts, ci, self.thickness)
-            rows.append(tuple(row))
-        self._sprites = tuple(rows)
+        self._sprites = tuple(self._row(ci, text, codes, budget) for ci, text in enumerate(texts))
+
+    def _row(self, ci: int, text: str, codes, budget) -> tuple[Sprite, ...]:
+        """The sprites of one text, one per font, refused if two fonts draw it identically."""
+        row = []
+        for inst, (fname, code) in enumerate(zip(self.fonts, codes)):
+            ink = draw_text(text, code, self.height_px, self.thickness, budget, f"objects.texts[{ci}]")
+            rgba = np.empty(ink.shape + (4,), dtype=np.uint8)
+            rgba[..., :3] = self.colour
+            rgba[..., 3] = ink
+            row.append(Sprite.from_rgba(rgba, text, ci, inst, where=f"objects.texts[{ci}] in font {fname}"))
+        _check_distinct(row, self.fonts, ci, self.thickness)
+        return tuple(row)
 
     def __repr__(self) -> str:
         return (f"Glyphs(texts={list(self.texts)}, fonts={list(self.fonts)}, height_px={self.height_px}, "
                 f"thickness={self.thickness}, colour={self.colour})")
+
+
+def _check_texts(texts: tuple) -> None:
+    if not texts:
+        raise SpecError("needs at least one text", where="objects.texts")
+    for i, t in enumerate(texts):
+        if not isinstance(t, str) or not t.strip():
+            raise SpecError(f"text {t!r} is empty", where=f"objects.texts[{i}]")
+        if not all(32 <= ord(ch) < 127 for ch in t):
+            raise SpecError(f"text {t!r} has characters outside printable ASCII, which the Hershey fonts "
+                            f"cannot draw", where=f"objects.texts[{i}]")
+    if len(set(texts)) != len(texts):
+        dup = sorted({t for t in texts if texts.count(t) > 1})
+        raise SpecError(f"texts repeat {dup}; each text is a class", where="objects.texts")
+
+
+def _font_codes(fonts: tuple) -> list[int]:
+    if not fonts:
+        raise SpecError("needs at least one font", where="objects.fonts")
+    if len(set(fonts)) != len(fonts):
+        raise SpecError(f"fonts repeat: {list(fonts)}", where="objects.fonts")
+    return [font_code(f) for f in fonts]
+
+
+def _check_sizes(height_px, thickness) -> None:
+    if not isinstance(height_px, (int, np.integer)) or height_px < 4:
+        raise SpecError(f"height_px must be an integer >= 4, got {height_px!r}", where="objects.height_px")
+    if height_px > MAX_SPRITE_SIDE:
+        raise SpecError(f"height_px {height_px} is above the limit of {MAX_SPRITE_SIDE} (limits.MAX_SPRITE_SIDE)",
+                        where="objects.height_px")
+    if not isinstance(thickness, (int, np.integer)) or not 1 <= thickness <= height_px:
+        raise SpecError(f"thickness must be a positive integer no larger than height_px ({height_px}), "
+                        f"got {thickness!r}", where="objects.thickness")
 
 
 def _check_distinct(row: list[Sprite], fonts: Sequence[str], ci: int, thickness: int) -> None:
