@@ -29,7 +29,7 @@ from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
-from .space.sample import ONLINE, PARAMS, RENDER, LazyStream, online_rng  # noqa: F401 (ONLINE re-exported)
+from .space.sample import PARAMS, RENDER, LazyStream, online_rng
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
