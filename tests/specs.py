@@ -75,3 +75,17 @@ def snapshot(root: Path) -> dict[str, str]:
             else:
                 out[rel] = "special"
     return out
+
+
+def refusal_line(code: int, err: str, expected_code: int, says=()) -> str:
+    """The one stderr line of a refused command, checked: no traceback, exactly one line
+    starting with 'augsplit', the expected exit code, and each of `says` in it."""
+    lines = err.splitlines()
+    assert "Traceback" not in err, err[-2000:]
+    assert len(lines) == 1, f"expected one stderr line, got {len(lines)}: {err[:2000]}"
+    line = lines[0]
+    assert code == expected_code, line
+    assert line.startswith("augsplit"), line
+    for text in says:
+        assert text in line, line
+    return line
