@@ -290,10 +290,6 @@ def footprint_guarantee(built: Built, test_split: str) -> str | None:
     return PER_CLASS if all(found) else ALL
 
 
-def footprint_guaranteed(built: Built, test_split: str) -> bool:
-    """Whether the spec states `disjoint: footprint` between this split and a train split."""
-    return footprint_guarantee(built, test_split) is not None
-
 
 def _frame(ax, shape) -> None:
     """Show the canvas border (white pixels would otherwise merge with the page)."""

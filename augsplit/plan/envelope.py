@@ -436,19 +436,6 @@ def _sector_cells(ps: PositionSet, h: float, a0: int, a1: int, b0: int, b1: int)
     return mask
 
 
-def position_cells(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int]):
-    """Cells [a h, (a+1) h]^2 touching the position set, limited to the index ranges given.
-    Returns (ax0, ay0, mask) with mask rows = y; None if no cell is left."""
-    bounds = _cell_bounds(ps, h, ax_range, ay_range)
-    if bounds is None:
-        return None
-    a0, a1, b0, b1 = bounds
-    if ps.kind == "rect":
-        return a0, b0, np.ones((b1 - b0 + 1, a1 - a0 + 1), dtype=bool)
-    mask = _sector_cells(ps, h, a0, a1, b0, b1)
-    return (a0, b0, mask) if mask.any() else None
-
-
 def row_runs(mask: np.ndarray, row0: int = 0, col0: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Maximal runs of True along the rows of a 2-D mask: (row, first col, last col) arrays
     in row-major order, offset by (row0, col0)."""
@@ -460,8 +447,9 @@ def row_runs(mask: np.ndarray, row0: int = 0, col0: int = 0) -> tuple[np.ndarray
 
 def position_runs(ps: PositionSet, h: float, ax_range: tuple[int, int], ay_range: tuple[int, int],
                   block: int = 512):
-    """The cells of `position_cells` as row runs (see `row_runs`), built `block` rows at a
-    time (a rectangle's runs directly); None if no cell is left."""
+    """The cells [a h, (a+1) h]^2 touching the position set, within the index ranges given,
+    as row runs (see `row_runs`), built `block` rows at a time (a rectangle's runs directly);
+    None if no cell is left."""
     bounds = _cell_bounds(ps, h, ax_range, ay_range)
     if bounds is None:
         return None

@@ -12,7 +12,6 @@ from augsplit.space.axes import AXIS_COLUMNS, CLASS
 
 from .distance import DISTANCE_AXES, VALUE_AXES
 
-CLASS_AXIS = CLASS
 ROW_COLUMNS = ("image_id", "split", "split_index", "index", "class_name", "class_index", "cell", *AXIS_COLUMNS)
 # the axis columns come from the catalogue (space/axes.py) and the axis lists in distance.py
 MANIFEST_COLUMNS = tuple(dict.fromkeys(ROW_COLUMNS + tuple(c for ax in DISTANCE_AXES for c in ax.columns)
@@ -98,9 +97,9 @@ def _differs_by_class(split) -> bool:
     `keep_inside` makes for objects of different sizes, do not count; the half is common
     practice, no source.)"""
     used = [c for c, n in enumerate(split.counts) if n > 0]
-    if len(used) < 2 or CLASS_AXIS not in split.region.space.index:
+    if len(used) < 2 or CLASS not in split.region.space.index:
         return False
-    ci = split.region.space.index[CLASS_AXIS]
+    ci = split.region.space.index[CLASS]
     first = split.class_region(used[0])
     for c in used[1:]:
         r = split.class_region(c)
