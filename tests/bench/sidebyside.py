@@ -3,7 +3,8 @@
 `export(ref)` unpacks the package as it was at a git ref into a temporary folder; `child(...)`
 runs a measurement in a fresh Python whose `augsplit` is either this tree's or that export's,
 and returns the JSON it prints. `load()` describes the machine's load; `verdict()` is the
-PASS/MISS word every aim is printed with.
+PASS/MISS word every aim is printed with; `aim(...)` prints one aim as the single line
+`AIM | aim | measured | load | verdict` that `run_all.py` collects into the README's table.
 """
 
 from __future__ import annotations
@@ -43,3 +44,22 @@ def load() -> str:
 
 def verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
+
+
+def overloaded() -> bool:
+    """A ratio measured while the 1-minute load is above the core count says nothing about the
+    code (the processes timed were waiting for a core)."""
+    return os.getloadavg()[0] > (os.cpu_count() or 1)
+
+
+def aim(name: str, measured: str, ok: bool, *, needs_idle: bool = False) -> str:
+    """Print one aim as `AIM | name | measured | load | PASS or MISS` and return the verdict.
+
+    With `needs_idle` (a ratio between runs that compete for cores, such as 2 workers vs 1),
+    a measurement taken under a load above the core count is reported as MISS-UNRELIABLE."""
+    word = verdict(ok)
+    if needs_idle and overloaded():
+        word = "MISS-UNRELIABLE"
+    one = os.getloadavg()[0]
+    print(f"AIM | {name} | {measured} | load {one:.1f} on {os.cpu_count()} cores | {word}", flush=True)
+    return word
