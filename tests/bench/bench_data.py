@@ -15,6 +15,7 @@ run in turn within each repeat, and each gets the best of its repeats.
 from __future__ import annotations
 
 import argparse
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -28,6 +29,9 @@ from augsplit.build import open_mapping, open_spec
 from augsplit.data import Dataset
 from augsplit.generate import Options, generate
 from augsplit.spec import builtin_spec_path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from sidebyside import aim  # noqa: E402
 
 NOISE96 = {
     "seed": 7,
@@ -77,6 +81,8 @@ def bench_loaders(name: str, built, tmp: Path, repeats: int) -> None:
     print(f"  lazy re-render (Dataset, store none) {r_lazy:9.0f} items/s")
     print(f"  PNG files      (Dataset, store files){r_png:9.0f} items/s   lazy / png     = {r_lazy / r_png:5.2f}x")
     print(f"  PNG decode     (bare cv2.imread)     {r_raw:9.0f} items/s   lazy / imread  = {r_lazy / r_raw:5.2f}x")
+    aim(f"lazy items at least as fast as reading their PNG files, {name}",
+        f"{r_lazy:.0f} vs {r_png:.0f} items/s = {r_lazy / r_png:.2f}x", r_lazy >= r_png)
 
 
 def photos(n: int, size: int, seed: int = 0) -> list[np.ndarray]:
@@ -122,6 +128,8 @@ def bench_plugin(size: int, repeats: int, n: int) -> None:
         rates = best_rates(runs, n, repeats)
         print(f"  {label:28s} ours {rates[0]:8.0f}/s   A.Affine {rates[1]:8.0f}/s   "
               f"time ours / A.Affine = {rates[1] / rates[0]:4.2f}x")
+        aim(f"RegionPlacement within 1.2x of A.Affine, {size}x{size}, {label}",
+            f"{rates[1] / rates[0]:.2f}x the time", rates[1] / rates[0] <= 1.2)
 
 
 def main() -> None:

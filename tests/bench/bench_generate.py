@@ -33,6 +33,9 @@ import cv2
 import numpy as np
 
 HERE = Path(__file__).resolve()
+sys.path.insert(0, str(HERE.parent))
+from sidebyside import aim  # noqa: E402
+
 CANVAS = 96
 GREY = 0.5
 
@@ -366,6 +369,7 @@ def main() -> None:
     for what, val, op, goal in aims:
         ok = val <= goal if op == "<=" else val >= goal
         print(f"  {what:52s} {val:6.2f}  ({op} {goal})  {'met' if ok else 'MISSED'}")
+        aim(what, f"{val:.2f}", ok, needs_idle="workers" in what)
 
     nd = min(a.n, 2000)
     print(f"\n== disk per image ({nd} images of 96x96 RGB; bytes per image: file contents / blocks allocated)")

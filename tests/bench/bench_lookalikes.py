@@ -20,6 +20,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from bench.sidebyside import aim  # noqa: E402
 from lookalikes import LEAKS, make, named, plant, random_spec  # noqa: E402
 
 from augsplit.audit import run_audit  # noqa: E402
@@ -77,6 +78,11 @@ def main() -> None:
         rates = ", ".join(f"{kind} {c}/{n}" for kind, (c, n) in caught[j].items())
         print(f"{j:>7}: near-duplicate FAIL on {len(alarms[j])} clean datasets {alarms[j] or ''}; "
               f"leaks named: {rates}")
+    store = "JPEG" if a.jpeg else "PNG"
+    aim(f"no near-duplicate false alarm on clean {store} datasets (render judge, the default)",
+        f"{len(alarms['render'])} of {len(datasets)}", not alarms["render"])
+    got, total = (sum(caught["render"][k][i] for k in LEAKS) for i in (0, 1))
+    aim(f"every planted leak named ({store}, render judge)", f"{got} of {total}", got == total)
 
 
 if __name__ == "__main__":

@@ -32,7 +32,7 @@ T_START = time.perf_counter()
 HERE = Path(__file__).resolve()
 sys.path.insert(0, str(HERE.parent))
 
-from sidebyside import child, export, load, verdict  # noqa: E402
+from sidebyside import aim, child, export, load, verdict  # noqa: E402
 
 
 def translation(n: int) -> dict:
@@ -129,6 +129,8 @@ def main() -> None:
                          f"{base['peak'] / 2**20:7.0f} MiB   speed-up {base['seconds'] / now['seconds']:5.1f}x, "
                          f"memory {base['peak'] / now['peak']:4.1f}x less; {same}")
             print(line, flush=True)
+            aim(f"plan {name}: < {t_aim:g} s, < {m_aim / 2**30:g} GiB",
+                f"{now['seconds']:.1f} s, {now['peak'] / 2**20:.0f} MiB", ok)
     print(f"({load()} at the end)")
 
 

@@ -21,6 +21,7 @@ sys.path.insert(0, str(HERE.parents[2]))
 sys.path.insert(0, str(HERE.parent))
 
 from bench_generate import spec_dict  # noqa: E402
+from sidebyside import aim  # noqa: E402
 
 from augsplit.build import build  # noqa: E402
 from augsplit.generate import Options, generate  # noqa: E402
@@ -59,6 +60,8 @@ def main() -> None:
     print(f"--store parquet {1e6 * best['parquet'] / a.n:.0f} us/image, --store tar {1e6 * best['tar'] / a.n:.0f} "
           f"us/image: tar/parquet = {ratio:.2f}x (aim <= {AIM}x): {'PASS' if ratio <= AIM else 'MISS'}{note}")
     sizes = {s: sum(p.stat().st_size for p in (tmp / s).rglob("*") if p.is_file()) for s in best}
+    aim(f"--store tar within {AIM}x of --store parquet per image",
+        f"{1e6 * best['tar'] / a.n:.0f} vs {1e6 * best['parquet'] / a.n:.0f} us = {ratio:.2f}x", ratio <= AIM)
     print("bytes per image: " + ", ".join(f"{s} {v / a.n:.0f}" for s, v in sizes.items()))
 
 

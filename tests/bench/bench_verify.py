@@ -22,6 +22,9 @@ from pathlib import Path
 
 import yaml
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from sidebyside import aim  # noqa: E402
+
 ROOT = Path(__file__).resolve().parents[2]
 AIM = 1.2  # peak RSS of the large run over the small one: "flat" with room for allocator noise
 
@@ -90,6 +93,8 @@ def main() -> None:
     verdict = "PASS" if ratio <= AIM else "MISS"
     note = f" (load {load:.2f} > {cores} cores: timing unreliable; memory still valid)" if load > cores else ""
     print(f"peak RSS {a.large:,} / {a.small:,} rows = {ratio:.2f}x (aim <= {AIM}x): {verdict}{note}")
+    aim(f"verify memory flat from {a.small:,} to {a.large:,} rows (within {AIM}x)",
+        f"{got[a.small]['peak_mib']:.0f} / {got[a.large]['peak_mib']:.0f} MiB = {ratio:.2f}x", ratio <= AIM)
 
 
 if __name__ == "__main__":
