@@ -23,15 +23,16 @@ ROOT = HERE.parents[1]
 
 # (script, arguments for a full run, arguments for a quick run)
 SCRIPTS = [
-    ("bench_plan.py", [], ["--quick"]),
+    ("bench_generate.py", ["--shard-size", "500"], ["--n", "1000", "--shard-size", "500", "--memory", "", "--no-dask"]),
     ("bench_store_files.py", [], ["--n", "4000", "--n-files", "1500"]),
-    ("bench_store_tar.py", [], []),
-    ("bench_verify.py", [], []),
+    ("bench_store_tar.py", [], ["--n", "1000", "--rounds", "2"]),
+    ("bench_plan.py", [], ["--sizes", "256,512"]),
+    ("bench_verify.py", [], ["--small", "20000", "--large", "200000"]),
     ("bench_scenes.py", [], []),
-    ("bench_phash.py", [], []),
+    ("bench_phash.py", [], ["--images", "10", "--rounds", "2"]),
     ("bench_audit.py", [], []),
-    ("bench_data.py", [], []),
-    ("bench_lookalikes.py", [], []),
+    ("bench_data.py", [], ["--quick"]),
+    ("bench_lookalikes.py", [], ["--random", "5"]),
 ]
 
 
