@@ -38,7 +38,7 @@ def font_code(name: str) -> int:
     return FONTS[base] | (cv2.FONT_ITALIC if base != name else 0)
 
 
-DEFAULT_FONTS = ("simplex", "duplex", "script_simplex", "script_complex")  # distinct in OpenCV 4 and 5
+DEFAULT_FONTS = ("simplex", "duplex", "script_simplex", "script_complex")  # distinct in OpenCV 4 and 5.0 (5.1: see pyproject)
 
 
 def _ink(text: str, font: int, scale: float, thickness: int, budget: PixelBudget | None = None,
