@@ -3,7 +3,8 @@
 A split's images are cut into shards of consecutive indices. A shard writes its image files
 (each straight to its name, all synced together) and then its manifest part (atomically,
 streamed in row groups): the part file is the shard's commit, so an interrupted run resumes
-by redoing exactly the shards without one. Output is byte-identical whatever the number of workers, shards or executor.
+by redoing exactly the shards without one. Output is byte-identical whatever the number of
+workers, shards or executor.
 """
 
 from __future__ import annotations
@@ -112,8 +113,9 @@ class _ImageFiles:
     `close` makes the shard's files durable at once (one syncfs, measured cheaper than one per
     batch; then the folder fsynced), before the caller commits the shard's part. A crash before
     that, even half-way through a file, leaves the shard without a part: nothing reads its
-    images, and a resumed run writes every one of them again. Written inline: writer threads
-    measured no faster (they hold the GIL while the renderer waits for it)."""
+    images, and a resumed run writes every one of them again. Written inline: a writer thread
+    measured the same on tmpfs, and 0.86x to 1.2x the time of inline writes on an erratic
+    shared ext4 disk (load 3 on 2 cores), so the simpler way was kept."""
 
     def __init__(self, folder: Path):
         self.folder = str(folder)
