@@ -314,9 +314,15 @@ def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tu
     return build(parse_spec(json.loads(spec_json)), Path(base_dir)), Path(out), Options(**opts)
 
 
+# What the driver has built, by state key, while its pool runs: a worker forked from it finds
+# the spec built here and does not plan it again (measured 0.05 s for a small spec; planning
+# a large canvas takes seconds). Spawned and dask workers build their own (_worker_state).
+_DRIVER_STATE: dict[tuple, tuple[Built, Path, Options]] = {}
+
+
 def _shard_task(state_key: tuple, job: ShardJob) -> int:
     """The task every executor runs: (re)build the spec once per process, make one shard."""
-    built, out, opts = _worker_state(*state_key)
+    built, out, opts = _DRIVER_STATE.get(state_key) or _worker_state(*state_key)
     return make_shard(built, job, out, opts)
 
 
@@ -440,6 +446,7 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
         else:
             key = (built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
                    json.dumps(asdict(opts)))
+            _DRIVER_STATE[key] = (built, out.resolve(), opts)
             results = executors.run(functools.partial(_shard_task, key), todo, opts.workers,
                                     executor=opts.executor, client=client)
         with closing(results):
@@ -452,6 +459,7 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
                                        where=str(part))
                 bar.update(count)
     finally:
+        _DRIVER_STATE.clear()
         bar.close()
 
 
