@@ -108,7 +108,7 @@ def two_vs_one(built, stores_where: list[tuple[str, Path]], repeat: int) -> tupl
 def ratio_text(one: float, two: float, busy: bool, unit: str, scale: float) -> str:
     """1 worker vs 2 as a ratio, or, measured under a load above the core count, only the raw
     times: such a ratio says nothing about the code and is not reported."""
-    times = f"1 worker {one * scale:.2f}, 2 workers {two * scale:.2f} {unit}"
+    times = f"1 worker {one * scale:.3g}, 2 workers {two * scale:.3g} {unit}"
     if busy or overloaded():
         return f"no ratio (load above {os.cpu_count()} cores): {times}"
     return f"{one / two:.2f}x ({times})"
