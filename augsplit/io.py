@@ -1,7 +1,9 @@
 """Safe writing, the one way augsplit puts a file on disk: a temporary name in the same folder,
 flushed and fsynced, renamed over a missing path or a regular file only (never a symlink,
-FIFO, device or folder), then the folder fsynced. Also `-` as stdout, report folders, and
-plain JSON values."""
+FIFO, device or folder), then the folder fsynced. Files that a later commit makes valid (a
+generated shard's images, committed by its manifest part) are instead made create-only at
+their final names and synced together before that commit (`write_new_file`, `sync_files`).
+Also `-` as stdout, report folders, and plain JSON values."""
 
 from __future__ import annotations
 
@@ -13,7 +15,7 @@ import os
 import secrets
 import stat
 import sys
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 
 from .errors import DatasetError
@@ -182,19 +184,55 @@ def write_files_atomic(items, *, sync: bool = True) -> None:
                 tmp.unlink()
 
 
+_CREATE_ONLY = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
+
+
+def write_new_file(path: str, data) -> bool:
+    """Write `data` into a file made at `path` now, or return False, writing nothing, when
+    anything is already there (create-only, O_EXCL: never over or through an existing file,
+    link or folder). One open, write and close: no temporary, no rename, no sync.
+
+    Until it is closed the file is partial at its final name, so this is only for files that
+    nothing takes as valid before the caller commits them after a `sync_files` (generation:
+    a shard's images, committed by the shard's manifest part; a resumed run writes the images
+    of a shard without a part again). A failed write removes the file it made."""
+    try:
+        fd = os.open(path, _CREATE_ONLY, 0o666)
+    except FileExistsError:
+        return False
+    try:
+        view = memoryview(data)
+        while view:
+            view = view[os.write(fd, view):]
+    except BaseException:
+        with suppress(OSError):
+            if os.lstat(path).st_ino == os.fstat(fd).st_ino:  # still the file made here
+                os.unlink(path)
+        os.close(fd)
+        raise
+    os.close(fd)
+    return True
+
+
 def _sync_folders(paths) -> None:
     for folder in dict.fromkeys(Path(p).parent for p in paths):
         fsync_folder(folder)
 
 
 def sync_files(paths) -> None:
-    """Make files written with `write_files_atomic(..., sync=False)` durable, names included:
-    one syncfs per file system (an fsync per file where there is none), then each folder
-    fsynced once."""
-    paths = [Path(p) for p in paths]
-    if paths:
-        _sync_data(paths)
-        _sync_folders(paths)
+    """Make files written unsynced (`write_files_atomic(..., sync=False)`, `write_new_file`)
+    durable, names included: one syncfs per file system of their folders (an fsync per file
+    for a single file or where there is no syncfs), then each folder fsynced once."""
+    paths = [os.fspath(p) for p in paths]
+    if not paths:
+        return
+    folders = list(dict.fromkeys(os.path.dirname(p) or "." for p in paths))
+    devices = {os.stat(f).st_dev: f for f in folders}
+    if len(paths) == 1 or not all(syncfs(Path(f)) for f in devices.values()):
+        for p in paths:
+            _fsync_file(p)
+    for f in folders:
+        fsync_folder(f)
 
 
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:

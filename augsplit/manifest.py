@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import pyarrow as pa
 
+from .columnar import to_arrow
 from .space.axes import AXIS_COLUMNS as AXIS_COLUMN_NAMES, BUILTIN
 
 
@@ -126,12 +127,13 @@ def file_metadata(canonical_spec: str, spec_hash: str) -> dict[bytes, bytes]:
 
 
 def to_table(columns: dict, schema: pa.Schema, metadata: dict[bytes, bytes]) -> pa.Table:
-    """Columns (name -> array/list) conformed to the schema; absent columns become nulls."""
+    """Columns (name -> array/list) conformed to the schema; absent columns become nulls.
+    NaN and None become nulls too (pandas is not imported: see augsplit.columnar)."""
     n = len(next(iter(columns.values()))) if columns else 0
     arrays = []
     for f in schema:
         if f.name in columns:
-            arrays.append(pa.array(columns[f.name], type=f.type, from_pandas=True))
+            arrays.append(to_arrow(columns[f.name], f.type))
         else:
             arrays.append(pa.nulls(n, type=f.type))
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(metadata))

@@ -10,6 +10,7 @@ from collections import Counter
 from pathlib import Path
 
 import pyarrow.parquet as pq
+import pytest
 from specs import spec_dict
 
 from augsplit.build import open_mapping
@@ -66,3 +67,49 @@ def test_importing_the_generator_does_not_import_pandas():
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     assert res.returncode == 0, res.stderr
     assert json.loads(res.stdout.strip().splitlines()[-1]) == []
+
+
+def test_a_generation_run_imports_neither_pandas_nor_scipy(tmp_path):
+    """Measured before: `import augsplit.generate` imported scipy (0.2 s: scipy.fft at the top of
+    sources/backgrounds.py), and the first row group of every shard task imported pandas
+    (0.5 s per process: pyarrow's `pa.array` does, in manifest.to_table); so did finalize's
+    `to_numpy`. A run of every store, its worker's shard task and finalize now import neither."""
+    code = f"""
+import json, sys
+sys.path.insert(0, {str(Path(__file__).parent)!r})
+heavy = lambda: sorted(m for m in ('pandas', 'scipy') if m in sys.modules)
+import augsplit.generate as g
+seen = {{'import': heavy()}}
+from specs import spec_dict
+from augsplit.build import open_mapping
+spec = dict(spec_dict(), render={{'distractors': {{'count': [0, 1]}}}})  # a distractor table as well
+built = open_mapping(spec)
+for store in g.STORES:
+    g.generate(None, {str(tmp_path)!r} + '/' + store, g.Options(progress=False, store=store, shard_size=7), built=built)
+    seen[store] = heavy()
+print(json.dumps(seen))
+"""
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert res.returncode == 0, res.stderr
+    seen = json.loads(res.stdout.strip().splitlines()[-1])
+    assert seen == {k: [] for k in ("import", "files", "parquet", "tar", "none")}
+
+
+def test_forked_workers_use_the_spec_the_driver_built(tmp_path, monkeypatch):
+    """Measured before: every forked pool worker parsed and planned the spec again (0.05 s for a
+    small spec, seconds for a large canvas), a fixed cost per worker and run."""
+    import multiprocessing as mp
+
+    import augsplit.generate as gen
+
+    if mp.get_start_method(allow_none=True) == "spawn":
+        pytest.skip("spawned workers build their own")
+    built = open_mapping(spec_dict())
+
+    def planned_again(*a, **kw):
+        raise AssertionError("a worker planned the spec again")
+
+    monkeypatch.setattr(gen, "build", planned_again)
+    generate(None, tmp_path / "ds", Options(progress=False, store="none", shard_size=3, workers=2,
+                                           executor="processes", force_workers=True), built=built)
+    assert (tmp_path / "ds" / lay.SUMMARY_FILE).is_file()

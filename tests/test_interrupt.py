@@ -121,6 +121,37 @@ def test_sigkill_of_the_driver_then_resume_gives_the_uninterrupted_bytes(spec_fi
     resume_and_compare(spec_file, out, serial)
 
 
+class Crash(Exception):
+    pass
+
+
+def test_a_crash_between_a_shards_images_and_its_part_leaves_a_shard_resume_remakes(spec_file, serial, tmp_path,
+                                                                                    monkeypatch):
+    """Images are written straight to their final names and only the part commits a shard. A
+    crash after a shard's images are on disk (one half-written, as a kill mid-write leaves it)
+    and before its part: the shard is not counted, and a resumed run remakes every image of it
+    (the serial bytes, no temporaries, nothing extra)."""
+    import augsplit.generate as gen
+
+    out = tmp_path / "ds"
+    real, calls = gen.sync_files, []
+
+    def crash_on_the_third_shard(paths):
+        calls.append(list(paths))
+        if len(calls) == 3:
+            raise Crash
+        real(paths)
+
+    monkeypatch.setattr(gen, "sync_files", crash_on_the_third_shard)
+    with pytest.raises(Crash):
+        generate(spec_file, out, SERIAL)
+    monkeypatch.undo()
+    images = [Path(p) for p in calls[-1]]
+    assert len(committed(out)) == 2 and len(images) == SIZE and all(p.is_file() for p in images)
+    images[1].write_bytes(images[1].read_bytes()[:10])
+    resume_and_compare(spec_file, out, serial)
+
+
 def test_a_killed_pool_worker_is_replaced_and_its_shard_redone(spec_file, serial, tmp_path):
     out = tmp_path / "ds"
     proc = start(spec_file, out)

@@ -20,10 +20,17 @@ from augsplit.io import atomic_path, ensure_folder, write_bytes_atomic, write_fi
 
 @pytest.fixture
 def events(monkeypatch):
-    """Every temporary name handed out, fsync (by the path its descriptor names), syncfs (by
-    file system) and rename, in order."""
+    """Every temporary name handed out, file made create-only (O_EXCL), fsync (by the path its
+    descriptor names), syncfs (by file system) and rename, in order."""
     log: list[tuple] = []
     real_fsync, real_replace, real_tmp, real_syncfs = os.fsync, os.replace, aio.temporary_name, aio.syncfs
+    real_open = os.open
+
+    def open_(path, flags, *a, **kw):
+        fd = real_open(path, flags, *a, **kw)
+        if flags & os.O_CREAT and flags & os.O_EXCL:
+            log.append(("create", str(Path(path).resolve())))
+        return fd
 
     def fsync(fd):
         log.append(("fsync", os.readlink(f"/proc/self/fd/{fd}")))  # Linux: the open file's path
@@ -45,6 +52,7 @@ def events(monkeypatch):
         return tmp
 
     monkeypatch.setattr(os, "fsync", fsync)
+    monkeypatch.setattr(os, "open", open_)
     monkeypatch.setattr(os, "replace", replace)
     monkeypatch.setattr(aio, "syncfs", syncfs)
     monkeypatch.setattr(aio, "temporary_name", temporary_name)
@@ -66,18 +74,20 @@ def assert_committed(log, final: Path) -> None:
 
 
 def assert_durable_before_part(log, image: Path, parts: list[Path]) -> None:
-    """An image file renamed into place whole (from a temporary sibling), then its data synced
-    (its own fsync or a syncfs of its file system) and its folder fsynced, all before the next
-    part commits (serial run: its shard's part). POSIX: fsync of the file and of its folder
-    make the data and the name durable."""
+    """An image file made whole at its name (created there, or renamed from a temporary
+    sibling), then its data synced (its own fsync or a syncfs of its file system) and its
+    folder fsynced, all before the next part commits (serial run: its shard's part). POSIX:
+    fsync of the file and of its folder make the data and the name durable."""
     image = image.resolve()
-    i = next(k for k, e in enumerate(log) if e[0] == "replace" and e[2] == str(image))
-    tmp = log[i][1]
-    assert Path(tmp).name.startswith(f".{image.name}.tmp-")
-    made = log.index(("tmp", tmp))
+    i = next(k for k, e in enumerate(log) if e == ("create", str(image)) or (e[0] == "replace" and e[2] == str(image)))
+    made = i
+    if log[i][0] == "replace":
+        tmp = log[i][1]
+        assert Path(tmp).name.startswith(f".{image.name}.tmp-")
+        made = log.index(("tmp", tmp))
     names = {str(p.resolve()) for p in parts}
     commit = next(k for k, e in enumerate(log) if k > i and e[0] == "replace" and e[2] in names)
-    synced = {("fsync", tmp), ("fsync", str(image)), ("syncfs", os.stat(image).st_dev)}
+    synced = {("fsync", log[i][1]), ("fsync", str(image)), ("syncfs", os.stat(image).st_dev)}
     assert synced & set(log[made:commit]), f"{image.name}'s shard committed before the image was synced"
     assert ("fsync", str(image.parent)) in log[i + 1:commit], f"{image.parent} not synced before the part commits"
 
@@ -112,6 +122,43 @@ def test_a_shard_of_files_is_synced_once_not_per_batch(tmp_path, events):
     last_part = max(k for k, e in enumerate(events) if e[0] == "replace" and e[2] in {str(p.resolve()) for p in parts})
     summary = next(k for k, e in enumerate(events) if e[0] == "replace" and e[2].endswith(mf.SUMMARY_FILE))
     assert last_part < summary
+
+
+def test_a_fresh_shard_makes_each_image_once_at_its_name(tmp_path, events):
+    """Measured before: each image went to a temporary name, was checked twice and renamed (a
+    third of `--store files`' cost per image on tmpfs). A shard's part is its commit, so a
+    fresh shard creates each image at its final name, create-only, and syncs them together."""
+    out = tmp_path / "ds"
+    generate(None, out, Options(progress=False, store="files", shard_size=10), built=open_mapping(spec_dict()))
+    images = {str(p.resolve()) for p in (out / mf.IMAGES_DIR).rglob("*.png")}
+    assert images and images == {e[1] for e in events if e[0] == "create" and e[1] in images}
+    assert not [e for e in events if e[0] == "replace" and e[2] in images]
+    assert not [e for e in events if e[0] == "tmp" and Path(e[1]).parent.parent.name == mf.IMAGES_DIR]
+
+
+def test_an_image_already_at_its_name_is_replaced_whole_and_a_link_never_followed(tmp_path, events):
+    """A resumed shard finds its earlier attempt's images (maybe half-written): each is replaced
+    through a temporary, as before; a symbolic link there is refused, its target untouched."""
+    folder = tmp_path / "images"
+    folder.mkdir()
+    (folder / "a.png").write_bytes(b"half")
+    assert not aio.write_new_file(str(folder / "a.png"), b"whole")  # nothing written: it is there
+    assert (folder / "a.png").read_bytes() == b"half"
+    assert aio.write_new_file(str(folder / "b.png"), b"new") and (folder / "b.png").read_bytes() == b"new"
+    (tmp_path / "theirs").write_bytes(b"theirs")
+    (folder / "c.png").symlink_to(tmp_path / "theirs")
+    assert not aio.write_new_file(str(folder / "c.png"), b"new")
+    assert (tmp_path / "theirs").read_bytes() == b"theirs"
+
+
+def test_a_failed_create_only_write_leaves_nothing(tmp_path, monkeypatch):
+    def full(fd, data):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(os, "write", full)
+    with pytest.raises(OSError):
+        aio.write_new_file(str(tmp_path / "a.png"), b"data")
+    assert os.listdir(tmp_path) == []
 
 
 def test_atomic_path_syncs_what_a_writer_left_at_the_temporary(tmp_path, events):

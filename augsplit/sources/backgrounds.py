@@ -12,7 +12,6 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import scipy.fft
 
 from ..errors import SourceError, SpecError
 from .base import LUMA_BT601, PixelBudget
@@ -162,6 +161,8 @@ class PinkNoise:
         # real and imaginary parts of every rfft2 coefficient, as complex64
         coef = rng.standard_normal((k, height, 2 * gain.shape[1]), dtype=np.float32).view(np.complex64)
         coef *= gain
+        import scipy.fft  # here, not at the top: 0.2 s that every generation run would pay
+
         return scipy.fft.irfft2(coef, s=(height, width), overwrite_x=True)
 
     def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:

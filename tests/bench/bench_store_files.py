@@ -2,23 +2,28 @@
 
 1. `--store files`, one worker, the CLI's shard size (500), against the bare loop of
    bench_generate.py that warps, encodes and writes each PNG to its own file; on the disk
-   holding --disk (default: this worktree) and on tmpfs (/dev/shm). Aim: within 1.3x. Also the
-   durability scheme before this change (a sync per batch of 16 files) side by side.
-2. Two workers against one at --n images (default 20,000) for every store. Aim: at least 1.7x.
-   A ratio measured while the load average is above the number of cores says nothing about
-   the code: it is then not reported (MISS-UNRELIABLE), only the raw times and the load.
-3. The fixed start-up: `import augsplit.generate` in a fresh interpreter.
+   holding --disk (default: this worktree) and on tmpfs (/dev/shm). Aim: within 1.3x. The
+   other stores and the bare loop without writes are printed beside it, to show where the
+   rest of the time goes.
+2. Two workers against one at --n images (default 20,000) for every store (`files` on the
+   disk and on tmpfs). Aim: at least 1.7x. A ratio measured while the 1-minute load average
+   was above the number of cores before any of its timed runs says nothing about the code: it
+   is printed as MISS-UNRELIABLE, with the raw times and the load.
+3. The fixed start-up: `import augsplit.generate` in a fresh interpreter (aim: neither pandas
+   nor scipy imported) and a small run (--n-small images, default 3,000) with 2 workers against
+   1 (aim: faster, i.e. above 1.0x).
 
 Every timed figure is the best of --repeat interleaved rounds; the load (/proc/loadavg) is
-printed before and after each section.
+printed before and after each section, and with every aim (`AIM | ...` lines, sidebyside.aim).
 
-    python tests/bench/bench_store_files.py [--n 20000] [--n-files 3000] [--repeat 2]
-                                            [--disk DIR] [--skip-workers]
+    python tests/bench/bench_store_files.py [--n 20000] [--n-files 3000] [--n-small 3000]
+                                            [--repeat 2] [--disk DIR] [--skip-workers]
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import shutil
 import subprocess
@@ -30,126 +35,130 @@ HERE = Path(__file__).resolve()
 sys.path.insert(0, str(HERE.parent))
 
 import bench_generate as bg  # noqa: E402 - the shared baselines and spec
+from sidebyside import aim, overloaded  # noqa: E402
 
-SHARD = 500  # the CLI's default shard size
-AIM_FILES, AIM_WORKERS = 1.3, 1.7
-
-
-def load() -> tuple[float, float, float]:
-    return os.getloadavg()
+SHARD = 500  # the CLI's default shard size (generate.Options.shard_size)
+AIM_FILES, AIM_WORKERS, AIM_SMALL = 1.3, 1.7, 1.0
 
 
 def load_text() -> str:
-    one, five, fifteen = load()
+    one, five, fifteen = os.getloadavg()
     return f"load average {one:.2f} {five:.2f} {fifteen:.2f} on {os.cpu_count()} cores"
 
 
-def verdict(ok: bool) -> str:
-    return "PASS" if ok else "MISS"
-
-
-def per_batch_sync(batch):
-    """The scheme before this change: each batch of 16 files synced (syncfs) before its renames."""
-    from augsplit import generate as g
-    from augsplit.io import write_files_atomic
-
-    g._guard_disk(lambda: write_files_atomic(batch), batch[0][0])
+def settle(where: Path) -> None:
+    """Start each timed run from the same state: the previous run's files removed and every
+    pending write flushed (deleting thousands of files, then writing back, otherwise lands in
+    the next run's time on a real disk)."""
+    for d in ("bare", "ds"):
+        shutil.rmtree(where / d, ignore_errors=True)
+    os.sync()
 
 
 def files_section(built, n: int, repeat: int, where: Path) -> None:
-    from augsplit import generate as g
-
-    print(f"\n== --store files, 1 worker, shard {SHARD}, {n} images on {bg.fs_of(where)} ({where})")
+    fs = bg.fs_of(where)
+    print(f"\n== --store files, 1 worker, shard {SHARD}, {n} images on {fs} ({where})")
     print(f"   before: {load_text()}")
 
-    def bare():
-        return bg.baseline_a(built, n)
-
     def bare_write():
-        d = where / "bare"
-        shutil.rmtree(d, ignore_errors=True)
-        d.mkdir()
-        return bg.baseline_a(built, n, d)
+        (where / "bare").mkdir()
+        return bg.baseline_a(built, n, where / "bare")
 
-    def files():
-        return bg.run_augsplit(built, where / "ds", store="files", shard_size=SHARD)
+    def store(name):
+        return lambda: bg.run_augsplit(built, where / "ds", store=name, shard_size=SHARD)
 
-    def files_old_sync():
-        new = g._write_files
-        g._write_files = per_batch_sync
-        try:
-            return bg.run_augsplit(built, where / "ds", store="files", shard_size=SHARD)
-        finally:
-            g._write_files = new
-
-    def none():
-        return bg.run_augsplit(built, where / "ds", store="none", shard_size=SHARD)
-
-    configs = [("bare: warp + encode PNG", bare), ("bare + write each PNG to a file", bare_write),
-               ("augsplit --store none", none), ("augsplit --store files (one sync per shard)", files),
-               ("augsplit --store files, a sync per batch of 16 (before)", files_old_sync)]
+    configs = [("bare: warp + encode PNG", lambda: bg.baseline_a(built, n)),
+               ("bare + write each PNG to a file", bare_write),
+               ("augsplit --store none (no encode)", store("none")),
+               ("augsplit --store parquet", store("parquet")),
+               ("augsplit --store files", store("files"))]
     got = {}
-    for _ in range(repeat):
+    for _ in range(repeat):  # interleaved: each round runs every configuration once
         for label, fn in configs:
+            settle(where)
             got[label] = min(got.get(label, float("inf")), fn())
-    shutil.rmtree(where / "bare", ignore_errors=True)
-    shutil.rmtree(where / "ds", ignore_errors=True)
+    settle(where)
     base = got["bare + write each PNG to a file"]
     for label, _fn in configs:
-        print(f"   {label:58s} {got[label] * 1e6:7.0f} us/img  {got[label] / base:5.2f}x bare+write")
-    ratio = got["augsplit --store files (one sync per shard)"] / base
-    one, _, _ = load()
-    note = "" if one <= (os.cpu_count() or 1) else f"  (load {one:.1f} above {os.cpu_count()} cores: noisy)"
-    print(f"   aim: --store files within {AIM_FILES}x of bare+write: {ratio:.2f}x  {verdict(ratio <= AIM_FILES)}{note}")
+        print(f"   {label:40s} {got[label] * 1e6:7.0f} us/img  {got[label] / base:5.2f}x bare+write")
+    ratio = got["augsplit --store files"] / base
+    aim(f"--store files within {AIM_FILES}x of bare encode + write, 1 worker, {fs.split()[0]}",
+        f"{ratio:.2f}x ({got['augsplit --store files'] * 1e6:.0f} vs {base * 1e6:.0f} us/img, {n} images)",
+        ratio <= AIM_FILES)
     print(f"   after: {load_text()}")
 
 
-def workers_section(n: int, repeat: int, where: Path) -> None:
+def two_vs_one(built, stores_where: list[tuple[str, Path]], repeat: int) -> tuple[dict, bool]:
+    """Best time per image of 1 and 2 workers for each (store, folder), interleaved; and
+    whether the 1-minute load was above the core count before any timed run."""
+    cores = os.cpu_count() or 1
+    busy = False
+    got = {}
+    for _ in range(repeat):
+        for store, where in stores_where:
+            for w in (1, 2):
+                settle(where)
+                busy = busy or os.getloadavg()[0] > cores
+                t = bg.run_augsplit(built, where / "ds", store=store, workers=w, shard_size=SHARD)
+                key = (store, str(where), w)
+                got[key] = min(got.get(key, float("inf")), t)
+    return got, busy
+
+
+def ratio_text(one: float, two: float, busy: bool, unit: str, scale: float) -> str:
+    """1 worker vs 2 as a ratio, or, measured under a load above the core count, only the raw
+    times: such a ratio says nothing about the code and is not reported."""
+    times = f"1 worker {one * scale:.3g}, 2 workers {two * scale:.3g} {unit}"
+    if busy or overloaded():
+        return f"no ratio (load above {os.cpu_count()} cores): {times}"
+    return f"{one / two:.2f}x ({times})"
+
+
+def workers_section(n: int, repeat: int, disk: Path, shm: Path) -> None:
     from augsplit.build import open_mapping
     from augsplit.generate import STORES
 
     built = open_mapping(bg.spec_dict(n))
-    cores = os.cpu_count() or 1
-    print(f"\n== 2 workers vs 1, {n} images, shard {SHARD}, on {bg.fs_of(where)} ({where})")
+    runs = [(s, shm) for s in STORES] + [("files", disk)]
+    print(f"\n== 2 workers vs 1, {n} images, shard {SHARD}; `files` on {bg.fs_of(disk)} and on {bg.fs_of(shm)}")
     print(f"   before: {load_text()}")
-    worst = 0.0  # the highest 1-minute load seen just before a timed run
-    got = {}
-    for _ in range(repeat):
-        for store in STORES:
-            for w in (1, 2):
-                worst = max(worst, load()[0])
-                t = bg.run_augsplit(built, where / "ds", store=store, workers=w, shard_size=SHARD)
-                got[store, w] = min(got.get((store, w), float("inf")), t)
-    shutil.rmtree(where / "ds", ignore_errors=True)
-    # the 1-minute average also carries our own previous runs, so this errs on the side of
-    # refusing a ratio, never of reporting one measured on busy cores
-    reliable = worst <= cores
-    for store in STORES:
-        one, two = got[store, 1], got[store, 2]
-        line = f"   --store {store:8s} 1 worker {one * 1e6:6.0f} us/img, 2 workers {two * 1e6:6.0f} us/img"
-        if reliable:
-            print(f"{line}: {one / two:.2f}x  {verdict(one / two >= AIM_WORKERS)} (aim {AIM_WORKERS}x)")
-        else:
-            print(f"{line}: MISS-UNRELIABLE (1-min load {worst:.1f} before a run, above {cores} cores: "
-                  "no ratio reported)")
+    got, busy = two_vs_one(built, runs, repeat)
+    for store, where in runs:
+        one, two = got[store, str(where), 1], got[store, str(where), 2]
+        fs = bg.fs_of(where).split()[0]
+        print(f"   --store {store:8s} on {fs:6s} 1 worker {one * 1e6:6.0f} us/img, 2 workers {two * 1e6:6.0f} us/img")
+        aim(f"2 workers at least {AIM_WORKERS}x one, --store {store} on {fs}, {n} images",
+            ratio_text(one, two, busy, "us/img", 1e6), one / two >= AIM_WORKERS, needs_idle=True, busy=busy)
     print(f"   after: {load_text()}")
 
 
-def startup_section() -> None:
+def startup_section(n_small: int, repeat: int, shm: Path) -> None:
+    from augsplit.build import open_mapping
+
     print("\n== start-up: `import augsplit.generate` in a fresh interpreter, best of 3")
     env = dict(os.environ, PYTHONPATH=str(HERE.parents[2]))
-    code = ("import sys, time; t = time.perf_counter(); import augsplit.generate; "
-            "print(time.perf_counter() - t, 'pandas' in sys.modules)")
-    runs = [subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, check=True)
-            .stdout.split() for _ in range(3)]
-    best = min(runs, key=lambda r: float(r[0]))
-    print(f"   {float(best[0]):.2f} s; pandas imported: {best[1]}   ({load_text()})")
+    code = ("import json, sys, time; t = time.perf_counter(); import augsplit.generate; "
+            "print(json.dumps([time.perf_counter() - t, [m for m in ('pandas', 'scipy') if m in sys.modules]]))")
+    runs = [json.loads(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env,
+                                      check=True, cwd=tempfile.gettempdir()).stdout)
+            for _ in range(3)]
+    seconds, heavy = min(runs)
+    print(f"   {seconds:.2f} s; heavy modules imported: {heavy or 'none'}   ({load_text()})")
+    aim("import augsplit.generate loads neither pandas nor scipy", f"{seconds:.2f} s, imported: {heavy or 'neither'}",
+        not heavy)
+    built = open_mapping(bg.spec_dict(n_small))
+    print(f"\n== a small run: {n_small} images, --store parquet on tmpfs, 2 workers vs 1")
+    got, busy = two_vs_one(built, [("parquet", shm)], repeat)
+    one, two = got["parquet", str(shm), 1], got["parquet", str(shm), 2]
+    aim(f"a small run gains from 2 workers ({n_small} images, --store parquet)",
+        ratio_text(one, two, busy, "s per run", n_small), one / two > AIM_SMALL, needs_idle=True, busy=busy)
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=20000, help="images per run in the workers section")
     ap.add_argument("--n-files", type=int, default=3000, help="images per run in the files section")
+    ap.add_argument("--n-small", type=int, default=3000, help="images of the small run in the start-up section")
     ap.add_argument("--repeat", type=int, default=2)
     ap.add_argument("--disk", default=str(HERE.parents[2]), help="a folder on the real disk to measure")
     ap.add_argument("--skip-workers", action="store_true")
@@ -157,22 +166,18 @@ def main() -> None:
     from augsplit.build import open_mapping
 
     print(bg.machine())
-    startup_section()
-    built = open_mapping(bg.spec_dict(a.n_files))
-    for parent in (Path(a.disk), Path("/dev/shm")):
-        if parent.is_dir():
-            where = Path(tempfile.mkdtemp(prefix=".bench-files-", dir=parent))
-            try:
-                files_section(built, a.n_files, a.repeat, where)
-            finally:
-                shutil.rmtree(where, ignore_errors=True)
-    if not a.skip_workers:
-        for parent in (Path(a.disk), Path("/dev/shm")):
-            where = Path(tempfile.mkdtemp(prefix=".bench-workers-", dir=parent))
-            try:
-                workers_section(a.n, a.repeat, where)
-            finally:
-                shutil.rmtree(where, ignore_errors=True)
+    made = [Path(tempfile.mkdtemp(prefix=".bench-files-", dir=parent)) for parent in (a.disk, "/dev/shm")]
+    disk, shm = made
+    try:
+        startup_section(a.n_small, a.repeat, shm)
+        built = open_mapping(bg.spec_dict(a.n_files))
+        for where in made:
+            files_section(built, a.n_files, a.repeat, where)
+        if not a.skip_workers:
+            workers_section(a.n, a.repeat, disk, shm)
+    finally:
+        for d in made:
+            shutil.rmtree(d, ignore_errors=True)
 
 
 if __name__ == "__main__":

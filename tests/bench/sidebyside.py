@@ -52,13 +52,14 @@ def overloaded() -> bool:
     return os.getloadavg()[0] > (os.cpu_count() or 1)
 
 
-def aim(name: str, measured: str, ok: bool, *, needs_idle: bool = False) -> str:
+def aim(name: str, measured: str, ok: bool, *, needs_idle: bool = False, busy: bool = False) -> str:
     """Print one aim as `AIM | name | measured | load | PASS or MISS` and return the verdict.
 
     With `needs_idle` (a ratio between runs that compete for cores, such as 2 workers vs 1),
-    a measurement taken under a load above the core count is reported as MISS-UNRELIABLE."""
+    a measurement taken under a load above the core count is reported as MISS-UNRELIABLE:
+    the load now, or `busy` (the caller saw such a load before one of its timed runs)."""
     word = verdict(ok)
-    if needs_idle and overloaded():
+    if needs_idle and (busy or overloaded()):
         word = "MISS-UNRELIABLE"
     one = os.getloadavg()[0]
     print(f"AIM | {name} | {measured} | load {one:.1f} on {os.cpu_count()} cores | {word}", flush=True)
