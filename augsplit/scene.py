@@ -75,7 +75,7 @@ class _Draws:
         if not self.rows:
             u = self.rng.random((self.size, self.plan.space.ndim + 3))
             cols = draw_placements(self.plan, self.split, u)
-            self.rows = [dict(zip(cols, vals)) for vals in zip(*map(list, cols.values()))][::-1]
+            self.rows = [dict(zip(cols, vals)) for vals in zip(*(c.tolist() for c in cols.values()))][::-1]
             self.size *= 2  # rejections: draw further ahead next time
         return self.rows.pop()
 
