@@ -36,7 +36,7 @@ from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_text_atomic
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
-from .scene import make_scene, native_diameter, pixel_sha256
+from .scene import make_scenes, native_diameter, pixel_sha256
 from .spec import parse_spec
 from .threads import limit_opencv
 
@@ -266,10 +266,9 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     size_px = np.zeros(n, dtype=np.float64)
     ids, file_col, data_col, sums, byte_sums = [], [], [], [], []
     dist_rows: list[dict] = []
-    for r, vals in enumerate(values):
-        row = dict(zip(names, vals))
+    rows = [dict(zip(names, vals)) for vals in values]
+    for r, (row, scene) in enumerate(zip(rows, make_scenes(plan, built.source, built.background, split, rows))):
         image_id = f"{job.split}-{row['index']:07d}"
-        scene = make_scene(plan, built.source, built.background, split, row)
         t = scene.target
         bbox[r] = t.bbox
         footprint_px[r] = t.footprint_px

@@ -44,9 +44,15 @@ for spec in json.loads(sys.stdin.read()):
     plan = built.plan
     for split in plan.splits:
         cols = draw(plan, split, np.arange(sum(split.counts)))
-        for i in range(len(cols["index"])):
-            row = {k: v[i] for k, v in cols.items()}
-            s = make_scene(plan, built.source, built.background, split, row)
+        rows = [{k: v[i] for k, v in cols.items()} for i in range(len(cols["index"]))]
+        if sys.argv[1] == "batch":  # as generate renders them: a row group at a time
+            import augsplit.scene as scene_module
+            scene_module.SCENE_BATCH_ROWS = 7  # several batches per split, the last one short
+            make_scenes = scene_module.make_scenes
+            scenes = make_scenes(plan, built.source, built.background, split, rows)
+        else:
+            scenes = (make_scene(plan, built.source, built.background, split, row) for row in rows)
+        for s in scenes:
             h = hashlib.sha256(np.ascontiguousarray(s.image).tobytes())
             h.update(repr([sorted((k, repr(v.item() if hasattr(v, "item") else v)) for k, v in d.items())
                            for d in s.distractors]).encode())
@@ -71,10 +77,10 @@ def _spec(background, count, no_overlap, attempts, mode, wh) -> dict:
 SPECS = [_spec(bg, *case) for case in CASES for bg in BACKGROUNDS]
 
 
-def _hashes(tree: Path) -> list[str]:
+def _hashes(tree: Path, how: str = "row") -> list[str]:
     env = dict(os.environ, PYTHONPATH=str(tree), MPLBACKEND="Agg")
     # -P: the working folder is not put on the path (it may hold another tree's augsplit)
-    r = subprocess.run([sys.executable, "-P", "-c", SCRIPT], input=json.dumps(SPECS), env=env, capture_output=True,
+    r = subprocess.run([sys.executable, "-P", "-c", SCRIPT, how], input=json.dumps(SPECS), env=env, capture_output=True,
                        text=True, timeout=600)
     assert f"{tree}/augsplit/" in r.stderr.splitlines()[-1], r.stderr[-2000:]
     assert r.returncode == 0, r.stderr[-2000:]
@@ -93,8 +99,10 @@ def reference(tmp_path_factory) -> list[str]:
     return _hashes(dest)
 
 
-def test_scenes_have_the_bytes_the_pinned_commit_gave(reference):
-    got = _hashes(ROOT)
+@pytest.mark.parametrize("how", ["row", "batch"])
+def test_scenes_have_the_bytes_the_pinned_commit_gave(reference, how):
+    # row: make_scene per row, as loaders re-render; batch: make_scenes, as generate renders
+    got = _hashes(ROOT, how)
     assert len(got) == len(reference) > 500
     differ = [i for i, (a, b) in enumerate(zip(got, reference)) if a != b]
     assert not differ, f"{len(differ)} of {len(got)} scenes differ from {REF}, the first at {differ[:5]}"
