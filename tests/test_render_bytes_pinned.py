@@ -22,8 +22,10 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 REF = "2931983"  # main before the distractor and noise speed-ups (issue 14, outcomes 5 and 9)
 
-BACKGROUNDS = [{"kind": "solid", "value": 0.3}, {"kind": "pink_noise", "mean": 0.5, "contrast": 0.2},
-               {"kind": "pink_noise", "mean": 0.4, "contrast": 0.3, "exponent": 1.7, "per_channel": True},
+# "spectrum" was the default synthesis at REF: datasets made then name it in their stored spec
+BACKGROUNDS = [{"kind": "solid", "value": 0.3}, {"kind": "pink_noise", "mean": 0.5, "contrast": 0.2, "synthesis": "spectrum"},
+               {"kind": "pink_noise", "mean": 0.4, "contrast": 0.3, "exponent": 1.7, "per_channel": True,
+                "synthesis": "spectrum"},
                {"kind": "pink_noise", "mean": 0.5, "contrast": 0.2, "synthesis": "white"},
                {"kind": "gaussian_noise", "mean": 0.5, "sd": 0.1}, {"kind": "uniform_noise"}]
 CASES = [  # (distractor count, no_overlap, attempts, mode, canvas width x height)
