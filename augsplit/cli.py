@@ -354,7 +354,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
     q.add_argument("--quality", type=int, default=95, help="JPEG quality 0-100, WebP 1-100 (PNG: unused, 0-100)")
     q.add_argument("--png-level", type=int, default=None,
-                   help="PNG zlib level 0-9, no row filter (default 1: measured the best trade of size and "
+                   help="PNG zlib level 0-9, 'up' row filter (default 1: measured the best trade of size and "
                         "time); 0 stores raw, 9 packs hardest; the pixels are the same at every level")
     q.add_argument("--workers", type=int, default=1,
                    help="worker processes (local, or of a new dask LocalCluster); at most one per shard and per CPU core")

@@ -60,7 +60,7 @@ class Options:
     store: str = "files"
     format: str = "png"
     quality: int = 95  # JPEG / WebP quality
-    png_level: int = PNG_LEVEL  # PNG zlib level 0-9 (stored bytes only: PNG is lossless)
+    png_level: int = PNG_LEVEL  # PNG zlib level 0-9, "up" filter (stored bytes only: PNG is lossless)
     shard_size: int = 500
     workers: int = 1
     resume: bool = False
