@@ -66,7 +66,7 @@ def make_scenes(plan: Plan, source, background, split: SplitPlan, rows, rngs=Non
             streams = list(rngs[lo:lo + step])
         bgs = [background.draw(rng, h, w, channels) for rng in streams]
         draws = _first_draws(plan, split, streams)
-        for row, rng, bg, first in zip(chunk, streams, bgs, draws):
+        for row, bg, first in zip(chunk, bgs, draws):
             yield _scene(plan, source, split, row, bg, first)
 
 
