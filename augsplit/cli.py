@@ -73,7 +73,9 @@ def _cmd_generate(a) -> int:
             raise AugsplitError("give a spec (or --finalize an existing folder)")
         from .build import open_spec
 
-        opts = Options(store=a.store, format=a.format, quality=a.quality, shard_size=a.shard_size, workers=a.workers,
+        png = {} if a.png_level is None else {"png_level": a.png_level}  # else Options' default
+        opts = Options(store=a.store, format=a.format, quality=a.quality, **png, shard_size=a.shard_size,
+                       workers=a.workers,
                        resume=a.resume, overwrite=a.overwrite, progress=not a.quiet, array_shard=a.shard,
                        executor=a.executor, scheduler=a.scheduler, force_workers=a.force_workers)
         check_options(opts)  # a bad option is named before the spec is read
@@ -351,6 +353,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "row) members, or none (the manifest re-makes them)")
     q.add_argument("--format", choices=["png", "jpeg", "webp"], default="png")
     q.add_argument("--quality", type=int, default=95, help="JPEG quality 0-100, WebP 1-100 (PNG: unused, 0-100)")
+    q.add_argument("--png-level", type=int, default=None,
+                   help="PNG zlib level 0-9, 'up' row filter (default 1: measured the best trade of size and "
+                        "time); 0 stores raw, 9 packs hardest; the pixels are the same at every level")
     q.add_argument("--workers", type=int, default=1,
                    help="worker processes (local, or of a new dask LocalCluster); at most one per shard and per CPU core")
     q.add_argument("--force-workers", action="store_true",

@@ -29,14 +29,14 @@ from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.rows import read_column
-from .dataset.images import FORMATS, encode
+from .dataset.images import FORMATS, PNG_LEVEL, PNG_LEVELS, encode
 from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_new_file, write_text_atomic
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
-from .scene import make_scene, native_diameter, pixel_sha256
+from .scene import make_scenes, native_diameter, pixel_sha256
 from .spec import parse_spec
 from .threads import limit_opencv
 
@@ -57,6 +57,7 @@ class Options:
     store: str = "files"
     format: str = "png"
     quality: int = 95  # JPEG / WebP quality
+    png_level: int = PNG_LEVEL  # PNG zlib level 0-9, "up" filter (stored bytes only: PNG is lossless)
     shard_size: int = 500
     workers: int = 1
     resume: bool = False
@@ -241,10 +242,9 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     size_px = np.zeros(n, dtype=np.float64)
     ids, file_col, data_col, sums, byte_sums = [], [], [], [], []
     dist_rows: list[dict] = []
-    for r, vals in enumerate(values):
-        row = dict(zip(names, vals))
+    rows = [dict(zip(names, vals)) for vals in values]
+    for r, (row, scene) in enumerate(zip(rows, make_scenes(plan, built.source, built.background, split, rows))):
         image_id = f"{job.split}-{row['index']:07d}"
-        scene = make_scene(plan, built.source, built.background, split, row)
         t = scene.target
         bbox[r] = t.bbox
         footprint_px[r] = t.footprint_px
@@ -254,7 +254,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
         sprite = built.source.sprite(row["class_index"], row["instance"])
         size_px[r] = native_diameter(sprite, thr) * float(row["scale"])
         ids.append(image_id)
-        data = encode(scene.image, opts.format, opts.quality) if opts.store != "none" else None
+        data = encode(scene.image, opts.format, opts.quality, opts.png_level) if opts.store != "none" else None
         byte_sums.append(sha256_hex(data) if data is not None else None)
         if files is not None:
             rel = lay.image_relpath(job.split, image_id, FORMATS[opts.format])
@@ -358,6 +358,9 @@ def check_options(opts: Options) -> None:
     lo, hi = QUALITY[opts.format]
     if not lo <= opts.quality <= hi:
         raise DatasetError(f"quality must lie in {lo}..{hi} for {opts.format}, got {opts.quality}", where="--quality")
+    if isinstance(opts.png_level, bool) or not isinstance(opts.png_level, int) or opts.png_level not in PNG_LEVELS:
+        raise DatasetError(f"PNG level must be an integer in {PNG_LEVELS[0]}..{PNG_LEVELS[-1]}, got {opts.png_level!r}",
+                           where="--png-level")
     if opts.array_shard is not None:
         k, n = opts.array_shard
         if n < 1 or not 0 <= k < n:

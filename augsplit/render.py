@@ -170,6 +170,10 @@ def place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold: 
     "over" operator on premultiplied colour: out = src + dst * (1 - alpha_src)."""
     if canvas.ndim != 3 or canvas.shape[2] not in (1, 3) or canvas.dtype != np.uint8:
         raise ValueError(f"canvas must be uint8 (H, W, 1 or 3), got {canvas.dtype} {canvas.shape}")
+    return _place(canvas, sprite, p, alpha_threshold)
+
+
+def _place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold: float) -> Placed:
     hw = canvas.shape[:2]
     mi, box = _warp_box(sprite, p)
     if _off_canvas(box, hw):
@@ -184,7 +188,7 @@ def place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold: 
     out *= 1.0 - src[..., 3:4]
     out += src[..., :channels]
     out += 0.5  # round half up; out <= 255 + rounding error, so the cast cannot wrap
-    region[...] = out.astype(np.uint8)
+    np.copyto(region, out, casting="unsafe")  # the cast astype(np.uint8) makes, in place
     return placed
 
 
@@ -195,7 +199,9 @@ def render(background: np.ndarray, placements: Sequence[tuple[Sprite, RenderPara
     canvas = np.array(background, dtype=np.uint8, copy=True, order="C")
     if canvas.ndim == 2:
         canvas = canvas[..., None]
-    return canvas, [place(canvas, s, p, alpha_threshold) for s, p in placements]
+    if canvas.ndim != 3 or canvas.shape[2] not in (1, 3):
+        raise ValueError(f"background must be (H, W), (H, W, 1) or (H, W, 3), got {canvas.shape}")
+    return canvas, [_place(canvas, s, p, alpha_threshold) for s, p in placements]
 
 
 def masks_overlap(a: Placed, b: Placed) -> bool:

@@ -41,16 +41,41 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
 
     `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
     fresh draw never reuses the background of the generated image with the same index)."""
+    return next(make_scenes(plan, source, background, split, [row], None if rng is None else [rng]))
+
+
+# The most background bytes `make_scenes` holds at once (each scene's background is drawn,
+# from its stream, before the distractor draws that follow it in the stream).
+SCENE_BATCH_BYTES = 4 << 20
+SCENE_BATCH_ROWS = 64
+
+
+def make_scenes(plan: Plan, source, background, split: SplitPlan, rows, rngs=None):
+    """The Scene of each row, in order (see `make_scene`): the same images, made a few at a
+    time so that the first distractor draws of several scenes are mapped to placements in
+    one draw_placements call (its cost is mostly per call, not per row)."""
     h, w = plan.canvas.height, plan.canvas.width
     channels = plan.render.channels
+    step = max(1, min(SCENE_BATCH_ROWS, SCENE_BATCH_BYTES // (h * w * channels)))
+    rows = list(rows)
+    for lo in range(0, len(rows), step):
+        chunk = rows[lo:lo + step]
+        if rngs is None:
+            streams = [lazy_image_rng(plan.seed, split.index, int(r["index"]), RENDER) for r in chunk]
+        else:
+            streams = list(rngs[lo:lo + step])
+        bgs = [background.draw(rng, h, w, channels) for rng in streams]
+        draws = _first_draws(plan, split, streams)
+        for row, bg, first in zip(chunk, bgs, draws):
+            yield _scene(plan, source, split, row, bg, first)
+
+
+def _scene(plan: Plan, source, split: SplitPlan, row, bg: np.ndarray, draws) -> Scene:
     thr = plan.render.alpha_threshold
-    if rng is None:
-        rng = lazy_image_rng(plan.seed, split.index, int(row["index"]), RENDER)
-    bg = background.draw(rng, h, w, channels)
     target = (source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row))
     placements = [target]
     extra: list[dict] = []
-    for sp, rp, r in _distractors(plan, source, split, rng, target, (h, w), thr):
+    for sp, rp, r in _distractors(plan, source, draws, target, bg.shape[:2], thr):
         placements.append((sp, rp))
         extra.append(r)
     image, placed = render(bg, placements, thr)
@@ -64,34 +89,54 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
 
 class _Draws:
     """A scene's distractor draws, one row of uniforms each, taken from the render stream in
-    batches (one draw_placements call per batch): row j holds the same numbers as the j-th of
-    one-row draws would, and nothing else in the scene draws from the stream afterwards."""
+    batches: row j holds the same numbers as the j-th of one-row draws would, and nothing else
+    in the scene draws from the stream afterwards. The first batch (as many rows as the scene
+    wants distractors) is mapped together with other scenes' first batches (`_first_draws`);
+    further batches, for refused attempts, one draw_placements call each."""
 
-    def __init__(self, plan: Plan, split: SplitPlan, rng: np.random.Generator, first: int):
+    def __init__(self, plan: Plan, split: SplitPlan, rng, want: int, first: list):
         self.plan, self.split, self.rng = plan, split, rng
-        self.size, self.rows = max(first, 1), []
+        self.want, self.size, self.rows = want, 2 * max(want, 1), first[::-1]
 
     def next(self) -> dict:
         if not self.rows:
             u = self.rng.random((self.size, self.plan.space.ndim + 3))
-            cols = draw_placements(self.plan, self.split, u)
-            self.rows = [dict(zip(cols, vals)) for vals in zip(*map(list, cols.values()))][::-1]
+            self.rows = _placement_rows(self.plan, self.split, u)[::-1]
             self.size *= 2  # rejections: draw further ahead next time
         return self.rows.pop()
 
 
-def _distractors(plan: Plan, source, split: SplitPlan, rng: np.random.Generator, target, hw, thr) -> list:
-    """(sprite, RenderParams, drawn columns) of each distractor the scene gets: a count drawn
-    from the stream, then up to `attempts` draws per distractor; with no_overlap, a draw whose
-    footprint meets an earlier object's is dropped (footprints are made only then)."""
+def _placement_rows(plan: Plan, split: SplitPlan, u: np.ndarray) -> list[dict]:
+    cols = draw_placements(plan, split, u)
+    return [dict(zip(cols, vals)) for vals in zip(*(c.tolist() for c in cols.values()))]
+
+
+def _first_draws(plan: Plan, split: SplitPlan, streams) -> list:
+    """Each scene's _Draws (None when the spec has no distractors): the count drawn from its
+    stream, then one row of uniforms per wanted distractor, all mapped in one call."""
     d = plan.render.distractors
     if d.count[1] <= 0:
+        return [None] * len(streams)
+    wants = [int(rng.integers(d.count[0], d.count[1] + 1)) for rng in streams]
+    u = [rng.random((want, plan.space.ndim + 3)) for rng, want in zip(streams, wants) if want]
+    rows = _placement_rows(plan, split, np.concatenate(u)) if u else []
+    out, at = [], 0
+    for rng, want in zip(streams, wants):
+        out.append(_Draws(plan, split, rng, want, rows[at:at + want]))
+        at += want
+    return out
+
+
+def _distractors(plan: Plan, source, draws: _Draws | None, target, hw, thr) -> list:
+    """(sprite, RenderParams, drawn columns) of each distractor the scene gets: up to
+    `attempts` draws per wanted distractor; with no_overlap, a draw whose footprint meets an
+    earlier object's is dropped (footprints are made only then)."""
+    if draws is None:
         return []
-    want = int(rng.integers(d.count[0], d.count[1] + 1))
-    draws = _Draws(plan, split, rng, want)
+    d = plan.render.distractors
     taken = [footprint(target[0], target[1], hw, thr)] if d.no_overlap else None
     out = []
-    for _ in range(want):
+    for _ in range(draws.want):
         for _attempt in range(d.attempts):
             r = draws.next()
             sp, rp = source.sprite(int(r["class_index"]), int(r["instance"])), render_params(r)

@@ -169,22 +169,23 @@ def test_white_synthesis_remakes_the_earlier_pixels(h, w, exponent, per_channel)
             np.testing.assert_array_equal(got, ref)
 
 
+@pytest.mark.parametrize("synthesis", ["polar", "spectrum"])
 @pytest.mark.parametrize("h,w", [(32, 32), (31, 33), (24, 17)])
-def test_spectrum_synthesis_has_the_power_spectrum_of_filtered_white_noise(h, w):
+def test_coefficient_syntheses_have_the_power_spectrum_of_filtered_white_noise(h, w, synthesis):
     # The power of each rfft2 coefficient, averaged over many fields, must be the same for
     # both syntheses (a Gaussian field is fixed by its spectrum; reference: the DFT of
     # white noise has independent coefficients of equal power, from memory). Columns 0 and
     # w/2 are where drawing coefficients directly differs from filtering white noise.
     n = 1500
     power = {}
-    for syn in ("spectrum", "white"):
+    for syn in (synthesis, "white"):
         bg, r = PinkNoise(0.5, 0.2, synthesis=syn), rng(3)
         p = np.zeros((h, w // 2 + 1))
         for _ in range(n):
             field = bg.field(r, h, w)[0].astype(np.float64)
             p += np.abs(np.fft.rfft2(field - field.mean())) ** 2
         power[syn] = p / p.sum()
-    ratio = power["spectrum"][1:] / power["white"][1:]  # row 0 holds the DC coefficient (zero)
+    ratio = power[synthesis][1:] / power["white"][1:]  # row 0 holds the DC coefficient (zero)
     # each column's mean over its rows is within a few standard errors of 1 (about 1/sqrt(n)
     # per coefficient and estimate), the first and last column included
     cols = ratio.mean(axis=0)
@@ -192,9 +193,9 @@ def test_spectrum_synthesis_has_the_power_spectrum_of_filtered_white_noise(h, w)
     assert np.abs(ratio.mean() - 1.0) < 0.01
 
 
-def test_spectrum_synthesis_mean_contrast_and_gaussian_marginal():
-    bg = PinkNoise(0.4, 0.25)
-    assert bg.synthesis == "spectrum"
+@pytest.mark.parametrize("synthesis", ["polar", "spectrum"])
+def test_coefficient_syntheses_mean_contrast_and_gaussian_marginal(synthesis):
+    bg = PinkNoise(0.4, 0.25, synthesis=synthesis)
     field = bg.field(rng(2), 96, 96)[0].astype(np.float64)
     assert field.mean() == pytest.approx(0.4, abs=1e-6)  # single precision
     assert field.std() / field.mean() == pytest.approx(0.25, rel=1e-5)  # RMS contrast (Peli 1990)
@@ -215,8 +216,59 @@ def test_pink_noise_synthesis_is_named_in_the_spec_and_its_hash():
             "background": {"kind": "pink_noise"},
             "splits": {"train": {"per_class": 1}}}
     spec = parse_spec(base)
-    assert json.loads(canonical(spec))["background"]["synthesis"] == "spectrum"
-    white = parse_spec({**base, "background": {"kind": "pink_noise", "synthesis": "white"}})
-    assert spec_hash(white) != spec_hash(spec)
+    assert json.loads(canonical(spec))["background"]["synthesis"] == "polar"  # the default
+    hashes = {spec_hash(spec)}
+    for syn in ("spectrum", "white"):
+        other = parse_spec({**base, "background": {"kind": "pink_noise", "synthesis": syn}})
+        assert json.loads(canonical(other))["background"]["synthesis"] == syn
+        hashes.add(spec_hash(other))
+    assert len(hashes) == 3
     with pytest.raises(SpecError):
         PinkNoise(synthesis="fast")
+
+
+# ---- the polar synthesis: tables and draws ------------------------------------------------------
+
+
+def test_polar_tables_are_box_muller_at_the_midpoints():
+    # Box and Muller (1958): for U uniform on (0, 1], sqrt(-2 ln U) is the Rayleigh amplitude
+    # and 2 pi V the phase of a pair of independent standard normals.
+    from augsplit.sources.backgrounds import POLAR_BITS, polar_tables
+
+    amplitude, phase = polar_tables()
+    n = 1 << POLAR_BITS
+    u = (np.arange(n) + 0.5) / n
+    np.testing.assert_allclose(amplitude, np.sqrt(-2.0 * np.log(u)), rtol=1e-7)
+    np.testing.assert_allclose(phase, np.exp(2j * np.pi * u), atol=1e-7)
+    # moments of the table distribution: E[R^2] = 2 (the exponential of mean 2, up to the
+    # midpoint rule's error near 0), phasors of unit modulus summing to 0
+    assert np.mean(amplitude.astype(np.float64) ** 2) == pytest.approx(2.0, abs=1e-3)
+    assert abs(phase.astype(np.complex128).sum()) / n < 1e-6
+
+
+def test_polar_draws_take_16_bit_indices_from_the_raw_stream_low_bits_first():
+    # the indices are cut from the raw 64-bit outputs by shifts (a byte-order-free reference)
+    from augsplit.sources.backgrounds import _polar_draws, polar_tables
+
+    amplitude, phase = polar_tables()
+    shape = (2, 5, 7)  # 70 coefficients: 140 indices, 35 raw outputs
+    a, p = _polar_draws(rng(4), shape)
+    raw = rng(4).bit_generator.random_raw(35)
+    idx = np.array([(int(r) >> (16 * j)) & 0xFFFF for r in raw for j in range(4)])
+    np.testing.assert_array_equal(a, amplitude[idx[:70]].reshape(shape))
+    np.testing.assert_array_equal(p, phase[idx[70:]].reshape(shape))
+    # and nothing more is taken from the stream
+    r = rng(4)
+    _polar_draws(r, shape)
+    skip = rng(4)
+    skip.bit_generator.random_raw(35)
+    assert r.random() == skip.random()
+
+
+def test_polar_is_the_default_and_is_the_same_field_for_the_same_stream():
+    bg = PinkNoise(0.5, 0.2)
+    assert bg.synthesis == "polar"
+    a, b = bg.draw(rng(9), 40, 30, 3), bg.draw(rng(9), 40, 30, 3)
+    np.testing.assert_array_equal(a, b)
+    assert not np.array_equal(a, bg.draw(rng(10), 40, 30, 3))
+    assert not np.array_equal(a, PinkNoise(0.5, 0.2, synthesis="spectrum").draw(rng(9), 40, 30, 3))

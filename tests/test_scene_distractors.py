@@ -110,3 +110,20 @@ def test_one_draw_per_scene_and_no_footprints_without_no_overlap(monkeypatch):
         s = make_scene(built.plan, built.source, built.background, split, {k: v[i] for k, v in cols.items()})
         assert len(s.distractors) == 5
     assert calls == {"draw_placements": 10, "footprint": 0}
+
+
+def test_scenes_made_together_map_their_first_draws_in_one_call(monkeypatch):
+    # make_scenes (how generate renders a row group): the first distractor draws of every
+    # scene in a batch go through one draw_placements call; the images are make_scene's
+    calls = []
+    real = scene_mod.draw_placements
+    monkeypatch.setattr(scene_mod, "draw_placements", lambda *a, **k: calls.append(len(a[2])) or real(*a, **k))
+    built = open_mapping(_spec([5, 5], False, {"kind": "solid", "value": 0.3}))
+    split = built.plan.split("train")
+    cols = draw(built.plan, split, np.arange(10))
+    rows = [{k: v[i] for k, v in cols.items()} for i in range(10)]
+    scenes = list(scene_mod.make_scenes(built.plan, built.source, built.background, split, rows))
+    assert calls == [50]
+    for row, s in zip(rows, scenes):
+        one = make_scene(built.plan, built.source, built.background, split, row)
+        assert np.array_equal(s.image, one.image) and s.distractors == one.distractors

@@ -68,9 +68,11 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
     if old["spec_hash"] != spec_hash:
         raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
                            f"this spec's hash is {spec_hash}", where=str(out))
-    recorded = old.get("layout")
-    if recorded and recorded != layout:
-        want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in LAYOUT_KEYS if recorded.get(k) != layout.get(k))
+    recorded = old.get("layout") or {}
+    # a key the folder's run did not record (an option added since) is not held against it
+    differ = [k for k in LAYOUT_KEYS if k in recorded and recorded[k] != layout.get(k)]
+    if differ:
+        want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in differ)
         raise DatasetError(f"the folder was started with other storage options; rerun with {want}", where=str(out))
 
 

@@ -112,17 +112,17 @@ def _online_pick(plan: Plan, split: SplitPlan | str, u: np.ndarray):
     u = np.asarray(u, dtype=float).reshape(-1, plan.space.ndim + 3)
     w = np.cumsum(np.asarray(split.counts, dtype=float))
     cls = np.minimum(np.searchsorted(w / w[-1], u[:, 0], side="right"), len(w) - 1)
-    allowed = {c: plan.instance_ids(split, c) for c in set(cls.tolist())}
-    ids = [allowed[c] for c in cls.tolist()]
-    n = np.array([len(i) for i in ids], dtype=np.int64)
-    pick = np.minimum((u[:, 1] * n).astype(np.int64), n - 1)
-    inst = np.array([i[k] for i, k in zip(ids, pick.tolist())], dtype=np.int32)
+    start, count, ids = plan.instance_table(split)
+    n = count[cls]
+    if not n.all():
+        raise ValueError(f"split '{split.name}' allows no instance of class {plan.classes[cls[n == 0][0]]}")
+    inst = ids[start[cls] + np.minimum((u[:, 1] * n).astype(np.int64), n - 1)]
     return split, u, cls, inst
 
 
 def _sample(split: SplitPlan, cls: np.ndarray, u: np.ndarray) -> np.ndarray:
     """Points in t: each row sampled exactly from its class's region."""
-    return sample_t_each([split.class_region(c) for c in range(len(split.counts))], cls, u)
+    return sample_t_each(split.class_stack(), cls, u)
 
 
 def _class_names(plan: Plan, cls: np.ndarray) -> np.ndarray:

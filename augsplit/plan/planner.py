@@ -18,6 +18,7 @@ from ..errors import GuaranteeError, SourceError, SpecError
 from ..limits import MAX_IMAGES, MAX_SCALED_SPRITE_PIXELS, MAX_SPLIT_IMAGES
 from ..space.axes import Space
 from ..space.region import Region
+from ..space.sample import StackedRegions
 from ..spec import Spec, spec_hash
 from ..units import Canvas, Viewing
 from .geometry import support_radius
@@ -53,6 +54,14 @@ class SplitPlan:
     def class_region(self, c: int) -> Region:
         """The split's region for one class (what images of that class are drawn from)."""
         return self._class_regions[c]
+
+    def class_stack(self) -> StackedRegions:
+        """The class regions stacked for sampling rows of several classes at once, made once."""
+        stack = self.__dict__.get("_class_stack")
+        if stack is None:
+            stack = StackedRegions(self._class_regions)
+            object.__setattr__(self, "_class_stack", stack)
+        return stack
 
     def __repr__(self) -> str:
         how = self.region.how if len(self.region.how) <= 120 else self.region.how[:117] + "..."
@@ -96,6 +105,18 @@ class Plan:
         if split.instances == "unseen":
             return self.unseen[c]
         return tuple(sorted(self.instances[c] + self.unseen[c]))
+
+    def instance_table(self, split: SplitPlan) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(start, count, ids): class c's allowed instance ids in `split` are
+        ids[start[c]:start[c] + count[c]], in `instance_ids` order; made once per split."""
+        tables = self.__dict__.setdefault("_instance_tables", {})
+        table = tables.get(split.name)
+        if table is None:
+            per = [self.instance_ids(split, c) for c in range(len(self.classes))]
+            count = np.array([len(i) for i in per], dtype=np.int64)
+            start = np.concatenate([[0], np.cumsum(count)[:-1]]).astype(np.int64)
+            table = tables[split.name] = (start, count, np.array([i for ids in per for i in ids], dtype=np.int32))
+        return table
 
     def __repr__(self) -> str:
         from ..reprs import plan_repr

@@ -8,6 +8,7 @@ channel) unless `per_channel=True`. Grey canvases from colour inputs use BT.601 
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from pathlib import Path
 
 import cv2
@@ -122,15 +123,18 @@ class PinkNoise:
     average spectrum of natural images, Field 1987), scaled to the given mean and RMS contrast
     (standard deviation / mean of intensity), then clipped to [0, 1].
 
-    Two syntheses of the same process (their pixels differ): "spectrum" (the default) draws
-    the Fourier coefficients themselves, in single precision, and makes one inverse FFT;
-    "white" draws white noise in double precision and filters it (two FFTs), as every
-    dataset made before the choice existed did."""
+    Three syntheses of the same process (their pixels differ): "polar" (the default) draws
+    each Fourier coefficient in polar form, a Rayleigh amplitude and a uniform phase (Box and
+    Muller 1958: independent normal real and imaginary parts), from 16-bit integers of the
+    stream through fixed tables, and makes one inverse FFT; "spectrum" draws the coefficients'
+    real and imaginary parts with numpy's normal generator, in single precision (datasets
+    made before "polar" existed); "white" draws white noise in double precision and filters
+    it (two FFTs), as every dataset made before the choice existed did."""
 
-    SYNTHESES = ("spectrum", "white")
+    SYNTHESES = ("polar", "spectrum", "white")
 
     def __init__(self, mean: float = 0.5, contrast: float = 0.2, exponent: float = 1.0, per_channel: bool = False,
-                 synthesis: str = "spectrum"):
+                 synthesis: str = "polar"):
         self.mean = _unit(mean, "background.mean")
         if isinstance(contrast, bool) or not isinstance(contrast, (int, float)) or contrast < 0:
             raise SpecError(f"contrast must be a non-negative number, got {contrast!r}", where="background.contrast")
@@ -147,7 +151,7 @@ class PinkNoise:
         gain = self._filters.get((height, width))
         if gain is None:
             gain = spectral_filter(height, width, self.exponent)
-            if self.synthesis == "spectrum":
+            if self.synthesis != "white":
                 gain = coefficient_gain(gain, width).astype(np.float32)
             self._filters[(height, width)] = gain
         return gain
@@ -158,16 +162,21 @@ class PinkNoise:
         if self.synthesis == "white":
             white = rng.standard_normal((k, height, width))
             return np.fft.irfft2(np.fft.rfft2(white) * gain, s=(height, width))
-        # real and imaginary parts of every rfft2 coefficient, as complex64
-        coef = rng.standard_normal((k, height, 2 * gain.shape[1]), dtype=np.float32).view(np.complex64)
-        coef *= gain
+        if self.synthesis == "polar":
+            amplitude, phase = _polar_draws(rng, (k,) + gain.shape)
+            amplitude *= gain
+            coef = phase  # a fresh array from the table: the product goes in place
+            coef *= amplitude
+        else:  # real and imaginary parts of every rfft2 coefficient, as complex64
+            coef = rng.standard_normal((k, height, 2 * gain.shape[1]), dtype=np.float32).view(np.complex64)
+            coef *= gain
         import scipy.fft  # here, not at the top: 0.2 s that every generation run would pay
 
         return scipy.fft.irfft2(coef, s=(height, width), overwrite_x=True)
 
     def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:
         """(k, H, W) float fields with exactly the requested mean and RMS contrast (before
-        clipping; to single precision for "spectrum")."""
+        clipping; to single precision for "polar" and "spectrum")."""
         shaped = self._shaped(rng, height, width, k)
         shaped -= shaped.mean(axis=(1, 2), keepdims=True)
         if self.synthesis == "white":  # the arithmetic those datasets were made with
@@ -186,6 +195,36 @@ class PinkNoise:
     def __repr__(self) -> str:
         return (f"PinkNoise(mean={self.mean}, contrast={self.contrast}, exponent={self.exponent}, "
                 f"per_channel={self.per_channel}, synthesis={self.synthesis!r})")
+
+
+POLAR_BITS = 16  # resolution of the polar draws: 2**16 amplitudes and 2**16 phases
+
+
+@lru_cache(maxsize=1)
+def polar_tables() -> tuple[np.ndarray, np.ndarray]:
+    """(Rayleigh amplitudes float32, unit phasors complex64), 2**POLAR_BITS each, at the
+    midpoints u = (i + 1/2) / 2**POLAR_BITS: sqrt(-2 ln u) and exp(2 pi i u) (Box and Muller
+    1958). Computed with Python's math module in double precision, then rounded to single,
+    so the tables do not depend on numpy's vectorised functions of the machine."""
+    n = 1 << POLAR_BITS
+    mid = [(i + 0.5) / n for i in range(n)]
+    amplitude = np.array([math.sqrt(-2.0 * math.log(u)) for u in mid], dtype=np.float32)
+    phase = np.empty(n, dtype=np.complex64)
+    phase.real = np.array([math.cos(2.0 * math.pi * u) for u in mid], dtype=np.float32)
+    phase.imag = np.array([math.sin(2.0 * math.pi * u) for u in mid], dtype=np.float32)
+    amplitude.setflags(write=False)
+    phase.setflags(write=False)
+    return amplitude, phase
+
+
+def _polar_draws(rng: np.random.Generator, shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """A table amplitude and a table phasor per coefficient: two 16-bit indices each, cut
+    from the stream's raw 64-bit outputs (least significant bits first, on any byte order)."""
+    n = int(np.prod(shape))
+    raw = rng.bit_generator.random_raw(-(-2 * n // 4)).astype("<u8", copy=False)
+    idx = raw.view("<u2")[:2 * n].astype(np.intp).reshape((2,) + shape)
+    amplitude, phase = polar_tables()
+    return np.take(amplitude, idx[0]), np.take(phase, idx[1])
 
 
 def coefficient_gain(gain: np.ndarray, width: int) -> np.ndarray:

@@ -67,21 +67,51 @@ def sample_t(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return _place(region.space, region.lo[box], region.hi[box], u[:, 1:]), box
 
 
-def sample_t_each(regions: list[Region], which: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """Points in t: row i sampled from regions[which[i]] exactly as `sample_t` would sample
-    it (the same numbers), the regions' boxes picked one region at a time and the points
-    placed in one pass (for draws whose rows come from several regions, a few at a time)."""
-    which = np.asarray(which, dtype=np.int64)
-    space = regions[0].space
-    u = _uniforms(space, u)
-    lo, hi = np.empty((len(u), space.ndim)), np.empty((len(u), space.ndim))
-    for k in np.unique(which):
-        if regions[k].is_empty():
+class StackedRegions:
+    """The boxes of several regions (of one space) in one table, so that rows drawn from
+    different regions are sampled in one pass (`sample_t_each`), whatever their number.
+
+    Each region's cumulative box shares are stored as complex keys k + i*share (k the
+    region's number, exact in both parts). numpy orders complex numbers lexicographically,
+    real part first (numpy.sort documentation, "the sort order for complex numbers is
+    lexicographic"), so one searchsorted of k + i*u counts the boxes of regions before k plus
+    those of region k whose share is <= u: the pick `sample_t` makes in region k alone."""
+
+    def __init__(self, regions):
+        regions = list(regions)
+        self.space = regions[0].space
+        counts = np.array([r.nbox for r in regions], dtype=np.int64)
+        self.start = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
+        self.last = self.start + counts - 1  # the last box of each region (start - 1 when empty)
+        self.empty = counts == 0
+        self.lo = np.concatenate([r.lo.reshape(-1, self.space.ndim) for r in regions])
+        self.hi = np.concatenate([r.hi.reshape(-1, self.space.ndim) for r in regions])
+        self.keys = _tagged(np.repeat(np.arange(len(regions), dtype=float), counts),
+                            np.concatenate([r.cumulative_share() for r in regions if r.nbox] or [np.zeros(0)]))
+
+    def pick(self, which: np.ndarray, u0: np.ndarray) -> np.ndarray:
+        """Row index into lo / hi of each uniform's box in its own region (see `_pick`)."""
+        if self.empty[which].any():
             raise ValueError("cannot sample from an empty region")
-        rows = np.flatnonzero(which == k)
-        box = _pick(regions[k], u[rows, 0])
-        lo[rows], hi[rows] = regions[k].lo[box], regions[k].hi[box]
-    return _place(space, lo, hi, u[:, 1:])
+        at = np.searchsorted(self.keys, _tagged(which.astype(float), u0), side="right")
+        return np.minimum(at, self.last[which])
+
+
+def _tagged(real: np.ndarray, imag: np.ndarray) -> np.ndarray:
+    out = np.empty(len(real), dtype=complex)
+    out.real, out.imag = real, imag
+    return out
+
+
+def sample_t_each(regions, which: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Points in t: row i sampled from regions[which[i]] exactly as `sample_t` would sample
+    it (the same numbers), every row in one pass. `regions` is a StackedRegions (made once by
+    a caller that samples often) or a sequence of regions."""
+    stack = regions if isinstance(regions, StackedRegions) else StackedRegions(regions)
+    which = np.asarray(which, dtype=np.int64)
+    u = _uniforms(stack.space, u)
+    box = stack.pick(which, u[:, 0])
+    return _place(stack.space, stack.lo[box], stack.hi[box], u[:, 1:])
 
 
 def _uniforms(space, u) -> np.ndarray:
