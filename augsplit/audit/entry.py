@@ -19,7 +19,7 @@ from ..dataset import layout as lay
 from ..errors import DatasetError
 from ..space.axes import CLASS
 from .result import FAIL, PASS, AuditResult, CheckResult, merge_arrays
-from .run import Thresholds, run_audit
+from .run import Thresholds, _wanted_columns, run_audit
 
 
 def _merge(results: list[AuditResult]) -> AuditResult:
@@ -87,13 +87,13 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     folder = open_dataset(root)
     root, built = folder.root, folder.built
     plan = built.plan
-    rows = FolderRows(folder)
-    df = rows.df
-    if df.empty:
-        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
     axes = {n: plan.space[n] for n in plan.space.names if n != CLASS}
     regions = {s.name: s.region for s in plan.splits}
     base = _thresholds(built.plan, thresholds)
+    rows = FolderRows(folder, ["class_index", "tar_file", *_wanted_columns(axes, regions, Thresholds.from_dict(base))])
+    df = rows.df
+    if df.empty:
+        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
     audited = _pairs(plan, pairs)
     for a, b in audited:
         for name in (a, b):

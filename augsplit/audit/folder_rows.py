@@ -8,43 +8,36 @@ from __future__ import annotations
 import numpy as np
 
 from ..dataset import layout as lay
-from ..dataset.rows import OFFSET_COLUMN, PART_COLUMN, read_column, read_rows, table_schema
-from .parallel import noise_image
+from ..dataset.rows import OFFSET_COLUMN, PART_COLUMN, read_rows, table_schema
+from .parallel import noise_image, part_rows
 
-PARTS_CACHED = 8  # parts whose image column is held while the driver fetches images
+PARTS_CACHED = 8  # parts whose rows are held while the driver fetches images
 
 
 class FolderRows:
-    def __init__(self, folder):
+    def __init__(self, folder, columns):
         self.folder = folder
-        cols = [c for c in table_schema(lay.MANIFEST_DIR).names if c != "image_bytes"]
-        df = read_rows(folder, columns=cols, positions=True)
+        have = table_schema(lay.MANIFEST_DIR).names
+        df = read_rows(folder, columns=[c for c in dict.fromkeys(columns) if c in have and c != "image_bytes"],
+                       positions=True)
         self.part = df.pop(PART_COLUMN).to_numpy(np.int64)
         self.offset = df.pop(OFFSET_COLUMN).to_numpy(np.int64)
         self.df = df
-        self.columns = {c: df[c].to_numpy() for c in df.columns}
         n_parts = len(folder.parts_of())
         order = np.lexsort((self.offset, self.part))
         bounds = np.concatenate([[0], np.cumsum(np.bincount(self.part, minlength=n_parts))])
         self.part_rows = [order[bounds[k]: bounds[k + 1]] for k in range(n_parts)]  # by offset in the part
-        self._images: dict[int, object] = {}
+        self._parts: dict[int, list] = {}
 
     def row(self, i: int) -> dict:
-        """Table row i as a mapping (with its embedded image bytes, if it has any)."""
-        i = int(i)
-        row = {c: v[i] for c, v in self.columns.items()}
-        if not _named(row.get("file")) and not _named(row.get("tar_file")):
-            row["image_bytes"] = self._bytes(i)
-        return row
-
-    def _bytes(self, i: int):
+        """Table row i as a mapping of every column (its part's rows are read and kept a while)."""
         k = int(self.part[i])
-        col = self._images.get(k)
-        if col is None:
-            if len(self._images) >= PARTS_CACHED:
-                self._images.pop(next(iter(self._images)))
-            col = self._images[k] = read_column(self.folder.parts_of()[k], "image_bytes")
-        return col[int(self.offset[i])].as_py()
+        rows = self._parts.get(k)
+        if rows is None:
+            if len(self._parts) >= PARTS_CACHED:
+                self._parts.pop(next(iter(self._parts)))
+            rows = self._parts[k] = part_rows(self.folder, k)
+        return rows[int(self.offset[i])]
 
     def image(self, i: int) -> np.ndarray:
         """The stored (or re-rendered) image of row i; a noise stand-in when it cannot be read
@@ -61,7 +54,3 @@ class FolderRows:
         from ..dataset.images import rerender
 
         return rerender(self.folder, self.row(i)).image
-
-
-def _named(v) -> bool:
-    return isinstance(v, str) and bool(v)

@@ -82,18 +82,20 @@ def _folder(root: str):
     return folder
 
 
-def _rows(folder, chunk: RowChunk) -> list[dict]:
-    """The chunk's manifest rows as dicts (pandas' conversion: NaN for missing numbers)."""
+def part_rows(folder, part: int, lo: int = 0, hi: int | None = None) -> list[dict]:
+    """Rows [lo, hi) of a manifest part as dicts, every column (pandas' conversion: NaN for
+    missing numbers, as the audit's table has them)."""
     from ..dataset.rows import iter_batches
 
-    part = folder.parts_of()[chunk.part]
+    p = folder.parts_of()[part]
+    hi = p.rows if hi is None else hi
     out, pos = [], 0
-    for batch in iter_batches(folder, parts=[part], batch_rows=CHUNK_ROWS):
-        lo, hi = max(chunk.lo - pos, 0), min(chunk.hi - pos, len(batch))
-        if hi > lo:
-            out += batch.iloc[lo:hi].to_dict("records")
+    for batch in iter_batches(folder, parts=[p], batch_rows=CHUNK_ROWS):
+        a, b = max(lo - pos, 0), min(hi - pos, len(batch))
+        if b > a:
+            out += batch.iloc[a:b].to_dict("records")
         pos += len(batch)
-        if pos >= chunk.hi:
+        if pos >= hi:
             break
     return out
 
@@ -116,7 +118,7 @@ def chunk_task(root: str, masks: bool, job: tuple[RowChunk, np.ndarray]) -> Chun
     chunk, table_rows = job
     folder = _folder(root)
     built, hw, thr = folder.built, folder.hw, folder.plan.render.alpha_threshold
-    rows = _rows(folder, chunk)
+    rows = part_rows(folder, chunk.part, chunk.lo, chunk.hi)
     broken: dict[int, str] = {}
 
     def image(k: int, row: dict) -> np.ndarray:
