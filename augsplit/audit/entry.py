@@ -83,7 +83,7 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     from .folder_rows import FolderRows
     from .parallel import RowCache, check_options
 
-    check_options(workers, executor, scheduler)
+    check_options(workers, executor)
     folder = open_dataset(root)
     root, built = folder.root, folder.built
     plan = built.plan

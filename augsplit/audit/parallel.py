@@ -24,7 +24,7 @@ CHUNK_ROWS = 2048  # rows per task at most: a part larger than this is split
 MASK_ERRORS = (AugsplitError, IndexError, KeyError, ValueError)  # a row too damaged to re-make
 
 
-def check_options(workers, executor: str, scheduler) -> None:
+def check_options(workers, executor: str) -> None:
     """Bad executor options named in one line, before anything is read (as verify does)."""
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise DatasetError(f"workers must be at least 1, got {workers!r}", where="--workers")
