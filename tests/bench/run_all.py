@@ -32,6 +32,7 @@ SCRIPTS = [
     ("bench_audit.py", [], []),
     ("bench_data.py", [], []),
     ("bench_lookalikes.py", [], []),
+    ("bench_audit_folder.py", ["--sizes", "100000", "1000000", "--rounds", "1"], ["--sizes", "5000", "20000"]),
 ]
 
 
