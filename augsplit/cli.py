@@ -249,17 +249,28 @@ def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
         if a.splits is None:
             raise AugsplitError("give the split assignment with --splits (the folder `augsplit assign` wrote, "
                                 "per-split files, or a table with a split column)", where=str(a.input))
+        _no_executor(a)
         result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
                                  ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
                                  progress=progress)
         return result, a.out or Path("audit")
     if is_dataset(a.input) and a.spec is None and not column_map:
         result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
-                               progress=progress)
+                               progress=progress, workers=a.workers, executor=a.executor, scheduler=a.scheduler)
         return result, a.out or Path(a.input) / "audit"
+    _no_executor(a)
     result = audit_table(a.input, spec_path=a.spec, pairs=a.pair, axes=dict(a.axis or []) or None,
                          column_map=column_map or None, thresholds=thresholds, progress=progress)
     return result, a.out or Path("audit")
+
+
+def _no_executor(a) -> None:
+    """The executor options run a dataset folder's image work; elsewhere they are refused, not ignored."""
+    given = [o for o, v in (("--workers", a.workers != 1), ("--executor", a.executor != "auto"),
+                            ("--scheduler", a.scheduler)) if v]
+    if given:
+        raise AugsplitError("runs the image work of an augsplit dataset folder only (audited here without a "
+                            "--spec or --map); this input is audited in one process", where=given[0])
 
 
 def _annotated(path) -> bool:
@@ -379,11 +390,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="re-render only this many random rows (every stored image is still read and checked)")
     q.add_argument("--allow-incomplete", action="store_true",
                    help="check an unfinished folder too (what is made so far; its missing summary is reported)")
-    q.add_argument("--workers", type=int, default=1, help="worker processes (local, or of a new dask LocalCluster)")
-    q.add_argument("--executor", choices=["auto", "serial", "processes", "dask"], default="auto",
-                   help="where the per-part checks run: auto = serial for 1 worker, local processes otherwise")
-    q.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                   help="dask scheduler address (implies --executor dask); without it dask starts a LocalCluster")
+    _executor_options(q, "the per-part checks")
     q.add_argument("--quiet", action="store_true", help="no progress bar")
     q.set_defaults(run=_cmd_verify)
 
@@ -428,6 +435,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--out", help="folder for audit.json and audit.html (default: DATASET/audit or ./audit; its "
                    "parent must exist); '-' prints audit.json to stdout and writes no HTML")
     q.add_argument("--no-masks", action="store_true", help="use bounding boxes as footprints (faster, coarser)")
+    _executor_options(q, "a dataset folder's image hashes and footprint masks")
     q.add_argument("--quiet", action="store_true", help="no progress bars")
     q.set_defaults(run=_cmd_audit)
 
@@ -443,6 +451,16 @@ def build_parser() -> argparse.ArgumentParser:
     for q in sub.choices.values():  # one mechanism for every subcommand: defaults shown in --help
         _ShowDefaults.apply(q)
     return p
+
+
+def _executor_options(q, what: str) -> None:
+    """--workers, --executor and --scheduler: where `what` runs (verify and audit; generate
+    has its own, with --force-workers)."""
+    q.add_argument("--workers", type=int, default=1, help="worker processes (local, or of a new dask LocalCluster)")
+    q.add_argument("--executor", choices=["auto", "serial", "processes", "dask"], default="auto",
+                   help=f"where {what} run: auto = serial for 1 worker, local processes otherwise")
+    q.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="dask scheduler address (implies --executor dask); without it dask starts a LocalCluster")
 
 
 @contextmanager

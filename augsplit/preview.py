@@ -24,6 +24,7 @@ from .io import ensure_folder, output_path
 from .render import add_footprint, footprint
 from .scene import render_params
 from .space.axes import ANGLE_AXES
+from .threads import one_opencv_thread
 
 PREVIEW_DIR = lay.PREVIEW_DIR
 COVERAGE_FILE = "coverage.png"
@@ -76,6 +77,7 @@ class Coverage:
         return int(np.count_nonzero((tr > 0) & (te > 0)))
 
 
+@one_opencv_thread
 def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24, columns: int = 6,
             allow_incomplete: bool = False) -> list[Path]:
     """Write one contact sheet per split and the coverage map; return their paths. An

@@ -6,6 +6,7 @@ caller had. Everything in augsplit that changes it goes through here.
 
 from __future__ import annotations
 
+import functools
 from contextlib import contextmanager
 
 
@@ -26,3 +27,16 @@ def opencv_threads(n: int):
         yield
     finally:
         restore()
+
+
+def one_opencv_thread(fn):
+    """Decorator: `fn` runs with one OpenCV thread, the caller's count restored after. Per-image
+    work is small: OpenCV's pool gains no wall time on it but spins every core (measured in
+    generate), and a loader's workers are the parallelism already."""
+
+    @functools.wraps(fn)
+    def wrapped(*args, **kwargs):
+        with opencv_threads(1):
+            return fn(*args, **kwargs)
+
+    return wrapped

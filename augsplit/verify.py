@@ -26,7 +26,6 @@ from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import cv2
 import numpy as np
 import pyarrow as pa
 
@@ -40,6 +39,7 @@ from .dataset.rows import iter_batches
 from .errors import AugsplitError, DatasetError
 from .plan.settings import settings_of
 from .scene import pixel_sha256
+from .threads import limit_opencv
 
 SHOWN = 5  # problems of one kind listed by name
 BATCH_ROWS = 2048  # rows read at a time: memory is bounded by this, not by the dataset
@@ -195,7 +195,7 @@ def _folder(key: tuple):
     folder = _FOLDERS.get(key)
     if folder is None:
         # a fresh process (spawned, or a dask worker): one OpenCV thread, as generate's workers
-        cv2.setNumThreads(1)
+        limit_opencv(1)
         folder = _FOLDERS[key] = open_dataset(key[0], allow_incomplete=key[1])
     return folder
 
@@ -211,8 +211,7 @@ def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
     key = (str(folder.root.resolve()), not folder.complete)
     dask = executor == "dask" or bool(scheduler)
     client, cluster = executors.dask_client(scheduler, workers) if dask else (None, None)
-    cv_threads = cv2.getNumThreads()
-    cv2.setNumThreads(1)  # per-image work is small: OpenCV's pool only burns CPU (see generate)
+    restore_threads = limit_opencv(1)  # per-image work is small: OpenCV's pool only burns CPU (see generate)
     _FOLDERS[key] = folder
     by_split: dict[str, PartResult] = {}
     present: dict[tuple[str, int], tuple[int, frozenset]] = {}
@@ -225,7 +224,7 @@ def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
     finally:
         bar.close()
         _FOLDERS.pop(key, None)
-        cv2.setNumThreads(cv_threads)
+        restore_threads()
         if client is not None:
             executors.close_dask(client, cluster)
     return by_split, present

@@ -65,3 +65,27 @@ def test_opencv_threads_restores_even_on_error():
             assert cv2.getNumThreads() == 1
             raise RuntimeError("boom")
     assert cv2.getNumThreads() == 2
+
+
+def test_loaders_and_preview_render_on_one_opencv_thread_and_restore(tmp_path, caller_state, monkeypatch):
+    """Lazy Dataset reads, OnlineSampler items and preview do their image work on one OpenCV
+    thread (as generate, verify and the audit's workers), and give the caller back its own."""
+    from augsplit import scene
+    from augsplit.data import Dataset, OnlineSampler
+    from augsplit.spec import builtin_spec_path
+
+    out = tmp_path / "ds"
+    api.generate_dataset("demo", out, store="none", progress=False, overwrite=False)
+    seen = []
+    real = scene.render
+
+    def recording(*a, **k):
+        seen.append(cv2.getNumThreads())
+        return real(*a, **k)
+
+    monkeypatch.setattr(scene, "render", recording)
+    Dataset(out, "train")[0]
+    OnlineSampler(str(builtin_spec_path("demo")), "train", length=2)[1]
+    preview(out, tmp_path / "preview", per_split=1)
+    assert len(seen) >= 3 and set(seen) == {1}
+    assert cv2.getNumThreads() == 3

@@ -19,7 +19,7 @@ from ..dataset import layout as lay
 from ..errors import DatasetError
 from ..space.axes import CLASS
 from .result import FAIL, PASS, AuditResult, CheckResult, merge_arrays
-from .run import Thresholds, run_audit
+from .run import Thresholds, _wanted_columns, run_audit
 
 
 def _merge(results: list[AuditResult]) -> AuditResult:
@@ -71,56 +71,50 @@ def _pairs(plan, pairs) -> list[tuple[str, str]]:
 
 
 def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks: bool = True,
-                  progress: bool = False) -> AuditResult:
+                  progress: bool = False, *, workers: int = 1, executor: str = "auto",
+                  scheduler: str | None = None) -> AuditResult:
     """Audit a dataset folder against its own spec (see the module docstring). A row whose
     stored image cannot be read (missing, out of the folder, not a regular file, undecodable)
-    fails the `image_files` check, naming split and image id."""
-    from ..dataset import open_dataset, read_rows
-    from ..dataset.images import ImageError, image_of, rerender
-    from ..render import footprint
-    from ..scene import render_params
+    fails the `image_files` check, naming split and image id. The image hashes and footprint
+    masks of every audited split are made once, by `workers` processes on `executor` (or on
+    the dask `scheduler`), as generate makes shards (audit/parallel.py): same result on any."""
+    from ..dataset import open_dataset
+    from ..threads import opencv_threads
+    from .folder_rows import FolderRows
+    from .parallel import RowCache, check_options
 
+    check_options(workers, executor)
     folder = open_dataset(root)
     root, built = folder.root, folder.built
     plan = built.plan
-    df = read_rows(folder)
-    if df.empty:
-        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
     axes = {n: plan.space[n] for n in plan.space.names if n != CLASS}
     regions = {s.name: s.region for s in plan.splits}
-    hw = folder.hw
-    thr = built.plan.render.alpha_threshold
-    broken: dict[int, str] = {}
-
-    def mask_loader(i: int):
-        row = df.iloc[int(i)]
-        return footprint(built.source.sprite(int(row["class_index"]), int(row["instance"])), render_params(row), hw, thr).mask
-
-    def image_loader(i: int):
-        try:
-            return image_of(folder, df.iloc[int(i)])
-        except ImageError as exc:
-            broken[int(i)] = exc.message
-            # a stand-in of noise drawn for this row alone: its hashes match no other image, so
-            # the unreadable row cannot fake a duplicate; the image_files check fails on it
-            return np.random.default_rng(int(i)).integers(0, 256, (*hw, folder.channels), dtype=np.uint8)
-
     base = _thresholds(built.plan, thresholds)
-    results = []
-    for a, b in _pairs(plan, pairs):
+    rows = FolderRows(folder, ["class_index", "tar_file", *_wanted_columns(axes, regions, Thresholds.from_dict(base))])
+    df = rows.df
+    if df.empty:
+        raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))
+    audited = _pairs(plan, pairs)
+    for a, b in audited:
         for name in (a, b):
             if name not in regions:
                 raise DatasetError(f"the dataset has no split '{name}' (it has {', '.join(regions)})", where=f"pair {a}:{b}")
-        claims = _claims(built.plan, a, b)
-        th = dict(base, **claims)
-        declared = {a: regions[a], b: regions[b]} if claims else None
-        results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=image_loader,
-                                 mask_loader=mask_loader if exact_masks else None, canvas_hw=hw,
-                                 regions=declared, root=root, progress=progress,
-                                 reference_loader=lambda i: rerender(folder, df.iloc[int(i)]).image))
+    cache = RowCache(folder, rows.part_rows, len(df), masks=exact_masks, workers=workers, executor=executor,
+                     scheduler=scheduler, progress=progress)
+    cache.ensure(name for pair in audited for name in pair)  # each split once, whatever the pairs
+    results = []
+    with opencv_threads(1):  # the checks' own image work (look-alikes, thumbnails): one thread
+        for a, b in audited:
+            claims = _claims(built.plan, a, b)
+            th = dict(base, **claims)
+            declared = {a: regions[a], b: regions[b]} if claims else None
+            results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=rows.image,
+                                     mask_loader=cache.mask if exact_masks else None, canvas_hw=folder.hw,
+                                     regions=declared, root=root, progress=progress,
+                                     reference_loader=rows.rendered, fingerprints=cache))
     merged = _merge(results)
-    if broken:
-        merged = dataclasses.replace(merged, checks=merged.checks + (_image_files_check(df, broken),))
+    if cache.broken:
+        merged = dataclasses.replace(merged, checks=merged.checks + (_image_files_check(df, cache.broken),))
     return merged
 
 

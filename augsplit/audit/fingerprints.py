@@ -22,8 +22,9 @@ class _Fingerprints:
     """Perceptual and content hashes of every row, computed once, on first need."""
 
     def __init__(self, src: TableSource, df: pd.DataFrame, image_loader, th: Thresholds, progress: bool, rows: np.ndarray,
-                 coefficients: bool = False):
+                 coefficients: bool = False, computed=None):
         self.src, self.df, self.loader, self.th, self.progress, self.rows = src, df, image_loader, th, progress, rows
+        self.computed = computed  # hashes, sha and coef of every row, made before (audit/parallel.py)
         self._done = False
         self.hashes = self.sha = self.coef = None
         self.want_coef = coefficients
@@ -67,6 +68,10 @@ class _Fingerprints:
             return
         if self.kind == "none":
             self.reason = "no images: give an image loader, a file or image_bytes column, or a phash column"
+            return
+        if self.computed is not None:  # pixels read are the evidence, as below
+            c = self.computed
+            self.hashes, self.sha, self.coef = c.hashes, c.sha, (c.coef if self.want_coef else None)
             return
         rows = np.flatnonzero(need)
         hashes = np.zeros(len(df), np.uint64)

@@ -114,10 +114,11 @@ def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None,
             cov += box_counts(bbox[members[s : s + chunk]], hw)[0]
         binary[g] = cov > 0
         counts += cov
+    clipped = clip_boxes(bbox, hw)
     for i in np.flatnonzero(use_mask):
         raw = bbox[i]
         m = _mask_crop(mask_loader, rows[i], raw, hw)
-        x0, y0, x1, y1 = clip_boxes(raw, hw)[0]
+        x0, y0, x1, y1 = clipped[i]
         if m is None:
             m = np.ones((y1 - y0, x1 - x0), bool)
         binary[groups[i], y0:y1, x0:x1] |= m

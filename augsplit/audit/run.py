@@ -24,7 +24,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
               image_loader: ImageLoader | None = None, mask_loader: Callable | None = None,
               canvas_hw: tuple[int, int] | None = None, regions: dict | None = None,
               column_map: dict | None = None, root=None, mask_rows=None,
-              progress: bool = False, reference_loader: ImageLoader | None = None) -> AuditResult:
+              progress: bool = False, reference_loader: ImageLoader | None = None, fingerprints=None) -> AuditResult:
     """Audit a table for leakage between splits.
 
     table: DataFrame, CSV, Parquet file or dataset folder (columns as in augsplit.manifest;
@@ -34,6 +34,8 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     {split: Region} enables the declared-region check; `margin` overrides thresholds.margin.
     `reference_loader` re-renders a row from its parameters (a generated dataset): it lets the
     near-duplicate check tell look-alikes the design makes from copies (audit/lookalike.py).
+    `fingerprints` (with `image_loader`): every row's image hashes made before, an object with
+    `hashes`, `sha` and `coef` arrays by table row (audit/parallel.py's RowCache).
 
     A check that cannot run because the table lacks its columns is listed in `skipped`; when
     the columns are missing because `column_map` took them for another name, or a mapped name
@@ -53,7 +55,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
         audited[r] = True
     scales, notes = axis_scales(axes, df.loc[audited])
     data, finite = _prepare(src, df, th, scales, audited, image_loader, mask_loader, canvas_hw, regions,
-                            mask_rows, progress, reference_loader)
+                            mask_rows, progress, reference_loader, fingerprints)
     checks: list[CheckResult] = [finite]
     skipped: list[Skipped] = []
     for a, b in pairs:
@@ -114,7 +116,7 @@ def _pairs_and_rows(pairs, split: np.ndarray) -> tuple[list[tuple[str, str]], di
 
 
 def _prepare(src, df, th, scales, audited, image_loader, mask_loader, canvas_hw, regions, mask_rows,
-             progress, reference_loader) -> tuple[AuditInputs, CheckResult]:
+             progress, reference_loader, fingerprints=None) -> tuple[AuditInputs, CheckResult]:
     """What the checks read, and the finite-values check (which decides the rows they use)."""
     ids = df["image_id"].astype(str).to_numpy() if "image_id" in df else np.arange(len(df))
     values = np.column_stack([pd.to_numeric(df[s.name], errors="coerce").to_numpy(float) for s in scales])
@@ -122,7 +124,8 @@ def _prepare(src, df, th, scales, audited, image_loader, mask_loader, canvas_hw,
     bbox = (np.column_stack([pd.to_numeric(df[c], errors="coerce").to_numpy(float) for c in BBOX_COLUMNS])
             if has_bbox else None)
     finite, ok = _check_finite(values, [s.name for s in scales], bbox, audited, ids, th.worst_k)
-    fp = _Fingerprints(src, df, image_loader, th, progress, audited, coefficients=reference_loader is not None)
+    fp = _Fingerprints(src, df, image_loader, th, progress, audited, coefficients=reference_loader is not None,
+                       computed=fingerprints if image_loader is not None else None)
     masks = _GuardedMasks(mask_loader, bbox, df, ids) if mask_loader is not None and has_bbox else None
     data = AuditInputs(
         df=df, th=th, scales=scales, values=values, ids=ids,

@@ -33,6 +33,7 @@ SCRIPTS = [
     ("bench_audit.py", [], []),
     ("bench_data.py", [], ["--quick"]),
     ("bench_lookalikes.py", [], ["--random", "5"]),
+    ("bench_audit_folder.py", ["--sizes", "100000", "1000000", "--rounds", "1"], ["--sizes", "5000", "20000"]),
 ]
 
 
