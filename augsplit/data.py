@@ -30,7 +30,7 @@ from .render import Placed, footprint
 from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
 from .space.sample import PARAMS, RENDER, LazyStream, online_rng
-from .threads import one_opencv_thread
+from .threads import one_opencv_thread_in_workers
 
 TARGETS = ("class", "params", "bbox", "mask")
 BBOX_COLUMNS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")
@@ -228,7 +228,7 @@ class Dataset:
         i = self._position(index)
         return {c: col[i] for c, col in self._cols.items()}
 
-    @one_opencv_thread
+    @one_opencv_thread_in_workers
     def __getitem__(self, index) -> dict:
         i = self._position(index)
         row = {c: col[i] for c, col in self._cols.items()}
@@ -420,7 +420,7 @@ class OnlineSampler:
         cols = draw_online(self._built.plan, self._split, u, indices=[index])
         return {k: (v[0].item() if isinstance(v[0], np.generic) else v[0]) for k, v in cols.items()}
 
-    @one_opencv_thread
+    @one_opencv_thread_in_workers
     def item(self, index: int, epoch: int | None = None) -> dict:
         """Item `index` of `epoch` (default: the current epoch)."""
         epoch = self.epoch if epoch is None else int(epoch)

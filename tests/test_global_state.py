@@ -67,25 +67,69 @@ def test_opencv_threads_restores_even_on_error():
     assert cv2.getNumThreads() == 2
 
 
-def test_loaders_and_preview_render_on_one_opencv_thread_and_restore(tmp_path, caller_state, monkeypatch):
-    """Lazy Dataset reads, OnlineSampler items and preview do their image work on one OpenCV
-    thread (as generate, verify and the audit's workers), and give the caller back its own."""
+def _count_render_threads(monkeypatch) -> list[int]:
     from augsplit import scene
-    from augsplit.data import Dataset, OnlineSampler
-    from augsplit.spec import builtin_spec_path
 
-    out = tmp_path / "ds"
-    api.generate_dataset("demo", out, store="none", progress=False, overwrite=False)
-    seen = []
-    real = scene.render
+    seen, real = [], scene.render
 
     def recording(*a, **k):
         seen.append(cv2.getNumThreads())
         return real(*a, **k)
 
     monkeypatch.setattr(scene, "render", recording)
+    return seen
+
+
+def test_preview_renders_on_one_opencv_thread_and_loaders_leave_the_callers_count(tmp_path, caller_state,
+                                                                                  monkeypatch):
+    """preview (a command) does its image work on one OpenCV thread, as generate, verify and the
+    audit's workers, and restores the caller's count; lazy Dataset reads and OnlineSampler
+    items in the caller's own process leave its count as it is (switching per item costs more
+    than the item)."""
+    from augsplit.data import Dataset, OnlineSampler
+    from augsplit.spec import builtin_spec_path
+
+    out = tmp_path / "ds"
+    api.generate_dataset("demo", out, store="none", progress=False, overwrite=False)
+    seen = _count_render_threads(monkeypatch)
     Dataset(out, "train")[0]
     OnlineSampler(str(builtin_spec_path("demo")), "train", length=2)[1]
+    assert seen == [3, 3]
     preview(out, tmp_path / "preview", per_split=1)
-    assert len(seen) >= 3 and set(seen) == {1}
+    assert len(seen) >= 3 and set(seen[2:]) == {1}
     assert cv2.getNumThreads() == 3
+
+
+def _item_in_worker(root, queue):
+    from augsplit.data import Dataset, OnlineSampler
+    from augsplit.spec import builtin_spec_path
+
+    Dataset(root, "train")[0]
+    OnlineSampler(str(builtin_spec_path("demo")), "train", length=2)[1]
+    queue.put(cv2.getNumThreads())
+
+
+@pytest.mark.parametrize("method", ["fork", "spawn"])
+def test_loader_workers_run_on_one_opencv_thread_and_a_fork_never_hangs(tmp_path, caller_state, method):
+    """A loader's worker process (started by multiprocessing, as DataLoader workers are) reads
+    items on one OpenCV thread. With fork, the parent's pool has live threads when it forks:
+    before threads.py parked it across the fork, the child's first cv2.setNumThreads waited
+    forever for threads that do not exist in it (a DataLoader test hung)."""
+    import multiprocessing as mp
+
+    import numpy as np
+
+    out = tmp_path / "ds"
+    api.generate_dataset("demo", out, store="none", progress=False, overwrite=False)
+    big = np.random.default_rng(0).random((1500, 1500), dtype=np.float32)
+    cv2.GaussianBlur(big, (31, 31), 5)  # OpenCV's pool now has live threads in this process
+    ctx = mp.get_context(method)
+    queue = ctx.Queue()
+    child = ctx.Process(target=_item_in_worker, args=(str(out), queue))
+    child.start()
+    child.join(timeout=120)
+    if child.is_alive():
+        child.kill()
+        pytest.fail(f"the {method} worker hung")
+    assert child.exitcode == 0 and queue.get(timeout=5) == 1
+    assert cv2.getNumThreads() == 3  # the parent keeps its count across the fork

@@ -23,10 +23,9 @@ import tempfile
 import time
 from pathlib import Path
 
-import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from sidebyside import ROOT, aim, export, load  # noqa: E402
+from sidebyside import ROOT, aim, export, load, make_dataset  # noqa: E402
 
 TARGET = 1_000_000
 AIM_SECONDS = 600.0  # 10 minutes on 2 cores
@@ -52,15 +51,7 @@ def env(tree: Path) -> dict:
 
 
 def make(n: int, tmp: Path) -> Path:
-    out = tmp / f"ds-{n}"
-    if (out / "dataset.json").exists():
-        return out
-    spec_file = tmp / f"spec-{n}.yaml"
-    spec_file.write_text(yaml.safe_dump(spec(n), sort_keys=False))
-    subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", str(spec_file), "--out", str(out),
-                    "--store", "parquet", "--workers", "2", "--quiet"], check=True, env=env(ROOT),
-                   stderr=subprocess.DEVNULL, cwd=tmp)
-    return out
+    return make_dataset(spec(n), tmp / f"ds-{n}", "parquet")
 
 
 def audit(root: Path, tmp: Path, workers: int | None, tree: Path) -> float:

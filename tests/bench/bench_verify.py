@@ -20,10 +20,9 @@ import sys
 import tempfile
 from pathlib import Path
 
-import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from sidebyside import aim  # noqa: E402
+from sidebyside import aim, make_dataset  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[2]
 AIM = 1.2  # peak RSS of the large run over the small one: "flat" with room for allocator noise
@@ -54,14 +53,7 @@ def env() -> dict:
 
 
 def make(n: int, tmp: Path, workers: int) -> Path:
-    out = tmp / f"rows-{n}"
-    if (out / "dataset.json").exists():
-        return out
-    spec_file = tmp / f"spec-{n}.yaml"
-    spec_file.write_text(yaml.safe_dump(spec(n), sort_keys=False))
-    subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", str(spec_file), "--out", str(out),
-                    "--store", "none", "--quiet", "--workers", str(workers)], check=True, env=env())
-    return out
+    return make_dataset(spec(n), tmp / f"rows-{n}", "none", workers)
 
 
 def measure(root: Path) -> dict:

@@ -37,6 +37,22 @@ def child(script: Path, args: list[str], tree: Path | None = None, timeout: floa
     return json.loads(r.stdout.strip().splitlines()[-1])
 
 
+def make_dataset(spec: dict, out: Path, store: str, workers: int = 2, tree: Path | None = None) -> Path:
+    """Generate `spec` (a dict) into `out` with the CLI in a fresh Python (this tree's
+    `augsplit`, or `tree`'s), unless a finished dataset is already there; returns `out`."""
+    import yaml
+
+    if (out / "dataset.json").exists():
+        return out
+    spec_file = out.with_name(f"{out.name}.yaml")
+    spec_file.write_text(yaml.safe_dump(spec, sort_keys=False))
+    env = dict(os.environ, PYTHONPATH=str(tree or ROOT), MPLBACKEND="Agg")
+    subprocess.run([sys.executable, "-m", "augsplit.cli", "generate", str(spec_file), "--out", str(out),
+                    "--store", store, "--workers", str(workers), "--quiet"], check=True, env=env,
+                   stderr=subprocess.DEVNULL, cwd=out.parent)
+    return out
+
+
 def load() -> str:
     one, five, _ = os.getloadavg()
     return f"load average {one:.2f} (1 min), {five:.2f} (5 min) on {os.cpu_count()} cores"
