@@ -33,6 +33,11 @@ from augsplit.spec import builtin_spec_path
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from sidebyside import aim  # noqa: E402
 
+# one OpenCV thread, as in a loader's worker process (threads.one_opencv_thread_in_workers) and every
+# augsplit command: with its default pool OpenCV's idle threads spin, and the CPU they burn on an
+# idle machine doubled the measured cost of a lazy item (0.55x vs 1.09x, 2026-12-02)
+cv2.setNumThreads(1)
+
 NOISE96 = {
     "seed": 7,
     "canvas": {"width": 96, "height": 96, "mode": "rgb"},

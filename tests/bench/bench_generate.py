@@ -369,7 +369,7 @@ def main() -> None:
     for what, val, op, goal in aims:
         ok = val <= goal if op == "<=" else val >= goal
         print(f"  {what:52s} {val:6.2f}  ({op} {goal})  {'met' if ok else 'MISSED'}")
-        aim(what, f"{val:.2f}", ok, needs_idle="workers" in what)
+        aim(f"{what} ({a.n} images, shard {a.shard_size})", f"{val:.2f}", ok, needs_idle="workers" in what)
 
     nd = min(a.n, 2000)
     print(f"\n== disk per image ({nd} images of 96x96 RGB; bytes per image: file contents / blocks allocated)")

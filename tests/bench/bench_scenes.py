@@ -41,6 +41,11 @@ sys.path.insert(0, str(HERE.parent))
 
 from sidebyside import aim, child, export, load  # noqa: E402
 
+# one OpenCV thread, as in a loader's worker process (threads.one_opencv_thread_in_workers) and every
+# augsplit command: with its default pool OpenCV's idle threads spin, and the CPU they burn on an
+# idle machine doubled the measured cost of a lazy item (0.55x vs 1.09x, 2026-12-02)
+cv2.setNumThreads(1)
+
 SCENE = {
     "seed": 7, "canvas": {"width": 96, "height": 96, "mode": "rgb"},
     "objects": {"kind": "polyomino", "cells": 5, "cell_px": 5, "colour": [220, 80, 40]},
