@@ -26,7 +26,8 @@ def yaml(node) -> Region:
 
 fractions = st.tuples(st.floats(0, 1), st.floats(0, 1)).filter(lambda p: p[0] < p[1] - 1e-6)
 x_intervals = st.tuples(st.floats(0, 10), st.floats(0, 10)).filter(lambda p: p[0] < p[1] - 1e-6)
-angles = st.tuples(st.floats(0, 360), st.floats(0, 360)).filter(lambda p: abs(p[0] - p[1]) > 1e-3)
+# arcs of non-zero width: [360, 0] is a point on the circle, as [a, a] is (refused, tested below)
+angles = st.tuples(st.floats(0, 360), st.floats(0, 360)).filter(lambda p: 1e-3 < (p[1] - p[0]) % 360 < 360 - 1e-3)
 
 
 @settings(max_examples=50, deadline=None)
@@ -42,6 +43,14 @@ def test_box_equals_its_yaml_form(xi, ai):
     assert py == yaml({"x": list(xi), "angle": list(ai)})
     # the keyword and mapping forms agree, and a wrapping angle interval is one set
     assert py == box(SPACE, {"x": xi}, angle=[ai])
+
+
+@pytest.mark.parametrize("arc", [(360.0, 0.0), (90.0, 90.0)])
+def test_a_zero_width_arc_is_refused_by_both_forms(arc):
+    with pytest.raises(ValueError, match="zero width"):
+        box(SPACE, angle=arc)
+    with pytest.raises((ValueError, SpecError), match="zero width"):
+        yaml({"angle": list(arc)})
 
 
 @settings(max_examples=40, deadline=None)
