@@ -15,6 +15,7 @@ import os
 import signal
 import threading
 import uuid
+from contextlib import contextmanager
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Callable, Iterable, Iterator
@@ -24,6 +25,44 @@ from .errors import DatasetError
 EXECUTORS = ("auto", "serial", "processes", "dask")
 MAX_POOL_RESTARTS = 3  # a job that kills its worker this often is a bug, not bad luck
 CONNECT_TIMEOUT_S = 5.0  # an unreachable scheduler is reported in seconds, not a hang
+
+
+def check_options(workers, executor: str) -> None:
+    """Bad executor options named in one line, before anything is read."""
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise DatasetError(f"workers must be at least 1, got {workers!r}", where="--workers")
+    if executor not in EXECUTORS:
+        raise DatasetError(f"unknown executor '{executor}'; use one of {', '.join(EXECUTORS)}", where="--executor")
+
+
+# ---- what a run's tasks share ------------------------------------------------------------------
+# While a run lasts, its driver keeps here what the tasks need (an opened dataset, a built
+# spec), by key: a worker forked from the driver finds it and does not make it again (planning
+# a large canvas takes seconds). A fresh process (spawned, a dask worker) makes its own, once,
+# and runs on one OpenCV thread, as every augsplit worker does.
+_SHARED: dict = {}
+
+
+@contextmanager
+def sharing(key, value):
+    """`with sharing(key, value):` run tasks that call `shared(key, ...)`."""
+    _SHARED[key] = value
+    try:
+        yield value
+    finally:
+        _SHARED.pop(key, None)
+
+
+def shared(key, make: Callable):
+    """The run's value for `key`: the driver's (also in a worker forked from it) or, in a
+    fresh process, `make()`'s, made once."""
+    value = _SHARED.get(key)
+    if value is None:
+        from .threads import limit_opencv
+
+        limit_opencv(1)
+        value = _SHARED[key] = make()
+    return value
 
 
 def run_serial(task: Callable, jobs: Iterable, init: Callable | None = None, initargs: tuple = ()) -> Iterator:

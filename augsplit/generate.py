@@ -16,7 +16,6 @@ from contextlib import ExitStack, closing, contextmanager, suppress
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
-import cv2
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -301,28 +300,18 @@ def _disk_error(exc: OSError, where) -> DatasetError:
 # ---- worker plumbing: each process builds the spec once ------------------------------------
 
 
-@functools.lru_cache(maxsize=4)
 def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tuple[Built, Path, Options]:
+    """What a fresh worker process (spawned, or a dask worker) builds for itself."""
     opts = json.loads(opts_json)
-    # One OpenCV thread, as in the driver. A pool worker forked from the driver inherits it,
-    # and must not touch OpenCV's pool: that can wait forever on parent threads a fork does
-    # not copy (seen in the benchmark). A dask worker is a fresh process and sets it.
-    if opts.get("executor") == "dask" or opts.get("scheduler"):
-        cv2.setNumThreads(1)
     if opts.get("array_shard") is not None:
         opts["array_shard"] = tuple(opts["array_shard"])
     return build(parse_spec(json.loads(spec_json)), Path(base_dir)), Path(out), Options(**opts)
 
 
-# What the driver has built, by state key, while its pool runs: a worker forked from it finds
-# the spec built here and does not plan it again (measured 0.05 s for a small spec; planning
-# a large canvas takes seconds). Spawned and dask workers build their own (_worker_state).
-_DRIVER_STATE: dict[tuple, tuple[Built, Path, Options]] = {}
-
-
 def _shard_task(state_key: tuple, job: ShardJob) -> int:
-    """The task every executor runs: (re)build the spec once per process, make one shard."""
-    built, out, opts = _DRIVER_STATE.get(state_key) or _worker_state(*state_key)
+    """The task every executor runs: the driver's built spec (a forked worker inherits it;
+    planning a large canvas takes seconds), or one built once per fresh process; one shard."""
+    built, out, opts = executors.shared(state_key, lambda: _worker_state(*state_key[1:]))
     return make_shard(built, job, out, opts)
 
 
@@ -346,12 +335,9 @@ def check_options(opts: Options) -> None:
         raise DatasetError(f"unknown store '{opts.store}'; use one of {', '.join(STORES)}")
     if opts.format not in FORMATS:
         raise DatasetError(f"unknown image format '{opts.format}'; use one of {', '.join(FORMATS)}")
-    if opts.executor not in EXECUTORS:
-        raise DatasetError(f"unknown executor '{opts.executor}'; use one of {', '.join(EXECUTORS)}")
+    executors.check_options(opts.workers, opts.executor)
     if opts.shard_size < 1:
         raise DatasetError(f"shard size must be at least 1, got {opts.shard_size}", where="--shard-size")
-    if opts.workers < 1:
-        raise DatasetError(f"workers must be at least 1, got {opts.workers}", where="--workers")
     if opts.force_workers and opts.workers > MAX_WORKERS:
         raise DatasetError(f"{opts.workers} workers are above the limit of {MAX_WORKERS} even when forced "
                            "(limits.MAX_WORKERS)", where="--workers")
@@ -443,13 +429,14 @@ def _check_worker_versions(client, scheduler: str) -> None:
 
 
 def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, bar) -> None:
-    try:
+    with ExitStack() as stack:
+        stack.callback(bar.close)
         if client is None and (opts.executor == "serial" or (opts.executor == "auto" and (opts.workers <= 1 or len(todo) <= 1))):
             results = ((job, make_shard(built, job, out, opts)) for job in todo)
         else:
-            key = (built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
+            key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
                    json.dumps(asdict(opts)))
-            _DRIVER_STATE[key] = (built, out.resolve(), opts)
+            stack.enter_context(executors.sharing(key, (built, out.resolve(), opts)))
             results = executors.run(functools.partial(_shard_task, key), todo, opts.workers,
                                     executor=opts.executor, client=client)
         with closing(results):
@@ -461,9 +448,6 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
                     raise DatasetError(f"shard {job} reported done but its manifest part is missing or short",
                                        where=str(part))
                 bar.update(count)
-    finally:
-        _DRIVER_STATE.clear()
-        bar.close()
 
 
 def finalize(out: str | Path, built: Built | None = None) -> dict:

@@ -151,11 +151,7 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
     per-part checks as generate runs shards. An unfinished folder is refused unless
     `allow_incomplete` (then its absence of dataset.json is itself a finding)."""
     _check_sample(sample)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise DatasetError(f"workers must be at least 1, got {workers!r}", where="--workers")
-    if executor not in executors.EXECUTORS:
-        raise DatasetError(f"unknown executor '{executor}'; use one of {', '.join(executors.EXECUTORS)}",
-                           where="--executor")
+    executors.check_options(workers, executor)
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
     plan = folder.plan  # built here, so forked workers inherit it
     rep = Report()
@@ -188,42 +184,30 @@ def _sample(parts, total: int, sample, seed: int) -> list[tuple[int, ...]] | Non
 
 # ---- running the per-part tasks -----------------------------------------------------------------
 
-_FOLDERS: dict = {}  # per process: the opened folder of a run (the driver's own, inherited on fork)
-
-
-def _folder(key: tuple):
-    folder = _FOLDERS.get(key)
-    if folder is None:
-        # a fresh process (spawned, or a dask worker): one OpenCV thread, as generate's workers
-        limit_opencv(1)
-        folder = _FOLDERS[key] = open_dataset(key[0], allow_incomplete=key[1])
-    return folder
-
-
 def _part_task(key: tuple, job: PartJob) -> PartResult:
-    return check_part(_folder(key), job)
+    folder = executors.shared(key, lambda: open_dataset(key[1], allow_incomplete=key[2]))
+    return check_part(folder, job)
 
 
 def _run(folder, jobs, workers, executor, scheduler, bar) -> tuple[dict, dict]:
     """Run the part tasks; merge each result as it arrives (merging is order-free, so any
     executor gives the same report) into one result per split, keeping per part only what the
     stray-file scan needs: (split, shard) -> (rows, file suffixes)."""
-    key = (str(folder.root.resolve()), not folder.complete)
+    key = ("verify", str(folder.root.resolve()), not folder.complete)
     dask = executor == "dask" or bool(scheduler)
     client, cluster = executors.dask_client(scheduler, workers) if dask else (None, None)
     restore_threads = limit_opencv(1)  # per-image work is small: OpenCV's pool only burns CPU (see generate)
-    _FOLDERS[key] = folder
     by_split: dict[str, PartResult] = {}
     present: dict[tuple[str, int], tuple[int, frozenset]] = {}
     try:
-        stream = executors.run(functools.partial(_part_task, key), jobs, workers, executor=executor, client=client)
-        for job, res in stream:
-            by_split.setdefault(job.split, PartResult()).merge(res)
-            present[job.split, job.shard] = (job.rows, frozenset(res.suffixes))
-            bar.update(job.rows)
+        with executors.sharing(key, folder):
+            stream = executors.run(functools.partial(_part_task, key), jobs, workers, executor=executor, client=client)
+            for job, res in stream:
+                by_split.setdefault(job.split, PartResult()).merge(res)
+                present[job.split, job.shard] = (job.rows, frozenset(res.suffixes))
+                bar.update(job.rows)
     finally:
         bar.close()
-        _FOLDERS.pop(key, None)
         restore_threads()
         if client is not None:
             executors.close_dask(client, cluster)

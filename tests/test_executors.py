@@ -95,3 +95,26 @@ def test_the_cli_gives_up_on_a_silent_scheduler_by_itself(tmp_path):
 def test_malformed_scheduler_address_is_a_dataset_error():
     with pytest.raises(DatasetError, match="no-port-here"):
         executors.dask_client("no-port-here", 1, timeout=1)
+
+
+def _made_by(key):
+    return executors.shared(key, lambda: ("made", os.getpid()))
+
+
+def test_tasks_share_the_drivers_value_and_a_fresh_process_makes_its_own_once():
+    key = ("test", "shared")
+    with executors.sharing(key, "driver's") as value:
+        assert value == "driver's"
+        assert [r for _, r in executors.run(_made_by, [key] * 4, 2, executor="processes")] == ["driver's"] * 4
+    assert key not in executors._SHARED  # gone with the run
+    made = [r for _, r in executors.run(_made_by, [key] * 3, 1, executor="serial")]
+    assert made == [("made", os.getpid())] * 3  # made once, then kept
+    executors._SHARED.pop(key)
+
+
+@pytest.mark.parametrize("workers, executor, where", [(0, "auto", "--workers"), (True, "auto", "--workers"),
+                                                      ("2", "auto", "--workers"), (1, "threads", "--executor")])
+def test_bad_executor_options_are_named(workers, executor, where):
+    with pytest.raises(DatasetError) as err:
+        executors.check_options(workers, executor)
+    assert err.value.where == where

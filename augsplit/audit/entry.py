@@ -19,7 +19,7 @@ from ..dataset import layout as lay
 from ..errors import DatasetError
 from ..space.axes import CLASS
 from .result import FAIL, PASS, AuditResult, CheckResult, merge_arrays
-from .run import Thresholds, _wanted_columns, run_audit
+from .run import Thresholds, wanted_columns, run_audit
 
 
 def _merge(results: list[AuditResult]) -> AuditResult:
@@ -81,7 +81,8 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     from ..dataset import open_dataset
     from ..threads import opencv_threads
     from .folder_rows import FolderRows
-    from .parallel import RowCache, check_options
+    from ..executors import check_options
+    from .parallel import RowCache
 
     check_options(workers, executor)
     folder = open_dataset(root)
@@ -90,7 +91,7 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
     axes = {n: plan.space[n] for n in plan.space.names if n != CLASS}
     regions = {s.name: s.region for s in plan.splits}
     base = _thresholds(built.plan, thresholds)
-    rows = FolderRows(folder, ["class_index", "tar_file", *_wanted_columns(axes, regions, Thresholds.from_dict(base))])
+    rows = FolderRows(folder, ["class_index", "tar_file", *wanted_columns(axes, regions, Thresholds.from_dict(base))])
     df = rows.df
     if df.empty:
         raise DatasetError("the dataset has no manifest rows", where=str(root / lay.MANIFEST_DIR))

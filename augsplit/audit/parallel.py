@@ -17,20 +17,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import executors
-from ..errors import AugsplitError, DatasetError
-from ..threads import limit_opencv, opencv_threads
+from ..errors import AugsplitError
+from ..threads import opencv_threads
 
 CHUNK_ROWS = 2048  # rows per task at most: a part larger than this is split
 MASK_ERRORS = (AugsplitError, IndexError, KeyError, ValueError)  # a row too damaged to re-make
-
-
-def check_options(workers, executor: str) -> None:
-    """Bad executor options named in one line, before anything is read (as verify does)."""
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise DatasetError(f"workers must be at least 1, got {workers!r}", where="--workers")
-    if executor not in executors.EXECUTORS:
-        raise DatasetError(f"unknown executor '{executor}'; use one of {', '.join(executors.EXECUTORS)}",
-                           where="--executor")
 
 
 @dataclass(frozen=True)
@@ -67,19 +58,14 @@ class ChunkResult:
 
 # ---- in a worker ------------------------------------------------------------------------------
 
-_FOLDERS: dict = {}  # per process: the opened folder of a run (the driver's own, inherited on fork)
-
-
 def _folder(root: str):
-    folder = _FOLDERS.get(root)
-    if folder is None:
-        # a fresh process (spawned, or a dask worker); a forked one inherits the driver's
-        # setting and must not touch OpenCV's pool (see generate._worker_state)
-        limit_opencv(1)
+    """The run's opened folder: the driver's, or opened once in a fresh worker process."""
+    def open_it():
         from ..dataset import open_dataset
 
-        folder = _FOLDERS[root] = open_dataset(root)
-    return folder
+        return open_dataset(root)
+
+    return executors.shared(("audit", root), open_it)
 
 
 def part_rows(folder, part: int, lo: int = 0, hi: int | None = None) -> list[dict]:
@@ -182,9 +168,9 @@ class RowCache:
         bar = executors.progress(total, self.progress, "hashing and footprints")
         dask = self.executor == "dask" or bool(self.scheduler)
         client, cluster = executors.dask_client(self.scheduler, self.workers) if dask else (None, None)
-        _FOLDERS[root] = self.folder  # forked workers inherit it, with its built spec
         try:
-            with opencv_threads(1):  # forked workers inherit one thread; restored when done
+            # forked workers inherit the folder (with its built spec) and one OpenCV thread
+            with opencv_threads(1), executors.sharing(("audit", root), self.folder):
                 stream = executors.run(functools.partial(chunk_task, root, self.masks), jobs, self.workers,
                                        executor=self.executor, client=client)
                 for (chunk, rows), res in stream:
@@ -192,7 +178,6 @@ class RowCache:
                     bar.update(chunk.hi - chunk.lo)
         finally:
             bar.close()
-            _FOLDERS.pop(root, None)
             if client is not None:
                 executors.close_dask(client, cluster)
         self.splits_done.update(todo)

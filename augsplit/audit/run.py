@@ -45,7 +45,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
     if margin is not None:
         th = dataclasses.replace(th, margin=float(margin))
     src = open_table(table, column_map, root)
-    want = _wanted_columns(axes, regions, th)
+    want = wanted_columns(axes, regions, th)
     _check_inputs(src, axes, th, column_map, want)
     df = src.read(want, progress=progress)
     split = df["split"].astype(str).to_numpy()
@@ -78,7 +78,7 @@ def run_audit(table, axes: dict, pairs=None, margin: float | None = None, thresh
 
 # ---- helpers -------------------------------------------------------------------------------
 
-def _wanted_columns(axes: dict, regions: dict | None, th: Thresholds) -> list[str]:
+def wanted_columns(axes: dict, regions: dict | None, th: Thresholds) -> list[str]:
     """The columns the audit reads, in order (region axes: `class` is the class_index column)."""
     region_cols = [("class_index" if n == "class" else n) for reg in (regions or {}).values() for n in reg.space.names]
     return list(dict.fromkeys(["split", "image_id", "class_name", "instance", "instance_seen", *axes,
