@@ -30,7 +30,7 @@ from .render import RenderParams, recolour_hsv, similarity_matrix
 from .reprs import Shown, made_repr
 from .space.axes import COLOUR_AXES, GEOMETRY_AXES
 from .space.region import Region
-from .space.sample import plugin_rng
+from .space.streams import plugin_rng
 
 ANCHORS = ("centre", "mask", "bbox")
 BBOX_KEYS = ("bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")

@@ -29,7 +29,7 @@ from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
 from .scene import make_scene, pixel_sha256, render_params
-from .space.sample import PARAMS, RENDER, LazyStream, online_rng
+from .space.streams import PARAMS, RENDER, LazyStream, online_rng
 from .threads import one_opencv_thread_in_workers
 
 TARGETS = ("class", "params", "bbox", "mask")

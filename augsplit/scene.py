@@ -18,7 +18,7 @@ from .plan.draw import draw_placements
 from .plan.geometry import reach
 from .render import Placed, RenderParams, footprint, masks_overlap, render
 from .space.axes import RENDER_PARAMS
-from .space.sample import RENDER, lazy_image_rng
+from .space.streams import RENDER, lazy_image_rng
 
 PARAM_KEYS = RENDER_PARAMS  # the pixel centre and every axis the renderer reads by name
 

@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from augsplit.albu import HeldOutPlacement, RegionColour, RegionDraws, RegionPlacement, recolour
-from augsplit.space.sample import PLUGIN
+from augsplit.space.streams import PLUGIN
 from augsplit.build import open_mapping
 from augsplit.plan.draw import params_from_t
 from augsplit.plan.guarantees import footprint_gaps, largest_shared_radius

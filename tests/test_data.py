@@ -343,7 +343,7 @@ def test_sampler_items_are_deterministic_and_fresh(built):
     assert _same_row(s.item(3, epoch=0)["row"], a["row"])
     # online streams are spawned apart from the generated images' streams of the same index
     from augsplit.data import online_rng
-    from augsplit.space.sample import PARAMS, RENDER, image_rng
+    from augsplit.space.streams import PARAMS, RENDER, image_rng
 
     sp = built.plan.split("train").index
     for purpose in (PARAMS, RENDER):

@@ -17,7 +17,7 @@ from augsplit.build import open_mapping
 from augsplit.plan.draw import draw, draw_online
 from augsplit.render import footprint, masks_overlap, render
 from augsplit.scene import PARAM_KEYS, make_scene, placed_columns, render_params
-from augsplit.space.sample import RENDER, lazy_image_rng
+from augsplit.space.streams import RENDER, lazy_image_rng
 
 
 def _reference_scene(plan, source, background, split, row):

@@ -261,7 +261,7 @@ def image_of(folder, row) -> np.ndarray:
 def rerender(folder, row):
     """The Scene of a row, re-made from the row alone: its own seed key, its parameters."""
     from ..scene import make_scene
-    from ..space.sample import RENDER, lazy_image_rng
+    from ..space.streams import RENDER, lazy_image_rng
 
     built = folder.built
     rng = lazy_image_rng(int(row["seed"]), int(row["split_index"]), int(row["index"]), RENDER)

@@ -2,7 +2,7 @@
 
 Image i of a split takes its class from the split's per-class blocks (classes in order,
 counts from the plan), its instance round-robin over the class's allowed instances, and its
-transform from the first draws of its own stream (see space/sample.py), through exact
+transform from the first draws of its own stream (see space/streams.py), through exact
 sampling of the split's region for that class. Nothing depends on which other images are
 drawn, so any subset, in any order, on any worker, gives the same values.
 """
@@ -12,7 +12,8 @@ from __future__ import annotations
 import numpy as np
 
 from ..space.axes import CLASS, DRAW_DEFAULTS, POSITION_AXES
-from ..space.sample import image_uniforms, sample_t_each
+from ..space.sample import sample_t_each
+from ..space.streams import image_uniforms
 from .planner import Plan, SplitPlan
 
 DEFAULTS = DRAW_DEFAULTS  # the catalogue's values for axes a spec does not vary

@@ -1,10 +1,9 @@
-"""Exact sampling from regions and the per-image random streams.
+"""Exact sampling from regions.
 
 A draw never loops: pick a disjoint box with probability proportional to its mass, then
 map one uniform per axis through that box's inverse CDF (uniform in t, i.e. uniform,
-log-uniform or uniform-on-the-circle in axis units). Each image has its own stream,
-`SeedSequence(seed, spawn_key=(split_index, image_index, purpose))`, so image i is the same
-whatever else is drawn, however the work is cut into shards or spread over workers.
+log-uniform or uniform-on-the-circle in axis units). The uniforms come from the streams of
+streams.py.
 """
 
 from __future__ import annotations
@@ -12,45 +11,6 @@ from __future__ import annotations
 import numpy as np
 
 from .region import Region
-
-# THE registry of seed-stream domains. Purposes (last spawn-key item): the transform
-# parameters, and everything the renderer draws (background, distractors).
-PARAMS, RENDER = 0, 1
-# Domain tags, first spawn-key item of streams that are not a generated image's: the online
-# sampler's (ONLINE, split, epoch, index, purpose) and the albumentations transforms' per-item
-# (PLUGIN, split, epoch, item). Their keys have lengths no image key (split, index, purpose)
-# has, so no two domains ever share a stream.
-ONLINE = 0x6F6E6C6E
-PLUGIN = 0x616C6275
-STREAMS = {"image": "(split_index, index, purpose)", "online": "(ONLINE, split_index, epoch, index, purpose)",
-           "plugin": "(PLUGIN, split_index, epoch, item)"}
-
-
-def image_rng(seed: int, split_index: int, image_index: int, purpose: int = PARAMS) -> np.random.Generator:
-    """The stream of one image for one purpose, spawned (never offset) from the spec seed."""
-    ss = np.random.SeedSequence(int(seed), spawn_key=(int(split_index), int(image_index), int(purpose)))
-    return np.random.Generator(np.random.PCG64(ss))
-
-
-def online_rng(seed: int, split_index: int, epoch: int, index: int, purpose: int) -> np.random.Generator:
-    """The stream of one online item: spawned from the seed by (ONLINE, split, epoch, index, purpose)."""
-    ss = np.random.SeedSequence(int(seed), spawn_key=(ONLINE, int(split_index), int(epoch), int(index), int(purpose)))
-    return np.random.Generator(np.random.PCG64(ss))
-
-
-def plugin_rng(seed: int, split_index: int, epoch: int, item: int) -> np.random.Generator:
-    """The stream of one item an albumentations transform places: (PLUGIN, split, epoch, item)."""
-    ss = np.random.SeedSequence(int(seed), spawn_key=(PLUGIN, int(split_index), int(epoch), int(item)))
-    return np.random.Generator(np.random.PCG64(ss))
-
-
-def image_uniforms(seed: int, split_index: int, indices, k: int) -> np.ndarray:
-    """(N, k) uniforms in [0, 1): row i is the first k draws of image indices[i]'s stream."""
-    idx = np.asarray(indices, dtype=np.int64).ravel()
-    out = np.empty((len(idx), k), dtype=float)
-    for row, i in enumerate(idx):
-        out[row] = image_rng(seed, split_index, int(i)).random(k)
-    return out
 
 
 def sample_t(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -148,25 +108,3 @@ def sample(region: Region, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """As `sample_t`, with points in axis units (levels axes give exact level values)."""
     t, box = sample_t(region, u)
     return region.space.from_t(t), box
-
-
-class LazyStream:
-    """A numpy Generator made on first use, standing in for one: the draws are those of the
-    generator itself, but a render that draws nothing (a solid background, no distractors)
-    never pays for seeding it (tens of microseconds per image)."""
-
-    __slots__ = ("_make", "_gen")
-
-    def __init__(self, make):
-        self._make = make
-        self._gen = None
-
-    def __getattr__(self, name: str):
-        if self._gen is None:
-            self._gen = self._make()
-        return getattr(self._gen, name)
-
-
-def lazy_image_rng(seed: int, split_index: int, image_index: int, purpose: int = RENDER) -> LazyStream:
-    """`image_rng(...)`, seeded only when something is drawn from it."""
-    return LazyStream(lambda: image_rng(seed, split_index, image_index, purpose))
