@@ -51,9 +51,17 @@ SCENE_BATCH_ROWS = 64
 
 
 def make_scenes(plan: Plan, source, background, split: SplitPlan, rows, rngs=None):
-    """The Scene of each row, in order (see `make_scene`): the same images, made a few at a
-    time so that the first distractor draws of several scenes are mapped to placements in
-    one draw_placements call (its cost is mostly per call, not per row)."""
+    """The Scene of each row, in order (see `make_scene`)."""
+    for batch in scene_batches(plan, source, background, split, rows, rngs):
+        yield from batch
+
+
+def scene_batches(plan: Plan, source, background, split: SplitPlan, rows, rngs=None):
+    """The Scenes of the rows, in order, a list of a few at a time (at most SCENE_BATCH_ROWS,
+    and SCENE_BATCH_BYTES of pixels): the first distractor draws of a batch's scenes are mapped
+    to placements in one draw_placements call (its cost is mostly per call, not per row), and
+    a caller can take each later step (hashing, encoding, writing) over a whole batch while
+    its code and data are hot."""
     h, w = plan.canvas.height, plan.canvas.width
     channels = plan.render.channels
     step = max(1, min(SCENE_BATCH_ROWS, SCENE_BATCH_BYTES // (h * w * channels)))
@@ -66,8 +74,7 @@ def make_scenes(plan: Plan, source, background, split: SplitPlan, rows, rngs=Non
             streams = list(rngs[lo:lo + step])
         bgs = [background.draw(rng, h, w, channels) for rng in streams]
         draws = _first_draws(plan, split, streams)
-        for row, bg, first in zip(chunk, bgs, draws):
-            yield _scene(plan, source, split, row, bg, first)
+        yield [_scene(plan, source, split, row, bg, first) for row, bg, first in zip(chunk, bgs, draws)]
 
 
 def _scene(plan: Plan, source, split: SplitPlan, row, bg: np.ndarray, draws) -> Scene:

@@ -19,17 +19,18 @@ import cv2
 import numpy as np
 
 from ..errors import DatasetError
+from .png import SIGNATURE as PNG_SIGNATURE
+from .png import encode_png
 
 FORMATS = {"png": ".png", "jpeg": ".jpg", "webp": ".webp"}
-# PNG: zlib level (0 stores, 9 packs hardest) and the "up" row filter. Chosen by measurement
-# (tests/bench/bench_scenes.py, PNG settings per background kind, 96x96): against OpenCV's own
-# settings, level 1 with "up" stores noise backgrounds in 0.53-0.59x the bytes at 1.2-1.4x the
-# encode time, flat ones and smooth photograph-like ones in 1.03-1.12x; no filter is as small
-# on noise but twice as large on smooth images, the adaptive filters cost about 2x the encode
-# time. Pixels never depend on it.
+# PNG: zlib level (0 stores, 9 packs hardest) and the "up" row filter (dataset/png.py). Chosen by
+# measurement (tests/bench/bench_scenes.py, PNG settings per background kind, 96x96): against
+# OpenCV's own settings, level 1 with "up" stores noise backgrounds in 0.53-0.59x the bytes at
+# 1.2-1.4x the encode time, flat ones and smooth photograph-like ones in 1.03-1.12x; no filter
+# is as small on noise but twice as large on smooth images, the adaptive filters cost about 2x
+# the encode time. Pixels never depend on it.
 PNG_LEVELS = range(0, 10)
 PNG_LEVEL = 1
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the first 8 bytes of every PNG file (PNG spec, section 5.2)
 
 
 class ImageError(DatasetError):
@@ -43,21 +44,13 @@ def row_where(row) -> str:
 # ---- codecs -------------------------------------------------------------------------------
 
 
-def png_params(level: int = PNG_LEVEL) -> list[int]:
-    """OpenCV's imencode parameters for a PNG of this zlib level with the "up" row filter (an
-    OpenCV without IMWRITE_PNG_FILTER, before 4.10, filters as it always did)."""
-    params = [cv2.IMWRITE_PNG_COMPRESSION, int(level)]
-    if hasattr(cv2, "IMWRITE_PNG_FILTER"):
-        params += [cv2.IMWRITE_PNG_FILTER, cv2.IMWRITE_PNG_FILTER_UP]
-    return params
-
-
 def encode(image: np.ndarray, fmt: str, quality: int, png_level: int = PNG_LEVEL) -> bytes:
-    img = image[..., 0] if image.shape[2] == 1 else cv2.cvtColor(image, cv2.COLOR_RGB2BGR)
+    """RGB or grey (H, W, C) pixels -> the bytes of a file of `fmt`: PNG by the package's own
+    writer (dataset/png.py), JPEG and WebP by OpenCV."""
     if fmt == "png":
-        params = png_params(png_level)
-    else:
-        params = {"jpeg": [cv2.IMWRITE_JPEG_QUALITY, quality], "webp": [cv2.IMWRITE_WEBP_QUALITY, quality]}[fmt]
+        return encode_png(image, png_level)
+    img = image[..., 0] if image.shape[2] == 1 else cv2.cvtColor(image, cv2.COLOR_RGB2BGR)
+    params = {"jpeg": [cv2.IMWRITE_JPEG_QUALITY, quality], "webp": [cv2.IMWRITE_WEBP_QUALITY, quality]}[fmt]
     ok, buf = cv2.imencode(FORMATS[fmt], img, params)
     if not ok:
         raise DatasetError(f"OpenCV could not encode a {fmt} image")

@@ -1,5 +1,6 @@
 """Backgrounds: solid, uniform and Gaussian noise, 1/f ("pink") noise and random crops from a
-folder of images. Each draws a uint8 (H, W, C) canvas from the generator it is given.
+folder of images. Each draws a uint8 (H, W, C) canvas from the generator it is given; the
+canvas may be shared and read-only (a solid one is the same every time): the renderer copies it.
 
 Intensities are fractions of full scale in [0, 1]; noise is luminance noise (the same on every
 channel) unless `per_channel=True`. Grey canvases from colour inputs use BT.601 luma.
@@ -67,7 +68,8 @@ class Solid:
         if canvas is None:  # filling through broadcast_to is slow (a 3-value pattern); copying is not
             level = self._grey if channels == 1 else self._rgb
             canvas = self._canvases[key] = np.broadcast_to(level, key).copy()
-        return canvas.copy()
+            canvas.flags.writeable = False
+        return canvas
 
     def __repr__(self) -> str:
         return f"Solid({self.value})"

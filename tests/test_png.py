@@ -1,0 +1,91 @@
+"""The package's PNG writer against two independent decoders (OpenCV's libpng and Pillow's
+own PNG reader, which checks every chunk's CRC) and the layout the PNG specification gives
+(W3C PNG second edition / ISO/IEC 15948: signature, IHDR fields, filter bytes)."""
+
+from __future__ import annotations
+
+import io
+import struct
+import zlib
+
+import cv2
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from PIL import Image
+
+from augsplit.dataset.images import decode, encode
+from augsplit.dataset.png import SIGNATURE, encode_png
+
+
+def _pixels(seed: int, h: int, w: int, c: int, smooth: bool) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    if smooth:  # gradients and flat patches, where the filter matters
+        y, x = np.mgrid[0:h, 0:w]
+        img = np.stack([(x * (k + 1) + y * 3 + k * 40) % 256 for k in range(c)], axis=-1).astype(np.uint8)
+        img[h // 3:, : w // 2] = rng.integers(0, 256, c)
+        return img
+    return rng.integers(0, 256, (h, w, c), dtype=np.uint8)
+
+
+@settings(max_examples=60, deadline=None)
+@given(h=st.integers(1, 70), w=st.integers(1, 70), c=st.sampled_from([1, 2, 3, 4]), level=st.integers(0, 9),
+       smooth=st.booleans(), seed=st.integers(0, 2**32 - 1))
+def test_decoders_read_back_the_pixels(h, w, c, level, smooth, seed):
+    img = _pixels(seed, h, w, c, smooth)
+    data = encode_png(img, level)
+    with Image.open(io.BytesIO(data)) as im:  # Pillow verifies each chunk's CRC as it reads
+        im.load()
+        back = np.asarray(im)
+        assert im.mode == {1: "L", 2: "LA", 3: "RGB", 4: "RGBA"}[c]
+    assert np.array_equal(back.reshape(h, w, c), img)
+    cv = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
+    if c == 3:
+        cv = cv2.cvtColor(cv, cv2.COLOR_BGR2RGB)
+    elif c == 4:
+        cv = cv2.cvtColor(cv, cv2.COLOR_BGRA2RGBA)
+    if c != 2:  # OpenCV reads grey + alpha as BGRA
+        assert np.array_equal(cv.reshape(h, w, c), img)
+
+
+def test_layout_is_the_specifications():
+    img = _pixels(1, 5, 7, 3, smooth=True)
+    data = encode_png(img, 6)
+    assert data[:8] == SIGNATURE == bytes([137, 80, 78, 71, 13, 10, 26, 10])  # section 5.2
+    length, kind = struct.unpack(">I4s", data[8:16])
+    assert (length, kind) == (13, b"IHDR")
+    assert struct.unpack(">IIBBBBB", data[16:29]) == (7, 5, 8, 2, 0, 0, 0)  # RGB, 8 bits, no interlace
+    at, kinds, idat = 8, [], b""
+    while at < len(data):  # every chunk: length, type, data, CRC-32 of type + data
+        n, k = struct.unpack(">I4s", data[at:at + 8])
+        body = data[at + 8:at + 8 + n]
+        assert struct.unpack(">I", data[at + 8 + n:at + 12 + n])[0] == zlib.crc32(k + body)
+        kinds.append(k)
+        idat += body if k == b"IDAT" else b""
+        at += 12 + n
+    assert kinds == [b"IHDR", b"IDAT", b"IEND"]
+    lines = np.frombuffer(zlib.decompress(idat), np.uint8).reshape(5, 1 + 7 * 3)
+    assert (lines[:, 0] == 2).all()  # filter type Up on every line (section 9.2)
+    raw = np.cumsum(lines[:, 1:], axis=0, dtype=np.uint64) % 256  # undo Up: running sum down each column
+    assert np.array_equal(raw.astype(np.uint8), img.reshape(5, 21))
+
+
+def test_dataset_encode_round_trips_rgb_and_grey():
+    rgb = _pixels(2, 40, 30, 3, smooth=False)
+    assert np.array_equal(decode(encode(rgb, "png", 95), 3, hw=(40, 30)), rgb)
+    grey = _pixels(3, 40, 30, 1, smooth=True)
+    assert np.array_equal(decode(encode(grey, "png", 95, png_level=9), 1, hw=(40, 30)), grey)
+
+
+def test_levels_trade_size_for_time_as_zlib_does():
+    img = _pixels(4, 64, 64, 3, smooth=True)
+    sizes = [len(encode_png(img, lv)) for lv in (0, 1, 9)]
+    assert sizes[0] > 64 * 64 * 3 and sizes[0] > sizes[1] >= sizes[2]  # level 0 stores
+
+
+@pytest.mark.parametrize("bad", [np.zeros((4, 4, 3), np.float32), np.zeros((4, 4, 5), np.uint8),
+                                 np.zeros((4,), np.uint8), np.zeros((0, 4, 3), np.uint8)])
+def test_what_cannot_be_a_png_is_refused(bad):
+    with pytest.raises(ValueError, match="PNG"):
+        encode_png(bad, 1)
