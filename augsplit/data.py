@@ -28,7 +28,8 @@ from .item_transform import bound
 from .plan.draw import draw_online
 from .render import Placed, footprint
 from .reprs import Shown, made_repr
-from .scene import make_scene, pixel_sha256, render_params
+from .manifest import pixel_sha256
+from .scene import make_scene, render_params
 from .space.streams import PARAMS, RENDER, LazyStream, online_rng
 from .threads import one_opencv_thread_in_workers
 

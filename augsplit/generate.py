@@ -35,7 +35,8 @@ from .errors import DatasetError
 from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_new_file, write_text_atomic
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
-from .scene import native_diameter, pixel_sha256, scene_batches
+from .manifest import pixel_sha256
+from .scene import native_diameter, scene_batches
 from .spec import parse_spec
 from .threads import limit_opencv
 

@@ -9,9 +9,11 @@ dataset without augsplit.
 
 from __future__ import annotations
 
+import hashlib
 import json
 from dataclasses import dataclass
 
+import numpy as np
 import pyarrow as pa
 
 from .columnar import to_arrow
@@ -137,3 +139,9 @@ def to_table(columns: dict, schema: pa.Schema, metadata: dict[bytes, bytes]) -> 
         else:
             arrays.append(pa.nulls(n, type=f.type))
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(metadata))
+
+
+def pixel_sha256(image: np.ndarray) -> str:
+    """The `sha256` column: SHA-256 hex of the raw pixel array (H x W x C uint8, C order),
+    hashed in place (no copy of a contiguous image)."""
+    return hashlib.sha256(memoryview(np.ascontiguousarray(image)).cast("B")).hexdigest()

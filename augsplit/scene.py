@@ -7,7 +7,6 @@ image can be re-made from its manifest row alone, on any machine, in any order.
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -161,10 +160,6 @@ def placed_columns(p: Placed) -> dict:
     x0, y0, x1, y1 = p.bbox
     return {"bbox_x0": x0, "bbox_y0": y0, "bbox_x1": x1, "bbox_y1": y1,
             "footprint_px": p.footprint_px, "visible_fraction": p.visible_fraction}
-
-
-def pixel_sha256(image: np.ndarray) -> str:
-    return hashlib.sha256(np.ascontiguousarray(image).tobytes()).hexdigest()
 
 
 @lru_cache(maxsize=4096)

@@ -38,7 +38,7 @@ from .dataset.images import FORMATS, PNG_SIGNATURE, ImageError, decode, max_byte
 from .dataset.rows import iter_batches
 from .errors import AugsplitError, DatasetError
 from .plan.settings import settings_of
-from .scene import pixel_sha256
+from .manifest import pixel_sha256
 from .threads import limit_opencv
 
 SHOWN = 5  # problems of one kind listed by name

@@ -25,7 +25,7 @@ from augsplit.dataset import read_manifest
 from augsplit.errors import AugsplitError, DatasetError, SpecError
 from augsplit.generate import Options, generate
 from augsplit.paramlog import ParamLog, read_log
-from augsplit.scene import pixel_sha256
+from augsplit.manifest import pixel_sha256
 
 SPEC = {
     "seed": 4242,

@@ -16,7 +16,7 @@ from augsplit.dataset import open_dataset, read_manifest
 from augsplit.dataset.images import decode, encode
 from augsplit.errors import DatasetError
 from augsplit.generate import Options, generate
-from augsplit.scene import pixel_sha256
+from augsplit.manifest import pixel_sha256
 from augsplit.verify import verify
 
 SPEC = {

@@ -12,12 +12,13 @@ their median comparison is unstable: such images can hash close though they diff
 
 from __future__ import annotations
 
-import hashlib
 from functools import lru_cache
 
 import cv2
 import numpy as np
 import scipy.fftpack
+
+from ..manifest import pixel_sha256 as content_hash  # the manifest's `sha256`
 
 HASH_SIZE = 8
 _SIDE = HASH_SIZE * 4  # imagehash's img_size = hash_size * highfreq_factor
@@ -233,9 +234,6 @@ def _flush(group, result) -> None:
     result.update(zip((i for i, _ in group), zip(hashes.tolist(), coef)))
 
 
-def content_hash(image: np.ndarray) -> str:
-    """SHA-256 hex of the raw pixel array (H x W x C uint8, C-order), the manifest's `sha256`."""
-    return hashlib.sha256(np.ascontiguousarray(image).tobytes()).hexdigest()
 
 
 def hex_to_uint64(values) -> np.ndarray:
