@@ -184,8 +184,7 @@ def _place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold:
     x0, y0 = box[0], box[1]
     src = warped[cy0 - y0:cy1 - y0, cx0 - x0:cx1 - x0]
     region = canvas[cy0:cy1, cx0:cx1]
-    out = region.astype(np.float32)
-    out *= 1.0 - src[..., 3:4]
+    out = np.multiply(region, 1.0 - src[..., 3:4], dtype=np.float32)  # = region.astype(float32) * (1 - alpha)
     out += src[..., :channels]
     out += 0.5  # round half up; out <= 255 + rounding error, so the cast cannot wrap
     np.copyto(region, out, casting="unsafe")  # the cast astype(np.uint8) makes, in place
