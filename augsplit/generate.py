@@ -231,7 +231,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     """Image and distractor columns for some consecutive image indices of one shard.
 
     Each batch of scenes goes through one step at a time (geometry columns, pixel hashes,
-    encoding, file writes) rather than one image through every step: measured about 1.2x
+    encoding, file writes) rather than one image through every step: measured 1.1-1.2x
     faster per image, as each step's code and data stay in the CPU's caches."""
     plan = built.plan
     cols = draw(plan, split, indices)
@@ -240,11 +240,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
     names = list(cols)
     rows = [dict(zip(names, vals)) for vals in zip(*(cols[k].tolist() for k in names))]  # plain Python scalars
     ids = [f"{job.split}-{i:07d}" for i in cols["index"].tolist()]
-    bbox = np.zeros((n, 4), dtype=np.int64)
-    footprint_px = np.zeros(n, dtype=np.int64)
-    visible = np.zeros(n, dtype=np.float64)
-    n_dist = np.zeros(n, dtype=np.int64)
-    size_px = np.zeros(n, dtype=np.float64)
+    bbox, footprint_px, visible, n_dist, size_px = [], [], [], [], []  # Python lists: cheap appends
     file_col, data_col, sums, byte_sums = [], [], [], []
     dist_rows: list[dict] = []
     r = 0
@@ -252,11 +248,12 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
         at = r
         for scene in scenes:
             row, t = rows[r], scene.target
-            bbox[r] = t.bbox
-            footprint_px[r] = t.footprint_px
-            visible[r] = t.visible_fraction
-            n_dist[r] = len(scene.distractors)
-            size_px[r] = native_diameter(built.source.sprite(row["class_index"], row["instance"]), thr) * row["scale"]
+            bbox.append(t.bbox)
+            footprint_px.append(t.footprint_px)
+            visible.append(t.visible_fraction)
+            n_dist.append(len(scene.distractors))
+            sprite = built.source.sprite(row["class_index"], row["instance"])
+            size_px.append(native_diameter(sprite, thr) * row["scale"])
             dist_rows += ({"image_id": ids[r], **d} for d in scene.distractors)
             r += 1
         sums += (pixel_sha256(scene.image) for scene in scenes)
@@ -274,9 +271,12 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: P
             files.write(rel.rsplit("/", 1)[1], d)
             file_col.append(rel)
         data_col += [None] * len(scenes)
+    bbox = np.array(bbox, dtype=np.int64).reshape(n, 4)
+    size_px = np.array(size_px, dtype=np.float64)
     cols.update(image_id=ids, bbox_x0=bbox[:, 0], bbox_y0=bbox[:, 1], bbox_x1=bbox[:, 2], bbox_y1=bbox[:, 3],
-                footprint_px=footprint_px, visible_fraction=visible, n_distractors=n_dist, file=file_col,
-                image_bytes=data_col, sha256=sums, file_sha256=byte_sums,
+                footprint_px=np.array(footprint_px, dtype=np.int64),
+                visible_fraction=np.array(visible, dtype=np.float64), n_distractors=np.array(n_dist, dtype=np.int64),
+                file=file_col, image_bytes=data_col, sha256=sums, file_sha256=byte_sums,
                 tar_file=[lay.tar_relpath(job.split, job.shard) if opts.store == "tar" else ""] * n,
                 size_px=size_px, split_index=np.full(n, job.split_index),
                 seed=np.full(n, plan.seed), width=np.full(n, plan.canvas.width),

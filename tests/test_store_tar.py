@@ -20,7 +20,7 @@ from augsplit.cli import main
 from augsplit.data import Dataset
 from augsplit.dataset import image_of, layout as lay, open_dataset, read_manifest
 from augsplit.generate import Options, finalize, generate
-from augsplit.scene import pixel_sha256
+from augsplit.manifest import pixel_sha256
 from augsplit.verify import verify
 from specs import assert_same_tree, tree
 
