@@ -179,6 +179,18 @@ def cpu_now() -> float:
     return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
+_RUNS = iter(range(1 << 30))
+
+
+def fresh(parent: Path, name: str) -> Path:
+    """A folder no earlier run used, for one timed run. Timed runs never delete the previous
+    run's files first: on ext4, creating a file soon after thousands were deleted costs up to
+    about 1 ms of kernel time (perf: the inode allocator skips recently deleted inodes one by
+    one, ext4's recently_deleted), which made this machine's disk figures swing 20x between
+    runs. The caller removes all of them at the end."""
+    return parent / f"{name}-{next(_RUNS)}"
+
+
 def run_augsplit(built, out: Path, **opts) -> float:
     from augsplit.generate import Options, generate
 
@@ -292,9 +304,9 @@ def main() -> None:
           f"best of {a.repeat} interleaved rounds")
 
     def bare_with_files() -> float:
-        shutil.rmtree(tmp / "bare", ignore_errors=True)
-        (tmp / "bare").mkdir()
-        return baseline_a(built, a.n, tmp / "bare")
+        out = fresh(tmp, "bare")
+        out.mkdir()
+        return baseline_a(built, a.n, out)
 
     def user_script() -> float:
         shutil.rmtree(tmp / "user-script", ignore_errors=True)
@@ -308,7 +320,7 @@ def main() -> None:
     for store in ("files", "parquet", "none"):
         for w in (1, 2):
             configs.append((f"augsplit --store {store} --workers {w}", f"{store}/{w}",
-                            lambda store=store, w=w: run_augsplit(built, tmp / "ds", store=store, workers=w,
+                            lambda store=store, w=w: run_augsplit(built, fresh(tmp, "ds"), store=store, workers=w,
                                                                   shard_size=a.shard_size)))
     cluster = cluster_s = None
     if not a.no_dask:
@@ -323,7 +335,7 @@ def main() -> None:
             cluster_s = time.perf_counter() - t0
             for store in ("files", "parquet", "none"):
                 configs.append((f"augsplit --store {store} dask LocalCluster(2)", f"{store}/dask",
-                                lambda store=store: run_augsplit(built, tmp / "ds", store=store, executor="dask",
+                                lambda store=store: run_augsplit(built, fresh(tmp, "ds"), store=store, executor="dask",
                                                                  scheduler=cluster.scheduler_address,
                                                                  shard_size=a.shard_size)))
         except ImportError:
@@ -340,8 +352,8 @@ def main() -> None:
     finally:
         if cluster is not None:
             cluster.close()
-    for d in ("ds", "bare", "user-script"):
-        shutil.rmtree(tmp / d, ignore_errors=True)
+    for d in tmp.iterdir():  # every timed run's folder, now that nothing more is timed
+        shutil.rmtree(d, ignore_errors=True)
     ta, tb = got["a"], got["b"]
     times = {tuple(g.split("/")): t for g, t in got.items() if "/" in g}
     times = {(st, int(w) if w.isdigit() else w): t for (st, w), t in times.items()}

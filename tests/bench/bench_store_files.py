@@ -47,11 +47,10 @@ def load_text() -> str:
 
 
 def settle(where: Path) -> None:
-    """Start each timed run from the same state: the previous run's files removed and every
-    pending write flushed (deleting thousands of files, then writing back, otherwise lands in
-    the next run's time on a real disk)."""
-    for d in ("bare", "ds"):
-        shutil.rmtree(where / d, ignore_errors=True)
+    """Start each timed run with every pending write flushed. Runs write to folders of their
+    own (bg.fresh) and nothing is deleted while anything is timed: deleting thousands of files
+    makes the next thousands of file creations on ext4 slow (bg.fresh says why); main removes
+    them all at the end."""
     os.sync()
 
 
@@ -61,8 +60,9 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
     print(f"   before: {load_text()}")
 
     def bare_write():
-        (where / "bare").mkdir()
-        return bg.baseline_a(built, n, where / "bare")
+        out = bg.fresh(where, "bare")
+        out.mkdir()
+        return bg.baseline_a(built, n, out)
 
     def bare_write_durable():
         """The bare loop, then its files made durable as generation makes each shard's before
@@ -71,9 +71,9 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
 
         from augsplit.io import syncfs
 
-        total = 0.0
+        total, out = 0.0, bg.fresh(where, "bare")
         for k in range(0, n, SHARD):
-            part = where / "bare" / f"{k:07d}"
+            part = out / f"{k:07d}"
             part.mkdir(parents=True)
             m = min(SHARD, n - k)
             total += bg.baseline_a(built, m, part) * m
@@ -83,7 +83,7 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
         return total / n
 
     def store(name):
-        return lambda: bg.run_augsplit(built, where / "ds", store=name, shard_size=SHARD)
+        return lambda: bg.run_augsplit(built, bg.fresh(where, "ds"), store=name, shard_size=SHARD)
 
     configs = [("bare: warp + encode PNG", lambda: bg.baseline_a(built, n)),
                ("bare + write each PNG to a file", bare_write),
@@ -96,7 +96,6 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
         for label, fn in configs:
             settle(where)
             got[label] = min(got.get(label, float("inf")), fn())
-    settle(where)
     base = got["bare + write each PNG to a file"]
     for label, _fn in configs:
         print(f"   {label:40s} {got[label] * 1e6:7.0f} us/img  {got[label] / base:5.2f}x bare+write")
@@ -118,7 +117,7 @@ def two_vs_one(built, stores_where: list[tuple[str, Path]], repeat: int) -> tupl
             for w in (1, 2):
                 settle(where)
                 busy = busy or os.getloadavg()[0] > cores
-                t = bg.run_augsplit(built, where / "ds", store=store, workers=w, shard_size=SHARD)
+                t = bg.run_augsplit(built, bg.fresh(where, "ds"), store=store, workers=w, shard_size=SHARD)
                 key = (store, str(where), w)
                 got[key] = min(got.get(key, float("inf")), t)
     return got, busy
