@@ -184,8 +184,17 @@ def _place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold:
     x0, y0 = box[0], box[1]
     src = warped[cy0 - y0:cy1 - y0, cx0 - x0:cx1 - x0]
     region = canvas[cy0:cy1, cx0:cx1]
-    out = np.multiply(region, 1.0 - src[..., 3:4], dtype=np.float32)  # = region.astype(float32) * (1 - alpha)
-    out += src[..., :channels]
+    if not src.size:
+        return placed
+    inv = np.subtract(1.0, src[..., 3], dtype=np.float32)  # 1 - alpha
+    if channels == 3:
+        # whole (h, w, 3) operands, exact copies: numpy then runs along rows rather than 3 values
+        # at a time, as it does for a broadcast (h, w, 1) or a strided 3-of-4-channel view
+        inv, colour = cv2.cvtColor(inv, cv2.COLOR_GRAY2RGB), cv2.cvtColor(src, cv2.COLOR_RGBA2RGB)
+    else:
+        inv, colour = inv[..., None], src[..., :1]
+    out = np.multiply(region, inv, dtype=np.float32)  # = region.astype(float32) * (1 - alpha)
+    out += colour
     out += 0.5  # round half up; out <= 255 + rounding error, so the cast cannot wrap
     np.copyto(region, out, casting="unsafe")  # the cast astype(np.uint8) makes, in place
     return placed
