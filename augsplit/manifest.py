@@ -144,4 +144,5 @@ def to_table(columns: dict, schema: pa.Schema, metadata: dict[bytes, bytes]) -> 
 def pixel_sha256(image: np.ndarray) -> str:
     """The `sha256` column: SHA-256 hex of the raw pixel array (H x W x C uint8, C order),
     hashed in place (no copy of a contiguous image)."""
-    return hashlib.sha256(memoryview(np.ascontiguousarray(image)).cast("B")).hexdigest()
+    pixels = np.ascontiguousarray(image)
+    return hashlib.sha256(memoryview(pixels).cast("B") if pixels.size else b"").hexdigest()

@@ -92,3 +92,14 @@ def test_one_row_group_per_shard(dataset):
     for f in lay.part_files(out):
         meta = pq.ParquetFile(f).metadata
         assert meta.num_row_groups == 1 and meta.num_rows <= 7
+
+
+def test_pixel_sha256_is_the_sha256_of_the_pixel_bytes_in_c_order():
+    """Whatever the layout (views, channel-reversed, transposed, empty), the hash is that of
+    the C-order bytes (hashlib, the reference)."""
+    import hashlib
+
+    base = np.arange(7 * 5 * 3, dtype=np.uint8).reshape(7, 5, 3)
+    for a in (base, base[:, ::2], base[..., ::-1], base.transpose(1, 0, 2), np.asfortranarray(base),
+              np.zeros((0, 5, 3), np.uint8), np.zeros((4, 4, 1), np.uint8)):
+        assert mf.pixel_sha256(a) == hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()

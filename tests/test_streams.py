@@ -55,3 +55,18 @@ def test_negative_keys_are_refused_as_numpy_refuses_them():
         first_doubles(1, (0,), np.array([3, -1]), (0,), 2)
     with pytest.raises(ValueError, match="non-negative"):
         first_doubles(-1, (0,), np.array([3]), (0,), 2)
+
+
+def test_keys_beyond_64_bits_are_numpys_too():
+    """Keys numpy takes (any non-negative int) give numpy's draws, whatever array they come in."""
+    big = [2**63 + 5, 2**64 - 1, 2**64, 2**90 + 7, 3]
+    want = np.array([stream(5, 1, v, 0).random(3) for v in big])
+    assert np.array_equal(first_doubles(5, (1,), big, (0,), 3), want)
+    assert np.array_equal(first_doubles(5, (1,), np.array(big[:2], dtype=np.uint64), (0,), 3), want[:2])
+
+
+def test_float_keys_are_refused_as_numpy_refuses_them():
+    with pytest.raises(TypeError):
+        np.random.SeedSequence(1, spawn_key=(0, 1.5, 0))
+    with pytest.raises(TypeError, match="integers"):
+        first_doubles(5, (1,), np.array([1.5]), (0,), 2)

@@ -105,17 +105,22 @@ def _words(n: int) -> list[int]:
 
 
 def first_doubles(seed: int, head: tuple, varying: np.ndarray, tail: tuple, k: int) -> np.ndarray:
-    """(N, k): row i holds the first k values of `stream(seed, *head, varying[i], *tail).random()`."""
-    varying = np.asarray(varying, dtype=np.int64).ravel()
+    """(N, k): row i holds the first k values of `stream(seed, *head, varying[i], *tail).random()`.
+    `varying`: integers of any size (an integer array, or Python ints beyond 64 bits)."""
+    varying = np.asarray(varying).ravel()
+    python_ints = varying.dtype.kind == "O" and all(isinstance(v, int) for v in varying)
+    if varying.dtype.kind not in "iu" and not python_ints:
+        raise TypeError(f"stream keys are integers, got {varying.dtype}")  # as SeedSequence refuses floats
     out = np.empty((len(varying), k), dtype=float)
     if not len(varying):
         return out
-    if varying.min() < 0:
+    if int(varying.min()) < 0:
         raise ValueError(f"stream keys are non-negative, got {int(varying.min())}")
-    small = varying <= _M32  # one 32-bit word each: a single entropy layout for the lot
-    if not small.all():  # beyond 2**32 images: numpy itself, one stream at a time
-        for row in np.flatnonzero(~small):
-            out[row] = stream(seed, *head, int(varying[row]), *tail).random(k)
+    small = np.array([v <= _M32 for v in varying], bool) if python_ints else varying <= _M32
+    # one 32-bit word each: a single entropy layout for the lot; beyond 2**32 images, numpy
+    # itself, one stream at a time
+    for row in np.flatnonzero(~small):
+        out[row] = stream(seed, *head, int(varying[row]), *tail).random(k)
     rows = np.flatnonzero(small)
     run = _words(seed)
     if len(run) < _POOL:
