@@ -160,7 +160,7 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
             # entered after the part: closed, fsynced and renamed before the part commits
             tar = _guard_disk(lambda: stack.enter_context(_tar_writer(out, job)), out)
         for lo in range(job.start, job.stop, step):
-            cols, dcols = _render_rows(built, split, job, np.arange(lo, min(lo + step, job.stop)), out, opts, files)
+            cols, dcols = _render_rows(built, split, job, np.arange(lo, min(lo + step, job.stop)), opts, files)
             table = mf.to_table(cols, mf.IMAGE_SCHEMA, meta)
             if tar is not None:
                 table = _guard_disk(lambda: _add_to_tar(tar, table, job, FORMATS[opts.format]), part)
@@ -227,7 +227,7 @@ def _parquet_writer(path: Path, schema):
             sink.close()
 
 
-def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, out: Path, opts: Options, files):
+def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: Options, files):
     """Image and distractor columns for some consecutive image indices of one shard.
 
     Each batch of scenes goes through one step at a time (geometry columns, pixel hashes,

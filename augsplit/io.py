@@ -120,12 +120,14 @@ def syncfs(path: Path) -> bool:
     return True
 
 
-def _sync_data(paths: list[Path]) -> None:
-    """Make the files' bytes durable: one syncfs per file system for a batch, an fsync each
-    for a single file or where syncfs is missing (one journal commit per call is the cost)."""
+def _sync_data(paths: list) -> None:
+    """Make the files' bytes durable: one syncfs per file system of their folders for a batch
+    (one stat per folder, not per file), an fsync each for a single file or where syncfs is
+    missing (one journal commit per call is the cost)."""
     if len(paths) > 1:
-        devices = {os.stat(p).st_dev: p for p in paths}
-        if all(syncfs(p) for p in devices.values()):
+        folders = dict.fromkeys(os.path.dirname(os.fspath(p)) or "." for p in paths)
+        devices = {os.stat(f).st_dev: f for f in folders}
+        if all(syncfs(Path(f)) for f in devices.values()):
             return
     for p in paths:
         _fsync_file(p)
@@ -223,16 +225,10 @@ def sync_files(paths) -> None:
     """Make files written unsynced (`write_files_atomic(..., sync=False)`, `write_new_file`)
     durable, names included: one syncfs per file system of their folders (an fsync per file
     for a single file or where there is no syncfs), then each folder fsynced once."""
-    paths = [os.fspath(p) for p in paths]
-    if not paths:
-        return
-    folders = list(dict.fromkeys(os.path.dirname(p) or "." for p in paths))
-    devices = {os.stat(f).st_dev: f for f in folders}
-    if len(paths) == 1 or not all(syncfs(Path(f)) for f in devices.values()):
-        for p in paths:
-            _fsync_file(p)
-    for f in folders:
-        fsync_folder(f)
+    paths = list(paths)
+    if paths:
+        _sync_data(paths)
+        _sync_folders(paths)
 
 
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:

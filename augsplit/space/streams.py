@@ -135,7 +135,8 @@ def first_doubles(seed: int, head: tuple, varying: np.ndarray, tail: tuple, k: i
 
 
 class _Hash:
-    """SeedSequence's hashmix: the running constant depends only on how often it was called."""
+    """SeedSequence's hashmix (mix_entropy's, with the A constants; generate_state's, with the
+    B constants): the running constant depends only on how often it was called."""
 
     def __init__(self, init: int, mult: int):
         self.const, self.mult = init, mult
@@ -170,12 +171,8 @@ def _mix_entropy(entropy: list[np.ndarray]) -> list[np.ndarray]:
 def _generate_state(pool: list[np.ndarray]) -> list[np.ndarray]:
     """SeedSequence.generate_state(4, uint64): 8 hashed words cycling over the pool, paired
     little-endian into 4 uint64."""
-    const, words = _INIT_B, []
-    for i in range(8):
-        v = pool[i % _POOL] ^ _U32(const)
-        const = (const * _MULT_B) & _M32
-        v = v * _U32(const)
-        words.append((v ^ (v >> _U32(16))).astype(_U64))
+    hashmix = _Hash(_INIT_B, _MULT_B)
+    words = [hashmix(pool[i % _POOL]).astype(_U64) for i in range(8)]
     return [words[2 * j] | (words[2 * j + 1] << _U64(32)) for j in range(4)]
 
 

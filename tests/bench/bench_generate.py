@@ -18,6 +18,7 @@ in a fresh subprocess per size (resource.getrusage, ru_maxrss). The audit and lo
 from __future__ import annotations
 
 import argparse
+import itertools
 import json
 import os
 import platform
@@ -179,7 +180,7 @@ def cpu_now() -> float:
     return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
-_RUNS = iter(range(1 << 30))
+_RUNS = itertools.count()
 
 
 def fresh(parent: Path, name: str) -> Path:
