@@ -39,8 +39,16 @@ def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.ra
     """Render the image of one row (a mapping with class_index, instance, index and PARAM_KEYS).
 
     `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
-    fresh draw never reuses the background of the generated image with the same index)."""
-    return next(make_scenes(plan, source, background, split, [row], None if rng is None else [rng]))
+    fresh draw never reuses the background of the generated image with the same index).
+    The steps of `scene_batches` for one row, without its batching (a lazy loader's path)."""
+    if rng is None:
+        rng = _render_stream(plan, split, row)
+    bg = background.draw(rng, plan.canvas.height, plan.canvas.width, plan.render.channels)
+    return _scene(plan, source, split, row, bg, _first_draws(plan, split, [rng])[0])
+
+
+def _render_stream(plan: Plan, split: SplitPlan, row):
+    return lazy_image_rng(plan.seed, split.index, int(row["index"]), RENDER)
 
 
 # The most background bytes `make_scenes` holds at once (each scene's background is drawn,
@@ -68,7 +76,7 @@ def scene_batches(plan: Plan, source, background, split: SplitPlan, rows, rngs=N
     for lo in range(0, len(rows), step):
         chunk = rows[lo:lo + step]
         if rngs is None:
-            streams = [lazy_image_rng(plan.seed, split.index, int(r["index"]), RENDER) for r in chunk]
+            streams = [_render_stream(plan, split, r) for r in chunk]
         else:
             streams = list(rngs[lo:lo + step])
         bgs = [background.draw(rng, h, w, channels) for rng in streams]

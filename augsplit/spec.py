@@ -139,10 +139,11 @@ class PinkNoiseBg(Model):
     exponent: float = 1.0
     per_channel: bool = False
     # how the noise is made (see sources.backgrounds.PinkNoise); "white" re-makes datasets made
-    # before this key existed, "spectrum" those made before "polar" was the default. The
-    # default is part of every pink-noise spec's hash, so such specs hash anew and their
-    # datasets (whose stored spec names their synthesis) are never re-rendered another way.
-    synthesis: Literal["polar", "spectrum", "white"] = "polar"
+    # before this key existed, "spectrum" those made before "polar" was the default, "polar"
+    # those made before "grid" was. The default is part of every pink-noise spec's hash, so
+    # such specs hash anew and their datasets (whose stored spec names their synthesis) are
+    # never re-rendered another way.
+    synthesis: Literal["grid", "polar", "spectrum", "white"] = "grid"
 
 
 class FolderBg(Model):

@@ -125,18 +125,21 @@ class PinkNoise:
     average spectrum of natural images, Field 1987), scaled to the given mean and RMS contrast
     (standard deviation / mean of intensity), then clipped to [0, 1].
 
-    Three syntheses of the same process (their pixels differ): "polar" (the default) draws
-    each Fourier coefficient in polar form, a Rayleigh amplitude and a uniform phase (Box and
-    Muller 1958: independent normal real and imaginary parts), from 16-bit integers of the
-    stream through fixed tables, and makes one inverse FFT; "spectrum" draws the coefficients'
-    real and imaginary parts with numpy's normal generator, in single precision (datasets
-    made before "polar" existed); "white" draws white noise in double precision and filters
-    it (two FFTs), as every dataset made before the choice existed did."""
+    Four syntheses of the same process (their pixels differ): "grid" (the default) draws each
+    Fourier coefficient as one of 65,536 equally likely complex values, a Rayleigh amplitude
+    (256 quantiles) times a uniform phase (256 angles), from one 16-bit integer of the stream
+    (Box and Muller 1958: independent normal real and imaginary parts), makes one inverse FFT,
+    and scales, offsets, rounds and clips the field in a single pass; "polar" draws the
+    amplitude and the phase from 16 bits each and normalises in separate passes (datasets
+    made before "grid" existed); "spectrum" draws the coefficients' real and imaginary parts
+    with numpy's normal generator, in single precision (datasets made before "polar" existed);
+    "white" draws white noise in double precision and filters it (two FFTs), as every dataset
+    made before the choice existed did."""
 
-    SYNTHESES = ("polar", "spectrum", "white")
+    SYNTHESES = ("grid", "polar", "spectrum", "white")
 
     def __init__(self, mean: float = 0.5, contrast: float = 0.2, exponent: float = 1.0, per_channel: bool = False,
-                 synthesis: str = "polar"):
+                 synthesis: str = "grid"):
         self.mean = _unit(mean, "background.mean")
         if isinstance(contrast, bool) or not isinstance(contrast, (int, float)) or contrast < 0:
             raise SpecError(f"contrast must be a non-negative number, got {contrast!r}", where="background.contrast")
@@ -154,7 +157,10 @@ class PinkNoise:
         if gain is None:
             gain = spectral_filter(height, width, self.exponent)
             if self.synthesis != "white":
-                gain = coefficient_gain(gain, width).astype(np.float32)
+                gain = coefficient_gain(gain, width)
+            if self.synthesis == "grid":  # normalised afterwards: RMS 1 keeps sums of squares small
+                gain /= max(math.sqrt(np.mean(np.square(gain))), np.finfo(float).tiny)
+            gain = gain.astype(np.float32 if self.synthesis != "white" else float)
             self._filters[(height, width)] = gain
         return gain
 
@@ -164,6 +170,10 @@ class PinkNoise:
         if self.synthesis == "white":
             white = rng.standard_normal((k, height, width))
             return np.fft.irfft2(np.fft.rfft2(white) * gain, s=(height, width))
+        if self.synthesis == "grid":
+            coef = _grid_draws(rng, (k,) + gain.shape)
+            coef *= gain
+            return irfft2(coef, width, scaled=False)
         if self.synthesis == "polar":
             amplitude, phase = _polar_draws(rng, (k,) + gain.shape)
             amplitude *= gain
@@ -172,14 +182,17 @@ class PinkNoise:
         else:  # real and imaginary parts of every rfft2 coefficient, as complex64
             coef = rng.standard_normal((k, height, 2 * gain.shape[1]), dtype=np.float32).view(np.complex64)
             coef *= gain
-        import scipy.fft  # here, not at the top: 0.2 s that every generation run would pay
-
-        return scipy.fft.irfft2(coef, s=(height, width), overwrite_x=True)
+        return irfft2(coef, width)
 
     def field(self, rng: np.random.Generator, height: int, width: int, k: int = 1) -> np.ndarray:
         """(k, H, W) float fields with exactly the requested mean and RMS contrast (before
-        clipping; to single precision for "polar" and "spectrum")."""
+        clipping; to single precision for "grid", "polar" and "spectrum")."""
         shaped = self._shaped(rng, height, width, k)
+        if self.synthesis == "grid":
+            scale, offset = self._affine(shaped, 1.0)
+            shaped *= scale
+            shaped += offset
+            return shaped
         shaped -= shaped.mean(axis=(1, 2), keepdims=True)
         if self.synthesis == "white":  # the arithmetic those datasets were made with
             sd = shaped.std(axis=(1, 2), keepdims=True)
@@ -190,9 +203,26 @@ class PinkNoise:
         shaped += np.float32(self.mean)
         return shaped
 
+    def _affine(self, shaped: np.ndarray, full_scale: float) -> tuple[np.ndarray, np.float32]:
+        """The scale (per field) and offset that give zero-mean `shaped` fields ("grid": the
+        DC coefficient is zero) the requested RMS contrast and mean, in units of `full_scale`."""
+        ss = np.square(shaped).sum(axis=(1, 2))  # numpy's pairwise sums: no BLAS, the same on any CPU
+        n, target = shaped.shape[1] * shaped.shape[2], full_scale * self.mean * self.contrast
+        scale = [target * math.sqrt(n / float(x)) if x > 0 else 0.0 for x in ss]
+        return np.array(scale, dtype=np.float32).reshape(-1, 1, 1), np.float32(full_scale * self.mean)
+
     def draw(self, rng, height, width, channels):
-        field = self.field(rng, height, width, channels if self.per_channel else 1)
-        return _shape_channels(_quantise(field), channels, self.per_channel)
+        if self.synthesis != "grid":
+            field = self.field(rng, height, width, channels if self.per_channel else 1)
+            return _shape_channels(_quantise(field), channels, self.per_channel)
+        # "grid": scale, offset and round half up (as _quantise) in one pass over the field
+        shaped = self._shaped(rng, height, width, channels if self.per_channel else 1)
+        scale, offset = self._affine(shaped, 255.0)
+        shaped *= scale
+        shaped += offset + np.float32(0.5)
+        np.maximum(shaped, 0, out=shaped)
+        np.minimum(shaped, 255, out=shaped)
+        return _shape_channels(shaped.astype(np.uint8), channels, self.per_channel)
 
     def __repr__(self) -> str:
         return (f"PinkNoise(mean={self.mean}, contrast={self.contrast}, exponent={self.exponent}, "
@@ -227,6 +257,61 @@ def _polar_draws(rng: np.random.Generator, shape: tuple[int, ...]) -> tuple[np.n
     idx = raw.view("<u2")[:2 * n].astype(np.intp).reshape((2,) + shape)
     amplitude, phase = polar_tables()
     return np.take(amplitude, idx[0]), np.take(phase, idx[1])
+
+
+GRID_BITS = 8  # the "grid" synthesis: 2**8 amplitudes times 2**8 phases, one 16-bit index
+
+
+@lru_cache(maxsize=1)
+def grid_table() -> np.ndarray:
+    """2**(2 GRID_BITS) complex64 values, amplitude-major: Rayleigh amplitude i times unit
+    phasor j at index i * 2**GRID_BITS + j, both at the midpoints u = (i + 1/2) / 2**GRID_BITS:
+    sqrt(-2 ln u) and exp(2 pi i u) (Box and Muller 1958). Computed with Python's math module
+    in double precision, then rounded to single once, so the table does not depend on numpy's
+    vectorised functions of the machine."""
+    n = 1 << GRID_BITS
+    mid = [(i + 0.5) / n for i in range(n)]
+    amplitude = [math.sqrt(-2.0 * math.log(u)) for u in mid]
+    angle = [2.0 * math.pi * u for u in mid]
+    re = [a * math.cos(t) for a in amplitude for t in angle]
+    im = [a * math.sin(t) for a in amplitude for t in angle]
+    table = np.empty(n * n, dtype=np.complex64)
+    table.real, table.imag = np.array(re, dtype=np.float32), np.array(im, dtype=np.float32)
+    table.setflags(write=False)
+    return table
+
+
+def _grid_draws(rng: np.random.Generator, shape: tuple[int, ...]) -> np.ndarray:
+    """A fresh complex64 array of table values, one 16-bit index per coefficient cut from the
+    stream's raw 64-bit outputs (least significant bits first, on any byte order)."""
+    n = math.prod(shape)
+    raw = rng.bit_generator.random_raw(-(-n // 4)).astype("<u8", copy=False)
+    return np.take(grid_table(), raw.view("<u2")[:n]).reshape(shape)
+
+
+def irfft2(coef: np.ndarray, width: int, scaled: bool = True) -> np.ndarray:
+    """`scipy.fft.irfft2(coef, s=(H, width))` over the last two axes (`scaled=False`: with
+    norm="forward", no 1/N): the same pocketfft call (a test holds them equal), without
+    scipy's dispatch layers, which cost more than the transform of a small canvas. `coef` may
+    be overwritten."""
+    c2r = _pocketfft_c2r()
+    if c2r is None:
+        import scipy.fft
+
+        return scipy.fft.irfft2(coef, s=(coef.shape[-2], width), norm=None if scaled else "forward",
+                                overwrite_x=True)
+    return c2r(coef, (coef.ndim - 2, coef.ndim - 1), width, False, 2 if scaled else 0, None, 1)
+
+
+@lru_cache(maxsize=1)
+def _pocketfft_c2r():
+    """scipy's pocketfft binding (c2r(array, axes, last size, forward, norm: 0 none, 2 1/N,
+    out, threads)), or None where this scipy lays it out otherwise."""
+    try:
+        from scipy.fft._pocketfft import pypocketfft
+    except ImportError:
+        return None
+    return getattr(pypocketfft, "c2r", None)
 
 
 def coefficient_gain(gain: np.ndarray, width: int) -> np.ndarray:
