@@ -243,6 +243,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
     bbox, footprint_px, visible, n_dist, size_px = [], [], [], [], []  # Python lists: cheap appends
     file_col, data_col, sums, byte_sums = [], [], [], []
     dist_rows: list[dict] = []
+    diameters: dict = {}  # per sprite: its native diameter is a function of the sprite alone
     r = 0
     for scenes in scene_batches(plan, built.source, built.background, split, rows):
         at = r
@@ -252,8 +253,10 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
             footprint_px.append(t.footprint_px)
             visible.append(t.visible_fraction)
             n_dist.append(len(scene.distractors))
-            sprite = built.source.sprite(row["class_index"], row["instance"])
-            size_px.append(native_diameter(sprite, thr) * row["scale"])
+            key = (row["class_index"], row["instance"])
+            if key not in diameters:
+                diameters[key] = native_diameter(built.source.sprite(*key), thr)
+            size_px.append(diameters[key] * row["scale"])
             dist_rows += ({"image_id": ids[r], **d} for d in scene.distractors)
             r += 1
         sums += (pixel_sha256(scene.image) for scene in scenes)
@@ -420,7 +423,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     return finalize(out, built)
 
 
-_SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow")  # the libraries that decide output bytes
+_SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow", "scipy")  # the libraries that decide output bytes
 
 
 def _check_worker_versions(client, scheduler: str) -> None:

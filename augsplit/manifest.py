@@ -9,6 +9,8 @@ dataset without augsplit.
 
 from __future__ import annotations
 
+import functools
+
 import hashlib
 import json
 from dataclasses import dataclass
@@ -112,15 +114,24 @@ META_SPEC, META_HASH, META_VERSIONS = b"augsplit.spec", b"augsplit.spec_hash", b
 
 
 def versions() -> dict:
+    """The versions of the libraries that decide a dataset's bytes (and Python's)."""
+    return dict(_versions())
+
+
+@functools.lru_cache(maxsize=1)
+def _versions() -> dict:  # once per process: reading a package's metadata takes 2.6 ms
     import sys
+    from importlib.metadata import version
 
     import cv2
     import numpy
 
     from . import __version__
 
+    # scipy's FFT makes the pink-noise pixels; its version is read from its metadata, as
+    # importing it costs every generation run 0.2 s
     return {"augsplit": __version__, "numpy": numpy.__version__, "opencv": cv2.__version__,
-            "pyarrow": pa.__version__, "python": sys.version.split()[0]}
+            "pyarrow": pa.__version__, "scipy": version("scipy"), "python": sys.version.split()[0]}
 
 
 def file_metadata(canonical_spec: str, spec_hash: str) -> dict[bytes, bytes]:

@@ -88,26 +88,28 @@ def test_a_worker_killed_mid_shard_loses_and_duplicates_nothing(spec_file, seria
     assert not df["image_id"].duplicated().any() and len(df) == 56
 
 
-def _pretend_numpy(version: str | None) -> None:
-    """Runs on a worker: report another numpy version (None: the real one again)."""
+def _pretend_version(library: str, version: str | None) -> None:
+    """Runs on a worker: report another version of `library` (None: the real ones again)."""
     import augsplit.manifest as m
 
     real = getattr(m, "_real_versions", m.versions)
     m._real_versions = real
-    m.versions = real if version is None else (lambda: dict(real(), numpy=version))
+    m.versions = real if version is None else (lambda: dict(real(), **{library: version}))
 
 
-def test_workers_with_other_library_versions_are_refused(spec_file, cluster, tmp_path):
-    """Output bytes depend on numpy, OpenCV, pyarrow and augsplit: a worker with another
-    version would break byte identity silently, so the run stops before writing anything."""
+@pytest.mark.parametrize("library", ["numpy", "scipy"])
+def test_workers_with_other_library_versions_are_refused(spec_file, cluster, tmp_path, library):
+    """Output bytes depend on numpy, OpenCV, pyarrow, scipy (the pink-noise FFT) and augsplit:
+    a worker with another version would break byte identity silently, so the run stops before
+    writing anything."""
     from augsplit.errors import DatasetError
 
     with distributed.Client(cluster.scheduler_address, set_as_default=False) as client:
-        client.run(_pretend_numpy, "0.0-other")
+        client.run(_pretend_version, library, "0.0-other")
         try:
             out = tmp_path / "never"
-            with pytest.raises(DatasetError, match="numpy 0.0-other"):
+            with pytest.raises(DatasetError, match=f"{library} 0.0-other"):
                 generate(spec_file, out, dataclasses.replace(QUICK, executor="dask", scheduler=cluster.scheduler_address))
             assert not out.exists()
         finally:
-            client.run(_pretend_numpy, None)
+            client.run(_pretend_version, library, None)
