@@ -344,6 +344,21 @@ def test_irfft2_is_scipys_bit_for_bit(monkeypatch, shape, width, scaled):
     np.testing.assert_array_equal(backgrounds.irfft2(coef.copy(), width, scaled), expected)
 
 
+def test_a_changed_private_fft_binding_is_not_used():
+    # scipy's pocketfft binding is private: one that takes other arguments, or gives another
+    # result, must be refused (checked against scipy.fft.irfft2) and the public path taken
+    from scipy.fft._pocketfft import pypocketfft
+
+    from augsplit.sources.backgrounds import _checked_c2r
+
+    real = pypocketfft.c2r
+    assert _checked_c2r(real) is real
+    assert _checked_c2r(None) is None
+    assert _checked_c2r(lambda a, axes, n, fwd, norm, out, threads, extra: real(a, axes, n, fwd, norm, out, threads)) is None
+    assert _checked_c2r(lambda a, axes, n, fwd, norm, out, threads: real(a, axes, n, fwd, 2 - norm, out, threads)) is None
+    assert _checked_c2r(lambda a, axes, n, fwd, norm, out, threads: real(a, axes, n, fwd, norm, out, threads).astype(float)) is None
+
+
 @pytest.mark.parametrize("h,w,per_channel,channels", [(96, 96, False, 3), (33, 47, True, 3), (20, 64, False, 1)])
 def test_grid_draw_is_its_field_rounded_half_up_and_clipped(h, w, per_channel, channels):
     # draw() scales, offsets and rounds in one pass, field() in full-scale fractions: they

@@ -306,12 +306,33 @@ def irfft2(coef: np.ndarray, width: int, scaled: bool = True) -> np.ndarray:
 @lru_cache(maxsize=1)
 def _pocketfft_c2r():
     """scipy's pocketfft binding (c2r(array, axes, last size, forward, norm: 0 none, 2 1/N,
-    out, threads)), or None where this scipy lays it out otherwise."""
+    out, threads)), or None where this scipy lays it out otherwise or where it no longer
+    gives scipy.fft.irfft2's result bit for bit (checked once per process: a private binding
+    may change its arguments in any release)."""
     try:
         from scipy.fft._pocketfft import pypocketfft
     except ImportError:
         return None
-    return getattr(pypocketfft, "c2r", None)
+    return _checked_c2r(getattr(pypocketfft, "c2r", None))
+
+
+def _checked_c2r(c2r):
+    """`c2r` if it equals scipy.fft.irfft2 on a small field, scaled and unscaled; else None."""
+    import scipy.fft
+
+    if c2r is None:
+        return None
+    rng = np.random.default_rng(0)
+    coef = (rng.standard_normal((2, 6, 4)) + 1j * rng.standard_normal((2, 6, 4))).astype(np.complex64)
+    try:
+        for scaled, norm in ((True, None), (False, "forward")):
+            got = c2r(coef.copy(), (1, 2), 7, False, 2 if scaled else 0, None, 1)
+            want = scipy.fft.irfft2(coef, s=(6, 7), norm=norm)
+            if not (isinstance(got, np.ndarray) and got.dtype == want.dtype and np.array_equal(got, want)):
+                return None
+    except Exception:  # noqa: BLE001 - any failure of a private binding means: do not use it
+        return None
+    return c2r
 
 
 def coefficient_gain(gain: np.ndarray, width: int) -> np.ndarray:
