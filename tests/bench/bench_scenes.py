@@ -26,6 +26,7 @@ With `--baseline REF` sections 1 and 2 also run on the package as it was at git 
 from __future__ import annotations
 
 import argparse
+import atexit
 import json
 import shutil
 import sys
@@ -140,6 +141,7 @@ def _dataset_fns(built, n: int) -> dict:
     except ImportError:
         return {}
     tmp = Path(tempfile.mkdtemp(prefix="augsplit-bench-"))
+    atexit.register(shutil.rmtree, tmp, True)  # after the timed rounds: its datasets are read until then
     sets = {}
     for store in ("none", "files"):
         generate(None, tmp / store, Options(store=store, progress=False), built=built)
