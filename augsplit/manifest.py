@@ -10,7 +10,6 @@ dataset without augsplit.
 from __future__ import annotations
 
 import functools
-
 import hashlib
 import json
 from dataclasses import dataclass

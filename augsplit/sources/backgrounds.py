@@ -158,9 +158,9 @@ class PinkNoise:
             gain = spectral_filter(height, width, self.exponent)
             if self.synthesis != "white":
                 gain = coefficient_gain(gain, width)
-            if self.synthesis == "grid":  # normalised afterwards: RMS 1 keeps sums of squares small
-                gain /= max(math.sqrt(np.mean(np.square(gain))), np.finfo(float).tiny)
-            gain = gain.astype(np.float32 if self.synthesis != "white" else float)
+                if self.synthesis == "grid":  # normalised afterwards: RMS 1 keeps sums of squares small
+                    gain /= max(math.sqrt(np.mean(np.square(gain))), np.finfo(float).tiny)
+                gain = gain.astype(np.float32)
             self._filters[(height, width)] = gain
         return gain
 
@@ -232,6 +232,14 @@ class PinkNoise:
 POLAR_BITS = 16  # resolution of the polar draws: 2**16 amplitudes and 2**16 phases
 
 
+def _box_muller_midpoints(bits: int) -> tuple[list[float], list[float]]:
+    """Rayleigh amplitudes sqrt(-2 ln u) and phase angles 2 pi u (Box and Muller 1958) at the
+    2**bits midpoints u = (i + 1/2) / 2**bits, in double precision (Python's math module)."""
+    n = 1 << bits
+    mid = [(i + 0.5) / n for i in range(n)]
+    return [math.sqrt(-2.0 * math.log(u)) for u in mid], [2.0 * math.pi * u for u in mid]
+
+
 @lru_cache(maxsize=1)
 def polar_tables() -> tuple[np.ndarray, np.ndarray]:
     """(Rayleigh amplitudes float32, unit phasors complex64), 2**POLAR_BITS each, at the
@@ -239,11 +247,11 @@ def polar_tables() -> tuple[np.ndarray, np.ndarray]:
     1958). Computed with Python's math module in double precision, then rounded to single,
     so the tables do not depend on numpy's vectorised functions of the machine."""
     n = 1 << POLAR_BITS
-    mid = [(i + 0.5) / n for i in range(n)]
-    amplitude = np.array([math.sqrt(-2.0 * math.log(u)) for u in mid], dtype=np.float32)
+    radii, angles = _box_muller_midpoints(POLAR_BITS)
+    amplitude = np.array(radii, dtype=np.float32)
     phase = np.empty(n, dtype=np.complex64)
-    phase.real = np.array([math.cos(2.0 * math.pi * u) for u in mid], dtype=np.float32)
-    phase.imag = np.array([math.sin(2.0 * math.pi * u) for u in mid], dtype=np.float32)
+    phase.real = np.array([math.cos(t) for t in angles], dtype=np.float32)
+    phase.imag = np.array([math.sin(t) for t in angles], dtype=np.float32)
     amplitude.setflags(write=False)
     phase.setflags(write=False)
     return amplitude, phase
@@ -270,11 +278,9 @@ def grid_table() -> np.ndarray:
     in double precision, then rounded to single once, so the table does not depend on numpy's
     vectorised functions of the machine."""
     n = 1 << GRID_BITS
-    mid = [(i + 0.5) / n for i in range(n)]
-    amplitude = [math.sqrt(-2.0 * math.log(u)) for u in mid]
-    angle = [2.0 * math.pi * u for u in mid]
-    re = [a * math.cos(t) for a in amplitude for t in angle]
-    im = [a * math.sin(t) for a in amplitude for t in angle]
+    radii, angles = _box_muller_midpoints(GRID_BITS)
+    re = [a * math.cos(t) for a in radii for t in angles]
+    im = [a * math.sin(t) for a in radii for t in angles]
     table = np.empty(n * n, dtype=np.complex64)
     table.real, table.imag = np.array(re, dtype=np.float32), np.array(im, dtype=np.float32)
     table.setflags(write=False)
@@ -318,10 +324,10 @@ def _pocketfft_c2r():
 
 def _checked_c2r(c2r):
     """`c2r` if it equals scipy.fft.irfft2 on a small field, scaled and unscaled; else None."""
-    import scipy.fft
-
     if c2r is None:
         return None
+    import scipy.fft
+
     rng = np.random.default_rng(0)
     coef = (rng.standard_normal((2, 6, 4)) + 1j * rng.standard_normal((2, 6, 4))).astype(np.complex64)
     try:
