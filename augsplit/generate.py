@@ -28,7 +28,8 @@ from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.rows import read_column
-from .dataset.images import FORMATS, PNG_LEVEL, PNG_LEVELS, encode
+from .dataset.images import FORMATS, encode
+from .dataset.png import DEFLATES, default_deflate
 from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
@@ -57,7 +58,11 @@ class Options:
     store: str = "files"
     format: str = "png"
     quality: int = 95  # JPEG / WebP quality
-    png_level: int = PNG_LEVEL  # PNG zlib level 0-9, "up" filter (stored bytes only: PNG is lossless)
+    # the library that deflates PNG files, "isal" or "zlib", and its level (isal 0-3, zlib 0-9);
+    # None: the default for the spec's background kind and that library's default level
+    # (dataset/png.py). Stored bytes only: PNG is lossless
+    png_deflate: str | None = None
+    png_level: int | None = None
     shard_size: int = 500
     workers: int = 1
     resume: bool = False
@@ -263,7 +268,7 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
         if opts.store == "none":
             data = [None] * len(scenes)
         else:
-            data = [encode(scene.image, opts.format, opts.quality, opts.png_level) for scene in scenes]
+            data = [encode(scene.image, opts.format, opts.quality, opts.png_level, opts.png_deflate) for scene in scenes]
         byte_sums += (sha256_hex(d) if d is not None else None for d in data)
         if files is None:
             file_col += [""] * len(scenes)
@@ -356,14 +361,25 @@ def check_options(opts: Options) -> None:
     lo, hi = QUALITY[opts.format]
     if not lo <= opts.quality <= hi:
         raise DatasetError(f"quality must lie in {lo}..{hi} for {opts.format}, got {opts.quality}", where="--quality")
-    if isinstance(opts.png_level, bool) or not isinstance(opts.png_level, int) or opts.png_level not in PNG_LEVELS:
-        raise DatasetError(f"PNG level must be an integer in {PNG_LEVELS[0]}..{PNG_LEVELS[-1]}, got {opts.png_level!r}",
-                           where="--png-level")
+    if opts.png_deflate is not None and opts.png_deflate not in DEFLATES:
+        raise DatasetError(f"unknown PNG deflate library '{opts.png_deflate}'; use one of {', '.join(DEFLATES)}",
+                           where="--png-deflate")
+    # without a library, a level either takes (the spec's background picks one: with_png_defaults)
+    _check_png_level(opts.png_level, [opts.png_deflate] if opts.png_deflate else list(DEFLATES))
     if opts.array_shard is not None:
         k, n = opts.array_shard
         if n < 1 or not 0 <= k < n:
             raise DatasetError(f"shard {k}/{n}: K must lie in 0..{max(n - 1, 0)} and N be at least 1",
                                where="--shard")
+
+
+def _check_png_level(level, names: list[str], why: str = "") -> None:
+    if level is None:
+        return
+    lo, hi = min(DEFLATES[n].levels[0] for n in names), max(DEFLATES[n].levels[-1] for n in names)
+    if isinstance(level, bool) or not isinstance(level, int) or not lo <= level <= hi:
+        raise DatasetError(f"PNG level must be an integer in {lo}..{hi} for {' or '.join(names)}{why}, got {level!r}",
+                           where="--png-level")
 
 
 def usable_workers(opts: Options, n_shards: int) -> int:
@@ -373,6 +389,19 @@ def usable_workers(opts: Options, n_shards: int) -> int:
         return opts.workers
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     return max(1, min(opts.workers, n_shards, cores))
+
+
+def with_png_defaults(opts: Options, built: Built) -> Options:
+    """The options with the PNG deflate library and level filled in where they were left to
+    the defaults (the layout records what was used)."""
+    deflate = opts.png_deflate
+    if deflate is None:
+        kind = built.spec.background.kind
+        deflate = default_deflate(kind)
+        _check_png_level(opts.png_level, [deflate], f" (the default for a {kind} background; --png-deflate "
+                                                    f"{' or '.join(n for n in DEFLATES if n != deflate)} takes others)")
+    level = DEFLATES[deflate].default if opts.png_level is None else opts.png_level
+    return replace(opts, png_deflate=deflate, png_level=level)
 
 
 def _check_shards(built: Built, opts: Options) -> Options:
@@ -389,7 +418,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     """Make (or resume, or finish one job-array shard of) the dataset; returns the summary."""
     check_options(opts)
     built = built or open_spec(spec_path)
-    opts = _check_shards(built, opts)
+    opts = _check_shards(built, with_png_defaults(opts, built))
     out = Path(out)
     if opts.store == "tar":  # every member name must fit a ustar header: refused before any work
         for s in built.plan.splits:
@@ -423,7 +452,7 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     return finalize(out, built)
 
 
-_SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow", "scipy")  # the libraries that decide output bytes
+_SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow", "scipy", "isal", "zlib")  # the libraries that decide output bytes
 
 
 def _check_worker_versions(client, scheduler: str) -> None:

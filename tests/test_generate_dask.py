@@ -97,9 +97,10 @@ def _pretend_version(library: str, version: str | None) -> None:
     m.versions = real if version is None else (lambda: dict(real(), **{library: version}))
 
 
-@pytest.mark.parametrize("library", ["numpy", "scipy"])
+@pytest.mark.parametrize("library", ["numpy", "scipy", "isal", "zlib"])
 def test_workers_with_other_library_versions_are_refused(spec_file, cluster, tmp_path, library):
-    """Output bytes depend on numpy, OpenCV, pyarrow, scipy (the pink-noise FFT) and augsplit:
+    """Output bytes depend on numpy, OpenCV, pyarrow, scipy (the pink-noise FFT), isal and zlib
+    (the PNG deflate libraries) and augsplit:
     a worker with another version would break byte identity silently, so the run stops before
     writing anything."""
     from augsplit.errors import DatasetError

@@ -14,7 +14,7 @@ from ..errors import DatasetError
 from ..io import write_text_atomic
 from . import layout as lay
 from . import overwrite
-from .folder import LAYOUT_KEYS, read_spec_doc
+from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, read_spec_doc
 
 
 def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_old: bool = False,
@@ -68,8 +68,9 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
     if old["spec_hash"] != spec_hash:
         raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
                            f"this spec's hash is {spec_hash}", where=str(out))
-    recorded = old.get("layout") or {}
-    # a key the folder's run did not record (an option added since) is not held against it
+    # a key the folder's run did not record (an option added since) counts as what such runs
+    # did (LAYOUT_BEFORE), or, where that is not known, is not held against it
+    recorded = {**LAYOUT_BEFORE, **(old.get("layout") or {})}
     differ = [k for k in LAYOUT_KEYS if k in recorded and recorded[k] != layout.get(k)]
     if differ:
         want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in differ)

@@ -24,7 +24,9 @@ from ..spec import Spec, parse_spec, spec_hash
 from . import layout as lay
 
 SCHEMAS = {lay.MANIFEST_DIR: mf.IMAGE_SCHEMA, lay.DISTRACTOR_DIR: mf.DISTRACTOR_SCHEMA}
-LAYOUT_KEYS = ("shard_size", "store", "format", "quality", "png_level")  # the options that decide the bytes on disk
+LAYOUT_KEYS = ("shard_size", "store", "format", "quality", "png_deflate", "png_level")  # the options that decide the bytes on disk
+# what a folder made before a layout key existed did, where that is known: PNGs were deflated by zlib
+LAYOUT_BEFORE = {"png_deflate": "zlib"}
 DEFAULT_SHARD_SIZE = 500
 
 

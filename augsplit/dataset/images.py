@@ -20,17 +20,9 @@ import numpy as np
 
 from ..errors import DatasetError
 from .png import SIGNATURE as PNG_SIGNATURE
-from .png import encode_png
+from .png import DEFLATE, encode_png
 
 FORMATS = {"png": ".png", "jpeg": ".jpg", "webp": ".webp"}
-# PNG: zlib level (0 stores, 9 packs hardest) and the "up" row filter (dataset/png.py). Chosen by
-# measurement (tests/bench/bench_scenes.py, PNG settings per background kind, 96x96): against
-# OpenCV's own settings, level 1 with "up" stores noise backgrounds in 0.53-0.59x the bytes at
-# 1.2-1.4x the encode time, flat ones and smooth photograph-like ones in 1.03-1.12x; no filter
-# is as small on noise but twice as large on smooth images, the adaptive filters cost about 2x
-# the encode time. Pixels never depend on it.
-PNG_LEVELS = range(0, 10)
-PNG_LEVEL = 1
 
 
 class ImageError(DatasetError):
@@ -44,11 +36,13 @@ def row_where(row) -> str:
 # ---- codecs -------------------------------------------------------------------------------
 
 
-def encode(image: np.ndarray, fmt: str, quality: int, png_level: int = PNG_LEVEL) -> bytes:
+def encode(image: np.ndarray, fmt: str, quality: int, png_level: int | None = None,
+           png_deflate: str = DEFLATE) -> bytes:
     """RGB or grey (H, W, C) pixels -> the bytes of a file of `fmt`: PNG by the package's own
-    writer (dataset/png.py), JPEG and WebP by OpenCV."""
+    writer (dataset/png.py: "up" row filter, then `png_deflate` at `png_level`, None for that
+    library's default), JPEG and WebP by OpenCV."""
     if fmt == "png":
-        return encode_png(image, png_level)
+        return encode_png(image, png_level, png_deflate)
     img = image[..., 0] if image.shape[2] == 1 else cv2.cvtColor(image, cv2.COLOR_RGB2BGR)
     params = {"jpeg": [cv2.IMWRITE_JPEG_QUALITY, quality], "webp": [cv2.IMWRITE_WEBP_QUALITY, quality]}[fmt]
     ok, buf = cv2.imencode(FORMATS[fmt], img, params)

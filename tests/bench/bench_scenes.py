@@ -12,9 +12,11 @@ PNG settings per background kind.
 3. PNG settings: encoded size and encode / decode CPU time of the generator's images per
    background kind (solid, the three noises, and crops from a folder of images: smooth
    1/f^2 colour fields with a few hard-edged shapes, a stand-in for photographs, which the
-   project does not ship), for OpenCV's default and a grid of compression levels, strategies
-   and filters (pixels are identical whatever the setting: PNG is lossless). The package's
-   default (dataset.images.PNG_LEVEL, "up" row filter) is marked.
+   project does not ship), for OpenCV's default and a grid of its compression levels, strategies
+   and filters, and for the package's own writer ("up" row filter) with each deflate library
+   (zlib levels 1 and 6, ISA-L levels 0-3); pixels are identical whatever the setting (PNG is
+   lossless). The package's default for each background (dataset.png.default_deflate, at the
+   library's default level) is marked.
 
 Times are CPU time of one process (time.process_time: other jobs on a shared machine are
 not counted), contenders run in turn within each round, and each keeps its best round.
@@ -110,9 +112,16 @@ def child_lazy(n: int, rounds: int) -> dict:
     plan, split = built.plan, built.plan.split("train")
     cols = draw(plan, split, np.arange(n))
     rows = [{k: v[i] for k, v in cols.items()} for i in range(n)]
-    from augsplit.dataset.images import encode  # as the generator stores them
+    from augsplit.dataset.images import encode
 
-    pngs = [np.frombuffer(encode(make_scene(plan, built.source, built.background, split, r).image, "png", 95), np.uint8)
+    try:  # as the generator stores them: its deflate library for this background, at its default level
+        from augsplit.dataset.png import default_deflate
+
+        setting = {"png_deflate": default_deflate("pink_noise")}
+    except ImportError:  # a tree from before the library was an option: its one default
+        setting = {}
+    pngs = [np.frombuffer(encode(make_scene(plan, built.source, built.background, split, r).image, "png", 95,
+                                 **setting), np.uint8)
             for r in rows]
 
     def lazy():
@@ -160,10 +169,10 @@ def _cv(params):
     return lambda bgr: cv2.imencode(".png", bgr, params)[1].tobytes()
 
 
-def _ours(level):
+def _ours(deflate, level):
     from augsplit.dataset.images import encode
 
-    return lambda bgr: encode(cv2.cvtColor(bgr, cv2.COLOR_BGR2RGB), "png", 95, level)
+    return lambda bgr: encode(cv2.cvtColor(bgr, cv2.COLOR_BGR2RGB), "png", 95, level, deflate)
 
 
 # name -> encoder of a BGR image (OpenCV's settings, and the package's own writer, whose time
@@ -178,9 +187,8 @@ for _f in ("NONE", "SUB", "UP", "PAETH"):
 for _s in ("RLE", "HUFFMAN_ONLY", "FILTERED"):
     PNG_SETTINGS[f"level 1, strategy {_s.lower()}"] = _cv([cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_STRATEGY,
                                                             getattr(cv2, f"IMWRITE_PNG_STRATEGY_{_s}")])
-OURS = "augsplit's writer, level 1, up"
-PNG_SETTINGS[OURS] = _ours(1)
-PNG_SETTINGS["augsplit's writer, level 6, up"] = _ours(6)
+for _d, _lv in (("zlib", 1), ("zlib", 6), ("isal", 0), ("isal", 1), ("isal", 2), ("isal", 3)):
+    PNG_SETTINGS[f"augsplit's writer, {_d} {_lv}, up"] = _ours(_d, _lv)
 
 
 def _photo_folder(root: Path, k: int = 6) -> Path:
@@ -214,9 +222,12 @@ def png_table(n: int, rounds: int) -> None:
           f"(96x96 RGB, {n} generated images per background; * the package's default)")
     tmp = Path(tempfile.mkdtemp(prefix="augsplit-bench-"))
     kinds = dict(BACKGROUNDS, image_folder={"kind": "folder", "path": str(_photo_folder(tmp))})
-    ours = OURS
+    from augsplit.dataset.png import DEFLATES, default_deflate
+
     picks = {}
     for kind, bg in kinds.items():
+        lib = default_deflate(bg["kind"])  # the package's default for this background
+        ours = f"augsplit's writer, {lib} {DEFLATES[lib].default}, up"
         built = open_mapping(_spec(n, bg))
         plan, split = built.plan, built.plan.split("train")
         cols = draw(plan, split, np.arange(n))
