@@ -396,7 +396,7 @@ def with_png_defaults(opts: Options, built: Built) -> Options:
     the defaults (the layout records what was used)."""
     deflate = opts.png_deflate
     if deflate is None:
-        kind = built.spec.background.kind
+        kind = built.plan.render.background
         deflate = default_deflate(kind)
         _check_png_level(opts.png_level, [deflate], f" (the default for a {kind} background; --png-deflate "
                                                     f"{' or '.join(n for n in DEFLATES if n != deflate)} takes others)")

@@ -19,6 +19,7 @@ class RenderSettings:
     alpha_threshold: float = 0.5  # alpha above which a pixel belongs to an object's footprint
     mode: str = "rgb"  # "rgb" or "gray"
     distractors: Distractors = Distractors()
+    background: str = "solid"  # the background's kind (spec.background.kind)
 
     @property
     def channels(self) -> int:
@@ -53,7 +54,8 @@ def settings_of(spec) -> Settings:
     return Settings(
         seed=int(spec.seed),
         render=RenderSettings(float(r.alpha_threshold), str(spec.canvas.mode),
-                              Distractors((int(d.count[0]), int(d.count[1])), bool(d.no_overlap), int(d.attempts))),
+                              Distractors((int(d.count[0]), int(d.count[1])), bool(d.no_overlap), int(d.attempts)),
+                              str(spec.background.kind)),
         canonical=canonical(spec),
         claims=tuple(Claim(g.disjoint, tuple(g.between), float(g.margin), bool(g.per_class)) for g in spec.guarantees),
         audit=tuple(sorted(dict(spec.audit or {}).items())),
