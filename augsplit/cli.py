@@ -368,7 +368,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the library that deflates PNG files ('up' row filter first); default: zlib on noise "
                         "backgrounds (0.55-0.9x isal's bytes), isal elsewhere (smaller and 2-3x faster there)")
     q.add_argument("--png-level", type=int, default=None,
-                   help="PNG deflate level: isal 0-3 (default 2), zlib 0-9 (default 1); the top level packs "
+                   help="PNG deflate level: isal 0-2 (default 2), zlib 0-9 (default 1); the top level packs "
                         "hardest, zlib's 0 stores raw; the pixels are the same at every setting")
     q.add_argument("--workers", type=int, default=1,
                    help="worker processes (local, or of a new dask LocalCluster); at most one per shard and per CPU core")

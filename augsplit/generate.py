@@ -58,7 +58,7 @@ class Options:
     store: str = "files"
     format: str = "png"
     quality: int = 95  # JPEG / WebP quality
-    # the library that deflates PNG files, "isal" or "zlib", and its level (isal 0-3, zlib 0-9);
+    # the library that deflates PNG files, "isal" or "zlib", and its level (isal 0-2, zlib 0-9);
     # None: the default for the spec's background kind and that library's default level
     # (dataset/png.py). Stored bytes only: PNG is lossless
     png_deflate: str | None = None

@@ -14,7 +14,7 @@ PNG settings per background kind.
    1/f^2 colour fields with a few hard-edged shapes, a stand-in for photographs, which the
    project does not ship), for OpenCV's default and a grid of its compression levels, strategies
    and filters, and for the package's own writer ("up" row filter) with each deflate library
-   (zlib levels 1 and 6, ISA-L levels 0-3); pixels are identical whatever the setting (PNG is
+   (zlib levels 1 and 6, ISA-L levels 0-2); pixels are identical whatever the setting (PNG is
    lossless). The package's default for each background (dataset.png.default_deflate, at the
    library's default level) is marked.
 
@@ -187,7 +187,7 @@ for _f in ("NONE", "SUB", "UP", "PAETH"):
 for _s in ("RLE", "HUFFMAN_ONLY", "FILTERED"):
     PNG_SETTINGS[f"level 1, strategy {_s.lower()}"] = _cv([cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_STRATEGY,
                                                             getattr(cv2, f"IMWRITE_PNG_STRATEGY_{_s}")])
-for _d, _lv in (("zlib", 1), ("zlib", 6), ("isal", 0), ("isal", 1), ("isal", 2), ("isal", 3)):
+for _d, _lv in (("zlib", 1), ("zlib", 6), ("isal", 0), ("isal", 1), ("isal", 2)):
     PNG_SETTINGS[f"augsplit's writer, {_d} {_lv}, up"] = _ours(_d, _lv)
 
 
