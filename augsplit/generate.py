@@ -361,7 +361,7 @@ def check_options(opts: Options) -> None:
     lo, hi = QUALITY[opts.format]
     if not lo <= opts.quality <= hi:
         raise DatasetError(f"quality must lie in {lo}..{hi} for {opts.format}, got {opts.quality}", where="--quality")
-    if opts.png_deflate is not None and opts.png_deflate not in DEFLATES:
+    if opts.png_deflate is not None and not (isinstance(opts.png_deflate, str) and opts.png_deflate in DEFLATES):
         raise DatasetError(f"unknown PNG deflate library '{opts.png_deflate}'; use one of {', '.join(DEFLATES)}",
                            where="--png-deflate")
     # without a library, a level either takes (the spec's background picks one: with_png_defaults)
@@ -393,7 +393,10 @@ def usable_workers(opts: Options, n_shards: int) -> int:
 
 def with_png_defaults(opts: Options, built: Built) -> Options:
     """The options with the PNG deflate library and level filled in where they were left to
-    the defaults (the layout records what was used)."""
+    the defaults (the layout records what was used). A JPEG or WebP run deflates nothing: its
+    PNG options are None, so neither a level nor a library it does not use is held against it."""
+    if opts.format != "png":
+        return replace(opts, png_deflate=None, png_level=None)
     deflate = opts.png_deflate
     if deflate is None:
         kind = built.plan.render.background

@@ -14,7 +14,7 @@ from ..errors import DatasetError
 from ..io import write_text_atomic
 from . import layout as lay
 from . import overwrite
-from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, read_spec_doc
+from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, read_spec_doc
 
 
 def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_old: bool = False,
@@ -71,7 +71,9 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
     # a key the folder's run did not record (an option added since) counts as what such runs
     # did (LAYOUT_BEFORE), or, where that is not known, is not held against it
     recorded = {**LAYOUT_BEFORE, **(old.get("layout") or {})}
-    differ = [k for k in LAYOUT_KEYS if k in recorded and recorded[k] != layout.get(k)]
+    # JPEG and WebP files never pass through the PNG writer: its options decide none of their bytes
+    keys = LAYOUT_KEYS if layout.get("format") == "png" else [k for k in LAYOUT_KEYS if k not in PNG_KEYS]
+    differ = [k for k in keys if k in recorded and recorded[k] != layout.get(k)]
     if differ:
         want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in differ)
         raise DatasetError(f"the folder was started with other storage options; rerun with {want}", where=str(out))

@@ -27,6 +27,7 @@ SCHEMAS = {lay.MANIFEST_DIR: mf.IMAGE_SCHEMA, lay.DISTRACTOR_DIR: mf.DISTRACTOR_
 LAYOUT_KEYS = ("shard_size", "store", "format", "quality", "png_deflate", "png_level")  # the options that decide the bytes on disk
 # what a folder made before a layout key existed did, where that is known: PNGs were deflated by zlib
 LAYOUT_BEFORE = {"png_deflate": "zlib"}
+PNG_KEYS = ("png_deflate", "png_level")  # the layout keys only a PNG dataset's bytes depend on
 DEFAULT_SHARD_SIZE = 500
 
 
@@ -90,6 +91,23 @@ class DatasetFolder:
         # folders from before the layout was recorded: the largest first part is a whole shard
         first = [p.rows for p in self.parts if p.table == lay.MANIFEST_DIR and p.shard == 0]
         return max(first) if first else DEFAULT_SHARD_SIZE
+
+    @property
+    def png_setting(self) -> tuple[str, int]:
+        """The deflate library and level of the folder's PNGs: what its layout records (a folder
+        from before `png_deflate` was recorded: zlib's, LAYOUT_BEFORE), else, where it records
+        none (a JPEG or WebP dataset), the default for its background. A --store none dataset's
+        images are re-made and encoded with it (export), as a --store files run stored them."""
+        from .png import DEFLATES, default_deflate
+
+        recorded = {**LAYOUT_BEFORE, **self.layout}
+        deflate, level = recorded.get("png_deflate"), recorded.get("png_level")
+        if deflate is None:
+            deflate, level = default_deflate(self.settings.render.background), None
+        if deflate not in DEFLATES or not (level is None or (type(level) is int and level in DEFLATES[deflate].levels)):
+            raise DatasetError(f"unknown PNG setting in the layout: png_deflate {deflate!r}, png_level {level!r}",
+                               where=str(self.root / lay.SPEC_FILE))
+        return deflate, DEFLATES[deflate].default if level is None else level
 
     @property
     def built(self):

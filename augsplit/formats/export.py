@@ -128,8 +128,9 @@ class Rows:
         from ..dataset.images import encode, load, stored_bytes
 
         data = stored_bytes(self.folder, row)
-        if data is None:  # --store none: the row re-made, losslessly encoded
-            data = encode(load(self.folder, row).image, "png", 0)
+        if data is None:  # --store none: the row re-made, losslessly encoded as the layout says
+            deflate, level = self.folder.png_setting
+            data = encode(load(self.folder, row).image, "png", 0, level, deflate)
         return data
 
     def _object(self, k: int, r: dict) -> Obj:
