@@ -220,8 +220,8 @@ class PinkNoise:
         scale, offset = self._affine(shaped, 255.0)
         shaped *= scale
         shaped += offset + np.float32(0.5)
-        np.maximum(shaped, 0, out=shaped)
-        np.minimum(shaped, 255, out=shaped)
+        # one pass; comparisons only (max then min, NaN kept), so the values of the two passes it replaced
+        np.clip(shaped, 0, 255, out=shaped)
         return _shape_channels(shaped.astype(np.uint8), channels, self.per_channel)
 
     def __repr__(self) -> str:
