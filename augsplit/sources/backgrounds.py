@@ -161,6 +161,8 @@ class PinkNoise:
                 if self.synthesis == "grid":  # normalised afterwards: RMS 1 keeps sums of squares small
                     gain /= max(math.sqrt(np.mean(np.square(gain))), np.finfo(float).tiny)
                 gain = gain.astype(np.float32)
+                if self.synthesis != "polar":  # multiplies complex64 coefficients: numpy would cast
+                    gain = gain.astype(np.complex64)  # it to this (imaginary 0) on every draw
             self._filters[(height, width)] = gain
         return gain
 
