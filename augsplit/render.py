@@ -147,14 +147,25 @@ def recoloured(sprite: Sprite, p: RenderParams, grey: bool) -> np.ndarray:
     multiplied (clipped to 1) in OpenCV float HSV, before warping. Grey: BT.601 luma after."""
     if not p.recolours:
         return sprite.premultiplied_grey if grey else sprite.premultiplied
-    rgb = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness)
-    return premultiply(rgb, sprite.premultiply_weights, grey)
+    if grey:
+        rgb = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness)
+        return premultiply(rgb, sprite.premultiply_weights, grey)
+    # premultiply's colour case with its RGB2RGBA folded into the HSV conversion: cv2 computes
+    # the same RGB either way and writes the fourth channel as 1.0, as RGB2RGBA does
+    rgba = _recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness, channels=4)
+    rgba *= sprite.premultiply_weights
+    return rgba
 
 
 def recolour_hsv(h: np.ndarray, s: np.ndarray, v: np.ndarray, hue: float, saturation: float,
                  brightness: float) -> np.ndarray:
     """The colour axes on float32 HSV planes (OpenCV's: H in degrees, S and V in [0, 1]): hue
     rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB."""
+    return _recolour_hsv(h, s, v, hue, saturation, brightness, channels=3)
+
+
+def _recolour_hsv(h, s, v, hue: float, saturation: float, brightness: float, channels: int) -> np.ndarray:
+    """recolour_hsv, returned as float32 RGB (channels 3) or RGB and 1.0 (channels 4)."""
     shift = hue % 360.0
     if shift:  # cv2's float HSV2RGB wraps H in [360, 720) itself
         h = h + np.float32(shift)
@@ -162,7 +173,7 @@ def recolour_hsv(h: np.ndarray, s: np.ndarray, v: np.ndarray, hue: float, satura
         s = np.minimum(s * np.float32(saturation), np.float32(1.0))
     if brightness != 1.0:
         v = np.minimum(v * np.float32(brightness), np.float32(1.0))
-    return cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB)
+    return cv2.cvtColor(cv2.merge((h, s, v)), cv2.COLOR_HSV2RGB, dstCn=channels)
 
 
 def place(canvas: np.ndarray, sprite: Sprite, p: RenderParams, alpha_threshold: float = ALPHA_THRESHOLD) -> Placed:
