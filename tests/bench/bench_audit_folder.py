@@ -19,13 +19,12 @@ import argparse
 import os
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from sidebyside import ROOT, aim, export, load, make_dataset  # noqa: E402
+from sidebyside import ROOT, aim, export, load, make_dataset, scratch  # noqa: E402
 
 TARGET = 1_000_000
 AIM_SECONDS = 600.0  # 10 minutes on 2 cores
@@ -137,8 +136,7 @@ def main() -> None:
     ap.add_argument("--ref", default=None, help="also time the audit at this git ref (single process)")
     ap.add_argument("--tmp", default=None)
     a = ap.parse_args()
-    tmp = Path(a.tmp or tempfile.mkdtemp(prefix="bench-audit-folder-"))
-    tmp.mkdir(parents=True, exist_ok=True)
+    tmp = scratch(a.tmp, "bench-audit-folder-")
     ref_tree = export(a.ref) if a.ref else None
     sizes = sorted(a.sizes)
     t2, t1, mem = [], [], []

@@ -12,7 +12,6 @@ import argparse
 import os
 import shutil
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -21,7 +20,7 @@ sys.path.insert(0, str(HERE.parents[2]))
 sys.path.insert(0, str(HERE.parent))
 
 from bench_generate import spec_dict  # noqa: E402
-from sidebyside import aim  # noqa: E402
+from sidebyside import aim, scratch  # noqa: E402
 
 from augsplit.build import build  # noqa: E402
 from augsplit.generate import Options, generate  # noqa: E402
@@ -43,8 +42,7 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--tmp", default=None)
     a = ap.parse_args()
-    tmp = Path(a.tmp or tempfile.mkdtemp(prefix="bench-tar-"))
-    tmp.mkdir(parents=True, exist_ok=True)
+    tmp = scratch(a.tmp, "bench-tar-")
     cores = os.cpu_count() or 1
     built = build(parse_spec(spec_dict(a.n)), tmp)
     print(f"{a.n} images 96x96 RGB, shard 500, 1 worker, in {tmp}; load before {os.getloadavg()[0]:.2f} on {cores} cores")

@@ -17,12 +17,11 @@ import json
 import os
 import subprocess
 import sys
-import tempfile
 from pathlib import Path
 
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from sidebyside import aim, make_dataset  # noqa: E402
+from sidebyside import aim, make_dataset, scratch  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[2]
 AIM = 1.2  # peak RSS of the large run over the small one: "flat" with room for allocator noise
@@ -69,8 +68,7 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=2, help="workers for making the datasets")
     ap.add_argument("--tmp", default=None)
     a = ap.parse_args()
-    tmp = Path(a.tmp or tempfile.mkdtemp(prefix="bench-verify-"))
-    tmp.mkdir(parents=True, exist_ok=True)
+    tmp = scratch(a.tmp, "bench-verify-")
     cores = os.cpu_count() or 1
     print(f"load before: {os.getloadavg()[0]:.2f} on {cores} cores")
     got = {}

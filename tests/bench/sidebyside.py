@@ -9,14 +9,28 @@ PASS/MISS word every aim is printed with; `aim(...)` prints one aim as the singl
 
 from __future__ import annotations
 
+import atexit
 import json
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
+
+
+def scratch(given: str | None, prefix: str) -> Path:
+    """The folder a benchmark makes its datasets in: --tmp if given (made if missing, kept), else a
+    new temporary folder, removed when the script exits (a 1,000,000-image run leaves 0.8 GB)."""
+    if given:
+        path = Path(given)
+        path.mkdir(parents=True, exist_ok=True)
+        return path
+    path = Path(tempfile.mkdtemp(prefix=prefix))
+    atexit.register(shutil.rmtree, path, True)
+    return path
 
 
 def export(ref: str) -> Path:
