@@ -29,7 +29,7 @@ from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.rows import read_column
 from .dataset.images import FORMATS, encode
-from .dataset.png import DEFLATES, default_deflate
+from .dataset.png import DEFLATES, png_setting
 from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
@@ -397,13 +397,11 @@ def with_png_defaults(opts: Options, built: Built) -> Options:
     PNG options are None, so neither a level nor a library it does not use is held against it."""
     if opts.format != "png":
         return replace(opts, png_deflate=None, png_level=None)
-    deflate = opts.png_deflate
-    if deflate is None:
-        kind = built.plan.render.background
-        deflate = default_deflate(kind)
+    kind = built.plan.render.background
+    deflate, level = png_setting(opts.png_deflate, opts.png_level, kind)
+    if opts.png_deflate is None:  # check_options allowed any library's level: the background's must take it
         _check_png_level(opts.png_level, [deflate], f" (the default for a {kind} background; --png-deflate "
                                                     f"{' or '.join(n for n in DEFLATES if n != deflate)} takes others)")
-    level = DEFLATES[deflate].default if opts.png_level is None else opts.png_level
     return replace(opts, png_deflate=deflate, png_level=level)
 
 

@@ -153,20 +153,16 @@ def recoloured(sprite: Sprite, p: RenderParams, grey: bool) -> np.ndarray:
     # premultiply's colour case with its RGB2RGBA folded into the HSV conversion: cv2 computes
     # the same RGB either way and writes the fourth channel as 1.0, as RGB2RGBA does (OpenCV's
     # HSV2RGB_f, from memory; the pinned byte tests hold it on the machine that runs them)
-    rgba = _recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness, channels=4)
+    rgba = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness, channels=4)
     rgba *= sprite.premultiply_weights
     return rgba
 
 
 def recolour_hsv(h: np.ndarray, s: np.ndarray, v: np.ndarray, hue: float, saturation: float,
-                 brightness: float) -> np.ndarray:
+                 brightness: float, channels: int = 3) -> np.ndarray:
     """The colour axes on float32 HSV planes (OpenCV's: H in degrees, S and V in [0, 1]): hue
-    rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB."""
-    return _recolour_hsv(h, s, v, hue, saturation, brightness, channels=3)
-
-
-def _recolour_hsv(h, s, v, hue: float, saturation: float, brightness: float, channels: int) -> np.ndarray:
-    """recolour_hsv, returned as float32 RGB (channels 3) or RGB and 1.0 (channels 4)."""
+    rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB, or with
+    `channels` 4 as RGB and a fourth channel of 1.0."""
     shift = hue % 360.0
     if shift:  # cv2's float HSV2RGB wraps H in [360, 720) itself
         h = h + np.float32(shift)

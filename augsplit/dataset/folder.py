@@ -97,17 +97,24 @@ class DatasetFolder:
         """The deflate library and level of the folder's PNGs: what its layout records (a folder
         from before `png_deflate` was recorded: zlib's, LAYOUT_BEFORE), else, where it records
         none (a JPEG or WebP dataset), the default for its background. A --store none dataset's
-        images are re-made and encoded with it (export), as a --store files run stored them."""
-        from .png import DEFLATES, default_deflate
+        images are re-made and encoded with it (export), as a --store files run stored them.
+        Read once per opened folder."""
+        if "png_setting" not in self._cache:
+            from . import png
 
-        recorded = {**LAYOUT_BEFORE, **self.layout}
-        deflate, level = recorded.get("png_deflate"), recorded.get("png_level")
-        if deflate is None:
-            deflate, level = default_deflate(self.settings.render.background), None
-        if deflate not in DEFLATES or not (level is None or (type(level) is int and level in DEFLATES[deflate].levels)):
-            raise DatasetError(f"unknown PNG setting in the layout: png_deflate {deflate!r}, png_level {level!r}",
-                               where=str(self.root / lay.SPEC_FILE))
-        return deflate, DEFLATES[deflate].default if level is None else level
+            recorded = {**LAYOUT_BEFORE, **self.layout}
+            deflate, level = recorded.get("png_deflate"), recorded.get("png_level")
+            try:  # a JPEG or WebP run records neither: the background's library at its default level
+                deflate, level = png.png_setting(deflate, None if deflate is None else level,
+                                                 self.settings.render.background)
+                known = type(level) is int and level in png.DEFLATES[deflate].levels
+            except (KeyError, TypeError):  # a library that is not one (or not even a name)
+                known = False
+            if not known:
+                raise DatasetError(f"unknown PNG setting in the layout: png_deflate {deflate!r}, png_level {level!r}",
+                                   where=str(self.root / lay.SPEC_FILE))
+            self._cache["png_setting"] = (deflate, level)
+        return self._cache["png_setting"]
 
     @property
     def built(self):

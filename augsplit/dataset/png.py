@@ -65,6 +65,15 @@ def default_deflate(background_kind: str) -> str:
     return "zlib" if background_kind in NOISE_BACKGROUNDS else "isal"
 
 
+def png_setting(deflate: str | None, level: int | None, background_kind: str) -> tuple[str, int]:
+    """(library, level) with what was left unset (None) filled in: the background's library,
+    that library's default level. Checking the values is the caller's (it knows where they
+    came from)."""
+    if deflate is None:
+        deflate = default_deflate(background_kind)
+    return deflate, DEFLATES[deflate].default if level is None else level
+
+
 def encode_png(image: np.ndarray, level: int | None = None, deflate: str = DEFLATE) -> bytes:
     """(H, W) or (H, W, C) uint8 pixels, C = 1 grey, 2 grey + alpha, 3 RGB or 4 RGBA (in that
     order, not OpenCV's BGR) -> the bytes of an 8-bit PNG file, deflated by `deflate` at
