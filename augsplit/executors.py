@@ -16,8 +16,9 @@ import signal
 import threading
 import uuid
 from contextlib import contextmanager
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
+from queue import SimpleQueue
 from typing import Callable, Iterable, Iterator
 
 from .errors import DatasetError
@@ -99,16 +100,40 @@ def _die_with_parent() -> None:
         pass
 
 
+@contextmanager
+def _ctrl_c_held():
+    """Hold a Ctrl-C that arrives inside the block until the block has ended, then deliver it.
+
+    Around the pool's own bookkeeping (starting its processes and thread, queueing a job,
+    stopping it): a KeyboardInterrupt raised in the middle of that standard-library code can
+    leave a lock held or a worker unregistered, and the interpreter's exit then waits for them
+    forever. Ctrl-C lands, as before, wherever the driver waits for a result or runs its
+    caller's code. Signals reach only the main thread; elsewhere this does nothing."""
+    before = signal.getsignal(signal.SIGINT)
+    if threading.current_thread() is not threading.main_thread() or before is None:  # None: set outside Python
+        yield
+        return
+    held: list = []
+    signal.signal(signal.SIGINT, lambda signum, frame: held.append(signum))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, before)
+        if held:
+            signal.raise_signal(signal.SIGINT)  # to whatever handled it before
+
+
 def _stop_pool(pool: ProcessPoolExecutor) -> None:
     """Cancel queued jobs and end running ones now: their shards are not committed and are
-    redone on resume, so there is nothing to wait for."""
-    procs = list(getattr(pool, "_processes", {}).values())  # no public handle on the workers
-    pool.shutdown(wait=False, cancel_futures=True)
-    for p in procs:
-        if p.is_alive():
-            p.terminate()
-    for p in procs:
-        p.join(timeout=5)
+    redone on resume, so there is nothing to wait for. A second Ctrl-C waits for this."""
+    with _ctrl_c_held():
+        procs = list((getattr(pool, "_processes", None) or {}).values())  # no public handle on the workers
+        pool.shutdown(wait=False, cancel_futures=True)
+        for p in procs:
+            if p.is_alive():
+                p.terminate()
+        for p in procs:
+            p.join(timeout=5)
 
 
 def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable | None = None,
@@ -116,25 +141,36 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
     """Yield (job, result) as workers finish; at most 2 x workers jobs are in flight.
 
     If a worker process dies (killed, out of memory), the jobs in flight are put back and a
-    new pool takes over; after `max_restarts` deaths the run stops with a DatasetError."""
+    new pool takes over; after `max_restarts` deaths the run stops with a DatasetError.
+
+    Ctrl-C stops the pool at once, wherever it lands. The driver waits on a queue of its own
+    that each job's future is put on when it finishes, not on `concurrent.futures.wait`: that
+    takes every pending future's lock in a Python loop, and a Ctrl-C landing inside that loop
+    left a lock held that the pool's thread then waited for forever, so the interrupted run
+    never exited. The pool's bookkeeping runs with Ctrl-C held (`_ctrl_c_held`)."""
     queue = list(jobs)[::-1]  # pop() from the end keeps the given order
     ctx = mp.get_context("spawn" if mp.get_start_method(allow_none=True) == "spawn" else "fork")
     deaths = 0
     while queue:
-        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_pool_init,
-                                   initargs=(init, initargs))
+        with _ctrl_c_held():
+            pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_pool_init,
+                                       initargs=(init, initargs))
         pending: dict = {}
+        finished: SimpleQueue = SimpleQueue()  # this pool's futures, as they finish
         try:
             while queue or pending:
-                while queue and len(pending) < 2 * workers:
-                    fut = pool.submit(task, queue[-1])  # raises at once if the pool broke: keep the job
-                    pending[fut] = queue.pop()
-                done, _ = wait(pending, return_when=FIRST_COMPLETED)
-                for fut in done:
-                    job = pending[fut]
-                    result = fut.result()  # BrokenProcessPool leaves the job in `pending`, to be redone
-                    del pending[fut]
-                    yield job, result
+                with _ctrl_c_held():  # the first submit starts the pool's processes and thread
+                    while queue and len(pending) < 2 * workers:
+                        fut = pool.submit(task, queue[-1])  # raises at once if the pool broke: keep the job
+                        pending[fut] = queue.pop()
+                        fut.add_done_callback(finished.put)
+                fut = finished.get()
+                job = pending[fut]
+                result = fut.result()  # BrokenProcessPool leaves the job in `pending`, to be redone
+                del pending[fut]
+                yield job, result
+            with _ctrl_c_held():
+                pool.shutdown(wait=True)  # every job is done: the workers only have to exit
         except BrokenProcessPool:
             deaths += 1
             lost = list(pending.values())
@@ -148,12 +184,21 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
         except Exception:
             # a job failed (e.g. disk full): let the running ones finish or fail cleanly, so
             # no half-made shard is left behind, but start nothing new
-            pool.shutdown(wait=True, cancel_futures=True)
+            try:
+                with _ctrl_c_held():
+                    pool.shutdown(wait=False, cancel_futures=True)
+                running = {f for f in pending if not f.done()}
+                while running:
+                    running.discard(finished.get())
+                with _ctrl_c_held():
+                    pool.shutdown(wait=True)
+            except BaseException:  # Ctrl-C while they finish
+                _stop_pool(pool)
+                raise
             raise
         except BaseException:  # Ctrl-C, or the caller stopped listening: stop now
             _stop_pool(pool)
             raise
-        pool.shutdown(wait=True)
 
 
 # ---- dask.distributed -------------------------------------------------------------------------

@@ -1,0 +1,99 @@
+"""Run by test_interrupt in a process of its own: a Ctrl-C at every line the driver's main thread
+runs in the local-process executor and in the standard library's pool, queue and thread code.
+
+Trial n raises SIGINT in this process when the main thread reaches the n-th such line of a
+small run (4 jobs on 2 workers: the pool's start, its waits, results, its end), so Python
+handles it where a real Ctrl-C landing at that moment would be handled. The run must then
+stop clean: within 5 s no thread of the pool is alive and no worker process is left, which
+is what lets the interpreter exit. Prints one JSON line; a trial that hangs for 20 s ends
+the process with a traceback of every thread (non-zero exit)."""
+
+from __future__ import annotations
+
+import faulthandler
+import json
+import multiprocessing as mp
+import os
+import signal
+import sys
+import threading
+import time
+import traceback
+
+from augsplit import executors
+
+WATCHED = ("augsplit/executors.py", "concurrent/futures/", "/threading.py", "/queue.py")
+JOBS = 4
+PARENT = os.getpid()
+SEEN: set = set()  # pool threads already looked at by an earlier trial
+BAD_ENOUGH = 3  # stop after this many failed trials: each costs seconds
+
+
+def task(x: int) -> int:
+    time.sleep(0.002)
+    return x
+
+
+def trial(at: int | None) -> tuple[int, bool, list[str]]:
+    """(lines the main thread ran, whether the run stopped by Ctrl-C, what was left alive)."""
+    count = 0
+    where = ""
+
+    def tracer(frame, event, arg):
+        nonlocal count, where
+        if os.getpid() != PARENT:  # a forked worker inherits the tracer: not its business
+            sys.settrace(None)
+            return None
+        if event == "line" and any(w in frame.f_code.co_filename for w in WATCHED):
+            count += 1
+            if count == at:
+                where = f"{os.path.basename(frame.f_code.co_filename)}:{frame.f_lineno} {frame.f_code.co_name}"
+                signal.raise_signal(signal.SIGINT)
+        return tracer
+
+    stopped = False
+    sys.settrace(tracer)
+    try:
+        for _ in executors.run_processes(task, range(JOBS), 2):
+            pass
+    except KeyboardInterrupt:
+        stopped = True
+    finally:
+        sys.settrace(None)
+    t0 = time.monotonic()
+    left = []
+    for t in threading.enumerate():
+        if type(t).__name__ == "_ExecutorManagerThread" and t.ident is not None and t not in SEEN:
+            SEEN.add(t)
+            t.join(timeout=max(0.0, 5 - (time.monotonic() - t0)))
+            if t.is_alive():
+                stack = traceback.extract_stack(sys._current_frames().get(t.ident))
+                left.append(f"a pool thread (Ctrl-C at {where}) waits in "
+                            + " < ".join(f"{f.name}:{f.lineno}" for f in stack[::-1][:3]))
+    while mp.active_children() and time.monotonic() - t0 < 5:
+        time.sleep(0.01)
+    for p in mp.active_children():
+        left.append(f"worker {p.pid} (Ctrl-C at {where})")
+        p.kill()
+    return count, stopped, left
+
+
+def main() -> None:
+    lines, _, left = trial(None)
+    assert not left, left
+    bad, stopped = [], 0
+    for at in range(1, lines + 1):
+        faulthandler.dump_traceback_later(20, exit=True)
+        _, was_stopped, left = trial(at)
+        faulthandler.cancel_dump_traceback_later()
+        stopped += was_stopped
+        if left:
+            bad.append([at, left])
+            if len(bad) >= BAD_ENOUGH:
+                break
+    print(json.dumps({"lines": lines, "tried": at, "stopped": stopped, "bad": bad}), flush=True)
+    os._exit(0)  # a failed trial may have left a thread the exit would wait for
+
+
+if __name__ == "__main__":
+    main()
