@@ -502,6 +502,11 @@ def _quiet_native_stderr():
         os.close(real)
 
 
+# what to do after a Ctrl-C, for the commands that leave something to finish
+AFTER_INTERRUPT = {"generate": "; rerun with --resume to continue",
+                   "export": "; run the same command again to finish the export"}
+
+
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -516,7 +521,7 @@ def main(argv=None) -> int:
         print(f"augsplit {args.command}: error: {_one_line(err)}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
-        print(f"augsplit {args.command}: interrupted; rerun with --resume to continue", file=sys.stderr)
+        print(f"augsplit {args.command}: interrupted{AFTER_INTERRUPT.get(args.command, '')}", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0

@@ -282,3 +282,23 @@ def test_existing_dataset_is_not_overwritten_without_overwrite(spec_file, serial
     code, err = run_cli(capsys, "generate", spec_file, "--out", copy, "--shard-size", SIZE, "--quiet")
     assert code == 2 and "--resume" in err and "--overwrite" in err
     assert tree(copy) == tree(serial)
+
+
+@pytest.mark.parametrize("command, target, after", [
+    ("generate", "augsplit.generate.generate", "; rerun with --resume to continue"),
+    ("export", "augsplit.formats.export.export", "; run the same command again to finish the export"),
+    ("verify", "augsplit.verify.verify", ""),  # verify and audit have no --resume to point to
+    ("audit", "augsplit.cli._audit_input", ""),
+])
+def test_an_interrupted_command_says_only_what_it_can_do_next(command, target, after, spec_file, tmp_path,
+                                                              monkeypatch, capsys):
+    def ctrl_c(*_a, **_k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(target, ctrl_c)
+    argv = {"generate": ["generate", str(spec_file), "--out", str(tmp_path / "ds"), "--quiet"],
+            "export": ["export", str(tmp_path), "--to", "yolo", "--out", str(tmp_path / "y"), "--quiet"],
+            "verify": ["verify", str(tmp_path), "--quiet"],
+            "audit": ["audit", str(tmp_path), "--quiet"]}[command]
+    assert main(argv) == 130
+    assert capsys.readouterr().err.strip().splitlines() == [f"augsplit {command}: interrupted{after}"]
