@@ -7,6 +7,8 @@ import os
 import signal
 import subprocess
 import sys
+import time
+from functools import partial
 from pathlib import Path
 
 import pytest
@@ -30,6 +32,17 @@ def die_once(job, marker_dir: str = ""):
 
 def always_die(job):
     os.kill(os.getpid(), signal.SIGKILL)
+
+
+def slow_unless_one(job, folder: str):
+    """Job 1 fails at once (as a full disk would); every other job takes a while, marking its
+    start and its end."""
+    if job == 1:
+        raise ValueError("job 1 failed")
+    Path(folder, f"start-{job}").touch()
+    time.sleep(0.3)
+    Path(folder, f"end-{job}").touch()
+    return job
 
 
 def pid_and_sigint(job):
@@ -63,6 +76,17 @@ def test_pool_workers_leave_ctrl_c_to_the_parent():
     out = dict(executors.run_processes(pid_and_sigint, list(range(4)), workers=2))
     assert all(ignored for _pid, ignored in out.values())
     assert all(pid != os.getpid() for pid, _ in out.values())
+
+
+def test_a_failed_job_lets_the_running_ones_finish_and_starts_nothing_new(tmp_path):
+    """A failed job (e.g. disk full) stops the run, but a job already running is not cut off
+    half-way (no half-made shard) and no job beyond those in flight is started."""
+    with pytest.raises(ValueError, match="job 1 failed"):
+        list(executors.run_processes(partial(slow_unless_one, folder=str(tmp_path)), list(range(12)), workers=2))
+    started = {p.name.split("-")[1] for p in tmp_path.glob("start-*")}
+    ended = {p.name.split("-")[1] for p in tmp_path.glob("end-*")}
+    assert "0" in started and started == ended  # job 0 ran alongside job 1, and finished
+    assert max(map(int, started)) < 2 * 2  # only jobs in flight (2 x workers) ever ran
 
 
 def test_dispatch():
