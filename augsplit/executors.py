@@ -73,6 +73,62 @@ def run_serial(task: Callable, jobs: Iterable, init: Callable | None = None, ini
         yield job, task(job)
 
 
+def run_serial_overlapped(task: Callable, jobs: Iterable) -> Iterator:
+    """Serial, for a task that leaves its job done but for a last wait on the disk: it returns
+    a pending job, whose `finish()` completes it (e.g. syncs and commits what it wrote) and
+    returns its result, and whose `abandon()` undoes it. Each finish runs on a thread of its
+    own while the next job's task runs, so the disk's wait overlaps the next job's work;
+    results come in job order, each once finished.
+
+    On a failure, a Ctrl-C or the caller stopping, the finish under way is waited for (a
+    commit lands whole or not at all) and a job not yet finishing is abandoned."""
+    behind = None  # (job, _Finishing): the job whose finish runs now
+    try:
+        for job in jobs:
+            pending, done = task(job), None
+            try:
+                if behind is not None:
+                    done = behind[0], behind[1].result()
+                    behind = None
+                with _ctrl_c_held():  # a thread half-started would hold the exit forever
+                    behind = (job, _Finishing(pending.finish))
+            except BaseException:
+                if behind is None or behind[0] is not job:  # not finishing: undo it
+                    pending.abandon()
+                raise
+            if done is not None:
+                yield done
+        if behind is not None:
+            done = behind[0], behind[1].result()
+            behind = None
+            yield done
+    finally:
+        if behind is not None:
+            behind[1].thread.join()
+
+
+class _Finishing:
+    """`fn()` running on a thread of its own; `result()` waits for it and returns or raises
+    what it did."""
+
+    def __init__(self, fn: Callable):
+        self._fn, self._value, self._error = fn, None, None
+        self.thread = threading.Thread(target=self._run, name="augsplit-finish")
+        self.thread.start()
+
+    def _run(self) -> None:
+        try:
+            self._value = self._fn()
+        except BaseException as exc:  # noqa: BLE001 - handed to result()
+            self._error = exc
+
+    def result(self):
+        self.thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._value
+
+
 # ---- local processes --------------------------------------------------------------------------
 
 

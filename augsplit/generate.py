@@ -3,8 +3,9 @@
 A split's images are cut into shards of consecutive indices. A shard writes its image files
 (each straight to its name, all synced together) and then its manifest part (atomically,
 streamed in row groups): the part file is the shard's commit, so an interrupted run resumes
-by redoing exactly the shards without one. Output is byte-identical whatever the number of
-workers, shards or executor.
+by redoing exactly the shards without one. A serial run commits each shard (mostly a wait on
+the disk) while it renders the next. Output is byte-identical whatever the number of workers,
+shards or executor.
 """
 
 from __future__ import annotations
@@ -142,7 +143,39 @@ class _ImageFiles:
 
 
 def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
-    """Render, store and commit one shard. Returns the number of images.
+    """Render, store and commit one shard. Returns the number of images."""
+    return write_shard(built, job, out, opts).finish()
+
+
+class WrittenShard:
+    """A shard whose images and manifest part are written but not yet committed: `finish`
+    makes its image files durable and closes and renames its part (the commit) and returns
+    the number of images; `abandon` discards the part, leaving the shard to be made again.
+    The finish is mostly a wait on the disk, which a serial run overlaps with rendering the
+    next shard (`executors.run_serial_overlapped`)."""
+
+    def __init__(self, job: ShardJob, stack: ExitStack, files: "_ImageFiles | None", part: Path):
+        self.job, self._stack, self._files, self._part = job, stack, files, part
+
+    def finish(self) -> int:
+        try:
+            if self._files is not None:
+                self._files.close()
+        except BaseException:
+            self.abandon()
+            raise
+        # Closing the stack closes the writers and renames: the distractor part first (entered
+        # later, left earlier), then the manifest part, whose presence is the shard's commit.
+        _guard_disk(self._stack.close, self._part)
+        return self.job.stop - self.job.start
+
+    def abandon(self) -> None:
+        gone = DatasetError("shard abandoned")  # as if writing had failed: the writers discard
+        self._stack.__exit__(DatasetError, gone, None)
+
+
+def write_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> WrittenShard:
+    """Render and store one shard, up to its commit (`WrittenShard.finish`).
 
     Rows are rendered and written one row group at a time (memory stays flat however large
     the shard); image files are written before the manifest part, whose rename commits."""
@@ -177,12 +210,7 @@ def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
                     # closed before dtmp's rename (LIFO)
                     dwriter = stack.enter_context(_parquet_writer(dtmp, mf.DISTRACTOR_SCHEMA.with_metadata(meta)))
                 _guard_disk(lambda: dwriter.write_table(mf.to_table(dcols, mf.DISTRACTOR_SCHEMA, meta)), dpart)
-        if files is not None:
-            files.close()
-        # Closing the stack closes the writers and renames: the distractor part first (entered
-        # later, left earlier), then the manifest part, whose presence is the shard's commit.
-        _guard_disk(stack.close, part)
-    return job.stop - job.start
+        return WrittenShard(job, stack.pop_all(), files, part)
 
 
 @contextmanager
@@ -474,7 +502,8 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
     with ExitStack() as stack:
         stack.callback(bar.close)
         if client is None and (opts.executor == "serial" or (opts.executor == "auto" and (opts.workers <= 1 or len(todo) <= 1))):
-            results = ((job, make_shard(built, job, out, opts)) for job in todo)
+            # each shard's commit (a wait on the disk) overlaps the rendering of the next
+            results = executors.run_serial_overlapped(lambda job: write_shard(built, job, out, opts), todo)
         else:
             key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
                    json.dumps(asdict(opts)))

@@ -7,6 +7,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 from functools import partial
 from pathlib import Path
@@ -54,6 +55,65 @@ def test_serial_and_processes_return_every_result_once():
     got_serial = dict(executors.run_serial(square, jobs))
     got_pool = dict(executors.run_processes(square, jobs, workers=2))
     assert got_serial == got_pool == {j: j * j for j in jobs}
+
+
+class Pending:
+    """A job done but for its finish, logging what happens to it and on which thread."""
+
+    def __init__(self, job, log, fail=None):
+        self.job, self.log, self.fail = job, log, fail
+
+    def finish(self):
+        self.log.append(("finish", self.job, threading.current_thread() is threading.main_thread()))
+        time.sleep(0.05)
+        if self.job == self.fail:
+            raise ValueError(f"job {self.job} failed to finish")
+        self.log.append(("finished", self.job))
+        return self.job * self.job
+
+    def abandon(self):
+        self.log.append(("abandon", self.job))
+
+
+def overlapped(jobs, log, fail=None):
+    def task(job):
+        log.append(("task", job))
+        time.sleep(0.02)
+        return Pending(job, log, fail)
+
+    return executors.run_serial_overlapped(task, jobs)
+
+
+def test_overlapped_serial_finishes_each_job_on_a_thread_while_the_next_task_runs():
+    log = []
+    got = list(overlapped(range(6), log))
+    assert got == [(j, j * j) for j in range(6)]  # every result once, in job order
+    assert [e for e in log if e[0] == "finish"] == [("finish", j, False) for j in range(6)]  # off the main thread
+    for j in range(5):  # job j's finish ended after job j+1's task began: they overlapped
+        assert log.index(("task", j + 1)) < log.index(("finished", j))
+    assert not any(t.name == "augsplit-finish" for t in threading.enumerate())
+
+
+def test_overlapped_serial_stops_at_a_failed_finish_and_abandons_the_job_behind_it():
+    log = []
+    got = []
+    with pytest.raises(ValueError, match="job 2 failed"):
+        for item in overlapped(range(6), log, fail=2):
+            got.append(item)
+    assert got == [(0, 0), (1, 1)]
+    assert ("abandon", 3) in log and not any(e[0] == "task" and e[1] > 3 for e in log)
+    assert not any(e[0] in ("finish", "finished") and e[1] >= 3 for e in log)
+
+
+def test_overlapped_serial_lets_the_finish_under_way_end_when_the_caller_stops():
+    log = []
+    results = overlapped(range(6), log)
+    assert next(results) == (0, 0)
+    results.close()  # as a Ctrl-C or an error in the caller does
+    # job 1 was finishing (a commit must land whole): it ended before close returned; job 2's
+    # task had not run
+    assert log[-1] == ("finished", 1) and ("task", 2) not in log
+    assert not any(t.name == "augsplit-finish" for t in threading.enumerate())
 
 
 def test_a_dead_worker_loses_and_duplicates_nothing(tmp_path):
