@@ -85,15 +85,16 @@ def run_serial_overlapped(task: Callable, jobs: Iterable) -> Iterator:
     behind = None  # (job, _Finishing): the job whose finish runs now
     try:
         for job in jobs:
-            pending, done = task(job), None
+            pending = done = None
             try:
+                pending = task(job)
                 if behind is not None:
                     done = behind[0], behind[1].result()
                     behind = None
                 with _ctrl_c_held():  # a thread half-started would hold the exit forever
                     behind = (job, _Finishing(pending.finish))
             except BaseException:
-                if behind is None or behind[0] is not job:  # not finishing: undo it
+                if pending is not None and (behind is None or behind[0] is not job):  # not finishing
                     pending.abandon()
                 raise
             if done is not None:
@@ -104,12 +105,17 @@ def run_serial_overlapped(task: Callable, jobs: Iterable) -> Iterator:
             yield done
     finally:
         if behind is not None:
-            behind[1].thread.join()
+            behind[1].wait()
 
 
 class _Finishing:
     """`fn()` running on a thread of its own; `result()` waits for it and returns or raises
-    what it did."""
+    what it did.
+
+    The wait holds Ctrl-C until the thread has ended: a finish is waited for in any case (a
+    commit lands whole), and a Ctrl-C landing inside `Thread.join`'s own bookkeeping can
+    leave the threading module's shutdown lock held (found by tests/ctrl_c_anywhere.py), after
+    which no thread can start or end and the interpreter's exit waits forever."""
 
     def __init__(self, fn: Callable):
         self._fn, self._value, self._error = fn, None, None
@@ -122,8 +128,12 @@ class _Finishing:
         except BaseException as exc:  # noqa: BLE001 - handed to result()
             self._error = exc
 
+    def wait(self) -> None:
+        with _ctrl_c_held():
+            self.thread.join()
+
     def result(self):
-        self.thread.join()
+        self.wait()
         if self._error is not None:
             raise self._error
         return self._value

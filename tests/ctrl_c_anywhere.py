@@ -1,12 +1,18 @@
 """Run by test_interrupt in a process of its own: a Ctrl-C at every line the driver's main thread
-runs in the local-process executor and in the standard library's pool, queue and thread code.
+runs in an executor and in the standard library's pool, queue and thread code.
+
+    python tests/ctrl_c_anywhere.py processes|overlapped
 
 Trial n raises SIGINT in this process when the main thread reaches the n-th such line of a
-small run (4 jobs on 2 workers: the pool's start, its waits, results, its end), so Python
-handles it where a real Ctrl-C landing at that moment would be handled. The run must then
-stop clean: within 5 s no thread of the pool is alive and no worker process is left, which
-is what lets the interpreter exit. Prints one JSON line; a trial that hangs for 20 s ends
-the process with a traceback of every thread (non-zero exit)."""
+small run, so Python handles it where a real Ctrl-C landing at that moment would be handled.
+`processes`: 4 jobs on 2 local worker processes (the pool's start, its waits, results, its
+end); the run must stop clean: within 5 s no thread of the pool is alive and no worker
+process is left, which is what lets the interpreter exit. `overlapped`: 4 jobs of the serial
+executor that finishes each job on a thread while the next one runs
+(`executors.run_serial_overlapped`); within 5 s no finishing thread is alive, every finish
+that began has ended (a commit lands whole), and every job made was finished or abandoned
+(nothing left half-made). Prints one JSON line; a trial that hangs for 20 s ends the process
+with a traceback of every thread (non-zero exit)."""
 
 from __future__ import annotations
 
@@ -27,11 +33,67 @@ JOBS = 4
 PARENT = os.getpid()
 SEEN: set = set()  # pool threads already looked at by an earlier trial
 BAD_ENOUGH = 3  # stop after this many failed trials: each costs seconds
+MODE = "processes"  # or "overlapped" (argv[1])
 
 
 def task(x: int) -> int:
     time.sleep(0.002)
     return x
+
+
+class Pending:
+    """A job made but not finished, logging what becomes of it."""
+
+    def __init__(self, job: int, log: dict):
+        self.job, self.log = job, log
+        log["made"].add(job)
+
+    def finish(self) -> int:
+        self.log["began"].add(self.job)
+        time.sleep(0.002)
+        self.log["ended"].add(self.job)
+        return self.job
+
+    def abandon(self) -> None:
+        self.log["abandoned"].add(self.job)
+
+
+def run_overlapped() -> dict:
+    log: dict = {"made": set(), "began": set(), "ended": set(), "abandoned": set()}
+
+    def make(job: int) -> Pending:
+        time.sleep(0.002)
+        return Pending(job, log)
+
+    try:
+        for _ in executors.run_serial_overlapped(make, range(JOBS)):
+            pass
+    finally:
+        RUNS.append(log)
+    return log
+
+
+RUNS: list = []
+
+
+def overlapped_left(where: str) -> list[str]:
+    """What an overlapped run left: a finishing thread alive, a finish cut short, a job made
+    and neither finished nor abandoned."""
+    t0 = time.monotonic()
+    left = []
+    for t in threading.enumerate():
+        if t.name == "augsplit-finish" and t not in SEEN:
+            SEEN.add(t)
+            t.join(timeout=max(0.0, 5 - (time.monotonic() - t0)))
+            if t.is_alive():
+                left.append(f"a finishing thread (Ctrl-C at {where})")
+    log = RUNS.pop()
+    if log["began"] - log["ended"]:
+        left.append(f"finish of job(s) {sorted(log['began'] - log['ended'])} cut short (Ctrl-C at {where})")
+    if log["made"] - log["began"] - log["abandoned"]:
+        left.append(f"job(s) {sorted(log['made'] - log['began'] - log['abandoned'])} neither finished nor "
+                    f"abandoned (Ctrl-C at {where})")
+    return left
 
 
 def trial(at: int | None) -> tuple[int, bool, list[str]]:
@@ -54,12 +116,17 @@ def trial(at: int | None) -> tuple[int, bool, list[str]]:
     stopped = False
     sys.settrace(tracer)
     try:
-        for _ in executors.run_processes(task, range(JOBS), 2):
-            pass
+        if MODE == "overlapped":
+            run_overlapped()
+        else:
+            for _ in executors.run_processes(task, range(JOBS), 2):
+                pass
     except KeyboardInterrupt:
         stopped = True
     finally:
         sys.settrace(None)
+    if MODE == "overlapped":
+        return count, stopped, overlapped_left(where)
     t0 = time.monotonic()
     left = []
     for t in threading.enumerate():
@@ -79,6 +146,8 @@ def trial(at: int | None) -> tuple[int, bool, list[str]]:
 
 
 def main() -> None:
+    global MODE
+    MODE = sys.argv[1]
     lines, _, left = trial(None)
     assert not left, left
     bad, stopped = [], 0
