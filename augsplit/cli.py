@@ -508,20 +508,22 @@ AFTER_INTERRUPT = {"generate": "; rerun with --resume to continue",
 
 
 def main(argv=None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if getattr(args, "spec", None) == "demo":
-        from .spec import builtin_spec_path
-
-        args.spec = str(builtin_spec_path("demo"))
+    command = None  # a Ctrl-C may come while the options are still being read
     try:
+        args = build_parser().parse_args(argv)
+        command = args.command
+        if getattr(args, "spec", None) == "demo":
+            from .spec import builtin_spec_path
+
+            args.spec = str(builtin_spec_path("demo"))
         with _quiet_native_stderr():
             return int(args.run(args) or 0)
     except AugsplitError as err:
-        print(f"augsplit {args.command}: error: {_one_line(err)}", file=sys.stderr)
+        print(f"augsplit {command}: error: {_one_line(err)}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
-        print(f"augsplit {args.command}: interrupted{AFTER_INTERRUPT.get(args.command, '')}", file=sys.stderr)
+        who = f"augsplit {command}" if command else "augsplit"
+        print(f"{who}: interrupted{AFTER_INTERRUPT.get(command, '')}", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0

@@ -370,3 +370,17 @@ def test_an_interrupted_command_says_only_what_it_can_do_next(command, target, a
             "audit": ["audit", str(tmp_path), "--quiet"]}[command]
     assert main(argv) == 130
     assert capsys.readouterr().err.strip().splitlines() == [f"augsplit {command}: interrupted{after}"]
+
+
+def test_a_ctrl_c_while_the_options_are_read_is_one_line_and_exit_130(monkeypatch, capsys):
+    """Measured before: a Ctrl-C in the first 0.05 s of a command (argparse building its parser,
+    where gettext looks for translations) ended it with a Python traceback and the signal's exit
+    status (-2); the parser is now built inside the command's own Ctrl-C handling."""
+    import augsplit.cli as cli
+
+    def ctrl_c():
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(cli, "build_parser", ctrl_c)
+    assert main(["plan", "demo"]) == 130
+    assert capsys.readouterr().err.strip().splitlines() == ["augsplit: interrupted"]
