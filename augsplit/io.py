@@ -236,6 +236,35 @@ def sync_files(paths) -> None:
         _sync_folders(paths)
 
 
+def write_bytes_new(path: str | Path, data: bytes) -> bool:
+    """Write `data` to `path` only if nothing is there, whole: written and synced under a
+    temporary name, then hard-linked into place, which never replaces anything (a reader sees
+    the whole file or none, and of two writers racing for the name exactly one wins). False,
+    leaving what is there untouched, if something already was. Where the file system has no
+    hard links, the file is made create-only (O_EXCL) and synced: still never a replacement."""
+    p = check_target(path)
+    tmp = temporary_name(p)
+    try:
+        with open(tmp, "xb") as f:
+            f.write(data)
+        _sync_data([tmp])
+        try:
+            os.link(tmp, p)
+        except FileExistsError:
+            return False
+        except OSError as exc:
+            if exc.errno not in (errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.EXDEV, errno.EMLINK):
+                raise
+            if not write_new_file(str(p), data):
+                return False
+            _sync_data([p])
+        fsync_folder(p.parent)
+        return True
+    finally:
+        if os.path.lexists(tmp):
+            tmp.unlink()
+
+
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:
     write_files_atomic([(path, data)])
 

@@ -24,7 +24,7 @@ def events(monkeypatch):
     descriptor names), syncfs (by file system) and rename, in order."""
     log: list[tuple] = []
     real_fsync, real_replace, real_tmp, real_syncfs = os.fsync, os.replace, aio.temporary_name, aio.syncfs
-    real_open = os.open
+    real_open, real_link = os.open, os.link
 
     def open_(path, flags, *a, **kw):
         fd = real_open(path, flags, *a, **kw)
@@ -46,6 +46,10 @@ def events(monkeypatch):
         log.append(("replace", str(Path(src).resolve()), str(Path(dst).resolve())))
         return real_replace(src, dst, **kw)
 
+    def link(src, dst, **kw):  # a create-only commit (io.write_bytes_new): logged as a rename
+        real_link(src, dst, **kw)
+        log.append(("replace", str(Path(src).resolve()), str(Path(dst).resolve())))
+
     def temporary_name(path):
         tmp = real_tmp(path)
         log.append(("tmp", str(tmp.resolve())))
@@ -54,13 +58,14 @@ def events(monkeypatch):
     monkeypatch.setattr(os, "fsync", fsync)
     monkeypatch.setattr(os, "open", open_)
     monkeypatch.setattr(os, "replace", replace)
+    monkeypatch.setattr(os, "link", link)
     monkeypatch.setattr(aio, "syncfs", syncfs)
     monkeypatch.setattr(aio, "temporary_name", temporary_name)
     return log
 
 
 def assert_committed(log, final: Path) -> None:
-    """`final` was renamed into place from a temporary sibling whose data had been synced
+    """`final` was renamed (or hard-linked) into place from a temporary sibling whose data had been synced
     (its own fsync, or a syncfs of its file system after it was made), and its folder was
     fsynced after the rename (POSIX: a rename is durable once its folder is synced)."""
     final = final.resolve()
@@ -240,3 +245,42 @@ def test_ensure_folder(tmp_path):
             ensure_folder(bad)
         assert "\n" not in str(e.value)
     assert not (tmp_path / "no").exists() and (tmp_path / "f").read_bytes() == b"x"
+
+
+def test_write_bytes_new_never_replaces_and_of_racing_writers_exactly_one_wins(tmp_path):
+    """Create-only and whole: the first writer's bytes stay; a later one gets False and changes
+    nothing; eight threads racing for one name: one True, the file holds exactly its bytes, and
+    no temporary is left."""
+    import threading
+
+    target = tmp_path / "spec.json"
+    assert aio.write_bytes_new(target, b"first") is True
+    assert aio.write_bytes_new(target, b"second") is False and target.read_bytes() == b"first"
+    race = tmp_path / "race.json"
+    won, start = [], threading.Barrier(8)
+
+    def writer(k):
+        start.wait()
+        if aio.write_bytes_new(race, f"writer {k} ".encode() * 1000):
+            won.append(k)
+
+    threads = [threading.Thread(target=writer, args=(k,)) for k in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert len(won) == 1 and race.read_bytes() == f"writer {won[0]} ".encode() * 1000
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["race.json", "spec.json"]
+
+
+def test_write_bytes_new_leaves_a_link_or_folder_at_the_name_alone(tmp_path):
+    outside = tmp_path / "outside.txt"
+    outside.write_bytes(b"not ours")
+    link = tmp_path / "link.json"
+    link.symlink_to(outside)
+    with pytest.raises(DatasetError):
+        aio.write_bytes_new(link, b"x")
+    (tmp_path / "dir.json").mkdir()
+    with pytest.raises(DatasetError):
+        aio.write_bytes_new(tmp_path / "dir.json", b"x")
+    assert outside.read_bytes() == b"not ours" and link.is_symlink()

@@ -4,6 +4,7 @@ another spec are refused in one line with exit 2."""
 
 from __future__ import annotations
 
+import dataclasses
 import shutil
 import subprocess
 import sys
@@ -151,3 +152,38 @@ def test_a_job_array_peer_mid_start_is_not_mistaken_for_a_stranger(spec_file, tm
     (stranger / "notes.txt").write_text("mine")
     with pytest.raises(DatasetError, match="holds no augsplit dataset"):
         generate(spec_file, stranger, Options(shard_size=SIZE, progress=False, array_shard=(0, 4)))
+
+
+@pytest.mark.parametrize("unseen", [1, 2])
+def test_peers_racing_on_an_empty_folder_with_other_options_cannot_both_start(spec_file, tmp_path, monkeypatch,
+                                                                              unseen):
+    """Measured before: two job-array tasks started at once on an empty folder with different
+    storage options each found no spec.json, each wrote theirs (the last rename won), and both
+    went on: shards of two layouts in one folder. Now spec.json is created only where none is
+    (hard-linked into place, never renamed over), and a peer that finds one there, however late,
+    goes on only if it records the same run. Peer A starts with --png-level 1; peer B, with
+    --png-level 2, checks the folder in the instant before A's spec.json appears (its first
+    `unseen` looks find none) and must stop with one line, leaving A's spec.json and no part."""
+    import pathlib
+
+    out = tmp_path / "d"
+    a = Options(shard_size=SIZE, progress=False, array_shard=(0, 4), png_level=1)
+    generate(spec_file, out, a)
+    before = (out / lay.SPEC_FILE).read_bytes()
+    parts = sorted(p.name for p in out.rglob("part-*"))
+    real, looks = pathlib.Path.exists, []
+
+    def exists(self, *args, **kwargs):
+        if self.name == lay.SPEC_FILE and len(looks) < unseen:
+            looks.append(self)
+            return False
+        return real(self, *args, **kwargs)
+
+    monkeypatch.setattr(pathlib.Path, "exists", exists)
+    with pytest.raises(DatasetError, match="other storage options; rerun with --png-level 1"):
+        generate(spec_file, out, dataclasses.replace(a, array_shard=(1, 4), png_level=2))
+    monkeypatch.undo()
+    assert len(looks) == unseen
+    assert (out / lay.SPEC_FILE).read_bytes() == before
+    assert sorted(p.name for p in out.rglob("part-*")) == parts
+    assert not [p for p in out.iterdir() if lay.is_temporary(p.name)]

@@ -11,7 +11,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 
 from ..errors import DatasetError
-from ..io import write_text_atomic
+from ..io import write_bytes_new
 from . import layout as lay
 from . import overwrite
 from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, read_spec_doc
@@ -42,12 +42,14 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
     try:
         out.mkdir(parents=True, exist_ok=True)
         spec_file = out / lay.SPEC_FILE
-        if not spec_file.exists():
-            # the spec in its own key order: the order of splits and axes is part of every
-            # image's seed key and of its draws, so a sorted copy would re-make other images
-            doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
-                   "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
-            write_text_atomic(spec_file, json.dumps(doc, indent=2))
+        # the spec in its own key order: the order of splits and axes is part of every
+        # image's seed key and of its draws, so a sorted copy would re-make other images
+        doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
+               "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
+        # create-only: a job-array peer (or a second run) that got there first, even since the
+        # checks above, keeps its spec.json, and this run goes on only if it is the same run
+        if spec_file.exists() or not write_bytes_new(spec_file, json.dumps(doc, indent=2).encode("utf-8")):
+            check_same_run(read_spec_doc(out), built.plan.hash, layout, out)
     except PermissionError as exc:
         raise DatasetError("permission denied", where=str(exc.filename or out)) from None
     except OSError as exc:
@@ -64,7 +66,11 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
         if not peer or strangers:
             raise DatasetError("the folder is not empty and holds no augsplit dataset to resume", where=str(out))
         return
-    old = read_spec_doc(out)
+    check_same_run(read_spec_doc(out), spec_hash, layout, out)
+
+
+def check_same_run(old: dict, spec_hash: str, layout: dict, out: Path) -> None:
+    """A folder's spec.json (`old`) was written by a run of this spec with these storage options."""
     if old["spec_hash"] != spec_hash:
         raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
                            f"this spec's hash is {spec_hash}", where=str(out))
