@@ -78,11 +78,12 @@ def assert_committed(log, final: Path) -> None:
     assert ("fsync", str(final.parent)) in log[i + 1:], f"{final.parent} not synced after the rename"
 
 
-def assert_durable_before_part(log, image: Path, parts: list[Path]) -> None:
+def assert_durable_before_part(log, image: Path, part: Path) -> None:
     """An image file made whole at its name (created there, or renamed from a temporary
     sibling), then its data synced (its own fsync or a syncfs of its file system) and its
-    folder fsynced, all before the next part commits (serial run: its shard's part). POSIX:
-    fsync of the file and of its folder make the data and the name durable."""
+    folder fsynced, all before its shard's part commits (a serial run commits a shard while it
+    writes the next one's images, so other parts may commit in between). POSIX: fsync of the
+    file and of its folder make the data and the name durable."""
     image = image.resolve()
     i = next(k for k, e in enumerate(log) if e == ("create", str(image)) or (e[0] == "replace" and e[2] == str(image)))
     made = i
@@ -90,8 +91,8 @@ def assert_durable_before_part(log, image: Path, parts: list[Path]) -> None:
         tmp = log[i][1]
         assert Path(tmp).name.startswith(f".{image.name}.tmp-")
         made = log.index(("tmp", tmp))
-    names = {str(p.resolve()) for p in parts}
-    commit = next(k for k, e in enumerate(log) if k > i and e[0] == "replace" and e[2] in names)
+    commit = next(k for k, e in enumerate(log) if e[0] == "replace" and e[2] == str(part.resolve()))
+    assert commit > i, f"{image.name}'s shard committed before the image was made"
     synced = {("fsync", log[i][1]), ("fsync", str(image)), ("syncfs", os.stat(image).st_dev)}
     assert synced & set(log[made:commit]), f"{image.name}'s shard committed before the image was synced"
     assert ("fsync", str(image.parent)) in log[i + 1:commit], f"{image.parent} not synced before the part commits"
@@ -99,6 +100,8 @@ def assert_durable_before_part(log, image: Path, parts: list[Path]) -> None:
 
 def test_generation_commits_durably(tmp_path, events):
     """Measured on main: nothing called fsync, so a power loss could leave a renamed but empty part."""
+    import pyarrow.parquet as pq
+
     out = tmp_path / "ds"
     generate(None, out, Options(progress=False, store="files", shard_size=10), built=open_mapping(spec_dict()))
     parts = sorted((out / mf.MANIFEST_DIR).rglob("part-*.parquet"))
@@ -106,8 +109,10 @@ def test_generation_commits_durably(tmp_path, events):
     assert len(parts) > 1 and images
     for f in [out / mf.SPEC_FILE, out / mf.SUMMARY_FILE, *parts]:
         assert_committed(events, f)
+    own = {(out / rel).resolve(): part for part in parts for rel in pq.read_table(part).column("file").to_pylist()}
+    assert sorted(own) == [f.resolve() for f in images]
     for f in images:
-        assert_durable_before_part(events, f, parts)
+        assert_durable_before_part(events, f, own[f.resolve()])
 
 
 def test_a_shard_of_files_is_synced_once_not_per_batch(tmp_path, events):
