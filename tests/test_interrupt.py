@@ -50,11 +50,19 @@ def assert_commits_are_whole(out: Path) -> None:
             assert (out / rel).stat().st_size > 0, rel
 
 
+def ctrl_c_as_in_a_terminal() -> None:
+    """In the child before it runs: Ctrl-C's default action, as a command typed in a terminal
+    has it. A test run started in the background (`cmd &` in a script) hands its children
+    SIGINT ignored, and Python then never turns it into KeyboardInterrupt (CI once ran so)."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def start(spec_file: Path, out: Path, *extra: str) -> subprocess.Popen:
     # a session of its own, so the test can send Ctrl-C to the whole group as a terminal does
     return subprocess.Popen(CLI + ["generate", str(spec_file), "--out", str(out), "--workers", "2",
                                    "--shard-size", str(SIZE), "--quiet", *extra],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+                            preexec_fn=ctrl_c_as_in_a_terminal)
 
 
 def wait_for_commits(proc: subprocess.Popen, out: Path, n: int = 2, limit_s: float = 60.0) -> None:
@@ -117,7 +125,7 @@ def test_a_ctrl_c_at_any_line_of_the_executor_code_stops_the_run_clean(mode, mos
     commits each shard on a thread while the next renders is put through the same: no
     finishing thread left, no commit cut short, no shard neither committed nor discarded."""
     proc = subprocess.run([sys.executable, str(Path(__file__).with_name("ctrl_c_anywhere.py")), mode],
-                          capture_output=True, text=True, timeout=600)
+                          capture_output=True, text=True, timeout=600, preexec_fn=ctrl_c_as_in_a_terminal)
     assert proc.returncode == 0, proc.stderr[-3000:]
     report = json.loads(proc.stdout)
     assert report["bad"] == []
