@@ -507,6 +507,10 @@ AFTER_INTERRUPT = {"generate": "; rerun with --resume to continue",
                    "export": "; run the same command again to finish the export"}
 
 
+def _who(command: str | None) -> str:
+    return f"augsplit {command}" if command else "augsplit"
+
+
 def main(argv=None) -> int:
     command = None  # a Ctrl-C may come while the options are still being read
     try:
@@ -519,11 +523,10 @@ def main(argv=None) -> int:
         with _quiet_native_stderr():
             return int(args.run(args) or 0)
     except AugsplitError as err:
-        print(f"augsplit {command}: error: {_one_line(err)}", file=sys.stderr)
+        print(f"{_who(command)}: error: {_one_line(err)}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
-        who = f"augsplit {command}" if command else "augsplit"
-        print(f"{who}: interrupted{AFTER_INTERRUPT.get(command, '')}", file=sys.stderr)
+        print(f"{_who(command)}: interrupted{AFTER_INTERRUPT.get(command, '')}", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0

@@ -289,3 +289,18 @@ def test_write_bytes_new_leaves_a_link_or_folder_at_the_name_alone(tmp_path):
     with pytest.raises(DatasetError):
         aio.write_bytes_new(tmp_path / "dir.json", b"x")
     assert outside.read_bytes() == b"not ours" and link.is_symlink()
+
+
+def test_write_bytes_new_without_hard_links_still_never_replaces(tmp_path, monkeypatch):
+    """The fallback where the file system refuses hard links (EPERM, as some FUSE and network
+    file systems do): the file is made create-only, whole, and a second writer gets False."""
+    import errno
+
+    def no_links(src, dst, **kw):
+        raise OSError(errno.EPERM, "Operation not permitted")
+
+    monkeypatch.setattr(os, "link", no_links)
+    target = tmp_path / "spec.json"
+    assert aio.write_bytes_new(target, b"first") is True
+    assert aio.write_bytes_new(target, b"second") is False
+    assert target.read_bytes() == b"first" and [p.name for p in tmp_path.iterdir()] == ["spec.json"]

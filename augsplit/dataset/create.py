@@ -28,11 +28,12 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
     if array_shard is not None and overwrite_old:
         raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
                            "others' work; remove the folder once, then submit the array", where=str(out))
+    checked = False  # whether spec.json was found and compared with this run
     if out.exists() and any(out.iterdir()):
         if overwrite_old:
             overwrite.clear(out, spec_path)
         elif resume or array_shard is not None:
-            check_resumable(out, built.plan.hash, layout, peer=array_shard is not None)
+            checked = check_resumable(out, built.plan.hash, layout, peer=array_shard is not None)
             if array_shard is None:
                 # only a whole-run resume may sweep temporaries: job-array peers may be writing now
                 remove_temporaries(out)
@@ -42,31 +43,37 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
     try:
         out.mkdir(parents=True, exist_ok=True)
         spec_file = out / lay.SPEC_FILE
-        # the spec in its own key order: the order of splits and axes is part of every
-        # image's seed key and of its draws, so a sorted copy would re-make other images
-        doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
-               "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
-        # create-only: a job-array peer (or a second run) that got there first, even since the
-        # checks above, keeps its spec.json, and this run goes on only if it is the same run
-        if spec_file.exists() or not write_bytes_new(spec_file, json.dumps(doc, indent=2).encode("utf-8")):
-            check_same_run(read_spec_doc(out), built.plan.hash, layout, out)
+        if not checked:
+            # create-only: a job-array peer (or a second run) that got there first, even since
+            # the checks above, keeps its spec.json, and this run goes on only if it is the same run
+            if spec_file.exists() or not write_bytes_new(spec_file, _spec_doc(built, layout)):
+                check_same_run(read_spec_doc(out), built.plan.hash, layout, out)
     except PermissionError as exc:
         raise DatasetError("permission denied", where=str(exc.filename or out)) from None
     except OSError as exc:
         raise DatasetError(f"cannot create the output folder: {exc.strerror}", where=str(exc.filename or out)) from None
 
 
-def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False) -> None:
+def _spec_doc(built, layout: dict) -> bytes:
+    """spec.json: the spec in its own key order (the order of splits and axes is part of every
+    image's seed key and of its draws, so a sorted copy would re-make other images)."""
+    doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
+           "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
+    return json.dumps(doc, indent=2).encode("utf-8")
+
+
+def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False) -> bool:
     """The folder holds a run of this spec with these storage options (or, for a job-array
-    peer, is being started by another peer)."""
+    peer, is being started by another peer: then False, as no spec.json was there to compare)."""
     if not (out / lay.SPEC_FILE).exists():
         # a job-array peer may have made the folder a moment ago and not yet renamed spec.json in
         strangers = [p.name for p in out.iterdir()
                      if p.name not in lay.OWN_ENTRIES and not p.name.startswith(f".{lay.SPEC_FILE}.tmp")]
         if not peer or strangers:
             raise DatasetError("the folder is not empty and holds no augsplit dataset to resume", where=str(out))
-        return
+        return False
     check_same_run(read_spec_doc(out), spec_hash, layout, out)
+    return True
 
 
 def check_same_run(old: dict, spec_hash: str, layout: dict, out: Path) -> None:
