@@ -123,3 +123,113 @@ def test_claim_turns_overlap_into_failure():
     assert check_footprint(tr, te[1:], (48, 48), claim=True).verdict == "pass"
     # same pixels but another class: no leak (the no-overlap claim is per class)
     assert check_footprint(tr, te, (48, 48), ["a"], ["b", "b"], claim=True).verdict == "pass"
+
+
+# ---- masks in batches: the RowCache's array path against asking row by row ------------------------
+
+def _cache_with(masks, unmade=()):
+    """A RowCache holding these masks (None: a row whose footprint could not be made), as the
+    chunk tasks would have placed them."""
+    from augsplit.audit.parallel import ChunkResult, RowCache
+
+    n = len(masks)
+    shapes = np.array([m.shape if m is not None else (-1, -1) for m in masks], np.int32).reshape(n, 2)
+    bits = [np.packbits(m, axis=None) for m in masks if m is not None]
+    cache = RowCache(None, [], n)
+    cache._place(np.arange(n), ChunkResult(np.zeros(n, np.uint64), [None] * n, np.zeros((n, 63), np.float16), {},
+                                           shapes, np.concatenate(bits) if bits else np.zeros(0, np.uint8),
+                                           {k: "could not be made" for k in unmade}))
+    return cache
+
+
+def _random_masks(rng, n, hw):
+    """n random masks with boxes anywhere around (and partly off) an H x W canvas; some rows unmade."""
+    masks, boxes = [], []
+    for _ in range(n):
+        h, w = (int(v) for v in rng.integers(1, 14, 2))
+        x0, y0 = int(rng.integers(-8, hw[1] + 2)), int(rng.integers(-8, hw[0] + 2))
+        masks.append(rng.random((h, w)) < rng.uniform(0.1, 0.9))
+        boxes.append((x0, y0, x0 + w, y0 + h))
+    unmade = [k for k in range(n) if rng.random() < 0.1]
+    for k in unmade:
+        masks[k] = None
+    return masks, np.array(boxes, np.int64).reshape(n, 4), unmade
+
+
+def _pixel_set(has, owner, lin):
+    return has.tolist(), sorted(zip(owner.tolist(), lin.tolist()))
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 40))
+def test_row_cache_pixels_equal_its_masks_cut_row_by_row(seed, n):
+    from augsplit.audit.footprint import row_pixels
+
+    rng = np.random.default_rng(seed)
+    masks, boxes, unmade = _random_masks(rng, n, HW)
+    cache = _cache_with(masks, unmade)
+    rows = rng.permutation(n)[: int(rng.integers(1, n + 1))]
+    made = np.array([masks[r] is not None for r in rows])
+    got = cache.pixels(rows, boxes[rows], HW)
+    assert got[0].tolist() == made.tolist()
+    ok = np.flatnonzero(made)  # the rows mask() answers: asked one by one, they give the same pixels
+    ref = row_pixels(cache, rows[ok], boxes[rows[ok]], HW)
+    keep = np.isin(got[1], ok)
+    assert sorted(zip(ok[ref[1]].tolist(), ref[2].tolist())) == sorted(zip(got[1][keep].tolist(), got[2][keep].tolist()))
+    assert keep.all()
+    # every pixel given lies on the canvas
+    assert ((got[2] >= 0) & (got[2] < HW[0] * HW[1])).all()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(2, 40))
+def test_guarded_batches_equal_the_guard_row_by_row_and_record_the_same_rows(seed, n):
+    """A box recorded with the wrong size, or a footprint not made, counts as the box and is
+    recorded, whether the guard asks the cache row by row or in one batch."""
+    import pandas as pd
+
+    from augsplit.audit.checks import _GuardedMasks
+    from augsplit.audit.footprint import mask_pixels
+
+    rng = np.random.default_rng(seed)
+    masks, boxes, unmade = _random_masks(rng, n, HW)
+    wrong = [k for k in range(n) if rng.random() < 0.15]
+    boxes[wrong, 2] += 1  # the table's box one pixel wider than the mask
+    cache = _cache_with(masks, unmade)
+    df = pd.DataFrame({"split": ["train"] * n})
+    ids = np.array([f"i{k}" for k in range(n)])
+    batch = _GuardedMasks(cache, boxes.astype(float), df, ids)
+    one_by_one = _GuardedMasks(lambda r: cache.mask(r), boxes.astype(float), df, ids)
+    rows = np.arange(n)
+    got = [_pixel_set(*b[1:]) for b in mask_pixels(batch, rows, boxes, HW, batch=7)]
+    ref = [_pixel_set(*b[1:]) for b in mask_pixels(one_by_one, rows, boxes, HW, batch=7)]
+    assert got == ref
+    assert batch.bad == one_by_one.bad
+    assert set(batch.bad) == set(unmade) | set(wrong)
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 30), st.integers(1, 30), st.integers(1, 3))
+def test_footprint_check_gives_the_same_result_from_batches_and_row_by_row(seed, n_train, n_test, n_cls):
+    rng = np.random.default_rng(seed)
+    masks, boxes, _ = _random_masks(rng, n_train + n_test, HW)
+    masks = [m if m is not None else np.ones((b[3] - b[1], b[2] - b[0]), bool) for m, b in zip(masks, boxes)]
+    cache = _cache_with(masks)
+    cls = rng.integers(0, n_cls, n_train + n_test)
+    args = (boxes[:n_train], boxes[n_train:], HW, cls[:n_train], cls[n_train:])
+    kw = dict(train_rows=np.arange(n_train), test_rows=np.arange(n_train, n_train + n_test), worst_k=1000)
+    a = check_footprint(*args, mask_loader=cache, **kw)
+    b = check_footprint(*args, mask_loader=lambda r: cache.mask(r), **kw)
+    assert a.numbers == b.numbers
+    for k in a.arrays:
+        assert np.array_equal(a.arrays[k], b.arrays[k])
+    assert a.worst.equals(b.worst)
+
+
+def test_a_mask_whose_box_lies_off_the_canvas_has_no_pixel_on_it():
+    from augsplit.audit.footprint import _mask_crop
+
+    m = np.ones((4, 5), bool)
+    for box in [(57, 3, 62, 7), (3, 50, 8, 54), (-9, 3, -4, 7), (3, -6, 8, -2)]:  # right, below, left, above
+        assert _mask_crop(lambda r: m, 0, np.array(box), HW).size == 0
+    assert _mask_crop(lambda r: m, 0, np.array((54, 46, 59, 50)), HW).shape == (2, 2)  # a corner on it

@@ -15,7 +15,7 @@ import pandas as pd
 from ..errors import AugsplitError, DatasetError
 from .category import check_category_overlap
 from .fingerprints import _duplicate_judge, _Fingerprints
-from .footprint import check_footprint
+from .footprint import check_footprint, row_pixels
 from .inputs import BBOX_COLUMNS
 from .instances import check_instances
 from .nearest_hash import check_near_duplicates
@@ -293,6 +293,21 @@ class _GuardedMasks:
             self.bad[row] = f"mask shape {tuple(np.shape(m))} does not match its bbox {want}"
             return None
         return m
+
+    def pixels(self, rows, boxes, hw):
+        """footprint.row_pixels of these rows through the guard; from the loader's own `pixels`
+        when it has one, with the rows it leaves out asked one by one (which records why)."""
+        bulk = getattr(self.loader, "pixels", None)
+        if bulk is None:
+            return row_pixels(self, rows, boxes, hw)
+        made, owner, lin = bulk(rows, boxes, hw)
+        odd = np.flatnonzero(~made)
+        if len(odd) == 0:
+            return made, owner, lin
+        has, o2, l2 = row_pixels(self, np.asarray(rows)[odd], np.asarray(boxes)[odd], hw)
+        made = made.copy()
+        made[odd] = has
+        return made, np.concatenate([owner, odd[o2]]), np.concatenate([lin, l2])
 
     def check(self, rows: np.ndarray, pair, worst_k: int) -> CheckResult:
         bad = [r for r in sorted(self.bad) if r in set(rows.tolist())]

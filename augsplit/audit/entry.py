@@ -110,7 +110,7 @@ def audit_dataset(root, pairs=None, thresholds: dict | None = None, exact_masks:
             th = dict(base, **claims)
             declared = {a: regions[a], b: regions[b]} if claims else None
             results.append(run_audit(df, axes, pairs=[(a, b)], thresholds=th, image_loader=rows.image,
-                                     mask_loader=cache.mask if exact_masks else None, canvas_hw=folder.hw,
+                                     mask_loader=cache if exact_masks else None, canvas_hw=folder.hw,
                                      regions=declared, root=root, progress=progress,
                                      reference_loader=rows.rendered, fingerprints=cache))
     merged = _merge(results)

@@ -3,6 +3,10 @@
 Train footprints of each class are summed into a small coverage map (H x W). A summed-area
 table of it answers "does this test bbox touch covered pixels?" in O(1) per row; only rows
 that do and that have a mask are checked pixel by pixel. Rows without a mask are their bbox.
+
+Masks reach the maps as canvas pixel indices, some thousand rows at a time (`mask_pixels`):
+a mask loader with a `pixels` method (the audit's RowCache, through its guard) answers a
+whole batch with array operations, any other callable is asked row by row.
 """
 
 from __future__ import annotations
@@ -72,7 +76,42 @@ def _mask_crop(mask_loader: MaskLoader, row: int, raw_box: np.ndarray, hw) -> np
         raise DatasetError(f"mask shape {m.shape} does not match its bbox {(y1 - y0, x1 - x0)}",
                            where=f"row {row}")
     h, w = hw
-    return m[max(0, -y0): m.shape[0] - max(0, y1 - h), max(0, -x0): m.shape[1] - max(0, x1 - w)]
+    top, left = max(0, -y0), max(0, -x0)  # the part on the canvas: empty for a box wholly off it
+    return m[top:max(top, min(m.shape[0], h - y0)), left:max(left, min(m.shape[1], w - x0))]
+
+
+MASK_BATCH = 1 << 14  # rows whose mask pixels are held at once (a few MB at 96x96)
+
+
+def row_pixels(mask_loader: MaskLoader, rows, boxes, hw) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The footprint pixels of some rows, asking the loader row by row: (has, owner, lin), with
+    has[i] whether row i (an id the loader takes) gave a mask, and for every set pixel of those
+    masks on the H x W canvas its position i and canvas index y * W + x. `boxes` are the rows'
+    recorded boxes, the frame each mask is cut in (a mask of another shape is a DatasetError)."""
+    boxes = np.asarray(boxes, np.int64).reshape(-1, 4)
+    clipped = clip_boxes(boxes, hw)
+    has = np.zeros(len(boxes), bool)
+    owner, lin = [np.zeros(0, np.int64)], [np.zeros(0, np.int64)]
+    for i, (row, raw) in enumerate(zip(rows, boxes)):
+        m = _mask_crop(mask_loader, row, raw, hw)
+        if m is None:
+            continue
+        has[i] = True
+        ys, xs = np.nonzero(m)
+        lin.append((ys + clipped[i, 1]) * hw[1] + xs + clipped[i, 0])
+        owner.append(np.full(len(ys), i, np.int64))
+    return has, np.concatenate(owner), np.concatenate(lin)
+
+
+def mask_pixels(mask_loader, rows, boxes, hw, batch: int = MASK_BATCH):
+    """`row_pixels` of consecutive batches of rows: yields (lo, has, owner, lin), positions
+    relative to lo. A loader's own `pixels(rows, boxes, hw)`, when it has one, answers each
+    batch in its place, with the same result."""
+    rows, boxes = np.asarray(rows), np.asarray(boxes, np.int64).reshape(-1, 4)
+    bulk = getattr(mask_loader, "pixels", None)
+    for lo in range(0, len(rows), batch):
+        part, frame = rows[lo:lo + batch], boxes[lo:lo + batch]
+        yield (lo, *(bulk(part, frame, hw) if bulk is not None else row_pixels(mask_loader, part, frame, hw)))
 
 
 def _mask_flags(n: int, mask_loader, mask_rows) -> np.ndarray:
@@ -102,7 +141,15 @@ def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None,
     # (classes x H x W) integer array is ever held.
     binary = np.zeros((n_groups, h, w), dtype=np.uint8)
     counts = np.zeros((h, w), dtype=np.int64)
-    plain = np.flatnonzero(~use_mask)
+    flat = binary.reshape(-1)
+    with_mask = np.flatnonzero(use_mask)
+    boxed = [np.flatnonzero(~use_mask)]  # rows counted as their bbox: no mask wanted, or none given
+    for lo, has, owner, lin in mask_pixels(mask_loader, rows[with_mask], bbox[with_mask], hw):
+        part = with_mask[lo:lo + len(has)]
+        boxed.append(part[~has])
+        flat[groups[part[owner]] * (h * w) + lin] = 1
+        counts += np.bincount(lin, minlength=h * w).reshape(h, w)
+    plain = np.concatenate(boxed)
     order = plain[np.argsort(groups[plain], kind="stable")]
     bounds = np.searchsorted(groups[order], np.arange(n_groups + 1))
     for g in range(n_groups):
@@ -112,17 +159,8 @@ def build_coverage(bbox, groups, n_groups, hw, mask_loader=None, mask_rows=None,
         cov = np.zeros((h, w), dtype=np.int64)
         for s in range(0, len(members), chunk):  # bounded temporaries
             cov += box_counts(bbox[members[s : s + chunk]], hw)[0]
-        binary[g] = cov > 0
+        binary[g] |= cov > 0
         counts += cov
-    clipped = clip_boxes(bbox, hw)
-    for i in np.flatnonzero(use_mask):
-        raw = bbox[i]
-        m = _mask_crop(mask_loader, rows[i], raw, hw)
-        x0, y0, x1, y1 = clipped[i]
-        if m is None:
-            m = np.ones((y1 - y0, x1 - x0), bool)
-        binary[groups[i], y0:y1, x0:x1] |= m
-        counts[y0:y1, x0:x1] += m
     return binary, counts
 
 
@@ -145,13 +183,15 @@ def shared_pixels(binary, bbox, groups, hw, mask_loader=None, mask_rows=None, ro
         for s in range(0, len(members), chunk):
             part = members[s : s + chunk]
             out[part] = box_sums(sat, clipped[part])  # exact for bbox footprints
-        # the prefilter: a zero box sum proves no shared pixel, so masks load only here
-        for i in members[(out[members] > 0) & has_mask[members]]:
-            m = _mask_crop(mask_loader, rows[i], bbox[i], hw)
-            if m is None:
-                continue
-            x0, y0, x1, y1 = clipped[i]
-            out[i] = int(np.count_nonzero(m & (binary[g, y0:y1, x0:x1] > 0)))
+    # the prefilter: a zero box sum proves no shared pixel, so masks load only for the others;
+    # a row that gives no mask keeps its box's count
+    picked = np.flatnonzero((out > 0) & has_mask)
+    flat = binary.reshape(-1)
+    h, w = hw
+    for lo, has, owner, lin in mask_pixels(mask_loader, rows[picked], bbox[picked], hw):
+        part = picked[lo:lo + len(has)]
+        on = flat[groups[part[owner]] * (h * w) + lin] > 0
+        out[part[has]] = np.bincount(owner[on], minlength=len(part))[has]
     return out
 
 

@@ -195,6 +195,36 @@ class RowCache:
         self._bits.append(res.bits)
         self._bits_len += len(res.bits)
 
+    def __call__(self, row: int) -> np.ndarray:
+        """The audit's mask loader: `mask`."""
+        return self.mask(row)
+
+    def pixels(self, rows, boxes, hw) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The footprint pixels of many rows at once, as footprint.row_pixels gives them for
+        `mask` row by row: (made, owner, lin). made[i]: the mask of table row rows[i] was made
+        and has the shape of boxes[i] (x0, y0, x1, y1, the frame it was cut in), else it is
+        left out (`mask` says why); for each set pixel of the masks made that lies on the H x W
+        canvas, its position i and canvas index y * W + x."""
+        rows, boxes = np.asarray(rows, np.int64), np.asarray(boxes, np.int64).reshape(-1, 4)
+        h, w = hw
+        shape = self.mask_shape[rows]
+        made = (shape[:, 0] >= 0) & (shape[:, 0] == boxes[:, 3] - boxes[:, 1]) & (shape[:, 1] == boxes[:, 2] - boxes[:, 0])
+        sel = np.flatnonzero(made)
+        if len(sel) == 0:
+            return made, np.zeros(0, np.int64), np.zeros(0, np.int64)
+        n = shape[sel, 0].astype(np.int64) * shape[sel, 1]
+        size = (n + 7) // 8  # bytes of each packed mask
+        first = np.cumsum(size) - size  # where each starts among the bytes gathered
+        bits = self._bits[0] if len(self._bits) == 1 else np.concatenate(self._bits)
+        taken = bits[np.repeat(self.mask_start[rows[sel]] - first, size) + np.arange(int(size.sum()))]
+        on = np.flatnonzero(np.unpackbits(taken))  # packbits pads with zeros: padding is never set
+        k = np.searchsorted(8 * first, on, side="right") - 1  # which mask each set bit belongs to
+        y, x = np.divmod(on - 8 * first[k], shape[sel[k], 1].astype(np.int64))
+        y += boxes[sel[k], 1]
+        x += boxes[sel[k], 0]
+        inside = (y >= 0) & (y < h) & (x >= 0) & (x < w)
+        return made, sel[k[inside]], y[inside] * w + x[inside]
+
     def mask(self, row: int) -> np.ndarray:
         """The row's footprint mask (bool); MaskUnmade when it could not be re-made."""
         row = int(row)
