@@ -218,7 +218,7 @@ class RowCache:
         bits = self._bits[0] if len(self._bits) == 1 else np.concatenate(self._bits)
         taken = bits[np.repeat(self.mask_start[rows[sel]] - first, size) + np.arange(int(size.sum()))]
         on = np.flatnonzero(np.unpackbits(taken))  # packbits pads with zeros: padding is never set
-        k = np.searchsorted(8 * first, on, side="right") - 1  # which mask each set bit belongs to
+        k = np.repeat(np.arange(len(sel)), 8 * size)[on]  # which mask each set bit belongs to
         y, x = np.divmod(on - 8 * first[k], shape[sel[k], 1].astype(np.int64))
         y += boxes[sel[k], 1]
         x += boxes[sel[k], 0]

@@ -76,7 +76,7 @@ def read_rows(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits=No
 
     cols = _columns(table, columns)
     dset, parts = _dataset(folder, table, splits)
-    frames = []
+    tables, which = [], []
     if dset is not None:
         for (k, part), frag in _fragments(dset, parts):
             try:
@@ -85,18 +85,20 @@ def read_rows(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits=No
                 raise _unreadable(part, exc) from None
             if t.num_rows != part.rows:
                 raise DatasetError(f"the part holds {t.num_rows} rows but its footer says {part.rows}", where=str(part.path))
-            df = t.to_pandas()
-            if positions:
-                df[PART_COLUMN] = k
-                df[OFFSET_COLUMN] = np.arange(len(df))
-            frames.append(df)
-    if not frames:
+            tables.append(t)
+            which.append(k)
+    if not tables:
         empty = table_schema(table).empty_table().select(cols).to_pandas()
         if positions:
             empty[PART_COLUMN] = pd.Series(dtype=np.int64)
             empty[OFFSET_COLUMN] = pd.Series(dtype=np.int64)
         return empty
-    df = pd.concat(frames, ignore_index=True)
+    # one conversion to pandas for all parts: per part it cost 1-2 ms, 2,000 parts at a million rows
+    df = pa.concat_tables(tables).to_pandas()
+    if positions:
+        sizes = np.array([t.num_rows for t in tables], np.int64)
+        df[PART_COLUMN] = np.repeat(np.array(which, np.int64), sizes)
+        df[OFFSET_COLUMN] = np.arange(len(df)) - np.repeat(np.cumsum(sizes) - sizes, sizes)
     if "index" in df.columns and mf.PARTITION in df.columns:
         order = df[mf.PARTITION].map({s: i for i, s in enumerate(folder.splits)}).to_numpy()
         index = df["index"].fillna(-1).to_numpy(np.int64)

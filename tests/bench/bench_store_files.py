@@ -17,7 +17,7 @@ Every timed figure is the best of --repeat interleaved rounds; the load (/proc/l
 printed before and after each section, and with every aim (`AIM | ...` lines, sidebyside.aim).
 
     python tests/bench/bench_store_files.py [--n 20000] [--n-files 3000] [--n-small 3000]
-                                            [--repeat 2] [--disk DIR] [--skip-workers]
+                                            [--repeat 3] [--disk DIR] [--skip-workers]
 """
 
 from __future__ import annotations
@@ -177,7 +177,7 @@ def main() -> None:
     ap.add_argument("--n", type=int, default=20000, help="images per run in the workers section")
     ap.add_argument("--n-files", type=int, default=3000, help="images per run in the files section")
     ap.add_argument("--n-small", type=int, default=3000, help="images of the small run in the start-up section")
-    ap.add_argument("--repeat", type=int, default=2)
+    ap.add_argument("--repeat", type=int, default=3, help="interleaved rounds per figure (the best is kept)")
     ap.add_argument("--disk", default=str(HERE.parents[2]), help="a folder on the real disk to measure")
     ap.add_argument("--skip-workers", action="store_true")
     a = ap.parse_args()
