@@ -71,3 +71,15 @@ def test_check_flags_exact_and_near_copies():
     assert near["hamming"] == 2 and near["train_row"] == 3
     clean = check_near_duplicates(train, rng.integers(0, 2**64, 300, dtype=np.uint64), 5)
     assert clean.verdict == "pass"  # random 64-bit hashes: P(<= 5 bits) per pair ~ 5e-13
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.lists(st.sampled_from(["a1", "b2", "c3", "d4", None]), min_size=0, max_size=40),
+       st.lists(st.sampled_from(["a1", "b2", "c3", "e5", None]), min_size=1, max_size=40))
+def test_exact_sources_is_the_first_train_row_with_the_same_content_hash(train, test):
+    from augsplit.audit.nearest_hash import _exact_sources
+
+    got = _exact_sources(np.array(train, dtype=object), test, len(test), len(train))
+    # brute force; a missing hash is the text "None", as the audit has always compared them
+    want = [next((i for i, t in enumerate(train) if str(t) == str(q)), -1) for q in test]
+    assert got.tolist() == want

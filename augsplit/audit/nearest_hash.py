@@ -338,9 +338,13 @@ def _exact_sources(train_sha, test_sha, n_test: int, n_train: int) -> np.ndarray
     """Per test image, the first train position with the same content hash (-1: none)."""
     exact_src = np.full(n_test, -1, np.int64)
     if train_sha is not None and test_sha is not None and n_train:
-        tsha = np.asarray(train_sha, dtype=object)
-        uniq, first = np.unique(tsha.astype(str), return_index=True)
-        pos = pd.Index(uniq).get_indexer(np.asarray(test_sha, dtype=object).astype(str))
+        def text(v):  # as str() writes each (a missing hash is "None"), kept as Python strings
+            return np.array([str(x) for x in v], dtype=object)
+
+        tsha = text(train_sha)
+        # each content's first train position, by hashing (np.unique sorted the strings: 4x slower)
+        first = np.flatnonzero(~pd.Series(tsha).duplicated().to_numpy())
+        pos = pd.Index(tsha[first]).get_indexer(text(test_sha))
         exact_src[pos >= 0] = first[pos[pos >= 0]]
     return exact_src
 
