@@ -127,18 +127,21 @@ def test_claim_turns_overlap_into_failure():
 
 # ---- masks in batches: the RowCache's array path against asking row by row ------------------------
 
-def _cache_with(masks, unmade=()):
+def _cache_with(masks, unmade=(), chunks=1):
     """A RowCache holding these masks (None: a row whose footprint could not be made), as the
-    chunk tasks would have placed them."""
+    chunk tasks would have placed them, `chunks` chunk results of consecutive rows (the cache
+    then holds that many bit arrays until it joins them)."""
     from augsplit.audit.parallel import ChunkResult, RowCache
 
     n = len(masks)
-    shapes = np.array([m.shape if m is not None else (-1, -1) for m in masks], np.int32).reshape(n, 2)
-    bits = [np.packbits(m, axis=None) for m in masks if m is not None]
     cache = RowCache(None, [], n)
-    cache._place(np.arange(n), ChunkResult(np.zeros(n, np.uint64), [None] * n, np.zeros((n, 63), np.float16), {},
-                                           shapes, np.concatenate(bits) if bits else np.zeros(0, np.uint8),
-                                           {k: "could not be made" for k in unmade}))
+    for rows in np.array_split(np.arange(n), chunks):
+        shapes = np.array([masks[r].shape if masks[r] is not None else (-1, -1) for r in rows], np.int32).reshape(-1, 2)
+        bits = [np.packbits(masks[r], axis=None) for r in rows if masks[r] is not None]
+        k = len(rows)
+        cache._place(rows, ChunkResult(np.zeros(k, np.uint64), [None] * k, np.zeros((k, 63), np.float16), {}, shapes,
+                                       np.concatenate(bits) if bits else np.zeros(0, np.uint8),
+                                       {int(np.flatnonzero(rows == u)[0]): "could not be made" for u in unmade if u in rows}))
     return cache
 
 
@@ -146,7 +149,7 @@ def _random_masks(rng, n, hw):
     """n random masks with boxes anywhere around (and partly off) an H x W canvas; some rows unmade."""
     masks, boxes = [], []
     for _ in range(n):
-        h, w = (int(v) for v in rng.integers(1, 14, 2))
+        h, w = (int(v) for v in rng.integers(1, 14, 2)) if rng.random() < 0.9 else (0, 0)  # (0, 0): nothing visible
         x0, y0 = int(rng.integers(-8, hw[1] + 2)), int(rng.integers(-8, hw[0] + 2))
         masks.append(rng.random((h, w)) < rng.uniform(0.1, 0.9))
         boxes.append((x0, y0, x0 + w, y0 + h))
@@ -167,8 +170,8 @@ def test_row_cache_pixels_equal_its_masks_cut_row_by_row(seed, n):
 
     rng = np.random.default_rng(seed)
     masks, boxes, unmade = _random_masks(rng, n, HW)
-    cache = _cache_with(masks, unmade)
-    rows = rng.permutation(n)[: int(rng.integers(1, n + 1))]
+    cache = _cache_with(masks, unmade, chunks=int(rng.integers(1, 4)))
+    rows = rng.integers(0, n, int(rng.integers(1, 2 * n + 1)))  # in any order, some twice
     made = np.array([masks[r] is not None for r in rows])
     got = cache.pixels(rows, boxes[rows], HW)
     assert got[0].tolist() == made.tolist()
@@ -211,15 +214,24 @@ def test_guarded_batches_equal_the_guard_row_by_row_and_record_the_same_rows(see
 @settings(max_examples=30, deadline=None)
 @given(st.integers(0, 2**32 - 1), st.integers(1, 30), st.integers(1, 30), st.integers(1, 3))
 def test_footprint_check_gives_the_same_result_from_batches_and_row_by_row(seed, n_train, n_test, n_cls):
+    import pandas as pd
+
+    from augsplit.audit.checks import _GuardedMasks
+
     rng = np.random.default_rng(seed)
-    masks, boxes, _ = _random_masks(rng, n_train + n_test, HW)
-    masks = [m if m is not None else np.ones((b[3] - b[1], b[2] - b[0]), bool) for m, b in zip(masks, boxes)]
-    cache = _cache_with(masks)
-    cls = rng.integers(0, n_cls, n_train + n_test)
-    args = (boxes[:n_train], boxes[n_train:], HW, cls[:n_train], cls[n_train:])
-    kw = dict(train_rows=np.arange(n_train), test_rows=np.arange(n_train, n_train + n_test), worst_k=1000)
-    a = check_footprint(*args, mask_loader=cache, **kw)
-    b = check_footprint(*args, mask_loader=lambda r: cache.mask(r), **kw)
+    n = n_train + n_test
+    masks, boxes, unmade = _random_masks(rng, n, HW)
+    table_boxes = boxes.copy()
+    wrong = [k for k in range(n) if rng.random() < 0.1]
+    table_boxes[wrong, 3] += 1  # recorded one pixel taller than the mask
+    cache = _cache_with(masks, unmade, chunks=2)
+    df, ids = pd.DataFrame({"split": ["s"] * n}), np.arange(n).astype(str)
+    cls = rng.integers(0, n_cls, n)
+    args = (table_boxes[:n_train], table_boxes[n_train:], HW, cls[:n_train], cls[n_train:])
+    kw = dict(train_rows=np.arange(n_train), test_rows=np.arange(n_train, n), worst_k=1000)
+    a = check_footprint(*args, mask_loader=_GuardedMasks(cache, table_boxes.astype(float), df, ids), **kw)
+    b = check_footprint(*args, mask_loader=_GuardedMasks(lambda r: cache.mask(r), table_boxes.astype(float), df, ids),
+                        **kw)
     assert a.numbers == b.numbers
     for k in a.arrays:
         assert np.array_equal(a.arrays[k], b.arrays[k])
@@ -233,3 +245,23 @@ def test_a_mask_whose_box_lies_off_the_canvas_has_no_pixel_on_it():
     for box in [(57, 3, 62, 7), (3, 50, 8, 54), (-9, 3, -4, 7), (3, -6, 8, -2)]:  # right, below, left, above
         assert _mask_crop(lambda r: m, 0, np.array(box), HW).size == 0
     assert _mask_crop(lambda r: m, 0, np.array((54, 46, 59, 50)), HW).shape == (2, 2)  # a corner on it
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 60), st.integers(1, 400), st.integers(1, 9))
+def test_mask_batches_are_bounded_in_pixels_and_rows_and_cover_every_row_once(seed, n, batch_px, batch):
+    from augsplit.audit.footprint import mask_pixels
+
+    rng = np.random.default_rng(seed)
+    _, boxes, _ = _random_masks(rng, n, HW)
+    seen = []
+
+    class Loader:
+        def pixels(self, rows, frame, hw):
+            area = int(((frame[:, 2] - frame[:, 0]) * (frame[:, 3] - frame[:, 1])).sum())
+            assert len(rows) <= batch and (area <= batch_px or len(rows) == 1)
+            seen.extend(rows.tolist())
+            return np.ones(len(rows), bool), np.zeros(0, np.int64), np.zeros(0, np.int64)
+
+    starts = [lo for lo, *_ in mask_pixels(Loader(), np.arange(n), boxes, HW, batch=batch, batch_px=batch_px)]
+    assert seen == list(range(n)) and starts[0] == 0

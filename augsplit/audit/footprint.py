@@ -80,7 +80,11 @@ def _mask_crop(mask_loader: MaskLoader, row: int, raw_box: np.ndarray, hw) -> np
     return m[top:max(top, min(m.shape[0], h - y0)), left:max(left, min(m.shape[1], w - x0))]
 
 
-MASK_BATCH = 1 << 14  # rows whose mask pixels are held at once (a few MB at 96x96)
+# A batch of masks: at most this many rows, and at most this many pixels in their boxes (the
+# frames the masks are cut in), so that the arrays made per pixel stay at tens of MB however
+# large the objects are
+MASK_BATCH = 1 << 14
+MASK_BATCH_PX = 1 << 21
 
 
 def row_pixels(mask_loader: MaskLoader, rows, boxes, hw) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -103,15 +107,22 @@ def row_pixels(mask_loader: MaskLoader, rows, boxes, hw) -> tuple[np.ndarray, np
     return has, np.concatenate(owner), np.concatenate(lin)
 
 
-def mask_pixels(mask_loader, rows, boxes, hw, batch: int = MASK_BATCH):
-    """`row_pixels` of consecutive batches of rows: yields (lo, has, owner, lin), positions
-    relative to lo. A loader's own `pixels(rows, boxes, hw)`, when it has one, answers each
-    batch in its place, with the same result."""
+def mask_pixels(mask_loader, rows, boxes, hw, batch: int = MASK_BATCH, batch_px: int = MASK_BATCH_PX):
+    """`row_pixels` of consecutive batches of rows (at most `batch` rows and `batch_px` pixels
+    of boxes each, or one row): yields (lo, has, owner, lin), positions relative to lo. A
+    loader's own `pixels(rows, boxes, hw)`, when it has one, answers each batch in its place:
+    the same pixels for the rows it gives, and has False for a row it leaves out (the audit's
+    guard asks those row by row, which records why)."""
     rows, boxes = np.asarray(rows), np.asarray(boxes, np.int64).reshape(-1, 4)
     bulk = getattr(mask_loader, "pixels", None)
-    for lo in range(0, len(rows), batch):
-        part, frame = rows[lo:lo + batch], boxes[lo:lo + batch]
+    area = np.cumsum(np.clip(boxes[:, 2] - boxes[:, 0], 0, None) * np.clip(boxes[:, 3] - boxes[:, 1], 0, None))
+    lo = 0
+    while lo < len(rows):
+        before = area[lo - 1] if lo else 0
+        hi = min(max(int(np.searchsorted(area, before + batch_px, side="right")), lo + 1), lo + batch)
+        part, frame = rows[lo:hi], boxes[lo:hi]
         yield (lo, *(bulk(part, frame, hw) if bulk is not None else row_pixels(mask_loader, part, frame, hw)))
+        lo = hi
 
 
 def _mask_flags(n: int, mask_loader, mask_rows) -> np.ndarray:

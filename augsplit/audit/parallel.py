@@ -204,7 +204,8 @@ class RowCache:
         `mask` row by row: (made, owner, lin). made[i]: the mask of table row rows[i] was made
         and has the shape of boxes[i] (x0, y0, x1, y1, the frame it was cut in), else it is
         left out (`mask` says why); for each set pixel of the masks made that lies on the H x W
-        canvas, its position i and canvas index y * W + x."""
+        canvas, its position i and canvas index y * W + x. Memory is a few dozen bytes per pixel
+        of the masks asked for: footprint.mask_pixels asks in batches of bounded area."""
         rows, boxes = np.asarray(rows, np.int64), np.asarray(boxes, np.int64).reshape(-1, 4)
         h, w = hw
         shape = self.mask_shape[rows]
