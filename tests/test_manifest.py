@@ -103,3 +103,21 @@ def test_pixel_sha256_is_the_sha256_of_the_pixel_bytes_in_c_order():
     for a in (base, base[:, ::2], base[..., ::-1], base.transpose(1, 0, 2), np.asfortranarray(base),
               np.zeros((0, 5, 3), np.uint8), np.zeros((4, 4, 1), np.uint8)):
         assert mf.pixel_sha256(a) == hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()
+
+
+def test_row_positions_name_the_part_and_row_that_hold_each_row(dataset):
+    """read_rows(positions=True): `_part` indexes folder.parts_of() and `_offset` is the row in
+    that part; checked against each part read on its own with pyarrow.parquet (several parts
+    per split, shard size 7)."""
+    from augsplit.dataset import open_dataset
+    from augsplit.dataset.rows import OFFSET_COLUMN, PART_COLUMN, read_rows
+
+    out, _ = dataset
+    folder = open_dataset(out)
+    parts = folder.parts_of()
+    assert len(parts) > 2
+    ids = [pq.read_table(p.path, columns=["image_id"]).column("image_id").to_pylist() for p in parts]
+    df = read_rows(folder, positions=True)
+    assert len(df) == sum(map(len, ids))
+    for image_id, k, offset in zip(df["image_id"], df[PART_COLUMN], df[OFFSET_COLUMN]):
+        assert ids[k][offset] == image_id

@@ -181,7 +181,7 @@ class RowCache:
             if client is not None:
                 executors.close_dask(client, cluster)
         self.splits_done.update(todo)
-        self._bits = [np.concatenate(self._bits)] if len(self._bits) > 1 else self._bits
+        self._all_bits()
 
     def _place(self, rows: np.ndarray, res: ChunkResult) -> None:
         self.hashes[rows] = res.hashes
@@ -194,6 +194,12 @@ class RowCache:
         self.mask_start[rows] = self._bits_len + np.concatenate([[0], np.cumsum(sizes)[:-1]])
         self._bits.append(res.bits)
         self._bits_len += len(res.bits)
+
+    def _all_bits(self) -> np.ndarray:
+        """Every placed mask's packed bits as one array (joined once, when placed in several)."""
+        if len(self._bits) != 1:
+            self._bits = [np.concatenate(self._bits) if self._bits else np.zeros(0, np.uint8)]
+        return self._bits[0]
 
     def __call__(self, row: int) -> np.ndarray:
         """The audit's mask loader: `mask`."""
@@ -216,7 +222,7 @@ class RowCache:
         n = shape[sel, 0].astype(np.int64) * shape[sel, 1]
         size = (n + 7) // 8  # bytes of each packed mask
         first = np.cumsum(size) - size  # where each starts among the bytes gathered
-        bits = self._bits[0] if len(self._bits) == 1 else np.concatenate(self._bits)
+        bits = self._all_bits()
         taken = bits[np.repeat(self.mask_start[rows[sel]] - first, size) + np.arange(int(size.sum()))]
         on = np.flatnonzero(np.unpackbits(taken))  # packbits pads with zeros: padding is never set
         k = np.repeat(np.arange(len(sel)), 8 * size)[on]  # which mask each set bit belongs to
@@ -234,6 +240,6 @@ class RowCache:
         h, w = (int(v) for v in self.mask_shape[row])
         if h < 0:
             raise IndexError(f"row {row} was not computed")
-        bits = self._bits[0] if len(self._bits) == 1 else np.concatenate(self._bits)
+        bits = self._all_bits()
         s = int(self.mask_start[row])
         return np.unpackbits(bits[s: s + (h * w + 7) // 8], count=h * w).reshape(h, w).astype(bool)
