@@ -11,7 +11,7 @@ Each figure is the best of --repeat runs (shared machines are noisy). Peak memor
 in a fresh subprocess per size (resource.getrusage, ru_maxrss). The audit and loader benches
 (tests/bench/bench_audit.py, bench_data.py) are other scripts; --hooks runs them after this.
 
-    python tests/bench/bench_generate.py [--n 3000] [--repeat 2] [--memory 10000,100000]
+    python tests/bench/bench_generate.py [--n 3000] [--repeat 3] [--memory 10000,100000]
                                          [--tmp DIR] [--profile] [--hooks]
 """
 
@@ -268,7 +268,7 @@ def measure_memory(sizes: list[int], tmp: Path, store: str) -> list[dict]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=3000, help="images per timed run")
-    ap.add_argument("--repeat", type=int, default=2, help="runs per figure; the best is kept")
+    ap.add_argument("--repeat", type=int, default=3, help="runs per figure; the best is kept")
     ap.add_argument("--shard-size", type=int, default=100, help="images per shard in the timed runs")
     ap.add_argument("--memory", default="10000,100000", help="dataset sizes for the peak-memory runs ('' to skip)")
     ap.add_argument("--memory-store", default="parquet", choices=["files", "parquet", "none"])
