@@ -392,3 +392,34 @@ def test_a_ctrl_c_while_the_options_are_read_is_one_line_and_exit_130(monkeypatc
     monkeypatch.setattr(cli, "build_parser", ctrl_c)
     assert main(["plan", "demo"]) == 130
     assert capsys.readouterr().err.strip().splitlines() == ["augsplit: interrupted"]
+
+
+def test_a_ctrl_c_while_the_command_line_loads_is_one_line_and_exit_130(monkeypatch, capsys):
+    """Measured before: the `augsplit` script imported augsplit.cli before any Ctrl-C handling
+    (about 13 ms), so a Ctrl-C then ended the command with a Python traceback. The script now
+    runs `augsplit.__main__:run`, which imports the command line inside its own handling."""
+    import tomllib
+
+    import augsplit.__main__ as entry
+
+    class CtrlCOnImport:
+        def find_spec(self, name, path=None, target=None):
+            if name == "augsplit.cli":
+                raise KeyboardInterrupt
+            return None
+
+    monkeypatch.delitem(sys.modules, "augsplit.cli")
+    monkeypatch.setattr(sys, "meta_path", [CtrlCOnImport(), *sys.meta_path])
+    assert entry.run() == 130
+    assert capsys.readouterr().err.strip().splitlines() == ["augsplit: interrupted"]
+    scripts = tomllib.loads((Path(__file__).parents[1] / "pyproject.toml").read_text())["project"]["scripts"]
+    assert scripts["augsplit"] == "augsplit.__main__:run"
+
+
+def test_the_entry_point_runs_the_command_line(monkeypatch):
+    import augsplit.__main__ as entry
+
+    monkeypatch.setattr(sys, "argv", ["augsplit", "--version"])
+    with pytest.raises(SystemExit) as stop:
+        entry.run()
+    assert stop.value.code == 0
