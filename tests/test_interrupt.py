@@ -114,6 +114,24 @@ def test_ctrl_c_then_resume_gives_the_uninterrupted_bytes(spec_file, serial, tmp
     resume_and_compare(spec_file, out, serial, cli=True)
 
 
+def test_ctrl_c_of_a_dask_run_then_resume_gives_the_uninterrupted_bytes(spec_file, serial, tmp_path):
+    """The same Ctrl-C on the dask executor (a LocalCluster of 2 worker processes, whose nannies
+    get the terminal's Ctrl-C too): one line and exit 130, no process of the run left behind,
+    every committed shard whole, and --resume gives the serial bytes."""
+    pytest.importorskip("distributed")
+    out = tmp_path / "ds"
+    proc = start(spec_file, out, "--executor", "dask")
+    wait_for_commits(proc, out, limit_s=120.0)
+    os.killpg(proc.pid, signal.SIGINT)
+    _stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 130, stderr[-2000:]
+    assert stderr.strip().splitlines() == ["augsplit generate: interrupted; rerun with --resume to continue"]
+    assert group_gone(proc.pid, limit_s=20.0)
+    assert not (out / lay.SUMMARY_FILE).exists() and len(committed(out)) < 100
+    assert_commits_are_whole(out)
+    resume_and_compare(spec_file, out, serial)
+
+
 @pytest.mark.parametrize("mode, most_lines", [("processes", 300), ("overlapped", 500)])
 def test_a_ctrl_c_at_any_line_of_the_executor_code_stops_the_run_clean(mode, most_lines):
     """The executor's side of the test above, at every moment instead of one: CI once saw that
