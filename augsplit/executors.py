@@ -15,7 +15,8 @@ import os
 import signal
 import threading
 import uuid
-from contextlib import contextmanager
+from collections import deque
+from contextlib import contextmanager, suppress
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from queue import SimpleQueue
@@ -77,35 +78,62 @@ def run_serial_overlapped(task: Callable, jobs: Iterable) -> Iterator:
     """Serial, for a task that leaves its job done but for a last wait on the disk: it returns
     a pending job, whose `finish()` completes it (e.g. syncs and commits what it wrote) and
     returns its result, and whose `abandon()` undoes it. Each finish runs on a thread of its
-    own while the next job's task runs, so the disk's wait overlaps the next job's work;
-    results come in job order, each once finished.
+    own while the next job's task runs (`finish_overlapped`)."""
+    return finish_overlapped((job, task(job)) for job in jobs)
 
-    On a failure, a Ctrl-C or the caller stopping, the finish under way is waited for (a
-    commit lands whole or not at all) and a job not yet finishing is abandoned."""
-    behind = None  # (job, _Finishing): the job whose finish runs now
+
+def finish_overlapped(made: Iterable, depth: int = 1) -> Iterator:
+    """(job, pending) pairs as `made` gives them (a serial task's, or a pool's results) ->
+    (job, result): each pending's `finish()` runs on a thread of its own while the next pairs
+    are made, at most `depth` at once; results come in the order made, each once finished.
+
+    On a failure, a Ctrl-C or the caller stopping, every finish under way is waited for (a
+    commit lands whole or not at all) and a pending not yet finishing is abandoned. Then `made`
+    stops: on a failure it is told so (`_Stopped` thrown in: a pool lets its running jobs end
+    and hands their results to its `lost`), otherwise it is closed (a pool stops at once)."""
+    made = iter(made)
+    finishing: deque = deque()  # (job, _Finishing), oldest first
+    failed = False
     try:
-        for job in jobs:
-            pending = done = None
+        while True:
+            pending, started, done = None, False, []
             try:
-                pending = task(job)
-                if behind is not None:
-                    done = behind[0], behind[1].result()
-                    behind = None
+                job, pending = next(made, _END)  # one line: a Ctrl-C lands before it or after both are set
+                if pending is None:
+                    break
+                while len(finishing) >= depth:
+                    done.append((finishing[0][0], finishing[0][1].result()))
+                    finishing.popleft()  # only once finished: the `finally` below waits for the rest
                 with _ctrl_c_held():  # a thread half-started would hold the exit forever
-                    behind = (job, _Finishing(pending.finish))
+                    finishing.append((job, _Finishing(pending.finish)))
+                    started = True
             except BaseException:
-                if pending is not None and (behind is None or behind[0] is not job):  # not finishing
+                if pending is not None and not started:
                     pending.abandon()
                 raise
-            if done is not None:
-                yield done
-        if behind is not None:
-            done = behind[0], behind[1].result()
-            behind = None
+            yield from done
+        while finishing:
+            done = finishing[0][0], finishing[0][1].result()
+            finishing.popleft()
             yield done
+    except Exception:
+        failed = True
+        raise
     finally:
-        if behind is not None:
-            behind[1].wait()
+        for _job, f in finishing:
+            f.wait()
+        if failed and hasattr(made, "throw"):
+            with suppress(_Stopped):
+                made.throw(_Stopped())
+        elif hasattr(made, "close"):
+            made.close()
+
+
+class _Stopped(Exception):
+    """Thrown into the source of a `finish_overlapped` that failed: stop, as after a failed job."""
+
+
+_END = (None, None)  # what `finish_overlapped` takes from `made` once it has ended (a pending is never None)
 
 
 class _Finishing:
@@ -203,11 +231,15 @@ def _stop_pool(pool: ProcessPoolExecutor) -> None:
 
 
 def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable | None = None,
-                  initargs: tuple = (), max_restarts: int = MAX_POOL_RESTARTS) -> Iterator:
+                  initargs: tuple = (), max_restarts: int = MAX_POOL_RESTARTS,
+                  lost: Callable | None = None) -> Iterator:
     """Yield (job, result) as workers finish; at most 2 x workers jobs are in flight.
 
     If a worker process dies (killed, out of memory), the jobs in flight are put back and a
     new pool takes over; after `max_restarts` deaths the run stops with a DatasetError.
+    `lost(result)` is called for each result that nobody will take: of a job redone after a
+    death, or that ended after the run stopped on a failure (a job's, or the caller's thrown
+    in), so a result that holds something (a written, uncommitted shard) can let it go.
 
     Ctrl-C stops the pool at once, wherever it lands. The driver waits on a queue of its own
     that each job's future is put on when it finishes, not on `concurrent.futures.wait`: that
@@ -239,13 +271,14 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
                 pool.shutdown(wait=True)  # every job is done: the workers only have to exit
         except BrokenProcessPool:
             deaths += 1
-            lost = list(pending.values())
+            redo = list(pending.values())
             _stop_pool(pool)
+            _let_go(pending, lost)
             if deaths > max_restarts:
                 raise DatasetError(f"worker processes died {deaths} times; the last time while making "
-                                   f"{', '.join(map(str, lost[:3]))}") from None
+                                   f"{', '.join(map(str, redo[:3]))}") from None
             # every job in flight may have been the one running in the dead worker: redo them all
-            queue.extend(reversed(lost))
+            queue.extend(reversed(redo))
             continue
         except Exception:
             # a job failed (e.g. disk full): let the running ones finish or fail cleanly, so
@@ -258,6 +291,7 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
                     running.discard(finished.get())
                 with _ctrl_c_held():
                     pool.shutdown(wait=True)
+                _let_go(pending, lost)
             except BaseException:  # Ctrl-C while they finish
                 _stop_pool(pool)
                 raise
@@ -265,6 +299,13 @@ def run_processes(task: Callable, jobs: Iterable, workers: int, init: Callable |
         except BaseException:  # Ctrl-C, or the caller stopped listening: stop now
             _stop_pool(pool)
             raise
+
+
+def _let_go(futures, lost: Callable | None) -> None:
+    """`lost(result)` for each of the futures that ended with a result."""
+    for fut in futures if lost is not None else ():
+        if fut.done() and not fut.cancelled() and fut.exception() is None:
+            lost(fut.result())
 
 
 # ---- dask.distributed -------------------------------------------------------------------------

@@ -3,9 +3,11 @@
 A split's images are cut into shards of consecutive indices. A shard writes its image files
 (each straight to its name, all synced together) and then its manifest part (atomically,
 streamed in row groups): the part file is the shard's commit, so an interrupted run resumes
-by redoing exactly the shards without one. A serial run commits each shard (mostly a wait on
-the disk) while it renders the next. Output is byte-identical whatever the number of workers,
-shards or executor.
+by redoing exactly the shards without one. Committing (mostly a wait on the disk) overlaps
+rendering: a serial run commits each shard while it renders the next; local worker processes
+render and write, and the driver commits their shards while they render the next (dask workers,
+maybe on other machines, commit their own). Output is byte-identical whatever the number of
+workers, shards or executor.
 """
 
 from __future__ import annotations
@@ -14,7 +16,7 @@ import functools
 import json
 import os
 from contextlib import ExitStack, closing, contextmanager, suppress
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -34,7 +36,8 @@ from .dataset.png import DEFLATES, png_setting
 from .dataset.tarstore import TarShardWriter, fast_record, sha256_hex
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
-from .io import DISK_FULL, atomic_path, os_error, sync_files, write_files_atomic, write_new_file, write_text_atomic
+from .io import (DISK_FULL, move_into_place, new_temporary, os_error, sync_files, write_files_atomic,
+                 write_new_file, write_text_atomic)
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
 from .manifest import pixel_sha256
@@ -117,16 +120,17 @@ class _ImageFiles:
     earlier attempt at this uncommitted shard, or anything else), it is replaced whole through
     a temporary, and only if it is a regular file (`io.write_files_atomic`), as before.
 
-    `close` makes the shard's files durable at once (one syncfs, measured cheaper than one per
-    batch; then the folder fsynced), before the caller commits the shard's part. A crash before
-    that, even half-way through a file, leaves the shard without a part: nothing reads its
-    images, and a resumed run writes every one of them again. Written inline: a writer thread
-    measured the same on tmpfs, and 0.86x to 1.2x the time of inline writes on an erratic
-    shared ext4 disk (load 3 on 2 cores), so the simpler way was kept."""
+    Their paths go to `written` (the shard's `images`), which the shard's finish makes durable
+    at once (one syncfs, measured cheaper than one per batch; then the folder fsynced), before
+    it commits the shard's part. A crash before that, even half-way through a file, leaves the
+    shard without a part: nothing reads its images, and a resumed run writes every one of them
+    again. Written inline: a writer thread measured the same on tmpfs, and 0.86x to 1.2x the
+    time of inline writes on an erratic shared ext4 disk (load 3 on 2 cores), so the simpler
+    way was kept."""
 
-    def __init__(self, folder: Path):
+    def __init__(self, folder: Path, written: list[str]):
         self.folder = str(folder)
-        self.written: list[str] = []
+        self.written = written
 
     def write(self, name: str, data: bytes) -> None:
         path = os.path.join(self.folder, name)
@@ -137,41 +141,54 @@ class _ImageFiles:
             raise _disk_error(exc, path) from None
         self.written.append(path)
 
-    def close(self) -> None:
-        if self.written:
-            _guard_disk(lambda: sync_files(self.written), self.folder)
-
 
 def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
     """Render, store and commit one shard. Returns the number of images."""
     return write_shard(built, job, out, opts).finish()
 
 
+@dataclass
 class WrittenShard:
-    """A shard whose images and manifest part are written but not yet committed: `finish`
-    makes its image files durable and closes and renames its part (the commit) and returns
-    the number of images; `abandon` discards the part, leaving the shard to be made again.
-    The finish is mostly a wait on the disk, which a serial run overlaps with rendering the
-    next shard (`executors.run_serial_overlapped`)."""
+    """A shard whose image files and parts are written, the parts whole under temporary names,
+    but not yet committed: `finish` makes the images durable, puts the parts in place, the
+    manifest part last (its presence is the shard's commit), and returns the number of images;
+    `abandon` removes the temporaries, leaving the shard to be made again. It holds only paths,
+    so a pool worker hands it to the driver, which finishes it.
 
-    def __init__(self, job: ShardJob, stack: ExitStack, files: "_ImageFiles | None", part: Path):
-        self.job, self._stack, self._files, self._part = job, stack, files, part
+    The finish is mostly a wait on the disk, which the driver overlaps with the rendering of
+    the next shards (`executors.finish_overlapped`): a serial run's own next shard, or the pool
+    workers', which then never wait on the disk themselves (measured: a worker of a 2-worker
+    `--store files` run on ext4 spent about 10% of its time in that wait)."""
+
+    job: ShardJob
+    images: list = field(default_factory=list)  # image files written unsynced
+    others: list = field(default_factory=list)  # (temporary, final) of the distractor part and the tar
+    part: tuple | None = None  # (temporary, final) of the manifest part: the commit
+
+    def temporary(self, final: Path, commit: bool = False) -> Path:
+        """A temporary name for `final`, recorded so that `finish` puts it in place (last, for
+        the `commit`, the manifest part)."""
+        tmp = new_temporary(final)
+        if commit:
+            self.part = (tmp, final)
+        else:
+            self.others.append((tmp, final))
+        return tmp
 
     def finish(self) -> int:
         try:
-            if self._files is not None:
-                self._files.close()
+            if self.images:
+                _guard_disk(lambda: sync_files(self.images), os.path.dirname(self.images[0]))
+            _guard_disk(lambda: move_into_place([*self.others, self.part]), self.part[1])
         except BaseException:
             self.abandon()
             raise
-        # Closing the stack closes the writers and renames: the distractor part first (entered
-        # later, left earlier), then the manifest part, whose presence is the shard's commit.
-        _guard_disk(self._stack.close, self._part)
         return self.job.stop - self.job.start
 
     def abandon(self) -> None:
-        gone = DatasetError("shard abandoned")  # as if writing had failed: the writers discard
-        self._stack.__exit__(DatasetError, gone, None)
+        for tmp, _final in [*self.others, *([self.part] if self.part else [])]:
+            with suppress(OSError):
+                os.unlink(tmp)
 
 
 def write_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> WrittenShard:
@@ -185,40 +202,46 @@ def write_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> Writte
     step = rows_per_group(built, opts)
     part = lay.part_path(out, lay.MANIFEST_DIR, job.split, job.shard)
     dpart = lay.part_path(out, lay.DISTRACTOR_DIR, job.split, job.shard)
-    files = None
-    if opts.store == "files":
-        files = _ImageFiles(_guard_disk(lambda: create.writable_dir(out, lay.IMAGES_DIR, job.split), out))
-    with ExitStack() as stack:
+    shard = WrittenShard(job)
+    try:
+        files = None
+        if opts.store == "files":
+            folder = _guard_disk(lambda: create.writable_dir(out, lay.IMAGES_DIR, job.split), out)
+            files = _ImageFiles(folder, shard.images)
         _guard_disk(lambda: create.writable_dir(out, lay.MANIFEST_DIR, job.split), out)
-        tmp = stack.enter_context(atomic_path(part))
-        writer = stack.enter_context(_parquet_writer(tmp, mf.IMAGE_SCHEMA.with_metadata(meta)))
-        dwriter = dtmp = None
-        tar = None
-        if opts.store == "tar":
-            # entered after the part: closed, fsynced and renamed before the part commits
-            tar = _guard_disk(lambda: stack.enter_context(_tar_writer(out, job)), out)
-        for lo in range(job.start, job.stop, step):
-            cols, dcols = _render_rows(built, split, job, np.arange(lo, min(lo + step, job.stop)), opts, files)
-            table = mf.to_table(cols, mf.IMAGE_SCHEMA, meta)
-            if tar is not None:
-                table = _guard_disk(lambda: _add_to_tar(tar, table, job, FORMATS[opts.format]), part)
-            _guard_disk(lambda: writer.write_table(table), part)
-            if dcols:
-                if dwriter is None:
-                    _guard_disk(lambda: create.writable_dir(out, lay.DISTRACTOR_DIR, job.split), out)
-                    dtmp = stack.enter_context(atomic_path(dpart))
-                    # closed before dtmp's rename (LIFO)
-                    dwriter = stack.enter_context(_parquet_writer(dtmp, mf.DISTRACTOR_SCHEMA.with_metadata(meta)))
-                _guard_disk(lambda: dwriter.write_table(mf.to_table(dcols, mf.DISTRACTOR_SCHEMA, meta)), dpart)
-        return WrittenShard(job, stack.pop_all(), files, part)
+        with ExitStack() as stack:  # on a failure, every writer is closed and its file discarded
+            writer = stack.enter_context(_parquet_writer(shard.temporary(part, commit=True),
+                                                        mf.IMAGE_SCHEMA.with_metadata(meta)))
+            dwriter = None
+            tar = None
+            if opts.store == "tar":
+                tar = _guard_disk(lambda: stack.enter_context(_tar_writer(shard, out, job)), out)
+            for lo in range(job.start, job.stop, step):
+                cols, dcols = _render_rows(built, split, job, np.arange(lo, min(lo + step, job.stop)), opts, files)
+                table = mf.to_table(cols, mf.IMAGE_SCHEMA, meta)
+                if tar is not None:
+                    table = _guard_disk(lambda: _add_to_tar(tar, table, job, FORMATS[opts.format]), part)
+                _guard_disk(lambda: writer.write_table(table), part)
+                if dcols:
+                    if dwriter is None:
+                        _guard_disk(lambda: create.writable_dir(out, lay.DISTRACTOR_DIR, job.split), out)
+                        dwriter = stack.enter_context(_parquet_writer(shard.temporary(dpart),
+                                                                      mf.DISTRACTOR_SCHEMA.with_metadata(meta)))
+                    _guard_disk(lambda: dwriter.write_table(mf.to_table(dcols, mf.DISTRACTOR_SCHEMA, meta)), dpart)
+            writers = stack.pop_all()
+        # the footers, the archive's end: each file whole under its temporary name
+        _guard_disk(writers.close, part)
+    except BaseException:
+        shard.abandon()
+        raise
+    return shard
 
 
 @contextmanager
-def _tar_writer(out: Path, job: ShardJob):
-    """The shard's archive, written to a temporary name and renamed into place on success."""
-    path = out / lay.tar_relpath(job.split, job.shard)
+def _tar_writer(shard: WrittenShard, out: Path, job: ShardJob):
+    """The shard's archive, written to a temporary name that the shard's finish puts in place."""
     create.writable_dir(out, lay.SHARDS_DIR, job.split)
-    with atomic_path(path) as tmp, open(tmp, "xb", buffering=1 << 20) as f:
+    with open(shard.temporary(out / lay.tar_relpath(job.split, job.shard)), "xb", buffering=1 << 20) as f:
         writer = TarShardWriter(f)
         yield writer
         writer.close()
@@ -354,10 +377,19 @@ def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tu
 
 
 def _shard_task(state_key: tuple, job: ShardJob) -> int:
-    """The task every executor runs: the driver's built spec (a forked worker inherits it;
-    planning a large canvas takes seconds), or one built once per fresh process; one shard."""
+    """The task a dask worker runs: the driver's built spec (a forked worker inherits it;
+    planning a large canvas takes seconds), or one built once per fresh process; one shard,
+    committed there (a dask worker may be another machine, whose writes only its own sync
+    makes durable)."""
     built, out, opts = executors.shared(state_key, lambda: _worker_state(*state_key[1:]))
     return make_shard(built, job, out, opts)
+
+
+def _written_task(state_key: tuple, job: ShardJob) -> WrittenShard:
+    """The task a local pool worker runs: one shard, written but left for the driver to commit
+    (the same kernel, so the driver's sync makes the worker's writes durable)."""
+    built, out, opts = executors.shared(state_key, lambda: _worker_state(*state_key[1:]))
+    return write_shard(built, job, out, opts)
 
 
 # ---- the output folder ----------------------------------------------------------------------
@@ -501,15 +533,20 @@ def _check_worker_versions(client, scheduler: str) -> None:
 def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, bar) -> None:
     with ExitStack() as stack:
         stack.callback(bar.close)
+        key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
+               json.dumps(asdict(opts)))
         if client is None and (opts.executor == "serial" or (opts.executor == "auto" and (opts.workers <= 1 or len(todo) <= 1))):
             # each shard's commit (a wait on the disk) overlaps the rendering of the next
             results = executors.run_serial_overlapped(lambda job: write_shard(built, job, out, opts), todo)
-        else:
-            key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
-                   json.dumps(asdict(opts)))
+        elif client is None:
+            # the workers render and write; the driver commits, overlapped with their next shards
             stack.enter_context(executors.sharing(key, (built, out.resolve(), opts)))
-            results = executors.run(functools.partial(_shard_task, key), todo, opts.workers,
-                                    executor=opts.executor, client=client)
+            results = executors.finish_overlapped(
+                executors.run_processes(functools.partial(_written_task, key), todo, opts.workers,
+                                        lost=WrittenShard.abandon), depth=opts.workers)
+        else:
+            stack.enter_context(executors.sharing(key, (built, out.resolve(), opts)))
+            results = executors.run(functools.partial(_shard_task, key), todo, opts.workers, client=client)
         with closing(results):
             for job, count in results:
                 # the driver counts a shard only once its committed part is there; its footer

@@ -137,6 +137,12 @@ def temporary_name(path: Path) -> Path:
     return path.with_name(f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(3)}")
 
 
+def new_temporary(final: str | Path) -> Path:
+    """A temporary name next to `final` for a file the caller writes now and puts in place
+    later (`move_into_place`); refused, as `atomic_path` refuses, where a write may not land."""
+    return temporary_name(check_target(final))
+
+
 @contextmanager
 def atomic_path(path: str | Path):
     """Yield a temporary path next to `path` for the caller to write and close; on success
@@ -144,17 +150,25 @@ def atomic_path(path: str | Path):
 
     Refuses (DatasetError) a target that is not missing or a regular file. OSErrors of the
     storage propagate unchanged (see `os_error` for a one-line version)."""
-    p = check_target(path)
-    tmp = temporary_name(p)
+    p, tmp = Path(path), new_temporary(path)
     try:
         yield tmp
-        _sync_data([tmp])
-        check_target(p)  # again: something may have appeared there while we wrote
-        os.replace(tmp, p)
-        fsync_folder(p.parent)
+        move_into_place([(tmp, p)])
     finally:
         if os.path.lexists(tmp):
             tmp.unlink()
+
+
+def move_into_place(moves) -> None:
+    """Put files written whole under temporary names (`temporary_name`) in place, in the given
+    order, each with `atomic_path`'s promise: fsynced, checked, renamed over its target, its
+    folder fsynced. A file is in place, durably, before the next one moves, so the last one
+    can be a commit that says the others are there."""
+    for tmp, final in moves:
+        _sync_data([tmp])
+        check_target(final)  # again: something may have appeared there while it was written
+        os.replace(tmp, final)
+        fsync_folder(Path(final).parent)
 
 
 def write_files_atomic(items, *, sync: bool = True) -> None:

@@ -1,7 +1,7 @@
 """Run by test_interrupt in a process of its own: a Ctrl-C at every line the driver's main thread
 runs in an executor and in the standard library's pool, queue and thread code.
 
-    python tests/ctrl_c_anywhere.py processes|overlapped
+    python tests/ctrl_c_anywhere.py processes|overlapped|pool-overlapped
 
 Trial n raises SIGINT in this process when the main thread reaches the n-th such line of a
 small run, so Python handles it where a real Ctrl-C landing at that moment would be handled.
@@ -11,7 +11,10 @@ process is left, which is what lets the interpreter exit. `overlapped`: 4 jobs o
 executor that finishes each job on a thread while the next one runs
 (`executors.run_serial_overlapped`); within 5 s no finishing thread is alive, every finish
 that began has ended (a commit lands whole), and every job made was finished or abandoned
-(nothing left half-made). Prints one JSON line; a trial that hangs for 20 s ends the process
+(nothing left half-made). `pool-overlapped`: both at once, as generate runs local workers: 4 jobs
+on 2 worker processes whose results the driver finishes on threads
+(`executors.finish_overlapped` of `run_processes`); the checks of both modes, and every result
+the driver received, or the pool handed to its `lost`, was finished or abandoned. Prints one JSON line; a trial that hangs for 20 s ends the process
 with a traceback of every thread (non-zero exit)."""
 
 from __future__ import annotations
@@ -73,6 +76,48 @@ def run_overlapped() -> dict:
     return log
 
 
+class Received:
+    """A worker's result, picklable: a job done but for its finish, logging in the driver."""
+
+    def __init__(self, job: int):
+        self.job = job
+
+    def finish(self) -> int:
+        LOG["began"].add(self.job)
+        time.sleep(0.002)
+        LOG["ended"].add(self.job)
+        return self.job
+
+    def abandon(self) -> None:
+        LOG["abandoned"].add(self.job)
+
+
+LOG: dict = {}
+
+
+def pool_task(x: int) -> Received:
+    time.sleep(0.002)
+    return Received(x)
+
+
+def run_pool_overlapped() -> dict:
+    LOG.clear()
+    LOG.update(made=set(), began=set(), ended=set(), abandoned=set())
+
+    def received(pairs):
+        for job, r in pairs:
+            LOG["made"].add(job)
+            yield job, r
+
+    try:
+        results = executors.run_processes(pool_task, range(JOBS), 2, lost=Received.abandon)
+        for _ in executors.finish_overlapped(received(results), depth=2):
+            pass
+    finally:
+        RUNS.append(LOG)
+    return LOG
+
+
 RUNS: list = []
 
 
@@ -118,6 +163,8 @@ def trial(at: int | None) -> tuple[int, bool, list[str]]:
     try:
         if MODE == "overlapped":
             run_overlapped()
+        elif MODE == "pool-overlapped":
+            run_pool_overlapped()
         else:
             for _ in executors.run_processes(task, range(JOBS), 2):
                 pass
@@ -128,7 +175,7 @@ def trial(at: int | None) -> tuple[int, bool, list[str]]:
     if MODE == "overlapped":
         return count, stopped, overlapped_left(where)
     t0 = time.monotonic()
-    left = []
+    left = overlapped_left(where) if MODE == "pool-overlapped" else []
     for t in threading.enumerate():
         if type(t).__name__ == "_ExecutorManagerThread" and t.ident is not None and t not in SEEN:
             SEEN.add(t)

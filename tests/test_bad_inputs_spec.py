@@ -391,13 +391,12 @@ def test_workers_are_capped_at_shards_and_cores(tmp_path, monkeypatch):
     from augsplit.generate import Options, generate
 
     seen = []
-    real = executors.run
 
-    def spy(task, jobs, workers=1, **kw):
+    def spy(task, jobs, workers, **_kw):  # the pool a run of local workers starts
         seen.append(workers)
-        return real(task, jobs, 1, **{**kw, "executor": "serial"})
+        return executors.run_serial(task, jobs)
 
-    monkeypatch.setattr(executors, "run", spy)
+    monkeypatch.setattr(executors, "run_processes", spy)
     (tmp_path / SPEC).write_text(dump(BASE))  # 6 images: 2 shards of 4 and 2
     generate(tmp_path / SPEC, tmp_path / "out", Options(workers=64, shard_size=4, progress=False, executor="processes"))
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()

@@ -116,6 +116,109 @@ def test_overlapped_serial_lets_the_finish_under_way_end_when_the_caller_stops()
     assert not any(t.name == "augsplit-finish" for t in threading.enumerate())
 
 
+def test_finish_overlapped_keeps_at_most_depth_finishes_running_and_gives_results_in_order():
+    """Pairs from a source (a pool's results): up to `depth` finishes run at once, on threads,
+    while the next pairs come; each result once, in the order made."""
+    log, running, most = [], [], [0]
+    lock = threading.Lock()
+
+    class Slow(Pending):
+        def finish(self):
+            with lock:
+                running.append(self.job)
+                most[0] = max(most[0], len(running))
+            time.sleep(0.05)
+            with lock:
+                running.remove(self.job)
+            return super().finish()
+
+    def made():
+        for j in range(8):
+            time.sleep(0.01)
+            yield j, Slow(j, log)
+
+    got = list(executors.finish_overlapped(made(), depth=3))
+    assert got == [(j, j * j) for j in range(8)]
+    assert most[0] == 3  # the finishes overlapped one another, never more than three
+    assert not any(t.name == "augsplit-finish" for t in threading.enumerate())
+
+
+class Source:
+    """A source of pending pairs that records how it was stopped."""
+
+    def __init__(self, log, n=8):
+        self.log, self.it = log, iter(range(n))
+
+    def __iter__(self):
+        return self
+
+    def __next__(self):
+        j = next(self.it)
+        self.log.append(("task", j))
+        return j, Pending(j, self.log, fail=2)
+
+    def throw(self, exc):
+        self.log.append(("thrown", type(exc).__name__))
+        raise exc
+
+    def close(self):
+        self.log.append(("closed",))
+
+
+def test_finish_overlapped_tells_its_source_of_a_failure_and_closes_it_otherwise():
+    """A failed finish: the pending not yet finishing is abandoned, the finishes under way end,
+    and the source is told (a pool then lets its running jobs end and lets their results go);
+    a caller that stops (a Ctrl-C) closes the source (a pool stops at once)."""
+    log = []
+    with pytest.raises(ValueError, match="job 2 failed"):
+        list(executors.finish_overlapped(Source(log), depth=2))
+    assert ("thrown", "_Stopped") in log and ("closed",) not in log
+    assert ("abandon", 4) in log and ("finished", 3) in log  # 3 was finishing: it landed
+    log = []
+    results = executors.finish_overlapped(Source(log), depth=2)
+    next(results)
+    results.close()
+    assert log[-1] == ("closed",) and not any(e[0] == "thrown" for e in log)
+
+
+class Held:
+    """A result that holds something until it is let go of."""
+
+    def __init__(self, job):
+        self.job = job
+
+
+def slow_or_failing(job, folder: str):
+    if job == 1:
+        time.sleep(0.1)
+        raise ValueError("job 1 failed")
+    time.sleep(0.3)
+    return Held(job)
+
+
+def quick(job):
+    time.sleep(0.05)
+    return Held(job)
+
+
+def test_results_nobody_takes_are_let_go(tmp_path):
+    """A failed job: the jobs running beside it end, and their results, which nobody takes,
+    go to `lost`. The same when the caller throws a failure in (`finish_overlapped` does)."""
+    lost = []
+    with pytest.raises(ValueError, match="job 1 failed"):
+        list(executors.run_processes(partial(slow_or_failing, folder=str(tmp_path)), list(range(12)), workers=2,
+                                     lost=lambda r: lost.append(r.job)))
+    assert lost and set(lost) <= {0, 2, 3}  # only jobs in flight ran; each let go of once
+    assert len(lost) == len(set(lost))
+    lost = []
+    results = executors.run_processes(quick, list(range(12)), workers=2, lost=lambda r: lost.append(r.job))
+    taken = [next(results)[0]]
+    with pytest.raises(executors._Stopped):
+        results.throw(executors._Stopped())
+    assert lost and not set(lost) & set(taken) and len(lost) == len(set(lost))
+    assert max(lost) < len(taken) + 2 * 2  # results of the jobs in flight, none started after
+
+
 def test_a_dead_worker_loses_and_duplicates_nothing(tmp_path):
     import functools
 
