@@ -142,11 +142,6 @@ class _ImageFiles:
         self.written.append(path)
 
 
-def make_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> int:
-    """Render, store and commit one shard. Returns the number of images."""
-    return write_shard(built, job, out, opts).finish()
-
-
 @dataclass
 class WrittenShard:
     """A shard whose image files and parts are written, the parts whole under temporary names,
@@ -376,20 +371,19 @@ def _worker_state(spec_json: str, base_dir: str, out: str, opts_json: str) -> tu
     return build(parse_spec(json.loads(spec_json)), Path(base_dir)), Path(out), Options(**opts)
 
 
-def _shard_task(state_key: tuple, job: ShardJob) -> int:
-    """The task a dask worker runs: the driver's built spec (a forked worker inherits it;
-    planning a large canvas takes seconds), or one built once per fresh process; one shard,
-    committed there (a dask worker may be another machine, whose writes only its own sync
-    makes durable)."""
-    built, out, opts = executors.shared(state_key, lambda: _worker_state(*state_key[1:]))
-    return make_shard(built, job, out, opts)
-
-
 def _written_task(state_key: tuple, job: ShardJob) -> WrittenShard:
-    """The task a local pool worker runs: one shard, written but left for the driver to commit
-    (the same kernel, so the driver's sync makes the worker's writes durable)."""
+    """The task a local pool worker runs, with the driver's built spec (a forked worker
+    inherits it; planning a large canvas takes seconds) or one built once per fresh process:
+    one shard, written but left for the driver to commit (the same kernel, so the driver's
+    sync makes the worker's writes durable)."""
     built, out, opts = executors.shared(state_key, lambda: _worker_state(*state_key[1:]))
     return write_shard(built, job, out, opts)
+
+
+def _shard_task(state_key: tuple, job: ShardJob) -> int:
+    """The task a dask worker runs: one shard, committed there (a dask worker may be another
+    machine, whose writes only its own sync makes durable)."""
+    return _written_task(state_key, job).finish()
 
 
 # ---- the output folder ----------------------------------------------------------------------
@@ -533,20 +527,19 @@ def _check_worker_versions(client, scheduler: str) -> None:
 def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, bar) -> None:
     with ExitStack() as stack:
         stack.callback(bar.close)
-        key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
-               json.dumps(asdict(opts)))
         if client is None and (opts.executor == "serial" or (opts.executor == "auto" and (opts.workers <= 1 or len(todo) <= 1))):
             # each shard's commit (a wait on the disk) overlaps the rendering of the next
             results = executors.run_serial_overlapped(lambda job: write_shard(built, job, out, opts), todo)
-        elif client is None:
-            # the workers render and write; the driver commits, overlapped with their next shards
-            stack.enter_context(executors.sharing(key, (built, out.resolve(), opts)))
-            results = executors.finish_overlapped(
-                executors.run_processes(functools.partial(_written_task, key), todo, opts.workers,
-                                        lost=WrittenShard.abandon), depth=opts.workers)
         else:
+            key = ("generate", built.plan.settings.canonical, str(built.base_dir), str(out.resolve()),
+                   json.dumps(asdict(opts)))
             stack.enter_context(executors.sharing(key, (built, out.resolve(), opts)))
-            results = executors.run(functools.partial(_shard_task, key), todo, opts.workers, client=client)
+            if client is None:  # the workers render and write; the driver commits while they go on
+                results = executors.finish_overlapped(
+                    executors.run_processes(functools.partial(_written_task, key), todo, opts.workers,
+                                            lost=WrittenShard.abandon), depth=opts.workers)
+            else:
+                results = executors.run(functools.partial(_shard_task, key), todo, opts.workers, client=client)
         with closing(results):
             for job, count in results:
                 # the driver counts a shard only once its committed part is there; its footer

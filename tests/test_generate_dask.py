@@ -59,9 +59,9 @@ def _install_killer(marker: str, victim: tuple) -> None:
     half-written temporary image behind and is killed, as a node lost mid-shard would be."""
     import augsplit.generate as g
 
-    original = g.make_shard
+    original = g.write_shard
 
-    def make_shard(built, job, out, opts):
+    def write_shard(built, job, out, opts):
         if (job.split, job.shard) == victim and not os.path.exists(marker):
             open(marker, "w").close()
             img_dir = Path(out) / lay.IMAGES_DIR / job.split
@@ -70,7 +70,7 @@ def _install_killer(marker: str, victim: tuple) -> None:
             os.kill(os.getpid(), signal.SIGKILL)
         return original(built, job, out, opts)
 
-    g.make_shard = make_shard
+    g.write_shard = write_shard
 
 
 def test_a_worker_killed_mid_shard_loses_and_duplicates_nothing(spec_file, serial, cluster, tmp_path):

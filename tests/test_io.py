@@ -115,6 +115,29 @@ def test_generation_commits_durably(tmp_path, events):
         assert_durable_before_part(events, f, own[f.resolve()])
 
 
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_shards_part_commits_after_its_archive_and_distractor_part_are_in_place(tmp_path, events, workers):
+    """A shard's manifest part is its commit, so its tar and its distractor part are renamed
+    into place and their folders fsynced before it is renamed: serially, and when the driver
+    commits what pool workers wrote (a crash can never leave a committed shard without them)."""
+    out = tmp_path / "ds"
+    distractors = {"alpha_threshold": 0.5, "distractors": {"count": [1, 2]}}
+    generate(None, out, Options(progress=False, store="tar", shard_size=3, workers=workers),
+             built=open_mapping(spec_dict(render=distractors)))
+    parts = sorted((out / mf.MANIFEST_DIR).rglob("part-*.parquet"))
+    assert len(parts) > 2
+    for part in parts:
+        split = part.parent
+        rest = [out / mf.SHARDS_DIR / split.name / part.with_suffix(".tar").name,
+                out / mf.DISTRACTOR_DIR / split.name / part.name]
+        commit = next(k for k, e in enumerate(events) if e[0] == "replace" and e[2] == str(part.resolve()))
+        for f in rest:
+            assert f.is_file(), f
+            moved = next(k for k, e in enumerate(events) if e[0] == "replace" and e[2] == str(f.resolve()))
+            assert moved < commit, f"{part} committed before {f.name} was in place"
+            assert ("fsync", str(f.parent.resolve())) in events[moved + 1:commit], f"{f.parent} not synced in time"
+
+
 def test_a_shard_of_files_is_synced_once_not_per_batch(tmp_path, events):
     """Measured before: one syncfs per batch of 16 image files (32 per shard of 500); now one
     per shard, still before the shard's part commits."""
