@@ -406,6 +406,10 @@ def check_options(opts: Options) -> None:
         raise DatasetError(f"unknown store '{opts.store}'; use one of {', '.join(STORES)}")
     if opts.format not in FORMATS:
         raise DatasetError(f"unknown image format '{opts.format}'; use one of {', '.join(FORMATS)}")
+    if opts.store == "none" and opts.format != "png":
+        raise DatasetError(f"--store none keeps no image bytes: its images are re-made losslessly when read (and "
+                           f"exported as PNG), so {opts.format} would decide nothing; for {opts.format} images use "
+                           "--store files, parquet or tar", where="--format")
     executors.check_options(opts.workers, opts.executor)
     if opts.shard_size < 1:
         raise DatasetError(f"shard size must be at least 1, got {opts.shard_size}", where="--shard-size")

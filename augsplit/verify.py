@@ -37,6 +37,7 @@ from .dataset import tarstore
 from .dataset.images import FORMATS, PNG_SIGNATURE, ImageError, decode, max_bytes, rerender, row_where, stored_bytes
 from .dataset.rows import iter_batches
 from .errors import AugsplitError, DatasetError
+from .plan.draw import draw
 from .plan.settings import settings_of
 from .manifest import pixel_sha256
 from .threads import limit_opencv
@@ -120,6 +121,7 @@ class PartResult:
     classes: Counter = field(default_factory=Counter)
     suffixes: set = field(default_factory=set)  # the image-file suffixes its rows name
     bad_key: Found = field(default_factory=Found)
+    bad_params: Found = field(default_factory=Found)  # rows whose parameters are not the spec's draw
     bad_id: Found = field(default_factory=Found)
     broken: Found = field(default_factory=Found)
     bad_bytes: Found = field(default_factory=Found)
@@ -127,7 +129,7 @@ class PartResult:
     bad_render: Found = field(default_factory=Found)
     archive: Found = field(default_factory=Found)
 
-    FOUND = ("bad_key", "bad_id", "broken", "bad_bytes", "bad_pixels", "bad_render", "archive")
+    FOUND = ("bad_key", "bad_params", "bad_id", "broken", "bad_bytes", "bad_pixels", "bad_render", "archive")
 
     def merge(self, other: "PartResult") -> None:
         self.rows += other.rows
@@ -241,6 +243,7 @@ def check_part(folder, job: PartJob) -> PartResult:
                  | (batch.column("seed").to_numpy(zero_copy_only=False) != spec_seed))
         for j in np.flatnonzero(keyed):
             res.bad_key.add(ids[j])
+        _check_params(folder.plan.split(job.split), folder.plan, batch, ids, res)
         # whole rows only where a check needs every column (a tar member's JSON, a re-render):
         # converting all 40-odd columns of every row costs more than the checks
         whole = want is None or any(batch.column("tar_file").to_pylist())
@@ -256,6 +259,39 @@ def check_part(folder, job: PartJob) -> PartResult:
 
 
 FLOAT_COLUMNS = tuple(c.name for c in mf.IMAGE_COLUMNS if pa.types.is_floating(c.type))
+
+
+def _check_params(split, plan, batch, ids: list[str], res: PartResult) -> None:
+    """Every column the spec draws for an image (class, instance, cell, each axis value in the
+    spec's units and as rendered) must be what it draws for the row's index: a row edited
+    after generation (an axis value moved, say) is named even where its image, re-rendered
+    from the rendered values alone, still matches. Rows whose index is not the split's are
+    named by the identity check instead."""
+    index = batch.column("index").to_numpy(zero_copy_only=False)
+    ok = np.flatnonzero((index >= 0) & (index < split.total))
+    if not len(ok):
+        return
+    drawn = draw(plan, split, index[ok])
+    wrong = np.zeros(len(ok), dtype=bool)
+    columns: dict[int, list[str]] = {}
+    for name, want in drawn.items():
+        if name not in batch.schema.names:
+            wrong[:] = True  # a column the spec draws is missing from the part
+            for k in range(len(ok)):
+                columns.setdefault(k, []).append(name)
+            continue
+        got = batch.column(name).to_numpy(zero_copy_only=False)[ok]
+        if want.dtype.kind == "f":
+            got = np.asarray(got, dtype=float)
+            same = (got == want) | (np.isnan(got) & np.isnan(want))
+        else:
+            same = np.asarray(got == want.astype(got.dtype) if want.dtype.kind in "biu" else
+                              [a == b for a, b in zip(got, want)], dtype=bool)
+        for k in np.flatnonzero(~same):
+            columns.setdefault(int(k), []).append(name)
+        wrong |= ~same
+    for k in np.flatnonzero(wrong):
+        res.bad_params.add(f"{ids[ok[k]]} ({', '.join(columns[int(k)])})")
 
 
 def _numeric_nulls_as_nan(row: dict) -> dict:
@@ -302,7 +338,7 @@ def _check_render(folder, row, res: PartResult) -> None:
     where = row_where(row)
     try:
         same = pixel_sha256(rerender(folder, row).image) == row["sha256"]
-    except (AugsplitError, ValueError, KeyError, TypeError) as exc:  # a row too damaged to render
+    except (AugsplitError, ValueError, KeyError, TypeError, IndexError) as exc:  # a row too damaged to render
         res.bad_render.add(f"{where} ({type(exc).__name__})")
         return
     if not same:
@@ -381,6 +417,9 @@ def _report(folder, plan, by_split: dict, present: dict, rep: Report, sample) ->
         if got.bad_key.n:
             rep.add(f"split {s.name}: {got.bad_key.n} rows whose seed key (seed, split_index) is not the plan's, "
                     f"e.g. {got.bad_key.examples[0]}")
+        if got.bad_params.n:
+            rep.add(f"split {s.name}: {got.bad_params.n} rows whose parameters are not what the spec draws for "
+                    f"their index, e.g. {'; '.join(got.bad_params.examples[:3])}")
     if whole.bad_id.n:
         rep.add(f"{whole.bad_id.n} image ids that are not their split and index within their shard, or repeat, "
                 f"e.g. {', '.join(whole.bad_id.examples[:3])}")

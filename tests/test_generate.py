@@ -131,7 +131,8 @@ def test_resume_with_a_changed_shard_size_cannot_duplicate_rows(spec_file, tmp_p
 
 @pytest.mark.parametrize("opts,where", [(Options(store="tape"), "store"), (Options(format="gif"), "format"),
                                         (Options(executor="slurm"), "executor"), (Options(shard_size=0), "--shard-size"),
-                                        (Options(workers=0), "--workers")])
+                                        (Options(workers=0), "--workers"),
+                                        (Options(store="none", format="jpeg"), "--format")])
 def test_bad_options_are_one_line_errors_before_any_work(spec_file, tmp_path, opts, where):
     with pytest.raises(DatasetError, match=where) as err:
         generate(spec_file, tmp_path / "never", opts)

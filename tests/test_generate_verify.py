@@ -106,6 +106,26 @@ def test_an_edited_parameter_fails_the_re_render(copy):
     assert "test-0000001" in problems(copy) and "re-render" in problems(copy)
 
 
+@pytest.mark.parametrize("store", ["files", "none"])
+@pytest.mark.parametrize("column,value", [("y", 16.0), ("hue", 0.0), ("class_name", "P3-99"), ("instance", 3)])
+def test_a_row_edited_where_the_render_does_not_look_is_named(made, tmp_path, store, column, value):
+    """An axis value in the spec's units (or the class, or the instance) changed after
+    generation: the image still re-renders from the rendered values, but the row is no longer
+    what the spec draws for its index (measured before: verify passed such a row; audit then
+    found it in the other split's region)."""
+    dst = tmp_path / "ds"
+    shutil.copytree(made[store], dst)
+    part = lay.part_path(dst, lay.MANIFEST_DIR, "train", 1)
+    t = pq.read_table(part)
+    values = t.column(column).to_pylist()
+    values[2] = value
+    k = t.schema.get_field_index(column)
+    pq.write_table(t.set_column(k, t.schema.field(k), pa.array(values, t.schema.field(k).type)), part)
+    assert verify(made[store]).ok
+    assert f"split train: 1 rows whose parameters are not what the spec draws for their index, e.g. " \
+           f"train-0000007 ({column})" in problems(dst)
+
+
 def test_a_dataset_without_its_summary_is_incomplete(copy):
     (copy / lay.SUMMARY_FILE).unlink()
     with pytest.raises(DatasetError, match="incomplete.*--resume"):
