@@ -119,12 +119,16 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
     `unchanged[row]`: the stored pixels are the row's recorded render (content hash equal), so
     the row explains them with no pixel work; a pair of two such rows is a look-alike by
     design. Otherwise, with `cross` the residual between the two stored images (best shift
-    and gain), `own` the plain difference between a changed image and its own row's render
-    (the larger when both changed) and `design` the residual between the two rows' renders,
-    the pair is a leak when cross <= COPY_RATIO * own (the image sits at most half as far from
-    the other image as from its own render) and cross < design (the renders themselves are
-    not that close: a near-identical pair the design makes, stored lossily, stays a look-alike).
-    A row that cannot be re-rendered leaves its pair ambiguous."""
+    and gain), `own` the plain difference between the test image and its own row's render
+    and `design` the residual between the two rows' renders, the pair is a leak when
+    cross <= COPY_RATIO * own (the test image sits at most half as far from the training image
+    as from its own render) and cross < design (the renders themselves are not that close: a
+    near-identical pair the design makes, stored lossily, stays a look-alike). A test image
+    that is its own render is explained by its row, whatever became of the training image
+    (own 0: never a leak). A training image that is not its render is verify's finding:
+    taking its distance instead once named an untouched test image a copy of a training image
+    overwritten with another training image's pixels. A row that cannot be re-rendered leaves
+    its pair ambiguous."""
     t_rows = np.asarray(test_rows, np.int64); r_rows = np.asarray(train_rows, np.int64)
     n = len(t_rows)
     own = np.zeros(n); design = np.full(n, np.nan); cross = np.full(n, np.nan)
@@ -138,7 +142,7 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
             if refs[t] is None or refs[r] is None:
                 own[k] = np.nan
                 continue
-            own[k] = max(residual(imgs[v], refs[v], max_shift=0, gain=False) for v in (t, r) if not unchanged[v])
+            own[k] = 0.0 if unchanged[t] else residual(imgs[t], refs[t], max_shift=0, gain=False)
             design[k] = residual(refs[r], refs[t])
             cross[k] = residual(imgs[r], imgs[t])
     unknown = np.isnan(own)
