@@ -211,3 +211,40 @@ def test_a_resume_never_writes_through_a_link_out_of_the_folder(spec_file, tmp_p
     err = capsys.readouterr().err
     assert_refused(code, err, "symbolic link", str(out / "images" / "train"))
     assert snapshot(elsewhere) == kept
+
+
+# hidden files of a user's that look a little like an atomic write's temporary (measured before:
+# every one of them was taken for augsplit's own leftover: --resume deleted them without a
+# word, and --overwrite removed them with the dataset)
+LOOKALIKES = [".env.tmpl", ".tmpnotes", "images/train/.backup.tmp", "manifest/split=train/.notes.tmp-12",
+              ".draft.txt.tmp-7-abc123"]
+
+
+def _plant(root: Path) -> None:
+    for rel in LOOKALIKES:
+        (root / rel).write_text("the user's own")
+
+
+def test_a_resume_keeps_a_users_hidden_files_and_still_sweeps_its_own(spec_file, serial, tmp_path, capsys):
+    copy = tmp_path / "copy"
+    shutil.copytree(serial, copy)
+    (copy / "dataset.json").unlink()
+    _plant(copy)
+    own = [copy / "images/train/.train-0000003.png.tmp-999-a1b2c3", copy / "manifest/split=train/.part-000001.parquet.tmp-9",
+           copy / ".spec.json.tmp-5-ffffff"]
+    for f in own:
+        f.write_bytes(b"half written")
+    code = main(["generate", str(spec_file), "--out", str(copy), "--resume", "--shard-size", "5", "--quiet"])
+    assert code == 0, capsys.readouterr().err
+    assert all((copy / rel).read_text() == "the user's own" for rel in LOOKALIKES)
+    assert not any(f.exists() for f in own)
+
+
+@pytest.mark.parametrize("rel", LOOKALIKES)
+def test_overwrite_refuses_a_folder_holding_a_users_hidden_file(spec_file, serial, tmp_path, capsys, rel):
+    copy = tmp_path / "copy"
+    shutil.copytree(serial, copy)
+    (copy / rel).write_text("the user's own")
+    before = snapshot(copy)
+    assert_refused(*overwrite(spec_file, copy, capsys), rel.rsplit("/", 1)[-1])
+    assert snapshot(copy) == before

@@ -93,17 +93,22 @@ def check_same_run(old: dict, spec_hash: str, layout: dict, out: Path) -> None:
 
 
 def remove_temporaries(out: Path) -> None:
-    """Sweep temporaries of atomic writes a killed run left in augsplit's own folders."""
-    for entry in lay.TABLES + (lay.IMAGES_DIR, lay.SHARDS_DIR):
+    """Sweep temporaries of atomic writes a killed run left in augsplit's own folders: only
+    those of a name augsplit writes there (a part, a shard archive, an image, spec.json or
+    dataset.json), never a user's hidden file that merely looks like one."""
+    for entry, final in ((lay.MANIFEST_DIR, lay.PART_RE), (lay.DISTRACTOR_DIR, lay.PART_RE),
+                         (lay.SHARDS_DIR, lay.TAR_RE), (lay.IMAGES_DIR, lay.IMAGE_RE)):
         base = out / entry
         if base.is_dir() and not base.is_symlink():
             for sub in base.iterdir():
                 if sub.is_dir() and not sub.is_symlink():
-                    for f in sub.iterdir():
-                        if lay.is_temporary(f.name) and f.is_file() and not f.is_symlink():
-                            f.unlink(missing_ok=True)
-    for f in out.iterdir():
-        if lay.is_temporary(f.name) and f.is_file() and not f.is_symlink():
+                    _sweep(sub, lambda name: final.fullmatch(name) is not None)
+    _sweep(out, lambda name: name in (lay.SPEC_FILE, lay.SUMMARY_FILE))
+
+
+def _sweep(folder: Path, ours) -> None:
+    for f in folder.iterdir():
+        if lay.is_temporary(f.name) and ours(lay.final_name(f.name)) and f.is_file() and not f.is_symlink():
             f.unlink(missing_ok=True)
 
 

@@ -27,9 +27,21 @@ IMAGE_RE = re.compile(r"(?P<split>.+)-\d{7,}\.(png|jpg|webp)")
 REPORT_SUFFIXES = (".json", ".html", ".csv", ".png")  # what audit, score and preview write
 
 
+# the temporary name of an atomic write (io.temporary_name): .<final name>.tmp-<pid>-<hex>
+TEMPORARY_RE = re.compile(r"\.(?P<final>.+)\.tmp-\d+(?:-[0-9a-f]+)?")
+
+
+def final_name(name: str) -> str:
+    """The name a temporary of an atomic write stands for; any other name, itself."""
+    m = TEMPORARY_RE.fullmatch(name)
+    return m.group("final") if m else name
+
+
 def is_temporary(name: str) -> bool:
-    """A temporary file of an atomic write (a hidden name with a `.tmp` tag), ours to sweep."""
-    return name.startswith(".") and ".tmp" in name
+    """Whether `name` has the shape of an atomic write's temporary. Whether it is ours to sweep
+    depends as well on its final name being one augsplit writes where it lies: a user's hidden
+    `.env.tmpl` or `.notes.tmp` has neither."""
+    return TEMPORARY_RE.fullmatch(name) is not None
 
 
 def component(name: str, what: str = "name") -> str:

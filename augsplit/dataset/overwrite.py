@@ -43,7 +43,7 @@ def _table_strangers(d: Path, pattern=lay.PART_RE) -> list[Path]:
             out.append(sub)
             continue
         out += [f for f in sorted(sub.iterdir())
-                if not ((pattern.fullmatch(f.name) or lay.is_temporary(f.name)) and _is_file(f))]
+                if not (pattern.fullmatch(lay.final_name(f.name)) and _is_file(f))]
     return out
 
 
@@ -54,15 +54,15 @@ def _image_strangers(d: Path) -> list[Path]:
             out.append(sub)
             continue
         for f in sorted(sub.iterdir()):
-            m = lay.IMAGE_RE.fullmatch(f.name)
-            if not (((m and m.group("split") == sub.name) or lay.is_temporary(f.name)) and _is_file(f)):
+            m = lay.IMAGE_RE.fullmatch(lay.final_name(f.name))  # an image, or the temporary of one
+            if not (m and m.group("split") == sub.name and _is_file(f)):
                 out.append(f)
     return out
 
 
 def _report_strangers(d: Path) -> list[Path]:
     return [f for f in sorted(d.iterdir())
-            if not ((f.suffix in lay.REPORT_SUFFIXES or lay.is_temporary(f.name)) and _is_file(f))]
+            if not (Path(lay.final_name(f.name)).suffix in lay.REPORT_SUFFIXES and _is_file(f))]
 
 
 def classify(out: Path) -> tuple[list[Path], list[Path]]:
@@ -72,7 +72,7 @@ def classify(out: Path) -> tuple[list[Path], list[Path]]:
         name = entry.name
         if entry.is_symlink():
             strangers.append(entry)
-        elif name in (lay.SPEC_FILE, lay.SUMMARY_FILE) or lay.is_temporary(name):
+        elif lay.final_name(name) in (lay.SPEC_FILE, lay.SUMMARY_FILE):  # or the temporary of one
             (ours if _is_file(entry) else strangers).append(entry)
         elif name in lay.TABLES and _is_dir(entry):
             ours.append(entry)

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..dataset.layout import is_temporary
+from ..dataset.layout import final_name
 from ..errors import AugsplitError, DatasetError
 from ..io import check_folder_target, ensure_folder, write_text_atomic
 
@@ -183,7 +183,8 @@ def _ours(out: Path, doc: dict | None) -> set[str]:
         pattern = layout_re(doc["format"], [str(s) for s in doc.get("splits") or []])
         for p in out.rglob("*"):
             rel = p.relative_to(out).as_posix()
-            if p.is_file() and not p.is_symlink() and (pattern.fullmatch(rel) or is_temporary(p.name)):
+            final = (p.parent / final_name(p.name)).relative_to(out).as_posix()  # a file, or its temporary
+            if p.is_file() and not p.is_symlink() and pattern.fullmatch(final):
                 files.add(rel)
     return files
 
