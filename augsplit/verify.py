@@ -339,7 +339,7 @@ def _check_render(folder, row, res: PartResult) -> None:
     try:
         same = pixel_sha256(rerender(folder, row).image) == row["sha256"]
     except (AugsplitError, ValueError, KeyError, TypeError, IndexError) as exc:  # a row too damaged to render
-        res.bad_render.add(f"{where} ({type(exc).__name__})")
+        res.bad_render.add(f"{where} ({exc.message if isinstance(exc, AugsplitError) else type(exc).__name__})")
         return
     if not same:
         res.bad_render.add(where)

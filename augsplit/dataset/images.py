@@ -251,5 +251,11 @@ def rerender(folder, row):
     from ..space.streams import RENDER, lazy_image_rng
 
     built = folder.built
-    rng = lazy_image_rng(int(row["seed"]), int(row["split_index"]), int(row["index"]), RENDER)
-    return make_scene(built.plan, built.source, built.background, built.plan.split(row["split"]), row, rng=rng)
+    try:
+        rng = lazy_image_rng(int(row["seed"]), int(row["split_index"]), int(row["index"]), RENDER)
+        return make_scene(built.plan, built.source, built.background, built.plan.split(row["split"]), row, rng=rng)
+    except (IndexError, KeyError, TypeError, ValueError, OverflowError) as exc:
+        # a row edited or damaged after generation: a class or instance the spec has not, a
+        # scale that is not positive, a value that is not a number
+        reason = " ".join(str(exc).split()) or type(exc).__name__
+        raise ImageError(f"the row cannot be re-rendered: {reason}", where=row_where(row)) from None

@@ -136,6 +136,8 @@ def read_member(folder, row) -> bytes:
         raise ImageError(f"the row's tar_offset {offset!r} is not a header position", where=where)
     limit = max_bytes(folder.hw, folder.channels)
     with _open_in_box(folder, rel, where) as f:
+        if offset + BLOCK > os.fstat(f.fileno()).st_size:  # beyond it a seek can fail (EINVAL) or read nothing
+            raise ImageError(f"the row's tar_offset {offset} lies past the end of {rel}", where=where)
         f.seek(offset)
         head = f.read(BLOCK)
         try:
