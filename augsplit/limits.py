@@ -14,6 +14,10 @@ MAX_YAML_NODES = 100_000  # YAML nodes after alias expansion (an "alias bomb" ex
 # ---- numbers ---------------------------------------------------------------------------
 MAX_SEED = 2**63 - 1  # the manifest stores the seed as int64
 INT64_RANGE = (-(2**63), 2**63 - 1)  # any integer in a spec (they all end up in numpy/Arrow columns)
+# an axis value (range end or level), in the axis's unit: far beyond any canvas position in px,
+# any angle or hue in degrees; bounded so region masses and positions stay finite (common
+# practice, no source: a range of [-1e308, 1e308] overflowed to an infinite width)
+MAX_AXIS_VALUE = 1e9
 
 # ---- images and canvases -------------------------------------------------------------------
 MAX_CANVAS_SIDE = 16384  # px, width or height

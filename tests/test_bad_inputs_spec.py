@@ -178,6 +178,14 @@ CASES = [
          ("axes.scale.levels.0", "not a finite number"), line_has=".nan"),
     Case("range-inf", spec(axes={"x": {"range": [0, float("inf")]}}), ("axes.x.range.1", "not a finite"),
          args=PLAN, line_has=".inf"),
+    # a range of finite ends whose width overflowed (measured before: plan ZeroDivisionError or
+    # TypeError tracebacks, generate ValueError "render parameters must be finite")
+    Case("range-overflows", spec(axes={"x": {"range": [-1e308, 1e308]}}),
+         ("axes.x.range", "beyond the largest axis value", "MAX_AXIS_VALUE")),
+    Case("range-overflows-plan", spec(axes={"x": {"range": [-1e308, 1e308]}}), ("axes.x.range", "MAX_AXIS_VALUE"),
+         args=PLAN),
+    Case("levels-huge", spec(axes={"x": {"range": [0, 64]}, "hue": {"levels": [0, 1e300]}}),
+         ("axes.hue.levels", "MAX_AXIS_VALUE"), args=PLAN),
     Case("region-nan", spec(split("t2", region={"x": [0, float("nan")]})), ("splits.t2.region.x.1", "finite"),
          args=PLAN, line_has=".nan"),
     Case("viewing-inf", spec(viewing={"distance_cm": float("inf"), "px_per_cm": 38}), ("viewing.distance_cm",),

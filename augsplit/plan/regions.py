@@ -18,7 +18,7 @@ import math
 from typing import Any, Callable
 
 from ..errors import SpecError
-from ..limits import MAX_REGION_BOXES
+from ..limits import MAX_AXIS_VALUE, MAX_REGION_BOXES
 from ..space import builders as rb
 from ..space.axes import BUILTIN, CIRCULAR, CLASS, LEVELS, LINEAR, LOG, Axis, Space
 from ..space.builders import OTHER_CLASS
@@ -79,6 +79,7 @@ def _levels_axis(name: str, levels, unit: str, where: str) -> Axis:
     lv = sorted(set(float(v) for v in levels))
     if not lv:
         raise SpecError("levels must not be empty", where=f"{where}.levels")
+    _check_magnitude(lv, f"{where}.levels")
     if name == "mirror" and not set(lv) <= {0.0, 1.0}:
         raise SpecError("mirror levels are 0 and/or 1", where=f"{where}.levels")
     if name == "scale" and lv[0] <= 0:
@@ -90,6 +91,7 @@ def _checked_range(name: str, rng, unit: str, where: str) -> tuple[float, float]
     lo, hi = float(rng[0]), float(rng[1])
     if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
         raise SpecError(f"range [{lo:g}, {hi:g}] is empty", where=f"{where}.range")
+    _check_magnitude([lo, hi], f"{where}.range")
     if name == "scale" and lo <= 0:
         raise SpecError(f"scale must be positive, got range [{lo:g}, {hi:g}]", where=f"{where}.range")
     if name in ("saturation", "brightness", "eccentricity") and lo < 0:
@@ -97,6 +99,13 @@ def _checked_range(name: str, rng, unit: str, where: str) -> tuple[float, float]
     if unit == "deg" and name in _ANGLE_AXES and max(abs(lo), abs(hi)) >= 90:
         raise SpecError("visual angles must lie within (-90, 90) degrees", where=f"{where}.range")
     return lo, hi
+
+
+def _check_magnitude(values, where: str) -> None:
+    big = [v for v in values if not abs(v) <= MAX_AXIS_VALUE]
+    if big:
+        raise SpecError(f"{big[0]:g} is beyond the largest axis value, {MAX_AXIS_VALUE:g} in magnitude "
+                        "(limits.MAX_AXIS_VALUE)", where=where)
 
 
 def _default_unit(kind) -> str:
