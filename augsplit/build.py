@@ -29,6 +29,12 @@ class Built:
     background: object
     plan: Plan
 
+    @property
+    def input_folders(self) -> list[Path]:
+        """The folders the spec reads images from: its sprite folder and background folder."""
+        return [Path(p) for p in (getattr(self.source, "path", None), getattr(self.background, "path", None))
+                if p is not None]
+
 
 def _colour(c):
     return (int(c * 255),) * 3 if isinstance(c, float) else tuple(int(v) for v in c)

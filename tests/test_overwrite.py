@@ -248,3 +248,29 @@ def test_overwrite_refuses_a_folder_holding_a_users_hidden_file(spec_file, seria
     before = snapshot(copy)
     assert_refused(*overwrite(spec_file, copy, capsys), rel.rsplit("/", 1)[-1])
     assert snapshot(copy) == before
+
+
+@pytest.mark.parametrize("where", ["sprites/out", "sprites/bolt/out", "sprites", "backgrounds/out"])
+def test_an_output_inside_a_folder_the_spec_reads_is_refused(tmp_path, capsys, where):
+    """Measured before: --out inside the spec's sprite folder was accepted; the dataset then
+    sat among the sprites, and every later command refused the spec ('not an image file',
+    'class folders hold image files, not subfolders')."""
+    import cv2
+    import numpy as np
+    import yaml
+
+    for name in ("bolt", "nut"):
+        (tmp_path / "sprites" / name).mkdir(parents=True)
+        rgba = np.zeros((7, 7, 4), np.uint8)
+        rgba[1:6, 2:5] = (200, 40, 40, 255)
+        cv2.imwrite(str(tmp_path / "sprites" / name / "a.png"), rgba)
+    (tmp_path / "backgrounds").mkdir()
+    cv2.imwrite(str(tmp_path / "backgrounds" / "grey.png"), np.full((40, 40, 3), 128, np.uint8))
+    spec = {**SPEC, "objects": {"kind": "folder", "path": "sprites"},
+            "background": {"kind": "folder", "path": "backgrounds"}}
+    (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec, sort_keys=False))
+    before = snapshot(tmp_path)
+    code = main(["generate", str(tmp_path / "spec.yaml"), "--out", str(tmp_path / where), "--quiet"])
+    assert_refused(code, capsys.readouterr().err, "a folder the spec reads images from")
+    assert snapshot(tmp_path) == before
+    assert main(["generate", str(tmp_path / "spec.yaml"), "--out", str(tmp_path / "ds"), "--quiet"]) == 0

@@ -25,6 +25,10 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
         lay.component(s.name, f"split {s.name!r}")
     if out.exists() and not out.is_dir():
         raise DatasetError("the output path is a file, not a folder", where=str(out))
+    for folder in built.input_folders:  # a dataset there would join the images the spec reads
+        if overwrite.inside(out, folder):
+            raise DatasetError(f"lies inside {folder}, a folder the spec reads images from; choose another --out",
+                               where=str(out))
     if array_shard is not None and overwrite_old:
         raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
                            "others' work; remove the folder once, then submit the array", where=str(out))

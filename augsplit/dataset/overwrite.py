@@ -94,7 +94,7 @@ def classify(out: Path) -> tuple[list[Path], list[Path]]:
     return ours, strangers
 
 
-def _inside(path: Path, folder: Path) -> bool:
+def inside(path: Path, folder: Path) -> bool:
     path, folder = os.path.realpath(path), os.path.realpath(folder)
     return os.path.commonpath([path, folder]) == folder
 
@@ -107,7 +107,7 @@ def clear(out: str | Path, spec_path: str | Path | None = None) -> None:
         return
     if not out.is_dir():
         raise DatasetError("--overwrite needs a folder, not a file", where=where)
-    if spec_path is not None and _inside(spec_path, out):
+    if spec_path is not None and inside(spec_path, out):
         raise DatasetError(f"the spec {spec_path} lies inside the output folder, which --overwrite would empty; "
                            "move the spec out or choose another --out", where=where)
     try:
@@ -121,7 +121,7 @@ def clear(out: str | Path, spec_path: str | Path | None = None) -> None:
                            "move them away or choose another --out", where=where)
     cwd = Path.cwd()
     for entry in ours:
-        if _inside(cwd, entry):
+        if inside(cwd, entry):
             raise DatasetError(f"the working directory lies inside {entry.name}/, which --overwrite would remove; "
                                "run from elsewhere", where=where)
     if not ours:
