@@ -325,3 +325,42 @@ def test_a_moved_dataset_exports_its_stored_images_without_the_sprite_folder(tmp
     assert (tmp_path / "yolo" / "data.yaml").read_text().endswith('names:\n  0: "bolt"\n  1: "nut"\n')
     assert run_export(ds, tmp_path / "coco", "coco") == 2  # masks are re-rendered: the sprites are named
     assert "sprites" in capsys.readouterr().err and not (tmp_path / "coco").exists()
+
+
+def _damage(root: Path, store: str) -> str:
+    """Change the stored bytes of one row in place, its recorded checksum kept; its image id."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    part = root / "manifest" / "split=train" / "part-000000.parquet"
+    t = pq.read_table(part)
+    row = t.slice(2, 1).to_pylist()[0]
+    if store == "files":
+        p = root / row["file"]
+        p.write_bytes(p.read_bytes()[:60])  # truncated
+    elif store == "tar":
+        with open(root / row["tar_file"], "r+b") as f:  # one byte of the PNG member's pixels
+            f.seek(row["tar_offset"] + 512 + 60)
+            b = f.read(1)
+            f.seek(-1, os.SEEK_CUR)
+            f.write(bytes([b[0] ^ 0xFF]))
+    else:  # parquet: another row's image in its place
+        blobs = t.column("image_bytes").to_pylist()
+        blobs[2] = blobs[3]
+        k = t.schema.get_field_index("image_bytes")
+        pq.write_table(t.set_column(k, t.schema.field(k), pa.array(blobs, pa.binary())), part)
+    return row["image_id"]
+
+
+@pytest.mark.parametrize("store", ["files", "parquet", "tar"])
+@pytest.mark.parametrize("to", ["coco", "tar"])
+def test_a_stored_image_changed_since_it_was_written_is_not_exported(tmp_path, capsys, store, to):
+    """Measured before: a truncated image file (and any image whose bytes changed) was copied
+    into the export with exit 0, though verify, preview and the loader refuse it."""
+    root = tmp_path / "ds"
+    generate(write_spec(tmp_path, SPEC), root, Options(store=store, progress=False))
+    victim = _damage(root, store)
+    code = run_export(root, tmp_path / "out", to)
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "Traceback" not in err, err
+    assert f"image {victim}: the stored image does not match its checksum" in err
