@@ -426,9 +426,10 @@ def check_options(opts: Options) -> None:
     _check_png_level(opts.png_level, [opts.png_deflate] if opts.png_deflate else list(DEFLATES))
     if opts.array_shard is not None:
         k, n = opts.array_shard
-        if n < 1 or not 0 <= k < n:
-            raise DatasetError(f"shard {k}/{n}: K must lie in 0..{max(n - 1, 0)} and N be at least 1",
-                               where="--shard")
+        if n < 1:
+            raise DatasetError(f"shard {k}/{n}: N, the number of jobs, must be at least 1", where="--shard")
+        if not 0 <= k < n:
+            raise DatasetError(f"shard {k}/{n}: K must lie in 0..{n - 1}", where="--shard")
 
 
 def _check_png_level(level, names: list[str], why: str = "") -> None:

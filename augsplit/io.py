@@ -336,6 +336,8 @@ def check_folder_target(path: str | Path) -> Path:
     (not a symlink). Refuses `-` and anything else in one line. Creates nothing."""
     if is_stdout(path):
         raise DatasetError("this command writes several files: give a folder, not '-'", where=STDOUT)
+    if not str(path).strip():  # Path("") is the working directory
+        raise DatasetError("the output folder's name is empty", where="--out ''")
     p = Path(path)
     mode = _mode(p)
     if mode is None:

@@ -14,7 +14,8 @@ from .errors import AugsplitError, SpecError
 from .limits import MAX_NAME_LENGTH
 
 _SAFE = re.compile(r"[A-Za-z0-9_.\-]+")
-RULE = (f"letters, digits, '_', '-' and '.', not starting with '.', at most {MAX_NAME_LENGTH} characters")
+RULE = (f"ASCII letters (a-z, A-Z), digits, '_', '-' and '.', not starting with '.', at most {MAX_NAME_LENGTH} "
+        "characters")
 
 
 def name_problem(name) -> str | None:

@@ -182,6 +182,18 @@ CASES = [
     Case("generate-overwrite-user-files", ("generate", SP, "--out", f"{D}/project", "--overwrite"), ("src.py",),
          user_files_in_out),
     Case("generate-exists-without-resume", ("generate", SP, "--out", DATA), ("--resume",)),
+    # -- found by a new user's walk-through (each was misleading before) --
+    Case("generate-out-empty", ("generate", SP, "--out", ""), ("--out ''", "name is empty")),
+    Case("export-out-empty", ("export", DATA, "--to", "coco", "--out", ""), ("--out ''", "name is empty")),
+    Case("generate-shard-of-zero-jobs", ("generate", SP, "--out", f"{D}/sh", "--shard", "1/0"),
+         ("--shard", "N, the number of jobs, must be at least 1")),
+    Case("audit-dataset-without-spec-json", ("audit", DATA), ("not an augsplit dataset (no spec.json)",),
+         lambda r: (r / "data" / "spec.json").unlink()),
+    Case("plan-region-number-as-text", ("plan", f"{D}/text.yaml"), ("'5.6e1' is text to YAML, not a number",),
+         file_at("text.yaml", "seed: 1\ncanvas: {width: 64, height: 64, mode: gray}\n"
+                 "objects: {kind: polyomino, cells: 3, cell_px: 4}\naxes: {x: {range: [0, 64]}}\n"
+                 "splits:\n  train: {region: {x: [0, 20]}, per_class: 2}\n"
+                 "  test: {region: {x: [40, 5.6e1]}, per_class: 2}\n")),
     # -- the command line itself --
     Case("unknown-command", ("frobnicate",), ("frobnicate",)),
     Case("verify-without-dataset", ("verify",), ("dataset",)),

@@ -178,6 +178,8 @@ CASES = [
          ("axes.scale.levels.0", "not a finite number"), line_has=".nan"),
     Case("range-inf", spec(axes={"x": {"range": [0, float("inf")]}}), ("axes.x.range.1", "not a finite"),
          args=PLAN, line_has=".inf"),
+    # a letter outside ASCII (measured before: refused by a message saying names "may use letters")
+    Case("split-name-not-ascii", spec(split("tëst")), ("splits.tëst", "'ë'", "ASCII letters"), args=PLAN),
     # a range of finite ends whose width overflowed (measured before: plan ZeroDivisionError or
     # TypeError tracebacks, generate ValueError "render parameters must be finite")
     Case("range-overflows", spec(axes={"x": {"range": [-1e308, 1e308]}}),

@@ -217,17 +217,32 @@ def _intervals(axis: Axis, value: Any, where: str) -> list[tuple[float, float]]:
     elif isinstance(value, list) and value and all(isinstance(v, list) for v in value):
         pairs = value
     else:
-        raise SpecError("an interval is [low, high] (or a list of them)", where=where)
+        raise SpecError("an interval is [low, high] (or a list of them)" + _text_number(value), where=where)
     out = []
     for i, pair in enumerate(pairs):
         w = where if len(pairs) == 1 else f"{where}.{i}"
         if len(pair) != 2 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in pair):
-            raise SpecError("an interval is [low, high] with two numbers", where=w)
+            raise SpecError("an interval is [low, high] with two numbers" + _text_number(pair), where=w)
         try:
             out += axis.interval_to_t(float(pair[0]), float(pair[1]))
         except ValueError as exc:
             raise SpecError(str(exc), where=w) from None
     return out
+
+
+def _text_number(value) -> str:
+    """Why a value that looks like a number is not one: YAML 1.1 reads an exponent without a
+    '.' or a sign (5.6e1, 1e3) as text."""
+    items = value if isinstance(value, list) else [value]
+    for v in items:
+        if isinstance(v, str):
+            try:
+                float(v)
+            except ValueError:
+                continue
+            return (f"; {v!r} is text to YAML, not a number (write an exponent with a '.' and a sign, "
+                    f"as 5.6e+1, or the plain number)")
+    return ""
 
 
 def _class_indices(classes, value, where) -> list[int]:
