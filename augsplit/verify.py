@@ -159,6 +159,9 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
     rep = Report()
     if not folder.complete:
         rep.add("dataset.json is missing: generation did not finish (rerun generate --resume, or --finalize)")
+    else:
+        for problem in _summary_problems(folder.summary, plan):
+            rep.add(problem)
     parts = folder.parts_of(lay.MANIFEST_DIR)
     total = sum(p.rows for p in parts)
     if total == 0:
@@ -169,6 +172,23 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
     rep.checked = total
     _report(folder, plan, by_split, present, rep, sample)
     return rep
+
+
+def _summary_problems(summary: dict, plan) -> list[str]:
+    """What dataset.json says that the spec does not: the summary generate wrote last, which
+    other commands and people read for the folder's counts."""
+    want = {"complete": True, "images": sum(s.total for s in plan.splits), "classes": list(plan.classes)}
+    # (its spec_hash is open_dataset's check: a summary of another spec is refused there)
+    out = [f"dataset.json says {key} {summary.get(key)!r}; expected {value!r}"
+           for key, value in want.items() if summary.get(key) != value]
+    splits = summary.get("splits") if isinstance(summary.get("splits"), dict) else {}
+    for s in plan.splits:
+        got = splits.get(s.name, {}).get("images") if isinstance(splits.get(s.name), dict) else None
+        if got != s.total:
+            out.append(f"dataset.json says split {s.name} has {got!r} images; expected {s.total}")
+    out += [f"dataset.json names split {name!r}, which the spec has not" for name in splits
+            if name not in {s.name for s in plan.splits}]
+    return out
 
 
 def _sample(parts, total: int, sample, seed: int) -> list[tuple[int, ...]] | None:

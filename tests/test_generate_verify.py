@@ -126,6 +126,20 @@ def test_a_row_edited_where_the_render_does_not_look_is_named(made, tmp_path, st
            f"train-0000007 ({column})" in problems(dst)
 
 
+@pytest.mark.parametrize("key,value,says", [("images", 99, "dataset.json says images 99; expected 18"),
+                                             ("complete", False, "dataset.json says complete False; expected True"),
+                                             ("classes", ["a"], "dataset.json says classes ['a']")])
+def test_an_edited_summary_is_named(copy, key, value, says):
+    """dataset.json is what people and tools read for a folder's counts (measured before:
+    verify passed a summary claiming 99 images, or complete false)."""
+    import json
+
+    doc = json.loads((copy / lay.SUMMARY_FILE).read_text())
+    doc[key] = value
+    (copy / lay.SUMMARY_FILE).write_text(json.dumps(doc))
+    assert says in problems(copy)
+
+
 def test_a_dataset_without_its_summary_is_incomplete(copy):
     (copy / lay.SUMMARY_FILE).unlink()
     with pytest.raises(DatasetError, match="incomplete.*--resume"):
