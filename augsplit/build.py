@@ -30,10 +30,37 @@ class Built:
     plan: Plan
 
     @property
-    def input_folders(self) -> list[Path]:
-        """The folders the spec reads images from: its sprite folder and background folder."""
-        return [Path(p) for p in (getattr(self.source, "path", None), getattr(self.background, "path", None))
-                if p is not None]
+    def input_folders(self) -> dict[str, Path]:
+        """The folders the spec reads images from, by the spec key naming them: its sprite
+        folder ("objects") and its background folder ("background")."""
+        found = {"objects": getattr(self.source, "path", None), "background": getattr(self.background, "path", None)}
+        return {key: Path(p) for key, p in found.items() if p is not None}
+
+    def input_digests(self) -> dict[str, str]:
+        """A SHA-256 of each input folder's files, names and bytes (see `folder_digest`):
+        spec.json records them, so a resume or verify can tell when the files changed, which
+        the spec hash (of the spec's text) cannot."""
+        return {key: folder_digest(p) for key, p in self.input_folders.items()}
+
+
+def folder_digest(root: Path) -> str:
+    """SHA-256 over every file a source may read below `root` (hidden names skipped, as the
+    sources skip them), in sorted order: its path relative to `root` and its bytes' SHA-256."""
+    import hashlib
+    import os
+
+    outer = hashlib.sha256()
+    for folder, dirs, files in sorted(os.walk(root)):
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+        for name in sorted(f for f in files if not f.startswith(".")):
+            path = os.path.join(folder, name)
+            inner = hashlib.sha256()
+            with open(path, "rb") as f:
+                for block in iter(lambda: f.read(1 << 20), b""):
+                    inner.update(block)
+            outer.update(os.path.relpath(path, root).encode("utf-8", "surrogateescape") + b"\0")
+            outer.update(inner.digest())
+    return outer.hexdigest()
 
 
 def _colour(c):

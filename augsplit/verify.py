@@ -162,6 +162,7 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
     else:
         for problem in _summary_problems(folder.summary, plan):
             rep.add(problem)
+    rep.problems += _changed_inputs(folder)
     parts = folder.parts_of(lay.MANIFEST_DIR)
     total = sum(p.rows for p in parts)
     if total == 0:
@@ -172,6 +173,21 @@ def verify(root: str | Path, sample: int | None = None, seed: int = 0, allow_inc
     rep.checked = total
     _report(folder, plan, by_split, present, rep, sample)
     return rep
+
+
+def _changed_inputs(folder) -> list[str]:
+    """The spec's input folders whose files differ from those the dataset was made from (as
+    spec.json recorded them; a folder made before they were recorded: none to compare)."""
+    from .dataset.folder import read_spec_doc
+
+    recorded = read_spec_doc(folder.root).get("inputs")
+    if not isinstance(recorded, dict) or not recorded:
+        return []
+    built = folder.built
+    now = built.input_digests()
+    return [f"the files of the spec's {key} folder {built.input_folders.get(key)} differ from those the dataset "
+            "was made from: images that use them no longer re-render identically"
+            for key, digest in sorted(recorded.items()) if now.get(key) != digest]
 
 
 def _summary_problems(summary: dict, plan) -> list[str]:

@@ -61,7 +61,8 @@ def test_four_jobs_started_at_once_then_finalize_equal_one_serial_run(spec_file,
 def test_shard_index_outside_range_is_exit_2_in_one_line(spec_file, tmp_path, capsys, shard):
     code, _out, err = cli(capsys, "generate", spec_file, "--out", tmp_path / "d", f"--shard={shard}")
     assert code == 2
-    assert err.count("\n") == 1 and "--shard" in err and "K must lie in" in err
+    says = "N, the number of jobs, must be at least 1" if shard == "0/0" else "K must lie in"
+    assert err.count("\n") == 1 and "--shard" in err and says in err
     assert not (tmp_path / "d").exists()
 
 

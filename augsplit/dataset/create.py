@@ -25,7 +25,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
         lay.component(s.name, f"split {s.name!r}")
     if out.exists() and not out.is_dir():
         raise DatasetError("the output path is a file, not a folder", where=str(out))
-    for folder in built.input_folders:  # a dataset there would join the images the spec reads
+    for folder in built.input_folders.values():  # a dataset there would join the images the spec reads
         if overwrite.inside(out, folder):
             raise DatasetError(f"lies inside {folder}, a folder the spec reads images from; choose another --out",
                                where=str(out))
@@ -37,7 +37,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
         if overwrite_old:
             overwrite.clear(out, spec_path)
         elif resume or array_shard is not None:
-            checked = check_resumable(out, built.plan.hash, layout, peer=array_shard is not None)
+            checked = check_resumable(out, built, layout, peer=array_shard is not None)
             if array_shard is None:
                 # only a whole-run resume may sweep temporaries: job-array peers may be writing now
                 remove_temporaries(out)
@@ -51,7 +51,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
             # create-only: a job-array peer (or a second run) that got there first, even since
             # the checks above, keeps its spec.json, and this run goes on only if it is the same run
             if spec_file.exists() or not write_bytes_new(spec_file, _spec_doc(built, layout)):
-                check_same_run(read_spec_doc(out), built.plan.hash, layout, out)
+                check_same_run(read_spec_doc(out), built, layout, out)
     except PermissionError as exc:
         raise DatasetError("permission denied", where=str(exc.filename or out)) from None
     except OSError as exc:
@@ -62,11 +62,11 @@ def _spec_doc(built, layout: dict) -> bytes:
     """spec.json: the spec in its own key order (the order of splits and axes is part of every
     image's seed key and of its draws, so a sorted copy would re-make other images)."""
     doc = {"spec_hash": built.plan.hash, "base_dir": str(Path(built.base_dir).resolve()),
-           "layout": layout, "spec": json.loads(built.plan.settings.canonical)}
+           "layout": layout, "inputs": built.input_digests(), "spec": json.loads(built.plan.settings.canonical)}
     return json.dumps(doc, indent=2).encode("utf-8")
 
 
-def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False) -> bool:
+def check_resumable(out: Path, built, layout: dict, peer: bool = False) -> bool:
     """The folder holds a run of this spec with these storage options (or, for a job-array
     peer, is being started by another peer: then False, as no spec.json was there to compare)."""
     if not (out / lay.SPEC_FILE).exists():
@@ -76,15 +76,25 @@ def check_resumable(out: Path, spec_hash: str, layout: dict, peer: bool = False)
         if not peer or strangers:
             raise DatasetError("the folder is not empty and holds no augsplit dataset to resume", where=str(out))
         return False
-    check_same_run(read_spec_doc(out), spec_hash, layout, out)
+    check_same_run(read_spec_doc(out), built, layout, out)
     return True
 
 
-def check_same_run(old: dict, spec_hash: str, layout: dict, out: Path) -> None:
-    """A folder's spec.json (`old`) was written by a run of this spec with these storage options."""
+def check_same_run(old: dict, built, layout: dict, out: Path) -> None:
+    """A folder's spec.json (`old`) was written by a run of this spec, reading the same input
+    files, with these storage options."""
+    spec_hash = built.plan.hash
     if old["spec_hash"] != spec_hash:
         raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
                            f"this spec's hash is {spec_hash}", where=str(out))
+    recorded = old.get("inputs") if isinstance(old.get("inputs"), dict) else {}  # none before it was recorded
+    if recorded:
+        now = built.input_digests()
+        for key, digest in recorded.items():
+            if now.get(key) != digest:
+                raise DatasetError(f"the files of the spec's {key} folder changed since this dataset was started; "
+                                   "a resumed run would mix images of the old and the new files: restore them, "
+                                   "or start a new dataset", where=str(built.input_folders.get(key, out)))
     # a key the folder's run did not record (an option added since) counts as what such runs
     # did (LAYOUT_BEFORE), or, where that is not known, is not held against it
     recorded = {**LAYOUT_BEFORE, **(old.get("layout") or {})}
