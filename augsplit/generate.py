@@ -490,11 +490,12 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
     # core (measured: 2x the CPU per image, same wall time); pool workers forked from here
     # inherit the setting. Same pixels either way. Restored when the run ends.
     restore_threads = limit_opencv(1)
+    lock = create.FolderLock(out, shared=opts.array_shard is not None)
     try:
         if opts.scheduler:
             _check_worker_versions(client, opts.scheduler)
         create.prepare(out, built, _layout(opts), resume=opts.resume, overwrite_old=opts.overwrite,
-                       array_shard=opts.array_shard, spec_path=spec_path)
+                       array_shard=opts.array_shard, spec_path=spec_path, lock=lock)
         jobs = shard_jobs(built, opts.shard_size)
         if opts.array_shard is not None:
             jobs = array_jobs(jobs, *opts.array_shard)
@@ -502,14 +503,15 @@ def generate(spec_path: str | Path | None, out: str | Path, opts: Options = Opti
         total = sum(j.stop - j.start for j in jobs)
         done_before = total - sum(j.stop - j.start for j in todo)
         _run(built, todo, out, opts, client, executors.progress(total, opts.progress, "generate", done_before))
+        if opts.array_shard is None:
+            return _finalize(out, built)
     finally:
+        lock.release()
         restore_threads()
         if client is not None:
             executors.close_dask(client, cluster)
-    if opts.array_shard is not None:
-        return {"array_shard": list(opts.array_shard), "images": total, "made": total - done_before,
-                "shards": len(jobs)}
-    return finalize(out, built)
+    return {"array_shard": list(opts.array_shard), "images": total, "made": total - done_before,
+            "shards": len(jobs)}
 
 
 _SAME_EVERYWHERE = ("augsplit", "numpy", "opencv", "pyarrow", "scipy", "isal", "zlib")  # the libraries that decide output bytes
@@ -557,8 +559,17 @@ def _run(built: Built, todo: list[ShardJob], out: Path, opts: Options, client, b
 
 
 def finalize(out: str | Path, built: Built | None = None) -> dict:
-    """Check every shard is present, of this spec and nothing else; write dataset.json."""
-    out = Path(out)
+    """Check every shard is present, of this spec and nothing else; write dataset.json (with
+    the folder locked: no job-array task may still be writing it)."""
+    lock = create.FolderLock(Path(out))
+    lock.take()
+    try:
+        return _finalize(Path(out), built)
+    finally:
+        lock.release()
+
+
+def _finalize(out: Path, built: Built | None = None) -> dict:
     folder = open_dataset(out, allow_incomplete=True)  # parts of this spec, in the declared schema
     built = built or folder.built
     jobs = shard_jobs(built, folder.shard_size)

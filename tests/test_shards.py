@@ -188,3 +188,70 @@ def test_peers_racing_on_an_empty_folder_with_other_options_cannot_both_start(sp
     assert (out / lay.SPEC_FILE).read_bytes() == before
     assert sorted(p.name for p in out.rglob("part-*")) == parts
     assert not [p for p in out.iterdir() if lay.is_temporary(p.name)]
+
+
+# ---- two runs on one folder ------------------------------------------------------------------
+# Measured before: a second `--resume` on a folder another run was writing swept that run's
+# temporaries, and the first run failed with "cannot write: No such file or directory".
+
+
+def _held(folder, shared: bool):
+    """A lock on the folder as another augsplit process holds it (flock on the folder)."""
+    import fcntl
+    import os
+
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+    fcntl.flock(fd, (fcntl.LOCK_SH if shared else fcntl.LOCK_EX) | fcntl.LOCK_NB)
+    return fd
+
+
+@pytest.fixture
+def unfinished(spec_file, tmp_path):
+    out = tmp_path / "d"
+    generate(spec_file, out, dataclasses.replace(SERIAL, array_shard=(0, 2)))
+    its_own = lay.part_path(out, lay.MANIFEST_DIR, "train", 1).parent / ".part-000001.parquet.tmp-77-abcdef"
+    its_own.write_bytes(b"the other run is writing this")
+    return out
+
+
+@pytest.mark.parametrize("args", [("--resume",), ("--overwrite",), ("--finalize",)])
+def test_a_whole_run_is_refused_and_touches_nothing_while_another_run_writes(spec_file, unfinished, capsys, args):
+    import os
+
+    fd = _held(unfinished, shared=True)  # a job-array task at work
+    try:
+        before = tree(unfinished)
+        spec = () if "--finalize" in args else (spec_file,)
+        code, _o, err = cli(capsys, "generate", *spec, "--out", unfinished, "--shard-size", str(SIZE), *args)
+        assert code == 2 and err.count("\n") == 1 and "another augsplit run is writing this folder" in err, err
+        assert tree(unfinished) == before
+    finally:
+        os.close(fd)
+
+
+def test_job_array_tasks_share_a_folder_but_not_with_a_whole_run(spec_file, unfinished, capsys):
+    import os
+
+    fd = _held(unfinished, shared=True)
+    try:  # another task of the same array may work beside it
+        code, _o, err = cli(capsys, "generate", spec_file, "--out", unfinished, "--shard-size", str(SIZE), "--shard", "1/2")
+        assert code == 0, err
+    finally:
+        os.close(fd)
+    fd = _held(unfinished, shared=False)
+    try:  # a whole run at work: no task joins it
+        before = tree(unfinished)
+        code, _o, err = cli(capsys, "generate", spec_file, "--out", unfinished, "--shard-size", str(SIZE), "--shard", "1/2")
+        assert code == 2 and "another augsplit run is writing this folder" in err, err
+        assert tree(unfinished) == before
+    finally:
+        os.close(fd)
+    code, _o, err = cli(capsys, "generate", "--finalize", "--out", unfinished)  # free again
+    assert code == 0, err
+
+
+def test_the_lock_is_let_go_when_a_run_fails(spec_file, unfinished):
+    with pytest.raises(DatasetError):  # refused after the lock was taken: another shard size
+        generate(spec_file, unfinished, dataclasses.replace(SERIAL, shard_size=SIZE + 1, resume=True))
+    fd = _held(unfinished, shared=False)  # nobody holds it any more
+    __import__("os").close(fd)

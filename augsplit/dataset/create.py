@@ -17,10 +17,53 @@ from . import overwrite
 from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, read_spec_doc
 
 
+class FolderLock:
+    """A lock on the dataset folder held for a whole run (`flock` on the folder itself, so no
+    file is added to it): exclusive for a run that may sweep or replace what is there (a
+    fresh run, --resume, --overwrite, --finalize), shared by the job-array tasks of one run
+    (--shard K/N). A second run finds it taken and is refused in one line, instead of sweeping
+    the first run's temporaries from under it. Released when the run ends, or its process
+    does. Where the file system has no such locks, runs are not kept apart."""
+
+    def __init__(self, out: Path, shared: bool = False):
+        self.out, self.shared, self.fd = Path(out), shared, None
+
+    def take(self) -> None:
+        """Take the lock if the folder exists and it is not held yet (a fresh run takes it as
+        soon as it has made the folder)."""
+        if self.fd is not None or not self.out.is_dir():
+            return
+        import fcntl
+        import os
+
+        fd = os.open(self.out, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0))
+        try:
+            fcntl.flock(fd, (fcntl.LOCK_SH if self.shared else fcntl.LOCK_EX) | fcntl.LOCK_NB)
+        except BlockingIOError:
+            os.close(fd)
+            raise DatasetError("another augsplit run is writing this folder; wait for it to end or stop it "
+                               "(only the job-array tasks of one run, --shard K/N, share a folder)",
+                               where=str(self.out)) from None
+        except OSError:  # no locks on this file system
+            os.close(fd)
+            fd = -1
+        self.fd = fd
+
+    def release(self) -> None:
+        if self.fd is not None and self.fd >= 0:
+            import os
+
+            os.close(self.fd)  # closing the descriptor drops the lock
+        self.fd = None
+
+
 def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_old: bool = False,
-            array_shard=None, spec_path=None) -> None:
-    """Create or reopen the output folder; refuse to clobber anything without --overwrite."""
+            array_shard=None, spec_path=None, lock: FolderLock | None = None) -> None:
+    """Create or reopen the output folder; refuse to clobber anything without --overwrite.
+    `lock` is taken before anything in an existing folder is read or moved, and as soon as a
+    new folder is made."""
     out = Path(out)
+    lock = lock or FolderLock(out, shared=array_shard is not None)
     for s in built.plan.splits:  # every split becomes folder names: refuse one that would leave `out`
         lay.component(s.name, f"split {s.name!r}")
     if out.exists() and not out.is_dir():
@@ -33,6 +76,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
         raise DatasetError("--overwrite cannot be combined with --shard: each job of the array would delete the "
                            "others' work; remove the folder once, then submit the array", where=str(out))
     checked = False  # whether spec.json was found and compared with this run
+    lock.take()
     if out.exists() and any(out.iterdir()):
         if overwrite_old:
             overwrite.clear(out, spec_path)
@@ -46,6 +90,7 @@ def prepare(out: Path, built, layout: dict, *, resume: bool = False, overwrite_o
                                "or --overwrite to replace it", where=str(out))
     try:
         out.mkdir(parents=True, exist_ok=True)
+        lock.take()
         spec_file = out / lay.SPEC_FILE
         if not checked:
             # create-only: a job-array peer (or a second run) that got there first, even since
