@@ -28,6 +28,10 @@ DAMAGE = {  # column: (value, store, what the one line says)
     "instance": (99, "none", "asked for 99"),
     "scale": (-1.0, "none", "scale must be positive"),
     "tar_offset": (2 ** 62, "tar", f"tar_offset {2 ** 62} lies past the end of shards/split=train/part-000000.tar"),
+    # another image of the dataset, or its own by another spelling: measured before, every reader
+    # but verify served the other image's pixels, or read the path as it was
+    "file": ("images/train/train-0000001.png", "files", "the row names 'images/train/train-0000001.png', not its own"),
+    "file ": ("images//train/train-0000003.png", "files", "not its own image file"),
 }
 
 
@@ -36,7 +40,7 @@ def made(tmp_path_factory) -> dict[str, Path]:
     base = tmp_path_factory.mktemp("rows")
     built = open_mapping(spec_dict())
     out = {}
-    for store in ("none", "tar"):
+    for store in ("none", "tar", "files"):
         out[store] = base / store
         generate(None, out[store], Options(store=store, progress=False), built=built)
     return out
@@ -44,8 +48,8 @@ def made(tmp_path_factory) -> dict[str, Path]:
 
 @pytest.fixture(params=sorted(DAMAGE))
 def damaged(request, made, tmp_path):
-    column = request.param
-    value, store, says = DAMAGE[column]
+    value, store, says = DAMAGE[request.param]
+    column = request.param.strip()
     root = tmp_path / "ds"
     shutil.copytree(made[store], root)
     part = lay.part_path(root, lay.MANIFEST_DIR, "train", 0)

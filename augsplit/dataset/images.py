@@ -210,6 +210,19 @@ def _embedded(row):
     return bytes(data) if isinstance(data, (bytes, bytearray, memoryview)) else None
 
 
+def own_file(row, rel: str) -> bool:
+    """Whether `rel` is where generate puts the row's image: images/<split>/<image_id>.<ext>."""
+    from . import layout as lay
+
+    split, iid, suffix = row.get("split"), row.get("image_id"), os.path.splitext(rel)[1]
+    if suffix not in FORMATS.values() or not isinstance(split, str) or not isinstance(iid, str):
+        return False
+    try:
+        return rel == lay.image_relpath(split, iid, suffix)
+    except DatasetError:  # a split or id that cannot be a name in the folder
+        return False
+
+
 def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     """The encoded image a row stores (its file, its shard archive's member, else its embedded
     bytes), None when it stores none (`--store none`). ImageError when the file breaks the closed box or is too large."""
@@ -217,6 +230,8 @@ def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     limit = max_bytes(folder.hw, folder.channels)
     rel = row.get("file")
     if isinstance(rel, str) and rel:
+        if not own_file(row, rel):  # every reader holds a row to its own file, as verify does
+            raise ImageError(f"the row names {rel!r}, not its own image file", where=where)
         return folder.box.read(rel, limit, where)
     tar = row.get("tar_file")
     if isinstance(tar, str) and tar:
