@@ -81,3 +81,28 @@ def test_a_training_image_overwritten_never_makes_an_untouched_test_image_a_copy
     report = json.loads((tmp_path / "report" / "audit.json").read_text())
     near = [c for c in report["checks"] if c["name"] == "near_duplicates"]
     assert near and all(c["verdict"] == "pass" for c in near), near
+
+
+@pytest.mark.parametrize("test_id", ["test_same_lane-0000001", "test_far_lane-0000002"])
+def test_a_test_image_copied_over_a_training_image_is_a_copy(tmp_path, test_id):
+    """The other direction: test pixels in the training split. Found by a review of the change
+    above: the audit then called the pair 'pixel-identical by design' and passed."""
+    import yaml
+
+    from augsplit.build import open_mapping
+    from augsplit.cli import main
+    from augsplit.generate import Options, generate
+    from augsplit.spec import builtin_spec_path
+
+    spec = yaml.safe_load(builtin_spec_path().read_text())
+    for split in spec["splits"].values():
+        split["per_class"] //= 10 if split["per_class"] == 300 else 6
+    out = tmp_path / "ds"
+    generate(None, out, Options(progress=False, shard_size=40), built=open_mapping(spec))
+    m = read_manifest(out).set_index("image_id")
+    shutil.copyfile(out / m.loc[test_id, "file"], out / m.loc["train-0000005", "file"])
+    assert main(["audit", str(out), "--out", str(tmp_path / "report"), "--quiet"]) == 1
+    report = json.loads((tmp_path / "report" / "audit.json").read_text())
+    lane = test_id.rsplit("-", 1)[0]
+    near = [c for c in report["checks"] if c["name"] == "near_duplicates" and lane in json.dumps(c)]
+    assert near and near[0]["verdict"] == "fail", near
