@@ -37,29 +37,27 @@ class Built:
         return {key: Path(p) for key, p in found.items() if p is not None}
 
     def input_digests(self) -> dict[str, str]:
-        """A SHA-256 of each input folder's files, names and bytes (see `folder_digest`):
-        spec.json records them, so a resume or verify can tell when the files changed, which
-        the spec hash (of the spec's text) cannot."""
-        return {key: folder_digest(p) for key, p in self.input_folders.items()}
+        """A SHA-256 of the files each input folder's source read (see `files_digest`):
+        spec.json records them, so a resume or verify can tell when those files changed,
+        which the spec hash (of the spec's text) cannot."""
+        sources = {"objects": self.source, "background": self.background}
+        return {key: files_digest(root, sources[key].read_files()) for key, root in self.input_folders.items()}
 
 
-def folder_digest(root: Path) -> str:
-    """SHA-256 over every file a source may read below `root` (hidden names skipped, as the
-    sources skip them), in sorted order: its path relative to `root` and its bytes' SHA-256."""
+def files_digest(root: Path, files) -> str:
+    """SHA-256 over some files below `root`, in the given order: each one's path relative to
+    `root` and its bytes' SHA-256 (only files a source has read: regular files it accepted)."""
     import hashlib
     import os
 
     outer = hashlib.sha256()
-    for folder, dirs, files in sorted(os.walk(root)):
-        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-        for name in sorted(f for f in files if not f.startswith(".")):
-            path = os.path.join(folder, name)
-            inner = hashlib.sha256()
-            with open(path, "rb") as f:
-                for block in iter(lambda: f.read(1 << 20), b""):
-                    inner.update(block)
-            outer.update(os.path.relpath(path, root).encode("utf-8", "surrogateescape") + b"\0")
-            outer.update(inner.digest())
+    for path in files:
+        inner = hashlib.sha256()
+        with open(path, "rb") as f:
+            for block in iter(lambda: f.read(1 << 20), b""):
+                inner.update(block)
+        outer.update(os.path.relpath(path, root).encode("utf-8", "surrogateescape") + b"\0")
+        outer.update(inner.digest())
     return outer.hexdigest()
 
 

@@ -166,3 +166,17 @@ def test_shard_jobs_cover_every_index_once():
             idx = np.concatenate([np.arange(j.start, j.stop) for j in jobs if j.split == s.name])
             assert np.array_equal(idx, np.arange(s.total))
 
+
+
+def test_a_store_none_folder_recorded_as_jpeg_by_an_earlier_version_resumes(spec_file, tmp_path):
+    """Found by review: since --store none refuses --format jpeg, a folder an earlier version
+    began that way could not be finished ('rerun with --format jpeg', then refused again)."""
+    out = tmp_path / "d"
+    generate(spec_file, out, dataclasses.replace(QUICK, store="none", array_shard=(0, 2)))
+    doc = json.loads((out / lay.SPEC_FILE).read_text())
+    doc["layout"].update(format="jpeg", quality=80, png_deflate=None, png_level=None)
+    (out / lay.SPEC_FILE).write_text(json.dumps(doc))
+    summary = generate(spec_file, out, dataclasses.replace(QUICK, store="none", resume=True))
+    assert summary["images"] == 44
+    with pytest.raises(DatasetError, match=r"rerun with --shard-size 8$"):  # what the run recorded, nothing else
+        generate(spec_file, out, dataclasses.replace(QUICK, store="none", shard_size=5, resume=True))

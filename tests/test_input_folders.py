@@ -6,6 +6,7 @@ verify only said that images did not re-render identically)."""
 from __future__ import annotations
 
 import json
+import os
 import shutil
 from pathlib import Path
 
@@ -14,7 +15,7 @@ import numpy as np
 import pytest
 import yaml
 
-from augsplit.build import folder_digest
+from augsplit.build import open_spec
 from augsplit.cli import main
 from augsplit.dataset import layout as lay
 from augsplit.verify import verify
@@ -48,23 +49,44 @@ def generate(spec: Path, out: Path, *extra: str) -> int:
     return main(["generate", str(spec), "--out", str(out), "--shard-size", "3", "--quiet", *extra])
 
 
+def digests(spec_file: Path) -> dict:
+    return open_spec(spec_file).input_digests()
+
+
 def test_spec_json_records_a_digest_of_each_input_folder(spec_file, tmp_path):
     assert generate(spec_file, tmp_path / "ds") == 0
     doc = json.loads((tmp_path / "ds" / lay.SPEC_FILE).read_text())
-    assert doc["inputs"] == {"objects": folder_digest(tmp_path / "sprites"),
-                             "background": folder_digest(tmp_path / "backgrounds")}
+    assert doc["inputs"] == digests(spec_file) and set(doc["inputs"]) == {"objects", "background"}
 
 
-def test_the_digest_follows_names_and_bytes_and_skips_hidden_files(tmp_path):
-    sprites(tmp_path)
-    first = folder_digest(tmp_path / "sprites")
+def test_the_digest_covers_exactly_the_files_the_sources_read(spec_file, tmp_path):
+    """Found by review: a digest of the whole folder tree counted files the sources skip (a
+    hidden folder, a background subfolder), missed a class folder that is a link, and could
+    block on a FIFO."""
+    first = digests(spec_file)
+    (tmp_path / "sprites" / "nut" / ".ipynb_checkpoints").mkdir()
+    cv2.imwrite(str(tmp_path / "sprites" / "nut" / ".ipynb_checkpoints" / "a.png"), np.zeros((3, 3, 4), np.uint8))
     (tmp_path / "sprites" / ".DS_Store").write_bytes(b"the file manager's")
-    assert folder_digest(tmp_path / "sprites") == first
+    (tmp_path / "backgrounds" / "unused").mkdir()
+    (tmp_path / "backgrounds" / "unused" / "notes.txt").write_text("not an image the source reads")
+    os.mkfifo(tmp_path / "backgrounds" / "unused" / "pipe")
+    assert digests(spec_file) == first
+    cv2.imwrite(str(tmp_path / "sprites" / "nut" / "a_mask.png"), np.full((7, 7), 255, np.uint8))  # read: a mask
+    with_mask = digests(spec_file)
+    assert with_mask["objects"] != first["objects"] and with_mask["background"] == first["background"]
     (tmp_path / "sprites" / "nut" / "a.png").rename(tmp_path / "sprites" / "nut" / "b.png")
-    renamed = folder_digest(tmp_path / "sprites")
-    assert renamed != first
-    sprites(tmp_path, colour=(40, 200, 40))
-    assert folder_digest(tmp_path / "sprites") not in (first, renamed)
+    (tmp_path / "sprites" / "nut" / "a_mask.png").rename(tmp_path / "sprites" / "nut" / "b_mask.png")
+    assert digests(spec_file)["objects"] not in (first["objects"], with_mask["objects"])
+
+
+def test_a_class_folder_that_is_a_link_is_followed(spec_file, tmp_path):
+    shutil.move(tmp_path / "sprites" / "nut", tmp_path / "nut-elsewhere")
+    (tmp_path / "sprites" / "nut").symlink_to(tmp_path / "nut-elsewhere")
+    first = digests(spec_file)
+    rgba = np.zeros((7, 7, 4), np.uint8)
+    rgba[2:6, 2:5] = (40, 200, 40, 255)
+    cv2.imwrite(str(tmp_path / "nut-elsewhere" / "a.png"), rgba)
+    assert digests(spec_file)["objects"] != first["objects"]
 
 
 @pytest.mark.parametrize("changed", ["sprites", "backgrounds"])

@@ -145,9 +145,14 @@ def check_same_run(old: dict, built, layout: dict, out: Path) -> None:
     recorded = {**LAYOUT_BEFORE, **(old.get("layout") or {})}
     # JPEG and WebP files never pass through the PNG writer: its options decide none of their bytes
     keys = LAYOUT_KEYS if layout.get("format") == "png" else [k for k in LAYOUT_KEYS if k not in PNG_KEYS]
+    if layout.get("store") == "none" and recorded.get("store") == "none":
+        # no image is stored: format and quality decide no byte (a folder made before --store none
+        # refused --format jpeg recorded it), and export encodes with the recorded PNG setting
+        keys = [k for k in keys if k not in ("format", "quality", *PNG_KEYS)]
     differ = [k for k in keys if k in recorded and recorded[k] != layout.get(k)]
     if differ:
-        want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in differ)
+        # a key the folder's run recorded as None (a PNG setting of a JPEG run) is no option to give
+        want = " ".join(f"--{k.replace('_', '-')} {recorded[k]}" for k in differ if recorded[k] is not None)
         raise DatasetError(f"the folder was started with other storage options; rerun with {want}", where=str(out))
 
 

@@ -378,6 +378,10 @@ class ImageFolder:
         self._images = tuple(to_rgb(read_image(p, budget)) for p in files)  # read_image names any bad file
         self._grey: dict[int, np.ndarray] = {}
 
+    def read_files(self) -> list[Path]:
+        """Every file this source read, in order."""
+        return list(self.files)
+
     def _image(self, i: int, channels: int) -> np.ndarray:
         if channels == 3:
             return self._images[i]

@@ -129,6 +129,15 @@ class SpriteFolder(SpriteTable):
             raise SourceError("class folder has no images", where=str(folder))
         return tuple(images)
 
+    def read_files(self) -> list[Path]:
+        """Every file this source read, in order: each instance image, then its mask file."""
+        out = []
+        for files in self.files:
+            for f in files:
+                mask = self._mask_file(f)
+                out += [f] if mask is None else [f, mask]
+        return out
+
     def _mask_file(self, image: Path) -> Path | None:
         for p in sorted(image.parent.glob(image.stem + self.mask_suffix + ".*")):
             if p.stem == image.stem + self.mask_suffix:
