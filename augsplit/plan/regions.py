@@ -15,6 +15,7 @@ An empty mapping (or no region at all) is the whole space.
 from __future__ import annotations
 
 import math
+import re
 from typing import Any, Callable
 
 from ..errors import SpecError
@@ -235,11 +236,7 @@ def _text_number(value) -> str:
     '.' or a sign (5.6e1, 1e3) as text."""
     items = value if isinstance(value, list) else [value]
     for v in items:
-        if isinstance(v, str):
-            try:
-                float(v)
-            except ValueError:
-                continue
+        if isinstance(v, str) and re.fullmatch(r"[-+]?(\d+\.?\d*|\.\d+)[eE][-+]?\d+", v.strip()):
             return (f"; {v!r} is text to YAML, not a number (write an exponent with a '.' and a sign, "
                     f"as 5.6e+1, or the plain number)")
     return ""
