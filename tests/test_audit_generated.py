@@ -58,15 +58,12 @@ def test_train_image_copied_over_a_test_image_is_caught(dataset, tmp_path):
     assert nd.worst.iloc[0]["test_id"] == dst["image_id"] and nd.worst.iloc[0]["train_id"] == src["image_id"]
 
 
-def test_a_training_image_overwritten_never_makes_an_untouched_test_image_a_copy(tmp_path):
-    """Measured before: in the demo (30 and 10 images per class), train-0000007 overwritten with
-    train-0000008's pixels made the audit fail near_duplicates, naming the untouched
-    test_same_lane-0000001 a copy of train-0000007 (judged by the training image's distance
-    from its render). A test image that is its own render is explained by its row."""
+def _small_demo(tmp_path):
+    """The built-in demo at a tenth of its training images (30 per class) and 10 test images
+    per class and lane, generated into tmp_path/ds."""
     import yaml
 
     from augsplit.build import open_mapping
-    from augsplit.cli import main
     from augsplit.generate import Options, generate
     from augsplit.spec import builtin_spec_path
 
@@ -75,10 +72,27 @@ def test_a_training_image_overwritten_never_makes_an_untouched_test_image_a_copy
         split["per_class"] //= 10 if split["per_class"] == 300 else 6
     out = tmp_path / "ds"
     generate(None, out, Options(progress=False, shard_size=40), built=open_mapping(spec))
+    return out
+
+
+def _audit(out, report):
+    """`augsplit audit` of a folder: its exit code and its audit.json."""
+    from augsplit.cli import main
+
+    code = main(["audit", str(out), "--out", str(report), "--quiet"])
+    return code, json.loads((report / "audit.json").read_text())
+
+
+def test_a_training_image_overwritten_never_makes_an_untouched_test_image_a_copy(tmp_path):
+    """Measured before: in the demo (30 and 10 images per class), train-0000007 overwritten with
+    train-0000008's pixels made the audit fail near_duplicates, naming the untouched
+    test_same_lane-0000001 a copy of train-0000007 (judged by the training image's distance
+    from its render). A test image that is its own render is explained by its row."""
+    out = _small_demo(tmp_path)
     m = read_manifest(out).set_index("image_id")
     shutil.copyfile(out / m.loc["train-0000008", "file"], out / m.loc["train-0000007", "file"])
-    assert main(["audit", str(out), "--out", str(tmp_path / "report"), "--quiet"]) == 0
-    report = json.loads((tmp_path / "report" / "audit.json").read_text())
+    code, report = _audit(out, tmp_path / "report")
+    assert code == 0
     near = [c for c in report["checks"] if c["name"] == "near_duplicates"]
     assert near and all(c["verdict"] == "pass" for c in near), near
 
@@ -87,22 +101,11 @@ def test_a_training_image_overwritten_never_makes_an_untouched_test_image_a_copy
 def test_a_test_image_copied_over_a_training_image_is_a_copy(tmp_path, test_id):
     """The other direction: test pixels in the training split. Found by a review of the change
     above: the audit then called the pair 'pixel-identical by design' and passed."""
-    import yaml
-
-    from augsplit.build import open_mapping
-    from augsplit.cli import main
-    from augsplit.generate import Options, generate
-    from augsplit.spec import builtin_spec_path
-
-    spec = yaml.safe_load(builtin_spec_path().read_text())
-    for split in spec["splits"].values():
-        split["per_class"] //= 10 if split["per_class"] == 300 else 6
-    out = tmp_path / "ds"
-    generate(None, out, Options(progress=False, shard_size=40), built=open_mapping(spec))
+    out = _small_demo(tmp_path)
     m = read_manifest(out).set_index("image_id")
     shutil.copyfile(out / m.loc[test_id, "file"], out / m.loc["train-0000005", "file"])
-    assert main(["audit", str(out), "--out", str(tmp_path / "report"), "--quiet"]) == 1
-    report = json.loads((tmp_path / "report" / "audit.json").read_text())
+    code, report = _audit(out, tmp_path / "report")
+    assert code == 1
     lane = test_id.rsplit("-", 1)[0]
     near = [c for c in report["checks"] if c["name"] == "near_duplicates" and lane in json.dumps(c)]
     assert near and near[0]["verdict"] == "fail", near
