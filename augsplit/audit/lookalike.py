@@ -154,7 +154,9 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
     unknown = np.isnan(own)
     with np.errstate(invalid="ignore"):
         leak = ~unknown & (own > 0) & (cross <= ratio * own) & (cross < design)
-    return {"leak": leak, "ambiguous": unknown, "own": own, "design": design, "cross": cross}
+    # which image of a pair is the copy: the test image, or (its test image its own render) the training image
+    copier = np.where(ratio == TRAIN_COPY_RATIO, "train", "test")
+    return {"leak": leak, "ambiguous": unknown, "own": own, "design": design, "cross": cross, "copier": copier}
 
 
 def judge_by_pixels(test_rows, train_rows, stored: Fetch, threshold: float, identical: np.ndarray) -> dict:

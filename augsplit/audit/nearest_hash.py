@@ -394,8 +394,9 @@ def _detail(nb: dict, n_leak: int, n_leak_exact: int, worst: pd.DataFrame, radiu
                "pixels": "closer to a train image than distinct training images lie to each other",
                "hash": "their hashes lie closer to a train image than distinct training images' do",
                }.get(method, f"within {radius} bits of a train image")
-        return (f"{n_leak} test images are copies of train images ({n_leak_exact} pixel-identical): {how}; "
-                f"e.g. {first['test_id']} copies {first['train_id']}")
+        example = (f"{first['train_id']} (a training image) copies {first['test_id']}"
+                   if first.get("copier") == "train" else f"{first['test_id']} copies {first['train_id']}")
+        return f"{n_leak} test images are copies of train images ({n_leak_exact} pixel-identical): {how}; e.g. {example}"
     parts = []
     if nb["n_identical_by_design"]:
         parts.append(f"{nb['n_identical_by_design']} test images are pixel-identical to a train image though each is "
