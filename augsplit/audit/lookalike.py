@@ -154,8 +154,9 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
     unknown = np.isnan(own)
     with np.errstate(invalid="ignore"):
         leak = ~unknown & (own > 0) & (cross <= ratio * own) & (cross < design)
-    # which image of a pair is the copy: the test image, or (its test image its own render) the training image
-    copier = np.where(ratio == TRAIN_COPY_RATIO, "train", "test")
+    # the image of a pair judged as the possible copy: the test image, or (the test image its own
+    # render) the training image; none where both are their renders
+    copier = np.where(ratio == TRAIN_COPY_RATIO, "train", np.where(ratio == COPY_RATIO, "test", ""))
     return {"leak": leak, "ambiguous": unknown, "own": own, "design": design, "cross": cross, "copier": copier}
 
 
