@@ -36,12 +36,15 @@ DAMAGE = {  # column: (value, store, what the one line says)
     # its identity: measured before, the loader re-rendered another index's stream (store none)
     "index": (5, "none", "image_id 'train-0000003' is not its split and index ('train', 5)"),
     "image_id": ("train-0000009", "none", "image_id 'train-0000009' is not its split and index ('train', 3)"),
+    # the same with the image stored (found by review: export went on and named the image by the row)
+    "index ": (5, "files", "image_id 'train-0000003' is not its split and index ('train', 5)"),
+    "image_id ": ("train-0000009", "tar", "image_id 'train-0000009' is not its split and index ('train', 3)"),
 }
 
 
 def _named(column: str) -> str:
     """The image id a message names: the victim's, or an edited id as it now reads."""
-    return DAMAGE["image_id"][0] if column == "image_id" else VICTIM
+    return DAMAGE["image_id"][0] if column.strip() == "image_id" else VICTIM
 
 
 @pytest.fixture(scope="module")

@@ -136,6 +136,7 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
     t_rows = np.asarray(test_rows, np.int64); r_rows = np.asarray(train_rows, np.int64)
     n = len(t_rows)
     own = np.zeros(n); design = np.full(n, np.nan); cross = np.full(n, np.nan); ratio = np.zeros(n)
+    copier = np.full(n, "", dtype=object)  # the image judged as the possible copy; none where both are renders
     need = [k for k in range(n) if not (unchanged[t_rows[k]] and unchanged[r_rows[k]])]
     for part in _chunks(need):
         imgs = stored([int(v) for k in part for v in (t_rows[k], r_rows[k])])
@@ -149,14 +150,12 @@ def judge_by_render(test_rows, train_rows, unchanged: np.ndarray, stored: Fetch,
             changed = t if not unchanged[t] else r  # the test image, else the training image
             own[k] = residual(imgs[changed], refs[changed], max_shift=0, gain=False)
             ratio[k] = COPY_RATIO if changed == t else TRAIN_COPY_RATIO
+            copier[k] = "test" if changed == t else "train"
             design[k] = residual(refs[r], refs[t])
             cross[k] = residual(imgs[r], imgs[t])
     unknown = np.isnan(own)
     with np.errstate(invalid="ignore"):
         leak = ~unknown & (own > 0) & (cross <= ratio * own) & (cross < design)
-    # the image of a pair judged as the possible copy: the test image, or (the test image its own
-    # render) the training image; none where both are their renders
-    copier = np.where(ratio == TRAIN_COPY_RATIO, "train", np.where(ratio == COPY_RATIO, "test", ""))
     return {"leak": leak, "ambiguous": unknown, "own": own, "design": design, "cross": cross, "copier": copier}
 
 

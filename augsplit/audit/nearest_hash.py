@@ -394,9 +394,12 @@ def _detail(nb: dict, n_leak: int, n_leak_exact: int, worst: pd.DataFrame, radiu
                "pixels": "closer to a train image than distinct training images lie to each other",
                "hash": "their hashes lie closer to a train image than distinct training images' do",
                }.get(method, f"within {radius} bits of a train image")
-        example = (f"{first['train_id']} (a training image) copies {first['test_id']}"
-                   if first.get("copier") == "train" else f"{first['test_id']} copies {first['train_id']}")
-        return f"{n_leak} test images are copies of train images ({n_leak_exact} pixel-identical): {how}; e.g. {example}"
+        if first.get("copier") == "train":  # the test image is its render: a training image copies it
+            return (f"{n_leak} test images are copied in the training split or copy train images ({n_leak_exact} "
+                    f"pixel-identical): a training image lies far closer to a test image than to its own row's "
+                    f"render; e.g. {first['train_id']} (a training image) copies {first['test_id']}")
+        return (f"{n_leak} test images are copies of train images ({n_leak_exact} pixel-identical): {how}; "
+                f"e.g. {first['test_id']} copies {first['train_id']}")
     parts = []
     if nb["n_identical_by_design"]:
         parts.append(f"{nb['n_identical_by_design']} test images are pixel-identical to a train image though each is "

@@ -210,10 +210,18 @@ def _embedded(row):
     return bytes(data) if isinstance(data, (bytes, bytearray, memoryview)) else None
 
 
+def check_identity(row) -> None:
+    """Every reader holds a row to its identity, as verify does: ImageError naming the row if
+    its image_id is not its split and index."""
+    if not own_id(row):
+        raise ImageError(f"the row's image_id {row.get('image_id')!r} is not its split and index "
+                         f"({row.get('split')!r}, {row.get('index')!r})", where=row_where(row))
+
+
 def own_id(row) -> bool:
     """Whether the row's image_id is `<split>-<index:07d>`, as generate names its images."""
     split, index = row.get("split"), row.get("index")
-    if not isinstance(split, str) or isinstance(index, bool):
+    if not isinstance(split, str) or isinstance(index, (bool, np.bool_)):
         return False
     try:
         return row.get("image_id") == f"{split}-{int(index):07d}" and int(index) == index
@@ -258,9 +266,7 @@ def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
 def load(folder, row, *, data: bytes | None = None) -> RowImage:
     """The image of a row: stored (file or bytes, decoded and size-checked) or re-rendered.
     `data` passes embedded bytes a caller has already read."""
-    if not own_id(row):  # every reader holds a row to its identity, as verify does
-        raise ImageError(f"the row's image_id {row.get('image_id')!r} is not its split and index "
-                         f"({row.get('split')!r}, {row.get('index')!r})", where=row_where(row))
+    check_identity(row)
     stored = stored_bytes(folder, row, data)
     if stored is not None:
         img = decode(stored, folder.channels, row_where(row), folder.hw)

@@ -125,9 +125,10 @@ class Rows:
                 yield Item(row, data, suffix_of(data), tuple(o for o in objs if o.area > 0))
 
     def _encoded(self, row: dict) -> bytes:
-        from ..dataset.images import ImageError, decode, encode, load, row_where, stored_bytes
+        from ..dataset.images import ImageError, check_identity, decode, encode, load, row_where, stored_bytes
         from ..dataset.tarstore import sha256_hex
 
+        check_identity(row)  # an export names each image by its row's id
         data = stored_bytes(self.folder, row)
         if data is None:  # --store none: the row re-made, losslessly encoded as the layout says
             deflate, level = self.folder.png_setting
