@@ -98,3 +98,19 @@ def test_verify_names_the_row_and_why(damaged):
     # verify reads a shard archive in one pass: it names the offset against where the header is
     why = (says, column, "not their split and index")  # verify's identity check words it so
     assert not rep.ok and any(_named(column) in p and any(w in p for w in why) for p in rep.problems), rep.problems
+
+
+def test_audit_names_the_row_and_why(damaged, tmp_path, capsys):
+    root, column, says = damaged
+    code = main(["audit", str(root), "--out", str(tmp_path / "report"), "--quiet"])
+    err = capsys.readouterr().err
+    assert code in (1, 2) and "Traceback" not in err, err
+    if code == 2:  # refused before any check: one line naming the row
+        assert err.count("\n") == 1 and _named(column) in err, err
+        return
+    import json
+
+    report = json.loads((tmp_path / "report" / "audit.json").read_text())
+    files = [c for c in report["checks"] if c["name"] == "image_files"]
+    assert files and files[0]["verdict"] == "fail", [c["name"] for c in report["checks"] if c["verdict"] == "fail"]
+    assert "images cannot be had" in files[0]["detail"] and _named(column) in files[0]["detail"], files[0]["detail"]

@@ -124,8 +124,10 @@ def _image_files_check(df: pd.DataFrame, broken: dict[int, str], worst_k: int = 
     worst = pd.DataFrame({"row": rows, "split": df["split"].to_numpy()[rows], "image_id": df["image_id"].to_numpy()[rows],
                           "problem": [broken[r] for r in rows]}).head(worst_k)
     first = worst.iloc[0]
-    detail = (f"{len(rows)} rows' stored images cannot be read, e.g. split {first['split']}, image {first['image_id']}: "
-              f"{first['problem']}")
+    # a stored image that cannot be read, a row that cannot be re-rendered, or one refused for
+    # naming another file or identity than its own: each reason is in the row's problem
+    detail = (f"{len(rows)} rows' images cannot be had (read or re-made), e.g. split {first['split']}, "
+              f"image {first['image_id']}: {first['problem']}")
     return CheckResult("image_files", FAIL, {"n_unreadable": len(rows)}, worst, detail)
 
 
