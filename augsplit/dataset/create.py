@@ -6,6 +6,7 @@ and checked to stay inside the folder."""
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import pyarrow.parquet as pq
@@ -33,8 +34,7 @@ class FolderLock:
         soon as it has made the folder)."""
         if self.fd is not None or not self.out.is_dir():
             return
-        import fcntl
-        import os
+        import fcntl  # POSIX only: imported where a run locks its folder
 
         fd = os.open(self.out, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0))
         try:
@@ -51,8 +51,6 @@ class FolderLock:
 
     def release(self) -> None:
         if self.fd is not None and self.fd >= 0:
-            import os
-
             os.close(self.fd)  # closing the descriptor drops the lock
         self.fd = None
 
@@ -132,10 +130,10 @@ def check_same_run(old: dict, built, layout: dict, out: Path) -> None:
     if old["spec_hash"] != spec_hash:
         raise DatasetError(f"the folder holds a dataset of another spec (hash {old['spec_hash']}); "
                            f"this spec's hash is {spec_hash}", where=str(out))
-    recorded = old.get("inputs") if isinstance(old.get("inputs"), dict) else {}  # none before it was recorded
-    if recorded:
+    inputs = old.get("inputs") if isinstance(old.get("inputs"), dict) else {}  # none before they were recorded
+    if inputs:
         now = built.input_digests()
-        for key, digest in recorded.items():
+        for key, digest in inputs.items():
             if now.get(key) != digest:
                 raise DatasetError(f"the files of the spec's {key} folder changed since this dataset was started; "
                                    "a resumed run would mix images of the old and the new files: restore them, "
