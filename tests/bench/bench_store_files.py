@@ -11,6 +11,8 @@
    back to back) is printed beside it, to show the machine's spread. A ratio measured while
    the 1-minute load average was above the number of cores before any of its timed runs says
    nothing about the code: it is printed as MISS-UNRELIABLE, with the raw times and the load.
+   Beside `files` on the disk, in the same rounds, the disk's own ceiling: the bare loop doing
+   the same disk work (encode, write each PNG, syncfs per shard of 500) in 1 and 2 processes.
 3. The fixed start-up: `import augsplit.generate` in a fresh interpreter (aim: neither pandas
    nor scipy imported) and a small run (--n-small images, default 3,000) with 2 workers against
    1 (aim: faster, i.e. above 1.0x).
@@ -57,6 +59,42 @@ def settle(where: Path) -> None:
     os.sync()
 
 
+def _bare_durable_part(built, lo: int, hi: int, out: Path) -> None:
+    """Images lo..hi of the bare loop into folders of SHARD files, each made durable (syncfs)
+    once written, as generation makes a shard's files durable before committing it."""
+    from augsplit.io import syncfs
+
+    for k in range(lo, hi, SHARD):
+        part = out / f"{k:07d}"
+        part.mkdir(parents=True)
+        bg.baseline_a(built, min(SHARD, hi - k), part)
+        syncfs(part)
+
+
+def bare_durable(built, n: int, out: Path, processes: int) -> float:
+    """Seconds per image of the bare loop with durable shards (`_bare_durable_part`), its n
+    images cut into `processes` equal runs, each in a forked process of its own: the same
+    disk work as `--store files` with as many workers and none of its bookkeeping, so its
+    2-over-1 ratio is the most any code can get from a second worker on this disk."""
+    import multiprocessing
+    import time
+
+    ctx = multiprocessing.get_context("fork")
+    t0 = time.perf_counter()
+    if processes == 1:
+        _bare_durable_part(built, 0, n, out)
+    else:
+        cuts = [n * i // processes for i in range(processes + 1)]
+        procs = [ctx.Process(target=_bare_durable_part, args=(built, lo, hi, out)) for lo, hi in zip(cuts, cuts[1:])]
+        for p in procs:
+            p.start()
+        for p in procs:
+            p.join()
+            if p.exitcode:
+                raise RuntimeError(f"a bare-loop process failed (exit code {p.exitcode})")
+    return (time.perf_counter() - t0) / n
+
+
 def files_section(built, n: int, repeat: int, where: Path) -> None:
     fs = bg.fs_of(where)
     print(f"\n== --store files, 1 worker, shard {SHARD}, {n} images on {fs} ({where})")
@@ -70,20 +108,7 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
     def bare_write_durable():
         """The bare loop, then its files made durable as generation makes each shard's before
         committing it (one syncfs per SHARD files): printed for context, not the aim's baseline."""
-        import time
-
-        from augsplit.io import syncfs
-
-        total, out = 0.0, bg.fresh(where, "bare")
-        for k in range(0, n, SHARD):
-            part = out / f"{k:07d}"
-            part.mkdir(parents=True)
-            m = min(SHARD, n - k)
-            total += bg.baseline_a(built, m, part) * m
-            t0 = time.perf_counter()
-            syncfs(part)
-            total += time.perf_counter() - t0
-        return total / n
+        return bare_durable(built, n, bg.fresh(where, "bare"), 1)
 
     def store(name):
         return lambda: bg.run_augsplit(built, bg.fresh(where, "ds"), store=name, shard_size=SHARD)
@@ -109,10 +134,13 @@ def files_section(built, n: int, repeat: int, where: Path) -> None:
     print(f"   after: {load_text()}")
 
 
+BARE = "bare"  # in two_vs_one: the bare durable loop (bare_durable) in 1 and 2 processes, not a store
+
+
 def two_vs_one(built, stores_where: list[tuple[str, Path]], repeat: int) -> tuple[dict, bool]:
     """Time per image of 1 and 2 workers for each (store, folder), interleaved: a list of one
     time per round, keyed (store, folder, workers); and whether the 1-minute load was above
-    the core count before any timed run."""
+    the core count before any timed run. The store BARE is the bare durable loop."""
     cores = os.cpu_count() or 1
     busy = False
     got: dict = {}
@@ -121,7 +149,10 @@ def two_vs_one(built, stores_where: list[tuple[str, Path]], repeat: int) -> tupl
             for w in (1, 2):
                 settle(where)
                 busy = busy or os.getloadavg()[0] > cores
-                t = bg.run_augsplit(built, bg.fresh(where, "ds"), store=store, workers=w, shard_size=SHARD)
+                if store == BARE:
+                    t = bare_durable(built, sum(s.total for s in built.plan.splits), bg.fresh(where, "bare"), w)
+                else:
+                    t = bg.run_augsplit(built, bg.fresh(where, "ds"), store=store, workers=w, shard_size=SHARD)
                 got.setdefault((store, str(where), w), []).append(t)
     return got, busy
 
@@ -146,11 +177,11 @@ def workers_section(n: int, repeat: int, disk: Path, shm: Path) -> None:
     from augsplit.generate import STORES
 
     built = open_mapping(bg.spec_dict(n))
-    runs = [(s, shm) for s in STORES] + [("files", disk)]
+    runs = [(s, shm) for s in STORES] + [("files", disk), (BARE, disk)]
     print(f"\n== 2 workers vs 1, {n} images, shard {SHARD}; `files` on {bg.fs_of(disk)} and on {bg.fs_of(shm)}")
     print(f"   before: {load_text()}")
     got, busy = two_vs_one(built, runs, repeat)
-    for store, where in runs:
+    for store, where in runs[:-1]:
         ones, twos = got[store, str(where), 1], got[store, str(where), 2]
         one, two = min(ones), min(twos)
         fs = bg.fs_of(where).split()[0]
@@ -158,6 +189,14 @@ def workers_section(n: int, repeat: int, disk: Path, shm: Path) -> None:
               f" (best of {repeat}); {rounds_text(ones, twos)}")
         aim(f"2 workers at least {AIM_WORKERS}x one, --store {store} on {fs}, {n} images",
             ratio_text(one, two, busy, "us/img", 1e6), one / two >= AIM_WORKERS, needs_idle=True, busy=busy)
+    # The disk's own ceiling: the bare loop doing --store files' disk work (encode, write each
+    # file, syncfs per shard) in 1 and 2 processes, in the same rounds
+    ones, twos = got[BARE, str(disk), 1], got[BARE, str(disk), 2]
+    files = min(got["files", str(disk), 1]) / min(got["files", str(disk), 2])
+    ceiling = min(ones) / min(twos)
+    print(f"   ceiling on {bg.fs_of(disk).split()[0]}: the bare loop (encode + write each PNG + syncfs per {SHARD}) "
+          f"1 process {min(ones) * 1e6:6.0f} us/img, 2 processes {min(twos) * 1e6:6.0f} us/img: {ceiling:.2f}x; "
+          f"{rounds_text(ones, twos)}; --store files gets {files / ceiling:.2f} of it")
     print(f"   after: {load_text()}")
 
 
