@@ -24,6 +24,10 @@ from .plan.regions import CLASS, OTHER_CLASS
 
 SPLIT_COLUMN = "split"
 OUTSIDE = "outside"
+NONE, GUARD = "none", "guard"
+MIXED, DROPPED, EMPTY = "mixed", "dropped", "empty"  # of images, by their objects (formats.placement)
+# what a row or image gets when no split holds it; a split of the spec must not share the name
+LABELS = (NONE, OUTSIDE, GUARD, MIXED, DROPPED, EMPTY)
 
 
 @dataclass(frozen=True)
@@ -76,6 +80,10 @@ def derive_parameters(df: pd.DataFrame, plan: Plan, ref_size: float | None, wher
                 raise DatasetError("a split depends on scale and the table has no 'scale' column; give a reference "
                                    "size (--ref-size, the objects' native size in px of the spec's canvas) to derive "
                                    "it from the boxes", where=where)
+            if isinstance(ref_size, bool) or not isinstance(ref_size, (int, float)) \
+                    or not (np.isfinite(ref_size) and ref_size > 0):
+                raise DatasetError(f"the reference size must be a positive number of px, got {ref_size!r}",
+                                   where="--ref-size / ref_size")
             x0, y0, x1, y1 = bbox
             out[n] = np.sqrt(np.maximum(x1 - x0, 0) * np.maximum(y1 - y0, 0)) / ref_size
             continue
@@ -142,6 +150,10 @@ def depends_on_class(region) -> bool:
 
 
 def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: str = "table") -> Assignment:
+    for s in plan.splits:
+        if s.name in LABELS:
+            raise DatasetError(f"'{s.name}' is the label assign gives what no split holds "
+                               f"({', '.join(LABELS)}); rename the split", where=f"splits.{s.name}")
     params = derive_parameters(df, plan, ref_size, where)
     space = plan.space
     class_matters = any(depends_on_class(sp.region) for sp in plan.splits)
@@ -152,7 +164,7 @@ def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: s
     if cls is None:
         cls = np.zeros(len(df))
     t = np.column_stack([space[n].to_t(params[n].to_numpy(float)) for n in space.names if n != CLASS] + [cls])
-    labels = np.full(len(df), "none", dtype=object)
+    labels = np.full(len(df), NONE, dtype=object)
     off = ~((t >= space.t_lo - 1e-9) & (t <= space.t_hi + 1e-9))  # NaN (e.g. log of 0) counts as outside
     outside = {n: int(off[:, i].sum()) for i, n in enumerate(space.names) if n != CLASS and off[:, i].any()}
     labels[off.any(axis=1)] = OUTSIDE
@@ -160,9 +172,9 @@ def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: s
     for s in plan.splits:
         inside = s.region.contains_t(t)
         claimed += inside
-        labels[(labels == "none") & inside] = s.name
+        labels[(labels == NONE) & inside] = s.name
     if plan.guard is not None:
-        labels[(labels == "none") & plan.guard.contains_t(t)] = "guard"
+        labels[(labels == NONE) & plan.guard.contains_t(t)] = GUARD
     out = df.copy()
     out[SPLIT_COLUMN] = labels
     counts = pd.Series(labels).value_counts().to_dict()
@@ -173,7 +185,7 @@ def assign(plan: Plan, df: pd.DataFrame, ref_size: float | None = None, where: s
 def default_output(table: str | Path) -> Path:
     """`<table>.assigned.<ext>` beside the input: Parquet for a Parquet file or folder, TSV
     for a TSV, CSV otherwise."""
-    p = Path(table)
+    p = Path(table).absolute()  # '.' has no name of its own
     suffix = p.suffix.lower()
     if p.is_dir() or suffix in PARQUET_SUFFIXES:
         ext = suffix if suffix in PARQUET_SUFFIXES else ".parquet"

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 from contextlib import contextmanager
@@ -51,6 +52,17 @@ def _cmd_assign(a) -> int:
         print(line, file=said)
     print("wrote " + ", ".join("stdout" if is_stdout(p) else str(p) for p in paths), file=said)
     return 0
+
+
+def _size_px(text: str) -> float:
+    """A positive, finite size in px (--ref-size)."""
+    try:
+        v = float(text)
+    except ValueError:
+        v = float("nan")
+    if not (math.isfinite(v) and v > 0):
+        raise argparse.ArgumentTypeError(f"'{text}' is not a positive size in px (e.g. 32)")
+    return v
 
 
 def _shard(text: str):
@@ -352,7 +364,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="an image whose objects lie in different splits: drop it, keep it in a 'mixed' split, "
                         "or give it its largest object's split")
     q.add_argument("--replace-split", action="store_true", help="replace a table's existing split column")
-    q.add_argument("--ref-size", type=float, default=None,
+    q.add_argument("--ref-size", type=_size_px, default=None,
                    help="native object size in px of the spec's canvas, to derive scale from boxes (only where a split depends on scale)")
     q.set_defaults(run=_cmd_assign)
 
@@ -425,7 +437,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--splits", default=None, help="for annotated data: the folder `augsplit assign` wrote, a folder of "
                                                   "<split>.json / <split>.txt files, or a table with image_id and split")
     q.add_argument("--images", default=None, metavar="DIR", help="folder COCO file names resolve in (default: the JSON's folder)")
-    q.add_argument("--ref-size", type=float, default=None, help="native object size in px of the spec's canvas, to audit scale")
+    q.add_argument("--ref-size", type=_size_px, default=None, help="native object size in px of the spec's canvas, to audit scale")
     q.add_argument("--spec", help="the spec whose axes, regions and guarantees the input is checked against")
     q.add_argument("--pair", type=_pair, action="append", metavar="A:B", help="splits to compare (repeatable; default: train against each other split)")
     q.add_argument("--axis", type=_axis, action="append", metavar="NAME=LO:HI[:circular|:log]", help="an axis to audit when there is no spec")

@@ -62,10 +62,9 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
 def _wanted_pairs(plan, pairs, labelled: list, splits) -> list:
     """The pairs to audit: the spec's (or those named), else "train" against every other
     labelled split; each split named must have images in the assignment."""
-    from ..assign import OUTSIDE
-    from ..formats.placement import DROPPED, EMPTY, MIXED
+    from ..assign import LABELS
 
-    present = [s for s in labelled if s not in ("none", "guard", OUTSIDE, DROPPED, MIXED, EMPTY)]
+    present = [s for s in labelled if s not in LABELS]
     if plan is not None:
         wanted = _pairs(plan, pairs)
     elif pairs:

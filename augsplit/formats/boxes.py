@@ -138,7 +138,10 @@ def polygons_mask(polys, height: int, width: int, where: str, scale=(1.0, 1.0), 
     out = np.zeros((int(height), int(width)), bool)
     yc = np.arange(int(height)) + 0.5
     for k, p in enumerate(polys):
-        a = np.asarray(p, dtype=float).reshape(-1)
+        try:
+            a = np.asarray(p, dtype=float).reshape(-1)
+        except (ValueError, TypeError, OverflowError):
+            a = np.zeros(0)
         if a.size < 6 or a.size % 2 or not np.all(np.isfinite(a)):
             raise DatasetError("a polygon is at least three x, y pairs of finite numbers", where=f"{where} polygon {k}")
         xy = a.reshape(-1, 2) * np.asarray(scale, float) - np.asarray(offset, float)
@@ -184,6 +187,23 @@ def check_boxes(df: pd.DataFrame, where: str) -> None:
     bad = size[:, 0] * size[:, 1] > MAX_PIXELS
     if bad.any():
         _refuse(df, bad, f"images larger than {MAX_PIXELS} px", where)
+
+
+def inside_file(root: Path, p: Path) -> Path:
+    """`p` if, links followed, it is a regular file inside the folder `root` (an annotation
+    file, label file or image a dataset names); else a one-line DatasetError naming it:
+    augsplit reads nothing outside the folders it is given."""
+    base = Path(root).resolve()
+    try:
+        real = Path(p).resolve(strict=True)
+    except (OSError, RuntimeError):  # a broken link or a loop
+        raise DatasetError("is a link to nothing (or a loop of links)", where=str(p)) from None
+    if not real.is_relative_to(base):
+        raise DatasetError(f"is a link out of the dataset folder {base} (to {real}); augsplit reads only "
+                           "inside the folders it is given", where=str(p))
+    if not real.is_file():
+        raise DatasetError("is not a regular file (a folder, FIFO or device)", where=str(p))
+    return Path(p)
 
 
 def image_path(root: Path, name: str, where: str) -> Path:

@@ -4,6 +4,7 @@ RLE masks) and categories -> the per-object table. The JSON itself is kept to wr
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import numpy as np
@@ -48,6 +49,8 @@ def _load(p: Path, where: str) -> dict:
         data = json.loads(p.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise DatasetError(f"not valid JSON: {exc}", where=where) from None
+    except RecursionError:
+        raise DatasetError("not a COCO file: its JSON is nested too deep to read", where=where) from None
     if not isinstance(data, dict) or not isinstance(data.get("images"), list) or not isinstance(data.get("annotations"), list):
         raise DatasetError("a COCO file is an object with 'images' and 'annotations' lists", where=where)
     return data
@@ -55,21 +58,50 @@ def _load(p: Path, where: str) -> dict:
 
 def _categories(data: dict, where: str) -> dict:
     """Category id -> name."""
-    cats = {}
-    for k, c in enumerate(data.get("categories") or []):
+    cats: dict = {}
+    listed = data.get("categories") or []
+    if not isinstance(listed, list):
+        raise DatasetError(f"'categories' is a list, not {type(listed).__name__}", where=where)
+    for k, c in enumerate(listed):
+        at = f"{where} categories[{k}]"
         if not isinstance(c, dict) or "id" not in c:
-            raise DatasetError("a category has an 'id' and a 'name'", where=f"{where} categories[{k}]")
-        cats[c["id"]] = str(c.get("name", c["id"]))
+            raise DatasetError("a category has an 'id' and a 'name'", where=at)
+        cid = _id(c["id"], "the category's id", at)
+        if cid in cats:
+            raise DatasetError(f"category id {cid!r} appears twice", where=at)
+        cats[cid] = str(c.get("name", cid))
     return cats
+
+
+def _id(value, what: str, where: str):
+    """An id as COCO writes one: an integer or a string (a list, object or true/false is refused)."""
+    if isinstance(value, bool) or not isinstance(value, (int, str)):
+        raise DatasetError(f"{what} is {json.dumps(value)[:40]}, not an integer or a string", where=where)
+    return value
+
+
+def _number(value, what: str, where: str) -> float:
+    """A finite JSON number (not true/false, not too large for a float)."""
+    try:
+        ok = not isinstance(value, bool) and isinstance(value, (int, float)) and math.isfinite(float(value))
+    except OverflowError:
+        ok = False
+    if not ok:
+        raise DatasetError(f"{what} is {json.dumps(value)[:40]}, not a finite number", where=where)
+    return float(value)
 
 
 def _image_table(data: dict, root: Path, where: str) -> pd.DataFrame:
     """One row per image (id, file, width, height); sizes the JSON lacks come from the files."""
     images = []
     for k, im in enumerate(data["images"]):
+        at = f"{where} images[{k}]"
         if not isinstance(im, dict) or "id" not in im:
-            raise DatasetError("an image has an 'id', 'file_name', 'width' and 'height'", where=f"{where} images[{k}]")
-        images.append((im["id"], str(im.get("file_name", "")), im.get("width"), im.get("height")))
+            raise DatasetError("an image has an 'id', 'file_name', 'width' and 'height'", where=at)
+        size = [None if im.get(c) is None else _number(im[c], f"the image's {c}", at) for c in ("width", "height")]
+        if any(v is not None and v <= 0 for v in size):
+            raise DatasetError(f"the image's size {size[0]} x {size[1]} is not positive", where=at)
+        images.append((_id(im["id"], "the image's id", at), str(im.get("file_name", "")), *size))
     img = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
     _sizes_from_files(img, root)
     if img["image_id"].duplicated().any():
@@ -84,15 +116,19 @@ def _annotation_columns(data: dict, by_id: dict, cats: dict, where: str) -> tupl
     raw_box = []
     for k, a in enumerate(data["annotations"]):
         at = f"{where} annotations[{k}]"
-        if not isinstance(a, dict) or a.get("image_id") not in by_id:
+        if not isinstance(a, dict):
+            raise DatasetError("an annotation is an object with 'image_id', 'category_id' and 'bbox'", where=at)
+        if _id(a.get("image_id"), "the annotation's image_id", at) not in by_id:
             raise DatasetError("the annotation's image_id is not among the images", where=at)
         box = a.get("bbox")
         seg = a.get("segmentation") or None
-        if not (isinstance(box, list) and len(box) == 4):
+        if isinstance(box, list) and len(box) == 4:
+            box = [_number(v, f"bbox[{i}]", at) for i, v in enumerate(box)]
+        else:
             if seg is None:
                 raise DatasetError("the annotation has neither a bbox [x, y, w, h] nor a segmentation", where=at)
             box = [np.nan] * 4  # taken from the mask below
-        if a.get("category_id") not in cats:
+        if _id(a.get("category_id"), "the annotation's category_id", at) not in cats:
             raise DatasetError(f"category_id {a.get('category_id')!r} is not among the categories", where=at)
         cols["image_id"].append(a["image_id"])
         cols["label"].append(cats[a["category_id"]])

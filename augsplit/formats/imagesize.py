@@ -3,6 +3,8 @@ decoding its pixels; other formats are decoded once with OpenCV."""
 
 from __future__ import annotations
 
+import os
+import stat
 import struct
 from pathlib import Path
 
@@ -15,6 +17,8 @@ def image_size(path: str | Path) -> tuple[int, int]:
     """(width, height) in px; DatasetError naming the file if it is missing or unreadable."""
     p = Path(path)
     try:
+        if not stat.S_ISREG(os.stat(p).st_mode):  # a FIFO would block the read for ever
+            raise DatasetError("is not a regular file (a folder, FIFO or device)", where=str(p))
         with open(p, "rb") as f:
             head = f.read(32)
             size = _from_header(head, f)

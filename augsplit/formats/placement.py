@@ -13,14 +13,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..assign import LABEL_COLUMNS, OUTSIDE, SPLIT_COLUMN, Assignment, assign
+from ..assign import DROPPED, EMPTY, LABEL_COLUMNS, MIXED, OUTSIDE, SPLIT_COLUMN, Assignment, assign
 from ..errors import DatasetError
-from .table import read_table
+from .table import open_table_file, read_table
 from .boxes import BOX, CONVENTIONS, Objects, box_columns, check_boxes, looks_like_boxes, object_frame, to_px, to_xyxy
 
 FORMATS = ("auto", "coco", "yolo", "voc", "table")
 MIXED_RULES = ("drop", "keep", "largest")
-MIXED, DROPPED, EMPTY = "mixed", "dropped", "empty"
 OBJECT_SPLIT = "object_split"
 IMAGE_KEY_COLUMNS = ("image_id", "file_name", "file", "image")
 SIZE_COLUMNS = (("image_width", "image_height"), ("width", "height"))
@@ -69,7 +68,9 @@ def open_objects(path, fmt: str = "auto", boxes: BoxOptions = BoxOptions(), imag
         return read_voc(path)
     if fmt != "table":
         raise DatasetError(f"unknown format {fmt!r} (use {', '.join(FORMATS)})", where=str(path))
-    df = read_table(path)
+    # every CSV cell as written (ids like 007, labels like 1, NA): the split column is added to
+    # the user's table and nothing else in it changes; numbers are parsed where they are used
+    df = read_table(path, text=open_table_file(path).columns)
     return table_objects(df, boxes, str(path), default_size, Path(path)) or df
 
 

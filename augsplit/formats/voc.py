@@ -8,13 +8,14 @@ Layouts: ROOT/Annotations/*.xml with images in ROOT/JPEGImages/, or a folder of 
 
 from __future__ import annotations
 
+import os
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
 import pandas as pd
 
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, object_frame
+from .boxes import Objects, check_boxes, inside_file, object_frame
 
 MAX_XML_BYTES = 16 << 20
 
@@ -30,14 +31,14 @@ def read_voc(path: str | Path) -> Objects:
         raise DatasetError("a VOC dataset is a folder of XML files (or one with Annotations/)", where=str(p))
     ann = p / "Annotations" if (p / "Annotations").is_dir() else p
     images_dir = p / "JPEGImages" if (p / "JPEGImages").is_dir() else ann
-    files = sorted(ann.glob("*.xml"))
+    files = [inside_file(p, f) for f in sorted(ann.glob("*.xml"))]
     if not files:
         raise DatasetError("no XML files found", where=str(ann))
     images, cols = [], {c: [] for c in ("image_id", "file", "width", "height", "label", "object_id",
                                         "bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")}
     for f in files:
         image_id, name, w, h, objs = _parse(f)
-        file = (images_dir / name).relative_to(p).as_posix() if name else ""
+        file = _image_file(p, images_dir, name, f) if name else ""
         images.append((image_id, file, w, h))
         for k, (label, (x0, y0, x1, y1)) in enumerate(objs):
             for c, v in zip(cols, (image_id, file, w, h, label, k, x0 - 1.0, y0 - 1.0, x1, y1)):
@@ -45,6 +46,16 @@ def read_voc(path: str | Path) -> Objects:
     objects = object_frame(cols, len(cols["label"]))
     check_boxes(objects, str(ann))
     return Objects(objects, pd.DataFrame(images, columns=["image_id", "file", "width", "height"]), "voc", p, p)
+
+
+def _image_file(root: Path, images_dir: Path, name: str, f: Path) -> str:
+    """The image's path relative to the dataset folder, from the file name an XML gives;
+    a name leading out of the folder (absolute, or through '..') is refused."""
+    q = Path(os.path.normpath(images_dir / name))
+    if not q.is_relative_to(root):
+        raise DatasetError(f"<filename> {name!r} leads out of the dataset folder {root}; augsplit reads only "
+                           "inside the folders it is given", where=str(f))
+    return q.relative_to(root).as_posix()
 
 
 def _parse(f: Path):

@@ -10,11 +10,13 @@ split) and `augsplit-splits.json`, the list of files augsplit wrote there: a rer
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from ..assign import NONE
 from ..errors import DatasetError
 from ..io import write_text_atomic
 from .boxes import Objects
@@ -27,7 +29,7 @@ LIST_SUFFIX = {"coco": ".json", "yolo": ".txt", "voc": ".txt"}
 
 def default_out(path: str | Path, kind: str) -> Path:
     """Where per-split files go by default: `<input>.splits` beside the input."""
-    p = Path(path)
+    p = Path(path).absolute()  # '.' has no name of its own
     return p.with_name((p.stem if p.is_file() else p.name) + ".splits")
 
 
@@ -38,7 +40,7 @@ def write_result(result, path: str | Path, out: str | Path | None = None, replac
     from .table import output_kind, write_table
 
     if isinstance(result, Placed) and result.source.kind != "table":
-        return write_folder(result, out or default_out(path, result.source.kind))
+        return write_folder(result, _folder_out(out, result.source.kind) if out else default_out(path, result.source.kind))
     table = result.table(replace_split) if isinstance(result, Placed) else result.table
     target = out or default_output(path)
     refuse_input(target, path)  # the input itself, a symlink, an unknown extension: refused
@@ -49,6 +51,19 @@ def write_result(result, path: str | Path, out: str | Path | None = None, replac
     return [target]
 
 
+def _folder_out(out, kind: str) -> Path:
+    """--out for per-split files: a folder (not '-', a link or a file), whose name does not
+    look like a table's (a COCO, YOLO or VOC input is split into a folder of files)."""
+    from ..io import check_folder_target
+    from .table import PARQUET_SUFFIXES, TEXT_SUFFIXES
+
+    p = check_folder_target(out)
+    if not p.exists() and p.suffix.lower() in set(PARQUET_SUFFIXES) | set(TEXT_SUFFIXES):
+        raise DatasetError(f"a {kind.upper()} input is split into a folder of per-split files and splits.csv; "
+                           f"--out names that folder, not a {p.suffix} table", where=str(p))
+    return p
+
+
 def write_folder(placed: Placed, out: str | Path) -> list[Path]:
     """Per-split files for COCO / YOLO / VOC input, splits.csv and the marker (see module doc)."""
     src = placed.source
@@ -57,6 +72,9 @@ def write_folder(placed: Placed, out: str | Path) -> list[Path]:
     images = placed.images
     names = [f"{s}{suffix}" for s in placed.splits] + [SPLITS_CSV]
     ours = _prepare(out, names)
+    for n in sorted(set(names) | ours | {MARKER}):  # written, replaced or removed below
+        if (out / n).exists() and os.path.samefile(out / n, src.path):
+            raise DatasetError("is the input; augsplit never replaces its input, give another --out", where=str(out / n))
     written = []
     for s in placed.splits:
         sel = images[images["split"] == s]
@@ -123,13 +141,41 @@ def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
     raise DatasetError("no such file or folder", where=str(p))
 
 
-def _keys(objs: Objects) -> dict[str, int]:
-    """Every name an image may be listed by (id, file, absolute path, stem) -> its position."""
-    out: dict[str, int] = {}
+def _key_maps(objs: Objects) -> dict[str, dict[str, int | None]]:
+    """The names an image may be listed by, one map per kind: its id; its file as written or
+    as an absolute path; the file's stem. A name two images share maps to None."""
+    maps: dict[str, dict[str, int | None]] = {"image id": {}, "file": {}, "file stem": {}}
+
+    def put(kind: str, key: str, k: int) -> None:
+        m = maps[kind]
+        m[key] = k if m.get(key, k) == k else None
+
     for k, (iid, f) in enumerate(zip(objs.images["image_id"], objs.images["file"])):
-        for key in (str(iid), str(f), str((objs.root / str(f)).resolve()), Path(str(f)).stem):
-            out.setdefault(key, k)
-    return out
+        put("image id", str(iid), k)
+        put("file", str(f), k)
+        put("file", str((objs.root / str(f)).resolve()), k)
+        put("file stem", Path(str(f)).stem, k)
+    return maps
+
+
+def _positions(names: list[str], objs: Objects, kinds: tuple[str, ...], where: str) -> list[int]:
+    """The position of each listed image, every name read as the first of `kinds` (image id,
+    file, file stem) that names all of them: one list is never read half as ids and half as
+    file names, so an id never lands on the image whose file is called that."""
+    maps = _key_maps(objs)
+    fewest = None
+    for kind in kinds:
+        m = maps[kind]
+        miss = [n for n in names if n not in m]
+        if not miss:
+            shared = [n for n in names if m[n] is None]
+            if shared:
+                raise DatasetError(f"{len(shared)} listed {kind}s name more than one image (e.g. "
+                                   f"{', '.join(shared[:3])})", where=where)
+            return [m[n] for n in names]
+        fewest = miss if fewest is None or len(miss) < len(fewest) else fewest
+    _check_missing(fewest or [], where)
+    return []
 
 
 def _from_table(df: pd.DataFrame, objs: Objects, where: str) -> np.ndarray:
@@ -138,22 +184,15 @@ def _from_table(df: pd.DataFrame, objs: Objects, where: str) -> np.ndarray:
     key = next((c for c in ("image_id", "file", "file_name") if c in df.columns), None)
     if key is None:
         raise DatasetError("no 'image_id' or 'file' column to match images by", where=where)
-    keys = _keys(objs)
-    out = np.full(len(objs.images), "none", dtype=object)
-    miss = []
-    for k, s in zip(df[key].astype(str), df["split"].astype(str)):
-        i = keys.get(k)
-        if i is None:
-            miss.append(k)
-        else:
-            out[i] = s
-    _check_missing(miss, where)
+    kinds = ("image id",) if key == "image_id" else ("file", "file stem")
+    out = np.full(len(objs.images), NONE, dtype=object)
+    for i, s in zip(_positions(df[key].astype(str).tolist(), objs, kinds, where), df["split"].astype(str)):
+        out[i] = s
     return out
 
 
 def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
-    keys = _keys(objs)
-    out = np.full(len(objs.images), "none", dtype=object)
+    out = np.full(len(objs.images), NONE, dtype=object)
     files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix in (".json", ".txt"))
     if not files:
         raise DatasetError("no per-split files (<split>.json or <split>.txt) found", where=str(folder))
@@ -163,12 +202,12 @@ def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
                 names = [str(im["id"]) for im in json.loads(f.read_text(encoding="utf-8"))["images"]]
             except (ValueError, KeyError, TypeError):
                 raise DatasetError("not a COCO file with an 'images' list", where=str(f)) from None
+            kinds: tuple[str, ...] = ("image id",)
         else:
             names = [s.strip() for s in f.read_text(encoding="utf-8").splitlines() if s.strip()]
-        miss = [n for n in names if n not in keys]
-        _check_missing(miss, str(f))
-        for n in names:
-            out[keys[n]] = f.stem
+            kinds = ("image id", "file", "file stem")
+        for i in _positions(names, objs, kinds, str(f)):
+            out[i] = f.stem
     return out
 
 

@@ -9,13 +9,14 @@ Image sizes are read from the image files' headers.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, object_frame, to_px, to_xyxy
+from .boxes import Objects, check_boxes, inside_file, object_frame, to_px, to_xyxy
 from .imagesize import IMAGE_SUFFIXES, image_size
 
 NAME_FILES = ("classes.txt", "obj.names")
@@ -34,7 +35,8 @@ def read_yolo(path: str | Path) -> Objects:
         raise DatasetError("a YOLO dataset is a folder (with labels/ and images/)", where=str(p))
     root, labels_dir, images_dir = _layout(p)
     names = _class_names(root)
-    pairs = _pairs(root, labels_dir, images_dir)
+    pairs = {rel: (lab if lab is None else inside_file(root, lab), img if img is None else inside_file(root, img))
+             for rel, (lab, img) in _pairs(root, labels_dir, images_dir).items()}
     if not pairs:
         raise DatasetError("no label files (*.txt) found", where=str(p))
     images, cols = [], {c: [] for c in ("image_id", "label", "object_id", "segmentation", "box")}
@@ -68,10 +70,11 @@ def _pairs(root: Path, labels_dir: Path | None, images_dir: Path | None) -> dict
     if labels_dir is None:
         return {lab.relative_to(root).with_suffix(""): (lab, img) for lab, img in _flat_pairs(root)}
     pairs = {}
-    for lab in sorted(labels_dir.rglob("*.txt")):
+    for lab in sorted(q for q in labels_dir.rglob("*.txt") if q.is_file() or q.is_symlink()):
         rel = lab.relative_to(labels_dir).with_suffix("")
         pairs[rel] = (lab, _image_for(images_dir / rel))
-    for img in sorted(q for q in images_dir.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES and q.is_file()):
+    for img in sorted(q for q in images_dir.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES
+                      and (q.is_file() or q.is_symlink())):
         pairs.setdefault(img.relative_to(images_dir).with_suffix(""), (None, img))  # no label file: no objects
     return pairs
 
@@ -117,7 +120,7 @@ def _image_for(stem: Path) -> Path | None:
     for suf in IMAGE_SUFFIXES:
         for s in (suf, suf.upper()):
             q = stem.with_name(stem.name + s)
-            if q.is_file():
+            if q.is_file() or q.is_symlink():  # a link is judged by the reader (inside_file)
                 return q
     return None
 
@@ -126,10 +129,10 @@ def _class_names(root: Path) -> dict[str, str]:
     """Class number (as written) -> name, from data.yaml `names:` or a names file."""
     for name in YAML_FILES:
         f = root / name
-        if f.is_file():
+        if os.path.lexists(f):
             from ..spec import read_yaml
 
-            data = read_yaml(f)
+            data = read_yaml(inside_file(root, f))
             names = data.get("names") if isinstance(data, dict) else None
             if isinstance(names, list):
                 return {str(i): str(v) for i, v in enumerate(names)}
@@ -138,8 +141,11 @@ def _class_names(root: Path) -> dict[str, str]:
             raise DatasetError("names: is a list of class names (or a mapping number: name)", where=str(f))
     for name in NAME_FILES:
         f = root / name
-        if f.is_file():
-            lines = [s.strip() for s in f.read_text(encoding="utf-8").splitlines()]
+        if os.path.lexists(f):
+            try:
+                lines = [s.strip() for s in inside_file(root, f).read_text(encoding="utf-8").splitlines()]
+            except UnicodeDecodeError:
+                raise DatasetError("not a UTF-8 text file of class names, one per line", where=str(f)) from None
             return {str(i): s for i, s in enumerate(x for x in lines if x)}
     return {}
 

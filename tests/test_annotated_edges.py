@@ -1,0 +1,259 @@
+"""`assign` and `audit` on users' annotated data at the edges: an output that would replace the
+input, links that lead out of the dataset folder, split lists whose ids look like other images'
+file names, tables kept as written, split names that clash with assign's own labels, and
+malformed COCO fields. Each case was seen to fail (data loss, a read outside the folder, a
+wrong verdict or a traceback) before its fix."""
+
+from __future__ import annotations
+
+import json
+import os
+
+import cv2
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+
+from augsplit.cli import main
+
+LANES = {
+    "seed": 1,
+    "canvas": {"width": 100, "height": 100, "mode": "gray"},
+    "axes": {"x": {"range": [0, 1], "unit": "frac"}, "y": {"range": [0, 1], "unit": "frac"}},
+    "splits": {"train": {"region": {"x": [0, 0.4]}, "count": 10}, "test": {"region": {"x": [0.6, 1.0]}, "count": 10}},
+}
+
+
+def cli(*args) -> int:
+    return main([str(a) for a in args])
+
+
+def spec(tmp_path, d=None, name="lanes.yaml"):
+    p = tmp_path / name
+    p.write_text(yaml.safe_dump(d or LANES, sort_keys=False))
+    return p
+
+
+def coco(boxes, files=None):
+    """A COCO document: image k+1 (file k+1.png unless `files`) holds one 'car' with boxes[k] (x, y, w, h)."""
+    files = files or [f"{k + 1}.png" for k in range(len(boxes))]
+    return {"images": [{"id": k + 1, "file_name": f, "width": 100, "height": 100} for k, f in enumerate(files)],
+            "annotations": [{"id": k + 1, "image_id": k + 1, "category_id": 1, "bbox": list(b)} for k, b in enumerate(boxes)],
+            "categories": [{"id": 1, "name": "car"}]}
+
+
+def write_json(path, doc):
+    path.write_text(json.dumps(doc))
+    return path
+
+
+# ---- data loss ---------------------------------------------------------------------------------
+
+
+def test_assign_never_replaces_its_input_among_its_own_earlier_outputs(tmp_path, capsys):
+    s = spec(tmp_path)
+    out = tmp_path / "ow"
+    out.mkdir()
+    src = write_json(out / "all.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    assert cli("assign", s, src, "--out", out) == 0  # writes ow/train.json, ow/test.json
+    before = (out / "train.json").read_bytes()
+    swapped = dict(LANES, splits={"train": LANES["splits"]["test"], "test": LANES["splits"]["train"]})
+    assert cli("assign", spec(tmp_path, swapped, "swap.yaml"), out / "train.json", "--out", out) == 2
+    err = capsys.readouterr().err
+    assert "is the input" in err and "train.json" in err
+    assert (out / "train.json").read_bytes() == before  # the input is untouched
+
+
+@pytest.mark.parametrize("out", ["-", "splits.csv"])
+def test_assign_of_coco_refuses_an_out_that_is_not_a_folder_name(tmp_path, capsys, monkeypatch, out):
+    monkeypatch.chdir(tmp_path)  # '-' would be made here
+    src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10)]))
+    assert cli("assign", spec(tmp_path), src, "--out", out) == 2
+    assert ("not '-'" if out == "-" else "not a .csv table") in capsys.readouterr().err
+    assert not (tmp_path / out).exists()
+
+
+def test_assign_of_the_working_folder_without_out_is_one_line(tmp_path, capsys, monkeypatch):
+    y = tmp_path / "y"
+    (y / "images").mkdir(parents=True)
+    (y / "labels").mkdir()
+    cv2.imwrite(str(y / "images" / "0.png"), np.zeros((100, 100), np.uint8))
+    (y / "labels" / "0.txt").write_text("0 0.1 0.5 0.1 0.1\n")
+    s = spec(tmp_path)
+    monkeypatch.chdir(y)
+    assert cli("assign", s, ".") == 0  # written beside the folder, as for any other input
+    assert (tmp_path / "y.splits" / "train.txt").is_file()
+
+
+# ---- reading outside the folder ------------------------------------------------------------------
+
+
+def _yolo_with_outside_link(tmp_path, what):
+    y, outside = tmp_path / "y", tmp_path / "outside"
+    for d in (y / "images", y / "labels", outside):
+        d.mkdir(parents=True)
+    for folder, name in ((y / "images", "0.png"), (outside, "s.png")):
+        cv2.imwrite(str(folder / name), np.zeros((100, 100), np.uint8))
+    (y / "labels" / "0.txt").write_text("0 0.1 0.5 0.1 0.1\n")
+    (outside / "s.txt").write_text("0 0.9 0.5 0.1 0.1\n")
+    (outside / "names.txt").write_text("car\n")
+    if what == "label":
+        (y / "labels" / "9.txt").symlink_to(outside / "s.txt")
+        cv2.imwrite(str(y / "images" / "9.png"), np.zeros((100, 100), np.uint8))
+    elif what == "image":
+        (y / "labels" / "9.txt").write_text("0 0.9 0.5 0.1 0.1\n")
+        (y / "images" / "9.png").symlink_to(outside / "s.png")
+    else:
+        (y / "classes.txt").symlink_to(outside / "names.txt")
+    return y
+
+
+@pytest.mark.parametrize("what", ["label", "image", "class names"])
+def test_yolo_links_out_of_the_folder_are_refused_by_assign_and_audit(tmp_path, capsys, what):
+    y = _yolo_with_outside_link(tmp_path, what)
+    out = tmp_path / "sp"
+    assert cli("assign", spec(tmp_path), y, "--out", out) == 2
+    err = capsys.readouterr().err
+    assert "link out of the dataset folder" in err and "Traceback" not in err
+    assert not out.exists()
+    os.makedirs(out)
+    (out / "splits.csv").write_text("image_id,split\n0,train\n")
+    assert cli("audit", y, "--splits", out) == 2
+    assert "link out of the dataset folder" in capsys.readouterr().err
+
+
+def test_yolo_links_inside_the_folder_are_read(tmp_path):
+    y = _yolo_with_outside_link(tmp_path, "label")
+    (y / "labels" / "9.txt").unlink()
+    (y / "spare.txt").write_text("0 0.9 0.5 0.1 0.1\n")
+    (y / "labels" / "9.txt").symlink_to(y / "spare.txt")
+    assert cli("assign", spec(tmp_path), y, "--out", tmp_path / "sp") == 0
+    got = pd.read_csv(tmp_path / "sp" / "splits.csv", dtype=str)
+    assert dict(zip(got["image_id"], got["split"])) == {"0": "train", "9": "test"}
+
+
+def _voc(folder, name, filename="a.png", x=(10, 20)):
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / name).write_text(
+        f"<annotation><filename>{filename}</filename><size><width>100</width><height>100</height></size>"
+        f"<object><name>car</name><bndbox><xmin>{x[0]}</xmin><ymin>40</ymin><xmax>{x[1]}</xmax><ymax>50</ymax>"
+        "</bndbox></object></annotation>")
+
+
+@pytest.mark.parametrize("case", ["xml link", "absolute filename", "dotdot filename", "folder", "broken link"])
+def test_voc_inputs_leading_out_of_the_folder_are_one_line(tmp_path, capsys, case):
+    voc, outside = tmp_path / "voc", tmp_path / "outside"
+    _voc(voc, "a.xml")
+    _voc(outside, "b.xml", x=(80, 90))
+    if case == "xml link":
+        (voc / "b.xml").symlink_to(outside / "b.xml")
+    elif case == "absolute filename":
+        _voc(voc, "c.xml", filename="/etc/passwd")
+    elif case == "dotdot filename":
+        _voc(voc, "c.xml", filename="../outside/b.png")
+    elif case == "folder":
+        (voc / "c.xml").mkdir()
+    else:
+        (voc / "c.xml").symlink_to(tmp_path / "nothing.xml")
+    assert cli("assign", spec(tmp_path), voc, "--out", tmp_path / "sp") == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and ("out of the dataset folder" in err or "not a regular file" in err
+                                       or "link to nothing" in err)
+    assert not (tmp_path / "sp").exists()
+
+
+def test_a_fifo_named_as_a_coco_image_is_refused_not_waited_on(tmp_path, capsys):
+    doc = coco([(10, 40, 10, 10)])
+    del doc["images"][0]["width"], doc["images"][0]["height"]  # read from the file's header
+    os.mkfifo(tmp_path / "1.png")
+    src = write_json(tmp_path / "a.json", doc)
+    assert cli("assign", spec(tmp_path), src, "--out", tmp_path / "sp") == 2  # returns: no read blocks
+    assert "not a regular file" in capsys.readouterr().err
+
+
+# ---- verdicts ----------------------------------------------------------------------------------------
+
+
+def test_a_split_list_of_ids_is_read_as_ids_even_where_an_id_is_another_image_file_stem(tmp_path, capsys):
+    # image 1 is stored as 2.png and image 2 as 1.png: the split file's id 2 is image 2, not 2.png
+    boxes = [(24, 40, 30, 20), (80, 40, 10, 10), (46, 40, 30, 20), (5, 40, 10, 10)]
+    src = write_json(tmp_path / "a.json", coco(boxes, ["2.png", "1.png", "3.png", "4.png"]))
+    s = spec(tmp_path)
+    assert cli("assign", s, src, "--out", tmp_path / "sp") == 0
+    capsys.readouterr()
+    assert cli("audit", src, "--splits", tmp_path / "sp", "--out", tmp_path / "au") in (0, 1)
+    doc = json.loads((tmp_path / "au" / "audit.json").read_text())
+    fp = next(c for c in doc["checks"] if c["name"] == "footprint_overlap")
+    # by hand: train image 1 covers x 24-54, test image 3 covers x 46-76: they share pixels
+    assert fp["verdict"] != "pass", fp
+
+
+def test_assign_keeps_every_csv_cell_as_written_and_matches_labels_as_written(tmp_path):
+    by_class = dict(LANES, splits={
+        "train": {"region": {"by_class": {"1": {"x": [0, 0.4]}, "*": {"x": [0.6, 1.0]}}}, "count": 10},
+        "test": {"region": {"by_class": {"1": {"x": [0.6, 1.0]}, "*": {"x": [0, 0.4]}}}, "count": 10}})
+    t = tmp_path / "t.csv"
+    t.write_text("image_id,x,y,class,code\n007,0.1,0.5,1,0012\n008,0.9,0.5,1,NA\n009,0.1,0.5,,\n")
+    assert cli("assign", spec(tmp_path, by_class, "c.yaml"), t, "--out", tmp_path / "o.csv") == 0
+    lines = (tmp_path / "o.csv").read_text().splitlines()
+    assert lines == ["image_id,x,y,class,code,split", "007,0.1,0.5,1,0012,train", "008,0.9,0.5,1,NA,test",
+                     "009,0.1,0.5,,,test"]  # a blank label is not class 1: it takes the '*' region
+
+
+@pytest.mark.parametrize("name", ["none", "outside", "guard", "mixed", "dropped", "empty"])
+def test_a_split_named_like_an_assign_label_is_refused(tmp_path, capsys, name):
+    d = dict(LANES, splits={"train": LANES["splits"]["train"], name: LANES["splits"]["test"]})
+    src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    assert cli("assign", spec(tmp_path, d), src, "--out", tmp_path / "sp") == 2
+    assert f"'{name}' is the label assign gives" in capsys.readouterr().err
+    assert not (tmp_path / "sp").exists()
+
+
+@pytest.mark.parametrize("value", ["0", "-10", "nan", "inf"])
+def test_ref_size_must_be_a_positive_size(tmp_path, capsys, value):
+    src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10)]))
+    with pytest.raises(SystemExit) as e:
+        cli("assign", spec(tmp_path), src, "--ref-size", value)
+    assert e.value.code == 2 and "positive size" in capsys.readouterr().err
+
+
+# ---- malformed COCO fields -------------------------------------------------------------------------
+
+
+def _broken(case):
+    doc = coco([(10, 10, 10, 10)])
+    a, im = doc["annotations"][0], doc["images"][0]
+    if case == "bbox text":
+        a["bbox"] = ["a", 1, 2, 3]
+    elif case == "bbox nested":
+        a["bbox"] = [[1], 1, 2, 3]
+    elif case == "bbox huge":
+        a["bbox"] = [10 ** 400, 1, 2, 3]
+    elif case == "width huge":
+        im["width"] = 10 ** 400
+    elif case == "category id list":
+        a["category_id"] = [1]
+    elif case == "image id list":
+        im["id"] = [1]
+    elif case == "annotation image_id object":
+        a["image_id"] = {}
+    elif case == "categories not a list":
+        doc["categories"] = 5
+    elif case == "polygon text":
+        del a["bbox"]
+        a["segmentation"] = [["a", "b", "c", "d", "e", "f"]]
+    elif case == "duplicate category":
+        doc["categories"].append({"id": 1, "name": "bus"})
+    return json.dumps(doc)
+
+
+@pytest.mark.parametrize("case", ["bbox text", "bbox nested", "bbox huge", "width huge", "category id list",
+                                  "image id list", "annotation image_id object", "categories not a list",
+                                  "polygon text", "duplicate category", "deep nesting"])
+def test_malformed_coco_is_one_line_exit_2(tmp_path, capsys, case):
+    src = tmp_path / "a.json"
+    src.write_text("[" * 100000 + "]" * 100000 if case == "deep nesting" else _broken(case))
+    assert cli("assign", spec(tmp_path), src, "--out", tmp_path / "sp") == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and "a.json" in err and len(err.strip().splitlines()) <= 2
