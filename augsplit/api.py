@@ -48,10 +48,13 @@ def score_predictions(dataset, predictions, *, train_split: str | None = None, r
     a pandas DataFrame. Returns a ScoreResult (its tables are DataFrames); writes nothing."""
     from .dataset import open_dataset
     from .score import dataset_roles, load_predictions, manifest_of, score
+    from .score.predictions import check_predictions
 
     folder = open_dataset(dataset)
     role_train, role_ref = dataset_roles(folder)
-    if not hasattr(predictions, "columns"):
+    if hasattr(predictions, "columns"):  # the checks a file's predictions pass, on a copy
+        predictions = check_predictions(predictions.copy(), "predictions DataFrame", probabilities=probabilities)
+    else:
         predictions = load_predictions(predictions, probabilities=probabilities)
     return score(manifest_of(folder), predictions, train_split or role_train or "train",
                  reference_split=reference_split or role_ref, allow_partial=allow_partial)

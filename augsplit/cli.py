@@ -149,13 +149,14 @@ def _cmd_preview(a) -> int:
 
 
 def _cmd_score(a) -> int:
-    from .io import check_folder_target, is_stdout
+    from .io import is_stdout
+    from .report_folder import check_report_folder
     from .score import run_score
+    from .score.report import REPORT_FILES
 
-    if a.out is None:
-        out = check_folder_target(Path(a.dataset) / "score")
-    else:
-        out = a.out if is_stdout(a.out) else _out_option(a.out)
+    out = Path(a.dataset) / "score" if a.out is None else a.out if is_stdout(a.out) else _out_option(a.out)
+    if not is_stdout(out):  # refused before the work, not after
+        check_report_folder(out, REPORT_FILES, [p for p in (a.dataset, a.predictions, a.compare) if p])
     run_score(a.dataset, a.predictions, out, compare=a.compare, train_split=a.train_split,
               reference_split=a.reference_split, allow_partial=a.allow_partial,
               probabilities=True if a.probabilities else None, echo=not is_stdout(out))
@@ -211,12 +212,14 @@ def _named_option(exc: AugsplitError, thresholds: dict, from_option: dict) -> Au
 
 
 def _cmd_audit(a) -> int:
-    from .audit.report import summary_table, write_reports
+    from .audit.report import REPORT_FILES, summary_table, write_reports
     from .audit.run import Thresholds
-    from .io import check_folder_target, is_stdout
+    from .io import is_stdout
+    from .report_folder import check_report_folder
 
+    inputs = [p for p in (a.input, a.splits, a.spec, a.column_map) if p is not None]
     if a.out is not None and not is_stdout(a.out):
-        check_folder_target(a.out)  # refused before the work, not after
+        check_report_folder(a.out, REPORT_FILES, inputs)  # refused before the work, not after
 
     thresholds = dict(a.threshold or [])
     try:  # every value typed and range-checked before anything is read
@@ -228,7 +231,7 @@ def _cmd_audit(a) -> int:
         result, out = _audit_input(a, thresholds, column_map, progress=not a.quiet and sys.stderr.isatty())
     except AugsplitError as exc:
         raise _named_option(exc, thresholds, from_option) from None
-    paths = write_reports(result, out)
+    paths = write_reports(result, out, inputs)
     if not is_stdout(out):  # with '-', stdout carries only audit.json
         print(summary_table(result))
         print(f"wrote {paths['json']} and {paths['html']}")
@@ -253,7 +256,8 @@ def _audit_column_map(a) -> tuple[dict, dict]:
 def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
     """Audit the input by its kind (annotations with a split assignment, an augsplit dataset, or
     a table); the result and the report folder."""
-    from .audit.entry import audit_dataset, audit_table, is_dataset
+    from .audit.entry import audit_dataset, audit_table
+    from .dataset.layout import is_dataset
 
     if a.splits is not None or _annotated(a.input):
         from .audit.annotated import audit_annotated
@@ -287,7 +291,7 @@ def _no_executor(a) -> None:
 
 def _annotated(path) -> bool:
     """A COCO JSON file or a YOLO / VOC folder (not an augsplit dataset or a table)."""
-    from .audit.entry import is_dataset
+    from .dataset.layout import is_dataset
     from .formats.placement import detect_format
 
     return Path(path).exists() and not is_dataset(path) and detect_format(path) in ("coco", "yolo", "voc")

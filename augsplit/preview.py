@@ -20,8 +20,9 @@ from .dataset import DatasetFolder, image_of, open_dataset, read_rows
 from .dataset import layout as lay
 from . import figures
 from .errors import DatasetError
-from .io import ensure_folder, output_path
+from .io import output_path
 from .render import add_footprint, footprint
+from .report_folder import report_folder
 from .scene import render_params
 from .space.axes import ANGLE_AXES
 from .threads import one_opencv_thread
@@ -91,13 +92,14 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
-    out = ensure_folder(out if out is not None else folder.root / PREVIEW_DIR)
-    paths = []
-    for s in built.plan.splits:
-        rows = df[df["split"] == s.name]
-        if len(rows):
-            paths.append(contact_sheet(folder, rows, out / f"contact_{s.name}.png", per_split, columns))
+    sheets = {f"contact_{s.name}.png": df[df["split"] == s.name] for s in built.plan.splits}
+    sheets = {name: rows for name, rows in sheets.items() if len(rows)}
+    for rows in sheets.values():  # every image a sheet shows is read before any file is written,
+        for _, row in rows.iloc[pick_rows(len(rows), per_split)].iterrows():  # so a damaged one
+            image_of(folder, row)  # leaves no half-made set of sheets behind
     cov = coverage(built, df)
+    out = report_folder(out if out is not None else folder.root / PREVIEW_DIR, [*sheets, COVERAGE_FILE], [root])
+    paths = [contact_sheet(folder, rows, out / name, per_split, columns) for name, rows in sheets.items()]
     paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
     return paths
 

@@ -221,12 +221,3 @@ def audit_table(table, spec_path=None, pairs=None, axes: dict | None = None, col
     return dataclasses.replace(merged, checks=(region_check,) + merged.checks)
 
 
-def is_dataset(path) -> bool:
-    """A folder holding an augsplit dataset, whole or not: its spec.json or its manifest parts (a folder missing spec.json is then refused as every command refuses it,
-    rather than audited as a table with no axes)."""
-    p = Path(path)
-    if not p.is_dir():
-        return False
-    manifest = p / lay.MANIFEST_DIR
-    return (p / lay.SPEC_FILE).exists() or (manifest.is_dir() and any(q.name.startswith("split=")
-                                                                      for q in manifest.iterdir()))

@@ -61,7 +61,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..io import ensure_folder, is_stdout, plain, write_output
+from ..io import is_stdout, plain, write_output
 from .result import AuditResult, CheckResult
 
 SCHEMA = "augsplit.audit/1"
@@ -273,10 +273,16 @@ def write_html(result: AuditResult, path) -> Path:
     return write_output(path, doc)
 
 
-def write_reports(result: AuditResult, out_dir) -> dict[str, Path]:
-    """audit.json and audit.html in `out_dir` (made if missing; its parent must exist). For
+REPORT_FILES = ("audit.json", "audit.html")
+
+
+def write_reports(result: AuditResult, out_dir, inputs=()) -> dict[str, Path]:
+    """audit.json and audit.html in `out_dir` (made if missing; its parent must exist; what may
+    be replaced there: augsplit.report_folder; `inputs`, the audited files, never are). For
     "-", audit.json goes to standard output and no HTML is written."""
+    from ..report_folder import report_folder
+
     if is_stdout(out_dir):
         return {"json": write_json(result, out_dir)}
-    out = ensure_folder(out_dir)
+    out = report_folder(out_dir, REPORT_FILES, inputs)
     return {"json": write_json(result, out / "audit.json"), "html": write_html(result, out / "audit.html")}

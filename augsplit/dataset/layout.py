@@ -27,6 +27,18 @@ IMAGE_RE = re.compile(r"(?P<split>.+)-\d{7,}\.(png|jpg|webp)")
 REPORT_SUFFIXES = (".json", ".html", ".csv", ".png")  # what audit, score and preview write
 
 
+def is_dataset(path) -> bool:
+    """A folder holding an augsplit dataset, whole or not: its spec.json or its manifest parts
+    (a folder missing spec.json is then refused as every command refuses it, rather than
+    audited as a table with no axes, or written into as if it were any folder)."""
+    p = Path(path)
+    if not p.is_dir():
+        return False
+    manifest = p / MANIFEST_DIR
+    return (p / SPEC_FILE).exists() or (manifest.is_dir() and any(q.name.startswith("split=")
+                                                                   for q in manifest.iterdir()))
+
+
 # the temporary name of an atomic write (io.temporary_name): .<final name>.tmp-<pid>-<hex>
 TEMPORARY_RE = re.compile(r"\.(?P<final>.+)\.tmp-\d+(?:-[0-9a-f]+)?")
 

@@ -42,9 +42,15 @@ def load_predictions(path, *, probabilities: bool | None = None) -> pd.DataFrame
     Classes are resolved against the dataset later, in `score`.
     """
     p = Path(path)
-    where = str(p)
     # class labels stay text so digit-named classes are not read as indices
     df = read_table(p, text=("image_id", *CLASS_COLUMNS[:2]), what="predictions file")
+    return check_predictions(df, str(p), probabilities=probabilities)
+
+
+def check_predictions(df: pd.DataFrame, where: str, *, probabilities: bool | None = None) -> pd.DataFrame:
+    """A predictions table (as `load_predictions` reads one) checked and put in shape, in
+    place: ids, one class column or per-class scores, finite scores, probabilities that sum
+    to one. A file's and a DataFrame's predictions pass the same checks."""
     df.columns = [str(c).strip() for c in df.columns]
     _check_ids(df, where)
     score_cols, class_col = _column_kinds(df, where)

@@ -11,7 +11,7 @@ from pathlib import Path
 import pandas as pd
 
 from augsplit.errors import DatasetError
-from augsplit.io import ensure_folder, is_stdout, plain, write_output
+from augsplit.io import is_stdout, plain, write_output
 
 from .distance import of_class
 from .plots import img_tag, plot_distance, plot_splits, plot_values
@@ -91,11 +91,16 @@ def compare_table_text(results) -> str:
 # ---- files -----------------------------------------------------------------------------------
 
 
+REPORT_FILES = ("score.json", "report.html")  # besides one CSV per table
+
+
 def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str = "augsplit score",
-                  intro_html: str = "") -> dict[str, Path]:
+                  intro_html: str = "", inputs=()) -> dict[str, Path]:
     """Write score.json, one CSV per table (prefixed by label when several), and report.html.
-    `out_dir` "-" prints score.json to standard output and writes nothing else."""
-    written: dict[str, Path] = {}
+    `out_dir` "-" prints score.json to standard output and writes nothing else. What may be
+    replaced in `out_dir`: augsplit.report_folder; `inputs` (the predictions) never are."""
+    from ..report_folder import report_folder
+
     several = len(results) > 1
     doc = {label: r.to_json() for label, r in results} if several else results[0][1].to_json()
     side = compare(results[0][1], results[1][1], (results[0][0], results[1][0])) if several else None
@@ -104,16 +109,15 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     text = json.dumps(plain(doc), indent=2, allow_nan=False)
     if is_stdout(out_dir):
         return {"score.json": write_output(out_dir, text + "\n")}
-    out = ensure_folder(out_dir)
-    written["score.json"] = write_output(out / "score.json", text)
+    docs = {"score.json": text}
     for label, r in results:
         for name, t in r.tables().items():
-            stem = f"{label}_{name}" if several else name
-            written[f"{stem}.csv"] = write_output(out / f"{stem}.csv", t.to_csv(index=False))
+            docs[f"{label}_{name}.csv" if several else f"{name}.csv"] = t.to_csv(index=False)
     if several:
-        written["comparison.csv"] = write_output(out / "comparison.csv", side.to_csv(index=False))
-    written["report.html"] = write_output(out / "report.html", render_html(results, title=title, intro_html=intro_html))
-    return written
+        docs["comparison.csv"] = side.to_csv(index=False)
+    docs["report.html"] = render_html(results, title=title, intro_html=intro_html)
+    out = report_folder(out_dir, list(docs), inputs)
+    return {name: write_output(out / name, data) for name, data in docs.items()}
 
 
 # ---- HTML ------------------------------------------------------------------------------------

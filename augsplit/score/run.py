@@ -46,7 +46,7 @@ def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_spl
         except AugsplitError as err:
             raise DatasetError(err.message, where=f"{option} {err.where or p}", hint=err.hint) from None
         results.append((label, r))
-    write_outputs(results, out_dir)
+    write_outputs(results, out_dir, inputs=(dataset_dir, *paths))
     if echo:
         print("\n\n".join(format_table(r, label if len(results) > 1 else None) for label, r in results))
         if len(results) > 1:

@@ -1,0 +1,143 @@
+"""Where audit, score and preview write their reports, and what they may replace there
+(augsplit.report_folder): a user's file of a report's name, the command's own input, and a
+folder inside a dataset (its images) are refused by name and left as they were; a folder's
+earlier reports are replaced; a dataset's own report folders stay augsplit's. Each case was
+seen to replace or add a file before the fix."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+from specs import spec_dict
+
+from augsplit.build import open_mapping
+from augsplit.cli import main
+from augsplit.dataset import read_manifest
+from augsplit.generate import Options, generate
+from augsplit.report_folder import REPORTS_LIST
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    out = tmp_path_factory.mktemp("ds") / "data"
+    built = open_mapping(spec_dict(splits={"train": {"region": {"x": [0, 20]}, "per_class": 4},
+                                           "test": {"region": {"x": [44, 64]}, "per_class": 4}}))
+    generate(None, out, Options(progress=False, store="files"), built=built)
+    return out
+
+
+@pytest.fixture
+def predictions(dataset, tmp_path):
+    m = read_manifest(dataset)
+    p = tmp_path / "pred.csv"
+    pd.DataFrame({"image_id": m["image_id"], "predicted": m["class_name"]}).to_csv(p, index=False)
+    return p
+
+
+def cli(*args) -> int:
+    return main([str(a) for a in args])
+
+
+def commands(dataset, predictions, out):
+    return {"score": ("score", dataset, predictions, "--out", out), "audit": ("audit", dataset, "--out", out),
+            "preview": ("preview", dataset, "--out", out)}
+
+
+USER_FILE = {"score": "report.html", "audit": "audit.html", "preview": "coverage.png"}
+
+
+@pytest.mark.parametrize("command", ["score", "audit", "preview"])
+def test_a_user_file_of_a_report_name_is_refused_and_kept(dataset, predictions, tmp_path, capsys, command):
+    out = tmp_path / "mine"
+    out.mkdir()
+    (out / USER_FILE[command]).write_text("my notes")
+    assert cli(*commands(dataset, predictions, out)[command]) == 2
+    err = capsys.readouterr().err
+    assert "did not write it here" in err and USER_FILE[command] in err
+    assert (out / USER_FILE[command]).read_text() == "my notes"
+    assert sorted(p.name for p in out.iterdir()) == [USER_FILE[command]]  # nothing else written either
+
+
+@pytest.mark.parametrize("command", ["score", "audit", "preview"])
+def test_reports_are_replaced_by_a_rerun(dataset, predictions, tmp_path, command):
+    out = tmp_path / "reports"
+    for _ in range(2):
+        assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)
+    assert (out / REPORTS_LIST).is_file() and (out / USER_FILE[command]).stat().st_size > 100
+
+
+def test_score_never_replaces_its_predictions_file(dataset, predictions, tmp_path, capsys):
+    out = tmp_path / "u"
+    out.mkdir()
+    (out / "per_image.csv").write_bytes(predictions.read_bytes())
+    assert cli("score", dataset, out / "per_image.csv", "--out", out) == 2
+    assert "is an input of this command" in capsys.readouterr().err
+    assert (out / "per_image.csv").read_bytes() == predictions.read_bytes()
+
+
+def test_audit_never_replaces_its_input(dataset, tmp_path, capsys):
+    out = tmp_path / "a"
+    out.mkdir()
+    table = read_manifest(dataset)
+    table.to_csv(out / "audit.json", index=False)  # an odd name for a table, but the user's file
+    before = (out / "audit.json").read_bytes()
+    assert cli("audit", out / "audit.json", "--out", out) == 2
+    assert "is an input of this command" in capsys.readouterr().err
+    assert (out / "audit.json").read_bytes() == before
+
+
+@pytest.mark.parametrize("command", ["score", "audit", "preview"])
+def test_reports_inside_a_dataset_go_only_to_its_report_folders(dataset, predictions, capsys, command):
+    inside = dataset / "images" / "train"
+    before = sorted(p.name for p in inside.iterdir())
+    assert cli(*commands(dataset, predictions, inside)[command]) == 2
+    assert "lies inside the dataset folder" in capsys.readouterr().err
+    assert sorted(p.name for p in inside.iterdir()) == before
+    assert cli("verify", dataset, "--quiet") == 0
+    own = dataset / {"score": "score", "audit": "audit", "preview": "preview"}[command]
+    assert cli(*commands(dataset, predictions, own)[command]) in (0, 1)  # the dataset's own report folder
+    assert cli(*commands(dataset, predictions, own)[command]) in (0, 1)  # again: its files are augsplit's
+    assert not (own / REPORTS_LIST).exists()
+    assert cli("verify", dataset, "--quiet") == 0
+
+
+def test_preview_of_a_damaged_dataset_writes_no_sheet(dataset, tmp_path, capsys):
+    import shutil
+
+    broken = tmp_path / "broken"
+    shutil.copytree(dataset, broken)
+    m = read_manifest(broken)
+    last = m[m["split"] == "test"]["file"].iloc[-1]
+    (broken / last).unlink()  # a picked image of the second split's sheet
+    out = tmp_path / "pv"
+    assert cli("preview", broken, "--out", out) == 2
+    assert "Traceback" not in capsys.readouterr().err
+    assert not out.exists() or not any(p.suffix == ".png" for p in out.iterdir())
+
+
+# ---- the API's predictions pass the file's checks -------------------------------------------------
+
+
+def _frames(m):
+    names = sorted(m["class_name"].unique())
+    return {
+        "scores all NaN": pd.DataFrame({"image_id": m["image_id"], **{f"score_{n}": float("nan") for n in names}}),
+        "fractional index": pd.DataFrame({"image_id": m["image_id"], "predicted_index": m["class_index"] + 0.9}),
+        "no image_id": pd.DataFrame({"predicted": m["class_name"]}),
+        "probabilities not summing to one": pd.DataFrame({"image_id": m["image_id"],
+                                                          **{f"prob_{n}": 0.9 for n in names}}),
+    }
+
+
+@pytest.mark.parametrize("case", ["scores all NaN", "fractional index", "no image_id",
+                                  "probabilities not summing to one"])
+def test_score_predictions_checks_a_dataframe_as_it_checks_a_file(dataset, tmp_path, case):
+    import augsplit
+
+    df = _frames(read_manifest(dataset))[case]
+    with pytest.raises(augsplit.AugsplitError) as dataframe_error:
+        augsplit.score_predictions(dataset, df)  # all-NaN scores gave a top-2 accuracy of 1.0; 1.9 was read as 1
+    df.to_csv(tmp_path / "p.csv", index=False)
+    with pytest.raises(augsplit.AugsplitError) as file_error:
+        augsplit.score_predictions(dataset, tmp_path / "p.csv")
+    assert dataframe_error.value.message == file_error.value.message
