@@ -304,3 +304,28 @@ def test_envelope_of_a_block_between_shapely_minkowski_sums(angles, scales):
     assert not np.any(in_inner & ~mask), "the mask misses pixels every reference agrees are covered"
     assert not np.any(mask & ~near_outer), "the mask reaches a pixel beyond the reference grown by 0.6 px"
     assert SUPER % 2 == 1
+
+
+# ---- a budget for all tables together --------------------------------------------------------------
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
+                                                                   HealthCheck.function_scoped_fixture])
+@given(sprite_list=st.lists(sprites(), min_size=1, max_size=3), pose=poses(), ps=position_sets(),
+       budget=st.sampled_from([300, 3000, 30000]), seed=st.integers(0, 2**32 - 1))
+def test_tables_within_the_budget_hold_the_sharp_mask_and_every_footprint(monkeypatch, sprite_list, pose, ps, budget,
+                                                                          seed):
+    """Thousands of classes share MAX_TABLE_BINS (a spec of 4,655 classes took over 20 GB before):
+    coarser tables, whose mask still holds every real footprint (what the proof rests on; it
+    need not hold the sharper tables' mask, whose bins carry slack of their own)."""
+    import augsplit.plan.envelope as env
+
+    item = Item(0, 0, ps, pose, tuple(sprite_list))
+    monkeypatch.setattr(env, "MAX_TABLE_BINS", budget, raising=False)
+    tables = make_tables([item], [], 0.5)
+    bins = sum((t.sat[0].shape[0] - 1) * t.nphi for t in tables.polar.values())
+    assert bins <= budget
+    coarse = item_mask(item, tables, (0, 0, W, H))
+    for spr, cx, cy, s, a, m in _sample_placements(item, np.random.default_rng(seed), 60):
+        fp = _canvas_mask(footprint(spr, RenderParams(cx, cy, s, a, m), (H, W), 0.5))
+        assert not np.any(fp & ~coarse)

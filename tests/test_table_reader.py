@@ -142,3 +142,19 @@ def test_round_trip_through_every_format(tmp_path_factory, rows):
     df.to_parquet(d / "a.parquet", index=False)
     for name in ("a.csv", "a.tsv", "a.parquet"):
         pd.testing.assert_frame_equal(read_table(d / name), df, check_dtype=False, obj=name)
+
+
+def test_a_trailing_comma_on_every_row_keeps_the_columns_in_place(tmp_path):
+    # pandas made the first column the index of such a file, so image_id held the classes
+    p = tmp_path / "p.csv"
+    p.write_text("image_id,predicted\na,x,\nb,y,\n")
+    assert read_table(p).to_dict("list") == {"image_id": ["a", "b"], "predicted": ["x", "y"]}
+
+
+@pytest.mark.parametrize("rows", ["a,x,extra\nb,y\n", "a,x\nb,y,extra\n"])
+def test_a_row_with_more_values_than_the_header_is_refused(tmp_path, rows):
+    p = tmp_path / "p.csv"
+    p.write_text("image_id,predicted\n" + rows)
+    with pytest.raises(DatasetError) as e:
+        read_table(p)
+    assert "p.csv" in str(e.value) and ("more values than the header" in str(e.value) or "saw 3" in str(e.value))

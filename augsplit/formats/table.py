@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import csv
 import io
+import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator
@@ -67,11 +69,16 @@ class Table:
     def _csv_batches(self, cols: list[str], batch_rows: int) -> Iterator[pd.DataFrame]:
         # every column is parsed, whichever are kept: a ragged row is an error for every reader
         try:
-            for chunk in pd.read_csv(self.path, chunksize=batch_rows, **_csv_options(self)):
+            chunks = pd.read_csv(self.path, chunksize=batch_rows, **_csv_options(self))
+            while True:
+                with _ragged_rows_refused():  # while parsing only, never across the yield
+                    chunk = next(chunks, None)
+                if chunk is None:
+                    break
                 yield chunk[cols].reset_index(drop=True)
         except DatasetError:
             raise
-        except (ValueError, OSError, UnicodeDecodeError) as exc:  # pandas' parser errors are ValueErrors
+        except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserWarning) as exc:  # parser errors are ValueErrors
             raise _unreadable(self.path, self.what, exc) from None
 
     def _parquet_batches(self, cols: list[str], batch_rows: int) -> Iterator[pd.DataFrame]:
@@ -139,8 +146,19 @@ def _sniff(head: bytes, p: Path, what: str) -> str:
     return DELIMITERS[counts.index(max(counts))]
 
 
+@contextmanager
+def _ragged_rows_refused():
+    """pandas keeps the header's columns of a row with more values (index_col=False) and only
+    warns that the rest is lost: here that is an error (a row's trailing empty field, as a
+    trailing comma makes, is no loss and no warning)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", pd.errors.ParserWarning)
+        yield
+
+
 def _csv_options(t: Table) -> dict:
-    opts: dict = {"sep": t.sep, "encoding": "utf-8-sig"}
+    # index_col=False: a trailing comma on every row does not turn the first column into the index
+    opts: dict = {"sep": t.sep, "encoding": "utf-8-sig", "index_col": False}
     text = [c for c in t.text if c in t.columns]
     if text:
         opts.update(dtype={c: str for c in text}, keep_default_na=False,
@@ -151,10 +169,11 @@ def _csv_options(t: Table) -> dict:
 def _open_csv(p: Path, sep: str, text: tuple[str, ...], what: str) -> Table:
     probe = Table(p, "csv", (), sep, (), what)
     try:
-        first = pd.read_csv(p, nrows=1, **_csv_options(probe))
+        with _ragged_rows_refused():
+            first = pd.read_csv(p, nrows=1, **_csv_options(probe))
     except pd.errors.EmptyDataError:
         raise DatasetError(f"the {what} is empty", where=str(p)) from None
-    except (ValueError, OSError, UnicodeDecodeError) as exc:
+    except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserWarning) as exc:
         raise _unreadable(p, what, exc) from None
     if first.empty:
         raise DatasetError(f"the {what} has no rows", where=str(p))
@@ -206,6 +225,9 @@ def _open_parquet(root: Path, files: list[Path], what: str) -> Table:
 
 
 def _unreadable(p: Path, what: str, exc: BaseException) -> DatasetError:
+    if isinstance(exc, pd.errors.ParserWarning):
+        return DatasetError(f"unreadable {what}: a row has more values than the header line has columns",
+                            where=str(p))
     lines = str(exc).strip().splitlines()
     return DatasetError(f"unreadable {what}: {lines[0] if lines else type(exc).__name__}", where=str(p))
 

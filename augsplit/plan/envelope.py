@@ -82,6 +82,10 @@ TIE_BAND = 5 * ALPHA_SLACK
 SUPER = 5  # cells per pixel side on the super-sampled grid (odd: pixel centres are cell centres)
 BIN_TOL_PX = 0.15  # log-polar bin size at the object's rim, in canvas px at the largest scale
 MAX_BINS = 3_000_000
+# All sprites' tables together (each bin keeps two int32 summed-area entries, ~8 B): a spec
+# with thousands of classes shares this budget, its tables coarser (coarser bins only widen
+# each bin's reach, so the proof stays sound, if less sharp); 4,655 classes took 20 GB without it
+MAX_TABLE_BINS = 100_000_000
 
 
 # ---- what a box allows besides its position ----------------------------------------------
@@ -483,10 +487,10 @@ class Tables:
         smax = max([it.pose.max_scale for it in items] or [1.0])
         self.items = list(items)
         self.polar: dict = {}
-        for it in items:
-            for s in it.sprites:
-                if s not in self.polar:
-                    self.polar[s] = polar_table(s, threshold, smax, tol_px)
+        sprites = list(dict.fromkeys(s for it in items for s in it.sprites))
+        bins = max(1, min(MAX_BINS, MAX_TABLE_BINS // max(1, len(sprites))))
+        for s in sprites:
+            self.polar[s] = polar_table(s, threshold, smax, tol_px, bins)
         self._apad: dict = {}
         self._nodemax: dict = {}
         self._offsets: dict = {}
