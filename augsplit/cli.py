@@ -37,21 +37,40 @@ def _cmd_plan(a) -> int:
 
 
 def _cmd_assign(a) -> int:
-    from .formats.placement import BoxOptions, split_input
+    from .formats.placement import split_input
     from .formats.write import write_result
     from .io import is_stdout, refuse_input
 
     if a.out:
         refuse_input(a.out, a.table)  # never the input itself: refused before any work
-    cols = tuple(c.strip() for c in a.box_columns.split(",")) if a.box_columns else None
     res = split_input(a.spec, a.table, fmt=a.format, ref_size=a.ref_size, mixed=a.mixed,
-                      boxes=BoxOptions(a.boxes, a.box_units, cols), images_root=a.images, replace_split=a.replace_split)
+                      boxes=_box_options(a), images_root=a.images, replace_split=a.replace_split)
     paths = write_result(res, a.table, a.out, a.replace_split)
     said = sys.stderr if is_stdout(a.out or "") else sys.stdout  # with --out -, stdout carries only the table
     for line in res.summary():
         print(line, file=said)
     print("wrote " + ", ".join("stdout" if is_stdout(p) else str(p) for p in paths), file=said)
     return 0
+
+
+def _annotation_options(q) -> None:
+    """How users' annotated data is read: the same options for assign and audit."""
+    q.add_argument("--format", choices=["auto", "coco", "yolo", "voc", "table"], default="auto",
+                   help="the input's format (default: from the file or folder)")
+    q.add_argument("--boxes", choices=["xyxy", "xywh", "cxcywh"], default=None,
+                   help="a table's box convention: corners, top-left corner and size, or centre and size")
+    q.add_argument("--box-units", choices=["px", "norm"], default="px",
+                   help="a table's box units: px of its image, or fractions of its width and height")
+    q.add_argument("--box-columns", default=None, metavar="A,B,C,D", help="a table's four box columns, in convention order")
+    q.add_argument("--images", default=None, metavar="DIR",
+                   help="folder a COCO file's or a table's image paths resolve in (default: the file's folder)")
+
+
+def _box_options(a):
+    from .formats.placement import BoxOptions
+
+    cols = tuple(c.strip() for c in a.box_columns.split(",")) if a.box_columns else None
+    return BoxOptions(a.boxes, a.box_units, cols)
 
 
 def _size_px(text: str) -> float:
@@ -259,7 +278,7 @@ def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
     from .audit.entry import audit_dataset, audit_table
     from .dataset.layout import is_dataset
 
-    if a.splits is not None or _annotated(a.input):
+    if a.splits is not None or a.format in ("coco", "yolo", "voc") or _annotated(a.input):
         from .audit.annotated import audit_annotated
 
         if a.splits is None:
@@ -267,9 +286,14 @@ def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
                                 "per-split files, or a table with a split column)", where=str(a.input))
         _no_executor(a)
         result = audit_annotated(a.input, a.splits, spec_path=a.spec, pairs=a.pair, thresholds=thresholds,
-                                 ref_size=a.ref_size, images_root=a.images, exact_masks=not a.no_masks,
-                                 progress=progress)
+                                 ref_size=a.ref_size, images_root=a.images, fmt=a.format, boxes=_box_options(a),
+                                 exact_masks=not a.no_masks, progress=progress)
         return result, a.out or Path("audit")
+    given = [o for o, v in (("--format", a.format != "auto"), ("--boxes", a.boxes), ("--box-units", a.box_units != "px"),
+                            ("--box-columns", a.box_columns), ("--images", a.images)) if v]
+    if given:  # refused, not ignored
+        raise AugsplitError("reads annotated data audited with --splits (COCO, YOLO, VOC or a table of boxes); "
+                            "this input is a dataset folder or a table with its split column", where=given[0])
     if is_dataset(a.input) and a.spec is None and not column_map:
         result = audit_dataset(a.input, pairs=a.pair, thresholds=thresholds, exact_masks=not a.no_masks,
                                progress=progress, workers=a.workers, executor=a.executor, scheduler=a.scheduler)
@@ -356,14 +380,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--out", help="the labelled table: .csv, .tsv or .parquet (default: <table>.assigned.<ext>, Parquet "
                                  "for a Parquet input; '-' prints it as CSV to stdout; never the input itself), or the "
                                  "folder for per-split files of COCO/YOLO/VOC input (default: <input>.splits beside it)")
-    q.add_argument("--format", choices=["auto", "coco", "yolo", "voc", "table"], default="auto",
-                   help="the input's format (default: from the file or folder)")
-    q.add_argument("--boxes", choices=["xyxy", "xywh", "cxcywh"], default=None,
-                   help="a table's box convention: corners, top-left corner and size, or centre and size")
-    q.add_argument("--box-units", choices=["px", "norm"], default="px",
-                   help="a table's box units: px of its image, or fractions of its width and height")
-    q.add_argument("--box-columns", default=None, metavar="A,B,C,D", help="a table's four box columns, in convention order")
-    q.add_argument("--images", default=None, metavar="DIR", help="folder COCO file names resolve in (default: the JSON's folder)")
+    _annotation_options(q)
     q.add_argument("--mixed", choices=["drop", "keep", "largest"], default="drop",
                    help="an image whose objects lie in different splits: drop it, keep it in a 'mixed' split, "
                         "or give it its largest object's split")
@@ -440,7 +457,7 @@ def build_parser() -> argparse.ArgumentParser:
                                  "or a COCO JSON file / YOLO folder / VOC folder (with --splits)")
     q.add_argument("--splits", default=None, help="for annotated data: the folder `augsplit assign` wrote, a folder of "
                                                   "<split>.json / <split>.txt files, or a table with image_id and split")
-    q.add_argument("--images", default=None, metavar="DIR", help="folder COCO file names resolve in (default: the JSON's folder)")
+    _annotation_options(q)
     q.add_argument("--ref-size", type=_size_px, default=None, help="native object size in px of the spec's canvas, to audit scale")
     q.add_argument("--spec", help="the spec whose axes, regions and guarantees the input is checked against")
     q.add_argument("--pair", type=_pair, action="append", metavar="A:B", help="splits to compare (repeatable; default: train against each other split)")

@@ -257,3 +257,64 @@ def test_malformed_coco_is_one_line_exit_2(tmp_path, capsys, case):
     assert cli("assign", spec(tmp_path), src, "--out", tmp_path / "sp") == 2
     err = capsys.readouterr().err
     assert "Traceback" not in err and "a.json" in err and len(err.strip().splitlines()) <= 2
+
+
+# ---- audit reads annotated data as assign does -------------------------------------------------------
+
+
+def _box_table(tmp_path, sizes=True, files=False):
+    t = tmp_path / "b.csv"
+    head = "image_id,xmin,ymin,xmax,ymax" + (",image_width,image_height" if sizes else "") + (",file" if files else "")
+    rows = [(1, 10, 40, 20, 50), (2, 80, 40, 90, 50), (3, 12, 40, 22, 50), (4, 82, 40, 92, 50)]
+    t.write_text(head + "\n" + "".join(",".join(map(str, r)) + (",100,100" if sizes else "")
+                                      + (f",img/{r[0]}.png" if files else "") + "\n" for r in rows))
+    return t
+
+
+@pytest.mark.parametrize("sizes", [True, False])
+def test_audit_reads_a_box_table_with_the_options_assign_took(tmp_path, capsys, sizes):
+    s, t = spec(tmp_path), _box_table(tmp_path, sizes)
+    assert cli("assign", s, t, "--boxes", "xyxy", "--out", tmp_path / "a.csv") == 0
+    # before: 'unrecognized arguments: --boxes xyxy', and without size columns 'no image size columns'
+    assert cli("audit", t, "--splits", tmp_path / "a.csv", "--boxes", "xyxy", "--spec", s, "--out", tmp_path / "au") == 0
+    doc = json.loads((tmp_path / "au" / "audit.json").read_text())
+    assert {c["name"] for c in doc["checks"]} >= {"footprint_overlap"}
+
+
+def test_audit_finds_a_table_images_in_the_images_folder(tmp_path):
+    s, t = spec(tmp_path), _box_table(tmp_path, files=True)
+    pics = tmp_path / "elsewhere" / "img"
+    pics.mkdir(parents=True)
+    rng = np.random.default_rng(0)
+    for k in range(1, 5):
+        cv2.imwrite(str(pics / f"{k}.png"), rng.integers(0, 255, (100, 100), dtype=np.uint8))
+    assert cli("assign", s, t, "--boxes", "xyxy", "--out", tmp_path / "a.csv") == 0
+    assert cli("audit", t, "--splits", tmp_path / "a.csv", "--boxes", "xyxy", "--images", tmp_path / "elsewhere",
+               "--out", tmp_path / "au") in (0, 1)
+    doc = json.loads((tmp_path / "au" / "audit.json").read_text())
+    assert "near_duplicates" in {c["name"] for c in doc["checks"]}  # was skipped: --images was ignored for tables
+
+
+def test_options_an_input_does_not_take_are_refused_not_ignored(tmp_path, capsys):
+    y = _yolo_with_outside_link(tmp_path, "label")
+    (y / "labels" / "9.txt").unlink()
+    assert cli("assign", spec(tmp_path), y, "--images", tmp_path, "--out", tmp_path / "sp") == 2
+    assert "--images" in capsys.readouterr().err
+    t = _box_table(tmp_path)
+    assert cli("assign", spec(tmp_path), t, "--boxes", "xyxy", "--out", tmp_path / "a.csv") == 0
+    assert cli("audit", tmp_path / "a.csv", "--boxes", "xyxy") == 2  # a table with its split column
+    assert "--boxes" in capsys.readouterr().err
+
+
+def test_audit_format_option_reads_a_yolo_folder_holding_a_stray_xml(tmp_path):
+    y = _yolo_with_outside_link(tmp_path, "label")
+    (y / "labels" / "9.txt").unlink()
+    (y / "notes.xml").write_text("<annotations/>")  # detected as VOC without --format
+    s = spec(tmp_path)
+    assert cli("assign", s, y, "--format", "yolo", "--out", tmp_path / "sp") == 0
+    # image 9 has no label (no objects): one split only, nothing to compare (was an IndexError)
+    assert cli("audit", y, "--format", "yolo", "--splits", tmp_path / "sp", "--out", tmp_path / "au") == 2
+    (y / "labels" / "9.txt").write_text("0 0.9 0.5 0.1 0.1\n")
+    assert cli("assign", s, y, "--format", "yolo", "--out", tmp_path / "sp") == 0
+    assert cli("audit", y, "--format", "yolo", "--splits", tmp_path / "sp", "--out", tmp_path / "au") in (0, 1)
+    assert (tmp_path / "au" / "audit.json").is_file()

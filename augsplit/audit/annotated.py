@@ -22,21 +22,23 @@ from .run import run_audit
 
 def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict | None = None,
                     ref_size: float | None = None, images_root=None, fmt: str = "auto",
-                    exact_masks: bool = True, progress: bool = False) -> AuditResult:
-    """`source`: the annotations; `splits`: the assignment (see formats.write.read_assignment)."""
+                    exact_masks: bool = True, progress: bool = False, boxes=None) -> AuditResult:
+    """`source`: the annotations, read as `assign` reads them (`fmt`; `boxes`: a table's box
+    convention, units and columns, formats.placement.BoxOptions; a table without image sizes
+    takes the spec's canvas); `splits`: the assignment (see formats.write.read_assignment)."""
     from ..formats.audit_input import audit_input
-    from ..formats.placement import open_objects
+    from ..formats.placement import BoxOptions, open_objects
     from ..formats.write import read_assignment
 
-    objs = open_objects(source, fmt, images_root=images_root)
-    if not hasattr(objs, "objects"):
-        raise DatasetError("no boxes found: a table needs box columns (see assign --boxes)", where=str(source))
-    built = None
+    plan = None
     if spec_path is not None:
         from ..build import open_spec
 
-        built = open_spec(spec_path, for_data=True)
-    plan = built.plan if built is not None else None
+        plan = open_spec(spec_path, for_data=True).plan
+    size = (plan.canvas.width, plan.canvas.height) if plan is not None else None
+    objs = open_objects(source, fmt, boxes or BoxOptions(), images_root, size)
+    if not hasattr(objs, "objects"):
+        raise DatasetError("no boxes found: a table needs box columns (see --boxes)", where=str(source))
     data = audit_input(objs, read_assignment(splits, objs), plan, ref_size)
     wanted = _wanted_pairs(plan, pairs, list(dict.fromkeys(data.table["split"])), splits)
     image_loader, notes = _image_loader(data.image_paths)
@@ -74,6 +76,9 @@ def _wanted_pairs(plan, pairs, labelled: list, splits) -> list:
             raise DatasetError(f"no 'train' split to audit against (splits: {', '.join(present) or 'none'})",
                                where=str(splits), hint="name the pairs with --pair A:B")
         wanted = [("train", s) for s in present if s != "train"]
+    if not wanted:
+        raise DatasetError(f"nothing to compare: the assignment puts images in one split only ({', '.join(present)})",
+                           where=str(splits))
     for a, b in wanted:
         for s in (a, b):
             if s not in labelled:
@@ -89,6 +94,9 @@ def _image_loader(paths):
     found = [p for p, ok in exists.items() if ok]
     if not found:
         first = next((p for p in paths if p is not None), None)
+        if first is None:
+            return None, ["the annotations name no image files (a table needs a file column): near-duplicates "
+                          "not checked"]
         return None, [f"no image files found (e.g. {first}): near-duplicates not checked; give --images"]
     missing = sorted(str(p) for p, ok in exists.items() if not ok)
     if missing:

@@ -58,6 +58,9 @@ def open_objects(path, fmt: str = "auto", boxes: BoxOptions = BoxOptions(), imag
         from .coco import read_coco
 
         return read_coco(path, images_root)
+    if images_root is not None and fmt in ("yolo", "voc"):
+        raise DatasetError(f"a {fmt.upper()} folder holds its own images; --images names where a COCO file's or a "
+                           "table's image paths resolve", where="--images")
     if fmt == "yolo":
         from .yolo import read_yolo
 
@@ -71,10 +74,11 @@ def open_objects(path, fmt: str = "auto", boxes: BoxOptions = BoxOptions(), imag
     # every CSV cell as written (ids like 007, labels like 1, NA): the split column is added to
     # the user's table and nothing else in it changes; numbers are parsed where they are used
     df = read_table(path, text=open_table_file(path).columns)
-    return table_objects(df, boxes, str(path), default_size, Path(path)) or df
+    return table_objects(df, boxes, str(path), default_size, Path(path), images_root) or df
 
 
-def table_objects(df: pd.DataFrame, boxes: BoxOptions, where: str, default_size=None, path=None) -> Objects | None:
+def table_objects(df: pd.DataFrame, boxes: BoxOptions, where: str, default_size=None, path=None,
+                  images_root=None) -> Objects | None:
     """A table whose rows are objects with boxes -> Objects (None when it has no boxes)."""
     found = _table_box_columns(df, boxes, where)
     if found is None:
@@ -97,7 +101,7 @@ def table_objects(df: pd.DataFrame, boxes: BoxOptions, where: str, default_size=
     check_boxes(objects, where)
     images = objects.drop_duplicates("image_id")[["image_id", "file", "width", "height"]].reset_index(drop=True)
     p = Path(path) if path is not None else Path(where)
-    return Objects(objects, images, "table", p, p.parent, df)
+    return Objects(objects, images, "table", p, Path(images_root) if images_root is not None else p.parent, df)
 
 
 def _first_column(df: pd.DataFrame, names) -> str | None:
