@@ -250,6 +250,52 @@ def content_box(matrix: np.ndarray, hw: tuple[int, int], canvas_hw: tuple[int, i
 # ---- the transforms ------------------------------------------------------------------------
 
 
+def _item_number(value, key: str) -> int:
+    """An item number as a data dict holds it: a whole number >= 0 (an int, a numpy or torch
+    integer, or a float without a fraction); anything else is one line naming the key."""
+    try:
+        item = int(value)
+        ok = not isinstance(value, (bool, str, bytes)) and item == value and item >= 0
+    except (TypeError, ValueError, OverflowError):
+        ok = False
+    if not ok:
+        raise DatasetError(f"the item number under {key!r} must be a whole number >= 0, got {value!r}",
+                           where=f"data[{key!r}]")
+    return item
+
+
+INTERPOLATIONS = {cv2.INTER_NEAREST, cv2.INTER_LINEAR, cv2.INTER_CUBIC, cv2.INTER_AREA, cv2.INTER_LANCZOS4}
+
+
+def _whole_sizes(value, where: str) -> tuple[int, int]:
+    """(width, height): two finite whole numbers > 0 (a string is not a pair of numbers)."""
+    try:
+        if isinstance(value, (str, bytes)):
+            raise TypeError
+        cw, ch = value
+        out = []
+        for v in (cw, ch):
+            if isinstance(v, bool) or not math.isfinite(float(v)) or float(v) != int(v) or int(v) <= 0:
+                raise ValueError
+            out.append(int(v))
+    except (TypeError, ValueError, OverflowError):
+        raise SpecError(f"content_size is (width, height): two whole numbers of px > 0, got {value!r}",
+                        where=where) from None
+    return out[0], out[1]
+
+
+def _fill(value, where: str):
+    """A border value: a number or a sequence of numbers (one per channel), all finite."""
+    vals = value if isinstance(value, (list, tuple, np.ndarray)) else [value]
+    try:
+        ok = len(vals) > 0 and all(not isinstance(v, (bool, str, bytes)) and math.isfinite(float(v)) for v in vals)
+    except (TypeError, ValueError, OverflowError):
+        ok = False
+    if not ok:
+        raise SpecError(f"a fill is a number or one number per channel, got {value!r}", where=where)
+    return value
+
+
 def _probability(p, name: str) -> float:
     if isinstance(p, bool) or not isinstance(p, (int, float)) or not 0.0 <= float(p) <= 1.0:
         raise SpecError(f"p is a probability in [0, 1], got {p!r}", where=f"{name}.p")
@@ -262,6 +308,12 @@ class _RegionTransform:
     source_name = "RegionTransform"
 
     def _setup(self, spec, split, held_out: bool, class_key, item_key, log, epoch) -> None:
+        name = type(self).__name__
+        for key, value in (("class_key", class_key), ("item_key", item_key)):
+            if value is not None and not isinstance(value, str):
+                raise SpecError(f"{key} names a key of the data dict (a string), got {value!r}", where=f"{name}.{key}")
+        if log is not None and not callable(getattr(log, "record", None)):
+            raise SpecError(f"log is a parameter log (augsplit.ParamLog) or None, got {log!r}", where=f"{name}.log")
         self._built, self.spec = _open(spec)
         self.split = split
         self.held_out = bool(held_out)
@@ -317,7 +369,7 @@ class _RegionTransform:
     def _uniforms(self, data: dict) -> tuple[np.ndarray, int | None]:
         item = None
         if self.item_key is not None and self.item_key in data:
-            item = int(data[self.item_key])
+            item = _item_number(data[self.item_key], self.item_key)
             seed = self._built.plan.seed if self.seed is None else int(self.seed)
             return plugin_rng(seed, self._draws.split.index, self.epoch, item).random(self._draws.k), item
         return None, item
@@ -418,13 +470,15 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
         self._setup(spec, split, held_out, class_key, item_key, log, epoch)
         if anchor not in ANCHORS:
             raise SpecError(f"anchor must be one of {', '.join(ANCHORS)}, got {anchor!r}", where=f"{type(self).__name__}.anchor")
-        try:
-            cw, ch = (int(v) for v in content_size)
-        except (TypeError, ValueError):
-            raise SpecError(f"content_size is (width, height) in px, got {content_size!r}",
-                            where=f"{type(self).__name__}.content_size") from None
-        if cw <= 0 or ch <= 0:
-            raise SpecError(f"content_size must be positive, got {content_size!r}", where=f"{type(self).__name__}.content_size")
+        name = type(self).__name__
+        cw, ch = _whole_sizes(content_size, f"{name}.content_size")
+        for key, flag in (("interpolation", interpolation), ("mask_interpolation", mask_interpolation)):
+            if isinstance(flag, bool) or flag not in INTERPOLATIONS:
+                raise SpecError(f"{key} is one of OpenCV's INTER_NEAREST, INTER_LINEAR, INTER_CUBIC, INTER_AREA or "
+                                f"INTER_LANCZOS4 ({', '.join(map(str, sorted(INTERPOLATIONS)))}), got {flag!r}",
+                                where=f"{name}.{key}")
+        _fill(fill, f"{name}.fill")
+        _fill(fill_mask, f"{name}.fill_mask")
         self.content_size = (cw, ch)
         self.anchor = anchor
         space = self._draws.space
@@ -517,6 +571,8 @@ class RegionPlacement(_RegionTransform, A.DualTransform):
     def get_params_dependent_on_data(self, params: dict[str, Any], data: dict[str, Any]) -> dict[str, Any]:
         self._check_declared(data)
         hw = tuple(int(v) for v in params["shape"][:2])
+        if min(hw) <= 0:
+            raise DatasetError(f"the image is empty ({hw[1]}x{hw[0]} px)", where=type(self).__name__)
         cw, ch = self.content_size
         if hw[1] > cw or hw[0] > ch:
             raise DatasetError(f"the image is {hw[1]}x{hw[0]} px, larger than the content_size {cw}x{ch} the "

@@ -161,7 +161,10 @@ class Dataset:
                       "cells": cells, "query": query, "transform": transform, "check_pixels": check_pixels,
                       "parquet_cache": parquet_cache, "transform_kind": transform_kind}  # for the repr
         self.check_pixels = bool(check_pixels)
-        self.parquet_cache = max(1, int(parquet_cache))
+        if isinstance(parquet_cache, bool) or not isinstance(parquet_cache, (int, np.integer)) or parquet_cache < 1:
+            raise DatasetError(f"parquet_cache is how many Parquet parts to keep open, a whole number >= 1; got "
+                               f"{parquet_cache!r}", where="parquet_cache")
+        self.parquet_cache = int(parquet_cache)
         self.classes = tuple(summary.get("classes") or ())
         names = set(self.folder.axis_names) | ({"polar_angle"} if "eccentricity" in self.folder.axis_names else set())
         self.param_names = tuple(n for n in mf.AXIS_COLUMNS if n in names)
@@ -278,6 +281,8 @@ def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFram
     if classes is not None:
         if isinstance(classes, (str, int, np.integer)):
             classes = [classes]
+        if not isinstance(classes, (list, tuple, set, frozenset, np.ndarray, pd.Series)):
+            raise DatasetError(f"classes is a class name or index, or a list of them; got {classes!r}", where="classes")
         idx = []
         for c in classes:
             if isinstance(c, (int, np.integer)) and not isinstance(c, bool):
@@ -292,7 +297,11 @@ def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFram
                 raise DatasetError(f"unknown class {c!r}{hint}; the dataset has {', '.join(class_names)}", where="classes")
         keep &= df["class_index"].isin(idx).to_numpy()
     if cells is not None:
-        cells = [cells] if isinstance(cells, (int, np.integer)) else list(cells)
+        many = isinstance(cells, (list, tuple, set, frozenset, np.ndarray, pd.Series))
+        cells = list(cells) if many else [cells]
+        if not all(isinstance(c, (int, np.integer)) and not isinstance(c, bool) for c in cells):
+            raise DatasetError(f"cells is a cell number or a list of them (whole numbers); got {cells if many else cells[0]!r}",
+                               where="cells")
         keep &= df["cell"].isin([int(c) for c in cells]).to_numpy()
     if query is not None:
         try:

@@ -556,3 +556,40 @@ def test_grey_images_take_brightness_only():
     out = t(image=img)["image"]
     v = t.params["colour"]["brightness"]
     assert out.shape == (4, 4) and np.all(out == int(200 * v + 0.5))
+
+
+# ---- arguments that are not what they say: one line, not a raw error ------------------------------
+
+
+@pytest.mark.parametrize("kwargs", [{"content_size": (float("inf"), 8)}, {"content_size": "88"},
+                                    {"content_size": (8.5, 8)}, {"interpolation": 99}, {"mask_interpolation": True},
+                                    {"fill": "x"}, {"fill_mask": [float("nan")]}, {"class_key": 5},
+                                    {"item_key": 3}, {"log": 5}])
+def test_region_placement_refuses_bad_arguments_in_one_line(geom, kwargs):
+    # before: OverflowError, a cv2.error on the first call, or silently accepted ('88' became 8x8)
+    from augsplit.errors import AugsplitError
+
+    args = dict(content_size=(8, 8))
+    args.update(kwargs)
+    with pytest.raises(AugsplitError) as e:
+        RegionPlacement(geom, "train", **args)
+    assert next(iter(kwargs)) in str(e.value)
+
+
+@pytest.mark.parametrize("value", [-5, "a", 2.5, True])
+def test_region_placement_refuses_a_bad_item_number_in_one_line(geom, value):
+    from augsplit.errors import AugsplitError
+
+    t = A.Compose([RegionPlacement(geom, "train", content_size=(8, 8), item_key="item")])
+    with pytest.raises(AugsplitError) as e:
+        t(image=np.zeros((8, 8, 3), np.uint8), item=value)
+    assert "item" in str(e.value)
+
+
+def test_region_placement_refuses_an_empty_image_in_one_line(geom):
+    from augsplit.errors import AugsplitError
+
+    t = A.Compose([RegionPlacement(geom, "train", content_size=(8, 8))])
+    with pytest.raises(AugsplitError) as e:
+        t(image=np.zeros((0, 8, 3), np.uint8))
+    assert "empty" in str(e.value)

@@ -442,3 +442,14 @@ def test_summary_lists_splits_in_spec_order(files_ds):
     # the split list in error messages follows dataset.json
     summary = json.loads((files_ds / lay.SUMMARY_FILE).read_text())
     assert set(summary["splits"]) == {"train", "test_right"}
+
+
+@pytest.mark.parametrize("kwargs", [{"classes": 1.0}, {"cells": 1.5}, {"cells": ["a"]}, {"parquet_cache": "x"},
+                                    {"parquet_cache": 0}])
+def test_dataset_refuses_bad_arguments_in_one_line(none_ds, kwargs):
+    # before: TypeError or ValueError from inside the filter (and parquet_cache=0 was taken as 1)
+    from augsplit.errors import AugsplitError
+
+    with pytest.raises(AugsplitError) as e:
+        Dataset(none_ds, "train", **kwargs)
+    assert next(iter(kwargs)) in str(e.value)
