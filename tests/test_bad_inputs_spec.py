@@ -411,3 +411,17 @@ def test_workers_are_capped_at_shards_and_cores(tmp_path, monkeypatch):
     generate(tmp_path / SPEC, tmp_path / "out", Options(workers=64, shard_size=4, progress=False, executor="processes"))
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
     assert seen == [min(2, cores)]
+
+
+@pytest.mark.parametrize("extra", [{"range": [0, 1]}, {"dist": "log"}])
+def test_an_axis_with_levels_and_a_range_or_dist_is_refused(tmp_path, extra):
+    # the range (or dist) was silently ignored
+    from specs import spec_dict, write_spec
+
+    from augsplit.build import open_spec
+    from augsplit.errors import SpecError
+
+    d = spec_dict(axes={"x": {"range": [0, 64]}, "y": {"range": [0, 64]}, "angle": {"levels": [0, 5], **extra}})
+    with pytest.raises(SpecError) as e:
+        open_spec(write_spec(tmp_path, d))
+    assert "axes.angle.levels" in str(e.value) and "not both" in str(e.value)

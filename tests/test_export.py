@@ -14,6 +14,7 @@ from pathlib import Path
 import cv2
 import numpy as np
 import pytest
+import yaml
 from scipy import ndimage
 from specs import snapshot, spec_dict, write_spec
 
@@ -364,3 +365,13 @@ def test_a_stored_image_changed_since_it_was_written_is_not_exported(tmp_path, c
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1 and "Traceback" not in err, err
     assert f"image {victim}: the stored image does not match its checksum" in err
+
+
+def test_yolo_data_yaml_keeps_split_names_yaml_reads_as_booleans(tmp_path):
+    # YAML 1.1 reads a bare key on, yes or no as a boolean (PyYAML does): the split was lost
+    spec = write_spec(tmp_path, dict(SPEC, splits={"on": {"region": {"x": [0, 16]}, "per_class": 1},
+                                                   "no": {"region": {"x": [24, 40]}, "per_class": 1}}))
+    generate(spec, tmp_path / "ds", Options(store="none", progress=False))
+    assert run_export(tmp_path / "ds", tmp_path / "y", "yolo") == 0
+    data = yaml.safe_load((tmp_path / "y" / "data.yaml").read_text())
+    assert data["on"] == "images/on" and data["no"] == "images/no"

@@ -142,7 +142,8 @@ class Yolo(Writer):
 
     def finish(self, counts):
         # no `path:` key, so the folders resolve beside data.yaml wherever the export is moved
-        lines = [f"{s}: images/{s}" for s in counts]
+        # keys as JSON strings (valid YAML): a split named on, yes or no is not read as a boolean
+        lines = [f"{json.dumps(s)}: images/{s}" for s in counts]
         lines.append("nc: %d" % len(self.rows.classes))
         lines.append("names:")
         lines += [f"  {i}: {json.dumps(c)}" for i, c in enumerate(self.rows.classes)]
