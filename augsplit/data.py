@@ -14,7 +14,7 @@ import functools
 import os
 from collections import OrderedDict
 from pathlib import Path
-from typing import Callable, Iterator, Sequence
+from typing import Callable, Iterable, Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -276,12 +276,18 @@ class Dataset:
         return made_repr(self, {**self._made, **_settable(self)}, positional=("root", "split"))
 
 
+def _many(value) -> bool:
+    """Whether `value` is a collection of values (a list, range, array, index, dict keys ...),
+    not one value (a string is one name)."""
+    return isinstance(value, Iterable) and not isinstance(value, (str, bytes))
+
+
 def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFrame:
     keep = np.ones(len(df), dtype=bool)
     if classes is not None:
         if isinstance(classes, (str, int, np.integer)):
             classes = [classes]
-        if not isinstance(classes, (list, tuple, set, frozenset, np.ndarray, pd.Series)):
+        if not _many(classes):
             raise DatasetError(f"classes is a class name or index, or a list of them; got {classes!r}", where="classes")
         idx = []
         for c in classes:
@@ -297,7 +303,7 @@ def _filter(df: pd.DataFrame, class_names, classes, cells, query) -> pd.DataFram
                 raise DatasetError(f"unknown class {c!r}{hint}; the dataset has {', '.join(class_names)}", where="classes")
         keep &= df["class_index"].isin(idx).to_numpy()
     if cells is not None:
-        many = isinstance(cells, (list, tuple, set, frozenset, np.ndarray, pd.Series))
+        many = _many(cells)
         cells = list(cells) if many else [cells]
         if not all(isinstance(c, (int, np.integer)) and not isinstance(c, bool) for c in cells):
             raise DatasetError(f"cells is a cell number or a list of them (whole numbers); got {cells if many else cells[0]!r}",

@@ -42,7 +42,12 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
     if root is not None and not own:
         raise DatasetError(f"lies inside the dataset folder {root}, where a report would become a stray file; "
                            f"give a folder outside it (or its own {', '.join(lay.REPORT_DIRS)} folder)", where=str(p))
-    listed = _listed(p)
+    for src in inputs:  # a report inside an input folder would be read as part of it next time
+        if os.path.isdir(src) and not lay.is_dataset(src) \
+                and Path(os.path.realpath(p)).is_relative_to(os.path.realpath(src)):
+            raise DatasetError(f"lies inside the input folder {src}, where the report would be read as part of "
+                               "the input next time; give a folder outside it", where=str(p))
+    listed = _listed(p) | _earlier_reports(p)
     for name in names:
         q = p / name
         if not os.path.lexists(q):
@@ -53,8 +58,8 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
         if q.is_symlink() or not q.is_file():
             raise DatasetError("exists and is not a regular file; give another --out", where=str(q))
         if not own and name not in listed:
-            raise DatasetError("exists and augsplit did not write it here; give another --out (or move the file)",
-                               where=str(q))
+            raise DatasetError("exists and augsplit has no record of writing it here (its list, " + REPORTS_LIST
+                               + ", names what it wrote); give another --out, or move the file", where=str(q))
     return p, own, listed
 
 
@@ -67,6 +72,30 @@ def report_folder(out, names, inputs=()) -> Path:
     if not own and not set(names) <= listed:
         write_text_atomic(folder / REPORTS_LIST, json.dumps({"files": sorted(listed | set(names))}, indent=1))
     return folder
+
+
+def _earlier_reports(folder: Path) -> set[str]:
+    """The reports an augsplit from before the list wrote in `folder`, known by their JSON: an
+    audit.json of augsplit's audit schema (with its audit.html), a score.json with score's
+    keys (with report.html and the CSV tables beside it). Nothing else is taken for ours."""
+    found: set[str] = set()
+    doc = _json(folder / "audit.json")
+    if isinstance(doc, dict) and str(doc.get("schema", "")).startswith("augsplit.audit/"):
+        found |= {"audit.json", "audit.html"}
+    doc = _json(folder / "score.json")
+    if isinstance(doc, dict) and ({"train_split", "reference_split", "n_scored"} <= set(doc)
+                                  or {"models", "comparison"} <= set(doc)):
+        found |= {"score.json", "report.html"} | {f.name for f in folder.glob("*.csv") if f.is_file()}
+    return found
+
+
+def _json(f: Path):
+    try:
+        if f.is_symlink() or not f.is_file() or f.stat().st_size > 64 << 20:
+            return None
+        return json.loads(f.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
 
 
 def _listed(folder: Path) -> set[str]:

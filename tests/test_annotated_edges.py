@@ -318,3 +318,60 @@ def test_audit_format_option_reads_a_yolo_folder_holding_a_stray_xml(tmp_path):
     assert cli("assign", s, y, "--format", "yolo", "--out", tmp_path / "sp") == 0
     assert cli("audit", y, "--format", "yolo", "--splits", tmp_path / "sp", "--out", tmp_path / "au") in (0, 1)
     assert (tmp_path / "au" / "audit.json").is_file()
+
+
+# ---- after a second review ------------------------------------------------------------------------
+
+
+def test_a_box_table_with_zero_padded_ids_audits_against_its_own_assignment(tmp_path):
+    t = tmp_path / "boxes.csv"
+    t.write_text("image_id,label,bbox_x0,bbox_y0,bbox_x1,bbox_y1,image_width,image_height\n" + "".join(
+        f"{i:03d},c,{3 if i % 2 == 0 else 73},30,{7 if i % 2 == 0 else 77},34,100,100\n" for i in range(8)))
+    s = spec(tmp_path)
+    assert cli("assign", s, t, "--out", tmp_path / "a.csv") == 0
+    # the assignment's ids were read as numbers (7, not 007): '8 listed images are not in the dataset'
+    assert cli("audit", t, "--splits", tmp_path / "a.csv", "--spec", s, "--out", tmp_path / "au") == 0
+
+
+def test_a_trailing_comma_with_text_columns_reads(tmp_path):
+    t = tmp_path / "t.csv"
+    t.write_text("image_id,x,y\na,0.1,0.5,\nb,0.9,0.5,\n")
+    assert cli("assign", spec(tmp_path), t, "--out", tmp_path / "o.csv") == 0  # every column is text here
+    assert (tmp_path / "o.csv").read_text().splitlines() == ["image_id,x,y,split", "a,0.1,0.5,train", "b,0.9,0.5,test"]
+
+
+def test_yolo_labels_in_a_linked_folder_inside_the_dataset_are_read(tmp_path):
+    y = _yolo_with_outside_link(tmp_path, "label")
+    (y / "labels" / "9.txt").unlink()
+    (y / "store" / "part").mkdir(parents=True)
+    (y / "store" / "part" / "9.txt").write_text("0 0.9 0.5 0.1 0.1\n")
+    (y / "labels" / "part").symlink_to(y / "store" / "part")
+    (y / "images" / "part").mkdir()
+    (y / "images" / "9.png").rename(y / "images" / "part" / "9.png")
+    assert cli("assign", spec(tmp_path), y, "--out", tmp_path / "sp") == 0
+    got = pd.read_csv(tmp_path / "sp" / "splits.csv", dtype=str)
+    assert dict(zip(got["image_id"], got["split"])) == {"0": "train", "part/9": "test"}  # was 'empty'
+
+
+def test_yolo_labels_in_a_linked_folder_out_of_the_dataset_are_refused(tmp_path, capsys):
+    y = _yolo_with_outside_link(tmp_path, "label")
+    (y / "labels" / "9.txt").unlink()
+    (tmp_path / "outside" / "part").mkdir()
+    (y / "labels" / "part").symlink_to(tmp_path / "outside" / "part")
+    assert cli("assign", spec(tmp_path), y, "--out", tmp_path / "sp") == 2
+    assert "link out of the dataset folder" in capsys.readouterr().err
+
+
+def test_an_audit_written_into_the_folder_of_split_lists_is_refused(tmp_path, capsys):
+    src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    s = spec(tmp_path)
+    assert cli("assign", s, src, "--out", tmp_path / "sp") == 0
+    lists = tmp_path / "mylists"
+    lists.mkdir()
+    for n in ("train.json", "test.json"):
+        (lists / n).write_bytes((tmp_path / "sp" / n).read_bytes())
+    assert cli("audit", src, "--splits", lists, "--spec", s, "--out", lists) == 2
+    assert "inside the input folder" in capsys.readouterr().err
+    (lists / "audit.json").write_text("{}")  # a report or hidden file beside the lists is not read as one
+    (lists / ".notes.json").write_text("{}")
+    assert cli("audit", src, "--splits", lists, "--spec", s, "--out", tmp_path / "au") == 0

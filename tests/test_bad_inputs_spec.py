@@ -414,14 +414,17 @@ def test_workers_are_capped_at_shards_and_cores(tmp_path, monkeypatch):
 
 
 @pytest.mark.parametrize("extra", [{"range": [0, 1]}, {"dist": "log"}])
-def test_an_axis_with_levels_and_a_range_or_dist_is_refused(tmp_path, extra):
-    # the range (or dist) was silently ignored
+def test_an_axis_with_levels_and_a_range_or_dist_is_a_plan_warning(tmp_path, extra):
+    # the range (or dist) was silently ignored; a warning (an error under --strict), not a refusal,
+    # so the datasets already made from such specs still open
     from specs import spec_dict, write_spec
 
     from augsplit.build import open_spec
-    from augsplit.errors import SpecError
+    from augsplit.cli import main
 
     d = spec_dict(axes={"x": {"range": [0, 64]}, "y": {"range": [0, 64]}, "angle": {"levels": [0, 5], **extra}})
-    with pytest.raises(SpecError) as e:
-        open_spec(write_spec(tmp_path, d))
-    assert "axes.angle.levels" in str(e.value) and "not both" in str(e.value)
+    spec = write_spec(tmp_path, d)
+    assert [w.code for w in open_spec(spec).plan.warnings if w.axes == ("angle",)] == ["range_ignored"]
+    assert main(["generate", str(spec), "--out", str(tmp_path / "ds"), "--strict", "--quiet"]) == 2
+    assert main(["generate", str(spec), "--out", str(tmp_path / "ds"), "--quiet"]) == 0
+    assert main(["verify", str(tmp_path / "ds"), "--quiet"]) == 0

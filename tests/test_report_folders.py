@@ -53,7 +53,7 @@ def test_a_user_file_of_a_report_name_is_refused_and_kept(dataset, predictions, 
     (out / USER_FILE[command]).write_text("my notes")
     assert cli(*commands(dataset, predictions, out)[command]) == 2
     err = capsys.readouterr().err
-    assert "did not write it here" in err and USER_FILE[command] in err
+    assert "has no record of writing it here" in err and USER_FILE[command] in err
     assert (out / USER_FILE[command]).read_text() == "my notes"
     assert sorted(p.name for p in out.iterdir()) == [USER_FILE[command]]  # nothing else written either
 
@@ -141,3 +141,37 @@ def test_score_predictions_checks_a_dataframe_as_it_checks_a_file(dataset, tmp_p
     with pytest.raises(augsplit.AugsplitError) as file_error:
         augsplit.score_predictions(dataset, tmp_path / "p.csv")
     assert dataframe_error.value.message == file_error.value.message
+
+
+def test_an_audit_folder_from_before_the_list_is_taken_as_augsplit_s(dataset, tmp_path):
+    import json
+
+    out = tmp_path / "old"
+    assert cli("audit", dataset, "--out", out) in (0, 1)
+    (out / REPORTS_LIST).unlink()  # as an earlier augsplit left it: its reports, no list
+    doc = json.loads((out / "audit.json").read_text())
+    assert doc["schema"].startswith("augsplit.audit/")
+    assert cli("audit", dataset, "--out", out) in (0, 1)  # was refused: 'did not write it here'
+
+
+def test_a_user_spec_named_spec_json_does_not_make_its_folder_a_dataset(dataset, tmp_path, monkeypatch):
+    from augsplit.dataset.layout import is_dataset
+
+    (tmp_path / "spec.json").write_text('{"seed": 1}')  # JSON is YAML: a user's spec may be named so
+    assert not is_dataset(tmp_path) and is_dataset(dataset)
+    assert cli("audit", dataset, "--out", tmp_path / "reports") in (0, 1)  # was 'lies inside the dataset folder'
+
+
+def test_dataset_filters_take_any_collection(dataset):
+    from augsplit import Dataset
+
+    assert len(Dataset(dataset, "train", classes=range(2))) == len(Dataset(dataset, "train", classes=[0, 1]))
+    assert len(Dataset(dataset, "train", cells=range(100))) == len(Dataset(dataset, "train"))
+
+
+def test_an_audited_table_with_empty_image_bytes_cells_is_one_line(tmp_path, capsys):
+    # a table whose image_bytes cells are empty (a manifest saved as CSV): was a TypeError traceback
+    (tmp_path / "t.csv").write_text("image_id,x,split,image_bytes\na,5,train,\nb,55,test,\n")
+    assert cli("audit", tmp_path / "t.csv", "--axis", "x=0:64", "--out", tmp_path / "au") == 2
+    err = capsys.readouterr().err
+    assert "neither image bytes nor an image file" in err and "Traceback" not in err

@@ -119,8 +119,9 @@ class _Fingerprints:
                         if wanted[pos + k]:
                             yield pos + k, data
                     pos += len(batch)
-            yield from _ordered_map(lambda job: decode_image(job[1], f"row {job[0]}") if job[1] is not None
-                                    else from_file(job[0]), jobs())
+            # a cell without bytes (None, or NaN from a CSV) falls back to the row's file
+            yield from _ordered_map(lambda job: decode_image(job[1], f"row {job[0]}")
+                                    if isinstance(job[1], (bytes, bytearray, memoryview)) else from_file(job[0]), jobs())
 
     def unchanged(self) -> np.ndarray:
         """Per row: the pixels read are those the manifest's sha256 recorded when the row was

@@ -6,6 +6,7 @@ read from a spec or a manifest can never point outside the folder (`..`, `/`, ab
 
 from __future__ import annotations
 
+import json
 import os
 import re
 from pathlib import Path
@@ -35,8 +36,22 @@ def is_dataset(path) -> bool:
     if not p.is_dir():
         return False
     manifest = p / MANIFEST_DIR
-    return (p / SPEC_FILE).exists() or (manifest.is_dir() and any(q.name.startswith("split=")
-                                                                   for q in manifest.iterdir()))
+    return (_recorded_spec(p / SPEC_FILE) or (p / SUMMARY_FILE).is_file()
+            or (manifest.is_dir() and any(q.name.startswith("split=") for q in manifest.iterdir())))
+
+
+def _recorded_spec(f: Path) -> bool:
+    """Whether `f` is a spec.json augsplit recorded (its spec_hash), not a user's spec that
+    happens to be named spec.json; one that cannot be read counts (a damaged dataset is
+    refused as one, not taken for a plain folder)."""
+    if not f.is_file():
+        return False
+    try:
+        with open(f, "rb") as fh:
+            doc = json.loads(fh.read(1 << 20) or b"null") if f.stat().st_size <= 1 << 20 else {"spec_hash": None}
+    except (OSError, ValueError):
+        return True
+    return not isinstance(doc, dict) or "spec_hash" in doc
 
 
 # the temporary name of an atomic write (io.temporary_name): .<final name>.tmp-<pid>-<hex>

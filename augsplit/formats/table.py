@@ -42,6 +42,7 @@ class Table:
     text: tuple[str, ...] = ()
     what: str = "table"
     dataset: object = field(default=None, repr=False, compare=False)  # pyarrow.dataset.Dataset
+    trailing: bool = False  # CSV rows end in a field separator (a trailing comma), every extra field empty
 
     def read(self, columns=None) -> pd.DataFrame:
         """The named columns (those the table has; all when None) of every row."""
@@ -71,7 +72,7 @@ class Table:
         try:
             chunks = pd.read_csv(self.path, chunksize=batch_rows, **_csv_options(self))
             while True:
-                with _ragged_rows_refused():  # while parsing only, never across the yield
+                with _ragged_rows_refused(self.trailing):  # while parsing only, never across the yield
                     chunk = next(chunks, None)
                 if chunk is None:
                     break
@@ -147,13 +148,27 @@ def _sniff(head: bytes, p: Path, what: str) -> str:
 
 
 @contextmanager
-def _ragged_rows_refused():
+def _ragged_rows_refused(trailing: bool = False):
     """pandas keeps the header's columns of a row with more values (index_col=False) and only
-    warns that the rest is lost: here that is an error (a row's trailing empty field, as a
-    trailing comma makes, is no loss and no warning)."""
+    warns that the rest is lost: here that is an error, unless the table's rows end in a
+    trailing separator whose fields were all seen to be empty (`trailing`, `_trailing_only`)."""
     with warnings.catch_warnings():
-        warnings.simplefilter("error", pd.errors.ParserWarning)
+        warnings.simplefilter("ignore" if trailing else "error", pd.errors.ParserWarning)
         yield
+
+
+def _trailing_only(p: Path, sep: str, ncols: int) -> bool:
+    """Whether every row with more fields than the header's `ncols` has only empty ones beyond
+    them (a trailing separator): one pass of the csv module, made only for a file whose first
+    row has such a field."""
+    try:
+        with open(p, newline="", encoding="utf-8-sig") as f:
+            for row in csv.reader(f, delimiter=sep):
+                if len(row) > ncols and any(v.strip() for v in row[ncols:]):
+                    return False
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return False
+    return True
 
 
 def _csv_options(t: Table) -> dict:
@@ -177,7 +192,21 @@ def _open_csv(p: Path, sep: str, text: tuple[str, ...], what: str) -> Table:
         raise _unreadable(p, what, exc) from None
     if first.empty:
         raise DatasetError(f"the {what} has no rows", where=str(p))
-    return Table(p, "csv", tuple(str(c) for c in first.columns), sep, text, what)
+    columns = tuple(str(c) for c in first.columns)
+    trailing = _first_row_longer(p, sep, len(columns)) and _trailing_only(p, sep, len(columns))
+    return Table(p, "csv", columns, sep, text, what, trailing=trailing)
+
+
+def _first_row_longer(p: Path, sep: str, ncols: int) -> bool:
+    """Whether the first data row has more fields than the header (a trailing comma, say)."""
+    try:
+        with open(p, newline="", encoding="utf-8-sig") as f:
+            rows = csv.reader(f, delimiter=sep)
+            next(rows, None)
+            first = next(rows, None)
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return False
+    return first is not None and len(first) > ncols
 
 
 def _parquet_files(folder: Path) -> list[Path]:

@@ -25,6 +25,7 @@ from .placement import Placed
 MARKER = "augsplit-splits.json"
 SPLITS_CSV = "splits.csv"
 LIST_SUFFIX = {"coco": ".json", "yolo": ".txt", "voc": ".txt"}
+NOT_LISTS = ("audit.json", "score.json")  # reports a folder of split lists may also hold
 
 
 def default_out(path: str | Path, kind: str) -> Path:
@@ -137,7 +138,8 @@ def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
     if p.is_file():
         from .table import read_table
 
-        return _from_table(read_table(p), objs, str(p))
+        # ids and file names as written (007 stays 007, as the annotations read it)
+        return _from_table(read_table(p, text=("image_id", "file", "file_name", "split")), objs, str(p))
     raise DatasetError("no such file or folder", where=str(p))
 
 
@@ -193,7 +195,9 @@ def _from_table(df: pd.DataFrame, objs: Objects, where: str) -> np.ndarray:
 
 def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
     out = np.full(len(objs.images), NONE, dtype=object)
-    files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix in (".json", ".txt"))
+    # per-split lists only: not hidden files, not augsplit's own reports or markers (audit.json, ...)
+    files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix in (".json", ".txt")
+                   and not f.name.startswith(".") and f.name not in NOT_LISTS and not f.name.startswith("augsplit-"))
     if not files:
         raise DatasetError("no per-split files (<split>.json or <split>.txt) found", where=str(folder))
     for f in files:

@@ -70,11 +70,10 @@ def _pairs(root: Path, labels_dir: Path | None, images_dir: Path | None) -> dict
     if labels_dir is None:
         return {lab.relative_to(root).with_suffix(""): (lab, img) for lab, img in _flat_pairs(root)}
     pairs = {}
-    for lab in sorted(q for q in labels_dir.rglob("*.txt") if q.is_file() or q.is_symlink()):
+    for lab in _files_under(labels_dir, root, lambda n: n.endswith(".txt")):
         rel = lab.relative_to(labels_dir).with_suffix("")
         pairs[rel] = (lab, _image_for(images_dir / rel))
-    for img in sorted(q for q in images_dir.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES
-                      and (q.is_file() or q.is_symlink())):
+    for img in _files_under(images_dir, root, lambda n: Path(n).suffix.lower() in IMAGE_SUFFIXES):
         pairs.setdefault(img.relative_to(images_dir).with_suffix(""), (None, img))  # no label file: no objects
     return pairs
 
@@ -108,12 +107,33 @@ def _layout(p: Path) -> tuple[Path, Path | None, Path | None]:
 
 def _flat_pairs(folder: Path):
     """(label file, image) pairs lying side by side under `folder`."""
-    for lab in sorted(Path(folder).rglob("*.txt")):
+    for lab in _files_under(Path(folder), Path(folder), lambda n: n.endswith(".txt")):
         if lab.name in NAME_FILES:
             continue
         img = _image_for(lab.with_suffix(""))
         if img is not None:
             yield lab, img
+
+
+def _files_under(folder: Path, root: Path, keep) -> list[Path]:
+    """The files (and links to files) under `folder` whose name `keep` accepts, in path order,
+    following links to folders that lie inside the dataset folder `root`, each folder once; a
+    link to a folder out of it is refused by name (augsplit reads only inside its folders)."""
+    base = Path(root).resolve()
+    seen: set[Path] = set()
+    out = []
+    for dirpath, dirnames, filenames in os.walk(folder, followlinks=True):
+        real = Path(dirpath).resolve()
+        if not real.is_relative_to(base):
+            raise DatasetError(f"is a link out of the dataset folder {base} (to {real}); augsplit reads only "
+                               "inside the folders it is given", where=dirpath)
+        if real in seen:  # a link back to a folder already read
+            dirnames[:] = []
+            continue
+        seen.add(real)
+        dirnames.sort()
+        out += [Path(dirpath) / n for n in filenames if keep(n)]
+    return sorted(out)
 
 
 def _image_for(stem: Path) -> Path | None:

@@ -46,10 +46,7 @@ def _axis(name: str, a, spec: Spec, canvas: Canvas) -> Axis:
     where = f"axes.{name}"
     unit = a.unit if a is not None and a.unit is not None else _default_unit(kind)
     _check_unit(name, kind, unit, spec, where)
-    if a is not None and a.levels is not None:
-        if a.range is not None or a.dist != "uniform":  # they were silently ignored
-            raise SpecError("an axis takes levels (a list of values) or a range [lo, hi] with its dist, not both",
-                            where=f"{where}.levels")
+    if a is not None and a.levels is not None:  # a range or dist beside them is ignored (plan warning range_ignored)
         return _levels_axis(name, a.levels, unit, where)
     rng = a.range if a is not None and a.range is not None else _default_range(kind, unit, canvas, where)
     lo, hi = _checked_range(name, rng, unit, where)

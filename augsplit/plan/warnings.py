@@ -9,6 +9,7 @@ and `generate` show them, and `--strict` turns them into errors. Codes:
   axis_constant      an axis takes one value in every split (it varies nowhere)
   class_unused       a class of the object source is in no split
   class_empty        a split asks for a class its region holds none of
+  range_ignored      an axis gives levels and also a range or dist, which levels override
 """
 
 from __future__ import annotations
@@ -48,11 +49,24 @@ def plan_warnings(plan, source) -> tuple[PlanWarning, ...]:
     """Every warning for a finished plan (`source` is the plan's object source)."""
     out: list[PlanWarning] = []
     out += _class_warnings(plan)
+    out += _range_warnings(plan)
     out += _axis_warnings(plan)
     if source is not None:  # a spec that only splits existing data has no sprites to look at
         out += _colour_warnings(plan, source)
         out += _canvas_warnings(plan, source)
     return tuple(out)
+
+
+def _range_warnings(plan) -> list[PlanWarning]:
+    """Axes whose levels override a range or dist given beside them (an error would refuse the
+    datasets already made from such specs; a warning, an error under --strict, tells new ones)."""
+    out = []
+    for name, a in (plan.spec.axes or {}).items():
+        if a is not None and a.levels is not None and (a.range is not None or a.dist != "uniform"):
+            given = " and ".join(w for w, v in (("range", a.range is not None), ("dist", a.dist != "uniform")) if v)
+            out.append(PlanWarning("range_ignored", f"axis {name} gives levels and a {given}; the levels alone set "
+                                   f"its values and the {given} is ignored: remove it", None, (name,)))
+    return out
 
 
 # ---- classes ----------------------------------------------------------------------------------
