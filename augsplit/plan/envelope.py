@@ -82,10 +82,13 @@ TIE_BAND = 5 * ALPHA_SLACK
 SUPER = 5  # cells per pixel side on the super-sampled grid (odd: pixel centres are cell centres)
 BIN_TOL_PX = 0.15  # log-polar bin size at the object's rim, in canvas px at the largest scale
 MAX_BINS = 3_000_000
-# All sprites' tables together (each bin keeps two int32 summed-area entries, ~8 B): a spec
-# with thousands of classes shares this budget, its tables coarser (coarser bins only widen
-# each bin's reach, so the proof stays sound, if less sharp); 4,655 classes took 20 GB without it
-MAX_TABLE_BINS = 100_000_000
+# All sprites' tables together (two int32 summed-area tables over a doubled angle axis, about
+# 16 B per bin): a spec with thousands of classes shares this budget, its tables coarser
+# (coarser bins only widen each bin's reach, so the proof stays sound, if less sharp). It binds
+# only where the tables would take more than about 6 GB (e.g. over ~900 polyomino classes of
+# 5 px cells), so the proofs of specs that ran before are unchanged; 4,655 classes went past
+# 20 GB without it
+MAX_TABLE_BINS = 400_000_000
 
 
 # ---- what a box allows besides its position ----------------------------------------------
@@ -488,7 +491,7 @@ class Tables:
         self.items = list(items)
         self.polar: dict = {}
         sprites = list(dict.fromkeys(s for it in items for s in it.sprites))
-        bins = max(1, min(MAX_BINS, MAX_TABLE_BINS // max(1, len(sprites))))
+        bins = max(2, min(MAX_BINS, MAX_TABLE_BINS // max(1, len(sprites))))  # a table has at least 2 bins
         for s in sprites:
             self.polar[s] = polar_table(s, threshold, smax, tol_px, bins)
         self._apad: dict = {}
