@@ -35,6 +35,17 @@ LOADER = spec_dict(canvas={"width": 24, "height": 20, "mode": "rgb"},
                            "test": {"region": {"x": [14, 20]}, "per_class": 2}})
 
 
+def lanes_dataset(out: Path, per_class: int, store: str = "none") -> Path:
+    """A generated dataset of the default spec: train at x in [0, 20], test at [44, 64]."""
+    from augsplit.build import open_mapping
+    from augsplit.generate import Options, generate
+
+    built = open_mapping(spec_dict(splits={"train": {"region": {"x": [0, 20]}, "per_class": per_class},
+                                           "test": {"region": {"x": [44, 64]}, "per_class": per_class}}))
+    generate(None, out, Options(progress=False, store=store), built=built)
+    return out
+
+
 def write_spec(folder: Path, spec: dict) -> Path:
     """The spec as a YAML file in `folder`, keys in their given order (order decides draws)."""
     p = Path(folder) / "spec.yaml"

@@ -9,20 +9,14 @@ import sys
 import numpy as np
 import pandas as pd
 import pytest
-from specs import spec_dict
+from specs import lanes_dataset
 
-from augsplit.build import open_mapping
 from augsplit.dataset import read_manifest
-from augsplit.generate import Options, generate
 
 
 @pytest.fixture(scope="module")
 def dataset(tmp_path_factory):
-    out = tmp_path_factory.mktemp("ds") / "data"
-    built = open_mapping(spec_dict(splits={"train": {"region": {"x": [0, 20]}, "per_class": 10},
-                                           "test": {"region": {"x": [44, 64]}, "per_class": 10}}))
-    generate(None, out, Options(progress=False, store="none"), built=built)
-    return out
+    return lanes_dataset(tmp_path_factory.mktemp("ds") / "data", per_class=10, store="none")
 
 
 def run(*args):

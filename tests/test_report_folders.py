@@ -8,22 +8,16 @@ from __future__ import annotations
 
 import pandas as pd
 import pytest
-from specs import spec_dict
+from specs import lanes_dataset
 
-from augsplit.build import open_mapping
 from augsplit.cli import main
 from augsplit.dataset import read_manifest
-from augsplit.generate import Options, generate
 from augsplit.report_folder import REPORTS_LIST
 
 
 @pytest.fixture(scope="module")
 def dataset(tmp_path_factory):
-    out = tmp_path_factory.mktemp("ds") / "data"
-    built = open_mapping(spec_dict(splits={"train": {"region": {"x": [0, 20]}, "per_class": 4},
-                                           "test": {"region": {"x": [44, 64]}, "per_class": 4}}))
-    generate(None, out, Options(progress=False, store="files"), built=built)
-    return out
+    return lanes_dataset(tmp_path_factory.mktemp("ds") / "data", per_class=4, store="files")
 
 
 @pytest.fixture
