@@ -375,3 +375,11 @@ def test_an_audit_written_into_the_folder_of_split_lists_is_refused(tmp_path, ca
     (lists / "audit.json").write_text("{}")  # a report or hidden file beside the lists is not read as one
     (lists / ".notes.json").write_text("{}")
     assert cli("audit", src, "--splits", lists, "--spec", s, "--out", tmp_path / "au") == 0
+
+
+def test_a_coco_split_named_like_augsplit_s_own_record_is_refused(tmp_path, capsys):
+    # its <split>.json is augsplit-splits.json, the folder's record of what assign wrote there
+    d = dict(LANES, splits={"train": LANES["splits"]["train"], "augsplit-splits": LANES["splits"]["test"]})
+    src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    assert cli("assign", spec(tmp_path, d), src, "--out", tmp_path / "sp") == 2
+    assert "augsplit's own file" in capsys.readouterr().err

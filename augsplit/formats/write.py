@@ -72,6 +72,10 @@ def write_folder(placed: Placed, out: str | Path) -> list[Path]:
     suffix = LIST_SUFFIX[src.kind]
     images = placed.images
     names = [f"{s}{suffix}" for s in placed.splits] + [SPLITS_CSV]
+    clash = [s for s in placed.splits if f"{s}{suffix}" in (MARKER, SPLITS_CSV)]
+    if clash:  # its list would be written over augsplit's own record of the folder, or under it
+        raise DatasetError(f"a split named '{clash[0]}' would write {clash[0]}{suffix}, the name of augsplit's own "
+                           "file in this folder; rename the split", where=f"splits.{clash[0]}")
     ours = _prepare(out, names)
     for n in sorted(set(names) | ours | {MARKER}):  # written, replaced or removed below
         if (out / n).exists() and os.path.samefile(out / n, src.path):
