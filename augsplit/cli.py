@@ -53,16 +53,22 @@ def _cmd_assign(a) -> int:
     return 0
 
 
+# how users' annotated data is read, the same for assign and audit: option -> its default
+ANNOTATION_DEFAULTS = {"format": "auto", "boxes": None, "box_units": "px", "box_columns": None, "images": None}
+
+
 def _annotation_options(q) -> None:
-    """How users' annotated data is read: the same options for assign and audit."""
-    q.add_argument("--format", choices=["auto", "coco", "yolo", "voc", "table"], default="auto",
+    """The options of ANNOTATION_DEFAULTS."""
+    d = ANNOTATION_DEFAULTS
+    q.add_argument("--format", choices=["auto", "coco", "yolo", "voc", "table"], default=d["format"],
                    help="the input's format (default: from the file or folder)")
-    q.add_argument("--boxes", choices=["xyxy", "xywh", "cxcywh"], default=None,
+    q.add_argument("--boxes", choices=["xyxy", "xywh", "cxcywh"], default=d["boxes"],
                    help="a table's box convention: corners, top-left corner and size, or centre and size")
-    q.add_argument("--box-units", choices=["px", "norm"], default="px",
+    q.add_argument("--box-units", choices=["px", "norm"], default=d["box_units"],
                    help="a table's box units: px of its image, or fractions of its width and height")
-    q.add_argument("--box-columns", default=None, metavar="A,B,C,D", help="a table's four box columns, in convention order")
-    q.add_argument("--images", default=None, metavar="DIR",
+    q.add_argument("--box-columns", default=d["box_columns"], metavar="A,B,C,D",
+                   help="a table's four box columns, in convention order")
+    q.add_argument("--images", default=d["images"], metavar="DIR",
                    help="folder a COCO file's or a table's image paths resolve in (default: the file's folder)")
 
 
@@ -289,8 +295,7 @@ def _audit_input(a, thresholds: dict, column_map: dict, progress: bool):
                                  ref_size=a.ref_size, images_root=a.images, fmt=a.format, boxes=_box_options(a),
                                  exact_masks=not a.no_masks, progress=progress)
         return result, a.out or Path("audit")
-    given = [o for o, v in (("--format", a.format != "auto"), ("--boxes", a.boxes), ("--box-units", a.box_units != "px"),
-                            ("--box-columns", a.box_columns), ("--images", a.images)) if v]
+    given = ["--" + k.replace("_", "-") for k, default in ANNOTATION_DEFAULTS.items() if getattr(a, k) != default]
     if given:  # refused, not ignored
         raise AugsplitError("reads annotated data audited with --splits (COCO, YOLO, VOC or a table of boxes); "
                             "this input is a dataset folder or a table with its split column", where=given[0])

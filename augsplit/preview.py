@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from .build import Built
-from .dataset import DatasetFolder, image_of, open_dataset, read_rows
+from .dataset import image_of, open_dataset, read_rows
 from .dataset import layout as lay
 from . import figures
 from .errors import DatasetError
@@ -92,14 +92,17 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
-    sheets = {f"contact_{s.name}.png": df[df["split"] == s.name] for s in built.plan.splits}
-    sheets = {name: rows for name, rows in sheets.items() if len(rows)}
-    for rows in sheets.values():  # every image a sheet shows is read before any file is written,
-        for _, row in rows.iloc[pick_rows(len(rows), per_split)].iterrows():  # so a damaged one
-            image_of(folder, row)  # leaves no half-made set of sheets behind
+    # every image a sheet shows is read before any file is written, so a damaged one leaves
+    # no half-made set of sheets behind
+    sheets = {}
+    for s in built.plan.splits:
+        rows = df[df["split"] == s.name]
+        if len(rows):
+            pick = rows.iloc[pick_rows(len(rows), per_split)]
+            sheets[f"contact_{s.name}.png"] = (len(rows), [(row, image_of(folder, row)) for _, row in pick.iterrows()])
     cov = coverage(built, df)
     out = report_folder(out if out is not None else folder.root / PREVIEW_DIR, [*sheets, COVERAGE_FILE], [root])
-    paths = [contact_sheet(folder, rows, out / name, per_split, columns) for name, rows in sheets.items()]
+    paths = [contact_sheet(built, shown, n_rows, out / name, columns) for name, (n_rows, shown) in sheets.items()]
     paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
     return paths
 
@@ -138,11 +141,9 @@ def caption(built: Built, row) -> str:
     return "\n".join(lines)
 
 
-def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, columns: int = 6) -> Path:
-    built = folder.built
-
-    pick = rows.iloc[pick_rows(len(rows), per_split)]
-    n = len(pick)
+def contact_sheet(built: Built, shown: list, n_rows: int, path: Path, columns: int = 6) -> Path:
+    """The sheet of one split's `shown` (manifest row, image) pairs, of its `n_rows` rows."""
+    n = len(shown)
     cols = min(columns, n)
     nrows = math.ceil(n / cols)
     lines = 1 + math.ceil(len(varied_axes(built)) / 2)
@@ -151,13 +152,12 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
     cell_h = cap + img + gap
     width, height = 2 * margin + cols * img + (cols - 1) * gap, top + nrows * cell_h + margin - gap
     fig = figures.figure(figsize=(width, height))
-    split = built.plan.split(pick["split"].iloc[0])
-    for i, (_, row) in enumerate(pick.iterrows()):
+    split = built.plan.split(shown[0][0]["split"])
+    for i, (row, im) in enumerate(shown):
         r, c = divmod(i, cols)
         x0 = margin + c * (img + gap)
         y0 = height - top - r * cell_h - cap - img
         ax = fig.add_axes((x0 / width, y0 / height, img / width, img / height))
-        im = image_of(folder, row)
         if im.shape[2] == 1:
             ax.imshow(im[..., 0], cmap="gray", vmin=0, vmax=255, interpolation="nearest")
         else:
@@ -169,7 +169,7 @@ def contact_sheet(folder: DatasetFolder, rows, path: Path, per_split: int = 24, 
         fig.text(x0 / width, (y0 + img + 0.03) / height, caption(built, row), fontsize=6.5, family="monospace",
                  ha="left", va="bottom", linespacing=1.15)
     kind = f"{split.role}, {split.kind}" if split.kind != split.role else split.role
-    fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {len(rows)} images, "
+    fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {n_rows} images, "
              "evenly spaced by index", fontsize=10, ha="left", va="top")
     with output_path(path) as tmp:  # written safely, like every output
         fig.savefig(tmp, dpi=110, format="png")

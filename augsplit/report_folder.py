@@ -47,7 +47,8 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
                 and Path(os.path.realpath(p)).is_relative_to(os.path.realpath(src)):
             raise DatasetError(f"lies inside the input folder {src}, where the report would be read as part of "
                                "the input next time; give a folder outside it", where=str(p))
-    listed = _listed(p) | _earlier_reports(p)
+    listed = _listed(p)
+    earlier = None
     for name in names:
         q = p / name
         if not os.path.lexists(q):
@@ -58,8 +59,12 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
         if q.is_symlink() or not q.is_file():
             raise DatasetError("exists and is not a regular file; give another --out", where=str(q))
         if not own and name not in listed:
-            raise DatasetError("exists and augsplit has no record of writing it here (its list, " + REPORTS_LIST
-                               + ", names what it wrote); give another --out, or move the file", where=str(q))
+            if earlier is None:  # the reports' JSON is parsed only when a name is not on the list
+                earlier = _earlier_reports(p)
+                listed |= earlier
+            if name not in listed:
+                raise DatasetError("exists and augsplit has no record of writing it here (its list, " + REPORTS_LIST
+                                   + ", names what it wrote); give another --out, or move the file", where=str(q))
     return p, own, listed
 
 
@@ -69,7 +74,7 @@ def report_folder(out, names, inputs=()) -> Path:
     written, so a run cut short leaves only files a later run may replace."""
     p, own, listed = check_report_folder(out, names, inputs)
     folder = ensure_folder(p)
-    if not own and not set(names) <= listed:
+    if not own and not set(names) <= _listed(folder):  # reports an earlier augsplit left join the list too
         write_text_atomic(folder / REPORTS_LIST, json.dumps({"files": sorted(listed | set(names))}, indent=1))
     return folder
 

@@ -346,6 +346,7 @@ def test_yolo_labels_in_a_linked_folder_inside_the_dataset_are_read(tmp_path):
     (y / "store" / "part").mkdir(parents=True)
     (y / "store" / "part" / "9.txt").write_text("0 0.9 0.5 0.1 0.1\n")
     (y / "labels" / "part").symlink_to(y / "store" / "part")
+    (y / "store" / "part" / "again").symlink_to(y / "labels")  # a loop of links: each folder is read once
     (y / "images" / "part").mkdir()
     (y / "images" / "9.png").rename(y / "images" / "part" / "9.png")
     assert cli("assign", spec(tmp_path), y, "--out", tmp_path / "sp") == 0

@@ -329,3 +329,11 @@ def test_tables_within_the_budget_hold_the_sharp_mask_and_every_footprint(monkey
     for spr, cx, cy, s, a, m in _sample_placements(item, np.random.default_rng(seed), 60):
         fp = _canvas_mask(footprint(spr, RenderParams(cx, cy, s, a, m), (H, W), 0.5))
         assert not np.any(fp & ~coarse)
+
+
+def test_a_table_of_the_smallest_budget_is_made():
+    """The coarsening loop ends at any budget of at least 2 bins (Tables never asks for fewer)."""
+    from augsplit.plan.envelope import polar_table
+
+    tab = polar_table(Polyominoes(4, 4).sprite(0, 0), 0.5, 2.0, max_bins=2)
+    assert (tab.sat[0].shape[0] - 1) * tab.nphi <= 2

@@ -137,15 +137,30 @@ def test_score_predictions_checks_a_dataframe_as_it_checks_a_file(dataset, tmp_p
     assert dataframe_error.value.message == file_error.value.message
 
 
-def test_an_audit_folder_from_before_the_list_is_taken_as_augsplit_s(dataset, tmp_path):
-    import json
-
+@pytest.mark.parametrize("command", ["audit", "score"])
+def test_a_report_folder_from_before_the_list_is_taken_as_augsplit_s(dataset, predictions, tmp_path, command):
     out = tmp_path / "old"
-    assert cli("audit", dataset, "--out", out) in (0, 1)
+    assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)
     (out / REPORTS_LIST).unlink()  # as an earlier augsplit left it: its reports, no list
-    doc = json.loads((out / "audit.json").read_text())
-    assert doc["schema"].startswith("augsplit.audit/")
-    assert cli("audit", dataset, "--out", out) in (0, 1)  # was refused: 'did not write it here'
+    assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)  # was refused: 'did not write it here'
+    (out / REPORTS_LIST).unlink()
+    (out / f"{command}.json").write_text("{}")  # a JSON augsplit's reports never are: nothing is taken for ours
+    assert cli(*commands(dataset, predictions, out)[command]) == 2
+
+
+def test_a_run_cut_short_leaves_files_a_later_run_replaces(dataset, tmp_path, monkeypatch):
+    import augsplit.audit.report as report
+
+    def broken(result, path):
+        raise OSError("disk full")
+
+    out = tmp_path / "cut"
+    monkeypatch.setattr(report, "write_html", broken)
+    with pytest.raises(OSError):
+        report.write_reports(report.AuditResult((), (), (), {}, {}), out)
+    assert (out / "audit.json").is_file() and not (out / "audit.html").exists()
+    monkeypatch.undo()
+    assert cli("audit", dataset, "--out", out) in (0, 1)  # audit.json was listed before it was written
 
 
 def test_a_user_spec_named_spec_json_does_not_make_its_folder_a_dataset(dataset, tmp_path, monkeypatch):

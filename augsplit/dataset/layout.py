@@ -47,8 +47,7 @@ def _recorded_spec(f: Path) -> bool:
     if not f.is_file():
         return False
     try:
-        with open(f, "rb") as fh:
-            doc = json.loads(fh.read(1 << 20) or b"null") if f.stat().st_size <= 1 << 20 else {"spec_hash": None}
+        doc = json.loads(f.read_bytes())
     except (OSError, ValueError):
         return True
     return not isinstance(doc, dict) or "spec_hash" in doc

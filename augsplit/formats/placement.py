@@ -7,6 +7,7 @@ fall in different splits (`drop`, `keep` as a `mixed` split, or the `largest` ob
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -15,7 +16,7 @@ import pandas as pd
 
 from ..assign import DROPPED, EMPTY, LABEL_COLUMNS, MIXED, OUTSIDE, SPLIT_COLUMN, Assignment, assign
 from ..errors import DatasetError
-from .table import open_table_file, read_table
+from .table import open_table_file
 from .boxes import BOX, CONVENTIONS, Objects, box_columns, check_boxes, looks_like_boxes, object_frame, to_px, to_xyxy
 
 FORMATS = ("auto", "coco", "yolo", "voc", "table")
@@ -73,7 +74,8 @@ def open_objects(path, fmt: str = "auto", boxes: BoxOptions = BoxOptions(), imag
         raise DatasetError(f"unknown format {fmt!r} (use {', '.join(FORMATS)})", where=str(path))
     # every CSV cell as written (ids like 007, labels like 1, NA): the split column is added to
     # the user's table and nothing else in it changes; numbers are parsed where they are used
-    df = read_table(path, text=open_table_file(path).columns)
+    t = open_table_file(path)
+    df = dataclasses.replace(t, text=t.columns).read()
     return table_objects(df, boxes, str(path), default_size, Path(path), images_root) or df
 
 

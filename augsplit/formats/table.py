@@ -151,24 +151,26 @@ def _sniff(head: bytes, p: Path, what: str) -> str:
 def _ragged_rows_refused(trailing: bool = False):
     """pandas keeps the header's columns of a row with more values (index_col=False) and only
     warns that the rest is lost: here that is an error, unless the table's rows end in a
-    trailing separator whose fields were all seen to be empty (`trailing`, `_trailing_only`)."""
+    trailing separator whose fields were all seen to be empty (`trailing`, `_trailing_separator`)."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore" if trailing else "error", pd.errors.ParserWarning)
         yield
 
 
-def _trailing_only(p: Path, sep: str, ncols: int) -> bool:
-    """Whether every row with more fields than the header's `ncols` has only empty ones beyond
-    them (a trailing separator): one pass of the csv module, made only for a file whose first
-    row has such a field."""
+def _trailing_separator(p: Path, sep: str, ncols: int) -> bool:
+    """Whether the rows end in a separator the header lacks (a trailing comma): the first data
+    row has more fields than the header's `ncols`, and every such row has only empty ones
+    beyond them. The whole file is read (the csv module) only when the first row is longer."""
     try:
         with open(p, newline="", encoding="utf-8-sig") as f:
-            for row in csv.reader(f, delimiter=sep):
-                if len(row) > ncols and any(v.strip() for v in row[ncols:]):
-                    return False
+            rows = csv.reader(f, delimiter=sep)
+            next(rows, None)  # the header
+            first = next(rows, None)
+            if first is None or len(first) <= ncols:
+                return False
+            return not any(len(row) > ncols and any(v.strip() for v in row[ncols:]) for row in (first, *rows))
     except (OSError, UnicodeDecodeError, csv.Error):
         return False
-    return True
 
 
 def _csv_options(t: Table) -> dict:
@@ -193,20 +195,7 @@ def _open_csv(p: Path, sep: str, text: tuple[str, ...], what: str) -> Table:
     if first.empty:
         raise DatasetError(f"the {what} has no rows", where=str(p))
     columns = tuple(str(c) for c in first.columns)
-    trailing = _first_row_longer(p, sep, len(columns)) and _trailing_only(p, sep, len(columns))
-    return Table(p, "csv", columns, sep, text, what, trailing=trailing)
-
-
-def _first_row_longer(p: Path, sep: str, ncols: int) -> bool:
-    """Whether the first data row has more fields than the header (a trailing comma, say)."""
-    try:
-        with open(p, newline="", encoding="utf-8-sig") as f:
-            rows = csv.reader(f, delimiter=sep)
-            next(rows, None)
-            first = next(rows, None)
-    except (OSError, UnicodeDecodeError, csv.Error):
-        return False
-    return first is not None and len(first) > ncols
+    return Table(p, "csv", columns, sep, text, what, trailing=_trailing_separator(p, sep, len(columns)))
 
 
 def _parquet_files(folder: Path) -> list[Path]:

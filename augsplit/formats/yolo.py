@@ -115,13 +115,13 @@ def _flat_pairs(folder: Path):
             yield lab, img
 
 
-def _files_under(folder: Path, root: Path, keep) -> list[Path]:
-    """The files (and links to files) under `folder` whose name `keep` accepts, in path order,
-    following links to folders that lie inside the dataset folder `root`, each folder once; a
-    link to a folder out of it is refused by name (augsplit reads only inside its folders)."""
+def _files_under(folder: Path, root: Path, keep):
+    """The files (and links to files) under `folder` whose name `keep` accepts, folder by
+    folder in name order, following links to folders that lie inside the dataset folder `root`,
+    each folder once; a link to a folder out of it is refused by name (augsplit reads only
+    inside its folders). Lazy: detecting a YOLO folder stops at its first label file."""
     base = Path(root).resolve()
     seen: set[Path] = set()
-    out = []
     for dirpath, dirnames, filenames in os.walk(folder, followlinks=True):
         real = Path(dirpath).resolve()
         if not real.is_relative_to(base):
@@ -132,8 +132,7 @@ def _files_under(folder: Path, root: Path, keep) -> list[Path]:
             continue
         seen.add(real)
         dirnames.sort()
-        out += [Path(dirpath) / n for n in filenames if keep(n)]
-    return sorted(out)
+        yield from (Path(dirpath) / n for n in sorted(filenames) if keep(n))
 
 
 def _image_for(stem: Path) -> Path | None:
