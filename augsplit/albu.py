@@ -202,7 +202,7 @@ def recolour(image: np.ndarray, hue: float, saturation: float, brightness: float
     f = image.astype(np.float32) * np.float32(1 / 255) if is_u8 else image.astype(np.float32)
     grey = f.ndim == 2 or f.shape[2] == 1
     rgb = cv2.cvtColor(f.reshape(f.shape[:2]), cv2.COLOR_GRAY2RGB) if grey else np.ascontiguousarray(f[..., :3])
-    out = recolour_hsv(*cv2.split(cv2.cvtColor(rgb, cv2.COLOR_RGB2HSV)), hue, saturation, brightness)
+    out = recolour_hsv(cv2.cvtColor(rgb, cv2.COLOR_RGB2HSV), hue, saturation, brightness)
     if grey:
         out = out[..., 0].reshape(f.shape)
     elif f.shape[2] > 3:

@@ -148,24 +148,31 @@ def recoloured(sprite: Sprite, p: RenderParams, grey: bool) -> np.ndarray:
     if not p.recolours:
         return sprite.premultiplied_grey if grey else sprite.premultiplied
     if grey:
-        rgb = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness)
+        rgb = recolour_hsv(sprite.hsv, p.hue, p.saturation, p.brightness)
         return premultiply(rgb, sprite.premultiply_weights, grey)
     # premultiply's colour case with its RGB2RGBA folded into the HSV conversion: cv2 computes
     # the same RGB either way and writes the fourth channel as 1.0, as RGB2RGBA does (OpenCV's
     # HSV2RGB_f, from memory; the pinned byte tests hold it on the machine that runs them)
-    rgba = recolour_hsv(*sprite.hsv_planes, p.hue, p.saturation, p.brightness, channels=4)
+    rgba = recolour_hsv(sprite.hsv, p.hue, p.saturation, p.brightness, channels=4)
     rgba *= sprite.premultiply_weights
     return rgba
 
 
-def recolour_hsv(h: np.ndarray, s: np.ndarray, v: np.ndarray, hue: float, saturation: float,
-                 brightness: float, channels: int = 3) -> np.ndarray:
-    """The colour axes on float32 HSV planes (OpenCV's: H in degrees, S and V in [0, 1]): hue
-    rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB, or with
-    `channels` 4 as RGB and a fourth channel of 1.0."""
-    shift = hue % 360.0
-    if shift:  # cv2's float HSV2RGB wraps H in [360, 720) itself
-        h = h + np.float32(shift)
+def recolour_hsv(hsv: np.ndarray, hue: float, saturation: float, brightness: float, channels: int = 3) -> np.ndarray:
+    """The colour axes on float32 HSV (OpenCV's: H in degrees, S and V in [0, 1]; (h, w, 3)):
+    hue rotated, saturation and value multiplied (clipped to 1); returned as float32 RGB, or
+    with `channels` 4 as RGB and a fourth channel of 1.0."""
+    shift = np.float32(hue % 360.0)  # cv2's float HSV2RGB wraps H in [360, 720) itself
+    if saturation == 1.0 and brightness == 1.0:
+        # a hue turn alone: one cv2.add, H + shift in float32 as numpy adds it (the scalar is a
+        # float32 value, so cv2's conversion of it is exact); S and V gain +0.0. Measured
+        # 0.8-0.9x the time of splitting the planes, adding and merging them again
+        if shift:
+            hsv = cv2.add(hsv, (float(shift), 0.0, 0.0, 0.0))
+        return cv2.cvtColor(hsv, cv2.COLOR_HSV2RGB, dstCn=channels)
+    h, s, v = cv2.split(hsv)
+    if shift:
+        h = h + shift
     if saturation != 1.0:
         s = np.minimum(s * np.float32(saturation), np.float32(1.0))
     if brightness != 1.0:

@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 
 from augsplit.plan.geometry import WARP_SLACK_PX, support_radius
 
-from augsplit.render import (Placed, RenderParams, add_footprint, footprint, masks_overlap, place, render,
+from augsplit.render import (Placed, RenderParams, add_footprint, footprint, masks_overlap, place, recolour_hsv, render,
                              similarity_matrix)
 from augsplit.sources import Polyominoes, Sprite
 
@@ -274,7 +274,8 @@ def test_later_objects_draw_over_earlier_and_background_is_untouched():
 
 @settings(max_examples=300, deadline=None)
 @given(rgb=st.tuples(*[st.integers(0, 255)] * 3), hue=st.floats(-360, 720, **finite),
-       sat=st.floats(0, 2, **finite), bright=st.floats(0, 2, **finite))
+       sat=st.one_of(st.just(1.0), st.floats(0, 2, **finite)),  # 1.0 and 1.0: a hue turn alone, its own path
+       bright=st.one_of(st.just(1.0), st.floats(0, 2, **finite)))
 def test_colour_axes_match_colorsys(rgb, hue, sat, bright):
     # Reference: Python's colorsys (RGB <-> HSV). Expected colour: hue rotated, saturation and
     # value multiplied and clipped to 1. Tolerance: 0.5 level of 8-bit rounding plus float32.
@@ -288,6 +289,19 @@ def test_colour_axes_match_colorsys(rgb, hue, sat, bright):
     grey, _ = render(np.zeros((32, 32, 1), np.uint8), [(sp, p)])
     luma = want @ [0.299, 0.587, 0.114]  # ITU-R BT.601 luma, as cv2.COLOR_RGB2GRAY
     assert np.abs(grey[12:20, 12:20].astype(float) - luma).max() <= 0.6
+
+
+@settings(max_examples=300, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), hue=st.floats(-720, 720, **finite), channels=st.sampled_from([3, 4]))
+def test_a_hue_turn_alone_equals_the_sum_plane_by_plane(seed, hue, channels):
+    # A hue turn alone is one cv2.add on the HSV image; its definition is numpy's float32 sum
+    # on the H plane (the path every other colour change takes), which it must equal bit for bit.
+    rgb = np.random.default_rng(seed).random((7, 11, 3), dtype=np.float32)
+    hsv = cv2.cvtColor(rgb, cv2.COLOR_RGB2HSV)
+    h, s, v = cv2.split(hsv)
+    want = cv2.cvtColor(cv2.merge((h + np.float32(hue % 360.0), s, v)), cv2.COLOR_HSV2RGB, dstCn=channels)
+    np.testing.assert_array_equal(recolour_hsv(hsv, hue, 1.0, 1.0, channels), want)
+    np.testing.assert_array_equal(hsv, cv2.cvtColor(rgb, cv2.COLOR_RGB2HSV))  # the sprite's HSV is not changed
 
 
 def test_colour_axes_leave_the_background_alone():

@@ -82,9 +82,9 @@ class Sprite:
         return self.rgba[..., :3].astype(np.float32) * np.float32(1 / 255)
 
     @cached_property
-    def hsv_planes(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Colour in OpenCV float HSV as three contiguous planes: H in degrees [0, 360), S, V in [0, 1]."""
-        return tuple(cv2.split(cv2.cvtColor(self.rgb, cv2.COLOR_RGB2HSV)))
+    def hsv(self) -> np.ndarray:
+        """Colour in OpenCV float HSV, (h, w, 3) float32: H in degrees [0, 360), S, V in [0, 1]."""
+        return cv2.cvtColor(self.rgb, cv2.COLOR_RGB2HSV)
 
     @cached_property
     def premultiply_weights(self) -> np.ndarray:
