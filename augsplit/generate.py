@@ -41,7 +41,7 @@ from .io import (DISK_FULL, move_into_place, new_temporary, os_error, sync_files
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
 from .manifest import pixel_sha256
-from .scene import native_diameter, scene_batches
+from .scene import SCENE_KEYS, native_diameter, scene_batches
 from .spec import parse_spec
 from .threads import limit_opencv
 
@@ -292,8 +292,9 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
     cols = draw(plan, split, indices)
     n = len(indices)
     thr = plan.render.alpha_threshold
-    names = list(cols)
-    rows = [dict(zip(names, vals)) for vals in zip(*(cols[k].tolist() for k in names))]  # plain Python scalars
+    # what the scenes read of each row, as plain Python scalars (a dict of every drawn column,
+    # 21 on bench_generate's spec, measured 0.5-2 us more per image)
+    rows = [dict(zip(SCENE_KEYS, vals)) for vals in zip(*(cols[k].tolist() for k in SCENE_KEYS))]
     ids = [f"{job.split}-{i:07d}" for i in cols["index"].tolist()]
     bbox, footprint_px, visible, n_dist, size_px = [], [], [], [], []  # Python lists: cheap appends
     file_col, data_col, sums, byte_sums = [], [], [], []

@@ -20,6 +20,7 @@ from .space.axes import RENDER_PARAMS
 from .space.streams import RENDER, lazy_image_rng
 
 PARAM_KEYS = RENDER_PARAMS  # the pixel centre and every axis the renderer reads by name
+SCENE_KEYS = ("index", "class_index", "instance", *PARAM_KEYS)  # all a scene reads of its row
 
 
 @dataclass(frozen=True, eq=False)
@@ -36,7 +37,8 @@ def render_params(row) -> RenderParams:
 
 
 def make_scene(plan: Plan, source, background, split: SplitPlan, row, rng: np.random.Generator | None = None) -> Scene:
-    """Render the image of one row (a mapping with class_index, instance, index and PARAM_KEYS).
+    """Render the image of one row (a mapping with SCENE_KEYS: class_index, instance, index and
+    PARAM_KEYS).
 
     `rng` replaces the row's render stream (online sampling passes a stream of its own, so a
     fresh draw never reuses the background of the generated image with the same index).
