@@ -15,6 +15,8 @@ import tarfile
 import cv2
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from augsplit.cli import main
 from augsplit.data import Dataset
@@ -185,6 +187,21 @@ def test_the_archives_are_the_bytes_pythons_tarfile_writes_for_their_members(ser
                 ti.size, ti.mtime, ti.mode, ti.uid, ti.gid, ti.uname, ti.gname = len(data), 0, 0o644, 0, 0, "", ""
                 tw.addfile(ti, io.BytesIO(data))
         assert buf.getvalue() == raw, rel
+
+
+@settings(max_examples=300, deadline=None)
+@given(name=st.text(st.characters(min_codepoint=33, max_codepoint=0x2FFF, exclude_characters="/"), min_size=1,
+                    max_size=100).filter(lambda n: len(n.encode()) <= 100),
+       size=st.integers(0, 8**11 - 1))
+def test_a_member_header_is_the_one_pythons_tarfile_writes(name, size):
+    """Reference: the standard library's tarfile, ustar, with the fixed owner, mode and time.
+    The header's checksum is summed from its varying fields only; any name and size must give
+    tarfile's bytes."""
+    from augsplit.dataset.tarstore import header
+
+    ti = tarfile.TarInfo(name)
+    ti.size, ti.mtime, ti.mode, ti.uid, ti.gid, ti.uname, ti.gname = size, 0, 0o644, 0, 0, "", ""
+    assert header(name, size) == ti.tobuf(tarfile.USTAR_FORMAT, "utf-8", "surrogateescape")
 
 
 def test_a_name_too_long_for_ustar_is_refused_in_one_line():

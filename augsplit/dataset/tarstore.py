@@ -18,6 +18,7 @@ import stat
 import tarfile
 
 import numpy as np
+import pyarrow as pa
 
 from .. import manifest as mf
 from ..errors import DatasetError
@@ -52,16 +53,20 @@ def header(name: str, size: int) -> bytes:
     raw = name.encode("utf-8")
     if len(raw) > 100 or not raw:
         raise DatasetError(f"cannot store {name!r} in a ustar archive: a member name holds 1 to 100 bytes")
-    head = b"".join((raw.ljust(100, b"\0"), _FIXED_MODE_IDS, b"%011o\0" % size, _FIXED_REST_1))
-    chksum = sum(head)  # with the checksum field as eight spaces, as ustar defines it
-    return head[:148] + b"%06o\0 " % chksum + head[156:]
+    size_field = b"%011o\0" % size
+    # the sum of the header's bytes with the checksum field as eight spaces, as ustar defines
+    # it: the fixed fields' share is summed once (a sum over 512 bytes per member cost ~5 us)
+    chksum = _FIXED_SUM + sum(raw) + sum(size_field)
+    return b"".join((raw.ljust(100, b"\0"), _FIXED_MODE_IDS, size_field, _MTIME, b"%06o\0 " % chksum, _FIXED_REST_2))
 
 
 # mode 0644, uid 0, gid 0 (each 7 octal digits and NUL); then mtime 0, the checksum's place,
 # type '0', an empty link name, magic "ustar\0" version "00", empty owner names, empty device
 # numbers (a regular file has none) and an empty prefix
 _FIXED_MODE_IDS = b"0000644\0" + b"0000000\0" * 2
-_FIXED_REST_1 = b"%011o\0" % 0 + b" " * 8 + b"0" + b"\0" * 100 + b"ustar\x0000" + b"\0" * (64 + 16 + 167)
+_MTIME = b"%011o\0" % 0
+_FIXED_REST_2 = b"0" + b"\0" * 100 + b"ustar\x0000" + b"\0" * (64 + 16 + 167)  # after the checksum field
+_FIXED_SUM = sum(_FIXED_MODE_IDS) + sum(_MTIME) + sum(b" " * 8) + sum(_FIXED_REST_2)
 
 
 class TarShardWriter:
@@ -97,9 +102,12 @@ class TarShardWriter:
 _ENCODER = json.JSONEncoder(separators=(",", ":"), allow_nan=False)
 
 
-def fast_record(rec: dict) -> dict:
-    """A `to_pylist` row (plain Python values already) as its JSON record: NaN to null."""
-    return {k: (None if v != v else v) for k, v in rec.items()}
+def json_values(column) -> list:
+    """A pyarrow column's values as its JSON records hold them: its `to_pylist`, NaN as null."""
+    values = column.to_pylist()
+    if pa.types.is_floating(column.type):
+        return [None if v != v else v for v in values]
+    return values
 
 
 # ---- reading ----------------------------------------------------------------------------------
