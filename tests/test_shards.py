@@ -136,6 +136,29 @@ def test_finalize_sweeps_temporaries_left_by_killed_jobs(spec_file, serial, tmp_
     assert not stray.exists() and tree(copy) == tree(serial)
 
 
+def test_the_sweep_removes_only_regular_files_and_never_enters_a_linked_folder(serial, tmp_path):
+    """The sweep of temporaries removes a regular file of one of its names and nothing that is a
+    link: not a temporary-named link to a file, and nothing in a folder a split's link leads to."""
+    from augsplit.dataset.create import remove_temporaries
+
+    copy = tmp_path / "copy"
+    shutil.copytree(serial, copy)
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    theirs = outside / ".train-0000001.png.tmp-5"  # a temporary's name, in a folder augsplit did not make
+    theirs.write_bytes(b"someone's")
+    target = tmp_path / "target.png"
+    target.write_bytes(b"a file")
+    link = copy / lay.IMAGES_DIR / "train" / ".train-0000002.png.tmp-6"
+    link.symlink_to(target)
+    (copy / lay.IMAGES_DIR / "linked").symlink_to(outside, target_is_directory=True)
+    own = copy / lay.IMAGES_DIR / "train" / ".train-0000003.png.tmp-7"
+    own.write_bytes(b"half an image")
+    remove_temporaries(copy)
+    assert not own.exists()
+    assert link.is_symlink() and theirs.read_bytes() == b"someone's" and target.read_bytes() == b"a file"
+
+
 def test_more_jobs_than_shards_is_harmless(spec_file, tmp_path):
     summary = generate(spec_file, tmp_path / "d", Options(shard_size=SIZE, progress=False, array_shard=(11, 12)))
     assert summary["images"] == 0 and summary["shards"] == 0
