@@ -22,7 +22,7 @@ from . import figures
 from .errors import DatasetError
 from .io import output_path
 from .render import add_footprint, footprint
-from .report_folder import report_folder
+from .report_folder import report_set
 from .scene import render_params
 from .space.axes import ANGLE_AXES
 from .threads import one_opencv_thread
@@ -92,18 +92,21 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
-    # every image a sheet shows is read before any file is written, so a damaged one leaves
-    # no half-made set of sheets behind
+    # every image a sheet shows is read (and a stored one held to its recorded checksum: a
+    # sheet never shows an image changed since it was made under its row's caption) before any
+    # file is written, so a damaged one leaves no half-made set of sheets behind
     sheets = {}
     for s in built.plan.splits:
         rows = df[df["split"] == s.name]
         if len(rows):
             pick = rows.iloc[pick_rows(len(rows), per_split)]
-            sheets[f"contact_{s.name}.png"] = (len(rows), [(row, image_of(folder, row)) for _, row in pick.iterrows()])
+            sheets[f"contact_{s.name}.png"] = (len(rows), [(row, image_of(folder, row, checked=True))
+                                                               for _, row in pick.iterrows()])
     cov = coverage(built, df)
-    out = report_folder(out if out is not None else folder.root / PREVIEW_DIR, [*sheets, COVERAGE_FILE], [root])
-    paths = [contact_sheet(built, shown, n_rows, out / name, columns) for name, (n_rows, shown) in sheets.items()]
-    paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
+    with report_set(out if out is not None else folder.root / PREVIEW_DIR, "preview", [*sheets, COVERAGE_FILE],
+                    [root]) as out:
+        paths = [contact_sheet(built, shown, n_rows, out / name, columns) for name, (n_rows, shown) in sheets.items()]
+        paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
     return paths
 
 

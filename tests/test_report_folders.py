@@ -91,7 +91,7 @@ def test_reports_inside_a_dataset_go_only_to_its_report_folders(dataset, predict
     own = dataset / {"score": "score", "audit": "audit", "preview": "preview"}[command]
     assert cli(*commands(dataset, predictions, own)[command]) in (0, 1)  # the dataset's own report folder
     assert cli(*commands(dataset, predictions, own)[command]) in (0, 1)  # again: its files are augsplit's
-    assert not (own / REPORTS_LIST).exists()
+    assert (own / REPORTS_LIST).is_file()  # each command's last run is recorded: what it may remove next time
     assert cli("verify", dataset, "--quiet") == 0
 
 
@@ -107,6 +107,25 @@ def test_preview_of_a_damaged_dataset_writes_no_sheet(dataset, tmp_path, capsys)
     assert cli("preview", broken, "--out", out) == 2
     assert "Traceback" not in capsys.readouterr().err
     assert not out.exists() or not any(p.suffix == ".png" for p in out.iterdir())
+
+
+def test_preview_refuses_a_stored_image_changed_since_it_was_made(dataset, tmp_path, capsys):
+    import shutil
+
+    import cv2
+
+    changed = tmp_path / "changed"
+    shutil.copytree(dataset, changed)
+    m = read_manifest(changed)
+    last = changed / m[m["split"] == "test"]["file"].iloc[-1]
+    img = cv2.imread(str(last), cv2.IMREAD_UNCHANGED)
+    cv2.imwrite(str(last), 255 - img)  # still a valid PNG of the canvas, but not the image its row describes
+    out = tmp_path / "pv"
+    assert cli("preview", changed, "--out", out) == 2  # was 0: the sheet showed it under its row's caption
+    err = capsys.readouterr().err
+    assert "does not match its checksum" in err and m[m["split"] == "test"]["image_id"].iloc[-1] in err
+    assert not out.exists() or not any(p.suffix == ".png" for p in out.iterdir())
+    assert cli("preview", dataset, "--out", out) == 0  # the untouched dataset's sheets
 
 
 # ---- the API's predictions pass the file's checks -------------------------------------------------
@@ -184,3 +203,115 @@ def test_an_audited_table_with_empty_image_bytes_cells_is_one_line(tmp_path, cap
     assert cli("audit", tmp_path / "t.csv", "--axis", "x=0:64", "--out", tmp_path / "au") == 2
     err = capsys.readouterr().err
     assert "neither image bytes nor an image file" in err and "Traceback" not in err
+
+
+# ---- one run's report per command: what an earlier run wrote and this one did not is removed ----
+
+
+def _csvs(folder):
+    return sorted(p.name for p in folder.glob("*.csv"))
+
+
+@pytest.mark.parametrize("where", ["outside", "own"])
+def test_a_score_of_one_model_leaves_no_comparison_table_of_an_earlier_run(dataset, predictions, tmp_path, where):
+    out = tmp_path / "reports" if where == "outside" else dataset / "score"
+    other = tmp_path / "other.csv"
+    other.write_bytes(predictions.read_bytes())
+    single = tmp_path / "single"
+    assert cli("score", dataset, predictions, "--out", single) in (0, 1)  # the tables of one model, for reference
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) in (0, 1)
+    assert "comparison.csv" in _csvs(out) and _csvs(out) != _csvs(single)
+    out.mkdir(exist_ok=True)
+    (out / "notes.csv").write_text("mine")  # the user's, beside the reports: never augsplit's to remove
+    if where == "outside":
+        assert cli("audit", dataset, "--out", out) in (0, 1)  # another command's reports in the same folder
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    # before: the earlier run's comparison.csv and per-model tables stayed beside the new tables
+    assert _csvs(out) == sorted(_csvs(single) + ["notes.csv"])
+    assert (out / "notes.csv").read_text() == "mine"
+    assert where == "own" or (out / "audit.json").is_file() and (out / "audit.html").is_file()
+    (out / "notes.csv").unlink()
+    assert cli("verify", dataset, "--quiet") == 0
+
+
+def test_a_stale_report_that_became_a_link_a_folder_or_an_input_is_left(dataset, predictions, tmp_path):
+    out, other = tmp_path / "reports", tmp_path / "other.csv"
+    other.write_bytes(predictions.read_bytes())
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) in (0, 1)
+    stale = [n for n in _csvs(out) if n not in _csvs_of_one_model(dataset, predictions, tmp_path)]
+    assert len(stale) >= 3
+    outside = tmp_path / "outside.txt"
+    outside.write_text("not augsplit's")
+    link, folder, used = stale[0], stale[1], stale[2]
+    (out / link).unlink()
+    (out / link).symlink_to(outside)
+    (out / folder).unlink()
+    (out / folder).mkdir()
+    (out / folder / "inside.txt").write_text("kept")
+    (out / used).write_bytes(predictions.read_bytes())  # now this run's predictions file
+    assert cli("score", dataset, out / used, "--out", out) in (0, 1)
+    assert (out / link).is_symlink() and outside.read_text() == "not augsplit's"
+    assert (out / folder / "inside.txt").read_text() == "kept"
+    assert (out / used).read_bytes() == predictions.read_bytes()
+    assert not any((out / n).exists() for n in stale[3:])  # the rest of the earlier run's tables went
+
+
+def _csvs_of_one_model(dataset, predictions, tmp_path):
+    out = tmp_path / "one-model"
+    if not out.exists():
+        assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    return _csvs(out)
+
+
+def test_report_sets_remove_only_what_the_command_left_and_only_once_a_run_completes(tmp_path):
+    from augsplit.report_folder import report_set
+
+    out = tmp_path / "r"
+    with report_set(out, "score", ["a.csv", "b.csv"]) as f:
+        for n in ("a.csv", "b.csv"):
+            (f / n).write_text(n)
+    with report_set(out, "audit", ["audit.json"]) as f:
+        (f / "audit.json").write_text("{}")
+    with pytest.raises(RuntimeError):  # a run that fails removes nothing; what it wrote is recorded
+        with report_set(out, "score", ["c.csv"]) as f:
+            (f / "c.csv").write_text("c")
+            raise RuntimeError("cut short")
+    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "b.csv", "c.csv"]
+    with report_set(out, "score", ["a.csv"]) as f:
+        (f / "a.csv").write_text("again")
+    # b.csv of the earlier run and c.csv of the run cut short are gone; audit's report is another command's
+    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json"]
+    with report_set(out, "preview", ["a.csv"]):  # preview never wrote b.csv: a file of that name now is not its
+        (out / "b.csv").write_text("user")
+    with report_set(out, "score", ["a.csv"]):
+        pass
+    assert (out / "b.csv").read_text() == "user"
+
+
+def test_a_list_from_before_runs_were_recorded_removes_nothing(tmp_path):
+    import json
+
+    from augsplit.report_folder import report_set
+
+    out = tmp_path / "r"
+    out.mkdir()
+    for n in ("score.json", "old.csv"):
+        (out / n).write_text("{}")
+    (out / REPORTS_LIST).write_text(json.dumps({"files": ["score.json", "old.csv"]}))  # as the last release wrote it
+    with report_set(out, "score", ["score.json"]) as f:
+        (f / "score.json").write_text("{}")
+    with report_set(out, "score", ["score.json"]):
+        pass
+    assert (out / "old.csv").is_file()
+    for bad in ({"files": [], "runs": {"score": 3}}, {"files": [], "runs": []}):
+        (out / REPORTS_LIST).write_text(json.dumps(bad))
+        with pytest.raises(augsplit_error()) as e:
+            with report_set(out, "score", ["score.json"]):
+                pass
+        assert "unreadable list" in str(e.value)
+
+
+def augsplit_error():
+    from augsplit.errors import DatasetError
+
+    return DatasetError

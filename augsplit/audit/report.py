@@ -280,9 +280,9 @@ def write_reports(result: AuditResult, out_dir, inputs=()) -> dict[str, Path]:
     """audit.json and audit.html in `out_dir` (made if missing; its parent must exist; what may
     be replaced there: augsplit.report_folder; `inputs`, the audited files, never are). For
     "-", audit.json goes to standard output and no HTML is written."""
-    from ..report_folder import report_folder
+    from ..report_folder import report_set
 
     if is_stdout(out_dir):
         return {"json": write_json(result, out_dir)}
-    out = report_folder(out_dir, REPORT_FILES, inputs)
-    return {"json": write_json(result, out / "audit.json"), "html": write_html(result, out / "audit.html")}
+    with report_set(out_dir, "audit", REPORT_FILES, inputs) as out:
+        return {"json": write_json(result, out / "audit.json"), "html": write_html(result, out / "audit.html")}

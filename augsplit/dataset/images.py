@@ -10,6 +10,7 @@ verify and audit report it as a finding, loaders raise it.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import stat
 from dataclasses import dataclass
@@ -263,11 +264,24 @@ def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     return data
 
 
-def load(folder, row, *, data: bytes | None = None) -> RowImage:
+def checked_bytes(folder, row, data: bytes | None = None) -> bytes | None:
+    """`stored_bytes`, held to the row's recorded checksum of them (file_sha256) where it has
+    one: ImageError naming the row when they differ, so a reader that shows or copies a
+    stored image never passes on one changed since it was written."""
+    data = stored_bytes(folder, row, data)
+    recorded = row.get("file_sha256")
+    if data is not None and isinstance(recorded, str) and recorded and hashlib.sha256(data).hexdigest() != recorded:
+        raise ImageError("the stored image does not match its checksum (file_sha256); 'augsplit verify' "
+                         "lists every such row", where=row_where(row))
+    return data
+
+
+def load(folder, row, *, data: bytes | None = None, checked: bool = False) -> RowImage:
     """The image of a row: stored (file or bytes, decoded and size-checked) or re-rendered.
-    `data` passes embedded bytes a caller has already read."""
+    `data` passes embedded bytes a caller has already read; `checked`: stored bytes are held
+    to their recorded checksum (see `checked_bytes`)."""
     check_identity(row)
-    stored = stored_bytes(folder, row, data)
+    stored = (checked_bytes if checked else stored_bytes)(folder, row, data)
     if stored is not None:
         img = decode(stored, folder.channels, row_where(row), folder.hw)
         return RowImage(img, None, stored[:8] == PNG_SIGNATURE)
@@ -275,9 +289,9 @@ def load(folder, row, *, data: bytes | None = None) -> RowImage:
     return RowImage(scene.image, scene.target, True)
 
 
-def image_of(folder, row) -> np.ndarray:
+def image_of(folder, row, checked: bool = False) -> np.ndarray:
     """The image of a row as an (H, W, C) uint8 array (see `load`)."""
-    return load(folder, row).image
+    return load(folder, row, checked=checked).image
 
 
 def rerender(folder, row):

@@ -125,22 +125,17 @@ class Rows:
                 yield Item(row, data, suffix_of(data), tuple(o for o in objs if o.area > 0))
 
     def _encoded(self, row: dict) -> bytes:
-        from ..dataset.images import ImageError, check_identity, decode, encode, rerender, row_where, stored_bytes
-        from ..dataset.tarstore import sha256_hex
+        from ..dataset.images import check_identity, checked_bytes, decode, encode, rerender, row_where
 
         check_identity(row)  # an export names each image by its row's id
-        data = stored_bytes(self.folder, row)
+        # a stored image is copied only as it was written: its recorded checksum, or (a folder
+        # from before checksums of the bytes were recorded) an image that decodes to the canvas
+        data = checked_bytes(self.folder, row)
         if data is None:  # --store none: the row re-made, losslessly encoded as the layout says
             deflate, level = self.folder.png_setting
             return encode(rerender(self.folder, row).image, "png", 0, level, deflate)
-        # a stored image is copied only as it was written: its recorded checksum, or (a folder
-        # from before checksums of the bytes were recorded) an image that decodes to the canvas
         recorded = row.get("file_sha256")
-        if isinstance(recorded, str) and recorded:
-            if sha256_hex(data) != recorded:
-                raise ImageError("the stored image does not match its checksum (file_sha256); 'augsplit verify' "
-                                 "lists every such row", where=row_where(row))
-        else:
+        if not (isinstance(recorded, str) and recorded):
             decode(data, self.folder.channels, row_where(row), self.folder.hw)
         return data
 

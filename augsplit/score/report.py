@@ -98,8 +98,8 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
                   intro_html: str = "", inputs=()) -> dict[str, Path]:
     """Write score.json, one CSV per table (prefixed by label when several), and report.html.
     `out_dir` "-" prints score.json to standard output and writes nothing else. What may be
-    replaced in `out_dir`: augsplit.report_folder; `inputs` (the predictions) never are."""
-    from ..report_folder import report_folder
+    replaced and removed in `out_dir`: augsplit.report_folder; `inputs` (the predictions) never are."""
+    from ..report_folder import report_set
 
     several = len(results) > 1
     doc = {label: r.to_json() for label, r in results} if several else results[0][1].to_json()
@@ -116,8 +116,8 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     if several:
         docs["comparison.csv"] = side.to_csv(index=False)
     docs["report.html"] = render_html(results, title=title, intro_html=intro_html)
-    out = report_folder(out_dir, list(docs), inputs)
-    return {name: write_output(out / name, data) for name, data in docs.items()}
+    with report_set(out_dir, "score", docs, inputs) as out:
+        return {name: write_output(out / name, data) for name, data in docs.items()}
 
 
 # ---- HTML ------------------------------------------------------------------------------------
