@@ -177,11 +177,13 @@ def _cmd_score(a) -> int:
     from .io import is_stdout
     from .report_folder import check_report_folder
     from .score import run_score
-    from .score.report import REPORT_FILES
+    from .score.report import report_names
+    from .score.run import labels_of, prediction_paths
 
     out = Path(a.dataset) / "score" if a.out is None else a.out if is_stdout(a.out) else _out_option(a.out)
-    if not is_stdout(out):  # refused before the work, not after
-        check_report_folder(out, REPORT_FILES, [p for p in (a.dataset, a.predictions, a.compare) if p])
+    if not is_stdout(out):  # every file it would write, refused before the work, not after
+        paths = prediction_paths(a.predictions, a.compare)
+        check_report_folder(out, report_names(labels_of(paths)), [a.dataset, *paths])
     run_score(a.dataset, a.predictions, out, compare=a.compare, train_split=a.train_split,
               reference_split=a.reference_split, allow_partial=a.allow_partial,
               probabilities=True if a.probabilities else None, echo=not is_stdout(out))

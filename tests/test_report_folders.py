@@ -60,6 +60,25 @@ def test_reports_are_replaced_by_a_rerun(dataset, predictions, tmp_path, command
     assert (out / REPORTS_LIST).is_file() and (out / USER_FILE[command]).stat().st_size > 100
 
 
+@pytest.mark.parametrize("name", ["by_split.csv", "other_gaps.csv", "comparison.csv"])
+def test_score_refuses_a_user_file_of_a_table_name_before_any_scoring(dataset, predictions, tmp_path, capsys,
+                                                                      monkeypatch, name):
+    import augsplit.score.run as run
+
+    out = tmp_path / "mine"
+    out.mkdir()
+    (out / name).write_text("my table")
+    other = tmp_path / "other.csv"
+    other.write_bytes(predictions.read_bytes())
+    # was: the predictions were read and scored, and only writing the tables was refused
+    monkeypatch.setattr(run, "load_predictions", lambda *a, **k: pytest.fail("scored before the folder was judged"))
+    compare = [] if name == "by_split.csv" else ["--compare", other]
+    assert cli("score", dataset, predictions, "--out", out, *compare) == 2
+    err = capsys.readouterr().err
+    assert "has no record of writing it here" in err and name in err
+    assert sorted(p.name for p in out.iterdir()) == [name] and (out / name).read_text() == "my table"
+
+
 def test_score_never_replaces_its_predictions_file(dataset, predictions, tmp_path, capsys):
     out = tmp_path / "u"
     out.mkdir()

@@ -94,6 +94,15 @@ def compare_table_text(results) -> str:
 REPORT_FILES = ("score.json", "report.html")  # besides one CSV per table
 
 
+def report_names(labels) -> list[str]:
+    """Every file a score of the predictions labelled `labels` writes (known before scoring, so
+    a report folder is judged before the work): REPORT_FILES, one CSV per table (prefixed by
+    label when there are several) and, for two, comparison.csv."""
+    several = len(labels) > 1
+    tables = [f"{label}_{t}.csv" if several else f"{t}.csv" for label in labels for t in ScoreResult.TABLES]
+    return [*REPORT_FILES, *tables, *(["comparison.csv"] if several else [])]
+
+
 def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str = "augsplit score",
                   intro_html: str = "", inputs=()) -> dict[str, Path]:
     """Write score.json, one CSV per table (prefixed by label when several), and report.html.
@@ -109,13 +118,10 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     text = json.dumps(plain(doc), indent=2, allow_nan=False)
     if is_stdout(out_dir):
         return {"score.json": write_output(out_dir, text + "\n")}
-    docs = {"score.json": text}
-    for label, r in results:
-        for name, t in r.tables().items():
-            docs[f"{label}_{name}.csv" if several else f"{name}.csv"] = t.to_csv(index=False)
-    if several:
-        docs["comparison.csv"] = side.to_csv(index=False)
-    docs["report.html"] = render_html(results, title=title, intro_html=intro_html)
+    tables = [t for _label, r in results for t in r.tables().values()] + ([side] if several else [])
+    csvs = [n for n in report_names([label for label, _r in results]) if n not in REPORT_FILES]
+    docs = {"score.json": text, **{name: t.to_csv(index=False) for name, t in zip(csvs, tables, strict=True)},
+            "report.html": render_html(results, title=title, intro_html=intro_html)}
     with report_set(out_dir, "score", docs, inputs) as out:
         return {name: write_output(out / name, data) for name, data in docs.items()}
 

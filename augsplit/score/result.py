@@ -61,11 +61,12 @@ class ScoreResult:
     def heldout_splits(self) -> tuple[str, ...]:
         return tuple(s for s in self.by_split["split"] if s != self.train_split)
 
+    # the file stem each curve/table is written under, in order (the attribute of per_image: rows)
+    TABLES = ("by_split", "by_class", "by_cell", "distance", "by_value", "gaps", "per_image")
+
     def tables(self) -> dict[str, pd.DataFrame]:
         """Every curve/table by the file stem it is written under."""
-        return {"by_split": self.by_split, "by_class": self.by_class, "by_cell": self.by_cell,
-                "distance": self.distance, "by_value": self.by_value, "gaps": self.gaps,
-                "per_image": self.rows}
+        return {name: getattr(self, "rows" if name == "per_image" else name) for name in self.TABLES}
 
     def to_json(self) -> dict:
         return {

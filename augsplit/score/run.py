@@ -33,11 +33,8 @@ def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_spl
     _check_split_option("--reference-split", reference_split, folder.splits)
     train_split = train_split or role_train or "train"
     reference_split = reference_split or role_ref
-    paths = [Path(predictions_path)] + ([Path(compare)] if compare else [])
-    if labels is None:
-        labels = tuple(_label(p, i) for i, p in enumerate(paths))
-        if len(set(labels)) < len(labels):
-            labels = ("a", "b")
+    paths = prediction_paths(predictions_path, compare)
+    labels = labels or labels_of(paths)
     results = []
     for label, p, option in zip(labels, paths, ("PREDICTIONS", "--compare")):
         try:
@@ -57,6 +54,17 @@ def run_score(dataset_dir, predictions_path, out_dir, compare=None, *, train_spl
 def _check_split_option(option: str, name: str | None, splits) -> None:
     if name is not None and name not in splits:
         raise DatasetError(f"{name!r} is not a split of the dataset (splits: {', '.join(splits)})", where=option)
+
+
+def prediction_paths(predictions_path, compare=None) -> list[Path]:
+    return [Path(predictions_path)] + ([Path(compare)] if compare else [])
+
+
+def labels_of(paths) -> tuple[str, ...]:
+    """Each predictions file's label (its name's stem, made safe for file names; "a" and "b"
+    when two would be the same): what its tables are prefixed by when there are two."""
+    labels = tuple(_label(p, i) for i, p in enumerate(paths))
+    return labels if len(set(labels)) == len(labels) else ("a", "b")
 
 
 def _label(p: Path, i: int) -> str:
