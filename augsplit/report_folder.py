@@ -11,9 +11,11 @@ images, its manifest) a report would become a stray file the dataset's checks re
 A folder holds one run's report per command: when a run has written all its files
 (`report_set`), the files the same command wrote there before and this run did not (score's
 comparison tables after a score of one model, the contact sheets of another dataset's splits)
-are removed, so no table of an earlier run stands beside the new ones as if it were
-theirs. Only regular files the list names for that command go, never a command's input, a
-link, a folder or a file augsplit has no record of writing.
+are removed, so no table of an earlier run stands beside the new ones as if it were theirs.
+The list stamps each file a completed run wrote (inode, size, modification time), and a file
+goes only while it is still that file: never one the user saved under the name since, a
+command's input, a link, a folder, or a file a run cut short left (it has no stamp). A
+stamped file that changed is not replaced either: it is refused by name, like a user's file.
 """
 
 from __future__ import annotations
@@ -22,14 +24,17 @@ import json
 import os
 import stat
 from contextlib import contextmanager
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from .dataset import layout as lay
 from .errors import DatasetError
 from .io import check_folder_target, ensure_folder, write_text_atomic
 
-# {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]}}
+# {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
+#  "stamps": {name: [inode, size, mtime_ns] of the file a completed run wrote}}
 REPORTS_LIST = ".augsplit-reports.json"
+COMMANDS = ("score", "audit", "preview")  # the commands that write reports
 
 
 def dataset_root(path) -> Path | None:
@@ -57,8 +62,9 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
                 and Path(os.path.realpath(p)).is_relative_to(os.path.realpath(src)):
             raise DatasetError(f"lies inside the input folder {src}, where the report would be read as part of "
                                "the input next time; give a folder outside it", where=str(p))
-    listed = _listed(p)
-    earlier = None
+    record = _read_list(p)
+    listed = set(record.files)
+    earlier = None if not record.exists else set()  # a list is the whole record; without one, the JSON of the reports
     for name in names:
         q = p / name
         if not os.path.lexists(q):
@@ -75,6 +81,10 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
             if name not in listed:
                 raise DatasetError("exists and augsplit has no record of writing it here (its list, " + REPORTS_LIST
                                    + ", names what it wrote); give another --out, or move the file", where=str(q))
+        stamp = record.stamps.get(name)
+        if stamp is not None and _stamp(os.lstat(q)) != stamp:
+            raise DatasetError("exists and was changed since augsplit wrote it (its list, " + REPORTS_LIST
+                               + ", records the file it wrote); give another --out, or move the file", where=str(q))
     return p, own, listed
 
 
@@ -82,43 +92,73 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
 def report_set(out, command: str, names, inputs=()):
     """The folder to write one run of `command`'s report files `names` in: `out`, made if
     missing (its parent must exist), once `check_report_folder` allows them there. The names
-    are recorded in the folder's list before anything is written, so a run cut short leaves
-    only files a later run may replace and remove. When the block completes, the files
-    `command` left there before and this run did not write are removed (see the module
+    are recorded in the folder's list before anything is written (unstamped: a run cut short
+    leaves only files a later run may replace, none it removes). When the block completes,
+    the files `command` left there before that this run did not write are removed while each
+    is still the file a completed run wrote, and this run's files are stamped (see the module
     docstring); when it raises, nothing is removed."""
+    if command not in COMMANDS:
+        raise ValueError(f"not a command that writes reports: {command!r}")
     names = set(names)
     p, _own, listed = check_report_folder(out, sorted(names), inputs)
     folder = ensure_folder(p)
-    files, runs = _read_list(folder)
-    earlier = runs.get(command, set())
-    if not names <= files or not names <= earlier or not listed <= files:  # reports an earlier augsplit left join too
-        _write_list(folder, files | listed | names, {**runs, command: earlier | names})
+    record = _read_list(folder)
+    earlier = record.runs.get(command, set())
+    record.files |= listed | names
+    record.runs[command] = earlier | names
+    for name in names:  # about to be written again: until the run completes, no stamp describes them
+        record.stamps.pop(name, None)
+    _write_list(folder, record)
     yield folder
-    gone = {n for n in sorted(earlier - names) if _remove_stale(folder / n, inputs)}
-    files, runs = _read_list(folder)
-    left = (earlier | names) - gone  # a stale name that could not go stays this command's
-    if gone or runs.get(command) != left:
-        _write_list(folder, files - gone, {**runs, command: left})
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+    try:  # names are looked up in the folder opened once, so a folder swapped for a link meanwhile is not followed
+        record = _read_list(folder)
+        for name in sorted(earlier - names):  # none stays this command's to remove
+            stamp = record.stamps.pop(name, None) if name in record.files else None  # only a listed file goes
+            if _remove_stale(fd, name, stamp, folder / name, inputs) or stamp is not None:
+                # gone, or no longer the file augsplit wrote (changed, a link, an input): not augsplit's
+                # now. An unstamped one (a run cut short left it) stays a name a later run may write over
+                record.files.discard(name)
+        for name in names:
+            st = _lstat(fd, name)
+            if st is not None and stat.S_ISREG(st.st_mode):
+                record.stamps[name] = _stamp(st)
+        record.runs[command] = names
+        _write_list(folder, record)
+    finally:
+        os.close(fd)
 
 
-def _remove_stale(q: Path, inputs) -> bool:
-    """Remove the stale report `q` if it is a regular file and none of the command's inputs;
-    whether it is gone. A link is never followed, a folder never entered."""
-    try:
-        st = os.lstat(q)
-    except FileNotFoundError:
+def _remove_stale(fd: int, name: str, stamp, path: Path, inputs) -> bool:
+    """Remove the stale report `name` of the folder open as `fd` if it is still the regular
+    file a completed run stamped and none of the command's inputs; whether it is gone. A link
+    is never followed, a folder never entered."""
+    st = _lstat(fd, name)
+    if st is None:
         return True
-    except OSError:
-        return False
-    if not stat.S_ISREG(st.st_mode) or any(os.path.lexists(src) and _same_or_inside(q, src) for src in inputs):
+    if stamp is None or not stat.S_ISREG(st.st_mode) or _stamp(st) != stamp \
+            or any(os.path.lexists(src) and _same_or_inside(path, src) for src in inputs):
         return False
     try:
-        os.unlink(q)  # unlink never follows a link: were q swapped for one, the link alone would go
+        os.unlink(name, dir_fd=fd)  # unlink never follows a link: were it swapped for one, the link alone would go
     except FileNotFoundError:
         return True
     except OSError:
         return False
     return True
+
+
+def _lstat(fd: int, name: str):
+    """The folder entry's own stat (a link's, not its target's), None when it is not there."""
+    try:
+        return os.stat(name, dir_fd=fd, follow_symlinks=False)
+    except OSError:
+        return None
+
+
+def _stamp(st) -> tuple[int, int, int]:
+    """What tells the file augsplit wrote from one saved under its name since."""
+    return st.st_ino, st.st_size, st.st_mtime_ns
 
 
 def _same_or_inside(q: Path, src) -> bool:
@@ -153,35 +193,75 @@ def _json(f: Path):
         return None
 
 
-def _listed(folder: Path) -> set[str]:
-    """The report files augsplit wrote in `folder` (its list; none when it has no list)."""
-    return _read_list(folder)[0]
+@dataclass
+class _Record:
+    """A report folder's list: the files augsplit wrote there, the names each command's last
+    run may have left, the stamp of each file a completed run wrote."""
+
+    exists: bool = False
+    files: set = field(default_factory=set)
+    runs: dict = field(default_factory=dict)
+    stamps: dict = field(default_factory=dict)
 
 
-def _read_list(folder: Path) -> tuple[set[str], dict[str, set[str]]]:
-    """(the files augsplit wrote in `folder`, the names each command's last run may have left
-    there) from its list; empty when it has none (a list from before the runs were recorded
-    has no runs: nothing of it is ever removed)."""
+LIST_LIMIT = 64 << 20  # bytes; a list of a few hundred reports is a few kB
+
+
+def _read_list(folder: Path) -> _Record:
+    """The folder's list (empty when it has none; a list from before runs and stamps were
+    recorded has neither, so nothing of it is ever removed). Anything but the expected types
+    and plain file names is a one-line DatasetError: a damaged list never decides a removal."""
     f = folder / REPORTS_LIST
     if not os.path.lexists(f):
-        return set(), {}
+        return _Record()
     try:
-        if f.is_symlink() or not f.is_file():
+        if f.is_symlink() or not f.is_file() or f.stat().st_size > LIST_LIMIT:
             raise ValueError
         doc = json.loads(f.read_text(encoding="utf-8"))
-        files = {str(n) for n in doc["files"] if _plain_name(str(n))}
-        runs = {str(c): {str(n) for n in names if _plain_name(str(n))} for c, names in doc.get("runs", {}).items()}
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        if not isinstance(doc, dict):
+            raise ValueError
+        files = _names(doc["files"])
+        runs, stamps = doc.get("runs", {}), doc.get("stamps", {})
+        if not isinstance(runs, dict) or not isinstance(stamps, dict):
+            raise ValueError
+        _names(list(stamps))
+        record = _Record(True, files, {_command(c): _names(n) for c, n in runs.items()},
+                         {n: _stamp_of(v) for n, v in stamps.items()})
+    except (OSError, ValueError, KeyError, TypeError, RecursionError):
         raise DatasetError("unreadable list of the reports augsplit wrote here; give another --out",
                            where=str(f)) from None
-    return files, runs
+    return record
+
+
+def _names(value) -> set[str]:
+    if not isinstance(value, list) or not all(isinstance(n, str) and _plain_name(n) for n in value):
+        raise ValueError
+    return set(value)
+
+
+def _command(c) -> str:
+    if c not in COMMANDS:
+        raise ValueError
+    return c
+
+
+def _stamp_of(v) -> tuple[int, int, int]:
+    if not isinstance(v, list) or len(v) != 3 or not all(type(x) is int and x >= 0 for x in v):
+        raise ValueError
+    return tuple(v)
 
 
 def _plain_name(name: str) -> bool:
     """A name of a file in the folder itself (never a path, never the list itself)."""
-    return bool(name) and "/" not in name and "\\" not in name and name not in (".", "..", REPORTS_LIST)
+    try:
+        encoded = os.fsencode(name)
+    except UnicodeError:  # a lone surrogate: no file is named so
+        return False
+    return (0 < len(encoded) <= 255 and "/" not in name and "\\" not in name and "\x00" not in name
+            and name not in (".", "..", REPORTS_LIST))
 
 
-def _write_list(folder: Path, files: set[str], runs: dict[str, set[str]]) -> None:
-    doc = {"files": sorted(files), "runs": {c: sorted(n) for c, n in sorted(runs.items())}}
+def _write_list(folder: Path, record: _Record) -> None:
+    doc = {"files": sorted(record.files), "runs": {c: sorted(n) for c, n in sorted(record.runs.items())},
+           "stamps": {n: list(record.stamps[n]) for n in sorted(record.stamps)}}
     write_text_atomic(folder / REPORTS_LIST, json.dumps(doc, indent=1))

@@ -282,7 +282,7 @@ def _csvs_of_one_model(dataset, predictions, tmp_path):
     return _csvs(out)
 
 
-def test_report_sets_remove_only_what_the_command_left_and_only_once_a_run_completes(tmp_path):
+def test_report_sets_remove_only_what_a_completed_run_of_the_command_left(tmp_path):
     from augsplit.report_folder import report_set
 
     out = tmp_path / "r"
@@ -291,20 +291,58 @@ def test_report_sets_remove_only_what_the_command_left_and_only_once_a_run_compl
             (f / n).write_text(n)
     with report_set(out, "audit", ["audit.json"]) as f:
         (f / "audit.json").write_text("{}")
-    with pytest.raises(RuntimeError):  # a run that fails removes nothing; what it wrote is recorded
+    with pytest.raises(RuntimeError):  # a run that fails removes nothing
         with report_set(out, "score", ["c.csv"]) as f:
             (f / "c.csv").write_text("c")
             raise RuntimeError("cut short")
     assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "b.csv", "c.csv"]
     with report_set(out, "score", ["a.csv"]) as f:
         (f / "a.csv").write_text("again")
-    # b.csv of the earlier run and c.csv of the run cut short are gone; audit's report is another command's
-    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json"]
+    # b.csv, which the completed run wrote, is gone; c.csv of the run cut short has no stamp (what
+    # is there may be anything) and stays; audit's report is another command's
+    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "c.csv"]
+    with report_set(out, "score", ["c.csv"]) as f:  # but a later run of the name replaces it, as before
+        (f / "c.csv").write_text("c again")
     with report_set(out, "preview", ["a.csv"]):  # preview never wrote b.csv: a file of that name now is not its
         (out / "b.csv").write_text("user")
     with report_set(out, "score", ["a.csv"]):
         pass
     assert (out / "b.csv").read_text() == "user"
+    import json
+
+    st = (out / "b.csv").stat()  # a list naming b.csv for score, stamped as it is, but not among the files written
+    doc = json.loads((out / REPORTS_LIST).read_text())
+    doc["runs"]["score"].append("b.csv")
+    doc["stamps"]["b.csv"] = [st.st_ino, st.st_size, st.st_mtime_ns]
+    (out / REPORTS_LIST).write_text(json.dumps(doc))
+    with report_set(out, "score", ["a.csv"]):
+        pass
+    assert (out / "b.csv").read_text() == "user"
+
+
+def _two_model_folder(dataset, predictions, tmp_path):
+    out, other = tmp_path / "reports", tmp_path / "other.csv"
+    other.write_bytes(predictions.read_bytes())
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) in (0, 1)
+    return out, other
+
+
+def test_a_file_saved_under_a_stale_report_s_name_is_neither_removed_nor_replaced(dataset, predictions, tmp_path,
+                                                                                  capsys):
+    out, other = _two_model_folder(dataset, predictions, tmp_path)
+    (out / "comparison.csv").unlink()
+    (out / "comparison.csv").write_text("my own comparison")  # the user's, under a name augsplit wrote
+    (out / "pred_per_image.csv").write_text("edited by hand")
+    # a run that would replace them refuses by name: they are not the files augsplit wrote
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) == 2
+    assert "was changed since augsplit wrote it" in capsys.readouterr().err
+    # a run that would remove them as stale leaves them (was: both removed)
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    assert (out / "comparison.csv").read_text() == "my own comparison"
+    assert (out / "pred_per_image.csv").read_text() == "edited by hand"
+    assert not (out / "other_per_image.csv").exists()  # the untouched stale tables went
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)  # and they stay on later runs
+    assert (out / "comparison.csv").read_text() == "my own comparison"
 
 
 def test_a_list_from_before_runs_were_recorded_removes_nothing(tmp_path):
@@ -322,15 +360,34 @@ def test_a_list_from_before_runs_were_recorded_removes_nothing(tmp_path):
     with report_set(out, "score", ["score.json"]):
         pass
     assert (out / "old.csv").is_file()
-    for bad in ({"files": [], "runs": {"score": 3}}, {"files": [], "runs": []}):
-        (out / REPORTS_LIST).write_text(json.dumps(bad))
-        with pytest.raises(augsplit_error()) as e:
-            with report_set(out, "score", ["score.json"]):
-                pass
-        assert "unreadable list" in str(e.value)
 
 
-def augsplit_error():
-    from augsplit.errors import DatasetError
+HOSTILE_LISTS = {  # each was read by str() of whatever it held: the first four removed the user's files named
+    "a string for names": '{"files": [], "runs": {"score": "abc"}}',
+    "null, true and 1 for names": '{"files": [], "runs": {"score": [null, true, 1]}}',
+    "an object for names": '{"files": [], "runs": {"score": {"a": 1}}}',
+    "a stamp of two numbers": '{"files": ["notes.txt"], "runs": {"score": ["notes.txt"]}, '
+                              '"stamps": {"notes.txt": [1, 2]}}',
+    "a NUL in a name": '{"files": ["a\\u0000b"], "runs": {"score": ["a\\u0000b"]}}',  # was a traceback
+    "a lone surrogate": '{"files": ["\\ud800"], "runs": {"score": ["\\ud800"]}}',  # was a traceback
+    "deep nesting": '{"files": ' + "[" * 100000 + "]" * 100000 + "}",  # was a RecursionError traceback
+    "a path for a name": '{"files": ["../x"], "runs": {}}',
+    "a command augsplit has not": '{"files": [], "runs": {"rm": []}}',
+    "not an object": "[]",
+}
 
-    return DatasetError
+
+@pytest.mark.parametrize("case", sorted(HOSTILE_LISTS))
+def test_a_damaged_list_is_one_line_and_removes_nothing(dataset, predictions, tmp_path, capsys, case):
+    out = tmp_path / "r"
+    out.mkdir()
+    mine = ["a", "b", "c", "None", "True", "1", "notes.txt"]
+    for n in mine:
+        (out / n).write_text("mine")
+    (out / REPORTS_LIST).write_text(HOSTILE_LISTS[case])
+    assert cli("score", dataset, predictions, "--out", out) == 2
+    err = capsys.readouterr().err
+    assert "unreadable list of the reports augsplit wrote here" in err and "Traceback" not in err
+    assert len(err.strip().splitlines()) == 1
+    assert sorted(p.name for p in out.iterdir()) == sorted(mine + [REPORTS_LIST])
+    assert all((out / n).read_text() == "mine" for n in mine)
