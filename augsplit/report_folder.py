@@ -12,14 +12,15 @@ A folder holds one run's report per command: when a run has written all its file
 (`report_set`), the files the same command wrote there before and this run did not (score's
 comparison tables after a score of one model, the contact sheets of another dataset's splits)
 are removed, so no table of an earlier run stands beside the new ones as if it were theirs.
-The list stamps each file a completed run wrote (inode, size, modification time), and a file
-goes only while it is still that file: never one the user saved under the name since, a
+The list stamps each file a completed run wrote (its size and SHA-256), and a file goes
+only while it is still that file: never one the user saved under the name since, a
 command's input, a link, a folder, or a file a run cut short left (it has no stamp). A
 stamped file that changed is not replaced either: it is refused by name, like a user's file.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import stat
@@ -32,7 +33,7 @@ from .errors import DatasetError
 from .io import check_folder_target, ensure_folder, write_text_atomic
 
 # {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
-#  "stamps": {name: [inode, size, mtime_ns] of the file a completed run wrote}}
+#  "stamps": {name: [size, SHA-256] of the file a completed run wrote}}
 REPORTS_LIST = ".augsplit-reports.json"
 COMMANDS = ("score", "audit", "preview")  # the commands that write reports
 
@@ -82,7 +83,7 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
                 raise DatasetError("exists and augsplit has no record of writing it here (its list, " + REPORTS_LIST
                                    + ", names what it wrote); give another --out, or move the file", where=str(q))
         stamp = record.stamps.get(name)
-        if stamp is not None and _stamp(os.lstat(q)) != stamp:
+        if stamp is not None and not _matches(q, stamp):
             raise DatasetError("exists and was changed since augsplit wrote it (its list, " + REPORTS_LIST
                                + ", records the file it wrote); give another --out, or move the file", where=str(q))
     return p, own, listed
@@ -120,9 +121,9 @@ def report_set(out, command: str, names, inputs=()):
                 # now. An unstamped one (a run cut short left it) stays a name a later run may write over
                 record.files.discard(name)
         for name in names:
-            st = _lstat(fd, name)
-            if st is not None and stat.S_ISREG(st.st_mode):
-                record.stamps[name] = _stamp(st)
+            got = _stamp(name, fd)
+            if got is not None:
+                record.stamps[name] = got
         record.runs[command] = names
         _write_list(folder, record)
     finally:
@@ -136,7 +137,7 @@ def _remove_stale(fd: int, name: str, stamp, path: Path, inputs) -> bool:
     st = _lstat(fd, name)
     if st is None:
         return True
-    if stamp is None or not stat.S_ISREG(st.st_mode) or _stamp(st) != stamp \
+    if stamp is None or not stat.S_ISREG(st.st_mode) or not _matches(name, stamp, fd) \
             or any(os.path.lexists(src) and _same_or_inside(path, src) for src in inputs):
         return False
     try:
@@ -156,9 +157,31 @@ def _lstat(fd: int, name: str):
         return None
 
 
-def _stamp(st) -> tuple[int, int, int]:
-    """What tells the file augsplit wrote from one saved under its name since."""
-    return st.st_ino, st.st_size, st.st_mtime_ns
+def _stamp(name, dir_fd: int | None = None, size: int | None = None) -> tuple[int, str] | None:
+    """(size, SHA-256) of the regular file `name` (in the folder open as `dir_fd`), None for
+    anything else (a link, a folder, nothing; or, given `size`, a file of another size, not
+    read): what tells the file augsplit wrote from one saved or edited under its name since,
+    wherever the folder is copied to."""
+    try:
+        fd = os.open(name, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0), dir_fd=dir_fd)
+    except (OSError, ValueError):
+        return None
+    try:
+        with os.fdopen(fd, "rb") as f:
+            st = os.fstat(f.fileno())
+            if not stat.S_ISREG(st.st_mode) or (size is not None and st.st_size != size):
+                return None
+            digest = hashlib.sha256()
+            while chunk := f.read(1 << 20):
+                digest.update(chunk)
+    except OSError:
+        return None
+    return st.st_size, digest.hexdigest()
+
+
+def _matches(name, stamp, dir_fd: int | None = None) -> bool:
+    """Whether `name` is still the file `stamp` describes."""
+    return _stamp(name, dir_fd, size=stamp[0]) == stamp
 
 
 def _same_or_inside(q: Path, src) -> bool:
@@ -245,10 +268,11 @@ def _command(c) -> str:
     return c
 
 
-def _stamp_of(v) -> tuple[int, int, int]:
-    if not isinstance(v, list) or len(v) != 3 or not all(type(x) is int and x >= 0 for x in v):
+def _stamp_of(v) -> tuple[int, str]:
+    if not (isinstance(v, list) and len(v) == 2 and type(v[0]) is int and v[0] >= 0 and isinstance(v[1], str)
+            and len(v[1]) == 64 and set(v[1]) <= set("0123456789abcdef")):
         raise ValueError
-    return tuple(v)
+    return v[0], v[1]
 
 
 def _plain_name(name: str) -> bool:

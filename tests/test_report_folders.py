@@ -310,14 +310,34 @@ def test_report_sets_remove_only_what_a_completed_run_of_the_command_left(tmp_pa
     assert (out / "b.csv").read_text() == "user"
     import json
 
-    st = (out / "b.csv").stat()  # a list naming b.csv for score, stamped as it is, but not among the files written
+    import hashlib
+
+    data = (out / "b.csv").read_bytes()  # a list naming b.csv for score, stamped as it is, but not among the files written
     doc = json.loads((out / REPORTS_LIST).read_text())
     doc["runs"]["score"].append("b.csv")
-    doc["stamps"]["b.csv"] = [st.st_ino, st.st_size, st.st_mtime_ns]
+    doc["stamps"]["b.csv"] = [len(data), hashlib.sha256(data).hexdigest()]
     (out / REPORTS_LIST).write_text(json.dumps(doc))
     with report_set(out, "score", ["a.csv"]):
         pass
     assert (out / "b.csv").read_text() == "user"
+
+
+def test_a_copied_report_folder_is_still_augsplit_s(tmp_path):
+    import os
+    import shutil
+
+    from augsplit.report_folder import report_set
+
+    first, copy = tmp_path / "first", tmp_path / "copy"
+    with report_set(first, "score", ["x.csv", "y.csv"]) as f:
+        for n in ("x.csv", "y.csv"):
+            (f / n).write_text(n)
+    shutil.copytree(first, copy, copy_function=shutil.copy)  # new files: other inodes and times, same content
+    for n in ("x.csv", "y.csv"):
+        os.utime(copy / n, ns=(1, 1))
+    with report_set(copy, "score", ["x.csv"]) as f:  # was refused as changed (stamps of inode and time)
+        (f / "x.csv").write_text("new")
+    assert sorted(p.name for p in copy.iterdir() if p.name != REPORTS_LIST) == ["x.csv"]
 
 
 def _two_model_folder(dataset, predictions, tmp_path):
