@@ -22,7 +22,7 @@ from . import figures
 from .errors import DatasetError
 from .io import output_path
 from .render import add_footprint, footprint
-from .report_folder import report_set
+from .report_folder import check_report_folder, report_set
 from .scene import render_params
 from .space.axes import ANGLE_AXES
 from .threads import one_opencv_thread
@@ -89,6 +89,8 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
         raise DatasetError(f"need at least one column, got {columns}", where="columns / --columns")
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
     root, built = folder.root, folder.built
+    out = out if out is not None else root / PREVIEW_DIR
+    check_report_folder(out, [COVERAGE_FILE], [root])  # a folder (or its list) it may not write in: before the work
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
@@ -103,8 +105,7 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
             sheets[f"contact_{s.name}.png"] = (len(rows), [(row, image_of(folder, row, checked=True))
                                                                for _, row in pick.iterrows()])
     cov = coverage(built, df)
-    with report_set(out if out is not None else folder.root / PREVIEW_DIR, "preview", [*sheets, COVERAGE_FILE],
-                    [root]) as out:
+    with report_set(out, "preview", [*sheets, COVERAGE_FILE], [root]) as out:
         paths = [contact_sheet(built, shown, n_rows, out / name, columns) for name, (n_rows, shown) in sheets.items()]
         paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
     return paths

@@ -24,13 +24,13 @@ import hashlib
 import json
 import os
 import stat
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from .dataset import layout as lay
 from .errors import DatasetError
-from .io import check_folder_target, ensure_folder, write_text_atomic
+from .io import check_folder_target, ensure_folder, os_error, temporary_name
 
 # {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
 #  "stamps": {name: [size, SHA-256] of the file a completed run wrote}}
@@ -93,41 +93,59 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
 def report_set(out, command: str, names, inputs=()):
     """The folder to write one run of `command`'s report files `names` in: `out`, made if
     missing (its parent must exist), once `check_report_folder` allows them there. The names
-    are recorded in the folder's list before anything is written (unstamped: a run cut short
-    leaves only files a later run may replace, none it removes). When the block completes,
+    are recorded in the folder's list before anything is written. When the block completes,
     the files `command` left there before that this run did not write are removed while each
     is still the file a completed run wrote, and this run's files are stamped (see the module
-    docstring); when it raises, nothing is removed."""
+    docstring). When it raises, nothing is removed, and the files it names are stamped as
+    they are (what it wrote, or what was there before), so a later run of the command still
+    removes what the last completed run left. (A process killed outright leaves the stamps as
+    they were: a file it rewrote is then refused by name, never lost.)"""
     if command not in COMMANDS:
         raise ValueError(f"not a command that writes reports: {command!r}")
     names = set(names)
     p, _own, listed = check_report_folder(out, sorted(names), inputs)
     folder = ensure_folder(p)
-    record = _read_list(folder)
-    earlier = record.runs.get(command, set())
-    record.files |= listed | names
-    record.runs[command] = earlier | names
-    for name in names:  # about to be written again: until the run completes, no stamp describes them
-        record.stamps.pop(name, None)
-    _write_list(folder, record)
-    yield folder
-    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
-    try:  # names are looked up in the folder opened once, so a folder swapped for a link meanwhile is not followed
-        record = _read_list(folder)
+    try:  # the folder checked, opened once: its names are looked up in it, never through a link swapped in
+        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+    except OSError as exc:
+        raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
+    try:
+        record = _read_list(folder, fd)
+        if not record.exists:  # reports an earlier augsplit left, found by their JSON, join the first list
+            listed |= _earlier_reports(folder)
+        earlier = record.runs.get(command, set())
+        record.files |= listed | names
+        record.runs[command] = earlier | names
+        _write_list(fd, record, folder)
+        try:
+            yield folder
+        except BaseException:
+            with suppress(Exception):  # the run's own error is the one to report
+                _stamp_names(fd, folder, names)
+            raise
+        record = _read_list(folder, fd)
         for name in sorted(earlier - names):  # none stays this command's to remove
             stamp = record.stamps.pop(name, None) if name in record.files else None  # only a listed file goes
             if _remove_stale(fd, name, stamp, folder / name, inputs) or stamp is not None:
                 # gone, or no longer the file augsplit wrote (changed, a link, an input): not augsplit's
-                # now. An unstamped one (a run cut short left it) stays a name a later run may write over
+                # now. An unstamped one (from a list without stamps) stays a name a later run may write over
                 record.files.discard(name)
-        for name in names:
-            got = _stamp(name, fd)
-            if got is not None:
-                record.stamps[name] = got
         record.runs[command] = names
-        _write_list(folder, record)
+        _stamp_names(fd, folder, names, record)
     finally:
         os.close(fd)
+
+
+def _stamp_names(fd: int, folder: Path, names, record: _Record | None = None) -> None:
+    """Stamp the files `names` as they are now and write the list (read afresh unless given)."""
+    record = record if record is not None else _read_list(folder, fd)
+    for name in names:
+        got = _stamp(name, fd)
+        if got is None:
+            record.stamps.pop(name, None)
+        else:
+            record.stamps[name] = got
+    _write_list(fd, record, folder)
 
 
 def _remove_stale(fd: int, name: str, stamp, path: Path, inputs) -> bool:
@@ -230,17 +248,26 @@ class _Record:
 LIST_LIMIT = 64 << 20  # bytes; a list of a few hundred reports is a few kB
 
 
-def _read_list(folder: Path) -> _Record:
+def _read_list(folder: Path, fd: int | None = None) -> _Record:
     """The folder's list (empty when it has none; a list from before runs and stamps were
-    recorded has neither, so nothing of it is ever removed). Anything but the expected types
-    and plain file names is a one-line DatasetError: a damaged list never decides a removal."""
+    recorded has neither, so nothing of it is ever removed), looked up in the folder open as
+    `fd` when given. Anything but the expected types and plain file names is a one-line
+    DatasetError: a damaged list never decides a removal."""
     f = folder / REPORTS_LIST
-    if not os.path.lexists(f):
-        return _Record()
     try:
-        if f.is_symlink() or not f.is_file() or f.stat().st_size > LIST_LIMIT:
-            raise ValueError
-        doc = json.loads(f.read_text(encoding="utf-8"))
+        lfd = os.open(REPORTS_LIST if fd is not None else f, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK
+                      | getattr(os, "O_CLOEXEC", 0), dir_fd=fd)
+    except FileNotFoundError:
+        return _Record()
+    except OSError:  # a link (O_NOFOLLOW) or unreadable
+        raise DatasetError("unreadable list of the reports augsplit wrote here; give another --out",
+                           where=str(f)) from None
+    try:
+        with os.fdopen(lfd, "rb") as stream:
+            st = os.fstat(stream.fileno())
+            if not stat.S_ISREG(st.st_mode) or st.st_size > LIST_LIMIT:
+                raise ValueError
+            doc = json.loads(stream.read(LIST_LIMIT + 1).decode("utf-8"))
         if not isinstance(doc, dict):
             raise ValueError
         files = _names(doc["files"])
@@ -285,7 +312,32 @@ def _plain_name(name: str) -> bool:
             and name not in (".", "..", REPORTS_LIST))
 
 
-def _write_list(folder: Path, record: _Record) -> None:
+def _write_list(fd: int, record: _Record, folder: Path) -> None:
+    """Write the list in `folder`, open as `fd`: whole under a temporary name, synced, renamed
+    over the old one (never through a link: the folder's own entries), the folder synced. A
+    failure (a full disk) is a one-line DatasetError; the old list stays whole."""
     doc = {"files": sorted(record.files), "runs": {c: sorted(n) for c, n in sorted(record.runs.items())},
            "stamps": {n: list(record.stamps[n]) for n in sorted(record.stamps)}}
-    write_text_atomic(folder / REPORTS_LIST, json.dumps(doc, indent=1))
+    data = json.dumps(doc, indent=1).encode("utf-8")
+    tmp = temporary_name(Path(REPORTS_LIST)).name
+    try:
+        _replace_list(fd, tmp, data)
+    except OSError as exc:
+        raise os_error(exc, folder / REPORTS_LIST) from None
+
+
+def _replace_list(fd: int, tmp: str, data: bytes) -> None:
+    tfd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0), 0o644,
+                  dir_fd=fd)
+    try:
+        with os.fdopen(tfd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, REPORTS_LIST, src_dir_fd=fd, dst_dir_fd=fd)
+    except BaseException:
+        with suppress(OSError):
+            os.unlink(tmp, dir_fd=fd)
+        raise
+    with suppress(OSError):  # file systems that cannot sync a folder
+        os.fsync(fd)

@@ -12,6 +12,7 @@ from specs import lanes_dataset
 
 from augsplit.cli import main
 from augsplit.dataset import read_manifest
+from augsplit.errors import DatasetError
 from augsplit.report_folder import REPORTS_LIST
 
 
@@ -292,17 +293,20 @@ def test_report_sets_remove_only_what_a_completed_run_of_the_command_left(tmp_pa
     with report_set(out, "audit", ["audit.json"]) as f:
         (f / "audit.json").write_text("{}")
     with pytest.raises(RuntimeError):  # a run that fails removes nothing
-        with report_set(out, "score", ["c.csv"]) as f:
+        with report_set(out, "score", ["a.csv", "c.csv"]) as f:
             (f / "c.csv").write_text("c")
             raise RuntimeError("cut short")
     assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "b.csv", "c.csv"]
+    (out / "a.csv").write_text("mine now")  # the failed run did not write a.csv: the user may have since
+    with pytest.raises(DatasetError, match="changed since augsplit wrote it"):
+        with report_set(out, "score", ["a.csv"]):
+            pass
+    (out / "a.csv").unlink()
     with report_set(out, "score", ["a.csv"]) as f:
         (f / "a.csv").write_text("again")
-    # b.csv, which the completed run wrote, is gone; c.csv of the run cut short has no stamp (what
-    # is there may be anything) and stays; audit's report is another command's
-    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "c.csv"]
-    with report_set(out, "score", ["c.csv"]) as f:  # but a later run of the name replaces it, as before
-        (f / "c.csv").write_text("c again")
+    # b.csv of the last completed run and c.csv of the run cut short (stamped as it failed) are
+    # gone; audit's report is another command's
+    assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json"]
     with report_set(out, "preview", ["a.csv"]):  # preview never wrote b.csv: a file of that name now is not its
         (out / "b.csv").write_text("user")
     with report_set(out, "score", ["a.csv"]):
@@ -338,6 +342,82 @@ def test_a_copied_report_folder_is_still_augsplit_s(tmp_path):
     with report_set(copy, "score", ["x.csv"]) as f:  # was refused as changed (stamps of inode and time)
         (f / "x.csv").write_text("new")
     assert sorted(p.name for p in copy.iterdir() if p.name != REPORTS_LIST) == ["x.csv"]
+
+
+def test_a_run_cut_short_still_lets_the_next_run_remove_the_last_complete_run_s_tables(dataset, predictions,
+                                                                                     tmp_path, monkeypatch, capsys):
+    import augsplit.score.report as report
+
+    out, other = _two_model_folder(dataset, predictions, tmp_path)
+    two_models = set(_csvs(out))
+    calls = []
+    real = report.write_output
+
+    def cut(path, data):
+        calls.append(path)
+        if len(calls) == 3:
+            raise KeyboardInterrupt
+        return real(path, data)
+
+    monkeypatch.setattr(report, "write_output", cut)
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) not in (0, 1)  # Ctrl-C, 2 files in
+    assert len(calls) == 3
+    monkeypatch.undo()
+    (out / "comparison.csv").write_text("mine")  # saved by the user after the run was cut short
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) == 2  # not written over
+    assert "changed since augsplit wrote it" in capsys.readouterr().err
+    assert (out / "comparison.csv").read_text() == "mine"
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    # was: every table of the two-model run stayed, no longer any run's to remove
+    assert set(_csvs(out)) == set(_csvs_of_one_model(dataset, predictions, tmp_path)) | {"comparison.csv"}
+    assert len(two_models) > 10
+
+
+def test_a_folder_from_before_the_list_keeps_its_reports_when_another_command_writes_first(dataset, predictions,
+                                                                                         tmp_path):
+    out = tmp_path / "old"
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    (out / REPORTS_LIST).unlink()  # as an earlier augsplit left its score report: no list
+    assert cli("audit", dataset, "--out", out) in (0, 1)
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)  # was: score.json 'no record of writing it'
+
+
+def test_a_report_folder_swapped_for_a_link_mid_run_is_no_traceback(dataset, predictions, tmp_path, monkeypatch,
+                                                                    capsys):
+    import augsplit.score.report as report
+
+    out, other = _two_model_folder(dataset, predictions, tmp_path)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "comparison.csv").write_text("not augsplit's")
+    calls = []
+    real = report.write_output
+
+    def swap(path, data):
+        calls.append(path)
+        if len(calls) == 3:
+            out.rename(tmp_path / "moved")
+            out.symlink_to(elsewhere)
+        return real(path, data)
+
+    monkeypatch.setattr(report, "write_output", swap)
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)  # was a NotADirectoryError traceback
+    assert "Traceback" not in capsys.readouterr().err
+    # the clean-up and the list stay in the folder that was checked, never in the link's target
+    assert (elsewhere / "comparison.csv").read_text() == "not augsplit's"
+    assert not (elsewhere / REPORTS_LIST).exists()
+    assert not (tmp_path / "moved" / "comparison.csv").exists()
+
+
+def test_preview_refuses_a_damaged_list_before_reading_any_image(dataset, tmp_path, capsys, monkeypatch):
+    import augsplit.preview as pv
+
+    out = tmp_path / "pv"
+    out.mkdir()
+    (out / REPORTS_LIST).write_text("[]")
+    monkeypatch.setattr(pv, "image_of", lambda *a, **k: pytest.fail("read an image before judging the folder"))
+    assert cli("preview", dataset, "--out", out) == 2
+    assert "unreadable list" in capsys.readouterr().err
 
 
 def _two_model_folder(dataset, predictions, tmp_path):
