@@ -90,7 +90,8 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
     folder = open_dataset(root, allow_incomplete=allow_incomplete)
     root, built = folder.root, folder.built
     out = out if out is not None else root / PREVIEW_DIR
-    check_report_folder(out, [COVERAGE_FILE], [root])  # a folder (or its list) it may not write in: before the work
+    # a folder (or its list) it may not write in, or a user's file of a sheet's name: before the work
+    check_report_folder(out, [*(sheet_name(s.name) for s in built.plan.splits), COVERAGE_FILE], [root])
     df = read_rows(folder)
     if df.empty:
         raise DatasetError("the dataset has no manifest rows to preview", where=str(root / lay.MANIFEST_DIR))
@@ -102,7 +103,7 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
         rows = df[df["split"] == s.name]
         if len(rows):
             pick = rows.iloc[pick_rows(len(rows), per_split)]
-            sheets[f"contact_{s.name}.png"] = (len(rows), [(row, image_of(folder, row, checked=True))
+            sheets[sheet_name(s.name)] = (len(rows), [(row, image_of(folder, row, checked=True))
                                                                for _, row in pick.iterrows()])
     cov = coverage(built, df)
     with report_set(out, "preview", [*sheets, COVERAGE_FILE], [root]) as out:
@@ -112,6 +113,10 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
 
 
 # ---- contact sheets ------------------------------------------------------------------------------
+
+
+def sheet_name(split: str) -> str:
+    return f"contact_{split}.png"
 
 
 def pick_rows(n_rows: int, k: int) -> np.ndarray:

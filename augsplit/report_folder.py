@@ -14,8 +14,8 @@ comparison tables after a score of one model, the contact sheets of another data
 are removed, so no table of an earlier run stands beside the new ones as if it were theirs.
 The list stamps each file a completed run wrote (its size and SHA-256), and a file goes
 only while it is still that file: never one the user saved under the name since, a
-command's input, a link, a folder, or a file a run cut short left (it has no stamp). A
-stamped file that changed is not replaced either: it is refused by name, like a user's file.
+command's input, a link, a folder. A stamped file that changed is not replaced either: it is
+refused by name, like a user's file. A run that fails records only the files it did write.
 """
 
 from __future__ import annotations
@@ -92,14 +92,13 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
 @contextmanager
 def report_set(out, command: str, names, inputs=()):
     """The folder to write one run of `command`'s report files `names` in: `out`, made if
-    missing (its parent must exist), once `check_report_folder` allows them there. The names
-    are recorded in the folder's list before anything is written. When the block completes,
-    the files `command` left there before that this run did not write are removed while each
-    is still the file a completed run wrote, and this run's files are stamped (see the module
-    docstring). When it raises, nothing is removed, and the files it names are stamped as
-    they are (what it wrote, or what was there before), so a later run of the command still
-    removes what the last completed run left. (A process killed outright leaves the stamps as
-    they were: a file it rewrote is then refused by name, never lost.)"""
+    missing (its parent must exist), once `check_report_folder` allows them there. When the
+    block completes, the files `command` left there before that this run did not write are
+    removed while each is still the file a completed run wrote, and this run's files are
+    listed and stamped (see the module docstring). When it raises, nothing is removed, and
+    only the files it did write (whose content changed) are listed and stamped, so the next
+    run of the command still removes what the last completed run left. A process killed
+    outright records nothing: a file it made is then refused by name, never lost."""
     if command not in COMMANDS:
         raise ValueError(f"not a command that writes reports: {command!r}")
     names = set(names)
@@ -111,17 +110,20 @@ def report_set(out, command: str, names, inputs=()):
         raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
     try:
         record = _read_list(folder, fd)
-        if not record.exists:  # reports an earlier augsplit left, found by their JSON, join the first list
-            listed |= _earlier_reports(folder)
+        # reports an earlier augsplit left, found by their JSON, join the first list as they are
+        adopted = {n: _stamp(n, fd) for n in (() if record.exists else listed | _earlier_reports(folder))}
+        before = {n: _stamp(n, fd) for n in names}  # what each name holds before this run
         earlier = record.runs.get(command, set())
-        record.files |= listed | names
-        record.runs[command] = earlier | names
-        _write_list(fd, record, folder)
         try:
             yield folder
         except BaseException:
             with suppress(Exception):  # the run's own error is the one to report
-                _stamp_names(fd, folder, names)
+                now = {n: _stamp(n, fd) for n in names}
+                wrote = {n for n in names if now[n] is not None and now[n] != before[n]}
+                record = _read_list(folder, fd)
+                record.runs[command] = earlier | wrote
+                _record(record, {**adopted, **{n: now[n] for n in wrote}})
+                _write_list(fd, record, folder)
             raise
         record = _read_list(folder, fd)
         for name in sorted(earlier - names):  # none stays this command's to remove
@@ -131,21 +133,21 @@ def report_set(out, command: str, names, inputs=()):
                 # now. An unstamped one (from a list without stamps) stays a name a later run may write over
                 record.files.discard(name)
         record.runs[command] = names
-        _stamp_names(fd, folder, names, record)
+        _record(record, {**adopted, **{n: _stamp(n, fd) for n in names}})
+        _write_list(fd, record, folder)
     finally:
         os.close(fd)
 
 
-def _stamp_names(fd: int, folder: Path, names, record: _Record | None = None) -> None:
-    """Stamp the files `names` as they are now and write the list (read afresh unless given)."""
-    record = record if record is not None else _read_list(folder, fd)
-    for name in names:
-        got = _stamp(name, fd)
-        if got is None:
+def _record(record: _Record, stamps: dict) -> None:
+    """List each file of `stamps` with its stamp (one that is not a regular file: neither)."""
+    for name, stamp in stamps.items():
+        if stamp is None:
+            record.files.discard(name)
             record.stamps.pop(name, None)
         else:
-            record.stamps[name] = got
-    _write_list(fd, record, folder)
+            record.files.add(name)
+            record.stamps[name] = stamp
 
 
 def _remove_stale(fd: int, name: str, stamp, path: Path, inputs) -> bool:

@@ -6,6 +6,8 @@ seen to replace or add a file before the fix."""
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pandas as pd
 import pytest
 from specs import lanes_dataset
@@ -371,6 +373,59 @@ def test_a_run_cut_short_still_lets_the_next_run_remove_the_last_complete_run_s_
     # was: every table of the two-model run stayed, no longer any run's to remove
     assert set(_csvs(out)) == set(_csvs_of_one_model(dataset, predictions, tmp_path)) | {"comparison.csv"}
     assert len(two_models) > 10
+
+
+def test_a_name_a_run_cut_short_never_wrote_stays_the_user_s(dataset, tmp_path, monkeypatch, capsys):
+    import augsplit.preview as pv
+
+    out, calls, real = tmp_path / "pv", [], pv.contact_sheet
+
+    def cut(*args):
+        calls.append(args)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real(*args)
+
+    monkeypatch.setattr(pv, "contact_sheet", cut)
+    assert cli("preview", dataset, "--out", out) not in (0, 1)  # Ctrl-C before coverage.png was written
+    monkeypatch.undo()
+    (out / "coverage.png").write_text("the user's")
+    assert cli("preview", dataset, "--out", out) == 2  # was 0: written over, as a name listed before the run
+    assert "has no record of writing it here" in capsys.readouterr().err
+    assert (out / "coverage.png").read_text() == "the user's"
+
+
+def test_a_user_s_file_between_two_runs_cut_short_is_not_adopted(dataset, predictions, tmp_path, monkeypatch):
+    import augsplit.score.report as report
+
+    out, other = tmp_path / "r", tmp_path / "other.csv"
+    other.write_bytes(predictions.read_bytes())
+    real = report.write_output
+
+    def cut(path, data):
+        if Path(path).name == "comparison.csv":
+            raise KeyboardInterrupt
+        return real(path, data)
+
+    monkeypatch.setattr(report, "write_output", cut)
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) not in (0, 1)
+    (out / "comparison.csv").write_text("my own comparison")
+    assert cli("score", dataset, predictions, "--compare", other, "--out", out) == 2  # not written over
+    monkeypatch.undo()
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    assert (out / "comparison.csv").read_text() == "my own comparison"  # was: stamped as it was, then removed
+
+
+def test_preview_refuses_a_user_s_sheet_before_reading_any_image(dataset, tmp_path, capsys, monkeypatch):
+    import augsplit.preview as pv
+
+    out = tmp_path / "pv"
+    out.mkdir()
+    (out / "contact_train.png").write_text("the user's")
+    monkeypatch.setattr(pv, "image_of", lambda *a, **k: pytest.fail("read an image before judging the folder"))
+    assert cli("preview", dataset, "--out", out) == 2
+    assert "has no record of writing it here" in capsys.readouterr().err
+    assert (out / "contact_train.png").read_text() == "the user's"
 
 
 def test_a_folder_from_before_the_list_keeps_its_reports_when_another_command_writes_first(dataset, predictions,
