@@ -32,9 +32,9 @@ from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.rows import read_column
-from .dataset.images import FORMATS, encode
+from .dataset.images import FORMATS, encode, sha256_hex
 from .dataset.png import DEFLATES, png_setting
-from .dataset.tarstore import TarShardWriter, json_values, sha256_hex
+from .dataset.tarstore import TarShardWriter, json_values
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
 from .io import (DISK_FULL, move_into_place, new_temporary, os_error, sync_files, write_files_atomic,

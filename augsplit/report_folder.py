@@ -47,11 +47,10 @@ def dataset_root(path) -> Path | None:
     return None
 
 
-def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
-    """Whether the report files `names` may be written in `out` (see the module docstring):
-    one-line DatasetError naming the path if not; creates nothing. `inputs` are the command's
-    input files and folders. Returns the folder, whether it is a dataset's own report folder,
-    and the files augsplit recorded writing there."""
+def check_report_folder(out, names, inputs=()) -> Path:
+    """`out` as a Path, if the report files `names` may be written there (see the module
+    docstring): one-line DatasetError naming the path if not; creates nothing. `inputs` are
+    the command's input files and folders."""
     p = check_folder_target(out)
     root = dataset_root(p if p.exists() else p.absolute().parent)
     own = root is not None and Path(os.path.realpath(p.absolute().parent)) == root and p.name in lay.REPORT_DIRS
@@ -70,7 +69,7 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
         q = p / name
         if not os.path.lexists(q):
             continue
-        if any(os.path.lexists(src) and os.path.samefile(q, src) for src in inputs):
+        if _is_input(q, inputs):
             raise DatasetError("is an input of this command; augsplit never replaces its input, give another --out",
                                where=str(q))
         if q.is_symlink() or not q.is_file():
@@ -86,7 +85,7 @@ def check_report_folder(out, names, inputs=()) -> tuple[Path, bool, set[str]]:
         if stamp is not None and not _matches(q, stamp):
             raise DatasetError("exists and was changed since augsplit wrote it (its list, " + REPORTS_LIST
                                + ", records the file it wrote); give another --out, or move the file", where=str(q))
-    return p, own, listed
+    return p
 
 
 @contextmanager
@@ -102,8 +101,7 @@ def report_set(out, command: str, names, inputs=()):
     if command not in COMMANDS:
         raise ValueError(f"not a command that writes reports: {command!r}")
     names = set(names)
-    p, _own, listed = check_report_folder(out, sorted(names), inputs)
-    folder = ensure_folder(p)
+    folder = ensure_folder(check_report_folder(out, sorted(names), inputs))
     try:  # the folder checked, opened once: its names are looked up in it, never through a link swapped in
         fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
     except OSError as exc:
@@ -111,7 +109,7 @@ def report_set(out, command: str, names, inputs=()):
     try:
         record = _read_list(folder, fd)
         # reports an earlier augsplit left, found by their JSON, join the first list as they are
-        adopted = {n: _stamp(n, fd) for n in (() if record.exists else listed | _earlier_reports(folder))}
+        adopted = {n: _stamp(n, fd) for n in (() if record.exists else _earlier_reports(folder))}
         before = {n: _stamp(n, fd) for n in names}  # what each name holds before this run
         earlier = record.runs.get(command, set())
         try:
@@ -154,11 +152,9 @@ def _remove_stale(fd: int, name: str, stamp, path: Path, inputs) -> bool:
     """Remove the stale report `name` of the folder open as `fd` if it is still the regular
     file a completed run stamped and none of the command's inputs; whether it is gone. A link
     is never followed, a folder never entered."""
-    st = _lstat(fd, name)
-    if st is None:
+    if _lstat(fd, name) is None:
         return True
-    if stamp is None or not stat.S_ISREG(st.st_mode) or not _matches(name, stamp, fd) \
-            or any(os.path.lexists(src) and _same_or_inside(path, src) for src in inputs):
+    if stamp is None or not _matches(name, stamp, fd) or _is_input(path, inputs):  # a link or folder matches no stamp
         return False
     try:
         os.unlink(name, dir_fd=fd)  # unlink never follows a link: were it swapped for one, the link alone would go
@@ -204,12 +200,14 @@ def _matches(name, stamp, dir_fd: int | None = None) -> bool:
     return _stamp(name, dir_fd, size=stamp[0]) == stamp
 
 
-def _same_or_inside(q: Path, src) -> bool:
-    """Whether `q` is the input `src` or lies in it (a dataset's own report folders excepted:
-    augsplit's, as `check_report_folder` lets reports go there)."""
-    real, source = os.path.realpath(q), os.path.realpath(src)
-    return real == source or (os.path.isdir(source) and not lay.is_dataset(source)
-                              and real.startswith(source.rstrip(os.sep) + os.sep))
+def _is_input(q: Path, inputs) -> bool:
+    """Whether the file `q` is one of the command's inputs (a report folder inside an input
+    folder is refused by `check_report_folder`, so a file is an input only by being one)."""
+    for src in inputs:
+        with suppress(OSError):  # an input that is not there (or a broken link) is not q
+            if os.path.samefile(q, src):
+                return True
+    return False
 
 
 def _earlier_reports(folder: Path) -> set[str]:

@@ -34,7 +34,8 @@ from . import manifest as mf
 from .dataset import layout as lay
 from .dataset import open_dataset
 from .dataset import tarstore
-from .dataset.images import FORMATS, PNG_SIGNATURE, ImageError, decode, max_bytes, rerender, row_where, stored_bytes
+from .dataset.images import (FORMATS, PNG_SIGNATURE, ImageError, decode, max_bytes, rerender, row_where, sha256_hex,
+                              stored_bytes)
 from .dataset.rows import iter_batches
 from .errors import AugsplitError, DatasetError
 from .plan.draw import draw
@@ -350,7 +351,7 @@ def _check_stored(folder, row, store, archive, res: PartResult) -> None:
     recorded = row.get("file_sha256")
     if not isinstance(recorded, str) or not recorded:
         res.no_byte_sum += 1
-    elif tarstore.sha256_hex(data) != recorded:
+    elif sha256_hex(data) != recorded:
         res.bad_bytes.add(where)
     try:
         img = decode(data, folder.channels, where, folder.hw)

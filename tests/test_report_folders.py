@@ -464,6 +464,32 @@ def test_a_report_folder_swapped_for_a_link_mid_run_is_no_traceback(dataset, pre
     assert not (tmp_path / "moved" / "comparison.csv").exists()
 
 
+def test_a_full_disk_writing_the_list_is_one_line_and_keeps_the_old_list(dataset, predictions, tmp_path, monkeypatch,
+                                                                          capsys):
+    import errno
+    import os
+
+    import augsplit.report_folder as rf
+
+    out = tmp_path / "r"
+    assert cli("score", dataset, predictions, "--out", out) in (0, 1)
+    before = (out / REPORTS_LIST).read_bytes()
+    real = os.replace
+
+    def full(src, dst, *args, **kwargs):
+        if dst == REPORTS_LIST:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real(src, dst, *args, **kwargs)
+
+    monkeypatch.setattr(rf.os, "replace", full)
+    assert cli("score", dataset, predictions, "--out", out) == 2
+    err = capsys.readouterr().err
+    assert "disk full" in err and REPORTS_LIST in err and len(err.strip().splitlines()) == 1
+    monkeypatch.undo()
+    assert (out / REPORTS_LIST).read_bytes() == before  # whole, as it was
+    assert not [p for p in out.iterdir() if ".tmp-" in p.name]  # its temporary went
+
+
 def test_preview_refuses_a_damaged_list_before_reading_any_image(dataset, tmp_path, capsys, monkeypatch):
     import augsplit.preview as pv
 

@@ -264,13 +264,18 @@ def stored_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     return data
 
 
+def sha256_hex(data: bytes) -> str:
+    """The checksum of stored image bytes (a row's file_sha256)."""
+    return hashlib.sha256(data).hexdigest()
+
+
 def checked_bytes(folder, row, data: bytes | None = None) -> bytes | None:
     """`stored_bytes`, held to the row's recorded checksum of them (file_sha256) where it has
     one: ImageError naming the row when they differ, so a reader that shows or copies a
     stored image never passes on one changed since it was written."""
     data = stored_bytes(folder, row, data)
     recorded = row.get("file_sha256")
-    if data is not None and isinstance(recorded, str) and recorded and hashlib.sha256(data).hexdigest() != recorded:
+    if data is not None and isinstance(recorded, str) and recorded and sha256_hex(data) != recorded:
         raise ImageError("the stored image does not match its checksum (file_sha256); 'augsplit verify' "
                          "lists every such row", where=row_where(row))
     return data

@@ -10,7 +10,6 @@ through the dataset folder's closed box, and member sizes are bounded before rea
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -174,7 +173,3 @@ def iter_members(folder, rel: str, where: str, limit: int):
                 tar.members = []  # streamed: keep no list of what was read
         except (tarfile.TarError, OSError, EOFError) as exc:
             raise ImageError(f"shard archive {rel} is damaged: {exc}", where=where) from None
-
-
-def sha256_hex(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()
