@@ -331,6 +331,21 @@ def write_output(path: str | Path, data: bytes | str) -> str | Path:
     return Path(path)
 
 
+def lock_folder(fd: int, where, busy: str, *, shared: bool = False) -> None:
+    """Lock the folder open as `fd` for as long as `fd` stays open (`flock` on the folder
+    itself, so nothing is added to it): exclusive, or `shared` with other shared holders. Held
+    elsewhere: one-line DatasetError `busy` naming `where`. Where the file system has no such
+    locks, nothing is locked."""
+    import fcntl  # POSIX only: imported where a run locks a folder
+
+    try:
+        fcntl.flock(fd, (fcntl.LOCK_SH if shared else fcntl.LOCK_EX) | fcntl.LOCK_NB)
+    except BlockingIOError:
+        raise DatasetError(busy, where=str(where)) from None
+    except OSError:  # no locks on this file system
+        pass
+
+
 def check_folder_target(path: str | Path) -> Path:
     """`path` as a Path, if it may be used as an output folder: missing, or a real folder
     (not a symlink). Refuses `-` and anything else in one line. Creates nothing."""

@@ -20,7 +20,6 @@ from .dataset import image_of, open_dataset, read_rows
 from .dataset import layout as lay
 from . import figures
 from .errors import DatasetError
-from .io import output_path
 from .render import add_footprint, footprint
 from .report_folder import check_report_folder, report_set
 from .scene import render_params
@@ -107,8 +106,8 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
                                                                for _, row in pick.iterrows()])
     cov = coverage(built, df)
     with report_set(out, "preview", [*sheets, COVERAGE_FILE], [root]) as out:
-        paths = [contact_sheet(built, shown, n_rows, out / name, columns) for name, (n_rows, shown) in sheets.items()]
-        paths.append(coverage_figure(built, cov, out / COVERAGE_FILE))
+        paths = [out.write(name, contact_sheet(built, shown, n_rows, columns)) for name, (n_rows, shown) in sheets.items()]
+        paths.append(out.write(COVERAGE_FILE, coverage_figure(built, cov)))
     return paths
 
 
@@ -150,8 +149,8 @@ def caption(built: Built, row) -> str:
     return "\n".join(lines)
 
 
-def contact_sheet(built: Built, shown: list, n_rows: int, path: Path, columns: int = 6) -> Path:
-    """The sheet of one split's `shown` (manifest row, image) pairs, of its `n_rows` rows."""
+def contact_sheet(built: Built, shown: list, n_rows: int, columns: int = 6) -> bytes:
+    """The sheet (PNG) of one split's `shown` (manifest row, image) pairs, of its `n_rows` rows."""
     n = len(shown)
     cols = min(columns, n)
     nrows = math.ceil(n / cols)
@@ -180,9 +179,7 @@ def contact_sheet(built: Built, shown: list, n_rows: int, path: Path, columns: i
     kind = f"{split.role}, {split.kind}" if split.kind != split.role else split.role
     fig.text(margin / width, 1 - 0.12 / height, f"split '{split.name}' ({kind}): {n} of {n_rows} images, "
              "evenly spaced by index", fontsize=10, ha="left", va="top")
-    with output_path(path) as tmp:  # written safely, like every output
-        fig.savefig(tmp, dpi=110, format="png")
-    return path
+    return figures.png(fig, dpi=110)
 
 
 # ---- coverage ------------------------------------------------------------------------------------
@@ -232,8 +229,9 @@ def overlay(train: np.ndarray | None, test: np.ndarray | None, shared: np.ndarra
     return rgb
 
 
-def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
-    """Top row: one heat map per split. Bottom row: each test split over all train splits."""
+def coverage_figure(built: Built, cov: Coverage) -> bytes:
+    """The coverage figure (PNG). Top row: one heat map per split. Bottom row: each test split
+    over all train splits."""
     from matplotlib.patches import Patch
 
     names = list(cov.counts)
@@ -259,9 +257,7 @@ def coverage_figure(built: Built, cov: Coverage, path: Path) -> Path:
     fig.suptitle(f"Where each split's objects landed\n{c.width}x{c.height} canvas; object footprints "
                  "re-made from the manifest rows", fontsize=10)
     fig.tight_layout()
-    with output_path(path) as tmp:  # written safely, like every output
-        fig.savefig(tmp, dpi=110, format="png")
-    return path
+    return figures.png(fig, dpi=110)
 
 
 def _split_panel(fig, ax, split, cov: Coverage, cmap: str) -> None:

@@ -16,6 +16,11 @@ The list stamps each file a completed run wrote (its size and SHA-256), and a fi
 only while it is still that file: never one the user saved under the name since, a
 command's input, a link, a folder. A stamped file that changed is not replaced either: it is
 refused by name, like a user's file. A run that fails records only the files it did write.
+
+Once checked, the folder is opened once and locked for the run: its files are written, its
+list read and written and stale reports removed in that folder, never through a link swapped
+in for it mid-run; a second run writing reports in the same folder at the same time is
+refused in one line rather than racing the first for the list.
 """
 
 from __future__ import annotations
@@ -30,7 +35,7 @@ from pathlib import Path
 
 from .dataset import layout as lay
 from .errors import DatasetError
-from .io import check_folder_target, ensure_folder, os_error, temporary_name
+from .io import check_folder_target, ensure_folder, lock_folder, os_error, temporary_name
 
 # {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
 #  "stamps": {name: [size, SHA-256] of the file a completed run wrote}}
@@ -88,16 +93,35 @@ def check_report_folder(out, names, inputs=()) -> Path:
     return p
 
 
+class ReportFolder:
+    """The report folder of one run, open and locked (`report_set`): `write` puts a report
+    file in it."""
+
+    def __init__(self, path: Path, fd: int, names: set[str]):
+        self.path, self._fd, self._names = path, fd, names
+
+    def write(self, name: str, data: bytes | str) -> Path:
+        """Write the report file `name` (one of the run's names) whole: under a temporary name,
+        synced, renamed over the file it replaces, the folder synced; all in the open folder.
+        A storage error (a full disk) is a one-line DatasetError; the old file stays whole."""
+        if name not in self._names:
+            raise ValueError(f"{name!r} is not one of this run's report files")
+        raw = data.encode("utf-8") if isinstance(data, str) else data
+        _write_in(self._fd, name, raw, self.path)
+        return self.path / name
+
+
 @contextmanager
 def report_set(out, command: str, names, inputs=()):
-    """The folder to write one run of `command`'s report files `names` in: `out`, made if
-    missing (its parent must exist), once `check_report_folder` allows them there. When the
-    block completes, the files `command` left there before that this run did not write are
-    removed while each is still the file a completed run wrote, and this run's files are
-    listed and stamped (see the module docstring). When it raises, nothing is removed, and
-    only the files it did write (whose content changed) are listed and stamped, so the next
-    run of the command still removes what the last completed run left. A process killed
-    outright records nothing: a file it made is then refused by name, never lost."""
+    """The folder to write one run of `command`'s report files `names` in (a `ReportFolder`):
+    `out`, made if missing (its parent must exist), once `check_report_folder` allows them
+    there, opened and locked. When the block completes, the files `command` left there before
+    that this run did not write are removed while each is still the file a completed run
+    wrote, and this run's files are listed and stamped (see the module docstring). When it
+    raises, nothing is removed, and only the files it did write (whose content changed) are
+    listed and stamped, so the next run of the command still removes what the last completed
+    run left. A process killed outright records nothing: a file it made is then refused by
+    name, never lost."""
     if command not in COMMANDS:
         raise ValueError(f"not a command that writes reports: {command!r}")
     names = set(names)
@@ -107,13 +131,15 @@ def report_set(out, command: str, names, inputs=()):
     except OSError as exc:
         raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
     try:
+        lock_folder(fd, folder, "another augsplit run is writing reports in this folder; wait for it to end or "
+                    "give another --out")
         record = _read_list(folder, fd)
         # reports an earlier augsplit left, found by their JSON, join the first list as they are
         adopted = {n: _stamp(n, fd) for n in (() if record.exists else _earlier_reports(folder))}
         before = {n: _stamp(n, fd) for n in names}  # what each name holds before this run
         earlier = record.runs.get(command, set())
         try:
-            yield folder
+            yield ReportFolder(folder, fd, names)
         except BaseException:
             with suppress(Exception):  # the run's own error is the one to report
                 now = {n: _stamp(n, fd) for n in names}
@@ -313,31 +339,36 @@ def _plain_name(name: str) -> bool:
 
 
 def _write_list(fd: int, record: _Record, folder: Path) -> None:
-    """Write the list in `folder`, open as `fd`: whole under a temporary name, synced, renamed
-    over the old one (never through a link: the folder's own entries), the folder synced. A
-    failure (a full disk) is a one-line DatasetError; the old list stays whole."""
+    """Write the list in `folder`, open as `fd` (`_write_in`): a failure (a full disk) is a
+    one-line DatasetError; the old list stays whole."""
     doc = {"files": sorted(record.files), "runs": {c: sorted(n) for c, n in sorted(record.runs.items())},
            "stamps": {n: list(record.stamps[n]) for n in sorted(record.stamps)}}
-    data = json.dumps(doc, indent=1).encode("utf-8")
-    tmp = temporary_name(Path(REPORTS_LIST)).name
+    _write_in(fd, REPORTS_LIST, json.dumps(doc, indent=1).encode("utf-8"), folder)
+
+
+def _write_in(fd: int, name: str, data: bytes, folder: Path) -> None:
+    """Write the file `name` of the folder open as `fd` whole: under a temporary name,
+    synced, renamed over the old one (the folder's own entries: never through a link), the
+    folder synced. Where something other than a regular file has come to hold the name, it is
+    refused and left as it is. A storage error is a one-line DatasetError naming the file."""
+    st = _lstat(fd, name)
+    if st is not None and not stat.S_ISREG(st.st_mode):
+        raise DatasetError("exists and is not a regular file; give another --out", where=str(folder / name))
+    tmp = temporary_name(Path(name)).name
     try:
-        _replace_list(fd, tmp, data)
+        tfd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0),
+                      0o666, dir_fd=fd)
+        try:
+            with os.fdopen(tfd, "wb") as f:
+                f.write(data)
+                f.flush()
+                os.fsync(f.fileno())
+            os.replace(tmp, name, src_dir_fd=fd, dst_dir_fd=fd)
+        except BaseException:
+            with suppress(OSError):
+                os.unlink(tmp, dir_fd=fd)
+            raise
     except OSError as exc:
-        raise os_error(exc, folder / REPORTS_LIST) from None
-
-
-def _replace_list(fd: int, tmp: str, data: bytes) -> None:
-    tfd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0), 0o644,
-                  dir_fd=fd)
-    try:
-        with os.fdopen(tfd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, REPORTS_LIST, src_dir_fd=fd, dst_dir_fd=fd)
-    except BaseException:
-        with suppress(OSError):
-            os.unlink(tmp, dir_fd=fd)
-        raise
+        raise os_error(exc, folder / name) from None
     with suppress(OSError):  # file systems that cannot sync a folder
         os.fsync(fd)

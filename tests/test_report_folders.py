@@ -6,8 +6,6 @@ seen to replace or add a file before the fix."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pandas as pd
 import pytest
 from specs import lanes_dataset
@@ -15,7 +13,7 @@ from specs import lanes_dataset
 from augsplit.cli import main
 from augsplit.dataset import read_manifest
 from augsplit.errors import DatasetError
-from augsplit.report_folder import REPORTS_LIST
+from augsplit.report_folder import REPORTS_LIST, ReportFolder
 
 
 @pytest.fixture(scope="module")
@@ -192,11 +190,11 @@ def test_a_report_folder_from_before_the_list_is_taken_as_augsplit_s(dataset, pr
 def test_a_run_cut_short_leaves_files_a_later_run_replaces(dataset, tmp_path, monkeypatch):
     import augsplit.audit.report as report
 
-    def broken(result, path):
+    def broken(result):
         raise OSError("disk full")
 
     out = tmp_path / "cut"
-    monkeypatch.setattr(report, "write_html", broken)
+    monkeypatch.setattr(report, "html_text", broken)
     with pytest.raises(OSError):
         report.write_reports(report.AuditResult((), (), (), {}, {}), out)
     assert (out / "audit.json").is_file() and not (out / "audit.html").exists()
@@ -291,12 +289,12 @@ def test_report_sets_remove_only_what_a_completed_run_of_the_command_left(tmp_pa
     out = tmp_path / "r"
     with report_set(out, "score", ["a.csv", "b.csv"]) as f:
         for n in ("a.csv", "b.csv"):
-            (f / n).write_text(n)
+            f.write(n, n)
     with report_set(out, "audit", ["audit.json"]) as f:
-        (f / "audit.json").write_text("{}")
+        f.write("audit.json", "{}")
     with pytest.raises(RuntimeError):  # a run that fails removes nothing
         with report_set(out, "score", ["a.csv", "c.csv"]) as f:
-            (f / "c.csv").write_text("c")
+            f.write("c.csv", "c")
             raise RuntimeError("cut short")
     assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json", "b.csv", "c.csv"]
     (out / "a.csv").write_text("mine now")  # the failed run did not write a.csv: the user may have since
@@ -305,7 +303,7 @@ def test_report_sets_remove_only_what_a_completed_run_of_the_command_left(tmp_pa
             pass
     (out / "a.csv").unlink()
     with report_set(out, "score", ["a.csv"]) as f:
-        (f / "a.csv").write_text("again")
+        f.write("a.csv", "again")
     # b.csv of the last completed run and c.csv of the run cut short (stamped as it failed) are
     # gone; audit's report is another command's
     assert sorted(p.name for p in out.iterdir() if p.name != REPORTS_LIST) == ["a.csv", "audit.json"]
@@ -337,31 +335,29 @@ def test_a_copied_report_folder_is_still_augsplit_s(tmp_path):
     first, copy = tmp_path / "first", tmp_path / "copy"
     with report_set(first, "score", ["x.csv", "y.csv"]) as f:
         for n in ("x.csv", "y.csv"):
-            (f / n).write_text(n)
+            f.write(n, n)
     shutil.copytree(first, copy, copy_function=shutil.copy)  # new files: other inodes and times, same content
     for n in ("x.csv", "y.csv"):
         os.utime(copy / n, ns=(1, 1))
     with report_set(copy, "score", ["x.csv"]) as f:  # was refused as changed (stamps of inode and time)
-        (f / "x.csv").write_text("new")
+        f.write("x.csv", "new")
     assert sorted(p.name for p in copy.iterdir() if p.name != REPORTS_LIST) == ["x.csv"]
 
 
 def test_a_run_cut_short_still_lets_the_next_run_remove_the_last_complete_run_s_tables(dataset, predictions,
                                                                                      tmp_path, monkeypatch, capsys):
-    import augsplit.score.report as report
-
     out, other = _two_model_folder(dataset, predictions, tmp_path)
     two_models = set(_csvs(out))
     calls = []
-    real = report.write_output
+    real = ReportFolder.write
 
-    def cut(path, data):
-        calls.append(path)
+    def cut(self, name, data):
+        calls.append(name)
         if len(calls) == 3:
             raise KeyboardInterrupt
-        return real(path, data)
+        return real(self, name, data)
 
-    monkeypatch.setattr(report, "write_output", cut)
+    monkeypatch.setattr(ReportFolder, "write", cut)
     assert cli("score", dataset, predictions, "--compare", other, "--out", out) not in (0, 1)  # Ctrl-C, 2 files in
     assert len(calls) == 3
     monkeypatch.undo()
@@ -396,18 +392,16 @@ def test_a_name_a_run_cut_short_never_wrote_stays_the_user_s(dataset, tmp_path, 
 
 
 def test_a_user_s_file_between_two_runs_cut_short_is_not_adopted(dataset, predictions, tmp_path, monkeypatch):
-    import augsplit.score.report as report
-
     out, other = tmp_path / "r", tmp_path / "other.csv"
     other.write_bytes(predictions.read_bytes())
-    real = report.write_output
+    real = ReportFolder.write
 
-    def cut(path, data):
-        if Path(path).name == "comparison.csv":
+    def cut(self, name, data):
+        if name == "comparison.csv":
             raise KeyboardInterrupt
-        return real(path, data)
+        return real(self, name, data)
 
-    monkeypatch.setattr(report, "write_output", cut)
+    monkeypatch.setattr(ReportFolder, "write", cut)
     assert cli("score", dataset, predictions, "--compare", other, "--out", out) not in (0, 1)
     (out / "comparison.csv").write_text("my own comparison")
     assert cli("score", dataset, predictions, "--compare", other, "--out", out) == 2  # not written over
@@ -439,29 +433,28 @@ def test_a_folder_from_before_the_list_keeps_its_reports_when_another_command_wr
 
 def test_a_report_folder_swapped_for_a_link_mid_run_is_no_traceback(dataset, predictions, tmp_path, monkeypatch,
                                                                     capsys):
-    import augsplit.score.report as report
-
     out, other = _two_model_folder(dataset, predictions, tmp_path)
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
     (elsewhere / "comparison.csv").write_text("not augsplit's")
     calls = []
-    real = report.write_output
+    real = ReportFolder.write
 
-    def swap(path, data):
-        calls.append(path)
+    def swap(self, name, data):
+        calls.append(name)
         if len(calls) == 3:
             out.rename(tmp_path / "moved")
             out.symlink_to(elsewhere)
-        return real(path, data)
+        return real(self, name, data)
 
-    monkeypatch.setattr(report, "write_output", swap)
+    monkeypatch.setattr(ReportFolder, "write", swap)
     assert cli("score", dataset, predictions, "--out", out) in (0, 1)  # was a NotADirectoryError traceback
     assert "Traceback" not in capsys.readouterr().err
-    # the clean-up and the list stay in the folder that was checked, never in the link's target
+    # the reports, the clean-up and the list stay in the folder that was checked, never in the link's target
+    assert sorted(p.name for p in elsewhere.iterdir()) == ["comparison.csv"]  # was: the run's later reports too
     assert (elsewhere / "comparison.csv").read_text() == "not augsplit's"
-    assert not (elsewhere / REPORTS_LIST).exists()
     assert not (tmp_path / "moved" / "comparison.csv").exists()
+    assert {"score.json", "report.html", REPORTS_LIST} <= {p.name for p in (tmp_path / "moved").iterdir()}
 
 
 def test_a_full_disk_writing_the_list_is_one_line_and_keeps_the_old_list(dataset, predictions, tmp_path, monkeypatch,
@@ -537,7 +530,7 @@ def test_a_list_from_before_runs_were_recorded_removes_nothing(tmp_path):
         (out / n).write_text("{}")
     (out / REPORTS_LIST).write_text(json.dumps({"files": ["score.json", "old.csv"]}))  # as the last release wrote it
     with report_set(out, "score", ["score.json"]) as f:
-        (f / "score.json").write_text("{}")
+        f.write("score.json", "{}")
     with report_set(out, "score", ["score.json"]):
         pass
     assert (out / "old.csv").is_file()
@@ -572,3 +565,57 @@ def test_a_damaged_list_is_one_line_and_removes_nothing(dataset, predictions, tm
     assert len(err.strip().splitlines()) == 1
     assert sorted(p.name for p in out.iterdir()) == sorted(mine + [REPORTS_LIST])
     assert all((out / n).read_text() == "mine" for n in mine)
+
+
+@pytest.mark.parametrize("command", ["score", "audit", "preview"])
+def test_a_second_run_writing_reports_in_the_same_folder_is_refused(dataset, predictions, tmp_path, capsys, command):
+    import fcntl
+    import os
+
+    out = tmp_path / "busy"
+    assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    fd = os.open(out, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # as a run writing reports there now holds it
+        assert cli(*commands(dataset, predictions, out)[command]) == 2  # was 0 or 1: both runs wrote the list
+        err = capsys.readouterr().err.strip()
+        assert "another augsplit run is writing reports in this folder" in err and len(err.splitlines()) == 1
+    finally:
+        os.close(fd)
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+    assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)  # the lock went with the other run
+
+
+def test_reports_go_to_the_folder_checked_not_a_link_swapped_in_mid_run(dataset, tmp_path):
+    import augsplit.preview as pv
+
+    out, moved, elsewhere = tmp_path / "pv", tmp_path / "pv-moved", tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    real, calls = pv.contact_sheet, []
+
+    def swap(*args):
+        if not calls:  # the folder checked and in use, then swapped for a link to another folder
+            out.rename(moved)
+            out.symlink_to(elsewhere, target_is_directory=True)
+        calls.append(args)
+        return real(*args)
+
+    mp = pytest.MonkeyPatch()
+    mp.setattr(pv, "contact_sheet", swap)
+    try:
+        assert cli("preview", dataset, "--out", out) == 0
+    finally:
+        mp.undo()
+    assert list(elsewhere.iterdir()) == []  # was: every sheet after the swap, and coverage.png, written there
+    assert {p.name for p in moved.iterdir()} == {"contact_train.png", "contact_test.png", "coverage.png", REPORTS_LIST}
+
+
+def test_a_report_folder_writes_only_its_run_s_names(tmp_path):
+    from augsplit.report_folder import report_set
+
+    with report_set(tmp_path / "r", "audit", ["audit.json"]) as out:
+        assert out.write("audit.json", "{}") == tmp_path / "r" / "audit.json"
+        with pytest.raises(ValueError):
+            out.write("../escape.json", "{}")
+    assert not (tmp_path / "escape.json").exists()

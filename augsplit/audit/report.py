@@ -51,9 +51,7 @@ way round). Non-finite numbers are written as null.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import json
 import math
 from pathlib import Path
@@ -61,6 +59,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .. import figures
 from ..io import is_stdout, plain, write_output
 from .result import AuditResult, CheckResult
 
@@ -98,9 +97,14 @@ def to_json(result: AuditResult) -> dict:
     }
 
 
+def json_text(result: AuditResult) -> str:
+    """audit.json's text."""
+    return json.dumps(to_json(result), indent=2, allow_nan=False)
+
+
 def write_json(result: AuditResult, path) -> Path | str:
     """audit.json at `path` (written safely, see augsplit.io), or on standard output for "-"."""
-    text = json.dumps(to_json(result), indent=2, allow_nan=False)
+    text = json_text(result)
     return write_output(path, text + "\n" if is_stdout(path) else text)
 
 
@@ -143,18 +147,11 @@ def summary_table(result: AuditResult) -> str:
 # ---- HTML ---------------------------------------------------------------------------------
 
 def _figure(w=4.0, h=3.0):
-    from matplotlib.figure import Figure  # no pyplot: no global state, Agg canvas below
-
-    return Figure(figsize=(w, h), dpi=100)
+    return figures.figure(figsize=(w, h), dpi=100)
 
 
 def _png(fig) -> str:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", bbox_inches="tight")
-    return '<img alt="plot" src="data:image/png;base64,' + base64.b64encode(buf.getvalue()).decode() + '">'
+    return figures.img_tag(fig, bbox_inches="tight")
 
 
 def _coverage_plot(c: CheckResult) -> str:
@@ -235,7 +232,12 @@ def _table(df: pd.DataFrame | None) -> str:
 
 
 def write_html(result: AuditResult, path) -> Path:
-    """A single self-contained HTML file (plots embedded as base64 PNG)."""
+    """audit.html at `path` (written safely, see augsplit.io)."""
+    return write_output(path, html_text(result))
+
+
+def html_text(result: AuditResult) -> str:
+    """audit.html's text: a single self-contained page (plots embedded as base64 PNG)."""
     parts = [f"<h1>augsplit audit: {result.verdict.upper()}</h1>",
              f"<p>{html.escape(str(result.inputs.get('n_rows')))} rows; pairs: "
              + ", ".join(html.escape(f"{a} vs {b}") for a, b in result.pairs) + "</p>",
@@ -268,9 +270,8 @@ def write_html(result: AuditResult, path) -> Path:
     style = ("body{font-family:sans-serif;margin:2em;max-width:1100px} td,th{padding:2px 8px;text-align:left}"
              " .pass{color:#227733} .warn{color:#aa7700} .fail{color:#bb2222;font-weight:bold}"
              " table.worst{font-size:12px} img{max-width:100%}")
-    doc = (f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>augsplit audit</title>"
-           f"<style>{style}</style></head><body>{''.join(parts)}</body></html>")
-    return write_output(path, doc)
+    return (f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>augsplit audit</title>"
+            f"<style>{style}</style></head><body>{''.join(parts)}</body></html>")
 
 
 REPORT_FILES = ("audit.json", "audit.html")
@@ -285,4 +286,4 @@ def write_reports(result: AuditResult, out_dir, inputs=()) -> dict[str, Path]:
     if is_stdout(out_dir):
         return {"json": write_json(result, out_dir)}
     with report_set(out_dir, "audit", REPORT_FILES, inputs) as out:
-        return {"json": write_json(result, out / "audit.json"), "html": write_html(result, out / "audit.html")}
+        return {"json": out.write("audit.json", json_text(result)), "html": out.write("audit.html", html_text(result))}

@@ -13,7 +13,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 
 from ..errors import DatasetError
-from ..io import write_bytes_new
+from ..io import lock_folder, write_bytes_new
 from . import layout as lay
 from . import overwrite
 from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, read_spec_doc
@@ -35,23 +35,17 @@ class FolderLock:
         soon as it has made the folder)."""
         if self.fd is not None or not self.out.is_dir():
             return
-        import fcntl  # POSIX only: imported where a run locks its folder
-
         fd = os.open(self.out, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0))
         try:
-            fcntl.flock(fd, (fcntl.LOCK_SH if self.shared else fcntl.LOCK_EX) | fcntl.LOCK_NB)
-        except BlockingIOError:
+            lock_folder(fd, self.out, "another augsplit run is writing this folder; wait for it to end or stop it "
+                        "(only the job-array tasks of one run, --shard K/N, share a folder)", shared=self.shared)
+        except BaseException:
             os.close(fd)
-            raise DatasetError("another augsplit run is writing this folder; wait for it to end or stop it "
-                               "(only the job-array tasks of one run, --shard K/N, share a folder)",
-                               where=str(self.out)) from None
-        except OSError:  # no locks on this file system
-            os.close(fd)
-            fd = -1
+            raise
         self.fd = fd
 
     def release(self) -> None:
-        if self.fd is not None and self.fd >= 0:
+        if self.fd is not None:
             os.close(self.fd)  # closing the descriptor drops the lock
         self.fd = None
 

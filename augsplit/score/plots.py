@@ -4,12 +4,11 @@ caller's backend untouched) and returned as embedded PNG `<img>` tags.
 
 from __future__ import annotations
 
-import base64
-import io
 import math
 
 import numpy as np
 
+from .. import figures
 from .distance import PERIOD, of_class
 
 COLOURS = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:brown")
@@ -17,15 +16,11 @@ STYLES = ("-", "--", ":", "-.")
 
 
 def figure(**kw):
-    from matplotlib.figure import Figure
-
-    return Figure(**kw)
+    return figures.figure(**kw)
 
 
 def img_tag(fig) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    return f"<img alt='plot' src='data:image/png;base64,{base64.b64encode(buf.getvalue()).decode('ascii')}'>"
+    return figures.img_tag(fig, dpi=90, bbox_inches="tight")
 
 
 def _errorbar(ax, x, t, **kw) -> None:

@@ -123,7 +123,7 @@ def write_outputs(results: list[tuple[str, ScoreResult]], out_dir, *, title: str
     docs = {"score.json": text, **{name: t.to_csv(index=False) for name, t in zip(csvs, tables, strict=True)},
             "report.html": render_html(results, title=title, intro_html=intro_html)}
     with report_set(out_dir, "score", docs, inputs) as out:
-        return {name: write_output(out / name, data) for name, data in docs.items()}
+        return {name: out.write(name, data) for name, data in docs.items()}
 
 
 # ---- HTML ------------------------------------------------------------------------------------
