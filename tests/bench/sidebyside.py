@@ -76,21 +76,59 @@ def verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
 
 
+OTHERS_LIMIT = 0.5  # cores: above this, other work competed with the runs a ratio compares
+
+
+def others_load(window: float = 0.5) -> float:
+    """Cores' worth of CPU time taken by everything but this benchmark over `window` seconds
+    while it waits (its timed runs finished): every process's user and system time, and the
+    time the hypervisor gave this machine's cores to others (steal), from /proc/stat, less
+    this process's own. Unlike the 1-minute load average, it does not count the benchmark's
+    own runs that just ended (2 workers on 2 cores keep that average near 2 for a minute), nor
+    tasks waiting on the disk (syncfs), and it sees a shared host's steal. Where /proc/stat
+    is missing: the 1-minute load average, as an upper bound."""
+    import time
+
+    def sample():
+        try:
+            with open("/proc/stat") as f:
+                v = [int(x) for x in f.readline().split()[1:]]
+        except (OSError, ValueError):
+            return None
+        busy = v[0] + v[1] + v[2] + v[5] + v[6] + (v[7] if len(v) > 7 else 0)  # user nice system irq softirq steal
+        return busy, sum(v[:8]), sum(os.times()[:2])
+
+    a = sample()
+    time.sleep(window)
+    b = sample()
+    if a is None or b is None or b[1] <= a[1]:
+        return os.getloadavg()[0]
+    cores = os.cpu_count() or 1
+    others = (b[0] - a[0]) / (b[1] - a[1]) * cores - (b[2] - a[2]) / window
+    return max(0.0, others)
+
+
 def overloaded() -> bool:
-    """A ratio measured while the 1-minute load is above the core count says nothing about the
-    code (the processes timed were waiting for a core)."""
-    return os.getloadavg()[0] > (os.cpu_count() or 1)
+    """Whether other work took more than OTHERS_LIMIT cores now (`others_load`): a ratio
+    between runs that compete for cores, measured so, says nothing about the code."""
+    return others_load() > OTHERS_LIMIT
 
 
 def aim(name: str, measured: str, ok: bool, *, needs_idle: bool = False, busy: bool = False) -> str:
     """Print one aim as `AIM | name | measured | load | PASS or MISS` and return the verdict.
 
     With `needs_idle` (a ratio between runs that compete for cores, such as 2 workers vs 1),
-    a measurement taken under a load above the core count is reported as MISS-UNRELIABLE:
-    the load now, or `busy` (the caller saw such a load before one of its timed runs)."""
+    a measurement taken while other work competed for the cores is reported as
+    MISS-UNRELIABLE: other work now (`overloaded`), or `busy` (the caller saw it before one
+    of its timed runs). The load column gives the 1-minute load average (the benchmark's own
+    runs included) and, for such a ratio, the other work seen (`others_load`, in cores)."""
     word = verdict(ok)
-    if needs_idle and (busy or overloaded()):
-        word = "MISS-UNRELIABLE"
+    others = None
+    if needs_idle:
+        others = others_load()
+        if busy or others > OTHERS_LIMIT:
+            word = "MISS-UNRELIABLE"
     one = os.getloadavg()[0]
-    print(f"AIM | {name} | {measured} | load {one:.1f} on {os.cpu_count()} cores | {word}", flush=True)
+    seen = "" if others is None else f", other work {others:.2f} cores"
+    print(f"AIM | {name} | {measured} | load {one:.1f} on {os.cpu_count()} cores{seen} | {word}", flush=True)
     return word
