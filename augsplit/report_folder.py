@@ -351,9 +351,7 @@ def _write_in(fd: int, name: str, data: bytes, folder: Path) -> None:
     synced, renamed over the old one (the folder's own entries: never through a link), the
     folder synced. Where something other than a regular file has come to hold the name, it is
     refused and left as it is. A storage error is a one-line DatasetError naming the file."""
-    st = _lstat(fd, name)
-    if st is not None and not stat.S_ISREG(st.st_mode):
-        raise DatasetError("exists and is not a regular file; give another --out", where=str(folder / name))
+    _refuse_unless_file(fd, name, folder)
     tmp = temporary_name(Path(name)).name
     try:
         tfd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0),
@@ -363,6 +361,7 @@ def _write_in(fd: int, name: str, data: bytes, folder: Path) -> None:
                 f.write(data)
                 f.flush()
                 os.fsync(f.fileno())
+            _refuse_unless_file(fd, name, folder)  # again: a link may have come to hold the name meanwhile
             os.replace(tmp, name, src_dir_fd=fd, dst_dir_fd=fd)
         except BaseException:
             with suppress(OSError):
@@ -372,3 +371,10 @@ def _write_in(fd: int, name: str, data: bytes, folder: Path) -> None:
         raise os_error(exc, folder / name) from None
     with suppress(OSError):  # file systems that cannot sync a folder
         os.fsync(fd)
+
+
+def _refuse_unless_file(fd: int, name: str, folder: Path) -> None:
+    """A one-line DatasetError where something other than a regular file holds `name`."""
+    st = _lstat(fd, name)
+    if st is not None and not stat.S_ISREG(st.st_mode):
+        raise DatasetError("exists and is not a regular file; give another --out", where=str(folder / name))

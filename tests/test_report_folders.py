@@ -619,3 +619,26 @@ def test_a_report_folder_writes_only_its_run_s_names(tmp_path):
         with pytest.raises(ValueError):
             out.write("../escape.json", "{}")
     assert not (tmp_path / "escape.json").exists()
+
+
+def test_a_link_put_at_a_report_s_name_while_it_is_written_is_kept(tmp_path, monkeypatch):
+    import os
+
+    from augsplit.report_folder import report_set
+
+    out, target = tmp_path / "r", tmp_path / "target.txt"
+    target.write_text("the user's")
+    real_fsync = os.fsync
+
+    def fsync(fd):  # the report written whole, then a link appears at its name before the rename
+        if os.readlink(f"/proc/self/fd/{fd}").rsplit("/", 1)[-1].startswith(".score.json.tmp-"):
+            os.symlink(target, out / "score.json")
+        return real_fsync(fd)
+
+    with pytest.raises(DatasetError, match="not a regular file"):
+        with report_set(out, "score", ["score.json"]) as f:
+            monkeypatch.setattr(os, "fsync", fsync)
+            f.write("score.json", "{}")
+    monkeypatch.undo()
+    assert (out / "score.json").is_symlink() and target.read_text() == "the user's"  # was: replaced by the report
+    assert not [p for p in os.listdir(out) if ".tmp-" in p]
