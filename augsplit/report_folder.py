@@ -67,6 +67,8 @@ def check_report_folder(out, names, inputs=()) -> Path:
                 and Path(os.path.realpath(p)).is_relative_to(os.path.realpath(src)):
             raise DatasetError(f"lies inside the input folder {src}, where the report would be read as part of "
                                "the input next time; give a folder outside it", where=str(p))
+    if p.is_dir() and not p.is_symlink():  # a run writing reports there now: refused before this one's work
+        _refuse_if_busy(p)
     record = _read_list(p)
     listed = set(record.files)
     earlier = None if not record.exists else set()  # a list is the whole record; without one, the JSON of the reports
@@ -111,6 +113,21 @@ class ReportFolder:
         return self.path / name
 
 
+BUSY = "another augsplit run is writing reports in this folder; wait for it to end or give another --out"
+
+
+def _refuse_if_busy(folder: Path) -> None:
+    """One-line DatasetError BUSY if a run holds the folder's lock now (taken and let go)."""
+    try:
+        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+    except OSError:
+        return  # report_set says why it cannot open the folder
+    try:
+        lock_folder(fd, folder, BUSY)
+    finally:
+        os.close(fd)
+
+
 @contextmanager
 def report_set(out, command: str, names, inputs=()):
     """The folder to write one run of `command`'s report files `names` in (a `ReportFolder`):
@@ -131,8 +148,7 @@ def report_set(out, command: str, names, inputs=()):
     except OSError as exc:
         raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
     try:
-        lock_folder(fd, folder, "another augsplit run is writing reports in this folder; wait for it to end or "
-                    "give another --out")
+        lock_folder(fd, folder, BUSY)
         record = _read_list(folder, fd)
         # reports an earlier augsplit left, found by their JSON, join the first list as they are
         adopted = {n: _stamp(n, fd) for n in (() if record.exists else _earlier_reports(folder))}

@@ -587,6 +587,24 @@ def test_a_second_run_writing_reports_in_the_same_folder_is_refused(dataset, pre
     assert cli(*commands(dataset, predictions, out)[command]) in (0, 1)  # the lock went with the other run
 
 
+def test_a_busy_report_folder_is_refused_before_the_work(dataset, tmp_path, monkeypatch, capsys):
+    import fcntl
+    import os
+
+    import augsplit.preview as pv
+
+    out = tmp_path / "busy"
+    out.mkdir()
+    fd = os.open(out, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        monkeypatch.setattr(pv, "image_of", lambda *a, **k: pytest.fail("read an image in a busy report folder"))
+        assert cli("preview", dataset, "--out", out) == 2  # was: every image read, then refused
+        assert "another augsplit run is writing reports" in capsys.readouterr().err
+    finally:
+        os.close(fd)
+
+
 def test_reports_go_to_the_folder_checked_not_a_link_swapped_in_mid_run(dataset, tmp_path):
     import augsplit.preview as pv
 
