@@ -106,7 +106,8 @@ def preview(root: str | Path, out: str | Path | None = None, per_split: int = 24
                                                                for _, row in pick.iterrows()])
     cov = coverage(built, df)
     with report_set(out, "preview", [*sheets, COVERAGE_FILE], [root]) as out:
-        paths = [out.write(name, contact_sheet(built, shown, n_rows, columns)) for name, (n_rows, shown) in sheets.items()]
+        paths = [out.write(name, contact_sheet(built, shown, n_rows, columns))
+                 for name, (n_rows, shown) in sheets.items()]
         paths.append(out.write(COVERAGE_FILE, coverage_figure(built, cov)))
     return paths
 

@@ -119,13 +119,18 @@ BUSY = "another augsplit run is writing reports in this folder; wait for it to e
 def _refuse_if_busy(folder: Path) -> None:
     """One-line DatasetError BUSY if a run holds the folder's lock now (taken and let go)."""
     try:
-        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+        fd = _open_folder(folder)
     except OSError:
         return  # report_set says why it cannot open the folder
     try:
         lock_folder(fd, folder, BUSY)
     finally:
         os.close(fd)
+
+
+def _open_folder(folder: Path) -> int:
+    """A descriptor of the folder itself (never a link's target), to look its names up in."""
+    return os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
 
 
 @contextmanager
@@ -144,7 +149,7 @@ def report_set(out, command: str, names, inputs=()):
     names = set(names)
     folder = ensure_folder(check_report_folder(out, sorted(names), inputs))
     try:  # the folder checked, opened once: its names are looked up in it, never through a link swapped in
-        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+        fd = _open_folder(folder)
     except OSError as exc:
         raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
     try:

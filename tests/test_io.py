@@ -327,3 +327,35 @@ def test_write_bytes_new_without_hard_links_still_never_replaces(tmp_path, monke
     assert aio.write_bytes_new(target, b"first") is True
     assert aio.write_bytes_new(target, b"second") is False
     assert target.read_bytes() == b"first" and [p.name for p in tmp_path.iterdir()] == ["spec.json"]
+
+
+def test_a_folder_lock_is_one_line_when_held_and_nothing_where_there_are_no_locks(tmp_path, monkeypatch):
+    import errno
+    import fcntl
+
+    from augsplit.dataset.create import FolderLock
+    from augsplit.io import lock_folder
+
+    held = FolderLock(tmp_path)
+    held.take()
+    fd = os.open(tmp_path, os.O_RDONLY)
+    try:
+        with pytest.raises(DatasetError, match="busy here"):
+            lock_folder(fd, tmp_path, "busy here")
+    finally:
+        os.close(fd)
+        held.release()
+
+    def no_locks(fd, how):  # a file system without flock (some network file systems)
+        raise OSError(errno.ENOLCK, "no locks")
+
+    monkeypatch.setattr(fcntl, "flock", no_locks)
+    lock = FolderLock(tmp_path)
+    lock.take()  # not refused: runs are then not kept apart, as documented
+    first = lock.fd
+    lock.take()  # taken once: no second descriptor
+    assert lock.fd == first and os.fstat(first)
+    lock.release()
+    assert lock.fd is None
+    with pytest.raises(OSError):
+        os.fstat(first)  # the descriptor was closed, not leaked

@@ -15,10 +15,6 @@ COLOURS = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:
 STYLES = ("-", "--", ":", "-.")
 
 
-def figure(**kw):
-    return figures.figure(**kw)
-
-
 def img_tag(fig) -> str:
     return figures.img_tag(fig, dpi=90, bbox_inches="tight")
 
@@ -31,7 +27,7 @@ def _errorbar(ax, x, t, **kw) -> None:
 
 def plot_splits(results):
     splits = list(results[0][1].by_split["split"])
-    fig = figure(figsize=(max(4, 1.4 * len(splits) * len(results)), 3))
+    fig = figures.figure(figsize=(max(4, 1.4 * len(splits) * len(results)), 3))
     ax = fig.subplots()
     w = 0.8 / len(results)
     for j, (label, r) in enumerate(results):
@@ -68,7 +64,7 @@ def _distance_panel(ax, name, results) -> None:
 def plot_distance(results):
     names = list(dict.fromkeys(a for _, r in results for a in r.distance.loc[r.distance["held_out_along"], "axis"]))
     names = names or list(dict.fromkeys(a for _, r in results for a in r.distance["axis"]))
-    fig = figure(figsize=(4 * len(names), 3.2))
+    fig = figures.figure(figsize=(4 * len(names), 3.2))
     axs = fig.subplots(1, len(names), squeeze=False)
     for ax, name in zip(axs[0], names):
         _distance_panel(ax, name, results)
@@ -120,7 +116,7 @@ def plot_values(results):
     names = list(dict.fromkeys(a for _, r in results for a in r.by_value["axis"]))
     ncol = min(3, len(names))
     nrow = math.ceil(len(names) / ncol)
-    fig = figure(figsize=(4.2 * ncol, 3 * nrow))
+    fig = figures.figure(figsize=(4.2 * ncol, 3 * nrow))
     axs = fig.subplots(nrow, ncol, squeeze=False)
     for ax, name in zip(axs.ravel(), names):
         _value_panel(ax, name, results)

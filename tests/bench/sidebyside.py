@@ -108,19 +108,13 @@ def others_load(window: float = 0.5) -> float:
     return max(0.0, others)
 
 
-def overloaded() -> bool:
-    """Whether other work took more than OTHERS_LIMIT cores now (`others_load`): a ratio
-    between runs that compete for cores, measured so, says nothing about the code."""
-    return others_load() > OTHERS_LIMIT
-
-
 def aim(name: str, measured: str, ok: bool, *, needs_idle: bool = False, busy: bool = False) -> str:
     """Print one aim as `AIM | name | measured | load | PASS or MISS` and return the verdict.
 
     With `needs_idle` (a ratio between runs that compete for cores, such as 2 workers vs 1),
     a measurement taken while other work competed for the cores is reported as
-    MISS-UNRELIABLE: other work now (`overloaded`), or `busy` (the caller saw it before one
-    of its timed runs). The load column gives the 1-minute load average (the benchmark's own
+    MISS-UNRELIABLE: other work now above OTHERS_LIMIT (`others_load`), or `busy` (the
+    caller saw it before one of its timed runs). The load column gives the 1-minute load average (the benchmark's own
     runs included) and, for such a ratio, the other work seen (`others_load`, in cores)."""
     word = verdict(ok)
     others = None
