@@ -450,19 +450,13 @@ def _yaml_problem(exc: yaml.YAMLError, p: Path) -> SpecError:
     return SpecError(f"not valid YAML: {problem}", where=where)
 
 
-def read_spec_file(path: str | Path) -> SpecFile:
+def read_spec_file(path: str | Path, text: str | None = None) -> SpecFile:
     """Safe YAML load (no object construction) with one-line errors naming file:line:column;
-    refuses files above MAX_SPEC_BYTES, alias expansion above MAX_YAML_NODES and duplicate keys."""
+    refuses files above MAX_SPEC_BYTES, alias expansion above MAX_YAML_NODES and duplicate keys.
+    With `text`, the file's text as its caller read it (errors still name `path`)."""
     p = Path(path)
-    if not p.is_file():  # also refuses FIFOs and devices, which could block or never end
-        raise SpecError("no such file" if not p.exists() else "not a file", where=str(p))
-    try:
-        if p.stat().st_size > L.MAX_SPEC_BYTES:
-            raise SpecError(f"the file is {p.stat().st_size:,} bytes; a spec may have at most "
-                            f"{L.MAX_SPEC_BYTES:,} (limits.MAX_SPEC_BYTES)", where=str(p))
-        text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SpecError(f"cannot read: {exc}", where=str(p)) from None
+    if text is None:
+        text = _spec_text(p)
     loader = yaml.SafeLoader(text)
     try:
         node = loader.get_single_node()
@@ -480,9 +474,22 @@ def read_spec_file(path: str | Path) -> SpecFile:
         loader.dispose()
 
 
-def read_yaml(path: str | Path) -> Any:
-    """The parsed YAML of a file (see read_spec_file for what is refused)."""
-    return read_spec_file(path).data
+def _spec_text(p: Path) -> str:
+    if not p.is_file():  # also refuses FIFOs and devices, which could block or never end
+        raise SpecError("no such file" if not p.exists() else "not a file", where=str(p))
+    try:
+        if p.stat().st_size > L.MAX_SPEC_BYTES:
+            raise SpecError(f"the file is {p.stat().st_size:,} bytes; a spec may have at most "
+                            f"{L.MAX_SPEC_BYTES:,} (limits.MAX_SPEC_BYTES)", where=str(p))
+        return p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SpecError(f"cannot read: {exc}", where=str(p)) from None
+
+
+def read_yaml(path: str | Path, text: str | None = None) -> Any:
+    """The parsed YAML of a file, or of its `text` read by the caller (see read_spec_file for
+    what is refused)."""
+    return read_spec_file(path, text).data
 
 
 def load_spec(path: str | Path) -> tuple[Spec, Path]:

@@ -41,7 +41,7 @@ def audit_annotated(source, splits, spec_path=None, pairs=None, thresholds: dict
         raise DatasetError("no boxes found: a table needs box columns (see --boxes)", where=str(source))
     data = audit_input(objs, read_assignment(splits, objs), plan, ref_size)
     wanted = _wanted_pairs(plan, pairs, list(dict.fromkeys(data.table["split"])), splits)
-    image_loader, notes = _image_loader(data.image_paths)
+    image_loader, notes = _image_loader(data.image_paths, data.image_root)
 
     base = _thresholds(plan, thresholds)
     results = []
@@ -87,9 +87,10 @@ def _wanted_pairs(plan, pairs, labelled: list, splits) -> list:
     return wanted
 
 
-def _image_loader(paths):
-    """Objects' images, decoded once per file while neighbouring rows share it. No image file
-    at all: no loader (near-duplicates are skipped, with a note); some missing: an error."""
+def _image_loader(paths, root):
+    """Objects' images, decoded once per file while neighbouring rows share it, each read
+    inside the dataset's folder `root` (inputs.read_image). No image file at all: no loader
+    (near-duplicates are skipped, with a note); some missing: an error."""
     exists = {p: p is not None and p.is_file() for p in set(paths)}
     found = [p for p, ok in exists.items() if ok]
     if not found:
@@ -104,6 +105,6 @@ def _image_loader(paths):
 
     @lru_cache(maxsize=32)
     def image(path):
-        return read_image(path.parent, path.name)  # a regular file, read with the size limit
+        return read_image(root, path.relative_to(root).as_posix())  # a regular file, with the size limit
 
     return (lambda i: image(paths[int(i)])), []

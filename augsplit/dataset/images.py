@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import os
 import stat
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 
@@ -111,31 +112,41 @@ class Box:
     """A folder as a closed box for the relative paths a table names (see the module
     docstring). Each folder on the way is resolved once per box; the file itself is checked
     with lstat before it is opened (no symbolic link, FIFO or device is ever opened through
-    it) and again with fstat after."""
+    it) and, once open, again: fstat says it is a regular file, and the name the kernel gives
+    the open file (`opened_path`) must lie inside the box, so a folder on the way swapped for
+    a link out between the check and the open is caught rather than read through.
 
-    def __init__(self, root: str | Path):
+    `what` names the files in messages ("image" for a dataset's images; "label", "XML" ...)."""
+
+    def __init__(self, root: str | Path, what: str = "image"):
         self.root = str(root)
         self.base = os.path.realpath(root)
+        self.what = what
         self._dirs: set[str] = set()
 
     def _lexical(self, rel, where) -> PurePosixPath:
         if not isinstance(rel, str) or not rel:
-            raise ImageError("the row names no image file", where=where)
+            raise ImageError(f"the row names no {self.what} file", where=where)
         p = PurePosixPath(rel)
         if p.is_absolute() or rel.startswith("~") or ".." in p.parts or "\\" in rel or "\x00" in rel:
-            raise ImageError(f"image path {rel!r} leaves the dataset folder; it was not read", where=where)
+            raise ImageError(f"{self.what} path {rel!r} leaves the dataset folder; it was not read", where=where)
         return p
 
     def _inside(self, real: str) -> bool:
         return real == self.base or real.startswith(self.base.rstrip(os.sep) + os.sep)
+
+    def _out(self, rel, where) -> ImageError:
+        return ImageError(f"{self.what} path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+                          where=where)
 
     def resolve(self, rel, where: str | None = None) -> Path:
         """The real path of the regular file `rel` names inside the box, every link resolved."""
         self._lexical(rel, where)
         real = os.path.realpath(os.path.join(self.base, rel))
         if not self._inside(real):
-            raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
-                             where=where)
+            raise self._out(rel, where)
+        if not os.path.exists(real) and os.path.islink(os.path.join(self.base, rel)):
+            raise ImageError(f"{self.what} path {rel!r} is a link to nothing (or a loop of links)", where=where)
         self._check_mode(self._stat(os.stat, real, rel, where), rel, where)
         return Path(real)
 
@@ -143,29 +154,29 @@ class Box:
         try:
             return how(path)
         except FileNotFoundError:
-            raise ImageError(f"image file {os.path.join(self.root, rel)} is missing", where=where) from None
+            raise ImageError(f"{self.what} file {os.path.join(self.root, rel)} is missing", where=where) from None
         except OSError as exc:
-            raise ImageError(f"image file {os.path.join(self.root, rel)} cannot be read: {exc.strerror}",
+            raise ImageError(f"{self.what} file {os.path.join(self.root, rel)} cannot be read: {exc.strerror}",
                              where=where) from None
 
-    @staticmethod
-    def _check_mode(st, rel, where, limit: int | None = None) -> None:
+    def _check_mode(self, st, rel, where, limit: int | None = None) -> None:
         if not stat.S_ISREG(st.st_mode):
-            raise ImageError(f"image path {rel!r} is not a regular file; it was not read", where=where)
+            raise ImageError(f"{self.what} path {rel!r} is not a regular file; it was not read", where=where)
         if limit is not None and st.st_size > limit:
-            raise ImageError(f"image file {rel} has {st.st_size} bytes, more than the {limit} any image of this "
-                             "canvas may take; it was not read", where=where)
+            raise ImageError(f"{self.what} file {rel} has {st.st_size} bytes, more than the {limit} any {self.what} "
+                             f"{'of this canvas ' if self.what == 'image' else ''}may take; it was not read",
+                             where=where)
 
-    def read(self, rel, limit: int, where: str | None = None) -> bytes:
-        """The bytes of the regular file `rel` inside the box, at most `limit` of them."""
+    @contextmanager
+    def open(self, rel, limit: int, where: str | None = None):
+        """The regular file `rel` inside the box, open for binary reading and checked as open
+        (see the class); reading more than `limit` bytes from it is the caller's to refuse."""
         p = self._lexical(rel, where)
         folder = str(p.parent)
         if folder not in self._dirs:
-            real = os.path.realpath(os.path.join(self.base, folder))
-            if not self._inside(real):
-                raise ImageError(f"image path {rel!r} is a symbolic link out of the dataset folder; it was not read",
-                                 where=where)
-            if os.path.isdir(real):  # a folder that is not there yet is checked again next time
+            if not self._inside(os.path.realpath(os.path.join(self.base, folder))):
+                raise self._out(rel, where)
+            if os.path.isdir(os.path.join(self.base, folder)):  # a folder not there yet is checked next time
                 self._dirs.add(folder)
         path = os.path.join(self.base, rel)
         st = self._stat(os.lstat, path, rel, where)
@@ -177,13 +188,40 @@ class Box:
             # O_NONBLOCK: were the file swapped for a FIFO since the check, open must not wait
             fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
         except OSError as exc:
-            raise ImageError(f"image file {rel} cannot be opened: {exc.strerror}", where=where) from None
+            raise ImageError(f"{self.what} file {rel} cannot be opened: {exc.strerror}", where=where) from None
         with os.fdopen(fd, "rb") as f:
-            self._check_mode(os.fstat(f.fileno()), rel, where, limit)
+            self._check_mode(os.fstat(fd), rel, where, limit)
+            real = opened_path(fd, path)
+            if real is None or not self._inside(real):
+                raise ImageError(f"{self.what} file {rel} was moved, or a folder on its way linked, out of the "
+                                 "dataset folder while it was opened; it was not read", where=where)
+            yield f
+
+    def read(self, rel, limit: int, where: str | None = None) -> bytes:
+        """The bytes of the regular file `rel` inside the box, at most `limit` of them."""
+        with self.open(rel, limit, where) as f:
             data = f.read(limit + 1)
         if len(data) > limit:
-            raise ImageError(f"image file {rel} grew beyond {limit} bytes while read", where=where)
+            raise ImageError(f"{self.what} file {rel} grew beyond {limit} bytes while read", where=where)
         return data
+
+
+def opened_path(fd: int, path: str) -> str | None:
+    """The real path of the file open at `fd`, as the kernel names it (Linux: /proc/self/fd,
+    which names the file opened, whatever happened to the names on its way since); elsewhere
+    `path` resolved, if that is still the same file (device and inode), else None."""
+    try:
+        real = os.readlink(f"/proc/self/fd/{fd}")
+        if real.startswith("/"):  # a file's path; not "pipe:[...]" or "anon_inode:..."
+            return real  # a file removed since it was opened reads "... (deleted)": not inside anything
+    except OSError:
+        pass
+    real = os.path.realpath(path)
+    try:
+        st, opened = os.stat(real), os.fstat(fd)
+    except OSError:
+        return None
+    return real if (st.st_dev, st.st_ino) == (opened.st_dev, opened.st_ino) else None
 
 
 def resolve_inside(root: Path, rel, where: str | None = None) -> Path:

@@ -10,6 +10,7 @@ the image, as it does for a model that resizes its inputs.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Callable
 
 import numpy as np
@@ -27,7 +28,8 @@ class AuditInput:
     canvas_hw: tuple[int, int]
     mask_loader: Callable[[int], np.ndarray | None]
     mask_rows: np.ndarray  # rows whose footprint is a mask (the others are their box)
-    image_paths: np.ndarray  # per row: its image file (Path), or None when the source names none
+    image_paths: np.ndarray  # per row: its image file (Path, links resolved), or None when the source names none
+    image_root: Path  # the real folder they lie in (image_path checked it), which they are read inside
     notes: tuple[str, ...] = ()
 
     def __repr__(self) -> str:
@@ -71,7 +73,8 @@ def audit_input(objs: Objects, image_split, plan=None, ref_size: float | None = 
     mask_rows = np.flatnonzero([s is not None and not (isinstance(s, float) and np.isnan(s)) for s in segs])
     paths = np.array([image_path(objs.root, f, str(objs.path)) if f else None for f in o["file"].fillna("").astype(str)],
                      dtype=object)
-    return AuditInput(table, axes, hw, _MaskLoader(objs, segs, box, sx, sy, hw), mask_rows, paths, tuple(notes))
+    return AuditInput(table, axes, hw, _MaskLoader(objs, segs, box, sx, sy, hw), mask_rows, paths,
+                      Path(objs.root).resolve(), tuple(notes))
 
 
 def _spec_parameters(table: pd.DataFrame, objs: Objects, plan, ref_size, notes: list[str]) -> dict:

@@ -189,21 +189,14 @@ def check_boxes(df: pd.DataFrame, where: str) -> None:
         _refuse(df, bad, f"images larger than {MAX_PIXELS} px", where)
 
 
-def inside_file(root: Path, p: Path) -> Path:
-    """`p` if, links followed, it is a regular file inside the folder `root` (an annotation
-    file, label file or image a dataset names); else a one-line DatasetError naming it:
-    augsplit reads nothing outside the folders it is given."""
-    base = Path(root).resolve()
-    try:
-        real = Path(p).resolve(strict=True)
-    except (OSError, RuntimeError):  # a broken link or a loop
-        raise DatasetError("is a link to nothing (or a loop of links)", where=str(p)) from None
-    if not real.is_relative_to(base):
-        raise DatasetError(f"is a link out of the dataset folder {base} (to {real}); augsplit reads only "
-                           "inside the folders it is given", where=str(p))
-    if not real.is_file():
-        raise DatasetError("is not a regular file (a folder, FIFO or device)", where=str(p))
-    return Path(p)
+def read_file(root: Path, p: Path, limit: int, what: str) -> bytes:
+    """The bytes of `p`, a file a dataset names inside its folder `root` (links that stay
+    inside followed), read through a closed Box (dataset/images.py): a regular file inside
+    the folder, checked before it is opened and again once open, at most `limit` bytes; else
+    a one-line DatasetError naming it. augsplit reads nothing outside the folders it is given."""
+    from ..dataset.images import Box
+
+    return Box(root, what).read(Path(p).relative_to(root).as_posix(), limit, where=str(p))
 
 
 def image_path(root: Path, name: str, where: str) -> Path:

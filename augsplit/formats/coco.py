@@ -146,7 +146,8 @@ def _sizes_from_files(img: pd.DataFrame, root: Path) -> None:
     w = pd.to_numeric(img["width"], errors="coerce")
     h = pd.to_numeric(img["height"], errors="coerce")
     for i in np.flatnonzero((w.isna() | h.isna()).to_numpy()):
-        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"))
+        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"),
+                                        Path(root).resolve())
     img["width"], img["height"] = w.astype(float), h.astype(float)
 
 

@@ -3,8 +3,6 @@ decoding its pixels; other formats are decoded once with OpenCV."""
 
 from __future__ import annotations
 
-import os
-import stat
 import struct
 from pathlib import Path
 
@@ -13,21 +11,28 @@ from ..errors import DatasetError
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".gif", ".webp", ".tif", ".tiff")
 
 
-def image_size(path: str | Path) -> tuple[int, int]:
-    """(width, height) in px; DatasetError naming the file if it is missing or unreadable."""
+def image_size(path: str | Path, root: str | Path | None = None) -> tuple[int, int]:
+    """(width, height) in px of an image file inside the folder `root` (default: its own
+    folder), read through a closed Box (dataset/images.py: a regular file inside the folder,
+    checked again once open); DatasetError naming the file if it is missing or unreadable."""
+    from ..dataset.images import FOREIGN_MAX_BYTES, Box
+
     p = Path(path)
+    root = p.parent if root is None else Path(root)
     try:
-        if not stat.S_ISREG(os.stat(p).st_mode):  # a FIFO would block the read for ever
-            raise DatasetError("is not a regular file (a folder, FIFO or device)", where=str(p))
-        with open(p, "rb") as f:
+        with Box(root).open(p.relative_to(root).as_posix(), FOREIGN_MAX_BYTES, where=str(p)) as f:
             head = f.read(32)
             size = _from_header(head, f)
+            if size is None:  # decoded whole: read again from its start
+                f.seek(0)
+                data = f.read(FOREIGN_MAX_BYTES + 1)
     except OSError as exc:
         raise DatasetError(f"cannot read the image: {exc.strerror or exc}", where=str(p)) from None
     if size is None:
         import cv2
+        import numpy as np
 
-        img = cv2.imread(str(p), cv2.IMREAD_UNCHANGED)
+        img = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED) if data else None
         if img is None:
             raise DatasetError("not an image file OpenCV can read", where=str(p))
         size = (img.shape[1], img.shape[0])

@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, inside_file, object_frame
+from .boxes import Objects, check_boxes, object_frame, read_file
 
 MAX_XML_BYTES = 16 << 20
 
@@ -31,13 +31,13 @@ def read_voc(path: str | Path) -> Objects:
         raise DatasetError("a VOC dataset is a folder of XML files (or one with Annotations/)", where=str(p))
     ann = p / "Annotations" if (p / "Annotations").is_dir() else p
     images_dir = p / "JPEGImages" if (p / "JPEGImages").is_dir() else ann
-    files = [inside_file(p, f) for f in sorted(ann.glob("*.xml"))]
+    files = sorted(ann.glob("*.xml"))
     if not files:
         raise DatasetError("no XML files found", where=str(ann))
     images, cols = [], {c: [] for c in ("image_id", "file", "width", "height", "label", "object_id",
                                         "bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")}
     for f in files:
-        image_id, name, w, h, objs = _parse(f)
+        image_id, name, w, h, objs = _parse(p, f)
         file = _image_file(p, images_dir, name, f) if name else ""
         images.append((image_id, file, w, h))
         for k, (label, (x0, y0, x1, y1)) in enumerate(objs):
@@ -58,12 +58,11 @@ def _image_file(root: Path, images_dir: Path, name: str, f: Path) -> str:
     return q.relative_to(root).as_posix()
 
 
-def _parse(f: Path):
+def _parse(folder: Path, f: Path):
     where = str(f)
-    if f.stat().st_size > MAX_XML_BYTES:
-        raise DatasetError(f"XML file larger than {MAX_XML_BYTES >> 20} MiB", where=where)
+    data = read_file(folder, f, MAX_XML_BYTES, "XML")
     try:
-        root = ET.parse(f).getroot()
+        root = ET.fromstring(data)
     except ET.ParseError as exc:
         raise DatasetError(f"not valid XML: {exc}", where=where) from None
     if root.tag != "annotation":

@@ -15,8 +15,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .. import limits as L
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, inside_file, object_frame, to_px, to_xyxy
+from .boxes import Objects, check_boxes, object_frame, read_file, to_px, to_xyxy
 from .imagesize import IMAGE_SUFFIXES, image_size
 
 NAME_FILES = ("classes.txt", "obj.names")
@@ -35,8 +36,7 @@ def read_yolo(path: str | Path) -> Objects:
         raise DatasetError("a YOLO dataset is a folder (with labels/ and images/)", where=str(p))
     root, labels_dir, images_dir = _layout(p)
     names = _class_names(root)
-    pairs = {rel: (lab if lab is None else inside_file(root, lab), img if img is None else inside_file(root, img))
-             for rel, (lab, img) in _pairs(root, labels_dir, images_dir).items()}
+    pairs = _pairs(root, labels_dir, images_dir)
     if not pairs:
         raise DatasetError("no label files (*.txt) found", where=str(p))
     images, cols = [], {c: [] for c in ("image_id", "label", "object_id", "segmentation", "box")}
@@ -45,11 +45,11 @@ def read_yolo(path: str | Path) -> Objects:
         if img is None:
             raise DatasetError("no image file with this name (looked for " + ", ".join(IMAGE_SUFFIXES) + ")",
                                where=str(images_dir / rel) if labels_dir is not None else str(lab))
-        w, h = image_size(img)
+        w, h = image_size(img, root)
         image_id = rel.as_posix()
         images.append((image_id, img.relative_to(root).as_posix(), w, h))
         if lab is not None:
-            _add_objects(cols, lab, image_id, names, w, h)
+            _add_objects(cols, root, lab, image_id, names, w, h)
     img_df = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
     n = len(cols["box"])
     size = img_df.set_index("image_id").loc[cols["image_id"], ["file", "width", "height"]] if n else None
@@ -78,9 +78,9 @@ def _pairs(root: Path, labels_dir: Path | None, images_dir: Path | None) -> dict
     return pairs
 
 
-def _add_objects(cols: dict[str, list], lab: Path, image_id: str, names: dict, w, h) -> None:
+def _add_objects(cols: dict[str, list], root: Path, lab: Path, image_id: str, names: dict, w, h) -> None:
     """Append one label file's objects (boxes as fractions; polygons also in px) to `cols`."""
-    for line_no, cls, coords in _lines(lab):
+    for line_no, cls, coords in _lines(root, lab):
         cols["image_id"].append(image_id)
         cols["label"].append(names.get(cls, cls))
         cols["object_id"].append(line_no)
@@ -139,7 +139,7 @@ def _image_for(stem: Path) -> Path | None:
     for suf in IMAGE_SUFFIXES:
         for s in (suf, suf.upper()):
             q = stem.with_name(stem.name + s)
-            if q.is_file() or q.is_symlink():  # a link is judged by the reader (inside_file)
+            if q.is_file() or q.is_symlink():  # a link is judged by the reader (read_file)
                 return q
     return None
 
@@ -151,7 +151,7 @@ def _class_names(root: Path) -> dict[str, str]:
         if os.path.lexists(f):
             from ..spec import read_yaml
 
-            data = read_yaml(inside_file(root, f))
+            data = read_yaml(f, _text(root, f, L.MAX_SPEC_BYTES, "YAML"))
             names = data.get("names") if isinstance(data, dict) else None
             if isinstance(names, list):
                 return {str(i): str(v) for i, v in enumerate(names)}
@@ -161,23 +161,24 @@ def _class_names(root: Path) -> dict[str, str]:
     for name in NAME_FILES:
         f = root / name
         if os.path.lexists(f):
-            try:
-                lines = [s.strip() for s in inside_file(root, f).read_text(encoding="utf-8").splitlines()]
-            except UnicodeDecodeError:
-                raise DatasetError("not a UTF-8 text file of class names, one per line", where=str(f)) from None
+            lines = [s.strip() for s in _text(root, f, MAX_LABEL_BYTES, "class names",
+                                               "not a UTF-8 text file of class names, one per line").splitlines()]
             return {str(i): s for i, s in enumerate(x for x in lines if x)}
     return {}
 
 
-def _lines(lab: Path):
+def _text(root: Path, f: Path, limit: int, what: str, not_text: str = "not a UTF-8 text file") -> str:
+    """A text file of the dataset, read inside its folder (`read_file`)."""
+    try:
+        return read_file(root, f, limit, what).decode("utf-8")
+    except UnicodeDecodeError:
+        raise DatasetError(not_text, where=str(f)) from None
+
+
+def _lines(root: Path, lab: Path):
     """(line number, class as written, coordinates) of each object line of a label file."""
     where = str(lab)
-    if lab.stat().st_size > MAX_LABEL_BYTES:
-        raise DatasetError(f"label file larger than {MAX_LABEL_BYTES >> 20} MiB", where=where)
-    try:
-        text = lab.read_text(encoding="utf-8")
-    except UnicodeDecodeError:
-        raise DatasetError("not a text file", where=where) from None
+    text = _text(root, lab, MAX_LABEL_BYTES, "label", "not a text file")
     for k, line in enumerate(text.splitlines(), start=1):
         parts = line.split()
         if not parts:

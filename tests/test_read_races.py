@@ -1,0 +1,166 @@
+"""Files a dataset names are checked where they are, and again once open: a folder on the way
+swapped for a link out of the dataset between the check and the open is refused, never read
+through. Measured before: every reader here returned the bytes of the file outside (the
+manifest images' Box opened with O_NOFOLLOW, which guards only the last name of the path; the
+annotation readers checked a path, then read it by name).
+
+The swap is made by an audit hook on the "open" event (PEP 578: raised before the file is
+opened, by the built-in open and by os.open alike), so it lands between any check and the
+open whichever way a reader opens its files."""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+
+from augsplit.dataset.images import Box, ImageError, opened_path
+from augsplit.errors import DatasetError
+
+_ARMED: list = []  # (path suffix, folder to swap, where its link points); emptied once fired
+
+
+def _hook(event, args):
+    if event != "open" or not _ARMED or not isinstance(args[0], (str, bytes, os.PathLike)):
+        return
+    suffix, folder, outside = _ARMED[0]
+    if os.fsdecode(args[0]).endswith(suffix):
+        _ARMED.clear()
+        folder.rename(folder.with_name(folder.name + ".moved"))
+        folder.symlink_to(outside, target_is_directory=True)
+
+
+sys.addaudithook(_hook)  # hooks cannot be removed: this one does nothing unless a test arms it
+
+
+@pytest.fixture
+def swap():
+    """swap(suffix, folder, outside): when a file whose path ends in `suffix` is next opened,
+    `folder` is first moved aside and replaced by a link to `outside`."""
+    def arm(suffix: str, folder: Path, outside: Path) -> None:
+        _ARMED[:] = [(suffix, folder, outside)]
+
+    yield arm
+    _ARMED.clear()
+
+
+def _pair(tmp_path, rel: str, inside: bytes, outside: bytes) -> tuple[Path, Path]:
+    """A dataset folder holding `rel`, and a folder outside it holding a file of the same name
+    with other bytes. Returns (dataset root, outside folder)."""
+    root, out = tmp_path / "ds", tmp_path / "elsewhere"
+    (root / rel).parent.mkdir(parents=True)
+    (root / rel).write_bytes(inside)
+    out.mkdir()
+    (out / Path(rel).name).write_bytes(outside)
+    return root, out
+
+
+def test_a_manifest_image_whose_folder_is_swapped_for_a_link_out_while_opened_is_not_read(tmp_path, swap):
+    root, out = _pair(tmp_path, "images/train/a.png", b"inside", b"SECRET")
+    assert Box(root).read("images/train/a.png", 100) == b"inside"
+    swap("images/train/a.png", root / "images" / "train", out)
+    with pytest.raises(ImageError, match="out of the dataset folder"):
+        Box(root).read("images/train/a.png", 100)  # before: b"SECRET"
+
+
+def test_a_yolo_label_whose_folder_is_swapped_while_opened_is_not_read(tmp_path, swap):
+    from augsplit.formats.yolo import read_yolo
+
+    root, out = _pair(tmp_path, "labels/part/9.txt", b"0 0.5 0.5 0.1 0.1\n", b"0 0.9 0.9 0.1 0.1\n")
+    (root / "images" / "part").mkdir(parents=True)
+    cv2.imwrite(str(root / "images" / "part" / "9.png"), np.zeros((10, 10), np.uint8))
+    assert len(read_yolo(root).objects) == 1
+    swap("labels/part/9.txt", root / "labels" / "part", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        read_yolo(root)  # before: the outside label's box (0.9, 0.9)
+
+
+def test_a_yolo_image_header_whose_folder_is_swapped_while_opened_is_not_read(tmp_path, swap):
+    from augsplit.formats.yolo import read_yolo
+
+    root, out = _pair(tmp_path, "labels/part/9.txt", b"0 0.5 0.5 0.1 0.1\n", b"")
+    (root / "images" / "part").mkdir(parents=True)
+    cv2.imwrite(str(root / "images" / "part" / "9.png"), np.zeros((10, 10), np.uint8))
+    cv2.imwrite(str(out / "9.png"), np.zeros((77, 55), np.uint8))
+    assert read_yolo(root).images[["width", "height"]].values.tolist() == [[10, 10]]
+    swap("images/part/9.png", root / "images" / "part", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        read_yolo(root)  # before: the outside image's size, 55 x 77
+
+
+def test_a_voc_file_whose_folder_is_swapped_while_opened_is_not_read(tmp_path, swap):
+    from augsplit.formats.voc import read_voc
+
+    xml = ("<annotation><filename>a.png</filename><size><width>100</width><height>100</height></size>"
+           "<object><name>{}</name><bndbox><xmin>10</xmin><ymin>10</ymin><xmax>20</xmax><ymax>20</ymax>"
+           "</bndbox></object></annotation>")
+    root, out = _pair(tmp_path, "Annotations/a.xml", xml.format("car").encode(), xml.format("secret").encode())
+    assert read_voc(root).objects["label"].tolist() == ["car"]
+    swap("Annotations/a.xml", root / "Annotations", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        read_voc(root)  # before: the label 'secret'
+
+
+def test_an_annotated_image_read_for_the_audit_whose_folder_is_swapped_is_not_read(tmp_path, swap):
+    from augsplit.audit.annotated import _image_loader
+
+    root, out = _pair(tmp_path, "images/a.png", b"", b"")
+    cv2.imwrite(str(root / "images" / "a.png"), np.full((8, 8), 10, np.uint8))
+    cv2.imwrite(str(out / "a.png"), np.full((8, 8), 200, np.uint8))
+    real = root.resolve()
+    load, notes = _image_loader(np.array([real / "images" / "a.png"], dtype=object), real)
+    swap("images/a.png", root / "images", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        load(0)  # before: the outside image, all 200
+
+
+def test_image_size_reads_inside_the_folder_it_is_given(tmp_path, swap):
+    from augsplit.formats.imagesize import image_size
+
+    root, out = _pair(tmp_path, "im/a.png", b"", b"")
+    cv2.imwrite(str(root / "im" / "a.png"), np.zeros((12, 34), np.uint8))
+    cv2.imwrite(str(out / "a.png"), np.zeros((5, 6), np.uint8))
+    assert image_size(root / "im" / "a.png", root) == (34, 12)
+    swap("im/a.png", root / "im", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        image_size(root / "im" / "a.png", root)
+
+
+def test_image_size_of_a_format_without_a_known_header_is_decoded_from_the_bytes_read(tmp_path):
+    from augsplit.formats.imagesize import image_size
+
+    p = tmp_path / "a.tif"  # TIFF: not one of the headers read; OpenCV decodes it
+    assert cv2.imwrite(str(p), np.zeros((21, 13, 3), np.uint8))
+    assert image_size(p) == (13, 21)
+
+
+def test_opened_path_without_proc_compares_the_open_file_with_the_name(tmp_path, monkeypatch):
+    a, b = tmp_path / "a", tmp_path / "b"
+    a.write_bytes(b"a")
+    b.write_bytes(b"b")
+    monkeypatch.setattr(os, "readlink", lambda *args, **kw: (_ for _ in ()).throw(OSError("no /proc")))
+    fd = os.open(a, os.O_RDONLY)
+    try:
+        assert opened_path(fd, str(a)) == os.path.realpath(a)
+        os.replace(b, a)  # the name now holds another file than the one open
+        assert opened_path(fd, str(a)) is None
+    finally:
+        os.close(fd)
+
+
+def test_opened_path_names_the_open_file_after_its_name_moved(tmp_path):
+    if not os.path.isdir("/proc/self/fd"):
+        pytest.skip("no /proc/self/fd on this system")
+    (tmp_path / "d").mkdir()
+    a = tmp_path / "d" / "a"
+    a.write_bytes(b"a")
+    fd = os.open(a, os.O_RDONLY)
+    try:
+        (tmp_path / "d").rename(tmp_path / "e")
+        assert opened_path(fd, str(a)) == os.path.realpath(tmp_path / "e" / "a")  # the kernel's name for it
+    finally:
+        os.close(fd)
