@@ -164,3 +164,17 @@ def test_opened_path_names_the_open_file_after_its_name_moved(tmp_path):
         assert opened_path(fd, str(a)) == os.path.realpath(tmp_path / "e" / "a")  # the kernel's name for it
     finally:
         os.close(fd)
+
+
+def test_a_tar_shard_whose_folder_is_swapped_while_opened_is_not_read(tmp_path, swap):
+    from types import SimpleNamespace
+
+    from augsplit.dataset.tarstore import _open_in_box
+
+    root, out = _pair(tmp_path, "shards/train/part-000000.tar", b"inside", b"SECRET")
+    folder = SimpleNamespace(root=root, box=Box(root))
+    with _open_in_box(folder, "shards/train/part-000000.tar", "here") as f:
+        assert f.read() == b"inside"
+    swap("shards/train/part-000000.tar", root / "shards" / "train", out)
+    with pytest.raises(ImageError, match="shard archive .* out of the dataset folder"):
+        _open_in_box(folder, "shards/train/part-000000.tar", "here").__enter__()  # before: the outside bytes

@@ -10,6 +10,7 @@ verify and audit report it as a finding, loaders raise it.
 
 from __future__ import annotations
 
+import copy
 import hashlib
 import os
 import stat
@@ -124,6 +125,12 @@ class Box:
         self.what = what
         self._dirs: set[str] = set()
 
+    def naming(self, what: str) -> "Box":
+        """The same box (its checked folders shared) naming its files `what` in messages."""
+        other = copy.copy(self)
+        other.what = what
+        return other
+
     def _lexical(self, rel, where) -> PurePosixPath:
         if not isinstance(rel, str) or not rel:
             raise ImageError(f"the row names no {self.what} file", where=where)
@@ -168,9 +175,10 @@ class Box:
                              where=where)
 
     @contextmanager
-    def open(self, rel, limit: int, where: str | None = None):
+    def open(self, rel, limit: int | None, where: str | None = None):
         """The regular file `rel` inside the box, open for binary reading and checked as open
-        (see the class); reading more than `limit` bytes from it is the caller's to refuse."""
+        (see the class), refused above `limit` bytes (None: no bound); reading no more than
+        that from it is the caller's part."""
         p = self._lexical(rel, where)
         folder = str(p.parent)
         if folder not in self._dirs:
