@@ -457,7 +457,10 @@ def read_spec_file(path: str | Path, text: str | None = None) -> SpecFile:
     p = Path(path)
     if text is None:
         text = _spec_text(p)
-    loader = yaml.SafeLoader(text)
+    try:
+        loader = yaml.SafeLoader(text)  # its reader refuses control characters here, not later
+    except yaml.YAMLError as exc:
+        raise _yaml_problem(exc, p) from None
     try:
         node = loader.get_single_node()
         if node is None:

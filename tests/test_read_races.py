@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 
 import cv2
@@ -119,15 +120,16 @@ def test_an_annotated_image_read_for_the_audit_whose_folder_is_swapped_is_not_re
 
 
 def test_image_size_reads_inside_the_folder_it_is_given(tmp_path, swap):
+    from augsplit.formats.boxes import dataset_box
     from augsplit.formats.imagesize import image_size
 
     root, out = _pair(tmp_path, "im/a.png", b"", b"")
     cv2.imwrite(str(root / "im" / "a.png"), np.zeros((12, 34), np.uint8))
     cv2.imwrite(str(out / "a.png"), np.zeros((5, 6), np.uint8))
-    assert image_size(root / "im" / "a.png", root) == (34, 12)
+    assert image_size(root / "im" / "a.png", dataset_box(root)) == (34, 12)
     swap("im/a.png", root / "im", out)
     with pytest.raises(DatasetError, match="out of the dataset folder"):
-        image_size(root / "im" / "a.png", root)
+        image_size(root / "im" / "a.png", dataset_box(root))
 
 
 def test_image_size_of_a_format_without_a_known_header_is_decoded_from_the_bytes_read(tmp_path):
@@ -178,3 +180,89 @@ def test_a_tar_shard_whose_folder_is_swapped_while_opened_is_not_read(tmp_path, 
     swap("shards/train/part-000000.tar", root / "shards" / "train", out)
     with pytest.raises(ImageError, match="shard archive .* out of the dataset folder"):
         _open_in_box(folder, "shards/train/part-000000.tar", "here").__enter__()  # before: the outside bytes
+
+
+def _yolo(root: Path, names=("0", "1"), x: float = 0.5) -> Path:
+    (root / "labels").mkdir(parents=True)
+    (root / "images").mkdir()
+    for n in names:
+        (root / "labels" / f"{n}.txt").write_text(f"0 {x} 0.5 0.1 0.1\n")
+        cv2.imwrite(str(root / "images" / f"{n}.png"), np.zeros((10, 10), np.uint8))
+    return root
+
+
+def test_a_dataset_folder_swapped_for_a_link_between_two_files_is_not_read_on(tmp_path, monkeypatch):
+    """Every file of one read is judged against the folder as it was resolved when the read
+    began. Measured before: each file made its own box, which resolved the folder again, so
+    once the folder was swapped for a link the rest of the read came from outside."""
+    from augsplit.formats.yolo import read_yolo
+
+    root, out = _yolo(tmp_path / "ds"), _yolo(tmp_path / "elsewhere", x=0.9)
+    real_open = Box.open
+    closed = []
+
+    @contextmanager
+    def swap_after_the_first_file(self, *args, **kw):
+        with real_open(self, *args, **kw) as f:
+            yield f
+        closed.append(args[0])
+        if len(closed) == 1:  # the first file read and closed: the folder itself becomes a link out
+            root.rename(tmp_path / "ds.moved")
+            root.symlink_to(out, target_is_directory=True)
+
+    monkeypatch.setattr(Box, "open", swap_after_the_first_file)
+    with pytest.raises(DatasetError, match="out of the dataset folder"):
+        read_yolo(root)  # before: the boxes of the labels outside, at x = 0.9
+
+
+@pytest.mark.parametrize("name", ["~a", "a\\b"])
+def test_files_found_in_an_annotated_folder_are_taken_by_their_names(tmp_path, name):
+    """A YOLO or VOC folder's own files are named literally: a name beginning with `~` or
+    holding a backslash is a name (a manifest's paths may hold neither). Measured on the
+    commit before: refused as 'leaves the dataset folder'."""
+    from augsplit.formats.voc import read_voc
+    from augsplit.formats.yolo import read_yolo
+
+    got = read_yolo(_yolo(tmp_path / "y", names=(name,)))
+    assert got.images["image_id"].tolist() == [name]
+    voc = tmp_path / "voc"
+    voc.mkdir()
+    (voc / f"{name}.xml").write_text(
+        "<annotation><filename>a.png</filename><size><width>100</width><height>100</height></size><object>"
+        "<name>car</name><bndbox><xmin>10</xmin><ymin>10</ymin><xmax>20</xmax><ymax>20</ymax></bndbox></object>"
+        "</annotation>")
+    assert read_voc(voc).objects["label"].tolist() == ["car"]
+
+
+def test_a_large_image_of_an_annotated_folder_has_only_its_header_read(tmp_path):
+    """Measured on the commit before: an image file above 256 MiB was refused by its size,
+    though only its header is read."""
+    from augsplit.formats.yolo import read_yolo
+
+    root = _yolo(tmp_path / "y", names=("0",))
+    cv2.imwrite(str(root / "images" / "0.png"), np.zeros((20, 30), np.uint8))
+    with open(root / "images" / "0.png", "r+b") as f:
+        f.truncate(300 << 20)  # sparse: PNG readers stop at IEND; the header is what is read
+    assert read_yolo(root).images[["width", "height"]].values.tolist() == [[30, 20]]
+
+
+def test_an_image_decoded_whole_for_its_size_is_bounded(tmp_path, monkeypatch):
+    import augsplit.dataset.images as images
+    from augsplit.formats.imagesize import image_size
+
+    p = tmp_path / "a.tif"
+    assert cv2.imwrite(str(p), np.random.default_rng(0).integers(0, 255, (40, 40, 3), dtype=np.uint8))
+    assert image_size(p) == (40, 40)
+    monkeypatch.setattr(images, "FOREIGN_MAX_BYTES", p.stat().st_size - 1)
+    with pytest.raises(DatasetError, match="larger than"):
+        image_size(p)  # before: the first bytes only, decoded: "not an image file OpenCV can read"
+
+
+def test_a_yaml_file_with_a_control_character_is_one_line(tmp_path, capsys):
+    """Measured before: a NUL in a spec (or a YOLO data.yaml) printed a traceback."""
+    from augsplit.cli import main
+
+    (tmp_path / "nul.yaml").write_bytes(b"seed: 1\x00\n")
+    assert main(["plan", str(tmp_path / "nul.yaml")]) == 2
+    err = capsys.readouterr().err
+    assert "unacceptable character" in err and "Traceback" not in err and len(err.strip().splitlines()) == 1

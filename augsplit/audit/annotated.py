@@ -91,6 +91,9 @@ def _image_loader(paths, root):
     """Objects' images, decoded once per file while neighbouring rows share it, each read
     inside the dataset's folder `root` (inputs.read_image). No image file at all: no loader
     (near-duplicates are skipped, with a note); some missing: an error."""
+    from ..dataset.images import Box
+
+    box = Box(root, literal=True)  # names image_path resolved inside root
     exists = {p: p is not None and p.is_file() for p in set(paths)}
     found = [p for p, ok in exists.items() if ok]
     if not found:
@@ -105,6 +108,6 @@ def _image_loader(paths, root):
 
     @lru_cache(maxsize=32)
     def image(path):
-        return read_image(root, path.relative_to(root).as_posix())  # a regular file, with the size limit
+        return read_image(box, path.relative_to(root).as_posix())  # a regular file, with the size limit
 
     return (lambda i: image(paths[int(i)])), []

@@ -100,13 +100,15 @@ class _Fingerprints:
                     raise DatasetError("image loader returned no image", where=f"row {int(r)}")
                 yield np.asarray(img)
             return
-        root = self.src.root or Path(".")
+        from ..dataset.images import Box
+
+        box = Box(self.src.root or Path("."))  # one for the run: the folder is resolved once
         names = self.df["file"].astype(str).to_numpy() if "file" in self.df else None
 
         def from_file(r):
             if not self.has_file[r]:
                 raise DatasetError("row has neither image bytes nor an image file", where=f"row {int(r)}")
-            return read_image(root, names[r])
+            return read_image(box, names[r])
 
         if self.kind == "file":
             yield from _ordered_map(from_file, rows)

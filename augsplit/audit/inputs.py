@@ -204,12 +204,12 @@ def decode_image(data: bytes, where: str) -> np.ndarray:
     return decode_any(data, where)
 
 
-def read_image(root: Path, rel: str) -> np.ndarray:
-    """The image file a table row names, read inside the table's folder (the closed box of
-    augsplit.dataset.images: no path out of it, regular files only, a size limit)."""
-    from ..dataset.images import FOREIGN_MAX_BYTES, decode_any, read_inside
+def read_image(box, rel: str) -> np.ndarray:
+    """The image file a table row names, read inside the table's folder through its closed
+    Box (augsplit.dataset.images: no path out of it, regular files only, a size limit)."""
+    from ..dataset.images import FOREIGN_MAX_BYTES, decode_any
 
-    return decode_any(read_inside(root, rel, FOREIGN_MAX_BYTES, where=rel), where=rel)
+    return decode_any(box.read(rel, FOREIGN_MAX_BYTES, where=rel), where=rel)
 
 
 def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> None:

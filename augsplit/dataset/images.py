@@ -117,12 +117,16 @@ class Box:
     the open file (`opened_path`) must lie inside the box, so a folder on the way swapped for
     a link out between the check and the open is caught rather than read through.
 
-    `what` names the files in messages ("image" for a dataset's images; "label", "XML" ...)."""
+    `what` names the files in messages ("image" for a dataset's images; "label", "XML" ...).
+    `literal`: the paths are names found in the folder (by listing it, or resolved in it
+    already), not read from a table, so a name may begin with `~` or hold a backslash; a table's
+    path may not, as other tools would read it as a home folder or a Windows separator."""
 
-    def __init__(self, root: str | Path, what: str = "image"):
+    def __init__(self, root: str | Path, what: str = "image", literal: bool = False):
         self.root = str(root)
         self.base = os.path.realpath(root)
         self.what = what
+        self.literal = literal
         self._dirs: set[str] = set()
 
     def naming(self, what: str) -> "Box":
@@ -135,7 +139,8 @@ class Box:
         if not isinstance(rel, str) or not rel:
             raise ImageError(f"the row names no {self.what} file", where=where)
         p = PurePosixPath(rel)
-        if p.is_absolute() or rel.startswith("~") or ".." in p.parts or "\\" in rel or "\x00" in rel:
+        foreign = not self.literal and (rel.startswith("~") or "\\" in rel)
+        if p.is_absolute() or foreign or ".." in p.parts or "\x00" in rel:
             raise ImageError(f"{self.what} path {rel!r} leaves the dataset folder; it was not read", where=where)
         return p
 
@@ -170,9 +175,8 @@ class Box:
         if not stat.S_ISREG(st.st_mode):
             raise ImageError(f"{self.what} path {rel!r} is not a regular file; it was not read", where=where)
         if limit is not None and st.st_size > limit:
-            raise ImageError(f"{self.what} file {rel} has {st.st_size} bytes, more than the {limit} any {self.what} "
-                             f"{'of this canvas ' if self.what == 'image' else ''}may take; it was not read",
-                             where=where)
+            raise ImageError(f"{self.what} file {rel} has {st.st_size} bytes, more than the {limit} allowed for "
+                             "one; it was not read", where=where)
 
     @contextmanager
     def open(self, rel, limit: int | None, where: str | None = None):
@@ -221,7 +225,7 @@ def opened_path(fd: int, path: str) -> str | None:
     try:
         real = os.readlink(f"/proc/self/fd/{fd}")
         if real.startswith("/"):  # a file's path; not "pipe:[...]" or "anon_inode:..."
-            return real  # a file removed since it was opened reads "... (deleted)": not inside anything
+            return real  # a file removed since it was opened reads "<its path> (deleted)", judged by that path
     except OSError:
         pass
     real = os.path.realpath(path)
@@ -238,7 +242,8 @@ def resolve_inside(root: Path, rel, where: str | None = None) -> Path:
 
 
 def read_inside(root: Path, rel, limit: int, where: str | None = None) -> bytes:
-    """The bytes of the regular file `rel` names inside `root`, at most `limit` (see Box)."""
+    """The bytes of the regular file `rel` names inside `root`, at most `limit` (see Box; a
+    reader of many files makes one Box and reads through it)."""
     return Box(root).read(rel, limit, where)
 
 

@@ -189,14 +189,21 @@ def check_boxes(df: pd.DataFrame, where: str) -> None:
         _refuse(df, bad, f"images larger than {MAX_PIXELS} px", where)
 
 
-def read_file(root: Path, p: Path, limit: int, what: str) -> bytes:
-    """The bytes of `p`, a file a dataset names inside its folder `root` (links that stay
-    inside followed), read through a closed Box (dataset/images.py): a regular file inside
-    the folder, checked before it is opened and again once open, at most `limit` bytes; else
-    a one-line DatasetError naming it. augsplit reads nothing outside the folders it is given."""
+def dataset_box(root: Path):
+    """The closed Box (dataset/images.py) a reader of an annotated dataset reads all its files
+    through: made once per read, so the folder is resolved once and every file is judged
+    against that one folder; names are taken literally (found by listing, or resolved)."""
     from ..dataset.images import Box
 
-    return Box(root, what).read(Path(p).relative_to(root).as_posix(), limit, where=str(p))
+    return Box(root, literal=True)
+
+
+def read_file(box, p: Path, limit: int, what: str) -> bytes:
+    """The bytes of `p`, a file of the dataset whose `dataset_box` is `box` (links that stay
+    inside followed): a regular file inside the folder, checked before it is opened and again
+    once open, at most `limit` bytes; else a one-line DatasetError naming it. augsplit reads
+    nothing outside the folders it is given."""
+    return box.naming(what).read(Path(p).relative_to(box.root).as_posix(), limit, where=str(p))
 
 
 def image_path(root: Path, name: str, where: str) -> Path:

@@ -140,14 +140,14 @@ def _annotation_columns(data: dict, by_id: dict, cats: dict, where: str) -> tupl
 
 def _sizes_from_files(img: pd.DataFrame, root: Path) -> None:
     """Images the JSON gives no width or height for take them from their files' headers."""
-    from .boxes import image_path
+    from .boxes import dataset_box, image_path
     from .imagesize import image_size
 
+    box = dataset_box(Path(root).resolve())  # image_path resolves each name inside it
     w = pd.to_numeric(img["width"], errors="coerce")
     h = pd.to_numeric(img["height"], errors="coerce")
     for i in np.flatnonzero((w.isna() | h.isna()).to_numpy()):
-        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"),
-                                        Path(root).resolve())
+        w.iat[i], h.iat[i] = image_size(image_path(root, img["file"].iat[i], f"image {img['image_id'].iat[i]}"), box)
     img["width"], img["height"] = w.astype(float), h.astype(float)
 
 

@@ -11,21 +11,27 @@ from ..errors import DatasetError
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".gif", ".webp", ".tif", ".tiff")
 
 
-def image_size(path: str | Path, root: str | Path | None = None) -> tuple[int, int]:
-    """(width, height) in px of an image file inside the folder `root` (default: its own
-    folder), read through a closed Box (dataset/images.py: a regular file inside the folder,
-    checked again once open); DatasetError naming the file if it is missing or unreadable."""
-    from ..dataset.images import FOREIGN_MAX_BYTES, Box
+def image_size(path: str | Path, box=None) -> tuple[int, int]:
+    """(width, height) in px of an image file of a dataset, read through the dataset's closed
+    Box (formats.boxes.dataset_box; default: a box of the file's own folder): a regular file
+    inside the folder, checked again once open. Only the header is read, whatever the file's
+    size; a format without a header read here is decoded, up to FOREIGN_MAX_BYTES. DatasetError
+    naming the file if it is missing or unreadable."""
+    from ..dataset.images import FOREIGN_MAX_BYTES
+    from .boxes import dataset_box
 
     p = Path(path)
-    root = p.parent if root is None else Path(root)
+    box = dataset_box(p.parent) if box is None else box
     try:
-        with Box(root).open(p.relative_to(root).as_posix(), FOREIGN_MAX_BYTES, where=str(p)) as f:
+        with box.open(p.relative_to(box.root).as_posix(), None, where=str(p)) as f:
             head = f.read(32)
             size = _from_header(head, f)
             if size is None:  # decoded whole: read again from its start
                 f.seek(0)
                 data = f.read(FOREIGN_MAX_BYTES + 1)
+                if len(data) > FOREIGN_MAX_BYTES:
+                    raise DatasetError(f"an image without a PNG, JPEG, GIF, BMP or WebP header is decoded whole, "
+                                       f"and this one is larger than {FOREIGN_MAX_BYTES >> 20} MiB", where=str(p))
     except OSError as exc:
         raise DatasetError(f"cannot read the image: {exc.strerror or exc}", where=str(p)) from None
     if size is None:

@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, object_frame, read_file
+from .boxes import Objects, check_boxes, dataset_box, object_frame, read_file
 
 MAX_XML_BYTES = 16 << 20
 
@@ -36,8 +36,9 @@ def read_voc(path: str | Path) -> Objects:
         raise DatasetError("no XML files found", where=str(ann))
     images, cols = [], {c: [] for c in ("image_id", "file", "width", "height", "label", "object_id",
                                         "bbox_x0", "bbox_y0", "bbox_x1", "bbox_y1")}
+    box = dataset_box(p)
     for f in files:
-        image_id, name, w, h, objs = _parse(p, f)
+        image_id, name, w, h, objs = _parse(box, f)
         file = _image_file(p, images_dir, name, f) if name else ""
         images.append((image_id, file, w, h))
         for k, (label, (x0, y0, x1, y1)) in enumerate(objs):
@@ -58,9 +59,9 @@ def _image_file(root: Path, images_dir: Path, name: str, f: Path) -> str:
     return q.relative_to(root).as_posix()
 
 
-def _parse(folder: Path, f: Path):
+def _parse(box, f: Path):
     where = str(f)
-    data = read_file(folder, f, MAX_XML_BYTES, "XML")
+    data = read_file(box, f, MAX_XML_BYTES, "XML")
     try:
         root = ET.fromstring(data)
     except ET.ParseError as exc:

@@ -17,7 +17,7 @@ import pandas as pd
 
 from .. import limits as L
 from ..errors import DatasetError
-from .boxes import Objects, check_boxes, object_frame, read_file, to_px, to_xyxy
+from .boxes import Objects, check_boxes, dataset_box, object_frame, read_file, to_px, to_xyxy
 from .imagesize import IMAGE_SUFFIXES, image_size
 
 NAME_FILES = ("classes.txt", "obj.names")
@@ -35,7 +35,8 @@ def read_yolo(path: str | Path) -> Objects:
     if not p.is_dir():
         raise DatasetError("a YOLO dataset is a folder (with labels/ and images/)", where=str(p))
     root, labels_dir, images_dir = _layout(p)
-    names = _class_names(root)
+    box = dataset_box(root)
+    names = _class_names(box)
     pairs = _pairs(root, labels_dir, images_dir)
     if not pairs:
         raise DatasetError("no label files (*.txt) found", where=str(p))
@@ -45,11 +46,11 @@ def read_yolo(path: str | Path) -> Objects:
         if img is None:
             raise DatasetError("no image file with this name (looked for " + ", ".join(IMAGE_SUFFIXES) + ")",
                                where=str(images_dir / rel) if labels_dir is not None else str(lab))
-        w, h = image_size(img, root)
+        w, h = image_size(img, box)
         image_id = rel.as_posix()
         images.append((image_id, img.relative_to(root).as_posix(), w, h))
         if lab is not None:
-            _add_objects(cols, root, lab, image_id, names, w, h)
+            _add_objects(cols, box, lab, image_id, names, w, h)
     img_df = pd.DataFrame(images, columns=["image_id", "file", "width", "height"])
     n = len(cols["box"])
     size = img_df.set_index("image_id").loc[cols["image_id"], ["file", "width", "height"]] if n else None
@@ -78,9 +79,9 @@ def _pairs(root: Path, labels_dir: Path | None, images_dir: Path | None) -> dict
     return pairs
 
 
-def _add_objects(cols: dict[str, list], root: Path, lab: Path, image_id: str, names: dict, w, h) -> None:
+def _add_objects(cols: dict[str, list], box, lab: Path, image_id: str, names: dict, w, h) -> None:
     """Append one label file's objects (boxes as fractions; polygons also in px) to `cols`."""
-    for line_no, cls, coords in _lines(root, lab):
+    for line_no, cls, coords in _lines(box, lab):
         cols["image_id"].append(image_id)
         cols["label"].append(names.get(cls, cls))
         cols["object_id"].append(line_no)
@@ -144,14 +145,15 @@ def _image_for(stem: Path) -> Path | None:
     return None
 
 
-def _class_names(root: Path) -> dict[str, str]:
+def _class_names(box) -> dict[str, str]:
     """Class number (as written) -> name, from data.yaml `names:` or a names file."""
+    root = Path(box.root)
     for name in YAML_FILES:
         f = root / name
         if os.path.lexists(f):
             from ..spec import read_yaml
 
-            data = read_yaml(f, _text(root, f, L.MAX_SPEC_BYTES, "YAML"))
+            data = read_yaml(f, _text(box, f, L.MAX_SPEC_BYTES, "YAML"))
             names = data.get("names") if isinstance(data, dict) else None
             if isinstance(names, list):
                 return {str(i): str(v) for i, v in enumerate(names)}
@@ -161,24 +163,24 @@ def _class_names(root: Path) -> dict[str, str]:
     for name in NAME_FILES:
         f = root / name
         if os.path.lexists(f):
-            lines = [s.strip() for s in _text(root, f, MAX_LABEL_BYTES, "class names",
+            lines = [s.strip() for s in _text(box, f, MAX_LABEL_BYTES, "names",
                                                "not a UTF-8 text file of class names, one per line").splitlines()]
             return {str(i): s for i, s in enumerate(x for x in lines if x)}
     return {}
 
 
-def _text(root: Path, f: Path, limit: int, what: str, not_text: str = "not a UTF-8 text file") -> str:
+def _text(box, f: Path, limit: int, what: str, not_text: str = "not a UTF-8 text file") -> str:
     """A text file of the dataset, read inside its folder (`read_file`)."""
     try:
-        return read_file(root, f, limit, what).decode("utf-8")
+        return read_file(box, f, limit, what).decode("utf-8")
     except UnicodeDecodeError:
         raise DatasetError(not_text, where=str(f)) from None
 
 
-def _lines(root: Path, lab: Path):
+def _lines(box, lab: Path):
     """(line number, class as written, coordinates) of each object line of a label file."""
     where = str(lab)
-    text = _text(root, lab, MAX_LABEL_BYTES, "label", "not a text file")
+    text = _text(box, lab, MAX_LABEL_BYTES, "label", "not a text file")
     for k, line in enumerate(text.splitlines(), start=1):
         parts = line.split()
         if not parts:
