@@ -214,7 +214,7 @@ def read_image(box, rel: str) -> np.ndarray:
 
 def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> None:
     """Raise one DatasetError naming the first listed image missing on disk, and the count."""
-    from ..dataset.images import ImageError, resolve_inside
+    from ..dataset.images import Box, ImageError
 
     names = files.astype(str).to_numpy()
     listed = np.flatnonzero((names != "") & (names != "None") & (names != "nan"))
@@ -224,8 +224,9 @@ def check_files_exist(files: pd.Series, root: Path | None, rows: np.ndarray) -> 
         first = missing[0]
         raise DatasetError(f"{len(missing)} listed image(s) missing on disk (first at row {int(rows[first])})",
                            where=str(base / names[first]))
+    box = Box(base)
     for i in listed:
         try:
-            resolve_inside(base, names[i])
+            box.resolve(names[i])
         except ImageError as exc:
             raise DatasetError(f"row {int(rows[i])}: {exc.message}", where=str(base)) from None

@@ -241,12 +241,6 @@ def resolve_inside(root: Path, rel, where: str | None = None) -> Path:
     return Box(root).resolve(rel, where)
 
 
-def read_inside(root: Path, rel, limit: int, where: str | None = None) -> bytes:
-    """The bytes of the regular file `rel` names inside `root`, at most `limit` (see Box; a
-    reader of many files makes one Box and reads through it)."""
-    return Box(root).read(rel, limit, where)
-
-
 # ---- the image of a row ---------------------------------------------------------------------
 
 
