@@ -384,3 +384,48 @@ def test_a_coco_split_named_like_augsplit_s_own_record_is_refused(tmp_path, caps
     src = write_json(tmp_path / "a.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
     assert cli("assign", spec(tmp_path, d), src, "--out", tmp_path / "sp") == 2
     assert "augsplit's own file" in capsys.readouterr().err
+
+
+def test_coco_ids_written_as_integral_floats_are_those_integers(tmp_path, capsys):
+    """Tools that keep every JSON number as a float write ids as 1.0. Measured before: refused
+    ('the image's id is 1.0, not an integer or a string'). Now 1.0 is the id 1: the same
+    splits as the integer file, and the split files keep the ids as written."""
+    boxes = [(10, 40, 10, 10), (80, 40, 10, 10), (12, 42, 10, 10)]
+    ints = write_json(tmp_path / "ints.json", coco(boxes))
+    doc = coco(boxes)
+    for im in doc["images"]:
+        im["id"] = float(im["id"])
+    for a in doc["annotations"]:
+        a["id"], a["image_id"], a["category_id"] = float(a["id"]), float(a["image_id"]), float(a["category_id"])
+    doc["categories"][0]["id"] = 1.0
+    floats = write_json(tmp_path / "floats.json", doc)
+    assert cli("assign", spec(tmp_path), ints, "--out", tmp_path / "a") == 0
+    assert cli("assign", spec(tmp_path), floats, "--out", tmp_path / "b") == 0
+    a, b = (pd.read_csv(tmp_path / d / "splits.csv", dtype=str) for d in ("a", "b"))
+    assert a.equals(b) and len(a) == 3
+    written = [json.loads(f.read_text()) for f in (tmp_path / "b").glob("*.json") if f.name in
+               {f"{s}.json" for s in b["split"]}]
+    ids = [im["id"] for doc_ in written for im in doc_["images"]]
+    assert len(ids) == 3 and all(isinstance(i, float) for i in ids)  # the ids as the file wrote them
+    doc["images"][0]["id"] = 1.5
+    bad = write_json(tmp_path / "bad.json", doc)
+    assert cli("assign", spec(tmp_path), bad, "--out", tmp_path / "c") == 2
+    err = capsys.readouterr().err
+    assert "1.5, not an integer or a string" in err and "Traceback" not in err
+
+
+def test_split_lists_of_coco_files_with_integral_float_ids_name_the_images(tmp_path):
+    """A folder of <split>.json files whose ids are written 1.0 splits the images they name.
+    Measured before: their ids read as '1.0', which named no image."""
+    from augsplit.formats.coco import read_coco
+    from augsplit.formats.write import read_assignment
+
+    doc = coco([(10, 40, 10, 10), (80, 40, 10, 10)])
+    src = write_json(tmp_path / "a.json", doc)
+    lists = tmp_path / "lists"
+    lists.mkdir()
+    for name, im in zip(("train", "test"), doc["images"]):
+        write_json(lists / f"{name}.json", {"images": [dict(im, id=float(im["id"]))], "annotations": []})
+    objs = read_coco(src)
+    got = dict(zip(objs.images["image_id"], read_assignment(lists, objs)))
+    assert got == {1: "train", 2: "test"}

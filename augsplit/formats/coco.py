@@ -73,8 +73,20 @@ def _categories(data: dict, where: str) -> dict:
     return cats
 
 
+def coco_id(value):
+    """An id as read: a float with an integer value (1.0, as tools that keep every number as a
+    float write ids) is that integer, up to 2**53, the last integer a double holds exactly (IEEE
+    754 binary64, from memory); anything else is returned as it is."""
+    if isinstance(value, float) and value.is_integer() and abs(value) <= 2**53:
+        return int(value)
+    return value
+
+
 def _id(value, what: str, where: str):
-    """An id as COCO writes one: an integer or a string (a list, object or true/false is refused)."""
+    """An id as COCO writes one: an integer or a string (a list, object or true/false is
+    refused), integral floats read as their integers (`coco_id`); another float is refused, as
+    no two writers would round it alike."""
+    value = coco_id(value)
     if isinstance(value, bool) or not isinstance(value, (int, str)):
         raise DatasetError(f"{what} is {json.dumps(value)[:40]}, not an integer or a string", where=where)
     return value
@@ -118,7 +130,8 @@ def _annotation_columns(data: dict, by_id: dict, cats: dict, where: str) -> tupl
         at = f"{where} annotations[{k}]"
         if not isinstance(a, dict):
             raise DatasetError("an annotation is an object with 'image_id', 'category_id' and 'bbox'", where=at)
-        if _id(a.get("image_id"), "the annotation's image_id", at) not in by_id:
+        image_id = _id(a.get("image_id"), "the annotation's image_id", at)
+        if image_id not in by_id:
             raise DatasetError("the annotation's image_id is not among the images", where=at)
         box = a.get("bbox")
         seg = a.get("segmentation") or None
@@ -128,10 +141,11 @@ def _annotation_columns(data: dict, by_id: dict, cats: dict, where: str) -> tupl
             if seg is None:
                 raise DatasetError("the annotation has neither a bbox [x, y, w, h] nor a segmentation", where=at)
             box = [np.nan] * 4  # taken from the mask below
-        if _id(a.get("category_id"), "the annotation's category_id", at) not in cats:
+        category_id = _id(a.get("category_id"), "the annotation's category_id", at)
+        if category_id not in cats:
             raise DatasetError(f"category_id {a.get('category_id')!r} is not among the categories", where=at)
-        cols["image_id"].append(a["image_id"])
-        cols["label"].append(cats[a["category_id"]])
+        cols["image_id"].append(image_id)
+        cols["label"].append(cats[category_id])
         cols["object_id"].append(a.get("id", k))
         cols["segmentation"].append(seg)
         raw_box.append(box)

@@ -20,6 +20,7 @@ from ..assign import NONE
 from ..errors import DatasetError
 from ..io import write_text_atomic
 from .boxes import Objects
+from .coco import coco_id
 from .placement import Placed
 
 MARKER = "augsplit-splits.json"
@@ -207,7 +208,7 @@ def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
     for f in files:
         if f.suffix == ".json":
             try:
-                names = [str(im["id"]) for im in json.loads(f.read_text(encoding="utf-8"))["images"]]
+                names = [str(coco_id(im["id"])) for im in json.loads(f.read_text(encoding="utf-8"))["images"]]
             except (ValueError, KeyError, TypeError):
                 raise DatasetError("not a COCO file with an 'images' list", where=str(f)) from None
             kinds: tuple[str, ...] = ("image id",)
