@@ -91,9 +91,9 @@ def _image_loader(paths, root):
     """Objects' images, decoded once per file while neighbouring rows share it, each read
     inside the dataset's folder `root` (inputs.read_image). No image file at all: no loader
     (near-duplicates are skipped, with a note); some missing: an error."""
-    from ..dataset.images import Box
+    from ..formats.boxes import dataset_box
 
-    box = Box(root, literal=True)  # names image_path resolved inside root
+    box = dataset_box(root)  # the names image_path resolved inside root
     exists = {p: p is not None and p.is_file() for p in set(paths)}
     found = [p for p, ok in exists.items() if ok]
     if not found:

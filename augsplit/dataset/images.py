@@ -157,8 +157,6 @@ class Box:
         real = os.path.realpath(os.path.join(self.base, rel))
         if not self._inside(real):
             raise self._out(rel, where)
-        if not os.path.exists(real) and os.path.islink(os.path.join(self.base, rel)):
-            raise ImageError(f"{self.what} path {rel!r} is a link to nothing (or a loop of links)", where=where)
         self._check_mode(self._stat(os.stat, real, rel, where), rel, where)
         return Path(real)
 
@@ -166,6 +164,9 @@ class Box:
         try:
             return how(path)
         except FileNotFoundError:
+            if os.path.islink(os.path.join(self.base, rel)):  # resolve's stat of where a link leads
+                raise ImageError(f"{self.what} path {rel!r} is a link to nothing (or a loop of links)",
+                                 where=where) from None
             raise ImageError(f"{self.what} file {os.path.join(self.root, rel)} is missing", where=where) from None
         except OSError as exc:
             raise ImageError(f"{self.what} file {os.path.join(self.root, rel)} cannot be read: {exc.strerror}",
@@ -186,9 +187,10 @@ class Box:
         p = self._lexical(rel, where)
         folder = str(p.parent)
         if folder not in self._dirs:
-            if not self._inside(os.path.realpath(os.path.join(self.base, folder))):
+            real = os.path.realpath(os.path.join(self.base, folder))
+            if not self._inside(real):
                 raise self._out(rel, where)
-            if os.path.isdir(os.path.join(self.base, folder)):  # a folder not there yet is checked next time
+            if os.path.isdir(real):  # a folder not there yet is checked next time
                 self._dirs.add(folder)
         path = os.path.join(self.base, rel)
         st = self._stat(os.lstat, path, rel, where)
