@@ -138,3 +138,14 @@ def test_isal_bytes_are_pinned_for_its_version():
 def test_what_cannot_be_a_png_is_refused(bad, deflate):
     with pytest.raises(ValueError, match="PNG"):
         encode_png(bad, 1, deflate)
+
+
+@settings(max_examples=200, deadline=None)
+@given(data=st.binary(max_size=5000), start=st.integers(0, 2**32 - 1))
+def test_chunk_crc_is_zlibs(data, start):
+    # The writer takes ISA-L's CRC-32 for speed; it must be the CRC PNG specifies, which the
+    # standard library's zlib.crc32 computes (W3C PNG second edition, section 5.5 and annex D)
+    from isal import isal_zlib
+
+    assert isal_zlib.crc32(data, start) == zlib.crc32(data, start)
+    assert isal_zlib.crc32(data) == zlib.crc32(data)

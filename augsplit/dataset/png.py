@@ -26,6 +26,7 @@ from __future__ import annotations
 import struct
 import zlib
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Callable
 
 import numpy as np
@@ -36,11 +37,23 @@ _COLOUR_TYPE = {1: 0, 2: 4, 3: 2, 4: 6}  # channels -> grey, grey + alpha, RGB, 
 _UP = 2  # filter type "Up" (section 9.2)
 
 
+_U32 = struct.Struct(">I").pack  # a chunk's length and CRC: 4-byte big-endian (section 5.3)
+
+
 def _chunk(kind: bytes, data: bytes) -> bytes:
-    return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(data, zlib.crc32(kind)))
+    # ISA-L's CRC-32 is the same function as zlib's (ISO 3309, the one PNG names; a test
+    # compares them) at 0.15x its time on 15 kB here, as it uses the CPU's carry-less multiply
+    return _U32(len(data)) + kind + data + _U32(isal_zlib.crc32(data, isal_zlib.crc32(kind)))
 
 
 _IEND = _chunk(b"IEND", b"")
+
+
+@lru_cache(maxsize=64)
+def _head(w: int, h: int, c: int) -> bytes:
+    """The signature and IHDR chunk of a w x h image of c channels: depth 8, deflate, adaptive
+    filtering, no interlace. The same for every image of a dataset, so made once."""
+    return SIGNATURE + _chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, _COLOUR_TYPE[c], 0, 0, 0))
 
 
 @dataclass(frozen=True)
@@ -94,5 +107,4 @@ def encode_png(image: np.ndarray, level: int | None = None, deflate: str = DEFLA
     filtered[:, 0] = _UP
     filtered[0, 1:] = lines[0]
     np.subtract(lines[1:], lines[:-1], out=filtered[1:, 1:])  # uint8: modulo 256, as the filter is defined
-    header = struct.pack(">IIBBBBB", w, h, 8, _COLOUR_TYPE[c], 0, 0, 0)  # depth 8, deflate, adaptive, no interlace
-    return b"".join((SIGNATURE, _chunk(b"IHDR", header), _chunk(b"IDAT", engine.compress(filtered, level)), _IEND))
+    return _head(w, h, c) + _chunk(b"IDAT", engine.compress(filtered, level)) + _IEND
