@@ -32,12 +32,12 @@ from .dataset import create, open_dataset
 from .dataset import layout as lay
 from .dataset.folder import LAYOUT_KEYS, check_parts
 from .dataset.rows import read_column
-from .dataset.images import FORMATS, encode, sha256_hex
+from .dataset.images import FORMATS, encode, opened_path, sha256_hex
 from .dataset.png import DEFLATES, png_setting
 from .dataset.tarstore import TarShardWriter, json_values
 from .dataset.tarstore import header as tar_header
 from .errors import DatasetError
-from .io import (DISK_FULL, move_into_place, new_temporary, os_error, sync_files, write_files_atomic,
+from .io import (DISK_FULL, move_into_place, new_temporary, open_folder, os_error, replace_file_at, sync_files,
                  write_new_file, write_text_atomic)
 from .limits import MAX_SHARDS_PER_SPLIT, MAX_WORKERS
 from .plan.draw import draw
@@ -119,7 +119,12 @@ class _ImageFiles:
     """A shard's image files, each written as soon as it is encoded, straight to its final name
     (create-only: `io.write_new_file`). Where something is already there (an image of an
     earlier attempt at this uncommitted shard, or anything else), it is replaced whole through
-    a temporary, and only if it is a regular file (`io.write_files_atomic`), as before.
+    a temporary, and only if it is a regular file (`io.replace_file_at`).
+
+    Every file is made by name in the folder opened once (`io.open_folder`) and checked to be
+    the shard's image folder as the kernel names it: a folder on the way swapped for a link
+    later cannot send the writes elsewhere (by path, each write would follow it). It also
+    spares the kernel the walk down the path per file.
 
     Their paths go to `written` (the shard's `images`), which the shard's finish makes durable
     at once (one syncfs, measured cheaper than one per batch; then the folder fsynced), before
@@ -129,18 +134,27 @@ class _ImageFiles:
     time of inline writes on an erratic shared ext4 disk (load 3 on 2 cores), so the simpler
     way was kept."""
 
-    def __init__(self, folder: Path, written: list[str]):
+    def __init__(self, out: Path, folder: Path, written: list[str]):
         self.folder = str(folder)
         self.written = written
+        self.fd = open_folder(folder)
+        expected = os.path.join(os.path.realpath(out), os.path.relpath(folder, out))
+        if opened_path(self.fd, self.folder) != expected:
+            self.close()
+            raise DatasetError("changed while it was being opened (a folder on the way replaced by a link?); "
+                               "nothing was written there", where=self.folder)
 
     def write(self, name: str, data: bytes) -> None:
         path = os.path.join(self.folder, name)
         try:
-            if not write_new_file(path, data):
-                write_files_atomic([(Path(path), data)], sync=False)
+            if not write_new_file(name, data, self.fd):
+                replace_file_at(self.fd, name, data, path)
         except OSError as exc:
             raise _disk_error(exc, path) from None
         self.written.append(path)
+
+    def close(self) -> None:
+        os.close(self.fd)
 
 
 @dataclass
@@ -200,12 +214,13 @@ def write_shard(built: Built, job: ShardJob, out: Path, opts: Options) -> Writte
     dpart = lay.part_path(out, lay.DISTRACTOR_DIR, job.split, job.shard)
     shard = WrittenShard(job)
     try:
-        files = None
-        if opts.store == "files":
-            folder = _guard_disk(lambda: create.writable_dir(out, lay.IMAGES_DIR, job.split), out)
-            files = _ImageFiles(folder, shard.images)
         _guard_disk(lambda: create.writable_dir(out, lay.MANIFEST_DIR, job.split), out)
         with ExitStack() as stack:  # on a failure, every writer is closed and its file discarded
+            files = None
+            if opts.store == "files":
+                folder = _guard_disk(lambda: create.writable_dir(out, lay.IMAGES_DIR, job.split), out)
+                files = _guard_disk(lambda: _ImageFiles(out, folder, shard.images), folder)
+                stack.callback(files.close)
             writer = stack.enter_context(_parquet_writer(shard.temporary(part, commit=True),
                                                         mf.IMAGE_SCHEMA.with_metadata(meta)))
             dwriter = None

@@ -202,17 +202,18 @@ def write_files_atomic(items, *, sync: bool = True) -> None:
 _CREATE_ONLY = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
 
 
-def write_new_file(path: str, data) -> bool:
+def write_new_file(path: str, data, dir_fd: int | None = None) -> bool:
     """Write `data` into a file made at `path` now, or return False, writing nothing, when
     anything is already there (create-only, O_EXCL: never over or through an existing file,
-    link or folder). One open, write and close: no temporary, no rename, no sync.
+    link or folder). One open, write and close: no temporary, no rename, no sync. With
+    `dir_fd`, `path` is a name inside the folder open there (`open_folder`).
 
     Until it is closed the file is partial at its final name, so this is only for files that
     nothing takes as valid before the caller commits them after a `sync_files` (generation:
     a shard's images, committed by the shard's manifest part; a resumed run writes the images
     of a shard without a part again). A failed write removes the file it made."""
     try:
-        fd = os.open(path, _CREATE_ONLY, 0o666)
+        fd = os.open(path, _CREATE_ONLY, 0o666, dir_fd=dir_fd)
     except FileExistsError:
         return False
     try:
@@ -221,12 +222,46 @@ def write_new_file(path: str, data) -> bool:
             view = view[os.write(fd, view):]
     except BaseException:
         with suppress(OSError):
-            if os.lstat(path).st_ino == os.fstat(fd).st_ino:  # still the file made here
-                os.unlink(path)
+            if os.lstat(path, dir_fd=dir_fd).st_ino == os.fstat(fd).st_ino:  # still the file made here
+                os.unlink(path, dir_fd=dir_fd)
         os.close(fd)
         raise
     os.close(fd)
     return True
+
+
+def replace_file_at(dir_fd: int, name: str, data, where: str) -> None:
+    """Put `data` at `name` in the folder open at `dir_fd`, over what is there if that is a
+    regular file (refused, naming `where`, if it is anything else): written whole under a
+    temporary name in the same folder, then renamed over it, unsynced (see write_files_atomic
+    with sync=False, whose promise this keeps for one file in an open folder)."""
+    _check_mode_at(dir_fd, name, where)
+    tmp = temporary_name(Path(where)).name
+    try:
+        if not write_new_file(tmp, data, dir_fd):
+            raise FileExistsError(errno.EEXIST, "a temporary name is taken", os.path.join(os.path.dirname(where), tmp))
+        _check_mode_at(dir_fd, name, where)
+        os.replace(tmp, name, src_dir_fd=dir_fd, dst_dir_fd=dir_fd)
+    finally:
+        with suppress(FileNotFoundError):
+            os.unlink(tmp, dir_fd=dir_fd)
+
+
+def _check_mode_at(dir_fd: int, name: str, where: str) -> None:
+    try:
+        mode = os.lstat(name, dir_fd=dir_fd).st_mode
+    except FileNotFoundError:
+        return
+    if not stat.S_ISREG(mode):
+        raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file", where=where)
+
+
+def open_folder(folder: str | Path) -> int:
+    """A descriptor of the folder at `folder`, for writing the files inside it by name
+    (`write_new_file(name, data, fd)`), so that they land in this folder whatever happens to
+    the names on the way to it later (a folder swapped for a symbolic link, say). Its last name
+    may not be a link (O_NOFOLLOW); the caller has checked the rest of the way and closes it."""
+    return os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
 
 
 def _folders(paths) -> list[str]:

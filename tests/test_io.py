@@ -26,10 +26,14 @@ def events(monkeypatch):
     real_fsync, real_replace, real_tmp, real_syncfs = os.fsync, os.replace, aio.temporary_name, aio.syncfs
     real_open, real_link = os.open, os.link
 
-    def open_(path, flags, *a, **kw):
-        fd = real_open(path, flags, *a, **kw)
+    def at(path, dir_fd):  # a name inside the folder open at dir_fd (Linux: /proc/self/fd names it)
+        base = os.readlink(f"/proc/self/fd/{dir_fd}") if dir_fd is not None else ""
+        return str(Path(base, path).resolve())
+
+    def open_(path, flags, *a, dir_fd=None, **kw):
+        fd = real_open(path, flags, *a, dir_fd=dir_fd, **kw)
         if flags & os.O_CREAT and flags & os.O_EXCL:
-            log.append(("create", str(Path(path).resolve())))
+            log.append(("create", at(path, dir_fd)))
         return fd
 
     def fsync(fd):
@@ -42,9 +46,9 @@ def events(monkeypatch):
             log.append(("syncfs", os.stat(path).st_dev))
         return done
 
-    def replace(src, dst, **kw):
-        log.append(("replace", str(Path(src).resolve()), str(Path(dst).resolve())))
-        return real_replace(src, dst, **kw)
+    def replace(src, dst, *, src_dir_fd=None, dst_dir_fd=None):
+        log.append(("replace", at(src, src_dir_fd), at(dst, dst_dir_fd)))
+        return real_replace(src, dst, src_dir_fd=src_dir_fd, dst_dir_fd=dst_dir_fd)
 
     def link(src, dst, **kw):  # a create-only commit (io.write_bytes_new): logged as a rename
         real_link(src, dst, **kw)
