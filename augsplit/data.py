@@ -175,7 +175,7 @@ class Dataset:
         self.parts = self.folder.parts_of(splits=[split])
         frame = rows.read_rows(self.folder, splits=[split], columns=ROW_COLUMNS, positions=True)
         frame["file"] = frame["file"].fillna("")
-        has_bytes = [rows.non_null(p, "image_bytes") for p in self.parts]
+        has_bytes = [rows.non_null(self.folder, p, "image_bytes") for p in self.parts]
         starts = np.cumsum([0] + [len(h) for h in has_bytes])
         flat = np.concatenate(has_bytes) if has_bytes else np.zeros(0, dtype=bool)
         frame["_has_bytes"] = flat[starts[frame[rows.PART_COLUMN].to_numpy()] + frame[rows.OFFSET_COLUMN].to_numpy()]
@@ -259,7 +259,7 @@ class Dataset:
         self._local()
         col = self._cache.get(part)
         if col is None:
-            col = rows.read_column(self.parts[part], "image_bytes")
+            col = rows.read_column(self.folder, self.parts[part], "image_bytes")
             self._cache[part] = col
             while len(self._cache) > self.parquet_cache:
                 self._cache.popitem(last=False)

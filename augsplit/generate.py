@@ -625,7 +625,7 @@ LOW_VISIBILITY = 0.5  # an image showing less than this share of its object's fo
 def low_visibility(folder, threshold: float = LOW_VISIBILITY) -> dict:
     """How many images show less than `threshold` of their target object, and how many none."""
     # part by part from the arrays' buffers: a generation run never needs pandas (0.5 s to import)
-    vf = np.concatenate([np.zeros(0)] + [floats(read_column(p, "visible_fraction"))
+    vf = np.concatenate([np.zeros(0)] + [floats(read_column(folder, p, "visible_fraction"))
                                          for p in folder.parts_of(lay.MANIFEST_DIR)])
     return {"threshold": threshold, "below": int((vf < threshold).sum()), "zero": int((vf <= 0).sum())}
 

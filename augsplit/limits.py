@@ -29,6 +29,7 @@ MAX_SOURCE_PIXELS = 1 << 26  # all sprites of an object source together (the ren
 MAX_BACKGROUND_PIXELS = 1 << 25  # one background image (e.g. 8192 x 4096)
 MAX_BACKGROUNDS_PIXELS = 1 << 27  # all background images together (kept decoded in memory)
 MAX_IMAGE_FILE_BYTES = 256 << 20  # an image file is read whole before its header is checked
+MAX_METADATA_BYTES = 64 << 20  # a dataset's spec.json or dataset.json, read whole (they are a few kB to a few MB)
 
 # ---- counts ----------------------------------------------------------------------------------
 MAX_CLASSES = 10_000  # an object source's classes (10-cell one-sided polyominoes: 9,189)

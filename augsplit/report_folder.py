@@ -35,7 +35,7 @@ from pathlib import Path
 
 from .dataset import layout as lay
 from .errors import DatasetError
-from .io import check_folder_target, ensure_folder, lock_folder, os_error, temporary_name
+from .io import check_folder_target, ensure_folder, lock_folder, open_folder, os_error, temporary_name
 
 # {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
 #  "stamps": {name: [size, SHA-256] of the file a completed run wrote}}
@@ -119,18 +119,13 @@ BUSY = "another augsplit run is writing reports in this folder; wait for it to e
 def _refuse_if_busy(folder: Path) -> None:
     """One-line DatasetError BUSY if a run holds the folder's lock now (taken and let go)."""
     try:
-        fd = _open_folder(folder)
+        fd = open_folder(folder)
     except OSError:
         return  # report_set says why it cannot open the folder
     try:
         lock_folder(fd, folder, BUSY)
     finally:
         os.close(fd)
-
-
-def _open_folder(folder: Path) -> int:
-    """A descriptor of the folder itself (never a link's target), to look its names up in."""
-    return os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
 
 
 @contextmanager
@@ -149,7 +144,7 @@ def report_set(out, command: str, names, inputs=()):
     names = set(names)
     folder = ensure_folder(check_report_folder(out, sorted(names), inputs))
     try:  # the folder checked, opened once: its names are looked up in it, never through a link swapped in
-        fd = _open_folder(folder)
+        fd = open_folder(folder)
     except OSError as exc:
         raise DatasetError(f"cannot open the report folder: {exc.strerror}", where=str(folder)) from None
     try:

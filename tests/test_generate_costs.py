@@ -21,15 +21,22 @@ from augsplit.generate import Options, generate
 def test_each_committed_part_footer_is_read_once(tmp_path, monkeypatch):
     """Measured on main: three reads per shard (the driver's check after the shard, finalize's
     check of every shard, and opening the folder in finalize)."""
+    from augsplit.dataset.images import Box
+
     opened: Counter = Counter()
-    real = pq.ParquetFile
+    real, real_open = pq.ParquetFile, Box.open_file
+    last = []  # the file a box opened last: parts reach ParquetFile as open files (dataset/boxfs.py)
+
+    def open_file(self, rel, *a, **kw):
+        last[:] = [Path(self.root, rel).resolve()]
+        return real_open(self, rel, *a, **kw)
 
     class Counting(real):
         """Counts the opens that only read the footer (a check), not those that read data
         (finalize's low-visibility count reads one column)."""
 
         def __init__(self, source, *a, **kw):
-            self._key = Path(source).resolve()
+            self._key = Path(source).resolve() if isinstance(source, (str, Path)) else last[0]
             opened[self._key] += 1
             super().__init__(source, *a, **kw)
 
@@ -38,6 +45,7 @@ def test_each_committed_part_footer_is_read_once(tmp_path, monkeypatch):
             return super().read(*a, **kw)
 
     monkeypatch.setattr(pq, "ParquetFile", Counting)
+    monkeypatch.setattr(Box, "open_file", open_file)
     out = tmp_path / "ds"
     generate(None, out, Options(progress=False, store="none", shard_size=3), built=open_mapping(spec_dict()))
     parts = [p.resolve() for p in lay.part_files(out, lay.MANIFEST_DIR)]

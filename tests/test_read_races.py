@@ -266,3 +266,106 @@ def test_a_yaml_file_with_a_control_character_is_one_line(tmp_path, capsys):
     assert main(["plan", str(tmp_path / "nul.yaml")]) == 2
     err = capsys.readouterr().err
     assert "unacceptable character" in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+# ---- a dataset's own files: its Parquet parts, spec.json and dataset.json ----------------------
+
+TINY = {
+    "seed": 2,
+    "canvas": {"width": 16, "height": 16, "mode": "gray"},
+    "objects": {"kind": "polyomino", "cells": 2, "cell_px": 3},
+    "background": {"kind": "solid", "value": 0.5},
+    "axes": {"x": {"range": [4, 12]}},
+    "splits": {"train": {"region": {"x": [4, 7]}, "count": 6}, "test": {"region": {"x": [9, 12]}, "count": 3}},
+}
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory) -> Path:
+    from augsplit.generate import Options, generate
+    from specs import write_spec
+
+    out = tmp_path_factory.mktemp("tiny") / "ds"
+    generate(write_spec(tmp_path_factory.mktemp("spec"), TINY), out, Options(store="none", progress=False))
+    return out
+
+
+def _linked_out(tmp_path, tiny, rel: str) -> Path:
+    """A copy of the tiny dataset whose `rel` (a file or folder) was moved out of it and
+    replaced by a link to where it went. Returns the copy."""
+    import shutil
+
+    root, out = tmp_path / "ds", tmp_path / "elsewhere"
+    shutil.copytree(tiny, root)
+    out.mkdir()
+    moved = out / Path(rel).name
+    (root / rel).rename(moved)
+    (root / rel).symlink_to(moved, target_is_directory=moved.is_dir())
+    return root
+
+
+@pytest.mark.parametrize("rel", ["manifest/split=train", "manifest/split=train/part-000000.parquet",
+                                 "spec.json", "dataset.json"])
+def test_a_dataset_file_linked_out_of_the_folder_is_refused_not_read(tmp_path, tiny, rel):
+    """Measured before: verify and audit read the rows (or the spec) through the link, from
+    outside the dataset folder, and verify said OK."""
+    from augsplit.dataset.rows import read_manifest
+
+    root = _linked_out(tmp_path, tiny, rel)
+    with pytest.raises(DatasetError, match="symbolic link out of the dataset folder; it was not read"):
+        read_manifest(root)
+
+
+def test_a_split_folder_linked_inside_the_dataset_is_followed(tmp_path, tiny):
+    """A link that stays inside the folder is read, as an image's is."""
+    import shutil
+
+    from augsplit.dataset.rows import read_manifest
+
+    root = tmp_path / "ds"
+    shutil.copytree(tiny, root)
+    (root / "manifest" / "split=train").rename(root / "kept")
+    (root / "manifest" / "split=train").symlink_to(Path("..", "kept"), target_is_directory=True)
+    assert len(read_manifest(root)) == 9
+
+
+@pytest.mark.parametrize("reader", ["rows", "column"])
+def test_a_part_whose_folder_is_swapped_for_a_link_out_while_opened_is_not_read(tmp_path, tiny, swap, reader):
+    import shutil
+
+    from augsplit.dataset.folder import open_dataset
+    from augsplit.dataset.rows import read_column, read_rows
+
+    root, out = tmp_path / "ds", tmp_path / "elsewhere"
+    shutil.copytree(tiny, root)
+    shutil.copytree(tiny / "manifest" / "split=train", out)
+    folder = open_dataset(root)
+    swap("split=train/part-000000.parquet", root / "manifest" / "split=train", out)
+    with pytest.raises(DatasetError, match="out of the dataset folder while it was opened"):
+        if reader == "rows":
+            read_rows(folder)
+        else:
+            read_column(folder, folder.parts_of(splits=["train"])[0], "image_id")
+
+
+def test_a_table_folder_part_linked_out_of_the_folder_is_refused_not_read(tmp_path):
+    """A folder given as a table (a parameter log, predictions) is read through a box of it.
+    Measured before: the part outside was read and its rows returned."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from augsplit.formats.table import read_table
+
+    folder, out = tmp_path / "log", tmp_path / "elsewhere"
+    folder.mkdir()
+    out.mkdir()
+    pq.write_table(pa.table({"a": [1, 2]}), folder / "part-0.parquet")
+    pq.write_table(pa.table({"a": [3]}), out / "secret.parquet")
+    assert list(read_table(folder)["a"]) == [1, 2]
+    (folder / "part-1.parquet").symlink_to(out / "secret.parquet")
+    with pytest.raises(DatasetError, match="symbolic link out of the folder given; it was not read"):
+        read_table(folder)
+    pq.write_table(pa.table({"a": [4]}), folder / "kept.parquet")
+    (folder / "part-1.parquet").unlink()
+    (folder / "part-1.parquet").symlink_to("kept.parquet")  # a link inside the folder is read
+    assert sorted(read_table(folder)["a"]) == [1, 2, 4, 4]

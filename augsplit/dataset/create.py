@@ -16,7 +16,8 @@ from ..errors import DatasetError
 from ..io import lock_folder, write_bytes_new
 from . import layout as lay
 from . import overwrite
-from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, read_spec_doc
+from .boxfs import open_part
+from .folder import LAYOUT_BEFORE, LAYOUT_KEYS, PNG_KEYS, part_box, read_spec_doc
 
 
 class FolderLock:
@@ -181,11 +182,13 @@ def part_complete(out: Path, split: str, shard: int, rows: int) -> bool:
     p = lay.part_path(out, lay.MANIFEST_DIR, split, shard)
     if not p.exists():
         return False
-    try:
-        return pq.ParquetFile(p).metadata.num_rows == rows
-    except Exception:  # noqa: BLE001 - an unreadable part is simply redone
-        p.unlink(missing_ok=True)
-        return False
+    with open_part(part_box(out), p) as f:  # a part linked out of the folder is refused, not read
+        try:
+            return pq.ParquetFile(f).metadata.num_rows == rows
+        except Exception:  # noqa: BLE001 - an unreadable part is simply redone
+            pass
+    p.unlink(missing_ok=True)
+    return False
 
 
 def writable_dir(out: Path, table_or_images: str, split: str) -> Path:

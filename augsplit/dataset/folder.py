@@ -19,6 +19,7 @@ import pyarrow.parquet as pq
 
 from .. import manifest as mf
 from ..errors import AugsplitError, DatasetError
+from ..limits import MAX_METADATA_BYTES
 from ..plan.settings import Settings, settings_of
 from ..spec import Spec, parse_spec, spec_hash
 from . import layout as lay
@@ -135,6 +136,13 @@ class DatasetFolder:
         return self._cache["box"]
 
     @property
+    def parts_box(self):
+        """The folder as a closed box for its Parquet parts (read through dataset/boxfs.py)."""
+        if "parts_box" not in self._cache:
+            self._cache["parts_box"] = part_box(self.root)
+        return self._cache["parts_box"]
+
+    @property
     def plan(self):
         return self.built.plan
 
@@ -159,13 +167,21 @@ class DatasetFolder:
         return f"open_dataset({str(self.root)!r})  # {done}, spec {self.spec_hash}, splits {list(self.splits)}"
 
 
+def read_metadata(root: Path, name: str) -> str:
+    """The text of a dataset's own file `name` (spec.json, dataset.json), read through a closed
+    box of the folder (`images.Box`): a file linked out of it is refused, never read."""
+    from .images import Box
+
+    return Box(root, "metadata", literal=True).read(name, MAX_METADATA_BYTES, str(Path(root) / name)).decode("utf-8")
+
+
 def read_spec_doc(root: Path) -> dict:
     """spec.json as a dict (spec, spec_hash, base_dir, layout); one-line errors naming it."""
     spec_file = Path(root) / lay.SPEC_FILE
     if not spec_file.is_file():
         raise DatasetError(f"not an augsplit dataset (no {lay.SPEC_FILE})", where=str(root))
     try:
-        doc = json.loads(spec_file.read_text(encoding="utf-8"))
+        doc = json.loads(read_metadata(root, lay.SPEC_FILE))
     except (OSError, ValueError) as exc:
         raise DatasetError(f"unreadable {lay.SPEC_FILE}: {exc}", where=str(spec_file)) from None
     if not isinstance(doc, dict) or not isinstance(doc.get("spec"), dict) or not isinstance(doc.get("spec_hash"), str):
@@ -178,7 +194,7 @@ def _read_summary(root: Path) -> dict | None:
     if not path.exists():
         return None
     try:
-        summary = json.loads(path.read_text(encoding="utf-8"))
+        summary = json.loads(read_metadata(root, lay.SUMMARY_FILE))
     except (OSError, ValueError) as exc:
         raise DatasetError(f"unreadable {lay.SUMMARY_FILE}: {exc}", where=str(path)) from None
     if not isinstance(summary, dict) or not isinstance(summary.get("splits"), dict):
@@ -209,8 +225,10 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
         raise DatasetError(f"{lay.SUMMARY_FILE} is of spec {summary.get('spec_hash')}, but {lay.SPEC_FILE} is spec "
                            f"{recorded}: a mixed folder; regenerate it", where=str(root / lay.SUMMARY_FILE))
     layout = doc.get("layout") if isinstance(doc.get("layout"), dict) else {}
-    parts = tuple(p for table in lay.TABLES for p in scan_parts(root, table, recorded, tuple(spec.splits)))
+    box = part_box(root)
+    parts = tuple(p for table in lay.TABLES for p in scan_parts(root, table, recorded, tuple(spec.splits), box))
     folder = DatasetFolder(root, spec, recorded, Path(doc.get("base_dir") or root), layout, summary, parts)
+    folder._cache["parts_box"] = box
     if summary is not None:
         totals = {}
         for name in spec.splits:
@@ -222,9 +240,20 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
     return folder
 
 
-def scan_parts(root: Path, table: str, recorded_hash: str, splits: tuple[str, ...]) -> list[Part]:
+def part_box(root: Path):
+    """A closed box of the dataset folder for its Parquet parts: pyarrow reads a part only
+    through it (dataset/boxfs.py), so only a part inside the folder is read."""
+    from .images import Box
+
+    return Box(root, "Parquet part", literal=True)
+
+
+def scan_parts(root: Path, table: str, recorded_hash: str, splits: tuple[str, ...], box=None) -> list[Part]:
     """Every part of a table, each checked: a split of the spec, this spec's hash, the declared
-    schema. Reads only the footers."""
+    schema. Reads only the footers, through `box` (default: `part_box(root)`)."""
+    from .boxfs import open_part
+
+    box = part_box(root) if box is None else box
     out = []
     for path in lay.part_files(root, table):
         split = lay.split_of(path)
@@ -232,7 +261,8 @@ def scan_parts(root: Path, table: str, recorded_hash: str, splits: tuple[str, ..
             raise DatasetError(f"a part of split '{split}', which the spec does not have (it has "
                                f"{', '.join(splits)}): a mixed folder", where=str(path))
         try:
-            meta = pq.ParquetFile(path).metadata
+            with open_part(box, path) as f:
+                meta = pq.ParquetFile(f).metadata
             schema = meta.schema.to_arrow_schema()
         except (OSError, pa.ArrowException) as exc:
             raise DatasetError(f"unreadable Parquet part (truncated or not Parquet): {_first_line(exc)}",

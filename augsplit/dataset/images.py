@@ -122,8 +122,9 @@ class Box:
     already), not read from a table, so a name may begin with `~` or hold a backslash; a table's
     path may not, as other tools would read it as a home folder or a Windows separator."""
 
-    def __init__(self, root: str | Path, what: str = "image", literal: bool = False):
+    def __init__(self, root: str | Path, what: str = "image", literal: bool = False, place: str = "dataset folder"):
         self.root = str(root)
+        self.place = place  # what the folder is, in messages
         self.base = os.path.realpath(root)
         self.what = what
         self.literal = literal
@@ -141,14 +142,14 @@ class Box:
         p = PurePosixPath(rel)
         foreign = not self.literal and (rel.startswith("~") or "\\" in rel)
         if p.is_absolute() or foreign or ".." in p.parts or "\x00" in rel:
-            raise ImageError(f"{self.what} path {rel!r} leaves the dataset folder; it was not read", where=where)
+            raise ImageError(f"{self.what} path {rel!r} leaves the {self.place}; it was not read", where=where)
         return p
 
     def _inside(self, real: str) -> bool:
         return real == self.base or real.startswith(self.base.rstrip(os.sep) + os.sep)
 
     def _out(self, rel, where) -> ImageError:
-        return ImageError(f"{self.what} path {rel!r} is a symbolic link out of the dataset folder; it was not read",
+        return ImageError(f"{self.what} path {rel!r} is a symbolic link out of the {self.place}; it was not read",
                           where=where)
 
     def resolve(self, rel, where: str | None = None) -> Path:
@@ -179,11 +180,10 @@ class Box:
             raise ImageError(f"{self.what} file {rel} has {st.st_size} bytes, more than the {limit} allowed for "
                              "one; it was not read", where=where)
 
-    @contextmanager
-    def open(self, rel, limit: int | None, where: str | None = None):
+    def open_file(self, rel, limit: int | None = None, where: str | None = None):
         """The regular file `rel` inside the box, open for binary reading and checked as open
         (see the class), refused above `limit` bytes (None: no bound); reading no more than
-        that from it is the caller's part."""
+        that from it, and closing it, is the caller's part (`open` closes it)."""
         p = self._lexical(rel, where)
         folder = str(p.parent)
         if folder not in self._dirs:
@@ -203,12 +203,22 @@ class Box:
             fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
         except OSError as exc:
             raise ImageError(f"{self.what} file {rel} cannot be opened: {exc.strerror}", where=where) from None
-        with os.fdopen(fd, "rb") as f:
+        f = os.fdopen(fd, "rb")
+        try:
             self._check_mode(os.fstat(fd), rel, where, limit)
             real = opened_path(fd, path)
             if real is None or not self._inside(real):
                 raise ImageError(f"{self.what} file {rel} was moved, or a folder on its way linked, out of the "
-                                 "dataset folder while it was opened; it was not read", where=where)
+                                 f"{self.place} while it was opened; it was not read", where=where)
+        except BaseException:
+            f.close()
+            raise
+        return f
+
+    @contextmanager
+    def open(self, rel, limit: int | None, where: str | None = None):
+        """`open_file` as a context: the file is closed on leaving."""
+        with self.open_file(rel, limit, where) as f:
             yield f
 
     def read(self, rel, limit: int, where: str | None = None) -> bytes:

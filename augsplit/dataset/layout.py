@@ -46,9 +46,12 @@ def _recorded_spec(f: Path) -> bool:
     refused as one, not taken for a plain folder)."""
     if not f.is_file():
         return False
-    try:
-        doc = json.loads(f.read_bytes())
-    except (OSError, ValueError):
+    from .folder import read_metadata
+    from .images import ImageError
+
+    try:  # a spec.json linked out of its folder counts, unread
+        doc = json.loads(read_metadata(f.parent, f.name))
+    except (OSError, ValueError, ImageError):
         return True
     return not isinstance(doc, dict) or "spec_hash" in doc
 

@@ -17,6 +17,7 @@ import pyarrow.parquet as pq
 from .. import manifest as mf
 from ..errors import DatasetError
 from . import layout as lay
+from .boxfs import filesystem, open_part
 from .folder import SCHEMAS, DatasetFolder, Part, open_dataset
 
 if TYPE_CHECKING:
@@ -40,6 +41,7 @@ def _dataset(folder: DatasetFolder, table: str, splits, parts=None) -> tuple[pds
     if not parts:
         return None, parts
     dset = pds.dataset([str(p.path) for p in parts], schema=table_schema(table), format="parquet",
+                       filesystem=filesystem(folder.parts_box),
                        partitioning=pds.partitioning(pa.schema([(mf.PARTITION, pa.string())]), flavor="hive"),
                        partition_base_dir=str(folder.root / table))
     return dset, parts
@@ -123,32 +125,37 @@ def iter_batches(folder: DatasetFolder, table: str = lay.MANIFEST_DIR, *, splits
             raise _unreadable(part, exc) from None
 
 
-def read_column(part: Part, column: str) -> pa.Array:
+def read_column(folder: DatasetFolder, part: Part, column: str) -> pa.Array:
     """One column of one part (for example its image bytes, which loaders cache per part)."""
     try:
         # ParquetFile, not read_table: the latter imports pyarrow.dataset and pandas (0.5 s)
-        return pq.ParquetFile(part.path).read(columns=[column]).column(column).combine_chunks()
+        with open_part(folder.parts_box, part.path) as f:
+            return pq.ParquetFile(f).read(columns=[column]).column(column).combine_chunks()
     except (OSError, pa.ArrowException) as exc:
         raise _unreadable(part, exc) from None
 
 
-def non_null(part: Part, column: str) -> np.ndarray:
+def non_null(folder: DatasetFolder, part: Part, column: str) -> np.ndarray:
     """Which rows of a part hold a value in `column`, from the row groups' null counts where they
     settle it (a dataset has one store mode), so the values themselves are not read."""
     try:
-        pf = pq.ParquetFile(part.path)
-        col = pf.schema_arrow.names.index(column)
-        out = []
-        for g in range(pf.metadata.num_row_groups):
-            rg = pf.metadata.row_group(g)
-            stats = rg.column(col).statistics
-            nulls = stats.null_count if stats is not None and stats.has_null_count else None
-            if nulls in (0, rg.num_rows):
-                out.append(np.full(rg.num_rows, nulls == 0))
-            else:
-                out.append(pf.read_row_group(g, columns=[column]).column(0).is_valid().to_numpy(zero_copy_only=False))
+        with open_part(folder.parts_box, part.path) as f:
+            return _non_null(pq.ParquetFile(f), column)
     except (OSError, pa.ArrowException) as exc:
         raise _unreadable(part, exc) from None
+
+
+def _non_null(pf: pq.ParquetFile, column: str) -> np.ndarray:
+    col = pf.schema_arrow.names.index(column)
+    out = []
+    for g in range(pf.metadata.num_row_groups):
+        rg = pf.metadata.row_group(g)
+        stats = rg.column(col).statistics
+        nulls = stats.null_count if stats is not None and stats.has_null_count else None
+        if nulls in (0, rg.num_rows):
+            out.append(np.full(rg.num_rows, nulls == 0))
+        else:
+            out.append(pf.read_row_group(g, columns=[column]).column(0).is_valid().to_numpy(zero_copy_only=False))
     return np.concatenate(out) if out else np.zeros(0, dtype=bool)
 
 

@@ -15,6 +15,8 @@ from typing import Iterator
 
 import pandas as pd
 
+from ..dataset.boxfs import filesystem, open_part
+from ..dataset.images import Box
 from ..errors import DatasetError
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
@@ -218,12 +220,19 @@ def _open_parquet(root: Path, files: list[Path], what: str) -> Table:
     import pyarrow.parquet as pq
 
     base = root if root.is_dir() else root.parent
+    # the files of a folder are read through a closed box of it (dataset/boxfs.py): one linked
+    # out of the folder is refused, not read; a file given by its own path is read as named
+    box = Box(root, what, literal=True, place="folder given") if root.is_dir() else None
     schema = None
     keys: dict[str, None] = {}
     rows = 0
     for f in files:
         try:
-            meta = pq.read_metadata(f)
+            if box is None:
+                meta = pq.read_metadata(f)
+            else:
+                with open_part(box, f) as source:
+                    meta = pq.read_metadata(source)
             s = meta.schema.to_arrow_schema()
             schema = s if schema is None else pa.unify_schemas([schema, s])
         except (OSError, ValueError, pa.ArrowException) as exc:
@@ -238,7 +247,7 @@ def _open_parquet(root: Path, files: list[Path], what: str) -> Table:
     full = pa.schema(list(schema) + part_fields)
     partitioning = ds.partitioning(pa.schema(part_fields), flavor="hive") if part_fields else None
     dataset = ds.dataset([str(f) for f in files], schema=full, format="parquet", partitioning=partitioning,
-                         partition_base_dir=str(base))
+                         partition_base_dir=str(base), filesystem=None if box is None else filesystem(box))
     return Table(root, "parquet", tuple(full.names), None, (), what, dataset)
 
 
