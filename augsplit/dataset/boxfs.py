@@ -23,10 +23,19 @@ def _rel(box: Box, path: str) -> str:
     return os.path.relpath(path, box.root).replace(os.sep, "/")
 
 
-def open_part(box: Box, path) -> pa.PythonFile:
+def open_part(box: Box, path) -> pa.NativeFile:
     """The part at `path` (under `box.root`), open through the box, as a pyarrow file."""
     path = os.fspath(path)
-    return pa.PythonFile(box.open_file(_rel(box, path), None, path), mode="r")
+    f = box.open_file(_rel(box, path), None, path)
+    try:
+        # Linux: the file the box opened, opened again through its /proc/self/fd entry, which
+        # leads to that open file whatever became of its path since, for pyarrow's own reads
+        # (through pa.PythonFile, read_rows of 84 parts took 0.3 ms more per part)
+        native = pa.OSFile(f"/proc/self/fd/{f.fileno()}")
+    except (OSError, pa.ArrowException):
+        return pa.PythonFile(f, mode="r")  # no /proc: read through Python; pyarrow closes f
+    f.close()
+    return native
 
 
 class _BoxHandler(pafs.FileSystemHandler):
