@@ -429,3 +429,28 @@ def test_split_lists_of_coco_files_with_integral_float_ids_name_the_images(tmp_p
     objs = read_coco(src)
     got = dict(zip(objs.images["image_id"], read_assignment(lists, objs)))
     assert got == {1: "train", 2: "test"}
+
+
+@pytest.mark.parametrize("name", ["train.json", "train.txt", "splits.csv"])
+def test_a_split_list_linked_out_of_the_splits_folder_is_refused_not_read(tmp_path, capsys, name):
+    """The folder given to --splits is read only inside: measured before, a list (or an assign
+    folder's splits.csv) linked out of it was read and its images audited as that split."""
+    s = spec(tmp_path)
+    src = write_json(tmp_path / "all.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    out = tmp_path / "sp"
+    assert cli("assign", s, src, "--out", out) == 0
+    if name != "splits.csv":  # a folder of per-split lists, not assign's own
+        out = tmp_path / "lists"
+        out.mkdir()
+        (out / "test.txt").write_text("2\n")
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    body = {"train.json": json.dumps(coco([(10, 40, 10, 10)])), "train.txt": "1\n",
+            "splits.csv": "image_id,split\n1,train\n2,test\n"}[name]
+    (elsewhere / name).write_text(body)
+    (out / name).unlink(missing_ok=True)
+    (out / name).symlink_to(elsewhere / name)
+    capsys.readouterr()
+    assert cli("audit", src, "--splits", out, "--spec", s, "--out", tmp_path / "au") == 2
+    err = capsys.readouterr().err
+    assert "link out of the splits folder" in err and "Traceback" not in err and len(err.strip().splitlines()) == 1

@@ -189,13 +189,14 @@ def check_boxes(df: pd.DataFrame, where: str) -> None:
         _refuse(df, bad, f"images larger than {MAX_PIXELS} px", where)
 
 
-def dataset_box(root: Path):
+def dataset_box(root: Path, place: str = "dataset folder"):
     """The closed Box (dataset/images.py) a reader of an annotated dataset reads all its files
     through: made once per read, so the folder is resolved once and every file is judged
-    against that one folder; names are taken literally (found by listing, or resolved)."""
+    against that one folder; names are taken literally (found by listing, or resolved).
+    `place` names the folder in messages."""
     from ..dataset.images import Box
 
-    return Box(root, literal=True)
+    return Box(root, literal=True, place=place)
 
 
 def read_file(box, p: Path, limit: int, what: str) -> bytes:

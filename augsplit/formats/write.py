@@ -9,6 +9,7 @@ split) and `augsplit-splits.json`, the list of files augsplit wrote there: a rer
 
 from __future__ import annotations
 
+import io
 import json
 import os
 from pathlib import Path
@@ -19,7 +20,8 @@ import pandas as pd
 from ..assign import NONE
 from ..errors import DatasetError
 from ..io import write_text_atomic
-from .boxes import Objects
+from .boxes import Objects, dataset_box, read_file
+from .coco import MAX_BYTES as COCO_MAX_BYTES
 from .coco import coco_id
 from .placement import Placed
 
@@ -137,7 +139,8 @@ def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
     Images the assignment does not name get 'none'."""
     p = Path(path)
     if p.is_dir() and (p / MARKER).is_file():
-        return _from_table(pd.read_csv(p / SPLITS_CSV, dtype=str, keep_default_na=False), objs, str(p / SPLITS_CSV))
+        data = read_file(dataset_box(p, "splits folder"), p / SPLITS_CSV, COCO_MAX_BYTES, "splits table")  # inside the folder only
+        return _from_table(pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False), objs, str(p / SPLITS_CSV))
     if p.is_dir():
         return _from_lists(p, objs)
     if p.is_file():
@@ -205,15 +208,20 @@ def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
                    and not f.name.startswith(".") and f.name not in NOT_LISTS and not f.name.startswith("augsplit-"))
     if not files:
         raise DatasetError("no per-split files (<split>.json or <split>.txt) found", where=str(folder))
+    box = dataset_box(folder, "splits folder")  # a list linked out of the folder is refused, not read
     for f in files:
+        try:
+            text = read_file(box, f, COCO_MAX_BYTES, "split list").decode("utf-8")
+        except UnicodeDecodeError:
+            raise DatasetError("not UTF-8 text", where=str(f)) from None
         if f.suffix == ".json":
             try:
-                names = [str(coco_id(im["id"])) for im in json.loads(f.read_text(encoding="utf-8"))["images"]]
+                names = [str(coco_id(im["id"])) for im in json.loads(text)["images"]]
             except (ValueError, KeyError, TypeError):
                 raise DatasetError("not a COCO file with an 'images' list", where=str(f)) from None
             kinds: tuple[str, ...] = ("image id",)
         else:
-            names = [s.strip() for s in f.read_text(encoding="utf-8").splitlines() if s.strip()]
+            names = [s.strip() for s in text.splitlines() if s.strip()]
             kinds = ("image id", "file", "file stem")
         for i in _positions(names, objs, kinds, str(f)):
             out[i] = f.stem
