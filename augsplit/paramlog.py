@@ -202,5 +202,10 @@ def log_spec(log_dir: str | Path) -> dict | None:
     files = log_files(log_dir)
     if not files:
         return None
-    md = pq.read_schema(files[0]).metadata or {}
+    from .dataset.boxfs import open_part
+    from .dataset.images import Box
+
+    # through a box of the log folder, as read_table reads the rows: a part linked out is refused
+    with open_part(Box(log_dir, "parameter log part", literal=True, place="folder given"), files[0]) as f:
+        md = pq.read_schema(f).metadata or {}
     return json.loads(md[mf.META_SPEC]) if mf.META_SPEC in md else None

@@ -176,3 +176,19 @@ def test_part_files_are_single_row_group_parquet(plan, tmp_path):
     assert [pq.ParquetFile(f).metadata.num_rows for f in files] == [50, 50, 20]
     assert all(pq.read_schema(f).equals(LOG_SCHEMA, check_metadata=False) for f in files)
     assert pq.read_table(files[0]).column("split").type == LOG_SCHEMA.field("split").type == pa.string()
+
+
+def test_a_log_part_linked_out_of_the_folder_is_refused_not_read(plan, tmp_path):
+    """The log folder is read only inside, its spec as its rows (measured before: the spec and
+    rows of a part linked in from elsewhere were read)."""
+    elsewhere = tmp_path / "elsewhere"
+    log = ParamLog(elsewhere)
+    log.record(plan, "train", draw(0), epoch=0, item=0, source="test")
+    log.close()
+    folder = tmp_path / "log"
+    folder.mkdir()
+    (folder / log_files(elsewhere)[0].name).symlink_to(log_files(elsewhere)[0])
+    with pytest.raises(DatasetError, match="symbolic link out of the folder given; it was not read"):
+        log_spec(folder)
+    with pytest.raises(DatasetError, match="symbolic link out of the folder given; it was not read"):
+        read_log(folder)
