@@ -2,7 +2,7 @@
 flushed and fsynced, renamed over a missing path or a regular file only (never a symlink,
 FIFO, device or folder), then the folder fsynced. Files that a later commit makes valid (a
 generated shard's images, committed by its manifest part) are instead made create-only at
-their final names and synced together before that commit (`write_new_file`, `sync_files`).
+their final names and synced together before that commit (`write_new_file`, `sync_in_folder`).
 Also `-` as stdout, report folders, and plain JSON values."""
 
 from __future__ import annotations
@@ -107,17 +107,64 @@ def _libc_syncfs():
 def syncfs(path: Path) -> bool:
     """Flush the whole file system holding `path` in one call (Linux syncfs, which waits for
     the writes); False where there is no such call."""
-    fn = _libc_syncfs()
-    if fn is None:
+    if _libc_syncfs() is None:
         return False
     fd = os.open(path, os.O_RDONLY)
     try:
-        if fn(fd) != 0:
-            err = ctypes.get_errno()
-            raise OSError(err, os.strerror(err), str(path))
+        return syncfs_fd(fd, str(path))
     finally:
         os.close(fd)
+
+
+def syncfs_fd(fd: int, where: str) -> bool:
+    """`syncfs` of the file system holding the file open at `fd`."""
+    fn = _libc_syncfs()
+    if fn is None:
+        return False
+    if fn(fd) != 0:
+        err = ctypes.get_errno()
+        raise OSError(err, os.strerror(err), where)
     return True
+
+
+def folder_identity(fd: int) -> tuple[int, int]:
+    """(device, inode) of the folder open at `fd`: which folder it is, whatever its name."""
+    st = os.fstat(fd)
+    return st.st_dev, st.st_ino
+
+
+def sync_in_folder(folder: str, identity: tuple[int, int], names) -> None:
+    """Make the files `names`, written unsynced in the folder whose `folder_identity` was
+    `identity`, durable with their names: one syncfs of its file system (an fsync per file
+    where there is none), then the folder fsynced, all through the folder opened again at
+    `folder` and found to be that same folder. Refused in one line, nothing synced, if it is
+    not (a folder on the way replaced or linked elsewhere since): nothing outside is opened."""
+    gone = DatasetError("is no longer the folder these files were written in (moved, or a folder on its way "
+                        "linked elsewhere); they were not committed", where=folder)
+    try:
+        fd = open_folder(folder)
+    except OSError as exc:
+        if isinstance(exc, (FileNotFoundError, NotADirectoryError)) or exc.errno == errno.ELOOP:
+            raise gone from None  # a link now holds its name, or nothing does
+        raise
+    try:
+        if folder_identity(fd) != identity:
+            raise gone
+        if not syncfs_fd(fd, folder):
+            for name in names:
+                ffd = os.open(name, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0),
+                              dir_fd=fd)
+                try:
+                    os.fsync(ffd)
+                finally:
+                    os.close(ffd)
+        try:
+            os.fsync(fd)
+        except OSError as exc:
+            if exc.errno not in (errno.EINVAL, errno.ENOTSUP):
+                raise
+    finally:
+        os.close(fd)
 
 
 def _sync_data(paths: list) -> None:
@@ -171,28 +218,23 @@ def move_into_place(moves) -> None:
         fsync_folder(Path(final).parent)
 
 
-def write_files_atomic(items, *, sync: bool = True) -> None:
+def write_files_atomic(items) -> None:
     """Write several `(path, bytes)` files with `atomic_path`'s promise for each, syncing them
     together: every file to a temporary sibling, all made durable at once, then each renamed
-    into place and each folder fsynced once. On failure no temporary is left.
-
-    With `sync=False` the files are renamed into place unsynced: a reader still never sees a
-    partial file, but the caller must `sync_files` them before it relies on them surviving a
-    power loss (generation does so once per shard, before the shard's part commits)."""
+    into place and each folder fsynced once. On failure no temporary is left."""
     items = [(check_target(p), data) for p, data in items]
     tmps: list[Path] = []
     try:
         for p, data in items:
-            tmps.append(temporary_name(p))
-            with open(tmps[-1], "xb") as f:
+            tmp = temporary_name(p)
+            with open(tmp, "xb") as f:  # a name already taken is not ours: kept, never removed
+                tmps.append(tmp)
                 f.write(data)
-        if sync:
-            _sync_data(tmps)
+        _sync_data(tmps)
         for (p, _), tmp in zip(items, tmps):
             check_target(p)
             os.replace(tmp, p)
-        if sync:
-            _sync_folders(p for p, _ in items)
+        _sync_folders(p for p, _ in items)
     finally:
         for tmp in tmps:
             if os.path.lexists(tmp):
@@ -209,7 +251,7 @@ def write_new_file(path: str, data, dir_fd: int | None = None) -> bool:
     `dir_fd`, `path` is a name inside the folder open there (`open_folder`).
 
     Until it is closed the file is partial at its final name, so this is only for files that
-    nothing takes as valid before the caller commits them after a `sync_files` (generation:
+    nothing takes as valid before the caller commits them after a `sync_in_folder` (generation:
     a shard's images, committed by the shard's manifest part; a resumed run writes the images
     of a shard without a part again). A failed write removes the file it made."""
     try:
@@ -230,21 +272,34 @@ def write_new_file(path: str, data, dir_fd: int | None = None) -> bool:
     return True
 
 
-def replace_file_at(dir_fd: int, name: str, data, where: str) -> None:
+def replace_file_at(dir_fd: int, name: str, data, where: str, *, sync: bool = False) -> None:
     """Put `data` at `name` in the folder open at `dir_fd`, over what is there if that is a
-    regular file (refused, naming `where`, if it is anything else): written whole under a
-    temporary name in the same folder, then renamed over it, unsynced (see write_files_atomic
-    with sync=False, whose promise this keeps for one file in an open folder)."""
+    regular file (refused, naming `where`, if it is anything else, checked again just before
+    the rename): written whole under a temporary name in the same folder, then renamed over
+    it. With `sync`, the temporary is synced before the rename and the folder after it (see
+    atomic_path); without, the caller syncs later (`sync_in_folder`), as for `write_new_file`.
+    Only a temporary this call made is ever removed."""
     _check_mode_at(dir_fd, name, where)
     tmp = temporary_name(Path(where)).name
+    fd = os.open(tmp, _CREATE_ONLY | os.O_NOFOLLOW, 0o666, dir_fd=dir_fd)  # FileExistsError: not ours, kept
     try:
-        if not write_new_file(tmp, data, dir_fd):
-            raise FileExistsError(errno.EEXIST, "a temporary name is taken", os.path.join(os.path.dirname(where), tmp))
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            if sync:
+                os.fsync(fd)
+        finally:
+            os.close(fd)
         _check_mode_at(dir_fd, name, where)
         os.replace(tmp, name, src_dir_fd=dir_fd, dst_dir_fd=dir_fd)
-    finally:
-        with suppress(FileNotFoundError):
+    except BaseException:
+        with suppress(OSError):
             os.unlink(tmp, dir_fd=dir_fd)
+        raise
+    if sync:
+        with suppress(OSError):  # file systems that cannot sync a folder
+            os.fsync(dir_fd)
 
 
 def _check_mode_at(dir_fd: int, name: str, where: str) -> None:
@@ -275,16 +330,6 @@ def _sync_folders(paths) -> None:
         fsync_folder(folder)
 
 
-def sync_files(paths) -> None:
-    """Make files written unsynced (`write_files_atomic(..., sync=False)`, `write_new_file`)
-    durable, names included: one syncfs per file system of their folders (an fsync per file
-    for a single file or where there is no syncfs), then each folder fsynced once."""
-    paths = list(paths)
-    if paths:
-        _sync_data(paths)
-        _sync_folders(paths)
-
-
 def write_bytes_new(path: str | Path, data: bytes) -> bool:
     """Write `data` to `path` only if nothing is there, whole: written and synced under a
     temporary name, then hard-linked into place, which never replaces anything (a reader sees
@@ -293,8 +338,9 @@ def write_bytes_new(path: str | Path, data: bytes) -> bool:
     hard links, the file is made create-only (O_EXCL) and synced: still never a replacement."""
     p = check_target(path)
     tmp = temporary_name(p)
+    f = open(tmp, "xb")  # a name already taken is not ours: kept, never removed
     try:
-        with open(tmp, "xb") as f:
+        with f:
             f.write(data)
         _sync_data([tmp])
         try:

@@ -35,7 +35,7 @@ from pathlib import Path
 
 from .dataset import layout as lay
 from .errors import DatasetError
-from .io import check_folder_target, ensure_folder, lock_folder, open_folder, os_error, temporary_name
+from .io import check_folder_target, ensure_folder, lock_folder, open_folder, os_error, replace_file_at
 
 # {"files": [names augsplit wrote in this folder], "runs": {command: [names its last run may have left]},
 #  "stamps": {name: [size, SHA-256] of the file a completed run wrote}}
@@ -363,34 +363,13 @@ def _write_list(fd: int, record: _Record, folder: Path) -> None:
 
 
 def _write_in(fd: int, name: str, data: bytes, folder: Path) -> None:
-    """Write the file `name` of the folder open as `fd` whole: under a temporary name,
-    synced, renamed over the old one (the folder's own entries: never through a link), the
-    folder synced. Where something other than a regular file has come to hold the name, it is
-    refused and left as it is. A storage error is a one-line DatasetError naming the file."""
-    _refuse_unless_file(fd, name, folder)
-    tmp = temporary_name(Path(name)).name
+    """Write the file `name` of the folder open as `fd` whole and durably (io.replace_file_at:
+    the folder's own entries, never through a link); where something other than a regular
+    file holds the name, it is refused and left as it is. A storage error is a one-line
+    DatasetError naming the file."""
     try:
-        tfd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0),
-                      0o666, dir_fd=fd)
-        try:
-            with os.fdopen(tfd, "wb") as f:
-                f.write(data)
-                f.flush()
-                os.fsync(f.fileno())
-            _refuse_unless_file(fd, name, folder)  # again: a link may have come to hold the name meanwhile
-            os.replace(tmp, name, src_dir_fd=fd, dst_dir_fd=fd)
-        except BaseException:
-            with suppress(OSError):
-                os.unlink(tmp, dir_fd=fd)
-            raise
+        replace_file_at(fd, name, data, str(folder / name), sync=True)
     except OSError as exc:
         raise os_error(exc, folder / name) from None
-    with suppress(OSError):  # file systems that cannot sync a folder
-        os.fsync(fd)
 
 
-def _refuse_unless_file(fd: int, name: str, folder: Path) -> None:
-    """A one-line DatasetError where something other than a regular file holds `name`."""
-    st = _lstat(fd, name)
-    if st is not None and not stat.S_ISREG(st.st_mode):
-        raise DatasetError("exists and is not a regular file; give another --out", where=str(folder / name))

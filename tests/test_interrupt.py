@@ -180,15 +180,15 @@ def test_a_crash_between_a_shards_images_and_its_part_leaves_a_shard_resume_rema
     import augsplit.generate as gen
 
     out = tmp_path / "ds"
-    real, calls = gen.sync_files, []
+    real, calls = gen.sync_in_folder, []
 
-    def crash_on_the_third_shard(paths):
-        calls.append(list(paths))
+    def crash_on_the_third_shard(folder, identity, names):
+        calls.append([os.path.join(folder, n) for n in names])
         if len(calls) == 3:
             raise Crash
-        real(paths)
+        real(folder, identity, names)
 
-    monkeypatch.setattr(gen, "sync_files", crash_on_the_third_shard)
+    monkeypatch.setattr(gen, "sync_in_folder", crash_on_the_third_shard)
     with pytest.raises(Crash):
         generate(spec_file, out, SERIAL)
     monkeypatch.undo()
@@ -210,20 +210,20 @@ def test_a_serial_run_commits_each_shard_while_it_renders_the_next(spec_file, se
     import augsplit.generate as gen
 
     second_renders = threading.Event()
-    real_render, real_sync, overlapped = gen._render_rows, gen.sync_files, []
+    real_render, real_sync, overlapped = gen._render_rows, gen.sync_in_folder, []
 
     def render(built, split, job, *args):
         if (job.split, job.shard) == ("train", 1):
             second_renders.set()
         return real_render(built, split, job, *args)
 
-    def sync(paths):
+    def sync(*args):
         if not overlapped:  # the first shard's sync
             overlapped.append(second_renders.wait(timeout=10))
-        real_sync(paths)
+        real_sync(*args)
 
     monkeypatch.setattr(gen, "_render_rows", render)
-    monkeypatch.setattr(gen, "sync_files", sync)
+    monkeypatch.setattr(gen, "sync_in_folder", sync)
     out = tmp_path / "ds"
     generate(spec_file, out, SERIAL)
     assert overlapped == [True]
@@ -239,21 +239,21 @@ def test_local_workers_leave_every_commit_to_the_driver(spec_file, serial, tmp_p
     import augsplit.generate as gen
 
     log = tmp_path / "who-commits"
-    real_sync, real_move = gen.sync_files, gen.move_into_place
+    real_sync, real_move = gen.sync_in_folder, gen.move_into_place
 
     def note(what):
         with open(log, "a") as f:  # a worker's memory is its own: the file is shared
             f.write(f"{what} {os.getpid()}\n")
 
-    def sync(paths):
+    def sync(*args):
         note("sync")
-        real_sync(paths)
+        real_sync(*args)
 
     def move(moves):
         note("commit")
         real_move(moves)
 
-    monkeypatch.setattr(gen, "sync_files", sync)
+    monkeypatch.setattr(gen, "sync_in_folder", sync)
     monkeypatch.setattr(gen, "move_into_place", move)
     out = tmp_path / "ds"
     generate(spec_file, out, Options(shard_size=SIZE, workers=2, progress=False))
@@ -271,21 +271,21 @@ def test_a_ctrl_c_while_the_next_shard_renders_lets_the_commit_under_way_land(sp
     resumed run gives the serial bytes."""
     import augsplit.generate as gen
 
-    real_render, real_sync, calls = gen._render_rows, gen.sync_files, []
+    real_render, real_sync, calls = gen._render_rows, gen.sync_in_folder, []
 
     def render(built, split, job, *args):
         if (job.split, job.shard) == ("train", 3):
             raise KeyboardInterrupt
         return real_render(built, split, job, *args)
 
-    def slow_sync(paths):
-        calls.append(paths)
+    def slow_sync(*args):
+        calls.append(args)
         if len(calls) == 3:
             time.sleep(0.5)  # still syncing when the Ctrl-C comes
-        real_sync(paths)
+        real_sync(*args)
 
     monkeypatch.setattr(gen, "_render_rows", render)
-    monkeypatch.setattr(gen, "sync_files", slow_sync)
+    monkeypatch.setattr(gen, "sync_in_folder", slow_sync)
     out = tmp_path / "ds"
     with pytest.raises(KeyboardInterrupt):
         generate(spec_file, out, SERIAL)

@@ -23,7 +23,7 @@ def events(monkeypatch):
     """Every temporary name handed out, file made create-only (O_EXCL), fsync (by the path its
     descriptor names), syncfs (by file system) and rename, in order."""
     log: list[tuple] = []
-    real_fsync, real_replace, real_tmp, real_syncfs = os.fsync, os.replace, aio.temporary_name, aio.syncfs
+    real_fsync, real_replace, real_tmp, real_syncfs_fd = os.fsync, os.replace, aio.temporary_name, aio.syncfs_fd
     real_open, real_link = os.open, os.link
 
     def at(path, dir_fd):  # a name inside the folder open at dir_fd (Linux: /proc/self/fd names it)
@@ -40,10 +40,10 @@ def events(monkeypatch):
         log.append(("fsync", os.readlink(f"/proc/self/fd/{fd}")))  # Linux: the open file's path
         return real_fsync(fd)
 
-    def syncfs(path):
-        done = real_syncfs(path)
+    def syncfs_fd(fd, where):
+        done = real_syncfs_fd(fd, where)
         if done:
-            log.append(("syncfs", os.stat(path).st_dev))
+            log.append(("syncfs", os.fstat(fd).st_dev))
         return done
 
     def replace(src, dst, *, src_dir_fd=None, dst_dir_fd=None):
@@ -63,7 +63,7 @@ def events(monkeypatch):
     monkeypatch.setattr(os, "open", open_)
     monkeypatch.setattr(os, "replace", replace)
     monkeypatch.setattr(os, "link", link)
-    monkeypatch.setattr(aio, "syncfs", syncfs)
+    monkeypatch.setattr(aio, "syncfs_fd", syncfs_fd)  # what syncfs(path) calls too
     monkeypatch.setattr(aio, "temporary_name", temporary_name)
     return log
 
@@ -363,3 +363,19 @@ def test_a_folder_lock_is_one_line_when_held_and_nothing_where_there_are_no_lock
     assert lock.fd is None
     with pytest.raises(OSError):
         os.fstat(first)  # the descriptor was closed, not leaked
+
+
+def test_replace_file_at_removes_only_a_temporary_it_made(tmp_path, monkeypatch):
+    """A temporary name already taken (by anything) is left alone: found by a review, the
+    file holding it was removed on the way out."""
+    (tmp_path / "a.png").write_bytes(b"old")
+    (tmp_path / ".taken").write_bytes(b"someone else's")
+    monkeypatch.setattr(aio, "temporary_name", lambda path: Path(path).with_name(".taken"))
+    fd = aio.open_folder(tmp_path)
+    try:
+        with pytest.raises(FileExistsError):
+            aio.replace_file_at(fd, "a.png", b"new", str(tmp_path / "a.png"))
+    finally:
+        os.close(fd)
+    assert (tmp_path / ".taken").read_bytes() == b"someone else's"
+    assert (tmp_path / "a.png").read_bytes() == b"old"

@@ -653,7 +653,7 @@ def test_a_link_put_at_a_report_s_name_while_it_is_written_is_kept(tmp_path, mon
             os.symlink(target, out / "score.json")
         return real_fsync(fd)
 
-    with pytest.raises(DatasetError, match="not a regular file"):
+    with pytest.raises(DatasetError, match="is a symbolic link; augsplit writes only to a new path or over a regular file"):
         with report_set(out, "score", ["score.json"]) as f:
             monkeypatch.setattr(os, "fsync", fsync)
             f.write("score.json", "{}")

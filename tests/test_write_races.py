@@ -3,7 +3,9 @@
 out of the dataset mid-shard cannot send them elsewhere, and what is found at an image's name
 is replaced only if it is a regular file. Measured before: each image was written by its full
 path, so every image after the swap was made in the folder the link pointed to, outside the
-dataset."""
+dataset, and the shard was committed after syncing the folder the link pointed to.
+Also: the image folder is synced, before the shard commits, through the folder found again
+and checked to be the one written in, never by a path that may lead elsewhere by then."""
 
 from __future__ import annotations
 
@@ -49,11 +51,12 @@ def test_images_written_after_their_folder_is_swapped_for_a_link_out_land_inside
         return done
 
     monkeypatch.setattr(gen, "write_new_file", swap_after_the_first_image)
-    try:
+    # refused by the next shard's check of its folders, or by this shard's sync (io.sync_in_folder)
+    with pytest.raises(DatasetError, match="is no longer the folder these files were written in|a symbolic link "
+                                           "inside the dataset folder"):
         generate(spec_file, out, SERIAL)
-    except DatasetError:
-        pass  # whether the run goes on or stops, nothing may be written through the link
     assert sorted(outside.iterdir()) == []
+    assert not lay.part_path(out, lay.MANIFEST_DIR, "train", 0).exists()  # its images are not at their names
     moved = folder.with_name("train.moved")
     # the rest of the first shard (6 images) was made in the folder the shard opened
     assert {f"train-{i:07d}.png" for i in range(6)} <= {p.name for p in moved.iterdir()}
@@ -64,7 +67,7 @@ def test_images_written_after_their_folder_is_swapped_for_a_link_out_land_inside
 def test_an_image_folder_opened_as_another_folder_is_refused_before_writing(spec_file, tmp_path, monkeypatch):
     """The folder open is checked to be the shard's image folder as the kernel names it."""
     out = tmp_path / "ds"
-    monkeypatch.setattr(gen, "opened_path", lambda fd, path: str(tmp_path / "elsewhere"))
+    monkeypatch.setattr(gen, "opened_path", lambda fd, path: str(tmp_path / "elsewhere"), raising=False)
     with pytest.raises(DatasetError, match="changed while it was being opened"):
         generate(spec_file, out, SERIAL)
     folder = lay.image_dir(out, "train")
@@ -104,3 +107,29 @@ def test_something_else_at_an_image_name_is_refused_and_left_alone(spec_file, tm
     assert mine.read_bytes() == b"the user's own file"
     assert os.path.islink(target) if kind == "link" else target.is_dir()
     assert not [p for p in lay.image_dir(out, "train").iterdir() if ".tmp-" in p.name]
+
+
+def test_files_are_synced_only_in_the_folder_they_were_written_in(tmp_path):
+    """io.sync_in_folder opens the folder again and syncs it only if it is the same folder:
+    found by a review, the shard's finish synced its image folder by path, through the link."""
+    from augsplit import io as aio
+
+    folder, outside = tmp_path / "images", tmp_path / "elsewhere"
+    folder.mkdir()
+    outside.mkdir()
+    fd = aio.open_folder(folder)
+    try:
+        assert aio.write_new_file("a.png", b"data", fd)
+        identity = aio.folder_identity(fd)
+    finally:
+        os.close(fd)
+    aio.sync_in_folder(str(folder), identity, ["a.png"])  # the same folder: synced
+    folder.rename(tmp_path / "moved")
+    folder.symlink_to(outside, target_is_directory=True)
+    (outside / "a.png").mkfifo() if hasattr(Path, "mkfifo") else os.mkfifo(outside / "a.png")
+    with pytest.raises(DatasetError, match="is no longer the folder these files were written in"):
+        aio.sync_in_folder(str(folder), identity, ["a.png"])  # the FIFO outside is never opened
+    folder.unlink()
+    folder.mkdir()  # another folder of the same name: not the one written in either
+    with pytest.raises(DatasetError, match="is no longer the folder these files were written in"):
+        aio.sync_in_folder(str(folder), identity, ["a.png"])
