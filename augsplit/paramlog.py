@@ -203,9 +203,9 @@ def log_spec(log_dir: str | Path) -> dict | None:
     if not files:
         return None
     from .dataset.boxfs import open_part
-    from .dataset.images import Box
+    from .formats.boxes import dataset_box
 
     # through a box of the log folder, as read_table reads the rows: a part linked out is refused
-    with open_part(Box(log_dir, "parameter log part", literal=True, place="folder given"), files[0]) as f:
+    with open_part(dataset_box(log_dir, "folder given").naming("parameter log part"), files[0]) as f:
         md = pq.read_schema(f).metadata or {}
     return json.loads(md[mf.META_SPEC]) if mf.META_SPEC in md else None

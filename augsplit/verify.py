@@ -505,5 +505,4 @@ def _strays(folder, present: dict) -> Found:
 def _entries(path: Path):
     if not path.is_dir() or path.is_symlink():
         return []
-    with os.scandir(path) as it:
-        yield from it
+    return lay.listing(path)

@@ -454,3 +454,24 @@ def test_a_split_list_linked_out_of_the_splits_folder_is_refused_not_read(tmp_pa
     assert cli("audit", src, "--splits", out, "--spec", s, "--out", tmp_path / "au") == 2
     err = capsys.readouterr().err
     assert "link out of the splits folder" in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize("case", ["splits.csv not UTF-8", "a list that is a FIFO"])
+def test_a_bad_file_in_the_splits_folder_is_one_line(tmp_path, capsys, case):
+    """Found by a review: a splits.csv that is not UTF-8 printed a traceback (on main too), and
+    a per-split list that is a FIFO was passed over, so its split seemed to have no images."""
+    s = spec(tmp_path)
+    src = write_json(tmp_path / "all.json", coco([(10, 40, 10, 10), (80, 40, 10, 10)]))
+    out = tmp_path / "sp"
+    if case == "splits.csv not UTF-8":
+        assert cli("assign", s, src, "--out", out) == 0
+        (out / "splits.csv").write_bytes(b"image_id,split\n1,tr\xffain\n")
+    else:
+        out.mkdir()
+        (out / "test.txt").write_text("2\n")
+        os.mkfifo(out / "train.txt")
+    capsys.readouterr()
+    assert cli("audit", src, "--splits", out, "--spec", s, "--out", tmp_path / "au") == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert ("unreadable splits table" in err) if case.startswith("splits") else ("not a regular file" in err)

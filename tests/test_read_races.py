@@ -386,3 +386,49 @@ def test_parts_are_read_through_python_where_there_is_no_proc(tmp_path, tiny, mo
     monkeypatch.setattr(pa, "OSFile", no_proc)
     got = read_manifest(tiny)
     assert got.equals(want) and len(got) == 9
+
+
+def test_a_split_folder_swapped_for_a_link_out_after_the_dataset_was_opened_is_not_read(tmp_path, tiny):
+    """The parts are judged when read, not only when the folder was opened: measured before,
+    every reader read the parts outside (here generate's count of low-visibility images)."""
+    import shutil
+
+    from augsplit.dataset.folder import open_dataset
+    from augsplit.generate import low_visibility
+
+    root, out = tmp_path / "ds", tmp_path / "elsewhere"
+    shutil.copytree(tiny, root)
+    shutil.copytree(tiny / "manifest" / "split=train", out)
+    folder = open_dataset(root)
+    (root / "manifest" / "split=train").rename(tmp_path / "moved")
+    (root / "manifest" / "split=train").symlink_to(out, target_is_directory=True)
+    with pytest.raises(DatasetError, match="out of the dataset folder.*; it was not read"):
+        low_visibility(folder)
+
+
+@pytest.mark.parametrize("unlisted", ["manifest/split=train", "images/train"])
+def test_a_folder_of_the_dataset_that_cannot_be_listed_is_one_line(tmp_path, tiny, monkeypatch, unlisted):
+    """Found by a review: an unreadable split folder was taken for an empty one (the parts in
+    it silently missing), and verify printed a traceback for an unreadable image folder. No
+    permission is simulated (the tests may run as root, whom chmod does not stop)."""
+    import shutil
+
+    from augsplit.dataset.folder import open_dataset
+    from augsplit.verify import verify
+
+    root = tmp_path / "ds"
+    shutil.copytree(tiny, root)
+    (root / "images" / "train").mkdir(parents=True, exist_ok=True)
+    real = os.scandir
+
+    def scandir(path="."):
+        if os.fspath(path).endswith(unlisted):
+            raise PermissionError(13, "Permission denied", os.fspath(path))
+        return real(path)
+
+    monkeypatch.setattr(os, "scandir", scandir)
+    with pytest.raises(DatasetError, match="cannot be listed: Permission denied"):
+        if unlisted.startswith("manifest"):
+            open_dataset(root)
+        else:
+            verify(root)

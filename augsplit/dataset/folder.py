@@ -167,21 +167,20 @@ class DatasetFolder:
         return f"open_dataset({str(self.root)!r})  # {done}, spec {self.spec_hash}, splits {list(self.splits)}"
 
 
-def read_metadata(root: Path, name: str) -> str:
-    """The text of a dataset's own file `name` (spec.json, dataset.json), read through a closed
-    box of the folder (`images.Box`): a file linked out of it is refused, never read."""
-    from .images import Box
+def read_metadata(root: Path, name: str, box=None) -> str:
+    """The text of a dataset's own file `name` (spec.json, dataset.json), read through the
+    folder's `part_box` (made here if not given): a file linked out of it is refused, never read."""
+    box = part_box(root) if box is None else box
+    return box.naming("metadata").read(name, MAX_METADATA_BYTES, str(Path(root) / name)).decode("utf-8")
 
-    return Box(root, "metadata", literal=True).read(name, MAX_METADATA_BYTES, str(Path(root) / name)).decode("utf-8")
 
-
-def read_spec_doc(root: Path) -> dict:
+def read_spec_doc(root: Path, box=None) -> dict:
     """spec.json as a dict (spec, spec_hash, base_dir, layout); one-line errors naming it."""
     spec_file = Path(root) / lay.SPEC_FILE
     if not spec_file.is_file():
         raise DatasetError(f"not an augsplit dataset (no {lay.SPEC_FILE})", where=str(root))
     try:
-        doc = json.loads(read_metadata(root, lay.SPEC_FILE))
+        doc = json.loads(read_metadata(root, lay.SPEC_FILE, box))
     except (OSError, ValueError) as exc:
         raise DatasetError(f"unreadable {lay.SPEC_FILE}: {exc}", where=str(spec_file)) from None
     if not isinstance(doc, dict) or not isinstance(doc.get("spec"), dict) or not isinstance(doc.get("spec_hash"), str):
@@ -189,12 +188,12 @@ def read_spec_doc(root: Path) -> dict:
     return doc
 
 
-def _read_summary(root: Path) -> dict | None:
+def _read_summary(root: Path, box) -> dict | None:
     path = root / lay.SUMMARY_FILE
     if not path.exists():
         return None
     try:
-        summary = json.loads(read_metadata(root, lay.SUMMARY_FILE))
+        summary = json.loads(read_metadata(root, lay.SUMMARY_FILE, box))
     except (OSError, ValueError) as exc:
         raise DatasetError(f"unreadable {lay.SUMMARY_FILE}: {exc}", where=str(path)) from None
     if not isinstance(summary, dict) or not isinstance(summary.get("splits"), dict):
@@ -207,7 +206,8 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
     root = Path(path)
     if not root.is_dir():
         raise DatasetError("no such dataset folder", where=str(root))
-    doc = read_spec_doc(root)
+    box = part_box(root)  # one box for every file of the folder this reads: the folder resolved once
+    doc = read_spec_doc(root, box)
     spec_file = root / lay.SPEC_FILE
     try:
         spec = parse_spec(doc["spec"], source=str(spec_file))
@@ -217,7 +217,7 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
     if spec_hash(spec) != recorded:
         raise DatasetError(f"{lay.SPEC_FILE} says hash {recorded} but its spec hashes to {spec_hash(spec)}",
                            where=str(spec_file))
-    summary = _read_summary(root)
+    summary = _read_summary(root, box)
     if summary is None and not allow_incomplete:
         raise DatasetError("the dataset is incomplete (no dataset.json): finish it with `augsplit generate SPEC "
                            "--out DIR --resume` (or `--finalize` after a job array) before using it", where=str(root))
@@ -225,7 +225,6 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
         raise DatasetError(f"{lay.SUMMARY_FILE} is of spec {summary.get('spec_hash')}, but {lay.SPEC_FILE} is spec "
                            f"{recorded}: a mixed folder; regenerate it", where=str(root / lay.SUMMARY_FILE))
     layout = doc.get("layout") if isinstance(doc.get("layout"), dict) else {}
-    box = part_box(root)
     parts = tuple(p for table in lay.TABLES for p in scan_parts(root, table, recorded, tuple(spec.splits), box))
     folder = DatasetFolder(root, spec, recorded, Path(doc.get("base_dir") or root), layout, summary, parts)
     folder._cache["parts_box"] = box
@@ -241,8 +240,9 @@ def open_dataset(path: str | Path, *, allow_incomplete: bool = False) -> Dataset
 
 
 def part_box(root: Path):
-    """A closed box of the dataset folder for its Parquet parts: pyarrow reads a part only
-    through it (dataset/boxfs.py), so only a part inside the folder is read."""
+    """A closed box of the dataset folder for its own files: pyarrow reads a Parquet part only
+    through it (dataset/boxfs.py), and spec.json and dataset.json are read through it, so only
+    files inside the folder are read."""
     from .images import Box
 
     return Box(root, "Parquet part", literal=True)

@@ -100,8 +100,25 @@ def part_path(root: str | Path, table: str, split: str, shard: int) -> Path:
 
 
 def part_files(root: str | Path, table: str = MANIFEST_DIR) -> list[Path]:
-    """The committed part files of a table (temporaries are hidden names, so never listed)."""
-    return sorted(p for p in (Path(root) / table).glob(f"{PARTITION}=*/part-*.parquet") if PART_RE.fullmatch(p.name))
+    """The committed part files of a table (temporaries are hidden names, so never listed).
+    A folder on the way that cannot be listed is a one-line DatasetError, not an empty table."""
+    out = []
+    for split_dir in listing(Path(root) / table):
+        if split_dir.name.startswith(f"{PARTITION}=") and split_dir.is_dir():
+            out += [Path(e.path) for e in listing(Path(split_dir.path)) if PART_RE.fullmatch(e.name)]
+    return sorted(out)
+
+
+def listing(folder: Path) -> list[os.DirEntry]:
+    """The entries of `folder`; none if it is missing (or not a folder); a one-line
+    DatasetError naming it if it cannot be listed (no permission, an I/O error)."""
+    try:
+        with os.scandir(folder) as it:
+            return list(it)
+    except (FileNotFoundError, NotADirectoryError):
+        return []
+    except OSError as exc:
+        raise DatasetError(f"cannot be listed: {exc.strerror}", where=str(folder)) from None
 
 
 def shard_of(part: Path) -> int:

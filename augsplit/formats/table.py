@@ -16,8 +16,8 @@ from typing import Iterator
 import pandas as pd
 
 from ..dataset.boxfs import filesystem, open_part
-from ..dataset.images import Box
 from ..errors import DatasetError
+from .boxes import dataset_box
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
 TEXT_SUFFIXES = {".csv": None, ".txt": None, ".tsv": "\t", ".tab": "\t"}  # None: sniffed
@@ -222,7 +222,7 @@ def _open_parquet(root: Path, files: list[Path], what: str) -> Table:
     base = root if root.is_dir() else root.parent
     # the files of a folder are read through a closed box of it (dataset/boxfs.py): one linked
     # out of the folder is refused, not read; a file given by its own path is read as named
-    box = Box(root, what, literal=True, place="folder given") if root.is_dir() else None
+    box = dataset_box(root, "folder given").naming(what) if root.is_dir() else None
     schema = None
     keys: dict[str, None] = {}
     rows = 0

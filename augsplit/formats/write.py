@@ -140,7 +140,12 @@ def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
     p = Path(path)
     if p.is_dir() and (p / MARKER).is_file():
         data = read_file(dataset_box(p, "splits folder"), p / SPLITS_CSV, COCO_MAX_BYTES, "splits table")  # inside the folder only
-        return _from_table(pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False), objs, str(p / SPLITS_CSV))
+        try:
+            table = pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False, encoding="utf-8")
+        except (UnicodeDecodeError, ValueError, pd.errors.ParserError) as exc:
+            raise DatasetError(f"unreadable splits table: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}",
+                               where=str(p / SPLITS_CSV)) from None
+        return _from_table(table, objs, str(p / SPLITS_CSV))
     if p.is_dir():
         return _from_lists(p, objs)
     if p.is_file():
@@ -204,7 +209,9 @@ def _from_table(df: pd.DataFrame, objs: Objects, where: str) -> np.ndarray:
 def _from_lists(folder: Path, objs: Objects) -> np.ndarray:
     out = np.full(len(objs.images), NONE, dtype=object)
     # per-split lists only: not hidden files, not augsplit's own reports or markers (audit.json, ...)
-    files = sorted(f for f in folder.iterdir() if f.is_file() and f.suffix in (".json", ".txt")
+    # anything but a folder that is named like a list is read through the box below, which
+    # refuses (in one line) a FIFO, device or link out, rather than passing over it unread
+    files = sorted(f for f in folder.iterdir() if not f.is_dir() and f.suffix in (".json", ".txt")
                    and not f.name.startswith(".") and f.name not in NOT_LISTS and not f.name.startswith("augsplit-"))
     if not files:
         raise DatasetError("no per-split files (<split>.json or <split>.txt) found", where=str(folder))
