@@ -77,12 +77,18 @@ def fsync_folder(path: str | Path) -> None:
     sync a folder (EINVAL) are left as they are."""
     fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
     try:
+        _fsync_folder_fd(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_folder_fd(fd: int) -> None:
+    """fsync of the folder open at `fd`, where its file system can sync a folder."""
+    try:
         os.fsync(fd)
     except OSError as exc:
         if exc.errno not in (errno.EINVAL, errno.ENOTSUP):
             raise
-    finally:
-        os.close(fd)
 
 
 def _fsync_file(path: Path) -> None:
@@ -158,11 +164,7 @@ def sync_in_folder(folder: str, identity: tuple[int, int], names) -> None:
                     os.fsync(ffd)
                 finally:
                     os.close(ffd)
-        try:
-            os.fsync(fd)
-        except OSError as exc:
-            if exc.errno not in (errno.EINVAL, errno.ENOTSUP):
-                raise
+        _fsync_folder_fd(fd)
     finally:
         os.close(fd)
 
