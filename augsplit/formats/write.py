@@ -139,12 +139,13 @@ def read_assignment(path: str | Path, objs: Objects) -> np.ndarray:
     Images the assignment does not name get 'none'."""
     p = Path(path)
     if p.is_dir() and (p / MARKER).is_file():
-        data = read_file(dataset_box(p, "splits folder"), p / SPLITS_CSV, COCO_MAX_BYTES, "splits table")  # inside the folder only
+        # read inside the folder only
+        data = read_file(dataset_box(p, "splits folder"), p / SPLITS_CSV, COCO_MAX_BYTES, "splits table")
         try:
             table = pd.read_csv(io.BytesIO(data), dtype=str, keep_default_na=False, encoding="utf-8")
         except (UnicodeDecodeError, ValueError, pd.errors.ParserError) as exc:
-            raise DatasetError(f"unreadable splits table: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}",
-                               where=str(p / SPLITS_CSV)) from None
+            why = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            raise DatasetError(f"unreadable splits table: {why}", where=str(p / SPLITS_CSV)) from None
         return _from_table(table, objs, str(p / SPLITS_CSV))
     if p.is_dir():
         return _from_lists(p, objs)
