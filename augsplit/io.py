@@ -36,27 +36,28 @@ def _kind(mode: int) -> str:
     return next((name for test, name in _KINDS if test(mode)), "not a regular file")
 
 
-def _mode(p: Path) -> int | None:
+def _mode(p: Path, dir_fd: int | None = None, where: str | None = None) -> int | None:
     """What is at `p` itself (a link is not followed), or None when nothing is (the write
     that follows then says why it cannot be made, e.g. a missing folder)."""
     try:
-        return os.lstat(p).st_mode
+        return os.lstat(p, dir_fd=dir_fd).st_mode
     except (FileNotFoundError, NotADirectoryError):
         return None
     except OSError as exc:
-        raise os_error(exc, p) from None
+        raise os_error(exc, where or p) from None
 
 
-def check_target(path: str | Path) -> Path:
-    """`path` as a Path, if a write may land there: it is missing or a regular file.
+def check_target(path: str | Path, *, dir_fd: int | None = None, where: str | None = None) -> Path:
+    """`path` as a Path, if a write may land there: it is missing or a regular file. With
+    `dir_fd`, `path` is a name in the folder open there and `where` names it in messages.
 
     Raises DatasetError naming the path when it is a symlink, FIFO, device, socket or folder
     (the link itself is judged, not what it points to)."""
     p = Path(path)
-    mode = _mode(p)
+    mode = _mode(p, dir_fd, where)
     if mode is not None and not stat.S_ISREG(mode):
         raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file",
-                           where=str(p))
+                           where=where or str(p))
     return p
 
 
@@ -91,8 +92,10 @@ def _fsync_folder_fd(fd: int) -> None:
             raise
 
 
-def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
+def _fsync_file(path: Path, dir_fd: int | None = None) -> None:
+    """fsync of the regular file at `path` (a name in the folder open at `dir_fd`, if given);
+    never through a link, and never waiting on a FIFO put there."""
+    fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0), dir_fd=dir_fd)
     try:
         os.fsync(fd)
     finally:
@@ -158,12 +161,7 @@ def sync_in_folder(folder: str, identity: tuple[int, int], names) -> None:
             raise gone
         if not syncfs_fd(fd, folder):
             for name in names:
-                ffd = os.open(name, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0),
-                              dir_fd=fd)
-                try:
-                    os.fsync(ffd)
-                finally:
-                    os.close(ffd)
+                _fsync_file(name, fd)
         _fsync_folder_fd(fd)
     finally:
         os.close(fd)
@@ -246,11 +244,12 @@ def write_files_atomic(items) -> None:
 _CREATE_ONLY = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
 
 
-def write_new_file(path: str, data, dir_fd: int | None = None) -> bool:
+def write_new_file(path: str, data, dir_fd: int | None = None, *, sync: bool = False) -> bool:
     """Write `data` into a file made at `path` now, or return False, writing nothing, when
     anything is already there (create-only, O_EXCL: never over or through an existing file,
-    link or folder). One open, write and close: no temporary, no rename, no sync. With
-    `dir_fd`, `path` is a name inside the folder open there (`open_folder`).
+    link or folder). One open, write and close: no temporary, no rename, no sync unless
+    `sync` (then the file is fsynced before it is closed). With `dir_fd`, `path` is a name
+    inside the folder open there (`open_folder`).
 
     Until it is closed the file is partial at its final name, so this is only for files that
     nothing takes as valid before the caller commits them after a `sync_in_folder` (generation:
@@ -264,6 +263,8 @@ def write_new_file(path: str, data, dir_fd: int | None = None) -> bool:
         view = memoryview(data)
         while view:
             view = view[os.write(fd, view):]
+        if sync:
+            os.fsync(fd)
     except BaseException:
         with suppress(OSError):
             if os.lstat(path, dir_fd=dir_fd).st_ino == os.fstat(fd).st_ino:  # still the file made here
@@ -281,19 +282,12 @@ def replace_file_at(dir_fd: int, name: str, data, where: str, *, sync: bool = Fa
     it. With `sync`, the temporary is synced before the rename and the folder after it (see
     atomic_path); without, the caller syncs later (`sync_in_folder`), as for `write_new_file`.
     Only a temporary this call made is ever removed."""
-    _check_mode_at(dir_fd, name, where)
+    check_target(name, dir_fd=dir_fd, where=where)
     tmp = temporary_name(Path(where)).name
-    fd = os.open(tmp, _CREATE_ONLY | os.O_NOFOLLOW, 0o666, dir_fd=dir_fd)  # FileExistsError: not ours, kept
+    if not write_new_file(tmp, data, dir_fd, sync=sync):  # the name is taken: not ours, kept
+        raise FileExistsError(errno.EEXIST, "a temporary name is taken", os.path.join(os.path.dirname(where), tmp))
     try:
-        try:
-            view = memoryview(data)
-            while view:
-                view = view[os.write(fd, view):]
-            if sync:
-                os.fsync(fd)
-        finally:
-            os.close(fd)
-        _check_mode_at(dir_fd, name, where)
+        check_target(name, dir_fd=dir_fd, where=where)
         os.replace(tmp, name, src_dir_fd=dir_fd, dst_dir_fd=dir_fd)
     except BaseException:
         with suppress(OSError):
@@ -302,15 +296,6 @@ def replace_file_at(dir_fd: int, name: str, data, where: str, *, sync: bool = Fa
     if sync:
         with suppress(OSError):  # file systems that cannot sync a folder
             os.fsync(dir_fd)
-
-
-def _check_mode_at(dir_fd: int, name: str, where: str) -> None:
-    try:
-        mode = os.lstat(name, dir_fd=dir_fd).st_mode
-    except FileNotFoundError:
-        return
-    if not stat.S_ISREG(mode):
-        raise DatasetError(f"is {_kind(mode)}; augsplit writes only to a new path or over a regular file", where=where)
 
 
 def open_folder(folder: str | Path) -> int:

@@ -133,3 +133,25 @@ def test_files_are_synced_only_in_the_folder_they_were_written_in(tmp_path):
     folder.mkdir()  # another folder of the same name: not the one written in either
     with pytest.raises(DatasetError, match="is no longer the folder these files were written in"):
         aio.sync_in_folder(str(folder), identity, ["a.png"])
+
+
+def test_where_there_is_no_syncfs_each_file_and_the_folder_are_fsynced_in_the_folder(tmp_path, monkeypatch):
+    """sync_in_folder's other way (no syncfs, as on macOS): each file written, then the folder,
+    fsynced through the folder found again, never by a path."""
+    from augsplit import io as aio
+
+    folder = tmp_path / "images"
+    folder.mkdir()
+    fd = aio.open_folder(folder)
+    try:
+        for name in ("a.png", "b.png"):
+            assert aio.write_new_file(name, b"data", fd)
+        identity = aio.folder_identity(fd)
+    finally:
+        os.close(fd)
+    synced, real_fsync = [], os.fsync
+    monkeypatch.setattr(aio, "_libc_syncfs", lambda: None)
+    monkeypatch.setattr(os, "fsync", lambda fd: synced.append(os.readlink(f"/proc/self/fd/{fd}")) or real_fsync(fd))
+    aio.sync_in_folder(str(folder), identity, ["a.png", "b.png"])
+    real = os.path.realpath(folder)
+    assert synced == [os.path.join(real, "a.png"), os.path.join(real, "b.png"), real]
