@@ -432,3 +432,19 @@ def test_a_folder_of_the_dataset_that_cannot_be_listed_is_one_line(tmp_path, tin
             open_dataset(root)
         else:
             verify(root)
+
+
+@pytest.mark.parametrize("kind", ["fifo", "folder"])
+def test_a_spec_json_that_is_not_a_regular_file_is_named_as_such(tmp_path, tiny, kind):
+    """Found reading the change: a spec.json that is a FIFO or a folder was reported as missing
+    ("not an augsplit dataset"); the box now says what it is, and it is never opened."""
+    import shutil
+
+    from augsplit.dataset.folder import open_dataset
+
+    root = tmp_path / "ds"
+    shutil.copytree(tiny, root)
+    (root / "spec.json").unlink()
+    os.mkfifo(root / "spec.json") if kind == "fifo" else (root / "spec.json").mkdir()
+    with pytest.raises(DatasetError, match="'spec.json' is not a regular file; it was not read"):
+        open_dataset(root)

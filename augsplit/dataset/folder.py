@@ -11,6 +11,7 @@ folder is gone still opens and serves its stored images).
 from __future__ import annotations
 
 import json
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -177,7 +178,7 @@ def read_metadata(root: Path, name: str, box=None) -> str:
 def read_spec_doc(root: Path, box=None) -> dict:
     """spec.json as a dict (spec, spec_hash, base_dir, layout); one-line errors naming it."""
     spec_file = Path(root) / lay.SPEC_FILE
-    if not spec_file.is_file():
+    if not os.path.lexists(spec_file):  # anything else there (a FIFO, a folder, a link) the box judges
         raise DatasetError(f"not an augsplit dataset (no {lay.SPEC_FILE})", where=str(root))
     try:
         doc = json.loads(read_metadata(root, lay.SPEC_FILE, box))
