@@ -146,12 +146,11 @@ class _ImageFiles:
         shard.image_folder = (self.folder, folder_identity(self.fd))
 
     def write(self, name: str, data: bytes) -> None:
-        path = os.path.join(self.folder, name)
         try:
             if not write_new_file(name, data, self.fd):
-                replace_file_at(self.fd, name, data, path)
+                replace_file_at(self.fd, name, data, os.path.join(self.folder, name))
         except OSError as exc:
-            raise _disk_error(exc, path) from None
+            raise _disk_error(exc, os.path.join(self.folder, name)) from None
         self.written.append(name)
 
     def close(self) -> None:
@@ -322,6 +321,11 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
     # 21 on bench_generate's spec, measured 0.5-2 us more per image)
     rows = [dict(zip(SCENE_KEYS, vals)) for vals in zip(*(cols[k].tolist() for k in SCENE_KEYS))]
     ids = [f"{job.split}-{i:07d}" for i in cols["index"].tolist()]
+    if files is not None:
+        # the split is checked to be one path component once, here; then each name (the
+        # split, a dash, digits and the suffix) is one as well (layout.image_relpath's)
+        folder = lay.image_folder_relpath(job.split)
+        names = [image_id + FORMATS[opts.format] for image_id in ids]
     bbox, footprint_px, visible, n_dist, size_px = [], [], [], [], []  # Python lists: cheap appends
     file_col, data_col, sums, byte_sums = [], [], [], []
     dist_rows: list[dict] = []
@@ -351,10 +355,9 @@ def _render_rows(built: Built, split, job: ShardJob, indices: np.ndarray, opts: 
             file_col += [""] * len(scenes)
             data_col += data
             continue
-        for image_id, d in zip(ids[at:r], data):
-            rel = lay.image_relpath(job.split, image_id, FORMATS[opts.format])
-            files.write(rel.rsplit("/", 1)[1], d)
-            file_col.append(rel)
+        for name, d in zip(names[at:r], data):
+            files.write(name, d)
+            file_col.append(f"{folder}/{name}")
         data_col += [None] * len(scenes)
     bbox = np.array(bbox, dtype=np.int64).reshape(n, 4)
     size_px = np.array(size_px, dtype=np.float64)

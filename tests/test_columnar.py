@@ -48,6 +48,15 @@ def test_strings_with_none(values):
 
 
 @settings(deadline=None)  # the reference, pa.array, imports pandas on its first call
+@given(st.lists(st.text(st.characters(max_codepoint=127), max_size=70), max_size=30))
+def test_ascii_strings(values):
+    """ASCII text without None (ids, checksums, paths) takes a one-join way of its own."""
+    same(values, pa.string())
+    same(np.array(values, dtype=object), pa.string())
+    same(values + ["\u00e9"], pa.string())  # one non-ASCII value: the general way
+
+
+@settings(deadline=None)  # the reference, pa.array, imports pandas on its first call
 @given(st.lists(st.one_of(st.none(), st.binary(max_size=20)), max_size=30))
 def test_binary_with_none(values):
     same(values, pa.binary())

@@ -142,7 +142,12 @@ def image_dir(root: str | Path, split: str) -> Path:
 
 def image_relpath(split: str, image_id: str, suffix: str) -> str:
     """A stored image's path relative to the dataset folder (the manifest's `file` column)."""
-    return f"{IMAGES_DIR}/{component(split, 'split')}/{component(image_id + suffix, 'image id')}"
+    return f"{image_folder_relpath(split)}/{component(image_id + suffix, 'image id')}"
+
+
+def image_folder_relpath(split: str) -> str:
+    """The folder of a split's stored images, relative to the dataset folder."""
+    return f"{IMAGES_DIR}/{component(split, 'split')}"
 
 
 def no_symlink_below(root: Path, path: Path) -> Path:
