@@ -130,9 +130,9 @@ class _ImageFiles:
     the same folder, found again by its identity (`io.sync_in_folder`: one syncfs, measured
     cheaper than one per batch; then the folder fsynced), before it commits the shard's part.
     A crash before that, even half-way through a file, leaves the shard without a part:
-    nothing reads its images, and a resumed run writes every one of them again. Written inline: a writer thread measured the same on tmpfs, and 0.86x to 1.2x the
-    time of inline writes on an erratic shared ext4 disk (load 3 on 2 cores), so the simpler
-    way was kept."""
+    nothing reads its images, and a resumed run writes every one of them again. Written
+    inline: a writer thread measured the same on tmpfs, and 0.86x to 1.2x the time of inline
+    writes on an erratic shared ext4 disk (load 3 on 2 cores), so the simpler way was kept."""
 
     def __init__(self, out: Path, folder: Path, shard: "WrittenShard"):
         self.folder = str(folder)

@@ -294,8 +294,7 @@ def replace_file_at(dir_fd: int, name: str, data, where: str, *, sync: bool = Fa
             os.unlink(tmp, dir_fd=dir_fd)
         raise
     if sync:
-        with suppress(OSError):  # file systems that cannot sync a folder
-            os.fsync(dir_fd)
+        _fsync_folder_fd(dir_fd)
 
 
 def open_folder(folder: str | Path) -> int:

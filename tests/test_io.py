@@ -3,6 +3,7 @@ path or a regular file only, then the folder fsynced; generation commits durably
 
 from __future__ import annotations
 
+import errno
 import os
 import stat
 from pathlib import Path
@@ -379,3 +380,31 @@ def test_replace_file_at_removes_only_a_temporary_it_made(tmp_path, monkeypatch)
         os.close(fd)
     assert (tmp_path / ".taken").read_bytes() == b"someone else's"
     assert (tmp_path / "a.png").read_bytes() == b"old"
+
+
+@pytest.mark.parametrize("code, raised", [(errno.EINVAL, False), (errno.ENOTSUP, False), (errno.EIO, True)])
+def test_a_synced_replace_treats_the_folder_fsync_as_every_atomic_write_does(tmp_path, monkeypatch, code, raised):
+    """replace_file_at(sync=True) fsyncs its folder through _fsync_folder_fd, as atomic_path
+    does: a file system that cannot sync a folder (EINVAL, ENOTSUP) is left as it is, a storage
+    error there is raised, not passed over. The file is in place in every case."""
+    (tmp_path / "a.json").write_bytes(b"old")
+    fd = aio.open_folder(tmp_path)
+    real_fsync = os.fsync
+
+    def fsync(f):
+        if f == fd:
+            raise OSError(code, os.strerror(code))
+        real_fsync(f)
+
+    monkeypatch.setattr(aio.os, "fsync", fsync)
+    try:
+        if raised:
+            with pytest.raises(OSError) as info:
+                aio.replace_file_at(fd, "a.json", b"new", str(tmp_path / "a.json"), sync=True)
+            assert info.value.errno == code
+        else:
+            aio.replace_file_at(fd, "a.json", b"new", str(tmp_path / "a.json"), sync=True)
+    finally:
+        os.close(fd)
+    assert (tmp_path / "a.json").read_bytes() == b"new"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.json"]
